@@ -1,0 +1,28 @@
+# One way to build, test and demo. Every target creates .venv on first use.
+PY ?= python3
+VENV := .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed
+
+.PHONY: demo test bench lint clean
+
+$(STAMP): pyproject.toml
+	$(PY) -m venv $(VENV)
+	$(BIN)/pip install --quiet --upgrade pip
+	$(BIN)/pip install --quiet -e '.[test,dev]'
+	touch $(STAMP)
+
+demo: $(STAMP)
+	$(BIN)/listenpost demo
+
+test: $(STAMP)
+	$(BIN)/python -m pytest
+
+bench: $(STAMP)
+	$(BIN)/python -m bench
+
+lint: $(STAMP)
+	$(BIN)/ruff check agent collector listenpost tests bench
+
+clean:
+	rm -rf $(VENV) .pytest_cache

@@ -1,0 +1,1 @@
+"""listenpost command line, venue simulator and demo."""

@@ -1,0 +1,5 @@
+import sys
+
+from listenpost.cli import main
+
+sys.exit(main())
