@@ -1,0 +1,228 @@
+"""
+The collector's storage: one async interface, two backends.
+
+``open_store(url)`` picks the backend: ``sqlite:///path/to/file.db`` (or a bare path) for the embedded
+default, ``postgresql://...`` for several collectors on one database (asyncpg, imported lazily).
+
+Times: ``*_at`` and ``t_collector`` are collector Unix seconds (float); ``t_board_ms`` is board
+monotonic milliseconds within ``boot``. RSSI is stored in tenths of a dB (``rssi_dd``), calibrated,
+with the offset that was added (``offset_dd``), so the raw value is ``rssi_dd - offset_dd``.
+"""
+
+from __future__ import annotations
+
+import enum
+from collections.abc import AsyncIterator, Sequence
+from contextlib import AbstractAsyncContextManager
+from dataclasses import dataclass, field
+from typing import Any, Protocol
+
+import numpy as np
+
+
+class StoreUnavailable(Exception):
+    """The database cannot be reached or written now (the API answers 503 + Retry-After)."""
+
+
+class IngestStatus(enum.Enum):
+    STORED = "stored"
+    DUPLICATE = "duplicate"
+    """Same (board, epoch, seq) with the same digest: nothing stored twice."""
+    CONFLICT = "conflict"
+    """Same key, other digest (the API answers 409 and records an event)."""
+
+
+@dataclass(frozen=True, slots=True)
+class Board:
+    name: str
+    room: str
+    floor: str | None
+    created_at: float
+    enrolled_at: float | None = None
+    fingerprint: dict[str, Any] | None = None
+    offset_db: float = 0.0
+    retired_at: float | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class Enrollment:
+    """A one-time code issued by ``board add``; only its hash is stored."""
+
+    board: str
+    code_hash: str
+    expires_at: float
+    used_at: float | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class Calibration:
+    board: str
+    at: float
+    offset_db: float
+    spread_db: float
+    samples: int
+    reference_tag: str
+    distance_m: float
+    fingerprint: dict[str, Any] | None = None
+    """The board's hardware fingerprint when calibrated; a later change flags the board."""
+
+
+@dataclass(frozen=True, slots=True)
+class IngestBatch:
+    """One validated batch, ready to store in a single transaction."""
+
+    board: str
+    boot: str
+    epoch: str
+    seq: int
+    digest: str
+    received_at: float
+    offset_db: float
+    tags: np.ndarray            # str object array, one per reading
+    t_board_ms: np.ndarray      # int64
+    t_collector: np.ndarray     # float64, corrected collector time
+    rssi_dd: np.ndarray         # int16/int32, calibrated, tenths of dB
+    telemetry: Sequence[dict[str, Any]] = ()
+    gap: dict[str, Any] | None = None
+    """For a gap record: first_seq, last_seq, readings, reason."""
+
+    @property
+    def n(self) -> int:
+        return len(self.t_board_ms)
+
+
+@dataclass(frozen=True, slots=True)
+class IngestResult:
+    status: IngestStatus
+    stored_digest: str | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class ClockSample:
+    board: str
+    boot: str
+    t1: float
+    t2: float
+    t3: float
+    t4: float
+
+
+@dataclass(frozen=True, slots=True)
+class Heartbeat:
+    board: str
+    at: float
+    boot: str
+    stats: dict[str, Any] = field(default_factory=dict)
+
+
+@dataclass(frozen=True, slots=True)
+class Event:
+    at: float
+    board: str | None
+    kind: str
+    """``state_changed``, ``loss``, ``digest_conflict``, ``fingerprint_changed``, ..."""
+    detail: dict[str, Any] = field(default_factory=dict)
+    id: int | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class BoardCounts:
+    board: str
+    readings_total: int
+    batches_total: int
+    last_batch_at: float | None
+    gap_readings: int
+    """Readings the board reported lost (gap records)."""
+
+
+@dataclass(frozen=True, slots=True)
+class SeqHole:
+    """Seqs of one (board, epoch) never stored nor covered by a gap record."""
+
+    board: str
+    epoch: str
+    first_seq: int
+    last_seq: int
+
+
+@dataclass(frozen=True, slots=True)
+class ReadingRows:
+    """Columnar readings for export: one entry per reading, equal lengths."""
+
+    board: np.ndarray        # str objects
+    tag: np.ndarray          # str objects
+    t_collector: np.ndarray  # float64
+    rssi_dd: np.ndarray      # int32
+    offset_dd: np.ndarray    # int32
+
+
+class Store(Protocol):
+    """What the collector needs from a database. Every method is safe to call concurrently."""
+
+    url: str
+
+    async def close(self) -> None: ...
+
+    # boards and enrollment
+    async def add_board(self, board: Board, enrollment: Enrollment) -> None:
+        """Create a board with its first enrollment code; ``ValueError`` if the name exists."""
+    async def get_board(self, name: str) -> Board | None: ...
+    async def list_boards(self, include_retired: bool = True) -> list[Board]: ...
+    async def retire_board(self, name: str, at: float) -> bool: ...
+    async def new_enrollment(self, enrollment: Enrollment) -> None:
+        """Issue a fresh code for an existing board (re-flash); older unused codes stop working."""
+    async def get_enrollment(self, code_hash: str) -> Enrollment | None: ...
+    async def complete_enrollment(self, code_hash: str, token_hash: str, fingerprint: dict[str, Any], at: float) -> Board:
+        """Mark the code used and set the board's token and fingerprint, atomically."""
+    async def board_for_token(self, token_hash: str) -> Board | None: ...
+    async def set_offset(self, calibration: Calibration) -> None:
+        """Store a calibration in the history and make its offset the board's current one."""
+    async def calibrations(self, board: str) -> list[Calibration]: ...
+
+    # tags
+    async def add_tags(self, ids: Sequence[str], at: float) -> int:
+        """Register tags (idempotent; a retired tag becomes active again); returns how many were new."""
+    async def retire_tags(self, ids: Sequence[str], at: float) -> int: ...
+    async def list_tags(self, include_retired: bool = False) -> list[str]: ...
+
+    # ingest
+    async def ingest(self, batch: IngestBatch) -> IngestResult:
+        """Store a batch in one durable transaction (or not at all); idempotent on (board, epoch, seq)."""
+    async def board_counts(self) -> list[BoardCounts]: ...
+    async def seq_holes(self, board: str | None = None) -> list[SeqHole]: ...
+
+    # clock, heartbeats, events
+    async def add_clock_sample(self, sample: ClockSample) -> None: ...
+    async def clock_samples(self, board: str, boot: str, since: float | None = None) -> list[ClockSample]: ...
+    async def latest_boot(self, board: str) -> str | None: ...
+    async def add_heartbeat(self, hb: Heartbeat) -> None:
+        """Keep the latest heartbeat per board, plus a bounded history for trends."""
+    async def heartbeats(self, board: str, since: float) -> list[Heartbeat]: ...
+    async def latest_heartbeats(self) -> dict[str, Heartbeat]: ...
+    async def add_event(self, event: Event) -> int: ...
+    async def events(self, since_id: int = 0, limit: int = 1000, board: str | None = None) -> list[Event]: ...
+
+    # export and retention
+    async def readings(self, t_from: float, t_to: float, boards: Sequence[str] | None = None,
+                       tags: Sequence[str] | None = None) -> ReadingRows: ...
+    async def delete_readings_before(self, t: float, chunk: int = 10_000) -> int:
+        """Remove raw readings older than ``t`` in bounded chunks; returns how many went."""
+
+    def exclusive(self, name: str) -> AbstractAsyncContextManager[bool]:
+        """Run-once work across collectors: yields True if this process holds the lock ``name``."""
+        ...
+
+
+async def open_store(url: str, **options: Any) -> Store:
+    """Open (and migrate) the store named by ``url``."""
+    if url.startswith(("postgresql://", "postgres://")):
+        from collector.store.postgres import PostgresStore
+        return await PostgresStore.open(url, **options)
+    from collector.store.sqlite import SqliteStore
+    path = url.removeprefix("sqlite:///") if url.startswith("sqlite:///") else url.removeprefix("sqlite://")
+    return await SqliteStore.open(path, **options)
+
+
+__all__ = ["AsyncIterator", "Board", "BoardCounts", "Calibration", "ClockSample", "Enrollment", "Event",
+           "Heartbeat", "IngestBatch", "IngestResult", "IngestStatus", "ReadingRows", "SeqHole", "Store",
+           "StoreUnavailable", "open_store"]
