@@ -60,7 +60,7 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
 
 
 def _run(args: argparse.Namespace) -> int:
-    from agent.runner import run_command
+    from agent.service import run_command
     return run_command(args.config)
 
 
