@@ -133,6 +133,7 @@ class VirtualClock:
 
     async def advance(self, seconds: float) -> None:
         """Move time forward, waking each sleeper at its own deadline and letting it run."""
+        await settle()  # tasks created just before this call get to reach their first sleep
         target = self._now + seconds
         while self._sleepers and self._sleepers[0][0] <= target:
             deadline, _, fut = heapq.heappop(self._sleepers)
