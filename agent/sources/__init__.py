@@ -1,0 +1,239 @@
+"""
+Where advertisements come from. Every source yields `agent.types.Advert` through ``adverts()``.
+
+=========  ===========================================  =========================================
+kind       module                                       what it is
+=========  ===========================================  =========================================
+bleak      `agent.sources.bleak_scan.BleakSource`       live scanning through BlueZ over D-Bus
+hci        `agent.sources.hci.HciSource`                raw HCI socket (Linux), every report
+replay     `open_replay` → `ReplaySource`               recorded logs (.jsonl, .jsonl.gz)
+btsnoop    `open_replay` → `ReplaySource`               btsnoop captures (``btmon -w``)
+=========  ===========================================  =========================================
+
+Only ``bleak_scan`` imports bleak, and only when a bleak source is opened.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import enum
+import math
+from collections.abc import AsyncIterator, Iterator, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+import structlog
+
+from agent.clock import Clock
+from agent.errors import CaptureFormatError, SourceReason, SourceUnavailable
+from agent.types import Advert, Source
+
+if TYPE_CHECKING:
+    from agent.config import SourceConfig
+
+__all__ = ["Source", "FileKind", "detect_kind", "open_replay", "open_source", "ReplaySource", "RateMeter"]
+
+log = structlog.get_logger(__name__)
+
+
+# ---------------------------------------------------------------- effective rate
+
+class RateMeter:
+    """
+    Adverts per second per address over the last complete window.
+
+    BlueZ cannot promise one report per advertisement (BLE-NOTES §2), so the agent measures what
+    it actually gets. Memory is two dicts of counters: addresses not heard for two windows vanish.
+    """
+
+    __slots__ = ("window", "_idx", "_cur", "_prev")
+
+    def __init__(self, window_seconds: float = 60.0) -> None:
+        if window_seconds <= 0:
+            raise ValueError(f"window_seconds must be > 0, got {window_seconds!r}")
+        self.window = float(window_seconds)
+        self._idx: int | None = None
+        self._cur: dict[str, int] = {}
+        self._prev: dict[str, int] = {}
+
+    def _roll(self, now: float) -> None:
+        idx = math.floor(now / self.window)
+        if idx == self._idx:
+            return
+        self._prev = self._cur if self._idx is not None and idx == self._idx + 1 else {}
+        self._cur = {}
+        self._idx = idx
+
+    def note(self, address: str, now: float) -> None:
+        """Count one advert from ``address`` at clock time ``now`` (seconds)."""
+        self._roll(now)
+        self._cur[address] = self._cur.get(address, 0) + 1
+
+    def rates(self, now: float) -> dict[str, float]:
+        """Adverts per second of each address in the last complete window before ``now``."""
+        self._roll(now)
+        return {a: n / self.window for a, n in self._prev.items()}
+
+
+# ---------------------------------------------------------------- replay
+
+class FileKind(enum.Enum):
+    """What a replay file holds, by content."""
+
+    RECORDING = "recording"
+    """The project's JSON Lines recording, plain or gzip'd."""
+    BTSNOOP = "btsnoop"
+    """A btsnoop capture, plain or gzip'd."""
+
+
+def detect_kind(path: str | Path) -> FileKind:
+    """
+    Tell a recording from a btsnoop capture by the first bytes (inside gzip if compressed).
+
+    Raises:
+        CaptureFormatError: unreadable, or neither format.
+    """
+    import gzip
+
+    from agent.sources.btsnoop import is_btsnoop
+    p = Path(path)
+    try:
+        with open(p, "rb") as f:
+            head = f.read(16)
+        if head[:2] == b"\x1f\x8b":
+            with gzip.open(p, "rb") as g:
+                head = g.read(16)
+    except (OSError, EOFError) as e:
+        raise CaptureFormatError(f"{p}: cannot read: {e}") from e
+    except Exception as e:  # zlib.error from damaged gzip data
+        raise CaptureFormatError(f"{p}: damaged compressed data: {e}") from e
+    if is_btsnoop(head):
+        return FileKind.BTSNOOP
+    if head.lstrip()[:1] == b"{":
+        return FileKind.RECORDING
+    raise CaptureFormatError(f"{p}: neither a listenpost recording nor a btsnoop capture "
+                             f"(starts with {head[:8]!r})")
+
+
+@dataclass(frozen=True, slots=True)
+class ReplayFile:
+    path: Path
+    kind: FileKind
+
+
+class ReplaySource:
+    """
+    Recordings and captures played back in order, paced on the injected clock.
+
+    At ``speed`` S the clock time between two consecutive adverts is (t_i − t_{i−1}) / S; a
+    negative step (the next file starts earlier) counts as 0. The source keeps a due time and
+    sleeps only when it is ahead of it, so a slow consumer is never made slower by tiny sleeps.
+    ``speed`` 0 plays as fast as possible, yielding to the event loop every 256 adverts.
+
+    Files are read with ordinary buffered reads on the event loop thread: a line at a time from
+    local disk, and it keeps the pacing deterministic on a virtual clock.
+    """
+
+    YIELD_EVERY = 256
+
+    def __init__(self, files: Sequence[ReplayFile], clock: Clock, speed: float = 1.0) -> None:
+        if speed < 0 or not math.isfinite(speed):
+            raise ValueError(f"speed must be >= 0, got {speed!r}")
+        self.files = list(files)
+        self.clock = clock
+        self.speed = float(speed)
+        self.count = 0
+        """Adverts yielded so far."""
+        self.headers: list[object] = []
+        """Recording headers (or btsnoop stats) of the files opened so far, in order."""
+
+    def _stream(self) -> Iterator[Advert]:
+        from agent.sources.btsnoop import BtsnoopReader
+        from agent.sources.replay import read_recording
+        for f in self.files:
+            if f.kind is FileKind.RECORDING:
+                header, it = read_recording(f.path)
+                self.headers.append(header)
+                yield from it
+            else:
+                reader = BtsnoopReader(f.path)
+                self.headers.append(reader.stats)
+                for cap in reader:
+                    yield cap.advert
+                if reader.stats.truncated or reader.stats.bad_events:
+                    log.warning("capture_replayed_with_losses", file=str(f.path),
+                                truncated=reader.stats.truncated, bad_events=reader.stats.bad_events)
+
+    async def adverts(self) -> AsyncIterator[Advert]:
+        clock, speed = self.clock, self.speed
+        due = clock.monotonic()
+        prev_t: int | None = None
+        since_yield = 0
+        for adv in self._stream():
+            if speed > 0:
+                if prev_t is not None and adv.t_mono_ns > prev_t:
+                    due += (adv.t_mono_ns - prev_t) / 1e9 / speed
+                prev_t = adv.t_mono_ns
+                lag = due - clock.monotonic()
+                if lag > 0:
+                    await clock.sleep(lag)
+            else:
+                since_yield += 1
+                if since_yield >= self.YIELD_EVERY:
+                    since_yield = 0
+                    await asyncio.sleep(0)
+            self.count += 1
+            yield adv
+
+
+def open_replay(paths: Sequence[str | Path], clock: Clock, speed: float = 1.0) -> ReplaySource:
+    """
+    A source replaying ``paths`` in order (recordings and btsnoop captures, detected by content).
+
+    Board time: a recording keeps its recorded ``t``; a capture's board time is its capture time
+    relative to the file's first record.
+
+    Raises:
+        CaptureFormatError: a file is missing or neither format (checked here, before any replay).
+    """
+    if not paths:
+        raise ValueError("open_replay needs at least one file")
+    return ReplaySource([ReplayFile(Path(p), detect_kind(p)) for p in paths], clock, speed)
+
+
+# ---------------------------------------------------------------- factory
+
+def _missing(kind: str, e: ImportError) -> SourceUnavailable:
+    name = e.name or str(e)
+    return SourceUnavailable(SourceReason.OTHER,
+                             f"source {kind!r} needs the Python package {name!r}, which is not installed "
+                             f"(pip install {name})")
+
+
+def open_source(cfg: SourceConfig, clock: Clock) -> Source:
+    """
+    Build the source the config asks for.
+
+    Raises:
+        SourceUnavailable: a package the source needs is missing.
+        CaptureFormatError: a replay file is missing or of the wrong kind.
+        ValueError: an unknown kind (config validation normally catches it first).
+    """
+    if cfg.kind == "bleak":
+        try:
+            from agent.sources.bleak_scan import BleakSource
+        except ImportError as e:
+            raise _missing("bleak", e) from e
+        return BleakSource(cfg.adapter, clock, cfg.stall_seconds)
+    if cfg.kind == "hci":
+        from agent.sources.hci import HciSource, dev_id_of
+        return HciSource(dev_id_of(cfg.adapter), clock)
+    if cfg.kind in ("replay", "btsnoop"):
+        src = open_replay(list(cfg.files), clock, cfg.speed)
+        if cfg.kind == "btsnoop":
+            for f in src.files:
+                if f.kind is not FileKind.BTSNOOP:
+                    raise CaptureFormatError(f"{f.path}: source.kind is 'btsnoop' but this is a recording")
+        return src
+    raise ValueError(f"unknown source kind {cfg.kind!r}")
