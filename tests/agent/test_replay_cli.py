@@ -1,0 +1,142 @@
+"""``listenpost agent replay --dry-run`` as a real subprocess on small hand-written recordings."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+LISTENPOST = Path(sys.executable).parent / "listenpost"
+VENUE = "4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10"
+VENUE_HEX = VENUE.replace("-", "")
+NS = "8b0ca750e7a74e14bd99"
+
+# Written by hand per DEVELOPERS.md "Recorded-log format": header, then one advert per line.
+RECORDING = "\n".join([
+    '{"format": "listenpost-recording", "version": 1, "board": "g0-a", "boot": "b-1", "wall_at_start": 1800000000.0}',
+    # visitor tag 7:1 (registered)
+    f'{{"t": 100.5, "a": "C0:00:00:00:00:01", "at": 1, "r": -67, "m": {{"004c": "0215{VENUE_HEX}00070001c5"}}}}',
+    # visitor tag 7:2 (not registered)
+    f'{{"t": 100.75, "a": "C0:00:00:00:00:02", "at": 1, "r": -70, "m": {{"004c": "0215{VENUE_HEX}00070002c5"}}}}',
+    # a phone
+    '{"t": 101.0, "a": "5E:11:22:33:44:55", "at": 1, "r": -80, "m": {"0006": "0109200211"}}',
+    # Eddystone tag instance 1e: UID then TLM (3000 mV, -5.5 degC, 1234 advs, 3600 s)
+    f'{{"t": 101.25, "a": "C0:00:00:00:00:03", "at": 1, "r": -71, "s": {{"feaa": "00ec{NS}00000000001e0000"}}, "u": ["feaa"]}}',
+    '{"t": 101.5, "a": "C0:00:00:00:00:03", "at": 1, "r": -72, "s": {"feaa": "20000bb8fa80000004d200008ca0"}}',
+    # custom firmware tag 7 (needs the lpx rule), then an iBeacon frame cut short
+    '{"t": 102.0, "a": "C0:00:00:00:00:04", "at": 1, "r": -60, "m": {"ffff": "4c5000000007"}}',
+    f'{{"t": 102.25, "a": "C0:00:00:00:00:05", "at": 1, "r": -61, "m": {{"004c": "0215{VENUE_HEX}0007"}}}}',
+    # registered by address, no payload
+    '{"t": 103.0, "a": "C4:7A:10:00:2B:91", "at": 0, "r": -55}',
+]) + "\n"
+
+TAGS = f"""# Brackenford test tags
+ibeacon:{VENUE.upper()}:7:1
+eddystone:{NS}:00000000001e   # gallery tag
+lpx:00000007
+mac:c4:7a:10:00:2b:91
+"""
+
+
+def run(*args: str | Path, cwd: Path) -> subprocess.CompletedProcess[str]:
+    return subprocess.run([str(LISTENPOST), "agent", "replay", *map(str, args)], cwd=cwd, capture_output=True,
+                          text=True, timeout=60)
+
+
+@pytest.fixture
+def files(tmp_path: Path) -> tuple[Path, Path]:
+    rec = tmp_path / "g0-a.jsonl"
+    rec.write_text(RECORDING)
+    tags = tmp_path / "tags.txt"
+    tags.write_text(TAGS)
+    return rec, tags
+
+
+def test_dry_run_prints_each_reading(files, tmp_path):
+    """Without rules the lpx tag names nothing; every other registered advert is one exact JSON line."""
+    rec, tags = files
+    p = run(rec, "--dry-run", "--tags", tags, "--fast", cwd=tmp_path)
+    assert 0 == p.returncode, p.stderr
+    assert [
+        {"tag": f"ibeacon:{VENUE}:7:1", "rssi": -67, "t": 100.5},
+        {"tag": f"eddystone:{NS}:00000000001e", "rssi": -71, "t": 101.25},
+        {"tag": f"eddystone:{NS}:00000000001e", "rssi": -72, "t": 101.5,
+         "telemetry": {"battery_mv": 3000, "temperature_c": -5.5, "adv_count": 1234, "uptime_s": 3600.0}},
+        {"tag": "mac:C4:7A:10:00:2B:91", "rssi": -55, "t": 103.0},
+    ] == [json.loads(line) for line in p.stdout.splitlines()]
+    assert "adverts read        8" in p.stderr
+    assert "decode errors       1" in p.stderr
+    assert "readings            4 from 3 of 4 registered tags" in p.stderr
+    # Unregistered devices appear nowhere in the output.
+    for secret in ("C0:00:00:00:00:02", "5E:11:22:33:44:55", "0109200211", ":7:2"):
+        assert secret not in p.stdout + p.stderr
+
+
+def test_config_rules_and_offset_override(files, tmp_path):
+    """Decode rules come from the config; --offset-db overrides calibration.offset_db."""
+    rec, tags = files
+    cfg = tmp_path / "agent.yaml"
+    cfg.write_text("board: g0-a\n"
+                   f"tags:\n  file: {tags.name}\n"
+                   "decode:\n  rules:\n    - {name: lpx, company_id: 0xFFFF, prefix: '4c50', offset: 2, length: 4}\n"
+                   "calibration:\n  offset_db: 10\n")
+    p = run(rec, "--dry-run", "--config", cfg, "--offset-db", "2.5", "--fast", cwd=tmp_path)
+    assert 0 == p.returncode, p.stderr
+    lines = [json.loads(line) for line in p.stdout.splitlines()]
+    assert {"tag": "lpx:00000007", "rssi": -57.5, "t": 102.0} in lines
+    assert [-64.5, -68.5, -69.5, -57.5, -52.5] == [x["rssi"] for x in lines]
+
+    p = run(rec, "--dry-run", "--config", cfg, "--fast", cwd=tmp_path)   # the config's own offset and tags file
+    assert [-57, -61, -62, -50, -45] == [json.loads(x)["rssi"] for x in p.stdout.splitlines()]
+
+
+def test_real_speed_replay_is_paced(files, tmp_path):
+    """--speed reaches the source: 2.5 s of recording at 100x takes at least 25 ms of real time (kept tiny)."""
+    rec, tags = files
+    p = run(rec, "--dry-run", "--tags", tags, "--speed", "100", cwd=tmp_path)
+    assert 0 == p.returncode, p.stderr
+    assert 4 == len(p.stdout.splitlines())
+    elapsed = float(p.stderr.split(" in ")[1].split(" s")[0])
+    assert 0.02 <= elapsed < 5
+
+
+def test_no_tags_exits_2_naming_both_options(files, tmp_path):
+    """With neither --tags nor a config tags file the command refuses, naming both ways to give tags."""
+    rec, _ = files
+    p = run(rec, "--dry-run", "--fast", cwd=tmp_path)
+    assert 2 == p.returncode
+    assert "--tags" in p.stderr and "--config" in p.stderr
+    assert "" == p.stdout
+
+
+def test_bad_tag_line_exits_2_with_file_and_line(files, tmp_path):
+    """A malformed tag file line is reported as file:line before anything is replayed."""
+    rec, tags = files
+    tags.write_text(TAGS + "ibeacon:not-a-uuid:7:3\n")
+    p = run(rec, "--dry-run", "--tags", tags, "--fast", cwd=tmp_path)
+    assert 2 == p.returncode
+    assert f"{tags}:6: tag id 'ibeacon:not-a-uuid:7:3'" in p.stderr
+    assert "" == p.stdout
+
+
+def test_bad_recording_line_exits_2_with_file_and_line(files, tmp_path):
+    """A broken recording line stops the replay with exit 2 and file:line; earlier readings were printed."""
+    rec, tags = files
+    lines = RECORDING.splitlines()
+    lines.insert(3, '{"t": 100.9, "a": "not an address", "at": 1, "r": -70}')
+    rec.write_text("\n".join(lines) + "\n")
+    p = run(rec, "--dry-run", "--tags", tags, "--fast", cwd=tmp_path)
+    assert 2 == p.returncode
+    assert f"{rec}:4:" in p.stderr
+    assert 1 == len(p.stdout.splitlines())
+
+
+def test_upload_needs_config(files, tmp_path):
+    """Without --dry-run the board identity comes from --config; its absence is a usage error."""
+    rec, tags = files
+    p = run(rec, "--tags", tags, "--fast", cwd=tmp_path)
+    assert 2 == p.returncode
+    assert "--config" in p.stderr
