@@ -1,0 +1,18 @@
+"""
+The venue simulator: a scenario file in, per-board recordings, a btsnoop capture and the ground truth out.
+
+    scenario.py   YAML → validated frozen dataclasses
+    venue.py      rooms, walls and floor slabs crossed, door paths
+    visitors.py   visitor flow → where each tag is when
+    radio.py      log-distance path loss, walls, slabs, shadowing, hearing
+    generate.py   the vectorised run and the files
+
+``listenpost sim brackenford --minutes 10 --out DIR`` runs the shipped demo venue.
+"""
+
+from __future__ import annotations
+
+from listenpost.sim.generate import Result, Simulation, generate, simulate
+from listenpost.sim.scenario import Scenario, load_scenario, parse_scenario
+
+__all__ = ["Result", "Scenario", "Simulation", "generate", "load_scenario", "parse_scenario", "simulate"]
