@@ -216,14 +216,17 @@ def uuid_to_le(uuid: str) -> bytes:
         ValueError: if the text is not a UUID.
     """
     u = uuid.lower()
-    if len(u) == 4:
-        return int(u, 16).to_bytes(2, "little")
-    if len(u) == 36 and u.endswith(_UUID_SUFFIX):
-        v = int(u[:8], 16)
-        return v.to_bytes(2, "little") if v <= 0xFFFF else v.to_bytes(4, "little")
-    if len(u) != 36 or [len(p) for p in u.split("-")] != [8, 4, 4, 4, 12]:
-        raise ValueError(f"not a UUID: {uuid!r}")
-    return bytes.fromhex(u.replace("-", ""))[::-1]
+    try:
+        if len(u) == 4:
+            return int(u, 16).to_bytes(2, "little")
+        if len(u) == 36 and [len(p) for p in u.split("-")] == [8, 4, 4, 4, 12]:
+            if u.endswith(_UUID_SUFFIX):
+                v = int(u[:8], 16)
+                return v.to_bytes(2, "little") if v <= 0xFFFF else v.to_bytes(4, "little")
+            return bytes.fromhex(u.replace("-", ""))[::-1]
+    except ValueError:
+        pass
+    raise ValueError(f"not a UUID: {uuid!r}")
 
 
 def build_ad(*, flags: int | None = None, manufacturer_data: Mapping[int, bytes] | None = None,
