@@ -20,8 +20,50 @@ from typing import Any, Protocol
 import numpy as np
 
 
-class StoreUnavailable(Exception):
+class StoreError(Exception):
+    """Base of the errors the store raises on purpose."""
+
+
+class StoreUnavailable(StoreError):
     """The database cannot be reached or written now (the API answers 503 + Retry-After)."""
+
+
+class SchemaTooNew(StoreError):
+    """The database was migrated by a newer listenpost than this one; refusing to touch it."""
+
+    def __init__(self, found: int, supported: int) -> None:
+        super().__init__(f"database schema version {found} is newer than this listenpost supports "
+                         f"({supported}); upgrade listenpost or point it at another database")
+        self.found = found
+        self.supported = supported
+
+
+class BadBatch(StoreError, ValueError):
+    """A batch the database refused (shape or value); ``field`` names the offending field. Nothing was stored."""
+
+    def __init__(self, field: str, problem: str) -> None:
+        super().__init__(f"{field}: {problem}")
+        self.field = field
+
+
+class EnrollmentReason(enum.Enum):
+    """Why ``complete_enrollment`` refused a code."""
+
+    UNKNOWN = "unknown"
+    """No such code (never issued, or replaced by a newer one for its board)."""
+    USED = "used"
+    """The code was used already."""
+    EXPIRED = "expired"
+    """``at`` is past the code's ``expires_at``."""
+
+
+class EnrollmentRefused(StoreError, ValueError):
+    """``complete_enrollment`` found the code unusable; checked and consumed atomically, so two racing
+    enrollments with one code cannot both succeed."""
+
+    def __init__(self, reason: EnrollmentReason) -> None:
+        super().__init__(f"enrollment code {reason.value}")
+        self.reason = reason
 
 
 class IngestStatus(enum.Enum):
@@ -146,6 +188,21 @@ class SeqHole:
 
 
 @dataclass(frozen=True, slots=True)
+class TagTelemetry:
+    """The latest telemetry a tag reported (Eddystone-TLM and the like), with the board that heard it."""
+
+    tag: str
+    board: str
+    at: float
+    """Collector Unix seconds when the batch carrying it arrived."""
+    t_board_ms: int
+    battery_mv: float | None = None
+    temperature_c: float | None = None
+    adv_count: float | None = None
+    uptime_s: float | None = None
+
+
+@dataclass(frozen=True, slots=True)
 class ReadingRows:
     """Columnar readings for export: one entry per reading, equal lengths."""
 
@@ -173,7 +230,9 @@ class Store(Protocol):
         """Issue a fresh code for an existing board (re-flash); older unused codes stop working."""
     async def get_enrollment(self, code_hash: str) -> Enrollment | None: ...
     async def complete_enrollment(self, code_hash: str, token_hash: str, fingerprint: dict[str, Any], at: float) -> Board:
-        """Mark the code used and set the board's token and fingerprint, atomically."""
+        """Mark the code used and set the board's token and fingerprint, atomically.
+
+        Raises `EnrollmentRefused` (``.reason`` unknown / used / expired) if the code cannot be used at ``at``."""
     async def board_for_token(self, token_hash: str) -> Board | None: ...
     async def set_offset(self, calibration: Calibration) -> None:
         """Store a calibration in the history and make its offset the board's current one."""
@@ -187,8 +246,13 @@ class Store(Protocol):
 
     # ingest
     async def ingest(self, batch: IngestBatch) -> IngestResult:
-        """Store a batch in one durable transaction (or not at all); idempotent on (board, epoch, seq)."""
+        """Store a batch in one durable transaction (or not at all); idempotent on (board, epoch, seq).
+
+        Raises `BadBatch` (nothing stored) for a batch the database refuses, ``ValueError`` for an unknown
+        board, `StoreUnavailable` when the database cannot commit now."""
     async def board_counts(self) -> list[BoardCounts]: ...
+    async def latest_telemetry(self, tags: Sequence[str] | None = None) -> dict[str, TagTelemetry]:
+        """The newest telemetry row per tag (by board time within the newest batch)."""
     async def seq_holes(self, board: str | None = None) -> list[SeqHole]: ...
 
     # clock, heartbeats, events
@@ -206,7 +270,10 @@ class Store(Protocol):
     async def readings(self, t_from: float, t_to: float, boards: Sequence[str] | None = None,
                        tags: Sequence[str] | None = None) -> ReadingRows: ...
     async def delete_readings_before(self, t: float, chunk: int = 10_000) -> int:
-        """Remove raw readings older than ``t`` in bounded chunks; returns how many went."""
+        """Remove raw readings older than ``t`` in bounded chunks; returns how many went.
+
+        Telemetry rows and clock samples older than ``t`` go too (not counted); batch headers stay,
+        because dedup keys never expire while the board exists."""
 
     def exclusive(self, name: str) -> AbstractAsyncContextManager[bool]:
         """Run-once work across collectors: yields True if this process holds the lock ``name``."""
@@ -223,6 +290,89 @@ async def open_store(url: str, **options: Any) -> Store:
     return await SqliteStore.open(path, **options)
 
 
-__all__ = ["AsyncIterator", "Board", "BoardCounts", "Calibration", "ClockSample", "Enrollment", "Event",
-           "Heartbeat", "IngestBatch", "IngestResult", "IngestStatus", "ReadingRows", "SeqHole", "Store",
-           "StoreUnavailable", "open_store"]
+__all__ = ["AsyncIterator", "BadBatch", "Board", "BoardCounts", "Calibration", "ClockSample", "Enrollment",
+           "EnrollmentReason", "EnrollmentRefused", "Event", "Heartbeat", "IngestBatch", "IngestResult",
+           "IngestStatus", "ReadingRows", "SchemaTooNew", "SeqHole", "Store", "StoreError", "StoreUnavailable",
+           "TagTelemetry", "open_store"]
+
+
+# ---------------------------------------------------------------------------------------------------------
+# Shared by the backends (not part of the interface).
+
+def check_batch(batch: IngestBatch) -> int:
+    """
+    Check a batch's shape before it reaches the database; returns its offset in tenths of a dB.
+
+    Value ranges (``rssi_dd``, ``seq``) are left to the schema's CHECK constraints, the last line behind
+    the API's validation; a violation there rolls the batch back whole.
+
+    Raises:
+        BadBatch: naming the field.
+    """
+    for name in ("board", "boot", "epoch", "digest"):
+        v = getattr(batch, name)
+        if not isinstance(v, str) or not v:
+            raise BadBatch(name, f"must be a non-empty string, got {v!r}")
+    if not isinstance(batch.seq, int) or isinstance(batch.seq, bool):
+        raise BadBatch("seq", f"must be an integer, got {batch.seq!r}")
+    n = len(batch.t_board_ms)
+    for name in ("tags", "t_collector", "rssi_dd"):
+        if len(getattr(batch, name)) != n:
+            raise BadBatch(name, f"has {len(getattr(batch, name))} entries, t_board_ms has {n}")
+    if n and not np.all(np.isfinite(np.asarray(batch.t_collector, dtype=np.float64))):
+        raise BadBatch("t_collector", "must be finite")
+    if batch.gap is not None:
+        if n:
+            raise BadBatch("gap", "a gap record carries no readings")
+        for k in ("first_seq", "last_seq", "readings"):
+            v = batch.gap.get(k)
+            if not isinstance(v, int) or isinstance(v, bool) or v < 0:
+                raise BadBatch(f"gap.{k}", f"must be a non-negative integer, got {v!r}")
+        if batch.gap["last_seq"] < batch.gap["first_seq"]:
+            raise BadBatch("gap.last_seq", "must be >= first_seq")
+    for i, t in enumerate(batch.telemetry):
+        if not isinstance(t, dict) or not isinstance(t.get("tag"), str) or not t["tag"]:
+            raise BadBatch(f"telemetry[{i}].tag", "must be a tag identity string")
+        if not isinstance(t.get("t_ms"), int) or isinstance(t.get("t_ms"), bool):
+            raise BadBatch(f"telemetry[{i}].t_ms", f"must be an integer, got {t.get('t_ms')!r}")
+    if not np.isfinite(batch.offset_db):
+        raise BadBatch("offset_db", f"must be finite, got {batch.offset_db!r}")
+    return round(batch.offset_db * 10)
+
+
+def batch_tag_names(batch: IngestBatch) -> set[str]:
+    """Every tag identity a batch mentions (readings and telemetry)."""
+    names = set(np.unique(batch.tags).tolist()) if len(batch.tags) else set()
+    names.update(t["tag"] for t in batch.telemetry)
+    return names
+
+
+def reading_tag_ids(batch: IngestBatch, tag_ids: dict[str, int]) -> np.ndarray:
+    """The interned id of every reading's tag, in reading order."""
+    uniq, inverse = np.unique(batch.tags, return_inverse=True)
+    ids = np.fromiter((tag_ids[u] for u in uniq), dtype=np.int64, count=len(uniq))
+    return ids[inverse]
+
+
+TELEMETRY_FIELDS = ("battery_mv", "temperature_c", "adv_count", "uptime_s")
+
+# Seq holes per (board, epoch): every batch row covers its own seq, a gap record also covers
+# [gap_first, gap_last]. Sorted by start, an interval that begins past the furthest seq reached by
+# the intervals before it leaves a hole. Holes before the first seq ever received are not reported
+# (an epoch's first seq is the agent's business). ``{board}`` is a backend-specific filter.
+SEQ_HOLES_SQL = """
+WITH iv AS (
+    SELECT board_id, epoch, seq AS lo, seq AS hi FROM batches WHERE {board}
+    UNION ALL
+    SELECT board_id, epoch, gap_first, gap_last FROM batches WHERE gap_first IS NOT NULL AND {board}
+), w AS (
+    SELECT board_id, epoch, lo,
+           max(hi) OVER (PARTITION BY board_id, epoch ORDER BY lo, hi
+                         ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING) AS reach
+    FROM iv
+)
+SELECT b.name, w.epoch, w.reach + 1, w.lo - 1
+FROM w JOIN boards b ON b.id = w.board_id
+WHERE w.reach IS NOT NULL AND w.lo > w.reach + 1
+ORDER BY b.name, w.epoch, w.lo
+"""

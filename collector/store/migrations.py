@@ -1,0 +1,347 @@
+"""
+Versioned schema migrations for both backends.
+
+Each migration has a number; a database records what it has in ``schema_version`` (one row per applied
+migration). Opening a store applies the missing ones in order, each in its own transaction together with
+its ``schema_version`` row (both SQLite and PostgreSQL have transactional DDL, so a failing migration
+leaves the database at the previous version, not half-way). A database whose version is higher than the
+newest migration known here is refused with `SchemaTooNew`.
+
+Layout choices, the same in both dialects:
+
+- ``readings`` is the big table (order of 100 boards × 500 tags × 1 Hz). It holds small integer ids
+  (``board_id``, ``tag_id``, ``batch_id``) instead of names; the boot id and the offset come from the
+  batch row. ``bench/ingest_store.py`` measures what the interning saves.
+- ``tags`` both interns every identity seen in a batch (``added_at`` NULL) and registers tags
+  (``added_at`` set; ``retired_at`` set when retired).
+- ``batches`` keeps every batch header, gap records included; its unique (board_id, epoch, seq) key is
+  the dedup key and is never deleted while the board exists.
+- Per-board counters live on ``boards`` and are bumped in the ingest transaction, so status pages do
+  not sum the batch table.
+"""
+
+from __future__ import annotations
+
+import sqlite3
+from dataclasses import dataclass
+from typing import Any
+
+from collector.store import SchemaTooNew
+
+
+@dataclass(frozen=True, slots=True)
+class Migration:
+    """One numbered schema step."""
+
+    version: int
+    name: str
+    statements: tuple[str, ...]
+
+
+SQLITE: tuple[Migration, ...] = (
+    Migration(1, "boards, enrollment, tags, calibration, events, heartbeats, clock samples", (
+        """CREATE TABLE boards (
+            id INTEGER PRIMARY KEY,
+            name TEXT NOT NULL UNIQUE,
+            room TEXT NOT NULL,
+            floor TEXT,
+            created_at REAL NOT NULL,
+            enrolled_at REAL,
+            fingerprint TEXT,
+            offset_db REAL NOT NULL DEFAULT 0,
+            retired_at REAL,
+            token_hash TEXT UNIQUE,
+            last_boot TEXT,
+            last_boot_at REAL,
+            readings_total INTEGER NOT NULL DEFAULT 0,
+            batches_total INTEGER NOT NULL DEFAULT 0,
+            gap_readings INTEGER NOT NULL DEFAULT 0,
+            last_batch_at REAL)""",
+        """CREATE TABLE enrollments (
+            code_hash TEXT PRIMARY KEY,
+            board_id INTEGER NOT NULL REFERENCES boards(id),
+            expires_at REAL NOT NULL,
+            used_at REAL)""",
+        "CREATE INDEX enrollments_board ON enrollments(board_id)",
+        """CREATE TABLE calibrations (
+            id INTEGER PRIMARY KEY,
+            board_id INTEGER NOT NULL REFERENCES boards(id),
+            at REAL NOT NULL,
+            offset_db REAL NOT NULL,
+            spread_db REAL NOT NULL,
+            samples INTEGER NOT NULL,
+            reference_tag TEXT NOT NULL,
+            distance_m REAL NOT NULL,
+            fingerprint TEXT)""",
+        "CREATE INDEX calibrations_board ON calibrations(board_id, at)",
+        """CREATE TABLE tags (
+            id INTEGER PRIMARY KEY,
+            tag TEXT NOT NULL UNIQUE,
+            added_at REAL,
+            retired_at REAL)""",
+        # AUTOINCREMENT: event ids are a cursor (events(since_id=...)), so they must never be reused.
+        """CREATE TABLE events (
+            id INTEGER PRIMARY KEY AUTOINCREMENT,
+            at REAL NOT NULL,
+            board_id INTEGER REFERENCES boards(id),
+            kind TEXT NOT NULL,
+            detail TEXT NOT NULL)""",
+        "CREATE INDEX events_board ON events(board_id, id)",
+        """CREATE TABLE heartbeats (
+            id INTEGER PRIMARY KEY,
+            board_id INTEGER NOT NULL REFERENCES boards(id),
+            at REAL NOT NULL,
+            boot TEXT NOT NULL,
+            stats TEXT NOT NULL)""",
+        "CREATE INDEX heartbeats_board_at ON heartbeats(board_id, at)",
+        """CREATE TABLE clock_samples (
+            id INTEGER PRIMARY KEY,
+            board_id INTEGER NOT NULL REFERENCES boards(id),
+            boot TEXT NOT NULL,
+            t1 REAL NOT NULL, t2 REAL NOT NULL, t3 REAL NOT NULL, t4 REAL NOT NULL)""",
+        "CREATE INDEX clock_samples_board ON clock_samples(board_id, boot, t2)",
+        "CREATE INDEX clock_samples_t2 ON clock_samples(t2)",
+    )),
+    Migration(2, "batches, readings, telemetry", (
+        """CREATE TABLE batches (
+            id INTEGER PRIMARY KEY,
+            board_id INTEGER NOT NULL REFERENCES boards(id),
+            epoch TEXT NOT NULL,
+            seq INTEGER NOT NULL CONSTRAINT seq_non_negative CHECK (seq >= 0),
+            digest TEXT NOT NULL,
+            boot TEXT NOT NULL,
+            n INTEGER NOT NULL,
+            received_at REAL NOT NULL,
+            offset_dd INTEGER NOT NULL,
+            gap_first INTEGER,
+            gap_last INTEGER,
+            gap_readings INTEGER,
+            gap_reason TEXT,
+            UNIQUE (board_id, epoch, seq))""",
+        # No foreign keys on the big table: SQLite would check each one per row; ids come from the
+        # same transaction that inserts the batch.
+        """CREATE TABLE readings (
+            batch_id INTEGER NOT NULL,
+            board_id INTEGER NOT NULL,
+            tag_id INTEGER NOT NULL,
+            t_board_ms INTEGER NOT NULL,
+            t_collector REAL NOT NULL,
+            rssi_dd INTEGER NOT NULL CONSTRAINT rssi_dd_range CHECK (rssi_dd BETWEEN -2000 AND 500))""",
+        "CREATE INDEX readings_t ON readings(t_collector)",
+        """CREATE TABLE telemetry (
+            id INTEGER PRIMARY KEY,
+            batch_id INTEGER NOT NULL REFERENCES batches(id),
+            board_id INTEGER NOT NULL,
+            tag_id INTEGER NOT NULL,
+            at REAL NOT NULL,
+            t_board_ms INTEGER NOT NULL,
+            battery_mv REAL, temperature_c REAL, adv_count REAL, uptime_s REAL)""",
+        "CREATE INDEX telemetry_tag ON telemetry(tag_id, at)",
+        "CREATE INDEX telemetry_at ON telemetry(at)",
+    )),
+)
+
+
+POSTGRES: tuple[Migration, ...] = (
+    Migration(1, "boards, enrollment, tags, calibration, events, heartbeats, clock samples", (
+        # smallint board ids: readings.board_id is smallint, which keeps a readings row at 56 bytes.
+        """CREATE TABLE boards (
+            id smallint GENERATED BY DEFAULT AS IDENTITY PRIMARY KEY,
+            name text NOT NULL UNIQUE,
+            room text NOT NULL,
+            floor text,
+            created_at float8 NOT NULL,
+            enrolled_at float8,
+            fingerprint text,
+            offset_db float8 NOT NULL DEFAULT 0,
+            retired_at float8,
+            token_hash text UNIQUE,
+            last_boot text,
+            last_boot_at float8,
+            readings_total bigint NOT NULL DEFAULT 0,
+            batches_total bigint NOT NULL DEFAULT 0,
+            gap_readings bigint NOT NULL DEFAULT 0,
+            last_batch_at float8)""",
+        """CREATE TABLE enrollments (
+            code_hash text PRIMARY KEY,
+            board_id smallint NOT NULL REFERENCES boards(id),
+            expires_at float8 NOT NULL,
+            used_at float8)""",
+        "CREATE INDEX enrollments_board ON enrollments(board_id)",
+        """CREATE TABLE calibrations (
+            id bigint GENERATED BY DEFAULT AS IDENTITY PRIMARY KEY,
+            board_id smallint NOT NULL REFERENCES boards(id),
+            at float8 NOT NULL,
+            offset_db float8 NOT NULL,
+            spread_db float8 NOT NULL,
+            samples integer NOT NULL,
+            reference_tag text NOT NULL,
+            distance_m float8 NOT NULL,
+            fingerprint text)""",
+        "CREATE INDEX calibrations_board ON calibrations(board_id, at)",
+        """CREATE TABLE tags (
+            id integer GENERATED BY DEFAULT AS IDENTITY PRIMARY KEY,
+            tag text NOT NULL UNIQUE,
+            added_at float8,
+            retired_at float8)""",
+        """CREATE TABLE events (
+            id bigint GENERATED BY DEFAULT AS IDENTITY PRIMARY KEY,
+            at float8 NOT NULL,
+            board_id smallint REFERENCES boards(id),
+            kind text NOT NULL,
+            detail text NOT NULL)""",
+        "CREATE INDEX events_board ON events(board_id, id)",
+        """CREATE TABLE heartbeats (
+            id bigint GENERATED BY DEFAULT AS IDENTITY PRIMARY KEY,
+            board_id smallint NOT NULL REFERENCES boards(id),
+            at float8 NOT NULL,
+            boot text NOT NULL,
+            stats text NOT NULL)""",
+        "CREATE INDEX heartbeats_board_at ON heartbeats(board_id, at)",
+        """CREATE TABLE clock_samples (
+            id bigint GENERATED BY DEFAULT AS IDENTITY PRIMARY KEY,
+            board_id smallint NOT NULL REFERENCES boards(id),
+            boot text NOT NULL,
+            t1 float8 NOT NULL, t2 float8 NOT NULL, t3 float8 NOT NULL, t4 float8 NOT NULL)""",
+        "CREATE INDEX clock_samples_board ON clock_samples(board_id, boot, t2)",
+        "CREATE INDEX clock_samples_t2 ON clock_samples(t2)",
+    )),
+    Migration(2, "batches, readings, telemetry", (
+        """CREATE TABLE batches (
+            id bigint GENERATED BY DEFAULT AS IDENTITY PRIMARY KEY,
+            board_id smallint NOT NULL REFERENCES boards(id),
+            epoch text NOT NULL,
+            seq bigint NOT NULL CONSTRAINT seq_non_negative CHECK (seq >= 0),
+            digest text NOT NULL,
+            boot text NOT NULL,
+            n integer NOT NULL,
+            received_at float8 NOT NULL,
+            offset_dd smallint NOT NULL,
+            gap_first bigint,
+            gap_last bigint,
+            gap_readings bigint,
+            gap_reason text,
+            UNIQUE (board_id, epoch, seq))""",
+        # Column order follows alignment (8-byte, then 4, then 2) so a row has no padding.
+        # float8 compares NaN greater than every number, so the upper bound also keeps NaN out.
+        """CREATE TABLE readings (
+            t_collector float8 NOT NULL
+                CONSTRAINT t_collector_finite CHECK (t_collector > '-Infinity' AND t_collector < 'Infinity'),
+            t_board_ms bigint NOT NULL,
+            batch_id bigint NOT NULL,
+            tag_id integer NOT NULL,
+            board_id smallint NOT NULL,
+            rssi_dd smallint NOT NULL CONSTRAINT rssi_dd_range CHECK (rssi_dd BETWEEN -2000 AND 500))""",
+        # BRIN: readings arrive roughly in collector-time order, so a block-range index answers time
+        # ranges and retention at a tiny fraction of a b-tree's size and insert cost.
+        "CREATE INDEX readings_t ON readings USING brin (t_collector) WITH (pages_per_range = 32)",
+        """CREATE TABLE telemetry (
+            id bigint GENERATED BY DEFAULT AS IDENTITY PRIMARY KEY,
+            batch_id bigint NOT NULL REFERENCES batches(id),
+            board_id smallint NOT NULL,
+            tag_id integer NOT NULL,
+            at float8 NOT NULL,
+            t_board_ms bigint NOT NULL,
+            battery_mv float8, temperature_c float8, adv_count float8, uptime_s float8)""",
+        "CREATE INDEX telemetry_tag ON telemetry(tag_id, at)",
+        "CREATE INDEX telemetry_at ON telemetry(at)",
+    )),
+)
+
+_VERSION_TABLE = "CREATE TABLE IF NOT EXISTS schema_version (version integer PRIMARY KEY, name text NOT NULL, applied_at text NOT NULL)"
+
+
+def latest(migrations: tuple[Migration, ...]) -> int:
+    """The version a fully migrated database has."""
+    return max((m.version for m in migrations), default=0)
+
+
+def _check_order(migrations: tuple[Migration, ...]) -> None:
+    versions = [m.version for m in migrations]
+    if versions != list(range(1, len(versions) + 1)):
+        raise ValueError(f"migrations must be numbered 1..n in order, got {versions}")
+
+
+def migrate_sqlite(con: sqlite3.Connection, migrations: tuple[Migration, ...] = SQLITE,
+                   upto: int | None = None) -> int:
+    """
+    Bring a SQLite database (connection in autocommit mode) up to date.
+
+    Args:
+        con: a connection opened with ``isolation_level=None``; used from the calling thread only.
+        migrations: the numbered steps (tests pass their own).
+        upto: stop after this version (tests build an older database with it).
+
+    Returns:
+        The version the database is at afterwards.
+
+    Raises:
+        SchemaTooNew: the database has a version above the newest known migration.
+    """
+    _check_order(migrations)
+    target = latest(migrations) if upto is None else upto
+    con.execute("BEGIN IMMEDIATE")
+    try:
+        con.execute(_VERSION_TABLE)
+        current = con.execute("SELECT coalesce(max(version), 0) FROM schema_version").fetchone()[0]
+        con.execute("COMMIT")
+    except BaseException:
+        con.execute("ROLLBACK")
+        raise
+    if current > latest(migrations):
+        raise SchemaTooNew(current, latest(migrations))
+    for m in migrations:
+        if m.version <= current or m.version > target:
+            continue
+        con.execute("BEGIN IMMEDIATE")
+        try:
+            # Re-read inside the write lock: another process may have migrated meanwhile.
+            now = con.execute("SELECT coalesce(max(version), 0) FROM schema_version").fetchone()[0]
+            if now >= m.version:
+                con.execute("COMMIT")
+                continue
+            for stmt in m.statements:
+                con.execute(stmt)
+            con.execute("INSERT INTO schema_version (version, name, applied_at) VALUES (?, ?, datetime('now'))",
+                        (m.version, m.name))
+            con.execute("COMMIT")
+        except BaseException:
+            con.execute("ROLLBACK")
+            raise
+        current = m.version
+    return current
+
+
+# A fixed advisory-lock key so two collectors starting together migrate one after the other.
+_MIGRATION_LOCK_KEY = 0x6C70_6D69_6772  # "lpmigr"
+
+
+async def migrate_postgres(con: Any, migrations: tuple[Migration, ...] = POSTGRES, upto: int | None = None) -> int:
+    """
+    Bring a PostgreSQL schema (the connection's ``search_path``) up to date; see `migrate_sqlite`.
+
+    ``con`` is an asyncpg connection. Each migration runs in its own transaction holding a
+    transaction-scoped advisory lock, so collectors starting at once do not race.
+    """
+    _check_order(migrations)
+    target = latest(migrations) if upto is None else upto
+    async with con.transaction():
+        await con.execute("SELECT pg_advisory_xact_lock($1)", _MIGRATION_LOCK_KEY)
+        await con.execute(_VERSION_TABLE)
+        current = await con.fetchval("SELECT coalesce(max(version), 0) FROM schema_version")
+    if current > latest(migrations):
+        raise SchemaTooNew(current, latest(migrations))
+    for m in migrations:
+        if m.version <= current or m.version > target:
+            continue
+        async with con.transaction():
+            await con.execute("SELECT pg_advisory_xact_lock($1)", _MIGRATION_LOCK_KEY)
+            now = await con.fetchval("SELECT coalesce(max(version), 0) FROM schema_version")
+            if now >= m.version:
+                continue
+            for stmt in m.statements:
+                await con.execute(stmt)
+            await con.execute("INSERT INTO schema_version (version, name, applied_at) VALUES ($1, $2, now()::text)",
+                              m.version, m.name)
+        current = m.version
+    return current

@@ -1,0 +1,680 @@
+"""
+The embedded store: one SQLite file in WAL mode.
+
+Threads, so the event loop never blocks on the disk:
+
+- one **writer** thread owns the only writing connection; every write runs there, in submission order;
+- one **reader** thread owns a second connection; WAL lets it read while the writer commits.
+
+Ingest uses **group commit**: batches that arrive while a commit is running wait in a queue and are
+written together in the next transaction, each inside its own SAVEPOINT, so a batch the database refuses
+is rolled back alone while the others in its group are kept. Every caller's future resolves only after
+the group's COMMIT returned with ``synchronous=FULL`` (the WAL is fsynced on every commit). One fsync per
+group instead of one per batch is what lets a hundred boards share one SD card or disk.
+
+A write lock held elsewhere past ``busy_timeout_s``, a full disk or an I/O error → `StoreUnavailable`.
+One collector per SQLite file: `exclusive` is an in-process lock.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import json
+import math
+import sqlite3
+from collections.abc import AsyncIterator, Callable, Sequence
+from concurrent.futures import ThreadPoolExecutor
+from itertools import repeat
+from pathlib import Path
+from typing import Any, TypeVar
+
+import numpy as np
+import structlog
+
+from collector.store import (
+    SEQ_HOLES_SQL,
+    TELEMETRY_FIELDS,
+    BadBatch,
+    Board,
+    BoardCounts,
+    Calibration,
+    ClockSample,
+    Enrollment,
+    EnrollmentReason,
+    EnrollmentRefused,
+    Event,
+    Heartbeat,
+    IngestBatch,
+    IngestResult,
+    IngestStatus,
+    ReadingRows,
+    SeqHole,
+    StoreError,
+    StoreUnavailable,
+    TagTelemetry,
+    batch_tag_names,
+    check_batch,
+    reading_tag_ids,
+)
+from collector.store.migrations import migrate_sqlite
+
+log = structlog.get_logger("collector.store.sqlite")
+T = TypeVar("T")
+
+# Result codes that mean "the storage cannot do it now", not "this request is wrong".
+_UNAVAILABLE = {"SQLITE_BUSY", "SQLITE_LOCKED", "SQLITE_FULL", "SQLITE_IOERR", "SQLITE_CANTOPEN",
+                "SQLITE_READONLY", "SQLITE_PROTOCOL", "SQLITE_NOMEM", "SQLITE_PERM", "SQLITE_NOLFS"}
+
+_BOARD_COLS = "name, room, floor, created_at, enrolled_at, fingerprint, offset_db, retired_at"
+_READING_DTYPE = np.dtype([("board_id", np.int64), ("tag_id", np.int64), ("t_collector", np.float64),
+                           ("rssi_dd", np.int32), ("offset_dd", np.int32)])
+
+
+def _unavailable(e: sqlite3.Error) -> bool:
+    name = getattr(e, "sqlite_errorname", "") or ""
+    base = "_".join(name.split("_")[:2])  # SQLITE_IOERR_FSYNC -> SQLITE_IOERR
+    return base in _UNAVAILABLE or "locked" in str(e)
+
+
+def _json(obj: dict[str, Any] | None) -> str | None:
+    return None if obj is None else json.dumps(obj, sort_keys=True)
+
+
+def _board(row: Sequence[Any]) -> Board:
+    name, room, floor, created_at, enrolled_at, fp, offset_db, retired_at = row
+    return Board(name, room, floor, created_at, enrolled_at, json.loads(fp) if fp else None, offset_db, retired_at)
+
+
+class SqliteStore:
+    """
+    The `Store` on one SQLite file.
+
+    Attributes:
+        url: ``sqlite:///<path>``.
+        path: the database file.
+        ingest_commits: how many group transactions ingest has committed (≤ batches ingested).
+        ingest_batches: how many batches went through those commits (stored, duplicate, conflict or refused).
+    """
+
+    def __init__(self, path: Path, *, busy_timeout_s: float, heartbeat_history: int,
+                 max_group_batches: int, max_group_readings: int) -> None:
+        self.path = path
+        self.url = f"sqlite:///{path}"
+        self.ingest_commits = 0
+        self.ingest_batches = 0
+        self._busy_timeout_s = busy_timeout_s
+        self._heartbeat_history = heartbeat_history
+        self._max_group_batches = max_group_batches
+        self._max_group_readings = max_group_readings
+        self._wexec = ThreadPoolExecutor(1, thread_name_prefix="lp-sqlite-writer")
+        self._rexec = ThreadPoolExecutor(1, thread_name_prefix="lp-sqlite-reader")
+        self._wcon: sqlite3.Connection | None = None
+        self._rcon: sqlite3.Connection | None = None
+        self._closed = False
+        self._pending: list[tuple[IngestBatch, asyncio.Future[IngestResult]]] = []
+        self._flusher: asyncio.Task[None] | None = None
+        self._locks: dict[str, asyncio.Lock] = {}
+        # name -> id caches; boards and tags are never deleted, so ids never change. The tag cache is
+        # touched by the writer thread only.
+        self._board_ids: dict[str, int] = {}
+        self._tag_ids: dict[str, int] = {}
+
+    # -- life cycle ------------------------------------------------------------------------------------
+
+    @classmethod
+    async def open(cls, path: str | Path, *, busy_timeout_s: float = 5.0, heartbeat_history: int = 2880,
+                   max_group_batches: int = 512, max_group_readings: int = 500_000) -> SqliteStore:
+        """
+        Open (create, migrate) the store in ``path``.
+
+        Args:
+            path: the database file; its directory must exist.
+            busy_timeout_s: how long a write waits for a lock held by another connection before
+                `StoreUnavailable`, seconds.
+            heartbeat_history: heartbeats kept per board (2880 = one day at 30 s).
+            max_group_batches / max_group_readings: bounds on one group commit.
+
+        Raises:
+            StoreUnavailable: the file cannot be opened or written.
+            SchemaTooNew: the file was migrated by a newer listenpost.
+            StoreError: the file is not a listenpost database SQLite can read.
+        """
+        if busy_timeout_s <= 0 or heartbeat_history < 1 or max_group_batches < 1 or max_group_readings < 1:
+            raise ValueError("busy_timeout_s, heartbeat_history, max_group_batches and max_group_readings must be positive")
+        store = cls(Path(path), busy_timeout_s=busy_timeout_s, heartbeat_history=heartbeat_history,
+                    max_group_batches=max_group_batches, max_group_readings=max_group_readings)
+        try:
+            await store._write(store._open_writer)
+            await store._read(store._open_reader)
+        except BaseException:
+            await store._shutdown()
+            raise
+        log.info("store_opened", backend="sqlite", path=str(store.path))
+        return store
+
+    def _connect(self) -> sqlite3.Connection:
+        con = sqlite3.connect(self.path, isolation_level=None, timeout=self._busy_timeout_s,
+                              check_same_thread=True)
+        con.execute(f"PRAGMA busy_timeout = {int(self._busy_timeout_s * 1000)}")
+        return con
+
+    def _open_writer(self) -> None:
+        con = self._connect()
+        try:
+            mode = con.execute("PRAGMA journal_mode = WAL").fetchone()[0]
+            if mode.lower() != "wal":
+                raise StoreError(f"{self.path}: cannot switch to WAL mode (journal_mode is {mode!r})")
+            # FULL: in WAL mode this fsyncs the WAL on every commit, so a 200 means durable.
+            con.execute("PRAGMA synchronous = FULL")
+            con.execute("PRAGMA foreign_keys = ON")
+            migrate_sqlite(con)
+            self._board_ids.update(con.execute("SELECT name, id FROM boards").fetchall())
+        except BaseException:
+            con.close()
+            raise
+        self._wcon = con
+
+    def _open_reader(self) -> None:
+        con = self._connect()
+        con.execute("PRAGMA query_only = ON")
+        self._rcon = con
+
+    async def close(self) -> None:
+        """Finish queued ingests, then close both connections."""
+        if self._closed:
+            return
+        self._closed = True
+        if self._flusher is not None:
+            with contextlib.suppress(Exception):
+                await self._flusher
+        await self._shutdown()
+        log.info("store_closed", backend="sqlite", path=str(self.path))
+
+    async def _shutdown(self) -> None:
+        loop = asyncio.get_running_loop()
+
+        def close_w() -> None:
+            if self._wcon is not None:
+                self._wcon.close()
+                self._wcon = None
+
+        def close_r() -> None:
+            if self._rcon is not None:
+                self._rcon.close()
+                self._rcon = None
+
+        await loop.run_in_executor(self._wexec, close_w)
+        await loop.run_in_executor(self._rexec, close_r)
+        self._wexec.shutdown(wait=False)
+        self._rexec.shutdown(wait=False)
+
+    # -- thread plumbing -------------------------------------------------------------------------------
+
+    async def _run(self, executor: ThreadPoolExecutor, fn: Callable[..., T], *args: Any) -> T:
+        def guarded() -> T:
+            try:
+                return fn(*args)
+            except sqlite3.Error as e:
+                if _unavailable(e):
+                    raise StoreUnavailable(f"{self.path}: {e}") from e
+                if isinstance(e, sqlite3.DatabaseError) and not isinstance(e, sqlite3.IntegrityError | sqlite3.OperationalError):
+                    raise StoreError(f"{self.path}: {e}") from e
+                raise
+        return await asyncio.get_running_loop().run_in_executor(executor, guarded)
+
+    async def _write(self, fn: Callable[..., T], *args: Any) -> T:
+        return await self._run(self._wexec, fn, *args)
+
+    async def _read(self, fn: Callable[..., T], *args: Any) -> T:
+        return await self._run(self._rexec, fn, *args)
+
+    def _check_open(self) -> None:
+        if self._closed:
+            raise StoreUnavailable(f"{self.path}: store is closed")
+
+    async def _wtx(self, fn: Callable[[sqlite3.Connection], T]) -> T:
+        """Run ``fn(con)`` in one write transaction on the writer thread."""
+        self._check_open()
+
+        def job() -> T:
+            con = self._wcon
+            assert con is not None
+            con.execute("BEGIN IMMEDIATE")
+            try:
+                out = fn(con)
+                con.execute("COMMIT")
+                return out
+            except BaseException:
+                if con.in_transaction:
+                    con.execute("ROLLBACK")
+                raise
+        return await self._write(job)
+
+    async def _query(self, sql: str, params: Sequence[Any] = ()) -> list[Any]:
+        self._check_open()
+
+        def job() -> list[Any]:
+            assert self._rcon is not None
+            return self._rcon.execute(sql, params).fetchall()
+        return await self._read(job)
+
+    def _board_id(self, con: sqlite3.Connection, name: str) -> int:
+        bid = self._board_ids.get(name)
+        if bid is None:
+            row = con.execute("SELECT id FROM boards WHERE name = ?", (name,)).fetchone()
+            if row is None:
+                raise ValueError(f"unknown board {name!r}")
+            bid = self._board_ids[name] = row[0]
+        return bid
+
+    # -- boards and enrollment -------------------------------------------------------------------------
+
+    async def add_board(self, board: Board, enrollment: Enrollment) -> None:
+        if enrollment.board != board.name:
+            raise ValueError(f"enrollment.board {enrollment.board!r} is not the new board {board.name!r}")
+
+        def tx(con: sqlite3.Connection) -> None:
+            try:
+                cur = con.execute(
+                    f"INSERT INTO boards ({_BOARD_COLS}) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                    (board.name, board.room, board.floor, board.created_at, board.enrolled_at,
+                     _json(board.fingerprint), board.offset_db, board.retired_at))
+            except sqlite3.IntegrityError as e:
+                raise ValueError(f"board {board.name!r} already exists") from e
+            con.execute("INSERT INTO enrollments (code_hash, board_id, expires_at, used_at) VALUES (?, ?, ?, ?)",
+                        (enrollment.code_hash, cur.lastrowid, enrollment.expires_at, enrollment.used_at))
+        await self._wtx(tx)
+
+    async def get_board(self, name: str) -> Board | None:
+        rows = await self._query(f"SELECT {_BOARD_COLS} FROM boards WHERE name = ?", (name,))
+        return _board(rows[0]) if rows else None
+
+    async def list_boards(self, include_retired: bool = True) -> list[Board]:
+        where = "" if include_retired else "WHERE retired_at IS NULL"
+        return [_board(r) for r in await self._query(f"SELECT {_BOARD_COLS} FROM boards {where} ORDER BY name")]
+
+    async def retire_board(self, name: str, at: float) -> bool:
+        def tx(con: sqlite3.Connection) -> bool:
+            cur = con.execute("UPDATE boards SET retired_at = ? WHERE name = ? AND retired_at IS NULL", (at, name))
+            return cur.rowcount == 1
+        return await self._wtx(tx)
+
+    async def new_enrollment(self, enrollment: Enrollment) -> None:
+        def tx(con: sqlite3.Connection) -> None:
+            bid = self._board_id(con, enrollment.board)
+            # Older unused codes stop working: a re-flash invalidates whatever was printed before.
+            con.execute("DELETE FROM enrollments WHERE board_id = ? AND used_at IS NULL", (bid,))
+            con.execute("INSERT INTO enrollments (code_hash, board_id, expires_at, used_at) VALUES (?, ?, ?, ?)",
+                        (enrollment.code_hash, bid, enrollment.expires_at, enrollment.used_at))
+        await self._wtx(tx)
+
+    async def get_enrollment(self, code_hash: str) -> Enrollment | None:
+        rows = await self._query("SELECT b.name, e.code_hash, e.expires_at, e.used_at FROM enrollments e "
+                                 "JOIN boards b ON b.id = e.board_id WHERE e.code_hash = ?", (code_hash,))
+        return Enrollment(*rows[0]) if rows else None
+
+    async def complete_enrollment(self, code_hash: str, token_hash: str, fingerprint: dict[str, Any],
+                                  at: float) -> Board:
+        def tx(con: sqlite3.Connection) -> Board:
+            row = con.execute("SELECT board_id, expires_at, used_at FROM enrollments WHERE code_hash = ?",
+                              (code_hash,)).fetchone()
+            if row is None:
+                raise EnrollmentRefused(EnrollmentReason.UNKNOWN)
+            bid, expires_at, used_at = row
+            if used_at is not None:
+                raise EnrollmentRefused(EnrollmentReason.USED)
+            if at > expires_at:
+                raise EnrollmentRefused(EnrollmentReason.EXPIRED)
+            con.execute("UPDATE enrollments SET used_at = ? WHERE code_hash = ?", (at, code_hash))
+            # A re-enrolled board gets a new token; the old one stops matching.
+            con.execute("UPDATE boards SET token_hash = ?, fingerprint = ?, enrolled_at = ? WHERE id = ?",
+                        (token_hash, _json(fingerprint), at, bid))
+            return _board(con.execute(f"SELECT {_BOARD_COLS} FROM boards WHERE id = ?", (bid,)).fetchone())
+        return await self._wtx(tx)
+
+    async def board_for_token(self, token_hash: str) -> Board | None:
+        rows = await self._query(f"SELECT {_BOARD_COLS} FROM boards WHERE token_hash = ?", (token_hash,))
+        return _board(rows[0]) if rows else None
+
+    async def set_offset(self, calibration: Calibration) -> None:
+        c = calibration
+
+        def tx(con: sqlite3.Connection) -> None:
+            bid = self._board_id(con, c.board)
+            con.execute("INSERT INTO calibrations (board_id, at, offset_db, spread_db, samples, reference_tag, "
+                        "distance_m, fingerprint) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                        (bid, c.at, c.offset_db, c.spread_db, c.samples, c.reference_tag, c.distance_m,
+                         _json(c.fingerprint)))
+            con.execute("UPDATE boards SET offset_db = ? WHERE id = ?", (c.offset_db, bid))
+        await self._wtx(tx)
+
+    async def calibrations(self, board: str) -> list[Calibration]:
+        rows = await self._query(
+            "SELECT b.name, c.at, c.offset_db, c.spread_db, c.samples, c.reference_tag, c.distance_m, c.fingerprint "
+            "FROM calibrations c JOIN boards b ON b.id = c.board_id WHERE b.name = ? ORDER BY c.at, c.id", (board,))
+        return [Calibration(*r[:7], json.loads(r[7]) if r[7] else None) for r in rows]
+
+    # -- tags --------------------------------------------------------------------------------------------
+
+    async def add_tags(self, ids: Sequence[str], at: float) -> int:
+        wanted = sorted(set(ids))
+
+        def tx(con: sqlite3.Connection) -> int:
+            active = {r[0] for r in con.execute(
+                "SELECT tag FROM tags WHERE added_at IS NOT NULL AND retired_at IS NULL "
+                "AND tag IN (SELECT value FROM json_each(?))", (json.dumps(wanted),))}
+            con.executemany("INSERT INTO tags (tag, added_at) VALUES (?, ?) ON CONFLICT (tag) DO UPDATE SET "
+                            "added_at = coalesce(tags.added_at, excluded.added_at), retired_at = NULL",
+                            [(t, at) for t in wanted])
+            return len(wanted) - len(active)
+        return await self._wtx(tx)
+
+    async def retire_tags(self, ids: Sequence[str], at: float) -> int:
+        def tx(con: sqlite3.Connection) -> int:
+            cur = con.execute("UPDATE tags SET retired_at = ? WHERE added_at IS NOT NULL AND retired_at IS NULL "
+                              "AND tag IN (SELECT value FROM json_each(?))", (at, json.dumps(sorted(set(ids)))))
+            return cur.rowcount
+        return await self._wtx(tx)
+
+    async def list_tags(self, include_retired: bool = False) -> list[str]:
+        where = "added_at IS NOT NULL" + ("" if include_retired else " AND retired_at IS NULL")
+        return [r[0] for r in await self._query(f"SELECT tag FROM tags WHERE {where} ORDER BY tag")]
+
+    # -- ingest ------------------------------------------------------------------------------------------
+
+    async def ingest(self, batch: IngestBatch) -> IngestResult:
+        self._check_open()
+        check_batch(batch)
+        fut: asyncio.Future[IngestResult] = asyncio.get_running_loop().create_future()
+        # A caller cancelled while its group commits never reads the outcome; mark it retrieved.
+        fut.add_done_callback(lambda f: f.cancelled() or f.exception())
+        self._pending.append((batch, fut))
+        if self._flusher is None or self._flusher.done():
+            self._flusher = asyncio.create_task(self._flush(), name="sqlite-group-commit")
+        return await asyncio.shield(fut)
+
+    async def _flush(self) -> None:
+        """Write queued batches group by group until the queue is empty."""
+        while self._pending:
+            group: list[tuple[IngestBatch, asyncio.Future[IngestResult]]] = []
+            readings = 0
+            while self._pending and len(group) < self._max_group_batches and (
+                    not group or readings + self._pending[0][0].n <= self._max_group_readings):
+                item = self._pending.pop(0)
+                readings += item[0].n
+                group.append(item)
+            try:
+                results = await self._write(self._write_group, [b for b, _ in group])
+            except BaseException as e:  # the whole group failed to commit: nobody's batch is stored
+                err = e if isinstance(e, Exception) else StoreUnavailable(f"{self.path}: {e!r}")
+                for _, fut in group:
+                    if not fut.done():
+                        fut.set_exception(err)
+                if not isinstance(e, Exception):
+                    raise
+                continue
+            for (_, fut), res in zip(group, results, strict=True):
+                if fut.done():
+                    continue
+                if isinstance(res, BaseException):
+                    fut.set_exception(res)
+                else:
+                    fut.set_result(res)
+
+    def _write_group(self, batches: list[IngestBatch]) -> list[IngestResult | Exception]:
+        con = self._wcon
+        if con is None:
+            raise StoreUnavailable(f"{self.path}: store is closed")
+        con.execute("BEGIN IMMEDIATE")
+        new_tags: dict[str, int] = {}
+        try:
+            names: set[str] = set()
+            for b in batches:
+                names |= batch_tag_names(b)
+            new_tags = self._intern_tags(con, names)
+            tag_ids = self._tag_ids | new_tags
+            results: list[IngestResult | Exception] = []
+            for b in batches:
+                con.execute("SAVEPOINT batch")
+                try:
+                    results.append(self._insert_batch(con, b, tag_ids))
+                    con.execute("RELEASE batch")
+                except (sqlite3.IntegrityError, ValueError) as e:
+                    con.execute("ROLLBACK TO batch")
+                    con.execute("RELEASE batch")
+                    results.append(_refusal(b, e))
+            con.execute("COMMIT")
+        except BaseException:
+            if con.in_transaction:
+                with contextlib.suppress(sqlite3.Error):
+                    con.execute("ROLLBACK")
+            raise
+        self._tag_ids.update(new_tags)
+        self.ingest_commits += 1
+        self.ingest_batches += len(batches)
+        return results
+
+    def _intern_tags(self, con: sqlite3.Connection, names: set[str]) -> dict[str, int]:
+        """Ids for tags this process has not cached yet (inserted unregistered if new)."""
+        missing = sorted(names - self._tag_ids.keys())
+        if not missing:
+            return {}
+        con.executemany("INSERT INTO tags (tag) VALUES (?) ON CONFLICT (tag) DO NOTHING", [(t,) for t in missing])
+        return dict(con.execute("SELECT tag, id FROM tags WHERE tag IN (SELECT value FROM json_each(?))",
+                                (json.dumps(missing),)).fetchall())
+
+    def _insert_batch(self, con: sqlite3.Connection, b: IngestBatch, tag_ids: dict[str, int]) -> IngestResult:
+        offset_dd = check_batch(b)
+        bid = self._board_id(con, b.board)
+        row = con.execute("SELECT digest FROM batches WHERE board_id = ? AND epoch = ? AND seq = ?",
+                          (bid, b.epoch, b.seq)).fetchone()
+        if row is not None:
+            return IngestResult(IngestStatus.DUPLICATE if row[0] == b.digest else IngestStatus.CONFLICT, row[0])
+        gap = b.gap or {}
+        cur = con.execute(
+            "INSERT INTO batches (board_id, epoch, seq, digest, boot, n, received_at, offset_dd, gap_first, "
+            "gap_last, gap_readings, gap_reason) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            (bid, b.epoch, b.seq, b.digest, b.boot, b.n, b.received_at, offset_dd, gap.get("first_seq"),
+             gap.get("last_seq"), gap.get("readings"), gap.get("reason")))
+        batch_id = cur.lastrowid
+        if b.n:
+            con.executemany(
+                "INSERT INTO readings (batch_id, board_id, tag_id, t_board_ms, t_collector, rssi_dd) "
+                "VALUES (?, ?, ?, ?, ?, ?)",
+                zip(repeat(batch_id), repeat(bid), reading_tag_ids(b, tag_ids).tolist(),
+                    np.asarray(b.t_board_ms, dtype=np.int64).tolist(),
+                    np.asarray(b.t_collector, dtype=np.float64).tolist(),
+                    np.asarray(b.rssi_dd, dtype=np.int64).tolist()))
+        if b.telemetry:
+            con.executemany(
+                "INSERT INTO telemetry (batch_id, board_id, tag_id, at, t_board_ms, battery_mv, temperature_c, "
+                "adv_count, uptime_s) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                [(batch_id, bid, tag_ids[t["tag"]], b.received_at, t["t_ms"], *(t.get(k) for k in TELEMETRY_FIELDS))
+                 for t in b.telemetry])
+        con.execute(
+            "UPDATE boards SET readings_total = readings_total + ?, batches_total = batches_total + 1, "
+            "gap_readings = gap_readings + ?, last_batch_at = max(coalesce(last_batch_at, ?), ?), "
+            "last_boot = CASE WHEN last_boot_at IS NULL OR last_boot_at <= ? THEN ? ELSE last_boot END, "
+            "last_boot_at = max(coalesce(last_boot_at, ?), ?) WHERE id = ?",
+            (b.n, gap.get("readings", 0), b.received_at, b.received_at, b.received_at, b.boot,
+             b.received_at, b.received_at, bid))
+        return IngestResult(IngestStatus.STORED, b.digest)
+
+    async def board_counts(self) -> list[BoardCounts]:
+        rows = await self._query("SELECT name, readings_total, batches_total, last_batch_at, gap_readings "
+                                 "FROM boards ORDER BY name")
+        return [BoardCounts(*r) for r in rows]
+
+    async def latest_telemetry(self, tags: Sequence[str] | None = None) -> dict[str, TagTelemetry]:
+        where, params = "", []
+        if tags is not None:
+            where = "WHERE tag_id IN (SELECT id FROM tags WHERE tag IN (SELECT value FROM json_each(?)))"
+            params.append(json.dumps(list(tags)))
+        rows = await self._query(
+            f"SELECT tg.tag, b.name, t.at, t.t_board_ms, t.battery_mv, t.temperature_c, t.adv_count, t.uptime_s "
+            f"FROM (SELECT *, row_number() OVER (PARTITION BY tag_id ORDER BY at DESC, t_board_ms DESC, id DESC) AS k "
+            f"      FROM telemetry {where}) t "
+            f"JOIN tags tg ON tg.id = t.tag_id JOIN boards b ON b.id = t.board_id WHERE t.k = 1", params)
+        return {r[0]: TagTelemetry(*r) for r in rows}
+
+    async def seq_holes(self, board: str | None = None) -> list[SeqHole]:
+        if board is None:
+            rows = await self._query(SEQ_HOLES_SQL.format(board="1 = 1"))
+        else:
+            cond = "board_id = (SELECT id FROM boards WHERE name = ?)"
+            rows = await self._query(SEQ_HOLES_SQL.format(board=cond), (board, board))
+        return [SeqHole(*r) for r in rows]
+
+    # -- clock, heartbeats, events -----------------------------------------------------------------------
+
+    async def add_clock_sample(self, sample: ClockSample) -> None:
+        s = sample
+        if not all(math.isfinite(v) for v in (s.t1, s.t2, s.t3, s.t4)):
+            raise ValueError(f"clock sample t1..t4 must be finite, got {(s.t1, s.t2, s.t3, s.t4)!r}")
+
+        def tx(con: sqlite3.Connection) -> None:
+            bid = self._board_id(con, s.board)
+            con.execute("INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES (?, ?, ?, ?, ?, ?)",
+                        (bid, s.boot, s.t1, s.t2, s.t3, s.t4))
+            _note_boot(con, bid, s.boot, s.t2)
+        await self._wtx(tx)
+
+    async def clock_samples(self, board: str, boot: str, since: float | None = None) -> list[ClockSample]:
+        rows = await self._query(
+            "SELECT t1, t2, t3, t4 FROM clock_samples WHERE board_id = (SELECT id FROM boards WHERE name = ?) "
+            "AND boot = ? AND t2 >= ? ORDER BY t2, id", (board, boot, -math.inf if since is None else since))
+        return [ClockSample(board, boot, *r) for r in rows]
+
+    async def latest_boot(self, board: str) -> str | None:
+        rows = await self._query("SELECT last_boot FROM boards WHERE name = ?", (board,))
+        return rows[0][0] if rows else None
+
+    async def add_heartbeat(self, hb: Heartbeat) -> None:
+        keep = self._heartbeat_history
+
+        def tx(con: sqlite3.Connection) -> None:
+            bid = self._board_id(con, hb.board)
+            con.execute("INSERT INTO heartbeats (board_id, at, boot, stats) VALUES (?, ?, ?, ?)",
+                        (bid, hb.at, hb.boot, json.dumps(hb.stats, sort_keys=True)))
+            con.execute("DELETE FROM heartbeats WHERE id IN (SELECT id FROM heartbeats WHERE board_id = ? "
+                        "ORDER BY at DESC, id DESC LIMIT -1 OFFSET ?)", (bid, keep))
+            _note_boot(con, bid, hb.boot, hb.at)
+        await self._wtx(tx)
+
+    async def heartbeats(self, board: str, since: float) -> list[Heartbeat]:
+        rows = await self._query("SELECT at, boot, stats FROM heartbeats WHERE board_id = "
+                                 "(SELECT id FROM boards WHERE name = ?) AND at >= ? ORDER BY at, id", (board, since))
+        return [Heartbeat(board, at, boot, json.loads(stats)) for at, boot, stats in rows]
+
+    async def latest_heartbeats(self) -> dict[str, Heartbeat]:
+        rows = await self._query(
+            "SELECT b.name, h.at, h.boot, h.stats FROM (SELECT *, row_number() OVER "
+            "(PARTITION BY board_id ORDER BY at DESC, id DESC) AS k FROM heartbeats) h "
+            "JOIN boards b ON b.id = h.board_id WHERE h.k = 1")
+        return {name: Heartbeat(name, at, boot, json.loads(stats)) for name, at, boot, stats in rows}
+
+    async def add_event(self, event: Event) -> int:
+        def tx(con: sqlite3.Connection) -> int:
+            bid = None if event.board is None else self._board_id(con, event.board)
+            cur = con.execute("INSERT INTO events (at, board_id, kind, detail) VALUES (?, ?, ?, ?)",
+                              (event.at, bid, event.kind, json.dumps(event.detail, sort_keys=True)))
+            assert cur.lastrowid is not None
+            return cur.lastrowid
+        return await self._wtx(tx)
+
+    async def events(self, since_id: int = 0, limit: int = 1000, board: str | None = None) -> list[Event]:
+        cond, params = "e.id > ?", [since_id]
+        if board is not None:
+            cond += " AND e.board_id = (SELECT id FROM boards WHERE name = ?)"
+            params.append(board)
+        rows = await self._query(f"SELECT e.at, b.name, e.kind, e.detail, e.id FROM events e LEFT JOIN boards b "
+                                 f"ON b.id = e.board_id WHERE {cond} ORDER BY e.id LIMIT ?", [*params, limit])
+        return [Event(at, name, kind, json.loads(detail), id_) for at, name, kind, detail, id_ in rows]
+
+    # -- export and retention ----------------------------------------------------------------------------
+
+    async def readings(self, t_from: float, t_to: float, boards: Sequence[str] | None = None,
+                       tags: Sequence[str] | None = None) -> ReadingRows:
+        """Readings with ``t_from <= t_collector < t_to``, ordered by collector time."""
+        self._check_open()
+        cond, params = ["r.t_collector >= ?", "r.t_collector < ?"], [t_from, t_to]
+        if boards is not None:
+            cond.append("r.board_id IN (SELECT id FROM boards WHERE name IN (SELECT value FROM json_each(?)))")
+            params.append(json.dumps(list(boards)))
+        if tags is not None:
+            cond.append("r.tag_id IN (SELECT id FROM tags WHERE tag IN (SELECT value FROM json_each(?)))")
+            params.append(json.dumps(list(tags)))
+        sql = (f"SELECT r.board_id, r.tag_id, r.t_collector, r.rssi_dd, b.offset_dd FROM readings r "
+               f"JOIN batches b ON b.id = r.batch_id WHERE {' AND '.join(cond)} "
+               f"ORDER BY r.t_collector, r.board_id, r.tag_id")
+
+        def job() -> ReadingRows:
+            con = self._rcon
+            assert con is not None
+            # A read transaction: the rows and the id -> name maps come from one snapshot.
+            con.execute("BEGIN")
+            try:
+                arr = np.fromiter(con.execute(sql, params), dtype=_READING_DTYPE)
+                board_names = _names(con, "SELECT id, name FROM boards", arr["board_id"])
+                tag_names = _names(con, "SELECT id, tag FROM tags WHERE id IN (SELECT value FROM json_each(?))",
+                                   arr["tag_id"], by_ids=True)
+            finally:
+                con.execute("COMMIT")
+            return ReadingRows(board_names, tag_names, arr["t_collector"].copy(),
+                               arr["rssi_dd"].astype(np.int32), arr["offset_dd"].astype(np.int32))
+        return await self._read(job)
+
+    async def delete_readings_before(self, t: float, chunk: int = 10_000) -> int:
+        if chunk < 1:
+            raise ValueError(f"chunk must be >= 1, got {chunk!r}")
+        total = 0
+        for table, col, count in (("readings", "t_collector", True), ("telemetry", "at", False),
+                                  ("clock_samples", "t2", False)):
+            while True:
+                def tx(con: sqlite3.Connection, table: str = table, col: str = col) -> int:
+                    return con.execute(f"DELETE FROM {table} WHERE rowid IN (SELECT rowid FROM {table} "
+                                       f"WHERE {col} < ? LIMIT ?)", (t, chunk)).rowcount
+                # One short transaction per chunk: ingest groups get the writer between chunks.
+                n = await self._wtx(tx)
+                if count:
+                    total += n
+                if n < chunk:
+                    break
+        log.info("readings_deleted", backend="sqlite", before=t, readings=total, chunk=chunk)
+        return total
+
+    @contextlib.asynccontextmanager
+    async def exclusive(self, name: str) -> AsyncIterator[bool]:
+        """In-process lock: one collector per SQLite file, so that is all the exclusion needed."""
+        lock = self._locks.setdefault(name, asyncio.Lock())
+        if lock.locked():
+            yield False
+            return
+        async with lock:
+            yield True
+
+
+def _refusal(b: IngestBatch, e: Exception) -> Exception:
+    if isinstance(e, BadBatch) or not isinstance(e, sqlite3.IntegrityError):
+        return e
+    # SQLite names the constraint: "CHECK constraint failed: rssi_dd_range".
+    msg = str(e)
+    field = msg.rsplit(":", 1)[-1].strip().removesuffix("_range").removesuffix("_non_negative") or "batch"
+    return BadBatch(field, f"refused by the database ({msg}) in batch {b.board}/{b.epoch}/{b.seq}")
+
+
+def _note_boot(con: sqlite3.Connection, board_id: int, boot: str, at: float) -> None:
+    con.execute("UPDATE boards SET last_boot = ?, last_boot_at = ? WHERE id = ? AND "
+                "(last_boot_at IS NULL OR last_boot_at <= ?)", (boot, at, board_id, at))
+
+
+def _names(con: sqlite3.Connection, sql: str, ids: np.ndarray, by_ids: bool = False) -> np.ndarray:
+    """Map an id column to a str object column without a Python object per row beyond the result."""
+    uniq, inverse = np.unique(ids, return_inverse=True)
+    if not len(uniq):
+        return np.empty(0, dtype=object)
+    rows = con.execute(sql, (json.dumps(uniq.tolist()),) if by_ids else ()).fetchall()
+    lookup = dict(rows)
+    names = np.array([lookup[i] for i in uniq.tolist()], dtype=object)
+    return names[inverse]
