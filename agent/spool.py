@@ -27,8 +27,9 @@ SQLite calls run on one dedicated worker thread, so commits happen in call order
 loop never waits on the card. A cancelled caller does not abandon a half-applied operation: the
 work runs to its end in a shielded task and its results are applied.
 
-A gap record's range may name a seq that was in flight when it was dropped and did reach the
-collector; the collector counts as lost only covered seqs it does not hold.
+Gap record semantics: ``readings`` is exact; ``first_seq..last_seq`` may also span seqs that are
+still spooled (a spool_full record names the envelope of one overflow's drops) or that were in flight
+when dropped. The collector counts as lost only covered seqs it never receives.
 """
 
 from __future__ import annotations
@@ -198,6 +199,24 @@ class _Interval:
     last: int
     readings: int
     unknown: bool = False
+
+
+def _envelopes(intervals: Iterable[_Interval]) -> list[_Interval]:
+    """
+    One interval per epoch spanning all of ``intervals``; readings add up.
+
+    A spool_full gap record names the *envelope* of what one overflow dropped, so the record count stays
+    small however fragmented the drops are (each older gap record a drop folds in sits apart from the
+    range it covers). The envelope may span seqs that are still spooled and will arrive; the collector
+    counts as lost only covered seqs it never receives, and ``readings`` is exact.
+    """
+    by_epoch: dict[str, _Interval] = {}
+    for iv in intervals:
+        prev = by_epoch.get(iv.epoch)
+        by_epoch[iv.epoch] = iv if prev is None else _Interval(
+            iv.epoch, min(prev.first, iv.first), max(prev.last, iv.last), prev.readings + iv.readings,
+            prev.unknown or iv.unknown)
+    return sorted(by_epoch.values(), key=lambda i: (i.first, i.epoch))
 
 
 class _Degraded(Exception):
@@ -721,12 +740,12 @@ class _Disk:
                 dropped_batches += 1
                 dropped_readings += n
         for reason, ivs in covered.items():
-            for iv in _merge(ivs):
+            for iv in _envelopes(ivs):
                 self._seal_gap(conn, iv, reason, offset_db, mono, wall)
         self._bump(conn, "dropped_batches", dropped_batches)
         self._bump(conn, "dropped_readings", dropped_readings)
         log.warning("spool_full_dropped", batches=dropped_batches, readings=dropped_readings,
-                    ranges=[(i.epoch, i.first, i.last) for i in _merge(covered[GapReason.SPOOL_FULL])],
+                    ranges=[(i.epoch, i.first, i.last) for i in _envelopes(covered[GapReason.SPOOL_FULL])],
                     max_bytes=self.max_bytes)
 
     def _replace_bad_row(self, conn: sqlite3.Connection, rid: int, epoch: str, seq: int, n: int, nbytes: int,
