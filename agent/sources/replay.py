@@ -35,6 +35,9 @@ GZIP_MAGIC = b"\x1f\x8b"
 RSSI_RANGE = (-127, 20)
 """Valid RSSI per Core Spec Vol 4 Part E §7.7.65.2 (127 means "not available" and is never recorded)."""
 
+MAX_LINE = 64 * 1024
+"""Longest line accepted; real lines are a few hundred bytes, so more means the wrong file."""
+
 _ADDRESS = re.compile(r"[0-9A-F]{2}(:[0-9A-F]{2}){5}")
 _UUID128 = re.compile(r"[0-9a-f]{8}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{12}")
 _HEX4 = re.compile(r"[0-9a-fA-F]{4}")
@@ -148,36 +151,40 @@ def write_recording(path: str | Path, adverts: Iterable[Advert], *, board: str, 
 
 # ---------------------------------------------------------------- reading
 
-def _open_text(path: Path) -> IO[str]:
+def _open_binary(path: Path) -> IO[bytes]:
     try:
-        with open(path, "rb") as f:
-            magic = f.read(2)
-        if magic == GZIP_MAGIC:
-            return io.TextIOWrapper(gzip.open(path, "rb"), encoding="utf-8", errors="strict")
-        return open(path, encoding="utf-8", errors="strict")  # noqa: SIM115 - caller closes
+        f = open(path, "rb")  # noqa: SIM115 - caller closes
+        if f.peek(2)[:2] == GZIP_MAGIC:
+            f.close()
+            return gzip.open(path, "rb")
+        return f
     except OSError as e:
         raise CaptureFormatError(f"{path}: cannot open: {e.strerror or e}") from e
 
 
 def _lines(path: Path) -> Iterator[tuple[int, str]]:
-    """Numbered lines; decoding and decompression errors become CaptureFormatError."""
-    f = _open_text(path)
+    """Numbered lines, decoded one by one (so a bad byte names its own line)."""
+    f = _open_binary(path)
     n = 0
     try:
         while True:
             try:
-                line = f.readline()
-            except UnicodeDecodeError as e:
-                raise CaptureFormatError(f"{path}:{n + 1}: not UTF-8 text ({e.reason})") from None
+                raw = f.readline(MAX_LINE + 1)
             except EOFError:
                 raise CaptureFormatError(f"{path}:{n + 1}: compressed data ends early (file truncated?)") from None
-            except (OSError, gzip.BadGzipFile) as e:
+            except OSError as e:  # includes gzip.BadGzipFile
                 raise CaptureFormatError(f"{path}:{n + 1}: cannot read: {e}") from None
             except Exception as e:  # zlib.error and friends from a damaged stream
                 raise CaptureFormatError(f"{path}:{n + 1}: damaged compressed data: {e}") from None
-            if not line:
+            if not raw:
                 return
             n += 1
+            if len(raw) > MAX_LINE:
+                raise CaptureFormatError(f"{path}:{n}: line longer than {MAX_LINE} bytes (not a recording?)")
+            try:
+                line = raw.decode("utf-8")
+            except UnicodeDecodeError as e:
+                raise CaptureFormatError(f"{path}:{n}: not UTF-8 text ({e.reason} at byte {e.start})") from None
             yield n, line
     finally:
         f.close()
