@@ -1,10 +1,523 @@
-"""Placeholder until this part lands."""
+"""
+``listenpost collector ...``: ``serve`` runs the service; every other command is a thin client of the
+admin API over HTTP (``--collector URL``; admin token from ``--state-dir`` or ``$LISTENPOST_ADMIN_TOKEN``).
+
+Exit codes: 0 ok · 1 the collector is unreachable, refused the token, or failed · 2 bad usage or input.
+"""
 
 from __future__ import annotations
 
 import argparse
+import asyncio
+import csv
+import io
+import json
+import os
+import sys
+from collections.abc import Sequence
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
 
+from agent.errors import ConfigError, DecodeError, ListenpostError
+
+DEFAULT_URL = "http://127.0.0.1:8470"
+DEFAULT_STATE_DIR = "/var/lib/listenpost/collector"
+DEFAULT_TIMEOUT = 30.0
+
+
+class AdminError(ListenpostError):
+    """The collector could not be reached, refused the request, or failed."""
+
+
+# ------------------------------------------------------------------ parser
 
 def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None:  # type: ignore[type-arg]
-    p = sub.add_parser(name, help=help_text + " (not built yet)")
-    p.set_defaults(func=lambda args: 1)
+    p = sub.add_parser(name, help=help_text, description=help_text)
+    cmds = p.add_subparsers(dest="command", required=True,
+                            metavar="{serve,board,tags,status,export,calibrate,walktest,events}")
+
+    sv = cmds.add_parser("serve", help="run the collector service",
+                         description="Run the collector: board API, admin API, health page, /metrics.")
+    sv.add_argument("--state-dir", required=True, type=Path, metavar="DIR",
+                    help="admin token and (unless --db) the SQLite database live here")
+    sv.add_argument("--db", metavar="URL", help="postgresql://... for several collectors on one database")
+    sv.add_argument("--host", help="listen address (default from the config, else 127.0.0.1)")
+    sv.add_argument("--port", type=int, help="listen port (default from the config, else 8470)")
+    sv.add_argument("--config", type=Path, metavar="FILE", help="collector.yaml")
+    sv.add_argument("--log-format", choices=("auto", "json", "console"), default="auto")
+    sv.set_defaults(func=_serve)
+
+    def client(parser: argparse.ArgumentParser) -> argparse.ArgumentParser:
+        parser.add_argument("--collector", metavar="URL", default=os.environ.get("LISTENPOST_COLLECTOR", DEFAULT_URL),
+                            help="collector base URL (default $LISTENPOST_COLLECTOR or %(default)s)")
+        parser.add_argument("--state-dir", type=Path, metavar="DIR",
+                            help=f"read the admin token from DIR/admin-token (default: $LISTENPOST_ADMIN_TOKEN, "
+                                 f"else {DEFAULT_STATE_DIR})")
+        parser.add_argument("--timeout", type=float, default=DEFAULT_TIMEOUT, metavar="S",
+                            help="give up on a request after S seconds (default %(default)s)")
+        return parser
+
+    board = cmds.add_parser("board", help="add, list, show, retire boards; reissue enrollment codes")
+    bc = board.add_subparsers(dest="board_command", required=True, metavar="{add,list,show,retire,reissue}")
+    add = client(bc.add_parser("add", help="register a board and print its one-time enrollment code"))
+    add.add_argument("name", metavar="NAME")
+    add.add_argument("--room", required=True)
+    add.add_argument("--floor")
+    add.add_argument("--bundle", type=Path, metavar="DIR",
+                     help="also write a provisioning bundle (agent.yaml, cloud-init user-data/meta-data) to DIR")
+    add.add_argument("--json", action="store_true", help="print JSON instead of text")
+    add.set_defaults(func=_board_add)
+    ls = client(bc.add_parser("list", help="all boards"))
+    ls.add_argument("--json", action="store_true")
+    ls.set_defaults(func=_board_list)
+    show = client(bc.add_parser("show", help="one board: record, state, counts, calibration history"))
+    show.add_argument("name", metavar="NAME")
+    show.add_argument("--json", action="store_true")
+    show.set_defaults(func=_board_show)
+    ret = client(bc.add_parser("retire", help="retire a board: its token stops working"))
+    ret.add_argument("name", metavar="NAME")
+    ret.set_defaults(func=_board_retire)
+    rei = client(bc.add_parser("reissue", help="new enrollment code for a re-flashed card (older codes stop working)"))
+    rei.add_argument("name", metavar="NAME")
+    rei.add_argument("--bundle", type=Path, metavar="DIR", help="also write a provisioning bundle to DIR")
+    rei.add_argument("--json", action="store_true")
+    rei.set_defaults(func=_board_reissue)
+
+    tags = cmds.add_parser("tags", help="import, list, retire registered tags")
+    tc = tags.add_subparsers(dest="tags_command", required=True, metavar="{import,list,retire}")
+    imp = client(tc.add_parser("import", help="register tags from a file (all or nothing)",
+                               description="FILE: one canonical ID per line with '#' comments, or CSV with an "
+                                           "'id' column. A bad line stops the import; nothing is stored."))
+    imp.add_argument("file", type=Path, metavar="FILE")
+    imp.set_defaults(func=_tags_import)
+    tl = client(tc.add_parser("list", help="registered tags, one per line"))
+    tl.add_argument("--retired", action="store_true", help="include retired tags")
+    tl.set_defaults(func=_tags_list)
+    tr = client(tc.add_parser("retire", help="retire tags (boards stop reporting them)"))
+    tr.add_argument("ids", nargs="+", metavar="ID")
+    tr.set_defaults(func=_tags_retire)
+
+    st = client(cmds.add_parser("status", help="fleet health: one line per board"))
+    st.add_argument("--json", action="store_true")
+    st.set_defaults(func=_status)
+
+    ex = client(cmds.add_parser("export", help="binned calibrated RSSI table (tag × time bin × board)"))
+    ex.add_argument("--from", dest="t_from", required=True, metavar="T", help="ISO-8601 (UTC if no zone) or Unix seconds")
+    ex.add_argument("--to", dest="t_to", required=True, metavar="T")
+    ex.add_argument("--bin", type=float, required=True, metavar="S", help="bin width, seconds")
+    ex.add_argument("--format", choices=("csv", "npz"), default="csv")
+    ex.add_argument("--out", type=Path, required=True, metavar="FILE")
+    ex.add_argument("--board", action="append", metavar="NAME", help="only these boards (repeatable)")
+    ex.add_argument("--tag", action="append", metavar="ID", help="only these tags (repeatable)")
+    ex.set_defaults(func=_export)
+
+    cal = client(cmds.add_parser("calibrate", help="set a board's RSSI offset from a reference tag at a measured distance"))
+    cal.add_argument("name", metavar="NAME")
+    cal.add_argument("--tag", required=True, metavar="ID", help="the reference tag's canonical ID")
+    cal.add_argument("--distance", type=float, required=True, metavar="M", help="tag-to-board distance, metres")
+    cal.add_argument("--minutes", type=float, default=5.0, metavar="N", help="use the last N minutes (default 5)")
+    cal.add_argument("--power-1m", type=float, default=-59.0, metavar="DBM",
+                     help="the reference tag's RSSI at 1 m, dBm (default -59)")
+    cal.add_argument("--exponent", type=float, default=2.0, metavar="N", help="path-loss exponent (default 2)")
+    cal.add_argument("--json", action="store_true")
+    cal.set_defaults(func=_calibrate)
+
+    wt = client(cmds.add_parser("walktest", help="per-room report of a walk with a reference tag",
+                                description="MARKS: CSV with columns room,from,to (times ISO-8601 or Unix "
+                                            "seconds), one row per room visited with the reference tag."))
+    wt.add_argument("--tag", required=True, metavar="ID")
+    wt.add_argument("--marks", required=True, type=Path, metavar="FILE")
+    wt.add_argument("--json", action="store_true")
+    wt.set_defaults(func=_walktest)
+
+    ev = client(cmds.add_parser("events", help="state changes, losses, conflicts, calibrations"))
+    ev.add_argument("--since", type=int, default=0, metavar="ID", help="only events after this id")
+    ev.add_argument("--board", metavar="NAME")
+    ev.add_argument("--json", action="store_true")
+    ev.set_defaults(func=_events)
+
+
+# ------------------------------------------------------------------ serve
+
+def _serve(args: argparse.Namespace) -> int:
+    import ssl
+
+    from aiohttp import web
+
+    from agent.clock import SystemClock
+    from agent.logs import configure
+    from agent.notify import Notifier
+    from collector.app import create_app
+    from collector.config import load_settings
+
+    settings = load_settings(args.config, state_dir=str(args.state_dir), db_url=args.db, host=args.host, port=args.port)
+    configure(args.log_format)
+    ssl_ctx = None
+    if settings.tls_cert:
+        ssl_ctx = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
+        try:
+            ssl_ctx.load_cert_chain(settings.tls_cert, settings.tls_key)
+        except (OSError, ssl.SSLError) as e:
+            raise ConfigError(f"{settings.origin}: tls: cannot load {settings.tls_cert} / {settings.tls_key}: {e}") from e
+    app = create_app(settings, clock=SystemClock())
+    notifier = Notifier()
+
+    async def notify_ctx(app: web.Application) -> Any:
+        notifier.ready(f"listening on {settings.host}:{settings.port}")
+        task = asyncio.create_task(_watchdog(notifier)) if notifier.watchdog_interval else None
+        yield
+        notifier.stopping()
+        if task is not None:
+            task.cancel()
+
+    app.cleanup_ctx.append(notify_ctx)
+    web.run_app(app, host=settings.host, port=settings.port, ssl_context=ssl_ctx, print=None, access_log=None)
+    return 0
+
+
+async def _watchdog(notifier: Any) -> None:
+    while True:
+        notifier.watchdog()
+        await asyncio.sleep(notifier.watchdog_interval)
+
+
+# ------------------------------------------------------------------ admin client
+
+def admin_token(args: argparse.Namespace) -> str:
+    """The admin token: ``--state-dir`` first, then ``$LISTENPOST_ADMIN_TOKEN``, then the default state dir."""
+    from collector.auth import ADMIN_TOKEN_ENV, read_admin_token
+
+    if args.state_dir is not None:
+        return read_admin_token(args.state_dir)
+    if os.environ.get(ADMIN_TOKEN_ENV):
+        return os.environ[ADMIN_TOKEN_ENV].strip()
+    return read_admin_token(DEFAULT_STATE_DIR)
+
+
+def request(args: argparse.Namespace, method: str, path: str, *, body: Any = None,
+            params: Sequence[tuple[str, str]] | None = None, raw: bool = False) -> Any:
+    """One admin API call with a total timeout; returns the JSON answer (or bytes with ``raw``)."""
+    return asyncio.run(_request(args, method, path, body=body, params=params, raw=raw))
+
+
+async def _request(args: argparse.Namespace, method: str, path: str, *, body: Any, params: Any, raw: bool) -> Any:
+    import aiohttp
+
+    token = admin_token(args)
+    url = args.collector.rstrip("/") + path
+    timeout = aiohttp.ClientTimeout(total=args.timeout, connect=min(args.timeout, 10.0))
+    try:
+        async with aiohttp.ClientSession(timeout=timeout) as session, session.request(
+                method, url, json=body, params=params, headers={"Authorization": f"Bearer {token}"}) as resp:
+            data = await resp.read()
+            if resp.status >= 400:
+                _raise_for(resp.status, data, url)
+            return data if raw else json.loads(data)
+    except (aiohttp.ClientConnectionError, aiohttp.InvalidURL, OSError) as e:
+        raise AdminError(f"cannot reach the collector at {args.collector}: {e}") from e
+    except TimeoutError as e:
+        raise AdminError(f"the collector at {args.collector} did not answer within {args.timeout:g} s") from e
+
+
+def _raise_for(status: int, data: bytes, url: str) -> None:
+    try:
+        err = json.loads(data)["error"]
+        msg = err.get("message") or err.get("code")
+    except (ValueError, KeyError, TypeError):
+        msg = data[:200].decode("utf-8", "replace")
+    if status == 401:
+        raise AdminError("the collector refused the admin token (check --state-dir or $LISTENPOST_ADMIN_TOKEN)")
+    if status == 400:
+        raise ConfigError(f"the collector rejected the request: {msg}")
+    raise AdminError(f"{url}: {status}: {msg}")
+
+
+def table(rows: Sequence[Sequence[Any]], headers: Sequence[str], right: Sequence[int] = ()) -> str:
+    """Columns aligned for a terminal; ``right`` lists the numeric columns."""
+    cells = [[str(h) for h in headers]] + [["–" if v is None else str(v) for v in r] for r in rows]
+    widths = [max(len(r[i]) for r in cells) for i in range(len(headers))]
+    lines = []
+    for n, r in enumerate(cells):
+        lines.append("  ".join(v.rjust(w) if i in right else v.ljust(w) for i, (v, w) in enumerate(zip(r, widths, strict=True))).rstrip())
+        if n == 0:
+            lines.append("  ".join("-" * w for w in widths))
+    return "\n".join(lines)
+
+
+def _out(text: str) -> None:
+    sys.stdout.write(text + "\n")
+
+
+def _fmt_time(t: float | None) -> str | None:
+    return None if t is None else datetime.fromtimestamp(t, UTC).strftime("%Y-%m-%d %H:%M:%S")
+
+
+def parse_time(text: str, what: str) -> float:
+    """Unix seconds or ISO-8601 (a time without a zone is UTC)."""
+    try:
+        return float(text)
+    except ValueError:
+        pass
+    try:
+        dt = datetime.fromisoformat(text.strip().replace("Z", "+00:00"))
+    except ValueError:
+        raise ConfigError(f"{what}: must be ISO-8601 or Unix seconds, got {text!r}") from None
+    if dt.tzinfo is None:
+        dt = dt.replace(tzinfo=UTC)
+    return dt.timestamp()
+
+
+# ------------------------------------------------------------------ boards
+
+def _write_bundle(args: argparse.Namespace, answer: dict[str, Any]) -> Path | None:
+    if not getattr(args, "bundle", None):
+        return None
+    from collector.provision import write_bundle
+    url = answer.get("collector_url") or args.collector
+    write_bundle(args.bundle, board=answer["name"], room=answer["room"], floor=answer.get("floor"),
+                 code=answer["code"], collector_url=url, expires_at=answer["code_expires_at"])
+    return args.bundle
+
+
+def _print_code(args: argparse.Namespace, answer: dict[str, Any], verb: str) -> int:
+    bundle = _write_bundle(args, answer)
+    if args.json:
+        _out(json.dumps({**answer, "bundle": str(bundle) if bundle else None}))
+        return 0
+    _out(f"{verb} board {answer['name']} (room {answer['room']}"
+         f"{', floor ' + answer['floor'] if answer.get('floor') else ''})")
+    _out(f"enrollment code: {answer['code']}   (one use, valid until {_fmt_time(answer['code_expires_at'])} UTC)")
+    _out(f"on the board:    listenpost agent enroll --collector {answer.get('collector_url') or args.collector} "
+         f"--code {answer['code']}")
+    if bundle:
+        _out(f"bundle written:  {bundle}/ (copy user-data and meta-data to the card's boot partition)")
+    return 0
+
+
+def _board_add(args: argparse.Namespace) -> int:
+    answer = request(args, "POST", "/v1/admin/boards", body={"name": args.name, "room": args.room, "floor": args.floor})
+    return _print_code(args, answer, "added")
+
+
+def _board_reissue(args: argparse.Namespace) -> int:
+    answer = request(args, "POST", f"/v1/admin/boards/{args.name}/reissue")
+    return _print_code(args, answer, "new code for")
+
+
+def _board_list(args: argparse.Namespace) -> int:
+    answer = request(args, "GET", "/v1/admin/boards")
+    if args.json:
+        _out(json.dumps(answer))
+        return 0
+    rows = [(b["name"], b["room"], b["floor"], "yes" if b["enrolled_at"] else "no", f"{b['offset_db']:+.1f}",
+             "retired" if b["retired_at"] else "") for b in answer["boards"]]
+    _out(table(rows, ("BOARD", "ROOM", "FLOOR", "ENROLLED", "OFFSET dB", ""), right=(4,)))
+    return 0
+
+
+def _board_show(args: argparse.Namespace) -> int:
+    b = request(args, "GET", f"/v1/admin/boards/{args.name}")
+    if args.json:
+        _out(json.dumps(b))
+        return 0
+    hb = b["last_heartbeat"]
+    pairs = [("board", b["name"]), ("room", b["room"]), ("floor", b["floor"]), ("state", b["state"]),
+             ("reason", b["state_reason"]), ("enrolled", _fmt_time(b["enrolled_at"])),
+             ("retired", _fmt_time(b["retired_at"])), ("offset", f"{b['offset_db']:+.1f} dB"),
+             ("readings", b["readings_total"]), ("batches", b["batches_total"]),
+             ("last batch", _fmt_time(b["last_batch_at"])), ("last heartbeat", _fmt_time(hb["at"]) if hb else None),
+             ("fingerprint", json.dumps(b["fingerprint"]) if b["fingerprint"] else None)]
+    width = max(len(k) for k, _ in pairs)
+    for k, v in pairs:
+        _out(f"{k.ljust(width)}  {'–' if v is None else v}")
+    if b["calibrations"]:
+        _out("\ncalibrations:")
+        _out(table([(_fmt_time(c["at"]), f"{c['offset_db']:+.1f}", f"{c['spread_db']:.1f}", c["samples"],
+                     c["reference_tag"], f"{c['distance_m']:g}") for c in b["calibrations"]],
+                   ("AT (UTC)", "OFFSET dB", "SPREAD dB", "SAMPLES", "TAG", "DIST m"), right=(1, 2, 3, 5)))
+    if b["recalibrate"]:
+        _out("\n! the hardware fingerprint changed since the last calibration: calibrate again")
+    return 0
+
+
+def _board_retire(args: argparse.Namespace) -> int:
+    request(args, "POST", f"/v1/admin/boards/{args.name}/retire")
+    _out(f"retired board {args.name}")
+    return 0
+
+
+# ------------------------------------------------------------------ tags
+
+def read_tag_file(path: Path) -> list[str]:
+    """Canonical IDs from a tag file (one per line, ``#`` comments) or a CSV with an ``id`` column."""
+    from agent.identity import load_tag_file, parse_tag_id
+
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as e:
+        raise ConfigError(f"{path}: cannot read: {e.strerror or e}") from e
+    except UnicodeDecodeError:
+        raise ConfigError(f"{path}: not UTF-8 text") from None
+    first = next((ln for ln in text.splitlines() if ln.split("#", 1)[0].strip()), "")
+    header = [c.strip().lower() for c in next(csv.reader([first]), [])] if "," in first else []
+    if "id" not in header:
+        return sorted(load_tag_file(path))
+    out: list[str] = []
+    col = header.index("id")
+    reader = csv.reader(io.StringIO(text))
+    seen_header = False
+    for row in reader:
+        line = reader.line_num
+        if not row or not "".join(row).strip() or row[0].lstrip().startswith("#"):
+            continue
+        if not seen_header:
+            seen_header = True
+            continue
+        if col >= len(row) or not row[col].strip():
+            raise ConfigError(f"{path}:{line}: no value in the 'id' column")
+        try:
+            out.append(parse_tag_id(row[col]))
+        except DecodeError as e:
+            raise ConfigError(f"{path}:{line}: {e}") from None
+    return out
+
+
+def _tags_import(args: argparse.Namespace) -> int:
+    ids = read_tag_file(args.file)
+    if not ids:
+        raise ConfigError(f"{args.file}: no tag identities found")
+    answer = request(args, "POST", "/v1/admin/tags", body={"ids": ids})
+    _out(f"{args.file}: {answer['given']} tags read, {answer['added']} new; {answer['total']} registered now")
+    return 0
+
+
+def _tags_list(args: argparse.Namespace) -> int:
+    answer = request(args, "GET", "/v1/admin/tags", params=[("retired", "1")] if args.retired else None)
+    for t in answer["tags"]:
+        _out(t)
+    return 0
+
+
+def _tags_retire(args: argparse.Namespace) -> int:
+    answer = request(args, "POST", "/v1/admin/tags/retire", body={"ids": args.ids})
+    _out(f"retired {answer['retired']} of {answer['given']} tags")
+    return 0
+
+
+# ------------------------------------------------------------------ status, export, events
+
+def _age(s: float | None) -> str | None:
+    from collector.web.pages import fmt_age
+    return None if s is None else fmt_age(s)
+
+
+def _num(v: float | None, fmt: str) -> str | None:
+    return None if v is None else format(v, fmt)
+
+
+def _status(args: argparse.Namespace) -> int:
+    doc = request(args, "GET", "/v1/status")
+    if args.json:
+        _out(json.dumps(doc))
+        return 0
+    f = doc["fleet"]
+    _out(f"{f['boards']} boards · {f['readings_total']:,} readings · {f['tags']} tags · "
+         + ", ".join(f"{n} {s}" for s, n in sorted(f["by_state"].items())))
+    rows = [(r["name"], r["room"], r["state"], _age(r["last_contact_age_s"]), f"{r['readings_total']:,}",
+             _num(r["readings_per_s"], ".1f"), _num(r["clock_skew_ppm"], "+.1f"), _num(r["clock_residual_ms"], ".1f"),
+             _num(None if r["wall_error_ms"] is None else r["wall_error_ms"] / 1000, "+.1f"),
+             r["spool_backlog_batches"], r["state_reason"] or "") for r in doc["boards"]]
+    _out(table(rows, ("BOARD", "ROOM", "STATE", "LAST CONTACT", "READINGS", "PER s", "SKEW ppm", "FIT ms",
+                      "WALL s", "BACKLOG", "WHY"), right=(4, 5, 6, 7, 8, 9)))
+    return 0
+
+
+def _export(args: argparse.Namespace) -> int:
+    t_from, t_to = parse_time(args.t_from, "--from"), parse_time(args.t_to, "--to")
+    if t_to <= t_from:
+        raise ConfigError("--to: must be after --from")
+    if args.bin <= 0:
+        raise ConfigError("--bin: must be > 0 seconds")
+    params = [("from", repr(t_from)), ("to", repr(t_to)), ("bin", repr(args.bin)), ("format", args.format)]
+    params += [("board", b) for b in args.board or []] + [("tag", t) for t in args.tag or []]
+    data = request(args, "GET", "/v1/admin/export", params=params, raw=True)
+    tmp = args.out.with_name(args.out.name + ".part")
+    try:
+        tmp.write_bytes(data)
+        os.replace(tmp, args.out)  # a half-written export never carries the final name
+    except OSError as e:
+        raise AdminError(f"{args.out}: cannot write: {e.strerror or e}") from e
+    _out(f"wrote {args.out} ({len(data):,} bytes, {args.format})")
+    return 0
+
+
+def _events(args: argparse.Namespace) -> int:
+    params = [("since", str(args.since))] + ([("board", args.board)] if args.board else [])
+    answer = request(args, "GET", "/v1/admin/events", params=params)
+    if args.json:
+        _out(json.dumps(answer))
+        return 0
+    rows = [(e["id"], _fmt_time(e["at"]), e["board"] or "", e["kind"],
+             json.dumps(e["detail"], separators=(",", ":"))[:80]) for e in answer["events"]]
+    _out(table(rows, ("ID", "AT (UTC)", "BOARD", "KIND", "DETAIL"), right=(0,)))
+    return 0
+
+
+# ------------------------------------------------------------------ calibration and walk test
+
+def _calibrate(args: argparse.Namespace) -> int:
+    body = {"tag": args.tag, "distance_m": args.distance, "minutes": args.minutes,
+            "power_1m_dbm": args.power_1m, "exponent": args.exponent}
+    answer = request(args, "POST", f"/v1/admin/boards/{args.name}/calibrate", body=body)
+    if args.json:
+        _out(json.dumps(answer))
+        return 0
+    _out(f"board {answer['board']}: offset {answer['offset_db']:+.1f} dB (was {answer['previous_offset_db']:+.1f}), "
+         f"spread {answer['spread_db']:.1f} dB from {answer['samples']} readings of {answer['reference_tag']} "
+         f"at {answer['distance_m']:g} m")
+    for w in answer["warnings"]:
+        _out(f"! {w}")
+    return 0
+
+
+def read_marks(path: Path) -> list[dict[str, Any]]:
+    """Walk-test marks: CSV ``room,from,to``; errors name ``file:line``."""
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as e:
+        raise ConfigError(f"{path}: cannot read: {e.strerror or e}") from e
+    reader = csv.DictReader(io.StringIO(text))
+    missing = {"room", "from", "to"} - {(h or "").strip().lower() for h in reader.fieldnames or []}
+    if missing:
+        raise ConfigError(f"{path}:1: header must name the columns room, from, to (missing {', '.join(sorted(missing))})")
+    marks = []
+    for row in reader:
+        row = {(k or "").strip().lower(): (v or "").strip() for k, v in row.items()}
+        if not any(row.values()) or row["room"].startswith("#"):
+            continue
+        where = f"{path}:{reader.line_num}"
+        if not row["room"]:
+            raise ConfigError(f"{where}: room is empty")
+        marks.append({"room": row["room"], "from": parse_time(row["from"], f"{where}: from"),
+                      "to": parse_time(row["to"], f"{where}: to")})
+        if marks[-1]["to"] <= marks[-1]["from"]:
+            raise ConfigError(f"{where}: to must be after from")
+    if not marks:
+        raise ConfigError(f"{path}: no marks")
+    return marks
+
+
+def _walktest(args: argparse.Namespace) -> int:
+    answer = request(args, "POST", "/v1/admin/walktest", body={"tag": args.tag, "marks": read_marks(args.marks)})
+    if args.json:
+        _out(json.dumps(answer))
+        return 0
+    rows = []
+    for r in answer["rooms"]:
+        rows.append((r.get("room"), r.get("best_board"), _num(r.get("best_rssi_dbm"), ".1f"), r.get("runner_up"),
+                     _num(r.get("margin_db"), ".1f"), ", ".join(r.get("overlap") or []) or "",
+                     _num(None if r.get("coverage") is None else 100 * r["coverage"], ".0f")))
+    _out(table(rows, ("ROOM", "STRONGEST", "dBm", "RUNNER-UP", "MARGIN dB", "ALSO HEARD WITHIN RANGE", "COVER %"),
+               right=(2, 4, 6)))
+    return 0

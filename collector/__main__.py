@@ -1,0 +1,7 @@
+"""``python -m collector ...`` is ``listenpost collector ...``."""
+
+import sys
+
+from listenpost.cli import main
+
+sys.exit(main(["collector", *sys.argv[1:]]))

@@ -1,0 +1,212 @@
+"""
+``collector.yaml`` → `CollectorSettings`, validated at load with agent.config's `Section` reader.
+
+Every error names the file and the key path, e.g. ``collector.yaml: limits.max_body_bytes: must be > 0, got -1``.
+Every key is optional; an absent file means all defaults::
+
+    listen: {host: 0.0.0.0, port: 8470}
+    tls: {cert: /etc/listenpost/cert.pem, key: /etc/listenpost/key.pem}   # HTTPS when both are given
+    public_url: http://10.20.0.2:8470          # what boards are told to use (provisioning bundles)
+    webhook: {url: https://ops.example/hook, timeout_seconds: 5, attempts: 4}
+    retention: {days: 90, chunk: 10000}
+    liveness: {...}                            # any field of collector.liveness.LivenessSettings
+    enrollment: {code_lifetime_hours: 72}
+    limits: {max_body_bytes: 4194304, max_decompressed_bytes: 33554432, max_readings: 200000}
+    agent: {flush_seconds: 5, heartbeat_seconds: 10}
+    decode:
+      rules:
+        - {name: lpx, company_id: 0xFFFF, prefix: "4c50", offset: 2, length: 4}
+    monitor: {interval_seconds: 5}
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from agent.config import DecodeRule, Section, load_yaml, non_negative, parse_rule, positive
+from agent.errors import ConfigError
+
+DEFAULT_PORT = 8470
+
+
+@dataclass(frozen=True, slots=True)
+class Limits:
+    """Request size limits of the board API."""
+
+    max_body_bytes: int = 4 * 1024 * 1024
+    """Largest request body as sent (possibly gzip'd), bytes; larger → 413."""
+    max_decompressed_bytes: int = 32 * 1024 * 1024
+    """Largest body after gunzip, bytes; a gzip bomb stops here → 413."""
+    max_readings: int = 200_000
+    """Most readings in one batch."""
+
+
+@dataclass(frozen=True, slots=True)
+class WebhookSettings:
+    url: str | None = None
+    """POST state-change events here (JSON); ``None`` disables the webhook."""
+    timeout_seconds: float = 5.0
+    """Total timeout of each POST."""
+    attempts: int = 4
+    """Tries per event before it is given up (the event stays in the store)."""
+    backoff_seconds: float = 1.0
+    """First retry delay; doubles per attempt."""
+
+
+@dataclass(frozen=True, slots=True)
+class CollectorSettings:
+    """Everything the collector service reads from its config file and command line."""
+
+    state_dir: str = "."
+    """Directory of the admin token and the default SQLite database."""
+    db_url: str | None = None
+    """``postgresql://…`` or ``sqlite:///…``; ``None`` means ``state_dir/collector.sqlite``."""
+    host: str = "127.0.0.1"
+    port: int = DEFAULT_PORT
+    tls_cert: str | None = None
+    tls_key: str | None = None
+    public_url: str | None = None
+    """Base URL boards use to reach this collector; bundles fall back to the admin's ``--collector`` URL."""
+    webhook: WebhookSettings = field(default_factory=WebhookSettings)
+    retention_days: float = 90.0
+    """Raw readings older than this are deleted by the monitor (0 keeps them forever)."""
+    retention_chunk: int = 10_000
+    """Rows deleted per statement, so retention never holds a long lock."""
+    liveness: dict[str, Any] = field(default_factory=dict)
+    """Overrides of `collector.liveness.LivenessSettings` fields."""
+    code_lifetime_seconds: float = 72 * 3600.0
+    """How long an enrollment code stays valid."""
+    limits: Limits = field(default_factory=Limits)
+    flush_seconds: float = 5.0
+    """Told to boards: longest wait before readings are sealed."""
+    heartbeat_seconds: float = 10.0
+    """Told to boards: heartbeat period."""
+    rules: tuple[DecodeRule, ...] = ()
+    """Decode rules for tag firmware no built-in rule knows; sent to every board."""
+    monitor_interval_seconds: float = 5.0
+    """Period of the liveness/retention round."""
+    origin: str = "collector.yaml"
+
+    def resolved_db_url(self) -> str:
+        return self.db_url or f"sqlite:///{Path(self.state_dir) / 'collector.sqlite'}"
+
+    def replace(self, **changes: Any) -> CollectorSettings:
+        return dataclasses.replace(self, **changes)
+
+
+def rule_to_json(rule: DecodeRule) -> dict[str, Any]:
+    """A decode rule in the shape `agent.config.parse_rule` reads back (prefix as hex)."""
+    out: dict[str, Any] = {"name": rule.name}
+    if rule.company_id is not None:
+        out["company_id"] = rule.company_id
+    if rule.service_uuid16 is not None:
+        out["service_uuid16"] = rule.service_uuid16
+    out.update(prefix=rule.prefix.hex(), offset=rule.offset, length=rule.length)
+    return out
+
+
+def _liveness_overrides(s: Section) -> dict[str, Any]:
+    if not s.data:
+        return {}
+    # The field list belongs to collector/liveness.py; reading it here keeps one definition.
+    from collector.liveness import LivenessSettings
+
+    fields = {f.name: f for f in dataclasses.fields(LivenessSettings)}
+    out: dict[str, Any] = {}
+    for key in list(s.data):
+        if key not in fields:
+            raise s.fail(str(key), f"unknown key (known: {', '.join(sorted(fields))})")
+        default = getattr(LivenessSettings(), key)
+        kind: type | tuple[type, ...] = (int, float) if isinstance(default, int | float) and not isinstance(default, bool) else type(default)
+        out[key] = s.get(key, kind, check=non_negative if kind == (int, float) else None)
+    s.done()
+    try:
+        LivenessSettings(**out)
+    except (TypeError, ValueError) as e:
+        raise ConfigError(f"{s.origin}: {s.path}: {e}") from e
+    return out
+
+
+def parse_settings(data: Any, origin: str = "collector.yaml", **overrides: Any) -> CollectorSettings:
+    """Validate a parsed ``collector.yaml``; ``overrides`` (command-line values) win over the file."""
+    top = Section(data, "", origin)
+    lis = top.section("listen")
+    host = lis.get("host", str, "127.0.0.1")
+    port = lis.get("port", int, DEFAULT_PORT, check=lambda v: None if 0 <= v <= 65535 else "must be 0..65535")
+    lis.done()
+
+    tls = top.section("tls")
+    cert = tls.get("cert", str, None)
+    key = tls.get("key", str, None)
+    if (cert is None) != (key is None):
+        raise tls.fail("key" if key is None else "cert", "give both cert and key, or neither")
+    tls.done()
+
+    url_check = lambda v: None if re.match(r"^https?://[^/\s]+", v) else "must be an http(s) URL"  # noqa: E731
+    public_url = top.get("public_url", str, None, url_check)
+
+    wh = top.section("webhook")
+    webhook = WebhookSettings(
+        url=wh.get("url", str, None, url_check),
+        timeout_seconds=wh.get("timeout_seconds", float, 5.0, positive),
+        attempts=wh.get("attempts", int, 4, check=lambda v: None if 1 <= v <= 20 else "must be 1..20"),
+        backoff_seconds=wh.get("backoff_seconds", float, 1.0, positive),
+    )
+    wh.done()
+
+    ret = top.section("retention")
+    retention_days = ret.get("days", float, 90.0, non_negative)
+    retention_chunk = ret.get("chunk", int, 10_000, positive)
+    ret.done()
+
+    liveness = _liveness_overrides(top.section("liveness"))
+
+    en = top.section("enrollment")
+    code_hours = en.get("code_lifetime_hours", float, 72.0, positive)
+    en.done()
+
+    lim = top.section("limits")
+    d = Limits()
+    limits = Limits(
+        max_body_bytes=lim.get("max_body_bytes", int, d.max_body_bytes, positive),
+        max_decompressed_bytes=lim.get("max_decompressed_bytes", int, d.max_decompressed_bytes, positive),
+        max_readings=lim.get("max_readings", int, d.max_readings, positive),
+    )
+    lim.done()
+    if limits.max_decompressed_bytes < limits.max_body_bytes:
+        raise lim.fail("max_decompressed_bytes", "must be >= max_body_bytes")
+
+    ag = top.section("agent")
+    flush = ag.get("flush_seconds", float, 5.0, positive)
+    heartbeat = ag.get("heartbeat_seconds", float, 10.0, positive)
+    ag.done()
+
+    dec = top.section("decode")
+    rules = tuple(parse_rule(r) for r in dec.items("rules"))
+    dec.done()
+    if len({r.name for r in rules}) != len(rules):
+        raise dec.fail("rules", "rule names must be unique")
+
+    mon = top.section("monitor")
+    interval = mon.get("interval_seconds", float, 5.0, positive)
+    mon.done()
+    top.done()
+
+    settings = CollectorSettings(
+        host=host, port=port, tls_cert=cert, tls_key=key, public_url=public_url.rstrip("/") if public_url else None,
+        webhook=webhook, retention_days=retention_days, retention_chunk=retention_chunk, liveness=liveness,
+        code_lifetime_seconds=code_hours * 3600.0, limits=limits, flush_seconds=flush, heartbeat_seconds=heartbeat,
+        rules=rules, monitor_interval_seconds=interval, origin=origin,
+    )
+    return settings.replace(**{k: v for k, v in overrides.items() if v is not None})
+
+
+def load_settings(path: str | Path | None, **overrides: Any) -> CollectorSettings:
+    """Load ``collector.yaml`` (or defaults when ``path`` is None) and apply command-line overrides."""
+    if path is None:
+        return parse_settings({}, "(defaults)", **overrides)
+    return parse_settings(load_yaml(path), str(path), **overrides)

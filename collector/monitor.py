@@ -1,0 +1,268 @@
+"""
+The collector's background round, every ``monitor.interval_seconds`` on the injected clock.
+
+Under ``store.exclusive("monitor")`` (a PostgreSQL advisory lock when several collectors share one
+database, so each board is evaluated once per round fleet-wide):
+
+1. liveness: every board's state from its contact history, heartbeat stats and clock fit
+   (collector/liveness.py); each change is stored as a ``state_changed`` event, logged as
+   ``board_state_changed`` and queued for the webhook;
+2. loss: seq holes (not covered by a batch or a gap record) that persist past a grace period
+   become ``loss`` events, once each;
+3. retention: raw readings older than ``retention.days`` go, in bounded chunks.
+
+A collector that does not hold the lock follows the stored ``state_changed`` events instead, so every
+collector's page and ``/metrics`` show the same states. Webhook POSTs run in their own task with a
+timeout per attempt and a bounded number of attempts; the event stays in the store either way.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+from dataclasses import dataclass, field
+from typing import Any
+
+import structlog
+
+from agent.clock import Clock
+from collector.config import CollectorSettings
+from collector.ingest import clock_model
+from collector.store import Event, Store, StoreError
+
+log = structlog.get_logger("collector.monitor")
+
+LOSS_GRACE_SECONDS = 60.0
+"""A seq hole must persist this long before it is a loss (one batch in flight may be just arriving)."""
+RETENTION_EVERY_SECONDS = 600.0
+WEBHOOK_QUEUE_MAX = 1000
+HISTORY_SECONDS = 900.0
+"""Heartbeat history handed to the liveness evaluator."""
+
+
+@dataclass(slots=True)
+class RoundReport:
+    """What one round did (tests and logs read it)."""
+
+    held_lock: bool = False
+    evaluated: list[str] = field(default_factory=list)
+    changes: list[Event] = field(default_factory=list)
+    losses: list[Event] = field(default_factory=list)
+    deleted: int = 0
+
+
+class Monitor:
+    """Liveness, loss detection, retention and the webhook for one collector process."""
+
+    def __init__(self, store: Store, *, clock: Clock, settings: CollectorSettings, runtime: Any) -> None:
+        self.store = store
+        self.clock = clock
+        self.settings = settings
+        self.runtime = runtime
+        self.tracker: Any = None
+        """collector.liveness tracker, made at the first round this process holds the lock."""
+        self._seeded = False
+        self._hole_first_seen: dict[tuple[str, str, int, int], float] = {}
+        self._reported_holes: set[tuple[str, str, int, int]] = set()
+        self._last_retention = float("-inf")
+        self._state_cursor = 0
+        self._task: asyncio.Task[None] | None = None
+        self._webhook_task: asyncio.Task[None] | None = None
+        self._webhook_queue: asyncio.Queue[Event] = asyncio.Queue(maxsize=WEBHOOK_QUEUE_MAX)
+        self.webhook_sent = 0
+        self.webhook_failed = 0
+
+    # ------------------------------------------------------------ life cycle
+
+    def start(self) -> None:
+        self._task = asyncio.create_task(self._loop(), name="collector-monitor")
+        if self.settings.webhook.url:
+            self._webhook_task = asyncio.create_task(self._webhook_loop(), name="collector-webhook")
+
+    async def stop(self) -> None:
+        for task in (self._task, self._webhook_task):
+            if task is not None:
+                task.cancel()
+                with contextlib.suppress(asyncio.CancelledError):
+                    await task
+
+    async def _loop(self) -> None:
+        while True:
+            try:
+                await self.run_once()
+            except (StoreError, OSError) as e:
+                log.warning("monitor_round_failed", error=str(e))
+            except Exception:
+                log.exception("monitor_round_failed")
+            await self.clock.sleep(self.settings.monitor_interval_seconds)
+
+    # ------------------------------------------------------------ one round
+
+    async def run_once(self) -> RoundReport:
+        report = RoundReport()
+        async with self.store.exclusive("monitor") as held:
+            report.held_lock = held
+            if held:
+                await self._seed()
+                await self._liveness(report)
+                await self._losses(report)
+                await self._retention(report)
+        if not held:
+            await self._follow_states()
+        self.runtime.monitor_rounds += 1
+        return report
+
+    async def _seed(self) -> None:
+        """Start the tracker from the stored states, so a restart does not announce every board again."""
+        if self._seeded:
+            return
+        from collector.liveness import LivenessSettings, LivenessTracker
+
+        self.tracker = LivenessTracker(LivenessSettings(**self.settings.liveness))
+        await self._follow_states()
+        self.tracker.seed({b: s["state"] for b, s in self.runtime.states.items()})
+        for e in await self._all_events("loss"):
+            d = e.detail
+            self._reported_holes.add((e.board or "", d.get("epoch", ""), d.get("first_seq", -1), d.get("last_seq", -1)))
+        self._seeded = True
+
+    async def _all_events(self, kind: str) -> list[Event]:
+        out, cursor = [], 0
+        while True:
+            page = await self.store.events(since_id=cursor, limit=1000)
+            out += [e for e in page if e.kind == kind]
+            if len(page) < 1000:
+                return out
+            cursor = max(e.id or 0 for e in page)
+
+    async def _follow_states(self) -> None:
+        while True:
+            page = await self.store.events(since_id=self._state_cursor, limit=1000)
+            for e in page:
+                if e.kind == "state_changed" and e.board:
+                    self.runtime.states[e.board] = {"state": e.detail.get("new"), "since": e.at,
+                                                    "reason": e.detail.get("reason")}
+            if page:
+                self._state_cursor = max(e.id or 0 for e in page)
+            if len(page) < 1000:
+                return
+
+    async def _liveness(self, report: RoundReport) -> None:
+        from collector.liveness import BoardInputs
+
+        now = self.clock.time()
+        boards = await self.store.list_boards()
+        counts = {c.board: c for c in await self.store.board_counts()}
+        latest = await self.store.latest_heartbeats()
+        inputs: dict[str, Any] = {}
+        for b in boards:
+            hbs = await self.store.heartbeats(b.name, now - HISTORY_SECONDS)
+            hb = latest.get(b.name)
+            fit = None
+            boot = hb.boot if hb else None
+            if boot is not None:
+                fit = (await clock_model(self.runtime.clock_models, self.store, b.name, boot)).fit()
+            c = counts.get(b.name)
+            arrivals = sorted({h.at for h in hbs} | ({c.last_batch_at} if c and c.last_batch_at else set()))
+            inputs[b.name] = BoardInputs(
+                arrivals=tuple(arrivals),
+                heartbeats=tuple((h.at, h.stats) for h in hbs),
+                clock_fit=fit,
+                retired=b.retired_at is not None,
+                enrolled=b.enrolled_at is not None,
+            )
+            report.evaluated.append(b.name)
+        for change in self.tracker.update(inputs, now):
+            detail = {"old": _value(change.old), "new": _value(change.new), "reason": change.reason}
+            event = Event(change.at, change.board, "state_changed", detail)
+            event_id = await self.store.add_event(event)
+            event = Event(event.at, event.board, event.kind, event.detail, event_id)
+            report.changes.append(event)
+            log.info("board_state_changed", board=change.board, old=detail["old"], new=detail["new"],
+                     reason=change.reason)
+            self._queue_webhook(event)
+        for name, verdict in self.tracker.states.items():
+            prev = self.runtime.states.get(name, {})
+            st = _value(verdict.state)
+            self.runtime.states[name] = {"state": st, "reason": verdict.reason,
+                                         "since": prev.get("since") if prev.get("state") == st else now}
+
+    async def _losses(self, report: RoundReport) -> None:
+        now = self.clock.time()
+        holes = await self.store.seq_holes()
+        current = {(h.board, h.epoch, h.first_seq, h.last_seq) for h in holes}
+        for key in list(self._hole_first_seen):
+            if key not in current:
+                del self._hole_first_seen[key]  # filled in after all: a late batch, not a loss
+        for key in current - self._reported_holes:
+            first = self._hole_first_seen.setdefault(key, now)
+            if now - first < LOSS_GRACE_SECONDS:
+                continue
+            board, epoch, lo, hi = key
+            detail = {"epoch": epoch, "first_seq": lo, "last_seq": hi, "batches": hi - lo + 1}
+            event = Event(now, board, "loss", detail)
+            event = Event(now, board, "loss", detail, await self.store.add_event(event))
+            self._reported_holes.add(key)
+            report.losses.append(event)
+            log.warning("batches_lost", board=board, **detail)
+            self._queue_webhook(event)
+
+    async def _retention(self, report: RoundReport) -> None:
+        now = self.clock.time()
+        if self.settings.retention_days <= 0 or now - self._last_retention < RETENTION_EVERY_SECONDS:
+            return
+        self._last_retention = now
+        report.deleted = await self.store.delete_readings_before(now - self.settings.retention_days * 86400.0,
+                                                                 chunk=self.settings.retention_chunk)
+
+    # ------------------------------------------------------------ webhook
+
+    def _queue_webhook(self, event: Event) -> None:
+        if not self.settings.webhook.url:
+            return
+        try:
+            self._webhook_queue.put_nowait(event)
+        except asyncio.QueueFull:
+            self.webhook_failed += 1
+            log.warning("webhook_dropped", kind=event.kind, board=event.board, reason="queue_full")
+
+    async def _webhook_loop(self) -> None:
+        import aiohttp
+
+        wh = self.settings.webhook
+        timeout = aiohttp.ClientTimeout(total=wh.timeout_seconds)
+        async with aiohttp.ClientSession(timeout=timeout) as session:
+            while True:
+                event = await self._webhook_queue.get()
+                await self.post_event(session, event)
+
+    async def post_event(self, session: Any, event: Event) -> bool:
+        """POST one event with bounded retries and doubling backoff; True once a 2xx came back."""
+        import aiohttp
+
+        wh = self.settings.webhook
+        assert wh.url is not None
+        body = {"id": event.id, "at": event.at, "board": event.board, "kind": event.kind, "detail": event.detail}
+        delay = wh.backoff_seconds
+        for attempt in range(1, wh.attempts + 1):
+            try:
+                async with session.post(wh.url, json=body) as resp:
+                    if 200 <= resp.status < 300:
+                        self.webhook_sent += 1
+                        return True
+                    error = f"HTTP {resp.status}"
+                    if 400 <= resp.status < 500 and resp.status != 429:
+                        break  # the receiver will never accept this body
+            except (aiohttp.ClientError, TimeoutError) as e:
+                error = f"{type(e).__name__}: {e}"
+            log.info("webhook_retry", attempt=attempt, error=error, kind=event.kind, board=event.board)
+            if attempt < wh.attempts:
+                await self.clock.sleep(delay)
+                delay *= 2
+        self.webhook_failed += 1
+        log.warning("webhook_failed", error=error, kind=event.kind, board=event.board, attempts=attempt)
+        return False
+
+
+def _value(state: Any) -> Any:
+    return getattr(state, "value", state)

@@ -1,0 +1,132 @@
+"""
+The provisioning bundle for a freshly flashed card (``collector board add NAME --bundle DIR``).
+
+Files written to DIR:
+
+- ``user-data`` — cloud-init cloud-config: sets the hostname, installs the agent into a virtualenv,
+  installs the systemd unit, enrolls the board with its one-time code, starts the agent.
+- ``meta-data`` — cloud-init NoCloud instance id and hostname.
+- ``agent.yaml`` — the agent config the board will run with (``agent enroll`` writes the final one;
+  this copy is for the installer's records and for boards enrolled by hand).
+- ``README.txt`` — what to copy where.
+
+The enrollment code is single-use and expires; the card is sensitive only until the board's first boot.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+import secrets
+from pathlib import Path
+from typing import Any
+
+import yaml
+
+from agent.errors import ConfigError
+
+AGENT_PREFIX = "/opt/listenpost"
+AGENT_STATE_DIR = "/var/lib/listenpost/agent"
+UNIT_NAME = "listenpost-agent.service"
+UNIT_SOURCE = Path(__file__).resolve().parents[1] / "systemd" / UNIT_NAME
+
+
+class _Literal(str):
+    """A string YAML writes as a ``|`` block (unit files stay readable in user-data)."""
+
+
+def _literal(dumper: yaml.SafeDumper, data: _Literal) -> yaml.ScalarNode:
+    return dumper.represent_scalar("tag:yaml.org,2002:str", data, style="|")
+
+
+class _Dumper(yaml.SafeDumper):
+    pass
+
+
+_Dumper.add_representer(_Literal, _literal)
+
+
+def agent_unit(source: Path = UNIT_SOURCE) -> str:
+    """The project's agent unit with ExecStart pointed at the bundle's virtualenv."""
+    try:
+        text = source.read_text()
+    except OSError as e:
+        raise ConfigError(f"{source}: cannot read the agent unit for the bundle: {e.strerror or e}") from e
+    lines = []
+    for line in text.splitlines():
+        m = re.match(r"^(ExecStart=[-@:+!]*)(\S+)(.*)$", line)
+        if m and m.group(2).endswith("listenpost"):
+            line = f"{m.group(1)}{AGENT_PREFIX}/bin/listenpost{m.group(3)}"
+        lines.append(line)
+    return "\n".join(lines) + "\n"
+
+
+def agent_config(board: str, collector_url: str) -> dict[str, Any]:
+    """The agent.yaml of a board enrolled into ``AGENT_STATE_DIR`` (accepted by ``agent check-config``)."""
+    return {"board": board, "state_dir": AGENT_STATE_DIR,
+            "collector": {"url": collector_url.rstrip("/"), "credential_file": "credential"},
+            "source": {"kind": "bleak"}}
+
+
+def build_bundle(*, board: str, room: str, floor: str | None, code: str, collector_url: str,
+                 expires_at: float, package: str = "listenpost", unit_source: Path = UNIT_SOURCE) -> dict[str, str]:
+    """File name → content of the bundle."""
+    from importlib.metadata import PackageNotFoundError
+    from importlib.metadata import version as dist_version
+
+    try:
+        version = dist_version(package)
+    except PackageNotFoundError:
+        version = "0.1.0"
+    url = collector_url.rstrip("/")
+    pip = f"{AGENT_PREFIX}/bin/pip"
+    cli = f"{AGENT_PREFIX}/bin/listenpost"
+    cloud = {
+        "hostname": board,
+        "preserve_hostname": False,
+        "package_update": True,
+        "packages": ["python3-venv", "bluez"],
+        "write_files": [
+            {"path": f"/etc/systemd/system/{UNIT_NAME}", "owner": "root:root", "permissions": "0644",
+             "content": _Literal(agent_unit(unit_source))},
+        ],
+        "runcmd": [
+            ["python3", "-m", "venv", AGENT_PREFIX],
+            [pip, "install", "--upgrade", f"{package}=={version}"],
+            [cli, "agent", "enroll", "--collector", url, "--code", code, "--state-dir", AGENT_STATE_DIR],
+            ["systemctl", "daemon-reload"],
+            ["systemctl", "enable", "--now", UNIT_NAME],
+        ],
+    }
+    user_data = (f"#cloud-config\n# listenpost board {board} ({room}{', floor ' + floor if floor else ''}).\n"
+                 f"# The enrollment code works once and expires at Unix time {expires_at:.0f}.\n"
+                 + yaml.dump(cloud, Dumper=_Dumper, sort_keys=False, default_flow_style=None, width=120))
+    meta = {"instance-id": f"listenpost-{board}-{secrets.token_hex(4)}", "local-hostname": board}
+    readme = (f"Provisioning bundle for board {board} (room {room}).\n\n"
+              "1. Flash the board's OS image to the card.\n"
+              "2. Copy user-data and meta-data to the card's boot partition (cloud-init NoCloud).\n"
+              "3. Mount the board, power it on; on first boot it installs the agent, enrolls and starts scanning.\n"
+              f"   By hand instead: listenpost agent enroll --collector {url} --code {code}\n"
+              "4. Check the health page: the board appears as 'live' within a minute.\n\n"
+              "The enrollment code works once; after a re-flash run 'listenpost collector board reissue "
+              f"{board} --bundle DIR'.\n")
+    return {"user-data": user_data,
+            "meta-data": yaml.safe_dump(meta, sort_keys=False),
+            "agent.yaml": yaml.safe_dump(agent_config(board, url), sort_keys=False),
+            "README.txt": readme}
+
+
+def write_bundle(directory: str | Path, **kwargs: Any) -> list[Path]:
+    """Write the bundle to ``directory`` (created); files holding the code are mode 0600."""
+    d = Path(directory)
+    d.mkdir(parents=True, exist_ok=True)
+    written = []
+    for name, content in build_bundle(**kwargs).items():
+        path = d / name
+        tmp = d / f".{name}.tmp"
+        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+        with os.fdopen(fd, "w") as f:
+            f.write(content)
+        os.replace(tmp, path)
+        written.append(path)
+    return written

@@ -1,0 +1,93 @@
+"""
+``GET /metrics``: Prometheus text exposition (format 0.0.4) through prometheus_client.
+
+A custom collector turns one snapshot of the current state (the same `status_doc` the page uses) into
+metric families; nothing is kept in process-global registries, so several apps in one process (tests,
+the demo) never share series.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from typing import Any
+
+from aiohttp import web
+from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, generate_latest
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
+from prometheus_client.registry import Collector
+
+from collector.app import RUNTIME
+from collector.web.pages import STATE_LABELS, status_doc
+
+
+class SnapshotCollector(Collector):
+    """Metric families from one status snapshot (``collector.web.pages.status_doc``) and the batch counters."""
+
+    def __init__(self, doc: dict[str, Any], counters: Any) -> None:
+        self.doc = doc
+        self.counters = counters
+
+    def collect(self) -> Iterator[Metric]:
+        boards = self.doc["boards"]
+
+        def per_board(cls: type, name: str, doc: str, key: str, scale: float = 1.0) -> Metric:
+            fam = cls(name, doc, labels=["board"])
+            for r in boards:
+                if r.get(key) is not None:
+                    fam.add_metric([r["name"]], r[key] * scale)
+            return fam
+
+        yield per_board(CounterMetricFamily, "listenpost_readings", "Readings stored, per board.", "readings_total")
+        yield per_board(CounterMetricFamily, "listenpost_gap_readings",
+                        "Readings a board reported lost (spool overflow, corruption), per board.", "gap_readings")
+        yield per_board(CounterMetricFamily, "listenpost_adverts",
+                        "Advertisements the board's radio heard (all devices), from its latest heartbeat.", "adverts_total")
+        yield per_board(GaugeMetricFamily, "listenpost_clock_offset_seconds",
+                        "Collector time minus board monotonic time at the fit's reference point.", "clock_offset_ms", 1e-3)
+        yield per_board(GaugeMetricFamily, "listenpost_clock_skew_ppm",
+                        "Board clock rate error against the collector, parts per million (positive: fast).", "clock_skew_ppm")
+        yield per_board(GaugeMetricFamily, "listenpost_wall_clock_error_seconds",
+                        "Board wall clock minus collector time (health figure; readings do not use it).",
+                        "wall_error_ms", 1e-3)
+        yield per_board(GaugeMetricFamily, "listenpost_heartbeat_age_seconds",
+                        "Seconds since the board's latest heartbeat.", "heartbeat_age_s")
+        yield per_board(GaugeMetricFamily, "listenpost_last_contact_age_seconds",
+                        "Seconds since the board's latest heartbeat or batch.", "last_contact_age_s")
+        yield per_board(GaugeMetricFamily, "listenpost_spool_backlog_batches",
+                        "Sealed batches waiting in the board's spool, from its latest heartbeat.", "spool_backlog_batches")
+        yield per_board(GaugeMetricFamily, "listenpost_spool_backlog_bytes",
+                        "Bytes waiting in the board's spool, from its latest heartbeat.", "spool_backlog_bytes")
+
+        state = GaugeMetricFamily("listenpost_board_state", "1 for the board's current state, 0 otherwise.",
+                                  labels=["board", "state"])
+        for r in boards:
+            for s in STATE_LABELS:
+                state.add_metric([r["name"], s], 1.0 if r["state"] == s else 0.0)
+        yield state
+
+        by_state = GaugeMetricFamily("listenpost_boards", "Boards per state.", labels=["state"])
+        for s in STATE_LABELS:
+            by_state.add_metric([s], self.doc["fleet"]["by_state"].get(s, 0))
+        yield by_state
+
+        c = self.counters
+        batches = CounterMetricFamily("listenpost_batches", "Batch requests answered by this collector, by outcome.",
+                                      labels=["status"])
+        for status in ("stored", "duplicate", "conflict", "rejected", "unavailable"):
+            batches.add_metric([status], getattr(c, status))
+        yield batches
+        yield CounterMetricFamily("listenpost_request_bytes", "Batch request bytes received as sent (compressed).",
+                                  value=c.bytes_received)
+        yield GaugeMetricFamily("listenpost_tags", "Registered tags.", value=self.doc["fleet"]["tags"])
+
+
+async def metrics(request: web.Request) -> web.Response:
+    doc = await status_doc(request.app)
+    registry = CollectorRegistry(auto_describe=False)
+    registry.register(SnapshotCollector(doc, request.app[RUNTIME].counters))
+    body = generate_latest(registry)
+    return web.Response(body=body, headers={"Content-Type": CONTENT_TYPE_LATEST})
+
+
+def add_routes(app: web.Application) -> None:
+    app.router.add_get("/metrics", metrics, allow_head=False)

@@ -1,0 +1,51 @@
+// Redraw the tables from /v1/status; the server-rendered page stays usable if this never runs.
+(function () {
+  "use strict";
+  const table = document.getElementById("boards");
+  const LABELS = JSON.parse(table.dataset.labels);
+  const esc = (s) => String(s).replace(/[&<>"']/g, (c) => ({"&": "&amp;", "<": "&lt;", ">": "&gt;", '"': "&quot;", "'": "&#39;"}[c]));
+  const num = (v, unit, digits) => v === null || v === undefined ? "–"
+    : (Number.isInteger(v) && digits === undefined ? v.toLocaleString("en-US")
+       : v.toLocaleString("en-US", {minimumFractionDigits: digits ?? 1, maximumFractionDigits: digits ?? 1})) + (unit || "");
+  const age = (s) => s === null || s === undefined ? "never" : s < 90 ? `${s.toFixed(0)} s ago`
+    : s < 5400 ? `${(s / 60).toFixed(0)} min ago` : s < 172800 ? `${(s / 3600).toFixed(1)} h ago` : `${(s / 86400).toFixed(0)} d ago`;
+  const badge = (state, reason) => {
+    const [text, sym] = LABELS[state] || [state, "?"];
+    const title = reason ? ` title="${esc(reason)}"` : "";
+    return `<span class="state s-${esc(state)}"${title}><span aria-hidden="true">${sym}</span> ${esc(text)}</span>`;
+  };
+  const row = (r) => `<tr data-board="${esc(r.name)}" data-state="${esc(r.state)}">` +
+    `<th scope="row">${esc(r.name)}</th><td>${esc(r.room)}</td><td>${r.floor === null ? "–" : esc(r.floor)}</td>` +
+    `<td class="st">${badge(r.state, r.state_reason)}</td><td class="age num">${age(r.last_contact_age_s)}</td>` +
+    `<td class="num readings">${num(r.readings_total)}</td><td class="num">${num(r.readings_per_s, "/s", 1)}</td>` +
+    `<td class="num">${num(r.clock_skew_ppm, " ppm", 2)}</td><td class="num">${num(r.clock_residual_ms, " ms", 2)}</td>` +
+    `<td class="num">${r.wall_error_ms === null ? "–" : num(r.wall_error_ms / 1000, " s", 1)}</td>` +
+    `<td class="num">${num(r.spool_backlog_batches)}</td><td class="num">${num(r.adverts_total)}</td>` +
+    `<td>${r.last_event ? esc(r.last_event.kind) : "–"}</td></tr>`;
+  const clock = (t) => new Date(t * 1000).toISOString().slice(11, 19);
+  async function refresh() {
+    const flag = document.getElementById("refresh-state");
+    try {
+      const ctl = new AbortController();
+      const timer = setTimeout(() => ctl.abort(), 4000);
+      const res = await fetch("/v1/status", {cache: "no-store", signal: ctl.signal});
+      clearTimeout(timer);
+      if (!res.ok) throw new Error(`HTTP ${res.status}`);
+      const doc = await res.json();
+      table.tBodies[0].innerHTML = doc.boards.map(row).join("");
+      document.getElementById("boards-total").textContent = doc.fleet.boards;
+      document.getElementById("readings-total").textContent = doc.fleet.readings_total.toLocaleString("en-US");
+      document.getElementById("tags-total").textContent = doc.fleet.tags;
+      document.getElementById("summary").innerHTML = Object.keys(doc.fleet.by_state).sort()
+        .map((s) => `<li>${badge(s, null)} <b>${doc.fleet.by_state[s]}</b></li>`).join("");
+      document.getElementById("events").innerHTML = doc.events.map((e) =>
+        `<li><time>${clock(e.at)}</time> <b>${esc(e.board || "collector")}</b> ${esc(e.kind)}` +
+        `${e.detail && e.detail.new ? " → " + esc(e.detail.new) : ""}</li>`).join("") || "<li>no events yet</li>";
+      document.getElementById("generated").textContent = new Date(doc.at * 1000).toISOString().replace("T", " ").slice(0, 19) + " UTC";
+      flag.textContent = ""; flag.className = "";
+    } catch (err) {
+      flag.textContent = `· not updating (${err.message || err})`; flag.className = "stale";
+    }
+  }
+  setInterval(refresh, REFRESH_MS);
+})();
