@@ -94,6 +94,8 @@ def classify(e: BaseException, adapter: str | None = None) -> SourceUnavailable:
         if "not found" in text and "adapter" in text:
             return SourceUnavailable(SourceReason.ADAPTER_MISSING, text)
         return SourceUnavailable(SourceReason.OTHER, f"bleak: {text}")
+    if isinstance(e, TimeoutError):  # before OSError: TimeoutError is one
+        return SourceUnavailable(SourceReason.BLUEZ_DOWN, str(e) or "BlueZ did not answer in time")
     if isinstance(e, PermissionError):
         return SourceUnavailable(SourceReason.DENIED, f"no permission to reach the system D-Bus: {e}")
     if isinstance(e, FileNotFoundError | ConnectionRefusedError):
@@ -101,8 +103,6 @@ def classify(e: BaseException, adapter: str | None = None) -> SourceUnavailable:
                                  f"no system D-Bus to reach BlueZ ({e.strerror or e}); is this a machine with Bluetooth?")
     if isinstance(e, OSError):
         return SourceUnavailable(SourceReason.OTHER, f"D-Bus connection failed: {e}")
-    if isinstance(e, TimeoutError):
-        return SourceUnavailable(SourceReason.BLUEZ_DOWN, str(e) or "BlueZ did not answer in time")
     return SourceUnavailable(SourceReason.OTHER, f"{type(e).__name__}: {e}")
 
 
@@ -170,6 +170,8 @@ class BleakSource:
         self.reason: SourceReason | None = None
         """Why the source is (or last was) not scanning."""
         self.last_error: str | None = None
+        self.last_restart_reason: SourceReason | None = None
+        """Why the scanner was last rebuilt (STALLED, or the reason of a failed start)."""
         self.restarts = 0
         """Scanner rebuilds after a stall or a failure."""
         self.failures = 0
@@ -245,6 +247,7 @@ class BleakSource:
                 in_row += 1
                 self.failures += 1
                 self.state, self.reason, self.last_error = ScanState.UNAVAILABLE, err.reason, str(err)
+                self.last_restart_reason = err.reason
                 await self._stop(scanner)
                 if self.max_failures is not None and in_row >= self.max_failures:
                     log.error("scanner_unavailable", adapter=self.adapter, reason=err.reason.value, error=str(err))
@@ -267,7 +270,7 @@ class BleakSource:
                     self.state = ScanState.RESTARTING
                 await self._stop(scanner)
             self.restarts += 1
-            self.reason = SourceReason.STALLED
+            self.reason = self.last_restart_reason = SourceReason.STALLED
             log.warning("scanner_stalled", adapter=self.adapter, stall_seconds=self.stall_seconds)
 
     async def adverts(self) -> AsyncIterator[Advert]:
@@ -313,6 +316,8 @@ class BleakSource:
     def stats(self) -> dict[str, Any]:
         """Counters and state for the heartbeat (no addresses: those are filtered by the caller)."""
         return {"state": self.state.value, "reason": self.reason.value if self.reason else None,
-                "restarts": self.restarts, "failures": self.failures, "callbacks": self.callbacks,
+                "restarts": self.restarts,
+                "last_restart_reason": self.last_restart_reason.value if self.last_restart_reason else None,
+                "failures": self.failures, "callbacks": self.callbacks,
                 "adverts": self.adverts_seen, "dropped_no_rssi": self.dropped_no_rssi,
                 "dropped_overflow": self.dropped_overflow, "queue_depth": self._queue.qsize()}
