@@ -295,12 +295,23 @@ def _print_code(args: argparse.Namespace, answer: dict[str, Any], verb: str) -> 
     return 0
 
 
+def _check_bundle_possible(args: argparse.Namespace) -> None:
+    """Fail before the collector is asked for a code, so a bundle problem never leaves a half-done board."""
+    if getattr(args, "bundle", None):
+        from collector.provision import agent_unit
+        agent_unit()
+        if args.bundle.exists() and not args.bundle.is_dir():
+            raise ConfigError(f"--bundle: {args.bundle} exists and is not a directory")
+
+
 def _board_add(args: argparse.Namespace) -> int:
+    _check_bundle_possible(args)
     answer = request(args, "POST", "/v1/admin/boards", body={"name": args.name, "room": args.room, "floor": args.floor})
     return _print_code(args, answer, "added")
 
 
 def _board_reissue(args: argparse.Namespace) -> int:
+    _check_bundle_possible(args)
     answer = request(args, "POST", f"/v1/admin/boards/{args.name}/reissue")
     return _print_code(args, answer, "new code for")
 

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+from collections import deque
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -66,6 +67,8 @@ class Monitor:
         self._reported_holes: set[tuple[str, str, int, int]] = set()
         self._last_retention = float("-inf")
         self._state_cursor = 0
+        self._totals: deque[tuple[float, dict[str, int]]] = deque()
+        self._batch_contacts: dict[str, deque[float]] = {}
         self._task: asyncio.Task[None] | None = None
         self._webhook_task: asyncio.Task[None] | None = None
         self._webhook_queue: asyncio.Queue[Event] = asyncio.Queue(maxsize=WEBHOOK_QUEUE_MAX)
@@ -116,11 +119,13 @@ class Monitor:
         """Start the tracker from the stored states, so a restart does not announce every board again."""
         if self._seeded:
             return
-        from collector.liveness import LivenessSettings, LivenessTracker
+        from collector.liveness import BoardState, LivenessSettings, LivenessTracker
 
-        self.tracker = LivenessTracker(LivenessSettings(**self.settings.liveness))
         await self._follow_states()
-        self.tracker.seed({b: s["state"] for b, s in self.runtime.states.items()})
+        known = {b: BoardState(s["state"]) for b, s in self.runtime.states.items()
+                 if s.get("state") in BoardState._value2member_map_}
+        overrides = {"heartbeat_s": self.settings.heartbeat_seconds, **self.settings.liveness}
+        self.tracker = LivenessTracker(LivenessSettings(**overrides), initial=known)
         for e in await self._all_events("loss"):
             d = e.detail
             self._reported_holes.add((e.board or "", d.get("epoch", ""), d.get("first_seq", -1), d.get("last_seq", -1)))
@@ -148,44 +153,57 @@ class Monitor:
                 return
 
     async def _liveness(self, report: RoundReport) -> None:
-        from collector.liveness import BoardInputs
+        from collector.liveness import BoardInputs, HeartbeatSample
+        from collector.web.pages import stat
 
         now = self.clock.time()
         boards = await self.store.list_boards()
         counts = {c.board: c for c in await self.store.board_counts()}
         latest = await self.store.latest_heartbeats()
-        inputs: dict[str, Any] = {}
+        window = max(self.tracker.settings.deaf_window_s, self.tracker.settings.backlog_window_s)
+        # Readings per board a deaf-window ago, to tell whether the others heard tags meanwhile.
+        self._totals.append((now, {n: c.readings_total for n, c in counts.items()}))
+        while len(self._totals) > 1 and now - self._totals[1][0] >= self.tracker.settings.deaf_window_s:
+            self._totals.popleft()
+        then = self._totals[0][1]
         for b in boards:
-            hbs = await self.store.heartbeats(b.name, now - HISTORY_SECONDS)
-            hb = latest.get(b.name)
-            fit = None
-            boot = hb.boot if hb else None
-            if boot is not None:
-                fit = (await clock_model(self.runtime.clock_models, self.store, b.name, boot)).fit()
+            if b.enrolled_at is None and b.retired_at is None:
+                continue  # not on the network yet: nothing to judge
             c = counts.get(b.name)
-            arrivals = sorted({h.at for h in hbs} | ({c.last_batch_at} if c and c.last_batch_at else set()))
-            inputs[b.name] = BoardInputs(
-                arrivals=tuple(arrivals),
-                heartbeats=tuple((h.at, h.stats) for h in hbs),
-                clock_fit=fit,
-                retired=b.retired_at is not None,
-                enrolled=b.enrolled_at is not None,
-            )
+            if c is not None and c.last_batch_at is not None:
+                seen = self._batch_contacts.setdefault(b.name, deque(maxlen=256))
+                if not seen or seen[-1] != c.last_batch_at:
+                    seen.append(c.last_batch_at)
+            hbs = await self.store.heartbeats(b.name, now - window - 2 * self.settings.heartbeat_seconds)
+            contacts = sorted({h.at for h in hbs} | set(self._batch_contacts.get(b.name, ())))
+            hb = latest.get(b.name)
+            if hb is not None and hb.at not in contacts:
+                contacts = sorted([*contacts, hb.at])
+            fit = None
+            if hb is not None:
+                fit = (await clock_model(self.runtime.clock_models, self.store, b.name, hb.boot)).fit()
+            samples = [HeartbeatSample(h.at, int(stat(h.stats, "adverts_total", "pipeline.adverts_total") or 0),
+                                       int(stat(h.stats, "spool_batches", "spool.batches") or 0)) for h in hbs]
+            others = sum(total - then.get(name, 0) for name, total in
+                         ((n, c2.readings_total) for n, c2 in counts.items()) if name != b.name)
+            inputs = BoardInputs(board=b.name, contacts=contacts, heartbeats=samples, clock=fit,
+                                 retired=b.retired_at is not None, others_readings=others)
+            change = self.tracker.update(inputs, now)
             report.evaluated.append(b.name)
-        for change in self.tracker.update(inputs, now):
+            verdict = self.tracker.verdict(b.name)
+            prev = self.runtime.states.get(b.name, {})
+            st = _value(verdict.state)
+            self.runtime.states[b.name] = {"state": st, "reason": verdict.reason,
+                                           "since": prev.get("since") if prev.get("state") == st else now}
+            if change is None:
+                continue
             detail = {"old": _value(change.old), "new": _value(change.new), "reason": change.reason}
             event = Event(change.at, change.board, "state_changed", detail)
-            event_id = await self.store.add_event(event)
-            event = Event(event.at, event.board, event.kind, event.detail, event_id)
+            event = Event(event.at, event.board, event.kind, event.detail, await self.store.add_event(event))
             report.changes.append(event)
             log.info("board_state_changed", board=change.board, old=detail["old"], new=detail["new"],
                      reason=change.reason)
             self._queue_webhook(event)
-        for name, verdict in self.tracker.states.items():
-            prev = self.runtime.states.get(name, {})
-            st = _value(verdict.state)
-            self.runtime.states[name] = {"state": st, "reason": verdict.reason,
-                                         "since": prev.get("since") if prev.get("state") == st else now}
 
     async def _losses(self, report: RoundReport) -> None:
         now = self.clock.time()

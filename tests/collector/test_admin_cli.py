@@ -1,0 +1,178 @@
+"""The admin commands through ``listenpost.cli.main`` against a real collector on loopback."""
+
+from __future__ import annotations
+
+import asyncio
+import io
+import json
+import socket
+from pathlib import Path
+
+import pytest
+
+from agent.clock import VirtualClock
+from agent.logs import configure
+from collector.app import STORE, create_app
+from listenpost.cli import main
+from tests.collector.test_api import TAGS, batch_body, readings, settings_for
+
+
+@pytest.fixture
+async def server(aiohttp_server, tmp_path: Path, clock: VirtualClock):
+    # The server shares this process: keep its log lines out of the CLI's captured stdout.
+    configure("json", stream=io.StringIO())
+    app = create_app(settings_for(tmp_path / "state"), clock=clock, run_monitor=False)
+    return await aiohttp_server(app)
+
+
+async def cli(server, tmp_path: Path, *args: str, state: bool = True) -> int:
+    """Run one command in a worker thread (the CLI runs its own event loop) against ``server``."""
+    extra = ["--collector", str(server.make_url("")).rstrip("/")]
+    if state:
+        extra += ["--state-dir", str(tmp_path / "state")]
+    group, *rest = args
+    # Options go after the innermost subcommand and its positionals.
+    return await asyncio.to_thread(main, ["collector", group, *rest, *extra])
+
+
+async def test_board_add_json_list_show_and_reissue(server, tmp_path, capsys):
+    assert await cli(server, tmp_path, "board", "add", "g0-a", "--room", "G0 Foyer", "--floor", "ground", "--json") == 0
+    added = json.loads(capsys.readouterr().out)
+    assert added["name"] == "g0-a" and len(added["code"].replace("-", "")) == 16
+    assert await cli(server, tmp_path, "board", "add", "g3-a", "--room", "G3 Weather Hall") == 0
+    out = capsys.readouterr().out
+    assert "enrollment code:" in out and "listenpost agent enroll --collector" in out
+    assert await cli(server, tmp_path, "board", "list") == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert lines[0].split() == ["BOARD", "ROOM", "FLOOR", "ENROLLED", "OFFSET", "dB"]
+    assert [ln.split()[0] for ln in lines[2:]] == ["g0-a", "g3-a"]
+    # Columns line up: every row starts its ROOM column where the header does.
+    col = lines[0].index("ROOM")
+    assert all(ln[col - 2:col] == "  " and ln[col] != " " for ln in lines[2:])
+    assert await cli(server, tmp_path, "board", "add", "g0-a", "--room", "G0 Foyer") == 1  # exists: 409
+    assert "already exists" in capsys.readouterr().err
+    assert await cli(server, tmp_path, "board", "add", "Bad Name", "--room", "x") == 2  # 400: bad input
+    assert "name" in capsys.readouterr().err
+    assert await cli(server, tmp_path, "board", "reissue", "g0-a", "--json") == 0
+    assert json.loads(capsys.readouterr().out)["code"] != added["code"]
+    assert await cli(server, tmp_path, "board", "show", "g0-a") == 0
+    assert "G0 Foyer" in capsys.readouterr().out
+    assert await cli(server, tmp_path, "board", "show", "nope") == 1
+
+
+async def test_board_add_with_bundle_writes_cloud_init_files(server, tmp_path, capsys):
+    bundle = tmp_path / "card"
+    assert await cli(server, tmp_path, "board", "add", "u1-a", "--room", "U1 Space Gallery", "--bundle", str(bundle),
+                     "--json") == 0
+    code = json.loads(capsys.readouterr().out)["code"]
+    user_data = (bundle / "user-data").read_text()
+    assert user_data.startswith("#cloud-config\n") and code in user_data
+    assert (bundle / "user-data").stat().st_mode & 0o077 == 0
+
+
+async def test_tags_import_plain_and_csv_all_or_nothing(server, tmp_path, capsys):
+    plain = tmp_path / "tags.txt"
+    plain.write_text("# visitor tags\n" + "\n".join(TAGS[:3]) + "\n\n" + TAGS[0].upper().replace("IBEACON", "ibeacon") + "  # again\n")
+    assert await cli(server, tmp_path, "tags", "import", str(plain)) == 0
+    assert "3 tags read, 3 new" in capsys.readouterr().out
+    table = tmp_path / "tags.csv"
+    table.write_text(f"label,id\nfoyer,{TAGS[3]}\nlpx,{TAGS[5]}\n")
+    assert await cli(server, tmp_path, "tags", "import", str(table)) == 0
+    assert "2 new" in capsys.readouterr().out
+    bad = tmp_path / "bad.csv"
+    bad.write_text(f"label,id\na,{TAGS[4]}\nb,ibeacon:not-a-uuid:1:2\n")
+    assert await cli(server, tmp_path, "tags", "import", str(bad)) == 2
+    err = capsys.readouterr().err
+    assert f"{bad}:3:" in err
+    bad_plain = tmp_path / "bad.txt"
+    bad_plain.write_text(TAGS[4] + "\n# ok so far\nmac:zz\n")
+    assert await cli(server, tmp_path, "tags", "import", str(bad_plain)) == 2
+    assert f"{bad_plain}:3:" in capsys.readouterr().err
+    # Nothing of the bad files was stored (TAGS[4] appears only in them).
+    assert await cli(server, tmp_path, "tags", "list") == 0
+    listed = capsys.readouterr().out.split()
+    assert listed == sorted([*TAGS[:4], TAGS[5]])
+    assert await cli(server, tmp_path, "tags", "retire", TAGS[0]) == 0
+    assert "retired 1 of 1" in capsys.readouterr().out
+
+
+async def test_status_json_and_table(server, tmp_path, capsys):
+    client_app = server.app
+    assert await cli(server, tmp_path, "board", "add", "g1-a", "--room", "G1 Light & Optics", "--json") == 0
+    code = json.loads(capsys.readouterr().out)["code"]
+    import aiohttp
+    async with aiohttp.ClientSession(timeout=aiohttp.ClientTimeout(total=10)) as s:
+        async with s.post(server.make_url("/v1/enroll"), json={"code": code, "fingerprint": {}}) as r:
+            token = (await r.json())["token"]
+        async with s.post(server.make_url("/v1/batches"), json=batch_body("g1-a", 0, readings(25)),
+                          headers={"Authorization": f"Bearer {token}"}) as r:
+            assert r.status == 200
+    assert await cli(server, tmp_path, "status", "--json") == 0
+    doc = json.loads(capsys.readouterr().out)
+    row = doc["boards"][0]
+    assert {"name", "room", "state", "readings_total", "clock_skew_ppm", "clock_offset_ms"} <= set(row)
+    assert (row["name"], row["room"], row["readings_total"]) == ("g1-a", "G1 Light & Optics", 25)
+    assert await cli(server, tmp_path, "status") == 0
+    out = capsys.readouterr().out
+    assert "1 boards · 25 readings" in out and "g1-a" in out
+    assert client_app[STORE] is not None
+
+
+async def test_export_csv_and_npz(server, tmp_path, clock, capsys):
+    import csv
+
+    import numpy as np
+
+    assert await cli(server, tmp_path, "board", "add", "g2-a", "--room", "G2 Sound Lab", "--json") == 0
+    code = json.loads(capsys.readouterr().out)["code"]
+    import aiohttp
+    t_start = clock.time()
+    async with aiohttp.ClientSession(timeout=aiohttp.ClientTimeout(total=10)) as s:
+        async with s.post(server.make_url("/v1/enroll"), json={"code": code, "fingerprint": {}}) as r:
+            token = (await r.json())["token"]
+        # 20 readings 0.25 s apart, sent at board time 100 s: they span [t2 - 50, t2 - 45.25].
+        async with s.post(server.make_url("/v1/batches"), json=batch_body("g2-a", 0, readings(20), t1=100.0),
+                          headers={"Authorization": f"Bearer {token}"}) as r:
+            assert r.status == 200
+    out_csv = tmp_path / "x.csv"
+    assert await cli(server, tmp_path, "export", "--from", str(t_start - 60), "--to", str(t_start),
+                     "--bin", "10", "--format", "csv", "--out", str(out_csv)) == 0
+    rows = list(csv.DictReader(out_csv.open()))
+    assert rows and sum(int(r["n"]) for r in rows) == 20
+    assert {r["board"] for r in rows} == {"g2-a"}
+    out_npz = tmp_path / "x.npz"
+    iso_from = __import__("datetime").datetime.fromtimestamp(t_start - 60, __import__("datetime").UTC).isoformat()
+    assert await cli(server, tmp_path, "export", "--from", iso_from, "--to", str(t_start), "--bin", "10",
+                     "--format", "npz", "--out", str(out_npz)) == 0
+    with np.load(out_npz, allow_pickle=False) as z:
+        assert int(np.sum(z["counts"])) == 20
+    assert await cli(server, tmp_path, "export", "--from", "yesterday", "--to", "1", "--bin", "1",
+                     "--out", str(out_csv)) == 2
+
+
+async def test_unreachable_collector_and_bad_token(server, tmp_path, capsys, monkeypatch):
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]  # closed again: nothing listens there
+    state = tmp_path / "state"
+    rc = await asyncio.to_thread(main, ["collector", "board", "list", "--collector", f"http://127.0.0.1:{port}",
+                                        "--state-dir", str(state), "--timeout", "5"])
+    assert rc == 1
+    assert "cannot reach the collector" in capsys.readouterr().err
+    monkeypatch.setenv("LISTENPOST_ADMIN_TOKEN", "wrong-token")
+    assert await cli(server, tmp_path, "board", "list", state=False) == 1
+    assert "refused the admin token" in capsys.readouterr().err
+    monkeypatch.setenv("LISTENPOST_ADMIN_TOKEN", (state / "admin-token").read_text().strip())
+    assert await cli(server, tmp_path, "board", "list", state=False) == 0
+    assert (state / "admin-token").stat().st_mode & 0o777 == 0o600
+
+
+async def test_events_listing(server, tmp_path, capsys):
+    assert await cli(server, tmp_path, "board", "add", "g5-a", "--room", "G5 Shop") == 0
+    assert await cli(server, tmp_path, "board", "retire", "g5-a") == 0
+    capsys.readouterr()
+    assert await cli(server, tmp_path, "events", "--json") == 0
+    evs = json.loads(capsys.readouterr().out)["events"]
+    assert [(e["board"], e["kind"]) for e in evs] == [("g5-a", "retired")]
+    assert await cli(server, tmp_path, "events", "--since", str(evs[0]["id"]), "--json") == 0
+    assert json.loads(capsys.readouterr().out)["events"] == []
