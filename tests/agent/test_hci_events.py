@@ -225,3 +225,52 @@ def test_advert_to_event_round_trip():
     ev = advert_to_event(long)
     assert ev[2] == 0x0D
     assert report_to_advert(parse_event_packet(ev)[0], 9) == long
+
+
+# ---------------------------------------------------------------- raw HCI source framing
+
+
+async def _drain(src) -> list:
+    return [a async for a in src.adverts()]
+
+
+async def test_hci_source_reads_h4_packets_from_a_socket(clock):
+    """One H4 packet per datagram, as a raw HCI socket delivers them (a SEQPACKET pair stands in for it)."""
+    import asyncio
+    import socket
+
+    from agent.sources.hci import HciSource
+    ours, theirs = socket.socketpair(socket.AF_UNIX, socket.SOCK_SEQPACKET)
+    for pkt in (LEGACY, b"\x04\x0e\x04\x01\x0c\x20\x00", LEGACY[:-3], LEGACY[:-1] + b"\x7f", EXTENDED):
+        theirs.send(pkt)
+    theirs.close()
+    src = HciSource(0, clock, sock=ours)
+    got = await asyncio.wait_for(_drain(src), 5)
+    assert [(a.address, a.rssi_dbm, a.local_name, a.t_mono_ns) for a in got] == [
+        ("C0:11:22:33:44:55", -60, "t1", 1000 * 10**9), ("C0:11:22:33:44:55", -72, "t1", 1000 * 10**9)]
+    assert src.stats() == {"packets": 5, "adverts": 2, "bad_packets": 1, "dropped_no_rssi": 1, "fragments_dropped": 0}
+    assert ours.fileno() == -1  # closed when the stream ended
+
+
+async def test_hci_source_without_af_bluetooth(clock, monkeypatch):
+    """A Python without AF_BLUETOOTH gives SourceUnavailable(NO_BLUETOOTH) with a message saying so."""
+    import socket
+
+    from agent.errors import SourceReason, SourceUnavailable
+    from agent.sources.hci import HciSource, dev_id_of
+    monkeypatch.delattr(socket, "AF_BLUETOOTH", raising=False)
+    with pytest.raises(SourceUnavailable, match="no AF_BLUETOOTH") as e:
+        await _drain(HciSource(0, clock))
+    assert e.value.reason is SourceReason.NO_BLUETOOTH
+    assert dev_id_of("hci3") == 3 and dev_id_of(None) == 0
+    with pytest.raises(ValueError, match="hci0"):
+        dev_id_of("bt0")
+
+
+def test_hci_filter_layout():
+    """hci_ufilter: event packets; Command Complete, Command Status, LE Meta (BLE-NOTES §6, kernel hci_sock.h)."""
+    import struct
+
+    from agent.sources.hci import HCI_FILTER_EVENTS
+    type_mask, ev0, ev1, opcode = struct.unpack("<IIIH", HCI_FILTER_EVENTS)
+    assert type_mask == 1 << 4 and ev0 == (1 << 0x0E) | (1 << 0x0F) and ev1 == 1 << (0x3E - 32) and opcode == 0
