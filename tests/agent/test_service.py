@@ -309,3 +309,35 @@ async def test_no_process_global_state_two_boards_in_one_loop(tmp_path):
     for s, minor in zip(services, (1, 2), strict=True):
         kept = await spooled_readings(s.cfg.state_path("spool.sqlite"), clock)
         assert {k[0] for k in kept} == {tag(minor)} and len(kept) > 0
+
+
+async def test_contract_with_the_real_collector_enroll_then_upload(aiohttp_server, tmp_path):
+    """The real collector app (SQLite under tmp_path): enroll, fetch config, upload; readings stored once."""
+    from agent.config import load_agent_config
+    from agent.enroll import EnrollStatus, enroll
+    from collector.app import STORE, create_app
+    from collector.auth import code_hash
+    from collector.config import CollectorSettings
+    from collector.store import Board, Enrollment
+
+    clock = VirtualClock()
+    app = create_app(CollectorSettings(state_dir=str(tmp_path / "collector")), clock=clock, run_monitor=False)
+    (tmp_path / "collector").mkdir()
+    server = await aiohttp_server(app)
+    store = app[STORE]
+    await store.add_board(Board("g1-a", "G1", "ground", clock.time()),
+                          Enrollment("g1-a", code_hash("BRK-G1A-7731"), clock.time() + 3600))
+    await store.add_tags([tag(1), tag(2)], clock.time())
+    url = str(server.make_url("")).rstrip("/")
+    result = await enroll(url, "BRK-G1A-7731", tmp_path / "board", clock=clock)
+    assert result.status is EnrollStatus.ENROLLED, result.message
+    cfg = load_agent_config(result.config_path)
+    adverts, expected = traffic(clock, 20.0, [1, 2, 3])
+    expected = {k for k in expected if k[0] != tag(3)}  # minor 3 is not registered at the collector
+    async with aiohttp.ClientSession() as session:
+        task = asyncio.create_task(run_agent(cfg, clock=clock, source=ListSource(clock, adverts),
+                                             exit_when_source_ends=True, session=session))
+        assert await run_on_virtual_time(clock, task) == 0
+    counts = {c.board: c for c in await store.board_counts()}
+    assert counts["g1-a"].readings_total == len(expected)
+    assert (await store.latest_heartbeats())["g1-a"].stats["adverts_seen"] == len(adverts)
