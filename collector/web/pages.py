@@ -137,6 +137,8 @@ def _fmt(v: Any, unit: str = "", digits: int = 1) -> str:
     if v is None:
         return "–"
     if isinstance(v, float):
+        if abs(v) < 0.5 * 10 ** -digits:
+            v = 0.0  # no "-0.00"
         return f"{v:,.{digits}f}{unit}"
     if isinstance(v, int):
         return f"{v:,}{unit}"
@@ -162,6 +164,11 @@ def _state_badge(state: str, reason: str | None) -> str:
             f"{html.escape(text)}</span>")
 
 
+def _event_text(ev: dict[str, Any]) -> str:
+    new = ev["detail"].get("new") if ev["kind"] == "state_changed" else None
+    return f"→ {new}" if new else ev["kind"]
+
+
 def _board_row(r: dict[str, Any]) -> str:
     ev = r["last_event"]
     cells = [
@@ -176,7 +183,7 @@ def _board_row(r: dict[str, Any]) -> str:
         f'<td class="num">{_fmt(r["wall_error_ms"] / 1000.0 if r["wall_error_ms"] is not None else None, " s", 1)}</td>',
         f'<td class="num">{_fmt(r["spool_backlog_batches"])}</td>',
         f'<td class="num">{_fmt(r["adverts_total"])}</td>',
-        f'<td>{html.escape(ev["kind"]) if ev else "–"}</td>',
+        f'<td>{html.escape(_event_text(ev)) if ev else "–"}</td>',
     ]
     return f'<tr data-board="{html.escape(r["name"])}" data-state="{html.escape(r["state"])}">' + "".join(cells) + "</tr>"
 
@@ -188,7 +195,8 @@ def render_page(doc: dict[str, Any], title: str = "listenpost · receivers") -> 
     events = "".join(
         f'<li><time>{time.strftime("%H:%M:%S", time.gmtime(e["at"]))}</time> '
         f'<b>{html.escape(e["board"] or "collector")}</b> {html.escape(e["kind"])}'
-        f'{" → " + html.escape(str(e["detail"].get("new"))) if e["detail"].get("new") else ""}</li>'
+        f'{" → " + html.escape(str(e["detail"].get("new"))) if e["detail"].get("new") else ""}'
+        f'{" <span class=why>" + html.escape(str(e["detail"]["reason"])) + "</span>" if e["detail"].get("reason") else ""}</li>'
         for e in doc["events"]) or "<li>no events yet</li>"
     tpl = Template((TEMPLATES / "health.html").read_text())
     return tpl.substitute(
@@ -205,6 +213,10 @@ def render_page(doc: dict[str, Any], title: str = "listenpost · receivers") -> 
 
 async def page(request: web.Request) -> web.Response:
     doc = await status_doc(request.app)
+    try:  # ?refresh=S: a wall display may want it slower, a test faster
+        doc["refresh_seconds"] = min(max(float(request.query.get("refresh", REFRESH_SECONDS)), 0.2), 300.0)
+    except ValueError:
+        pass
     name = request.app[SETTINGS].public_url or request.host
     return web.Response(text=render_page(doc, f"listenpost · {name}"), content_type="text/html",
                         headers={"Cache-Control": "no-store"})

@@ -50,8 +50,8 @@ async def add_board(client: TestClient, tmp_path: Path, name: str, room: str = "
 
 async def enrolled(client: TestClient, tmp_path: Path, name: str, room: str = "G0 Foyer",
                    fingerprint: dict[str, Any] | None = None) -> dict[str, str]:
-    """Add and enroll a board; returns its auth header."""
-    code = await add_board(client, tmp_path, name, room)
+    """Add and enroll a board (floor from the room's letter, as in SCENARIO.md); returns its auth header."""
+    code = await add_board(client, tmp_path, name, room, "upper" if room.startswith("U") else "ground")
     r = await client.post("/v1/enroll", json={"code": code, "fingerprint": fingerprint or {"machine_id": name}})
     assert r.status == 200, await r.text()
     return {"Authorization": "Bearer " + (await r.json())["token"]}

@@ -4,9 +4,14 @@
   const table = document.getElementById("boards");
   const LABELS = JSON.parse(table.dataset.labels);
   const esc = (s) => String(s).replace(/[&<>"']/g, (c) => ({"&": "&amp;", "<": "&lt;", ">": "&gt;", '"': "&quot;", "'": "&#39;"}[c]));
-  const num = (v, unit, digits) => v === null || v === undefined ? "–"
-    : (Number.isInteger(v) && digits === undefined ? v.toLocaleString("en-US")
-       : v.toLocaleString("en-US", {minimumFractionDigits: digits ?? 1, maximumFractionDigits: digits ?? 1})) + (unit || "");
+  const num = (v, unit, digits) => {
+    if (v === null || v === undefined) return "–";
+    if (Number.isInteger(v) && digits === undefined) return v.toLocaleString("en-US") + (unit || "");
+    const d = digits ?? 1;
+    if (Math.abs(v) < 0.5 * Math.pow(10, -d)) v = 0;  // no "-0.00"
+    return v.toLocaleString("en-US", {minimumFractionDigits: d, maximumFractionDigits: d}) + (unit || "");
+  };
+  const evText = (e) => e.kind === "state_changed" && e.detail && e.detail.new ? "→ " + e.detail.new : e.kind;
   const age = (s) => s === null || s === undefined ? "never" : s < 90 ? `${s.toFixed(0)} s ago`
     : s < 5400 ? `${(s / 60).toFixed(0)} min ago` : s < 172800 ? `${(s / 3600).toFixed(1)} h ago` : `${(s / 86400).toFixed(0)} d ago`;
   const badge = (state, reason) => {
@@ -21,7 +26,7 @@
     `<td class="num">${num(r.clock_skew_ppm, " ppm", 2)}</td><td class="num">${num(r.clock_residual_ms, " ms", 2)}</td>` +
     `<td class="num">${r.wall_error_ms === null ? "–" : num(r.wall_error_ms / 1000, " s", 1)}</td>` +
     `<td class="num">${num(r.spool_backlog_batches)}</td><td class="num">${num(r.adverts_total)}</td>` +
-    `<td>${r.last_event ? esc(r.last_event.kind) : "–"}</td></tr>`;
+    `<td>${r.last_event ? esc(evText(r.last_event)) : "–"}</td></tr>`;
   const clock = (t) => new Date(t * 1000).toISOString().slice(11, 19);
   async function refresh() {
     const flag = document.getElementById("refresh-state");
@@ -40,7 +45,8 @@
         .map((s) => `<li>${badge(s, null)} <b>${doc.fleet.by_state[s]}</b></li>`).join("");
       document.getElementById("events").innerHTML = doc.events.map((e) =>
         `<li><time>${clock(e.at)}</time> <b>${esc(e.board || "collector")}</b> ${esc(e.kind)}` +
-        `${e.detail && e.detail.new ? " → " + esc(e.detail.new) : ""}</li>`).join("") || "<li>no events yet</li>";
+        `${e.detail && e.detail.new ? " → " + esc(e.detail.new) : ""}` +
+        `${e.detail && e.detail.reason ? " <span class=why>" + esc(e.detail.reason) + "</span>" : ""}</li>`).join("") || "<li>no events yet</li>";
       document.getElementById("generated").textContent = new Date(doc.at * 1000).toISOString().replace("T", " ").slice(0, 19) + " UTC";
       flag.textContent = ""; flag.className = "";
     } catch (err) {
