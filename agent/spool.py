@@ -44,6 +44,7 @@ import os
 import secrets
 import shutil
 import sqlite3
+import zlib
 from collections import deque
 from collections.abc import Awaitable, Callable, Iterable, Sequence
 from dataclasses import dataclass
@@ -108,6 +109,9 @@ CREATE TABLE dead_letters (
     at_wall REAL NOT NULL
 );
 """
+
+_BODY_ERRORS = (OSError, EOFError, ValueError, zlib.error)
+"""What a damaged gzip body raises on the way to its JSON (gzip.BadGzipFile is an OSError)."""
 
 _COUNTERS = ("dropped_batches", "dropped_readings", "dead_letters", "corrupt_set_aside")
 
@@ -573,7 +577,7 @@ class _Disk:
                     if hashlib.sha256(raw).hexdigest() != dig:
                         raise ValueError("digest mismatch")
                     content = json.loads(raw)
-                except (OSError, EOFError, ValueError) as e:
+                except _BODY_ERRORS as e:
                     self._replace_bad_row(conn, found, epoch, seq, n, nbytes, str(e), offset_db, mono, wall)
                     continue
                 return SealedBatch(epoch, seq, dig, content, n, sealed_mono)
@@ -856,7 +860,7 @@ class _Salvage:
                 row = self._conn.execute(f"SELECT {_ROW_COLUMNS} FROM batches WHERE id=?", (rid,)).fetchone()
                 if row is None or hashlib.sha256(gzip.decompress(row[3])).hexdigest() != row[2]:
                     raise ValueError("digest mismatch")
-            except (sqlite3.Error, ValueError, OSError, EOFError):
+            except (sqlite3.Error, *_BODY_ERRORS):
                 n = self._keys.get((ep, seq))
                 self._lost.append(_Interval(ep, seq, seq, n or 0, unknown=n is None))
                 continue
