@@ -12,8 +12,9 @@ from collections.abc import Iterator
 from typing import Any
 
 from aiohttp import web
-from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, generate_latest
+from prometheus_client import CollectorRegistry, generate_latest
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
+from prometheus_client.exposition import CONTENT_TYPE_PLAIN_0_0_4
 from prometheus_client.registry import Collector
 
 from collector.app import RUNTIME
@@ -86,7 +87,7 @@ async def metrics(request: web.Request) -> web.Response:
     registry = CollectorRegistry(auto_describe=False)
     registry.register(SnapshotCollector(doc, request.app[RUNTIME].counters))
     body = generate_latest(registry)
-    return web.Response(body=body, headers={"Content-Type": CONTENT_TYPE_LATEST})
+    return web.Response(body=body, headers={"Content-Type": CONTENT_TYPE_PLAIN_0_0_4})
 
 
 def add_routes(app: web.Application) -> None:
