@@ -7,6 +7,7 @@ The ``listenpost collector ...`` admin commands are thin clients of these routes
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 import math
 import tempfile
 from pathlib import Path
@@ -245,8 +246,12 @@ async def export(request: web.Request) -> web.StreamResponse:
     all_boards = boards or sorted(b.name for b in await store.list_boards())
     all_tags = tags or sorted(set(rows.tag.tolist()) | set(await store.list_tags()))
 
-    def render() -> bytes:
+    try:  # size and name checks are cheap: do them here so a refusal is a 400, not a 500
         table = bin_readings(rows, t_from, t_to, bin_s, all_boards, all_tags)
+    except ValueError as e:
+        raise bad_field("bin", str(e)) from e
+
+    def render() -> bytes:
         with tempfile.TemporaryDirectory() as d:
             path = Path(d) / f"export.{fmt}"
             (write_csv if fmt == "csv" else write_npz)(table, path)
@@ -292,17 +297,20 @@ async def calibrate(request: web.Request) -> web.Response:
     if len(raw_dbm) == 0:
         raise ApiError(409, "no_readings", f"board {board.name!r} has no readings of {tag} in the last "
                        f"{minutes:g} minutes", field="tag")
-    result = calibrate_offset(np.asarray(raw_dbm, dtype=float), distance_m=distance, power_1m_dbm=power,
-                              exponent=exponent)
+    try:
+        result = calibrate_offset(np.asarray(raw_dbm, dtype=float), distance_m=distance, p1_dbm=power,
+                                  exponent=exponent)
+    except ValueError as e:
+        raise bad_field("distance_m", str(e)) from e
     cal = Calibration(board.name, now, float(result.offset_db), float(result.spread_db), int(result.samples), tag,
                       distance, board.fingerprint)
     await store.set_offset(cal)
     await store.add_event(Event(now, board.name, "calibrated", {**_calibration_json(cal),
-                                                                "warnings": list(result.warnings)}))
+                                                                "warnings": [str(w) for w in result.warnings]}))
     log.info("board_calibrated", board=board.name, offset_db=cal.offset_db, spread_db=cal.spread_db,
              samples=cal.samples)
-    return web.json_response({**_calibration_json(cal), "board": board.name, "warnings": list(result.warnings),
-                              "previous_offset_db": board.offset_db})
+    return web.json_response({**_calibration_json(cal), "board": board.name, "warnings": [str(w) for w in result.warnings],
+                              "median_dbm": result.median_dbm, "previous_offset_db": board.offset_db})
 
 
 async def walktest(request: web.Request) -> web.Response:
@@ -333,9 +341,18 @@ async def walktest(request: web.Request) -> web.Response:
         marks.append((room, t0, t1))
     store = request.app[STORE]
     rows = await store.readings(min(m[1] for m in marks), max(m[2] for m in marks), tags=[tag])
-    rooms = {b.name: b.room for b in await store.list_boards()}
-    report = walk_report(marks, rows, rooms)
-    return web.json_response({"tag": tag, "rooms": report})
+    boards = await store.list_boards()
+    room_of = {b.name: b.room for b in boards}
+    floors = {b.room: b.floor for b in boards if b.floor is not None}
+    rssi_dbm = rows.rssi_dd / 10.0
+    walk_rows = [(b, room_of.get(b, "?"), float(t), float(r))
+                 for b, t, r in zip(rows.board.tolist(), rows.t_collector.tolist(), rssi_dbm.tolist(), strict=True)]
+    try:
+        report = walk_report(marks, walk_rows, floors=floors)
+    except ValueError as e:
+        raise bad_field("marks", str(e)) from e
+    return web.json_response({"tag": tag, "readings": len(walk_rows),
+                              "rooms": [dataclasses.asdict(r) for r in report]})
 
 
 def add_routes(app: web.Application) -> None:

@@ -526,9 +526,11 @@ def _walktest(args: argparse.Namespace) -> int:
         return 0
     rows = []
     for r in answer["rooms"]:
-        rows.append((r.get("room"), r.get("best_board"), _num(r.get("best_rssi_dbm"), ".1f"), r.get("runner_up"),
-                     _num(r.get("margin_db"), ".1f"), ", ".join(r.get("overlap") or []) or "",
-                     _num(None if r.get("coverage") is None else 100 * r["coverage"], ".0f")))
-    _out(table(rows, ("ROOM", "STRONGEST", "dBm", "RUNNER-UP", "MARGIN dB", "ALSO HEARD WITHIN RANGE", "COVER %"),
-               right=(2, 4, 6)))
+        best, heard = r["strongest"], r["heard"]
+        runner = heard[1]["board"] if len(heard) > 1 else None
+        rows.append((r["room"], best["board"] if best else "nobody", _num(best["median_dbm"] if best else None, ".1f"),
+                     runner, _num(r["margin_db"], ".1f"), "yes" if r["strongest_in_room"] else "NO",
+                     ", ".join(h["board"] for h in r["overlap"]), f"{100 * r['seconds_share']:.0f}"))
+    _out(table(rows, ("ROOM", "STRONGEST", "dBm", "RUNNER-UP", "MARGIN dB", "IN ROOM", "OVERLAP (other rooms)",
+                      "COVER %"), right=(2, 4, 7)))
     return 0

@@ -86,6 +86,9 @@ def build_bundle(*, board: str, room: str, floor: str | None, code: str, collect
         "preserve_hostname": False,
         "package_update": True,
         "packages": ["python3-venv", "bluez"],
+        # The unit runs the agent as this user (User=listenpost, SupplementaryGroups=bluetooth).
+        "users": ["default", {"name": "listenpost", "system": True, "shell": "/usr/sbin/nologin",
+                              "groups": "bluetooth", "lock_passwd": True}],
         "write_files": [
             {"path": f"/etc/systemd/system/{UNIT_NAME}", "owner": "root:root", "permissions": "0644",
              "content": _Literal(agent_unit(unit_source))},
@@ -93,7 +96,10 @@ def build_bundle(*, board: str, room: str, floor: str | None, code: str, collect
         "runcmd": [
             ["python3", "-m", "venv", AGENT_PREFIX],
             [pip, "install", "--upgrade", f"{package}=={version}"],
-            [cli, "agent", "enroll", "--collector", url, "--code", code, "--state-dir", AGENT_STATE_DIR],
+            ["install", "-d", "-o", "listenpost", "-g", "listenpost", "-m", "0700", AGENT_STATE_DIR],
+            # Enroll as the agent's user, so the credential (0600) belongs to it.
+            ["runuser", "-u", "listenpost", "--", cli, "agent", "enroll", "--collector", url, "--code", code,
+             "--state-dir", AGENT_STATE_DIR],
             ["systemctl", "daemon-reload"],
             ["systemctl", "enable", "--now", UNIT_NAME],
         ],

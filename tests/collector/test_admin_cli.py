@@ -137,7 +137,7 @@ async def test_export_csv_and_npz(server, tmp_path, clock, capsys):
     out_csv = tmp_path / "x.csv"
     assert await cli(server, tmp_path, "export", "--from", str(t_start - 60), "--to", str(t_start),
                      "--bin", "10", "--format", "csv", "--out", str(out_csv)) == 0
-    rows = list(csv.DictReader(out_csv.open()))
+    rows = list(csv.DictReader(io.StringIO(out_csv.read_text())))
     assert rows and sum(int(r["n"]) for r in rows) == 20
     assert {r["board"] for r in rows} == {"g2-a"}
     out_npz = tmp_path / "x.npz"
@@ -176,3 +176,65 @@ async def test_events_listing(server, tmp_path, capsys):
     assert [(e["board"], e["kind"]) for e in evs] == [("g5-a", "retired")]
     assert await cli(server, tmp_path, "events", "--since", str(evs[0]["id"]), "--json") == 0
     assert json.loads(capsys.readouterr().out)["events"] == []
+
+
+async def _enroll_and_send(server, body_for, code: str) -> str:
+    import aiohttp
+    async with aiohttp.ClientSession(timeout=aiohttp.ClientTimeout(total=10)) as s:
+        async with s.post(server.make_url("/v1/enroll"), json={"code": code, "fingerprint": {"machine_id": "a"}}) as r:
+            token = (await r.json())["token"]
+        for body in body_for:
+            async with s.post(server.make_url("/v1/batches"), json=body, headers={"Authorization": f"Bearer {token}"}) as r:
+                assert r.status == 200, await r.text()
+    return token
+
+
+async def test_calibrate_from_a_reference_tag(server, tmp_path, capsys):
+    from agent.types import Reading
+
+    ref = TAGS[0]
+    assert await cli(server, tmp_path, "board", "add", "g0-b", "--room", "G0 Foyer", "--json") == 0
+    code = json.loads(capsys.readouterr().out)["code"]
+    # 40 readings at -74.0 dBm, 0.5 s apart, just before the send time.
+    rs = [Reading(ref, round((60 + i * 0.5) * 1e9), -74.0) for i in range(40)]
+    await _enroll_and_send(server, [batch_body("g0-b", 0, rs, t1=81.0)], code)
+    assert await cli(server, tmp_path, "calibrate", "g0-b", "--tag", ref, "--distance", "4", "--power-1m", "-59",
+                     "--exponent", "2", "--json") == 0
+    cal = json.loads(capsys.readouterr().out)
+    # REFERENCES.md §7 worked example (Rappaport log-distance model): P1 = -59 dBm, n = 2, d = 4 m gives
+    # RSSI(4 m) = -71.0412 dBm; a board that hears -74.0 there needs +2.9588 dB added.
+    assert cal["offset_db"] == pytest.approx(-71.0412 - (-74.0), abs=1e-3)
+    assert cal["samples"] == 40 and cal["spread_db"] == 0
+    assert await cli(server, tmp_path, "board", "show", "g0-b", "--json") == 0
+    shown = json.loads(capsys.readouterr().out)
+    assert shown["offset_db"] == pytest.approx(2.9588, abs=1e-3) and len(shown["calibrations"]) == 1
+    assert shown["recalibrate"] is False
+    assert await cli(server, tmp_path, "calibrate", "g0-b", "--tag", TAGS[1], "--distance", "4") == 1  # no readings
+
+
+async def test_walktest_report_per_room(server, tmp_path, clock, capsys):
+    from agent.types import Reading
+
+    ref = TAGS[1]
+    codes = {}
+    for name, room in (("g1-a", "G1 Light & Optics"), ("g2-a", "G2 Sound Lab")):
+        assert await cli(server, tmp_path, "board", "add", name, "--room", room, "--json") == 0
+        codes[name] = json.loads(capsys.readouterr().out)["code"]
+    # Board time = collector time − (t2 − t1); with t1 = 200 the readings at board 100..160 s are at
+    # collector t2 − 100 .. t2 − 40: the first half in G1, the second half in G2.
+    t2 = clock.time()
+    strong_first = [Reading(ref, round((100 + i) * 1e9), -55.0 if i < 30 else -80.0) for i in range(60)]
+    strong_second = [Reading(ref, round((100 + i) * 1e9), -82.0 if i < 30 else -58.0) for i in range(60)]
+    await _enroll_and_send(server, [batch_body("g1-a", 0, strong_first, t1=200.0)], codes["g1-a"])
+    await _enroll_and_send(server, [batch_body("g2-a", 0, strong_second, t1=200.0)], codes["g2-a"])
+    marks = tmp_path / "marks.csv"
+    marks.write_text(f"room,from,to\nG1 Light & Optics,{t2 - 100},{t2 - 70}\nG2 Sound Lab,{t2 - 70},{t2 - 40}\n")
+    assert await cli(server, tmp_path, "walktest", "--tag", ref, "--marks", str(marks), "--json") == 0
+    report = json.loads(capsys.readouterr().out)["rooms"]
+    assert [(r["room"], r["strongest"]["board"], r["margin_db"]) for r in report] == [
+        ("G1 Light & Optics", "g1-a", 27.0), ("G2 Sound Lab", "g2-a", 22.0)]
+    assert await cli(server, tmp_path, "walktest", "--tag", ref, "--marks", str(marks)) == 0
+    assert "G2 Sound Lab" in capsys.readouterr().out
+    marks.write_text("room,from\nG1,1\n")
+    assert await cli(server, tmp_path, "walktest", "--tag", ref, "--marks", str(marks)) == 2
+    assert f"{marks}:1:" in capsys.readouterr().err
