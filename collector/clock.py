@@ -153,8 +153,9 @@ def wall_error_s(board_wall: float | np.ndarray, t_collector: float | np.ndarray
     reading and the collector time of the same instant, e.g. ``fit.to_collector_time(t1 * 1000)``
     for a heartbeat whose ``wall`` was read at T1.
     """
-    return np.subtract(board_wall, t_collector) if isinstance(board_wall, np.ndarray) or isinstance(
-        t_collector, np.ndarray) else float(board_wall) - float(t_collector)
+    if isinstance(board_wall, np.ndarray) or isinstance(t_collector, np.ndarray):
+        return np.subtract(board_wall, t_collector)
+    return float(board_wall) - float(t_collector)
 
 
 def band_fit(t_upper: np.ndarray, upper: np.ndarray, t_lower: np.ndarray, lower: np.ndarray,
