@@ -23,6 +23,7 @@ import contextlib
 import json
 import math
 import sqlite3
+from collections import deque
 from collections.abc import AsyncIterator, Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from itertools import repeat
@@ -112,7 +113,7 @@ class SqliteStore:
         self._wcon: sqlite3.Connection | None = None
         self._rcon: sqlite3.Connection | None = None
         self._closed = False
-        self._pending: list[tuple[IngestBatch, asyncio.Future[IngestResult]]] = []
+        self._pending: deque[tuple[IngestBatch, asyncio.Future[IngestResult]]] = deque()
         self._flusher: asyncio.Task[None] | None = None
         self._locks: dict[str, asyncio.Lock] = {}
         # name -> id caches; boards and tags are never deleted, so ids never change. The tag cache is
@@ -401,7 +402,7 @@ class SqliteStore:
             readings = 0
             while self._pending and len(group) < self._max_group_batches and (
                     not group or readings + self._pending[0][0].n <= self._max_group_readings):
-                item = self._pending.pop(0)
+                item = self._pending.popleft()
                 readings += item[0].n
                 group.append(item)
             try:

@@ -213,6 +213,15 @@ async def test_malformed_batches_name_the_field(store, change, field):
     assert await total_readings(store) == 0
 
 
+async def test_open_store_picks_the_backend_from_the_url(store_factory: StoreFactory):
+    """``open_store`` opens SQLite for sqlite:/// URLs and PostgreSQL for postgresql:// ones, migrated."""
+    store = await open_store(store_factory.url, **store_factory.options())
+    store_factory.opened.append(store)
+    assert type(store).__name__ == {"sqlite": "SqliteStore", "postgres": "PostgresStore"}[store_factory.backend]
+    await add_boards(store, "g0-a")
+    assert (await store.ingest(make_batch("g0-a", 0))).status is IngestStatus.STORED
+
+
 async def test_unknown_board_is_refused(store):
     """A batch for a board the store does not know is a ValueError naming it."""
     with pytest.raises(ValueError, match="g9-z"):
