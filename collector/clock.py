@@ -32,7 +32,7 @@ Method, and why:
      programme (maximise m subject to line + m ≤ forward, line − m ≥ backward). Its objective is
      concave and piecewise linear in the slope, so it is solved by a golden-section search on the
      slope (no LP solver at runtime). The slope is pinned by the lowest-delay points at the two
-     ends of the span, which is why it beats (2) on short spans.
+     ends of the span, which is why it is less noisy than ENVELOPE.
    - ``FitMethod.ENVELOPE``: the Moon, Skelly & Towsley (INFOCOM 1999) linear programme on each side
      — line under all points minimising the summed vertical distance, solved exactly as the
      lower-convex-hull edge above the mean abscissa (`lower_envelope`) — and the average of the
@@ -47,6 +47,9 @@ Method, and why:
    ``step_tolerance_s + δ/2`` is held back; ``step_confirm`` such exchanges that agree with each other
    start a new segment (a step, reported with its size and time); one that fits the old line again
    discards them as outliers. A step is therefore reported only once confirmed, never before.
+
+RFC 5905 section numbers cited here (§8 on-wire, §10 clock filter) are from memory; the formulas are
+checked against ntplib in the tests.
 
 Everything is pure and synchronous: the collector's handler loads samples, calls ``add``/``fit`` and
 stores the result. Large Unix times are made relative to a per-segment reference before fitting so

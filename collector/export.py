@@ -32,7 +32,7 @@ import tempfile
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import IO, Any
 
 import numpy as np
 
@@ -181,11 +181,12 @@ def _iso(t: float) -> str:
     return stamp.replace("+00:00", "Z")
 
 
-def _atomic_write(path: Path, write: Any, mode: str) -> None:
+def _atomic_write(path: Path, write: Any, binary: bool) -> None:
     path = Path(path)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
-        with os.fdopen(fd, mode, **({"newline": "", "encoding": "utf-8"} if "b" not in mode else {})) as f:
+        f: IO[Any] = os.fdopen(fd, "wb") if binary else os.fdopen(fd, "w", newline="", encoding="utf-8")
+        with f:
             write(f)
             f.flush()
             os.fsync(f.fileno())
@@ -213,7 +214,7 @@ def write_csv(table: ExportTable, path: str | os.PathLike[str]) -> int:
             w.writerow([_iso(start), repr(start), table.tags[g], table.boards[o],
                         f"{table.rssi[g, b, o]:.3f}", int(table.counts[g, b, o])])
 
-    _atomic_write(Path(path), write, "w")
+    _atomic_write(Path(path), write, binary=False)
     return int(bins.size)
 
 
@@ -231,7 +232,7 @@ def write_npz(table: ExportTable, path: str | os.PathLike[str]) -> None:
             metadata=np.asarray(json.dumps(table.metadata())),
         )
 
-    _atomic_write(Path(path), write, "wb")
+    _atomic_write(Path(path), write, binary=True)
 
 
 __all__ = ["Aggregate", "CSV_COLUMNS", "EXPORT_FORMAT", "EXPORT_VERSION", "ExportTable", "bin_readings",
