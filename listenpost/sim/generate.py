@@ -48,7 +48,6 @@ APPLE_COMPANY_ID = 0x004C
 """Company ID under which iBeacon-format frames travel (Bluetooth SIG assigned numbers)."""
 EDDYSTONE_UUID = uuid16_to_128(0xFEAA)
 TRUTH_FORMAT = "listenpost-sim-truth"
-BOARD_HEIGHT_NOTE = "board z is above its floor's slab"
 
 
 class DeviceKind(enum.Enum):
