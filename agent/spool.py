@@ -36,6 +36,7 @@ from __future__ import annotations
 
 import asyncio
 import concurrent.futures
+import contextlib
 import enum
 import gzip
 import hashlib
@@ -46,7 +47,7 @@ import shutil
 import sqlite3
 import zlib
 from collections import deque
-from collections.abc import Awaitable, Callable, Iterable, Sequence
+from collections.abc import Awaitable, Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, TypeVar
@@ -77,6 +78,8 @@ QUICK_CHECK_BUDGET = 200_000
 """Progress-handler calls (of 1000 SQLite VM steps each) the open-time check may take before it is
 cut short; bounds start-up on a large spool and a slow card."""
 SALVAGE_MAX_ROWS = 1_000_000
+BUSY_TIMEOUT_S = 1.0
+"""How long a statement waits for another connection's lock, seconds (on the worker thread)."""
 
 _CORRUPT_CODES = {11, 24, 26}  # SQLITE_CORRUPT, SQLITE_FORMAT, SQLITE_NOTADB (sqlite.org/rescode.html)
 _SQLITE_HEADER = b"SQLite format 3\x00"  # sqlite.org/fileformat2.html §1.3
@@ -252,6 +255,34 @@ def _compress(content: dict[str, Any]) -> tuple[bytes, str]:
     return gzip.compress(raw, compresslevel=GZIP_LEVEL, mtime=0), hashlib.sha256(raw).hexdigest()
 
 
+@contextlib.contextmanager
+def _transaction(conn: sqlite3.Connection, *, durable: bool) -> Iterator[None]:
+    """
+    One write transaction. ``durable`` commits with synchronous=FULL (the WAL is fsync'd at commit);
+    otherwise NORMAL, which the next durable commit's fsync covers.
+    """
+    if durable:
+        conn.execute("PRAGMA synchronous=FULL")
+    try:
+        conn.execute("BEGIN IMMEDIATE")
+        try:
+            yield
+        except BaseException:
+            if conn.in_transaction:
+                try:
+                    conn.execute("ROLLBACK")
+                except sqlite3.Error:
+                    pass  # the caller drops the connection anyway; keep the first error
+            raise
+        conn.execute("COMMIT")
+    finally:
+        if durable and not conn.in_transaction:
+            try:
+                conn.execute("PRAGMA synchronous=NORMAL")
+            except sqlite3.Error:
+                pass
+
+
 def _fsync_dir(path: Path) -> None:
     """Make a rename in ``path`` durable (best effort: not every filesystem allows it)."""
     try:
@@ -330,8 +361,9 @@ class _Disk:
         if not path.is_file():
             # A directory or device where the spool should be is damage, not a config choice.
             raise _CorruptSpool(f"{path} is not a regular file")
-        conn = sqlite3.connect(path, isolation_level=None, check_same_thread=True, timeout=0)
-        return conn
+        # A short busy timeout: only this process writes, but a reader (a technician's sqlite3 shell)
+        # may hold a lock for a moment. It waits on the worker thread, never on the event loop.
+        return sqlite3.connect(path, isolation_level=None, timeout=BUSY_TIMEOUT_S)
 
     def _open_existing(self) -> None:
         conn = self._connect(self.path)
@@ -441,7 +473,7 @@ class _Disk:
         tmp = path.with_name(path.name + ".tmp")
         for suffix in ("", "-wal", "-shm", "-journal"):
             _remove(Path(str(tmp) + suffix))
-        conn = sqlite3.connect(tmp, isolation_level=None, timeout=0)
+        conn = sqlite3.connect(tmp, isolation_level=None, timeout=BUSY_TIMEOUT_S)
         try:
             conn.execute("PRAGMA journal_mode=WAL")
             conn.execute("PRAGMA synchronous=FULL")
@@ -516,22 +548,17 @@ class _Disk:
         bodies = [_compress(c) for c in contents]
 
         def op(conn: sqlite3.Connection) -> list[SealedBatch]:
-            conn.execute("PRAGMA synchronous=FULL")
-            try:
-                conn.execute("BEGIN IMMEDIATE")
+            out = []
+            with _transaction(conn, durable=True):
                 self._delete_acked(conn, acks)
                 need = sum(len(b) + ROW_OVERHEAD_BYTES for b, _ in bodies)
                 self._make_room(conn, need, boot, offset_db, mono, wall)
-                out = []
                 for content, (body, dig), chunk in zip(contents, bodies, chunks, strict=True):
-                    seq = self._next_seq(conn)
+                    seq = self._next_seq(conn)  # assigned inside the seal transaction, never re-cut
                     self._insert(conn, seq, dig, body, len(chunk), None, boot, mono, wall)
                     out.append(SealedBatch(self.epoch, seq, dig, content, len(chunk), mono))
                 if extra_dropped_readings:
                     self._bump(conn, "dropped_readings", extra_dropped_readings)
-                conn.execute("COMMIT")
-            finally:
-                conn.execute("PRAGMA synchronous=NORMAL")
             return out
 
         before = self._state()
@@ -545,9 +572,8 @@ class _Disk:
 
     def flush_acks(self, acks: set[tuple[str, int]], mono: float, wall: float) -> None:
         def op(conn: sqlite3.Connection) -> None:
-            conn.execute("BEGIN IMMEDIATE")
-            self._delete_acked(conn, acks)
-            conn.execute("COMMIT")
+            with _transaction(conn, durable=False):
+                self._delete_acked(conn, acks)
 
         before = self._state()
         try:
@@ -595,13 +621,10 @@ class _Disk:
         """Move a batch aside and seal a gap record for it; False if no such batch is spooled."""
 
         def op(conn: sqlite3.Connection) -> bool:
-            conn.execute("PRAGMA synchronous=FULL")
-            try:
-                conn.execute("BEGIN IMMEDIATE")
+            with _transaction(conn, durable=True):
                 row = conn.execute("DELETE FROM batches WHERE epoch=? AND seq=? RETURNING digest, body,"
                                    " n_readings, nbytes, gap", (epoch, seq)).fetchone()
                 if row is None:
-                    conn.execute("ROLLBACK")
                     return False
                 dig, body, n, nbytes, gap = row
                 self.batches -= 1
@@ -615,9 +638,6 @@ class _Disk:
                     # A refused gap record gets no gap record of its own (no loop); the counter says it.
                     self._seal_gap(conn, _Interval(epoch, seq, seq, n), GapReason.DEAD_LETTER, offset_db,
                                    mono, wall, status=status)
-                conn.execute("COMMIT")
-            finally:
-                conn.execute("PRAGMA synchronous=NORMAL")
             return True
 
         before = self._state()
@@ -633,14 +653,9 @@ class _Disk:
         epoch = new_epoch()
 
         def op(conn: sqlite3.Connection) -> str:
-            conn.execute("PRAGMA synchronous=FULL")
-            try:
-                conn.execute("BEGIN IMMEDIATE")
+            with _transaction(conn, durable=True):
                 conn.execute("UPDATE meta SET value=? WHERE key='epoch'", (epoch,))
                 conn.execute("UPDATE meta SET value='0' WHERE key='next_seq'")
-                conn.execute("COMMIT")
-            finally:
-                conn.execute("PRAGMA synchronous=NORMAL")
             return epoch
 
         before = self._state()
@@ -754,18 +769,13 @@ class _Disk:
 
     def _replace_bad_row(self, conn: sqlite3.Connection, rid: int, epoch: str, seq: int, n: int, nbytes: int,
                          problem: str, offset_db: float, mono: float, wall: float) -> None:
-        conn.execute("PRAGMA synchronous=FULL")
-        try:
-            conn.execute("BEGIN IMMEDIATE")
+        with _transaction(conn, durable=True):
             conn.execute("DELETE FROM batches WHERE id=?", (rid,))
             self.batches -= 1
             self.bytes -= nbytes
             self._bump(conn, "dropped_batches", 1)
             self._bump(conn, "dropped_readings", n)
             self._seal_gap(conn, _Interval(epoch, seq, seq, n), GapReason.SPOOL_CORRUPT, offset_db, mono, wall)
-            conn.execute("COMMIT")
-        finally:
-            conn.execute("PRAGMA synchronous=NORMAL")
         log.error("spool_batch_corrupt", epoch=epoch, seq=seq, readings=n, problem=problem)
 
     def _refresh_oldest(self, skip: set[tuple[str, int]]) -> None:
@@ -807,7 +817,7 @@ class _Salvage:
             return
         try:
             # Read-write open on purpose: a read-only one cannot replay a WAL whose -shm is missing.
-            self._conn = sqlite3.connect(path, isolation_level=None, timeout=0)
+            self._conn = sqlite3.connect(path, isolation_level=None, timeout=BUSY_TIMEOUT_S)
         except sqlite3.Error:
             return
         self._read_meta()

@@ -3,15 +3,21 @@
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import gzip
 import hashlib
 import json
 import random
+import shutil
 import sqlite3
+import tempfile
 import zlib
 from pathlib import Path
 
 import pytest
+from hypothesis import HealthCheck, settings
+from hypothesis import strategies as st
+from hypothesis.stateful import RuleBasedStateMachine, invariant, rule
 
 from agent import wire
 from agent.clock import VirtualClock
@@ -44,7 +50,7 @@ async def drain(spool: Spool) -> list[SealedBatch]:
 
 def rows(path: Path) -> list[tuple]:
     """The batches table as an independent connection sees it."""
-    with sqlite3.connect(path) as c:
+    with contextlib.closing(sqlite3.connect(path)) as c:
         return c.execute("SELECT epoch, seq, digest, body, n_readings, gap FROM batches ORDER BY id").fetchall()
 
 
@@ -100,7 +106,7 @@ class TestRoundTrip:
         head = path.read_bytes()[:20]
         # sqlite.org/fileformat2.html §1.3: magic "SQLite format 3\0"; bytes 18/19 are 2 in WAL mode.
         assert head[:16] == b"SQLite format 3\x00" and head[18:20] == b"\x02\x02"
-        with sqlite3.connect(path) as c:
+        with contextlib.closing(sqlite3.connect(path)) as c:
             assert c.execute("PRAGMA journal_mode").fetchone() == ("wal",)
             assert c.execute("PRAGMA integrity_check").fetchone() == ("ok",)
         (epoch, seq, digest, body, n, gap), = rows(path)
@@ -303,7 +309,7 @@ class TestDeadLettersAndEpochs:
                        "status": 400}
         assert wire.decode_content(got[-1].content).gap == gap
         await spool.close()
-        with sqlite3.connect(path) as c:
+        with contextlib.closing(sqlite3.connect(path)) as c:
             assert c.execute("SELECT epoch, seq, status, reason, n_readings FROM dead_letters").fetchall() == [
                 (epoch, 1, 400, "content.readings: bad", 11)]
 
@@ -385,3 +391,136 @@ class TestDegraded:
         spool = await open_spool(path, clock)
         assert spool.stats().dropped_readings == 30
         await spool.close()
+
+
+# ---------------------------------------------------------------------------- model-based
+
+
+class SpoolMachine(RuleBasedStateMachine):
+    """
+    Random sequences of add, seal, peek, ack, dead letter, new epoch, reopen and overflow against a small
+    model: each sealed batch is spooled, acked, dead-lettered or covered by a gap record; no key ever
+    has two digests; the byte bound holds (plus one batch).
+    """
+
+    CAP = 6_000
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.loop = asyncio.new_event_loop()
+        self.dir = Path(tempfile.mkdtemp(prefix="spool-sm-"))
+        self.path = self.dir / "spool.sqlite"
+        self.clock = VirtualClock()
+        self.spool = self.run(open_spool(self.path, self.clock, max_bytes=self.CAP))
+        self.next_id = 0
+        self.digests: dict[tuple[str, int], str] = {}
+        self.readings: dict[tuple[str, int], int] = {}
+        self.done: set[tuple[str, int]] = set()           # acked or dead-lettered
+        self.covered: set[tuple[str, int]] = set()        # named by a gap record that was acked
+        self.biggest = 0
+        self.finished_readings = 0                        # in acked/dead-lettered batches and acked gaps
+
+    def run(self, coro):
+        return self.loop.run_until_complete(coro)
+
+    @rule(n=st.integers(1, 60))
+    def add(self, n: int) -> None:
+        rng = random.Random(self.next_id)
+        for _ in range(n):
+            self.spool.add(reading(self.next_id, rng=rng))
+            self.next_id += 1
+
+    @rule()
+    def seal(self) -> None:
+        b = self.run(self.spool.seal(boot="b", offset_db=0.0))
+        if b is not None:
+            key = (b.epoch, b.seq)
+            assert key not in self.digests, f"{key} cut twice"
+            self.digests[key] = b.digest
+            self.readings[key] = b.n_readings
+            self.biggest = max(self.biggest, len(gzip.compress(wire.canonical_json(b.content))) + ROW_OVERHEAD_BYTES)
+        assert self.spool.stats().readings_pending == 0 or self.spool.stats().degraded
+
+    def _head(self) -> SealedBatch | None:
+        b = self.run(self.spool.peek_oldest())
+        if b is not None:
+            key = (b.epoch, b.seq)
+            assert self.digests.setdefault(key, b.digest) == b.digest, f"{key} has two digests"
+            assert key not in self.done, f"{key} came back after ack or dead letter"
+        return b
+
+    @rule()
+    def ack_head(self) -> None:
+        b = self._head()
+        if b is not None:
+            self.run(self.spool.ack(b.epoch, b.seq))
+            self.done.add((b.epoch, b.seq))
+            self.finished_readings += b.n_readings
+            if (gap := b.content["gap"]) is not None:
+                self.covered.update((gap["epoch"], s) for s in range(gap["first_seq"], gap["last_seq"] + 1))
+                if gap["reason"] == "spool_full":
+                    self.finished_readings += gap["readings"]
+
+    @rule()
+    def dead_letter_head(self) -> None:
+        b = self._head()
+        if b is not None:
+            self.run(self.spool.dead_letter(b.epoch, b.seq, 400, "refused"))
+            self.done.add((b.epoch, b.seq))
+            self.finished_readings += b.n_readings   # its dead_letter gap record repeats, not adds, this count
+
+    @rule()
+    def new_epoch(self) -> None:
+        self.run(self.spool.new_epoch("digest_conflict"))
+
+    @rule()
+    def reopen(self) -> None:
+        self.run(self.spool.close())
+        self.spool = self.run(open_spool(self.path, self.clock, max_bytes=self.CAP))
+
+    @invariant()
+    def bounded(self) -> None:
+        assert self.spool.stats().bytes <= self.CAP + self.biggest
+
+    def _on_disk(self) -> tuple[dict[tuple[str, int], str], set[tuple[str, int]], int]:
+        """Keys and digests in the file, seqs its gap records name, readings it accounts for."""
+        present, covered, readings = {}, set(), 0
+        with contextlib.closing(sqlite3.connect(self.path)) as c:
+            for epoch, seq, digest, gap, n in c.execute("SELECT epoch, seq, digest, gap, n_readings FROM batches"):
+                present[(epoch, seq)] = digest
+                readings += n
+                if gap is not None:
+                    g = json.loads(gap)
+                    covered.update((g["epoch"], s) for s in range(g["first_seq"], g["last_seq"] + 1))
+                    readings += g["readings"] if g["reason"] == "spool_full" else 0
+        return present, covered, readings
+
+    @invariant()
+    def nothing_vanishes(self) -> None:
+        present, covered, _ = self._on_disk()
+        for key, digest in present.items():
+            assert self.digests.get(key, digest) == digest
+        for key in self.readings:
+            assert key in present or key in self.done or key in self.covered or key in covered, \
+                f"{key} vanished without a gap record"
+
+    def _acked_but_on_disk(self) -> int:
+        """Readings of finished batches whose lazy delete had not been committed (none after close)."""
+        present, _, _ = self._on_disk()
+        assert not (set(present) & self.done), "close left acked batches behind"
+        return 0
+
+    def teardown(self) -> None:
+        try:
+            self.run(self.spool.close())
+            # Every reading added is in a spooled or finished batch, or counted by exactly one gap record.
+            _, _, on_disk = self._on_disk()
+            assert on_disk - self._acked_but_on_disk() + self.finished_readings == self.next_id
+        finally:
+            self.loop.close()
+            shutil.rmtree(self.dir, ignore_errors=True)
+
+
+TestSpoolMachine = SpoolMachine.TestCase
+TestSpoolMachine.settings = settings(max_examples=25, stateful_step_count=30, deadline=None,
+                                     suppress_health_check=[HealthCheck.too_slow])

@@ -6,6 +6,7 @@ write failure (RLIMIT_FSIZE), and a table of damaged files in the style of RELIA
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import gzip
 import json
 import os
@@ -34,7 +35,7 @@ BOOTTIME = getattr(time, "CLOCK_BOOTTIME", time.CLOCK_MONOTONIC)
 def spooled(path: Path) -> dict[tuple[str, int], tuple[str, list[int], dict | None]]:
     """(epoch, seq) -> (digest, reading ids, gap) as an independent connection reads the file."""
     out = {}
-    with sqlite3.connect(path) as c:
+    with contextlib.closing(sqlite3.connect(path)) as c:
         for epoch, seq, digest, body in c.execute("SELECT epoch, seq, digest, body FROM batches ORDER BY id"):
             content = json.loads(gzip.decompress(body))
             assert wire.digest(content) == digest
@@ -259,7 +260,7 @@ def flip(p: Path, offset: int, n: int = 16) -> None:
 
 def body_offset(path: Path, seq: int) -> int:
     """Where batch ``seq``'s gzip body sits in the database file (the bytes are unique)."""
-    with sqlite3.connect(path) as c:
+    with contextlib.closing(sqlite3.connect(path)) as c:
         (body,) = c.execute("SELECT body FROM batches WHERE seq=?", (seq,)).fetchone()
     off = path.read_bytes().find(body[:64])
     assert off > 0
@@ -268,7 +269,7 @@ def body_offset(path: Path, seq: int) -> int:
 
 def leaf_page_offset(path: Path) -> int:
     """Byte offset of a table leaf page in the middle of the batches table."""
-    with sqlite3.connect(path) as c:
+    with contextlib.closing(sqlite3.connect(path)) as c:
         page_size = c.execute("PRAGMA page_size").fetchone()[0]
         # dbstat is not always compiled in; the body offset tells us a page that holds batch rows.
     return (body_offset(path, N_BATCHES // 2) // page_size) * page_size
