@@ -106,7 +106,8 @@ class RecordingWriter:
         raw: IO[str]
         if self.path.name.endswith(".gz"):
             # compresslevel 6: most of level 9's ratio on repetitive JSON at a fraction of the CPU
-            raw = io.TextIOWrapper(gzip.open(self.path, "wb", compresslevel=6), encoding="utf-8", newline="\n")
+            raw = io.TextIOWrapper(gzip.GzipFile(self.path, "wb", compresslevel=6, mtime=0),  # mtime 0: same input, same bytes
+                                       encoding="utf-8", newline="\n")
         else:
             raw = open(self.path, "w", encoding="utf-8", newline="\n")  # noqa: SIM115 - closed in close()
         self._f = raw
