@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import math
 
+from agent.decode import make_reading
 from agent.errors import ConfigError
 from agent.types import Reading
 
@@ -49,4 +50,4 @@ class Calibrate:
         if off == 0.0:
             # Reading is immutable, so handing the same object on is safe and saves an allocation.
             return reading
-        return Reading(reading.tag, reading.t_mono_ns, reading.rssi_dbm + off, reading.telemetry)
+        return make_reading(reading.tag, reading.t_mono_ns, reading.rssi_dbm + off, reading.telemetry)

@@ -12,12 +12,19 @@ Precedence, first match wins:
    RSSI(s8) + reserved(1) — exactly 24 bytes.
 4. **Eddystone** (service data of UUID 0xFEAA): UID frame 0x00 (18 bytes, or 20 with the RFU bytes)
    → ``eddystone:`` identity; plain TLM frame 0x20 version 0x00 (14 bytes) → `Telemetry`, credited to
-   the Eddystone identity last seen from the same address. URL, EID and encrypted TLM frames name no
-   tag and fall through.
-5. **Configured rules** (`agent.config.DecodeRule`), in config order.
+   the Eddystone identity last seen from the same address (bounded LRU). URL, EID and encrypted TLM
+   frames name no tag and fall through.
+5. **Configured rules** (`agent.config.DecodeRule`), in config order. Built-in formats go first
+   because their layouts are fully specified; a rule is for firmware none of them describes.
 6. **Address, standalone only.** Without a `TagFilter` (tools that want every device) any advert not
    named otherwise becomes ``mac:<address>``. With a filter it does not: an unregistered address was
-   already ruled out in step 1, and building an identity only to drop it would cost time for nothing.
+   already ruled out in step 1.
+
+Attached to a filter, the decoder also matches recognised identities against the registered set by
+their raw bytes (`agent.filter.Registered`), so an unregistered tag is counted and dropped without
+its identity ever being formatted, and only registered Eddystone tags are remembered for TLM.
+Detached, it formats every identity and leaves the dropping to the filter; both give the same
+readings (tests/agent/test_decode.py checks that).
 
 Bytes off the air are never trusted and never raise: a frame whose marker matches a format but whose
 length does not (truncated, zero-length, overlong) is counted in `Decoder.decode_errors` and the
@@ -26,8 +33,9 @@ advert is dropped. Nothing about a dropped advert is logged.
 
 from __future__ import annotations
 
+import dataclasses
 from collections import OrderedDict
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from typing import TYPE_CHECKING
 
 from agent.config import DecodeRule
@@ -57,22 +65,49 @@ DEFAULT_TLM_MEMORY = 4096
 """Addresses remembered for TLM association (least recently seen forgotten first)."""
 
 
+def _reading_factory() -> Callable[..., Reading]:
+    """
+    A constructor for `Reading` that skips the frozen dataclass ``__init__``.
+
+    A frozen dataclass sets each field through ``object.__setattr__``; calling the slot descriptors
+    directly builds the identical object in about half the time, and readings are made once or twice
+    per advertisement heard. Used only while `Reading` is exactly the plain four-field record it is
+    now; any change to it (a new field, a ``__post_init__``) falls back to the real constructor.
+    """
+    names = tuple(f.name for f in dataclasses.fields(Reading))
+    if names != ("tag", "t_mono_ns", "rssi_dbm", "telemetry") or hasattr(Reading, "__post_init__"):
+        return Reading
+    new = object.__new__
+    set_tag, set_t, set_rssi, set_tel = (getattr(Reading, n).__set__ for n in names)
+
+    def make(tag: str, t_mono_ns: int, rssi_dbm: float, telemetry: Telemetry | None = None) -> Reading:
+        r = new(Reading)
+        set_tag(r, tag)
+        set_t(r, t_mono_ns)
+        set_rssi(r, rssi_dbm)
+        set_tel(r, telemetry)
+        return r
+
+    return make
+
+
+make_reading = _reading_factory()
+"""``make_reading(tag, t_mono_ns, rssi_dbm, telemetry=None)``: a `Reading`, built fast (see `_reading_factory`)."""
+
+
 class _Rule:
     """A `DecodeRule` with its lookups precomputed."""
 
-    __slots__ = ("company_id", "service_uuid", "prefix", "start", "end", "id_prefix")
+    __slots__ = ("name", "company_id", "service_uuid", "prefix", "start", "end", "id_prefix")
 
     def __init__(self, rule: DecodeRule) -> None:
+        self.name = rule.name
         self.company_id = rule.company_id
         self.service_uuid = uuid16_to_128(rule.service_uuid16) if rule.service_uuid16 is not None else None
         self.prefix = rule.prefix
         self.start = rule.offset
         self.end = rule.offset + rule.length
         self.id_prefix = rule_prefix(rule.name)
-
-
-class _Malformed(Exception):
-    """Raised inside the decoder only; turned into a count, never seen by callers."""
 
 
 def parse_tlm(p: bytes) -> Telemetry:
@@ -107,7 +142,9 @@ class Decoder:
         tlm_memory: how many addresses to remember for Eddystone-TLM association.
 
     Counters (aggregate only; the heartbeat reports them):
-        decoded: adverts that named a tag identity.
+        decoded: adverts that became a reading (with a registry: of a registered tag).
+        unregistered: adverts whose identity was recognised but is not registered (with a registry only;
+            without one, such readings are returned and the filter drops them).
         decode_errors: adverts dropped because a frame broke its format's layout.
         no_identity: adverts that named no tag (and, with a registry, whose address is not registered).
         tlm_unmatched: TLM frames from an address with no recently seen (registered) Eddystone-UID.
@@ -115,7 +152,7 @@ class Decoder:
     """
 
     __slots__ = ("_rules", "_registry", "_eddy_by_addr", "_tlm_memory",
-                 "decoded", "decode_errors", "no_identity", "tlm_unmatched", "telemetry")
+                 "decoded", "unregistered", "decode_errors", "no_identity", "tlm_unmatched", "telemetry")
 
     def __init__(self, rules: Sequence[DecodeRule] = (), *, registry: TagFilter | None = None,
                  tlm_memory: int = DEFAULT_TLM_MEMORY) -> None:
@@ -126,89 +163,109 @@ class Decoder:
         self._eddy_by_addr: OrderedDict[str, str] = OrderedDict()
         self._tlm_memory = tlm_memory
         self.decoded = 0
+        self.unregistered = 0
         self.decode_errors = 0
         self.no_identity = 0
         self.tlm_unmatched = 0
         self.telemetry = 0
 
     def __call__(self, advert: Advert) -> Reading | None:
-        reg = self._registry
-        if reg is not None:
-            tag = reg.registered.mac_tags.get(advert.address)
+        # One flat function: this runs for every advertisement the radio hears, so the common
+        # paths avoid extra calls and allocations. With a registry, recognised identities are looked
+        # up by their raw bytes, so an unregistered tag is dropped without ever being formatted.
+        snap = self._registry._reg if self._registry is not None else None  # the property, minus a call
+        if snap is not None:
+            tag = snap.mac_tags.get(advert.address)
             if tag is not None:
                 self.decoded += 1
-                return Reading(tag, advert.t_mono_ns, advert.rssi_dbm)
-        try:
-            tag, telemetry = self._identify(advert)
-        except _Malformed:
-            self.decode_errors += 1
-            return None
-        if tag is None:
-            if telemetry is not None:  # an unmatched TLM frame, already counted as such
-                return None
-            if reg is not None:
-                self.no_identity += 1
-                return None
-            try:
-                tag = mac_id(advert.address)
-            except ValueError:
-                self.decode_errors += 1
-                return None
-        self.decoded += 1
-        if telemetry is not None:
-            self.telemetry += 1
-        return Reading(tag, advert.t_mono_ns, advert.rssi_dbm, telemetry)
-
-    def _identify(self, advert: Advert) -> tuple[str | None, Telemetry | None]:
-        """Identity from the payloads, with telemetry for TLM frames; raises `_Malformed`."""
+                return make_reading(tag, advert.t_mono_ns, advert.rssi_dbm)
         md = advert.manufacturer_data
         if md:
             p = md.get(APPLE_COMPANY_ID)
             if p is not None and p[:2] == IBEACON_MARKER:
                 if len(p) != _IBEACON_LEN:
-                    raise _Malformed
-                return ibeacon_id(p[2:18], (p[18] << 8) | p[19], (p[20] << 8) | p[21]), None
+                    return self._malformed()
+                if snap is None:
+                    tag = ibeacon_id(p[2:18], (p[18] << 8) | p[19], (p[20] << 8) | p[21])
+                elif (tag := snap.ibeacon.get(p[2:22])) is None:
+                    return self._unregistered()
+                self.decoded += 1
+                return make_reading(tag, advert.t_mono_ns, advert.rssi_dbm)
             for p in md.values():
                 if p[:2] == ALTBEACON_CODE:
                     if len(p) != _ALTBEACON_LEN:
-                        raise _Malformed
-                    return altbeacon_id(p[2:22]), None
+                        return self._malformed()
+                    if snap is None:
+                        tag = altbeacon_id(p[2:22])
+                    elif (tag := snap.altbeacon.get(p[2:22])) is None:
+                        return self._unregistered()
+                    self.decoded += 1
+                    return make_reading(tag, advert.t_mono_ns, advert.rssi_dbm)
         sd = advert.service_data
         if sd:
             p = sd.get(EDDYSTONE_UUID)
             if p is not None:
                 if not p:
-                    raise _Malformed
+                    return self._malformed()
                 frame = p[0] & 0xF0
                 if frame == _FRAME_UID:
                     if len(p) not in _EDDY_UID_LENS:
-                        raise _Malformed
-                    tag = eddystone_id(p[2:12], p[12:18])
+                        return self._malformed()
+                    if snap is None:
+                        tag = eddystone_id(p[2:12], p[12:18])
+                    elif (tag := snap.eddystone.get(p[2:18])) is None:
+                        # This address now names an unregistered tag: its TLM frames are not ours any more.
+                        self._eddy_by_addr.pop(advert.address, None)
+                        return self._unregistered()
+                    # Only recognised, registered tags are remembered: an unregistered device
+                    # leaves no trace, even in memory.
                     self._remember(advert.address, tag)
-                    return tag, None
+                    self.decoded += 1
+                    return make_reading(tag, advert.t_mono_ns, advert.rssi_dbm)
                 if frame == _FRAME_TLM:
                     if len(p) < 2:
-                        raise _Malformed
+                        return self._malformed()
                     if p[1] == 0:  # version 0 = plain; 1 = encrypted (eTLM), which only its owner can read
                         if len(p) != _EDDY_TLM_LEN:
-                            raise _Malformed
-                        return self._tlm(advert.address, p)
+                            return self._malformed()
+                        tag = self._eddy_by_addr.get(advert.address)
+                        if tag is None:
+                            self.tlm_unmatched += 1
+                            return None
+                        self.decoded += 1
+                        self.telemetry += 1
+                        return make_reading(tag, advert.t_mono_ns, advert.rssi_dbm, parse_tlm(p))
         for rule in self._rules:
-            if rule.company_id is not None:
-                p = md.get(rule.company_id)
-            else:
-                p = sd.get(rule.service_uuid)  # type: ignore[arg-type]
+            p = md.get(rule.company_id) if rule.company_id is not None else sd.get(rule.service_uuid)  # type: ignore[arg-type]
             if p is not None and p.startswith(rule.prefix):
                 if len(p) < rule.end:
-                    raise _Malformed
-                return rule.id_prefix + p[rule.start:rule.end].hex(), None
-        return None, None
+                    return self._malformed()
+                key = p[rule.start:rule.end]
+                if snap is None:
+                    tag = rule.id_prefix + key.hex()
+                else:
+                    table = snap.rules.get(rule.name)
+                    if table is None or (tag := table.get(key)) is None:
+                        return self._unregistered()
+                self.decoded += 1
+                return make_reading(tag, advert.t_mono_ns, advert.rssi_dbm)
+        if snap is not None:
+            self.no_identity += 1
+            return None
+        try:
+            tag = mac_id(advert.address)
+        except ValueError:
+            return self._malformed()
+        self.decoded += 1
+        return make_reading(tag, advert.t_mono_ns, advert.rssi_dbm)
+
+    def _malformed(self) -> None:
+        self.decode_errors += 1
+
+    def _unregistered(self) -> None:
+        self.unregistered += 1
 
     def _remember(self, address: str, tag: str) -> None:
-        reg = self._registry
-        # Only registered tags are remembered: an unregistered device leaves no trace, even in memory.
-        if reg is not None and tag not in reg.registered.ids:
-            return
         m = self._eddy_by_addr
         if m.get(address) == tag:
             m.move_to_end(address)
@@ -218,14 +275,8 @@ class Decoder:
         if len(m) > self._tlm_memory:
             m.popitem(last=False)
 
-    def _tlm(self, address: str, p: bytes) -> tuple[str | None, Telemetry]:
-        telemetry = parse_tlm(p)
-        tag = self._eddy_by_addr.get(address)
-        if tag is None:
-            self.tlm_unmatched += 1
-        return tag, telemetry
-
     def stats(self) -> dict[str, int]:
         """The counters as a dict (names as in the class docstring)."""
-        return {"decoded": self.decoded, "decode_errors": self.decode_errors, "no_identity": self.no_identity,
+        return {"decoded": self.decoded, "unregistered": self.unregistered, "decode_errors": self.decode_errors,
+                "no_identity": self.no_identity,
                 "tlm_unmatched": self.tlm_unmatched, "telemetry": self.telemetry}

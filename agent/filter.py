@@ -9,9 +9,9 @@ logs per reading.
 from __future__ import annotations
 
 from collections.abc import Iterable, Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
-from agent.identity import parse_tag_id
+from agent.identity import BUILTIN_KINDS, identity_key, parse_tag_id
 from agent.types import Reading
 
 
@@ -24,11 +24,25 @@ class Registered:
     mac_tags: Mapping[str, str]
     """Address (upper-case colon form) → ``mac:`` identity, for the tags registered by address.
     The decoder checks this first, so a registered address costs one dict lookup and no payload parsing."""
+    ibeacon: Mapping[bytes, str] = field(default_factory=dict)
+    """UUID + major + minor bytes as sent → ``ibeacon:`` identity."""
+    altbeacon: Mapping[bytes, str] = field(default_factory=dict)
+    """20-byte beacon id → ``altbeacon:`` identity."""
+    eddystone: Mapping[bytes, str] = field(default_factory=dict)
+    """Namespace + instance bytes → ``eddystone:`` identity."""
+    rules: Mapping[str, Mapping[bytes, str]] = field(default_factory=dict)
+    """Rule name → extracted bytes → identity."""
 
 
 def _snapshot(tags: Iterable[str]) -> Registered:
     ids = frozenset(parse_tag_id(t) for t in tags)
-    return Registered(ids, {t[4:]: t for t in ids if t.startswith("mac:")})
+    by_kind: dict[str, dict[bytes, str]] = {}
+    for t in ids:
+        kind, key = identity_key(t)
+        by_kind.setdefault(kind, {})[key] = t
+    return Registered(ids, {t[4:]: t for t in ids if t.startswith("mac:")},
+                      by_kind.get("ibeacon", {}), by_kind.get("altbeacon", {}), by_kind.get("eddystone", {}),
+                      {k: v for k, v in by_kind.items() if k not in BUILTIN_KINDS})
 
 
 class TagFilter:

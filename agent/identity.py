@@ -160,6 +160,28 @@ def parse_tag_id(text: str) -> str:
     return prefix + rest.lower()
 
 
+def identity_key(tag: str) -> tuple[str, bytes]:
+    """
+    The kind of a canonical identity and the raw bytes an advert carries for it: the inverse of the
+    builders, so a decoder can match registered tags on bytes without formatting text.
+
+    ``mac`` → the 6 address bytes in display order; ``ibeacon`` → UUID(16) + major(2, BE) + minor(2, BE);
+    ``altbeacon`` → the 20-byte id; ``eddystone`` → namespace(10) + instance(6); a rule → its bytes.
+
+    Raises:
+        DecodeError: ``tag`` is not canonical (run it through `parse_tag_id` first).
+    """
+    if parse_tag_id(tag) != tag:
+        raise DecodeError(f"tag id {tag!r}: not in canonical form (expected {parse_tag_id(tag)!r})")
+    kind, _, rest = tag.partition(":")
+    if kind == "mac":
+        return kind, bytes.fromhex(rest.replace(":", ""))
+    if kind == "ibeacon":
+        u, major, minor = rest.split(":")
+        return kind, bytes.fromhex(u.replace("-", "")) + int(major).to_bytes(2, "big") + int(minor).to_bytes(2, "big")
+    return kind, bytes.fromhex(rest.replace(":", ""))
+
+
 def load_tag_file(path: str | Path) -> frozenset[str]:
     """
     Read a tag file: one identity per line, ``#`` starts a comment, blank lines ignored.

@@ -22,7 +22,7 @@ from scapy.layers.bluetooth import EIR_Hdr, EIR_Manufacturer_Specific_Data
 from agent.config import DecodeRule
 from agent.decode import EDDYSTONE_UUID, Decoder, parse_tlm
 from agent.filter import TagFilter
-from agent.types import Advert, Telemetry, uuid16_to_128
+from agent.types import Advert, Reading, Telemetry, uuid16_to_128
 
 ADDR = "C4:7A:10:00:2B:91"
 
@@ -38,8 +38,8 @@ def ad_of(frame) -> bytes:
     return b"".join(bytes(x) for x in frame.build_eir())
 
 
-def counters(d: Decoder) -> tuple[int, int, int, int]:
-    return d.decoded, d.decode_errors, d.no_identity, d.tlm_unmatched
+def counters(d: Decoder) -> tuple[int, int, int, int, int]:
+    return d.decoded, d.unregistered, d.decode_errors, d.no_identity, d.tlm_unmatched
 
 
 # --------------------------------------------------------------- published vectors (REFERENCES.md §4)
@@ -217,7 +217,7 @@ class TestNeverRaises:
         """A frame whose marker matches but whose length does not is a decode error, not an identity."""
         dec = Decoder(RULES)
         assert dec(Advert(1, ADDR, 0, -60, None, md, sd)) is None
-        assert (0, 1, 0, 0) == counters(dec)
+        assert (0, 0, 1, 0, 0) == counters(dec)
 
 
 # --------------------------------------------------------------- rules, precedence, registry, TLM memory
@@ -231,7 +231,7 @@ class TestBehaviour:
 
     def test_configured_service_rule_and_prefix_mismatch(self):
         """A service-UUID rule matches by UUID; a company rule whose prefix differs names nothing."""
-        dec = Decoder(RULES, registry=TagFilter([]))
+        dec = Decoder(RULES, registry=TagFilter(["batt:64"]))
         r = dec(Advert(1, ADDR, 1, -60, None, {}, {uuid16_to_128(0x180F): b"\x64"}))
         assert r is not None and "batt:64" == r.tag
         assert dec(Advert(1, ADDR, 1, -60, None, {0xFFFF: bytes.fromhex("4d5000000007")})) is None
@@ -251,7 +251,7 @@ class TestBehaviour:
         url = ad_of(s_eddy.Eddystone_URL.from_url("https://example.org"))
         assert dec(advert_from_ad(url)) is None
         assert dec(Advert(1, ADDR, 1, -60, None, {}, {EDDYSTONE_UUID: b"\x20\x01" + bytes(16)})) is None
-        assert (0, 0, 3, 0) == counters(dec)
+        assert (0, 0, 0, 3, 0) == counters(dec)
 
     def test_registered_address_wins_and_unregistered_address_names_nothing(self):
         """With a registry, a registered address is its mac: tag whatever the payload; others get no mac: identity."""
@@ -260,7 +260,7 @@ class TestBehaviour:
         r = dec(advert_from_ad(ib))
         assert r is not None and f"mac:{ADDR}" == r.tag
         assert dec(Advert(1, "D0:00:00:00:00:01", 1, -60)) is None
-        assert (1, 0, 1, 0) == counters(dec)
+        assert (1, 0, 0, 1, 0) == counters(dec)
 
     def test_standalone_falls_back_to_address(self):
         """Without a registry, an advert with no payload identity is named by its address."""
@@ -285,7 +285,20 @@ class TestBehaviour:
         uid = bytes.fromhex("1716aafe00ec8b0ca750095477cb3e770000000000a10000")
         tlm = bytes.fromhex("1116aafe20000bb817c0000004d200008ca0")
         dec = Decoder(registry=TagFilter(["eddystone:00000000000000000000:000000000001"]))
-        assert dec(advert_from_ad(uid)) is not None      # decoded; the filter drops it later
+        assert dec(advert_from_ad(uid)) is None           # recognised, not registered: dropped on its bytes
+        assert dec(advert_from_ad(tlm)) is None
+        assert (0, 1, 0, 0, 1) == counters(dec)
+        assert 0 == len(dec._eddy_by_addr)
+
+    def test_address_switching_to_unregistered_uid_loses_its_tlm(self):
+        """A TLM is credited to the identity an address named last, never to an older registered one."""
+        reg_uid = bytes.fromhex("1716aafe00ec8b0ca750095477cb3e770000000000a10000")
+        other_uid = bytes.fromhex("1716aafe00ec000000000000000000000000000000a10000")
+        tlm = bytes.fromhex("1116aafe20000bb817c0000004d200008ca0")
+        dec = Decoder(registry=TagFilter(["eddystone:8b0ca750095477cb3e77:0000000000a1"]))
+        assert dec(advert_from_ad(reg_uid)) is not None
+        assert dec(advert_from_ad(tlm)) is not None
+        assert dec(advert_from_ad(other_uid)) is None
         assert dec(advert_from_ad(tlm)) is None
         assert 1 == dec.tlm_unmatched
         assert 0 == len(dec._eddy_by_addr)
@@ -295,3 +308,62 @@ class TestBehaviour:
         raw = uuid.uuid4().bytes
         r = Decoder()(Advert(1, ADDR, 1, -60, None, {0x004C: b"\x02\x15" + raw + b"\x00\x07\x00\x2a\xc5"}))
         assert r is not None and f"ibeacon:{uuid.UUID(bytes=raw)}:7:42" == r.tag
+
+
+# --------------------------------------------------------------- the attached decoder agrees with decode-then-filter
+
+REG_UUID = bytes.fromhex("4d2a0c1e7f3b4c559e612b8f0a7d3c10")
+REG_NS = bytes.fromhex("8b0ca750e7a74e14bd99")
+REGISTERED = ([f"ibeacon:{uuid.UUID(bytes=REG_UUID)}:7:{m}" for m in range(1, 4)]
+              + [f"eddystone:{REG_NS.hex()}:{i:012x}" for i in range(1, 4)]
+              + ["altbeacon:" + bytes(range(20)).hex(), "lpx:00000002", "batt:05", "mac:D0:00:00:00:00:02"])
+small = st.integers(0, 4)
+tagged_advert = st.one_of(
+    st.builds(lambda u, m: {0x004C: b"\x02\x15" + u + b"\x00\x07" + m.to_bytes(2, "big") + b"\xc5"},
+              st.sampled_from([REG_UUID, bytes(16)]), small),
+    st.builds(lambda i: {0x0118: b"\xbe\xac" + bytes(range(i, i + 20)) + b"\xc5\x00"}, st.integers(0, 1)),
+    st.builds(lambda n: {0xFFFF: b"\x4c\x50" + n.to_bytes(4, "big")}, small),
+    st.builds(lambda ns, i: {"eddy": b"\x00\xec" + ns + i.to_bytes(6, "big") + b"\0\0"},
+              st.sampled_from([REG_NS, bytes(10)]), small),
+    st.just({"eddy": bytes.fromhex("20000bb817c0000004d200008ca0")}),
+    st.builds(lambda b: {"batt": bytes([b])}, st.integers(4, 6)),
+    st.dictionaries(company_ids, payload, max_size=2),
+)
+
+
+def _advert(i: int, addr_n: int, spec: dict) -> Advert:
+    md = {k: v for k, v in spec.items() if isinstance(k, int)}
+    sd = {EDDYSTONE_UUID: spec["eddy"]} if "eddy" in spec else {}
+    if "batt" in spec:
+        sd[uuid16_to_128(0x180F)] = spec["batt"]
+    return Advert(i, f"D0:00:00:00:00:{addr_n:02X}", 1, -60 - i % 30, None, md, sd)
+
+
+@settings(max_examples=150, deadline=None)
+@given(st.lists(st.tuples(st.integers(0, 3), tagged_advert), max_size=40))
+def test_attached_decoder_equals_standalone_then_filter(items):
+    """Matching registered tags on raw bytes gives exactly the readings of formatting every identity and filtering."""
+    adverts = [_advert(i, a, spec) for i, (a, spec) in enumerate(items)]
+    f_attached, f_after = TagFilter(REGISTERED), TagFilter(REGISTERED)
+    attached, standalone = Decoder(RULES, registry=f_attached), Decoder(RULES)
+    got = [r for a in adverts if (r := attached(a)) is not None and f_attached(r) is not None]
+    want = []
+    for a in adverts:
+        mac_first = f"mac:{a.address}" in f_after      # the attached decoder checks a registered address first
+        r = Reading(f"mac:{a.address}", a.t_mono_ns, a.rssi_dbm) if mac_first else standalone(a)
+        if r is not None and f_after(r) is not None:
+            want.append(r)
+    assert want == got
+
+
+def test_make_reading_builds_the_same_frozen_reading():
+    """The fast constructor gives an object equal to, hashing like and as immutable as Reading(...)."""
+    import dataclasses
+
+    from agent.decode import make_reading
+    tel = Telemetry(3000, -5.5, 1, 0.1)
+    fast, slow = make_reading("lpx:00000007", 5, -61.5, tel), Reading("lpx:00000007", 5, -61.5, tel)
+    assert (slow, hash(slow), repr(slow)) == (fast, hash(fast), repr(fast))
+    assert Reading("lpx:00000007", 5, -61.5) == make_reading("lpx:00000007", 5, -61.5)
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        fast.rssi_dbm = 0  # type: ignore[misc]

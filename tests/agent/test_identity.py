@@ -13,6 +13,7 @@ from agent.identity import (
     altbeacon_id,
     eddystone_id,
     ibeacon_id,
+    identity_key,
     load_tag_file,
     mac_id,
     parse_tag_id,
@@ -133,3 +134,21 @@ class TestTagFile:
         """A missing file is a ConfigError naming it."""
         with pytest.raises(ConfigError, match="cannot read tag file"):
             load_tag_file(tmp_path / "absent.txt")
+
+
+class TestIdentityKey:
+    @settings(max_examples=100, deadline=None)
+    @given(st.binary(min_size=16, max_size=16), st.integers(0, 0xFFFF), st.integers(0, 0xFFFF),
+           st.binary(min_size=20, max_size=20), st.binary(min_size=1, max_size=32))
+    def test_inverse_of_the_builders(self, u, major, minor, id20, data):
+        """identity_key gives back exactly the bytes each builder was given."""
+        assert ("ibeacon", u + major.to_bytes(2, "big") + minor.to_bytes(2, "big")) == identity_key(ibeacon_id(u, major, minor))
+        assert ("altbeacon", id20) == identity_key(altbeacon_id(id20))
+        assert ("eddystone", id20[:16]) == identity_key(eddystone_id(id20[:10], id20[10:16]))
+        assert ("lpx", data) == identity_key(rule_id("lpx", data))
+        assert ("mac", id20[:6]) == identity_key(mac_id(":".join(f"{b:02x}" for b in id20[:6])))
+
+    def test_rejects_non_canonical(self):
+        """A non-canonical identity is refused, with its canonical form in the message."""
+        with pytest.raises(DecodeError, match="mac:C4:7A:10:00:2B:91"):
+            identity_key("mac:c4:7a:10:00:2b:91")
