@@ -111,9 +111,13 @@ def replay_command(files: Sequence[Path], *, dry_run: bool, config: Path | None,
     Raises:
         ConfigError: missing tags, bad tag file, bad config or offset (the CLI exits 2).
     """
+    from agent.logs import configure
+
     cfg = load_agent_config(config) if config is not None else None
     if not dry_run:
         return _upload(files, cfg, tags, offset_db, speed)
+    # stdout carries the readings; log lines (a capture with losses, say) go to stderr.
+    configure(cfg.log_format if cfg is not None else "auto", "warning", stream=sys.stderr)  # type: ignore[arg-type]
 
     registered = load_tag_file(_tags_path(tags, cfg))
     rules: tuple[DecodeRule, ...] = cfg.rules if cfg is not None else ()
@@ -147,8 +151,11 @@ def _upload(files: Sequence[Path], cfg: AgentConfig | None, tags: Path | None, o
         cfg = cfg.replace(tags_file=str(tags.resolve()))
     if offset_db is not None:
         cfg = cfg.replace(offset_db=Calibrate(offset_db).offset_db)  # same range check as the config
+    from agent.logs import configure
     from agent.service import run_agent
     from agent.sources import open_replay
+
+    configure(cfg.log_format, cfg.log_level)  # type: ignore[arg-type]
 
     clock = SystemClock()
 

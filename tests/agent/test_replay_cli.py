@@ -140,3 +140,39 @@ def test_upload_needs_config(files, tmp_path):
     p = run(rec, "--tags", tags, "--fast", cwd=tmp_path)
     assert 2 == p.returncode
     assert "--config" in p.stderr
+
+
+def test_btsnoop_capture_is_detected_by_content(tmp_path):
+    """A btsnoop capture (datalink 1002, layout per REFERENCES.md §3) whose HCI advertising reports scapy built
+    from the §4 iBeacon vector replays like a recording; the file name says nothing about its kind."""
+    import struct
+
+    from scapy.layers.bluetooth import (
+        HCI_Event_Hdr,
+        HCI_Event_LE_Meta,
+        HCI_Hdr,
+        HCI_LE_Meta_Advertising_Report,
+        HCI_LE_Meta_Advertising_Reports,
+    )
+    ad = bytes.fromhex("0201061aff4c000215e2c56db5dffb48d2b060d0f5a71096e000010102c5")
+
+    def event(rssi: int) -> bytes:
+        rep = HCI_LE_Meta_Advertising_Report(type=3, addr_type=1, addr="c0:11:22:33:44:55", data=ad, rssi=rssi)
+        return bytes(HCI_Hdr() / HCI_Event_Hdr() / HCI_Event_LE_Meta() / HCI_LE_Meta_Advertising_Reports(reports=[rep]))
+
+    epoch_us = 0x00DCDDB30F2F8000          # btsnoop time zero, REFERENCES.md §3
+    t0 = 1_700_000_000_000_000
+    cap = b"btsnoop\0" + struct.pack(">II", 1, 1002)
+    for dt_us, rssi in ((0, -60), (250_000, -63)):
+        pkt = event(rssi)
+        cap += struct.pack(">IIIIq", len(pkt), len(pkt), 3, 0, epoch_us + t0 + dt_us) + pkt
+    f = tmp_path / "capture.bin"
+    f.write_bytes(cap)
+    tags = tmp_path / "tags.txt"
+    tags.write_text("ibeacon:e2c56db5-dffb-48d2-b060-d0f5a71096e0:1:258\n")
+    p = run(f, "--dry-run", "--tags", tags, "--fast", cwd=tmp_path)
+    assert 0 == p.returncode, p.stderr
+    lines = [json.loads(x) for x in p.stdout.splitlines()]
+    assert [("ibeacon:e2c56db5-dffb-48d2-b060-d0f5a71096e0:1:258", -60), ("ibeacon:e2c56db5-dffb-48d2-b060-d0f5a71096e0:1:258", -63)] \
+        == [(x["tag"], x["rssi"]) for x in lines]
+    assert 0.25 == pytest.approx(lines[1]["t"] - lines[0]["t"], abs=1e-6)
