@@ -167,9 +167,9 @@ async def _agent_run(path: Path, tmp: Path) -> tuple[dict[str, int], str]:
     add, seal, boot = spool.add, spool.seal, clock.boot_id
 
     # Replayed at full speed, readings arrive far faster than flush_seconds allows, so the bench seals
-    # by count: one durable batch per SEAL_EVERY readings, awaited in line. That is the spool's cost
-    # with back-pressure; sealing beside intake (as Spool.run_sealer does at a board's real rate) would
-    # let a full-speed replay outrun the RAM buffer and drop readings.
+    # by count: one durable batch per SEAL_EVERY readings, awaited in line, so the spool's whole cost
+    # is in the figure. (Sealing beside intake, as Spool.run_sealer does at a board's real rate, was
+    # slower here: the seal's encoding competes with intake for the GIL.)
     def sink(r: Reading) -> Any:
         nonlocal n
         add(r)
