@@ -238,44 +238,86 @@ def _uuid(u: Any, where: str, key: str) -> str:
     raise CaptureFormatError(f"{where}: {key}: must be a 4-hex or 128-bit UUID, got {u!r}")
 
 
-def parse_line(line: str, where: str) -> Advert:
+class _Where:
+    """``file:line`` for error messages, formatted only when an error is raised (the hot path never pays)."""
+
+    __slots__ = ("n", "path")
+
+    def __init__(self, path: Path, n: int = 0) -> None:
+        self.path, self.n = path, n
+
+    def __str__(self) -> str:
+        return f"{self.path}:{self.n}"
+
+
+# Replays repeat the same addresses, keys and payloads millions of times: remember what was
+# already validated and decoded. Bounded, so a hostile file cannot grow them without limit.
+_CACHE_MAX = 16_384
+_ok_addresses: set[str] = set()
+_company_ids: dict[str, int] = {}
+_uuid_keys: dict[str, str] = {}
+_payloads: dict[str, bytes] = {}
+_json_decode = json.JSONDecoder().decode
+
+
+def _remember(cache: dict[str, Any], key: str, value: Any) -> Any:
+    if len(cache) < _CACHE_MAX:
+        cache[key] = value
+    return value
+
+
+def parse_line(line: str, where: str | _Where) -> Advert:
     """One advertisement line → `Advert`; ``where`` (``file:line``) prefixes every error."""
     try:
-        d = json.loads(line)
+        d = _json_decode(line)
     except ValueError as e:
         raise CaptureFormatError(f"{where}: not JSON ({e})") from None
-    if not isinstance(d, dict):
+    if type(d) is not dict:
         raise CaptureFormatError(f"{where}: must be a JSON object")
     t = d.get("t")
-    if isinstance(t, bool) or not isinstance(t, int | float) or not math.isfinite(t) or t < 0 or t > 1e10:
+    if (type(t) is not float and type(t) is not int) or not 0 <= t <= 1e10:  # NaN fails the range test
         raise CaptureFormatError(f"{where}: t: must be board seconds >= 0, got {t!r}")
     a = d.get("a")
-    if not isinstance(a, str) or not _ADDRESS.fullmatch(a):
-        raise CaptureFormatError(f"{where}: a: must be an upper-case colon address, got {a!r}")
-    at = _int_field(d, "at", 0, 3, where)
-    r = _int_field(d, "r", *RSSI_RANGE, where)
+    if a not in _ok_addresses:
+        if not isinstance(a, str) or not _ADDRESS.fullmatch(a):
+            raise CaptureFormatError(f"{where}: a: must be an upper-case colon address, got {a!r}")
+        if len(_ok_addresses) < _CACHE_MAX:
+            _ok_addresses.add(a)
+    at = d.get("at")
+    if type(at) is not int or not 0 <= at <= 3:
+        at = _int_field(d, "at", 0, 3, where)
+    r = d.get("r")
+    if type(r) is not int or not RSSI_RANGE[0] <= r <= RSSI_RANGE[1]:
+        r = _int_field(d, "r", *RSSI_RANGE, where)
     tx = _int_field(d, "tx", -128, 127, where) if d.get("tx") is not None else None
     mfg: dict[int, bytes] = {}
     if (m := d.get("m")) is not None:
-        if not isinstance(m, dict):
+        if type(m) is not dict:
             raise CaptureFormatError(f"{where}: m: must be an object")
         for k, v in m.items():
-            if not _HEX4.fullmatch(k):
-                raise CaptureFormatError(f"{where}: m: company id must be 4 hex digits, got {k!r}")
-            mfg[int(k, 16)] = _hex(v, where, f"m.{k}")
+            cid = _company_ids.get(k)
+            if cid is None:
+                if not _HEX4.fullmatch(k):
+                    raise CaptureFormatError(f"{where}: m: company id must be 4 hex digits, got {k!r}")
+                cid = _remember(_company_ids, k, int(k, 16))
+            b = _payloads.get(v) if type(v) is str else None
+            mfg[cid] = b if b is not None else _remember(_payloads, v, _hex(v, where, f"m.{k}"))
     svc: dict[str, bytes] = {}
     if (s := d.get("s")) is not None:
-        if not isinstance(s, dict):
+        if type(s) is not dict:
             raise CaptureFormatError(f"{where}: s: must be an object")
         for k, v in s.items():
-            svc[_uuid(k, where, "s")] = _hex(v, where, f"s.{k}")
+            key = _uuid_keys.get(k) or _remember(_uuid_keys, k, _uuid(k, where, "s"))
+            b = _payloads.get(v) if type(v) is str else None
+            svc[key] = b if b is not None else _remember(_payloads, v, _hex(v, where, f"s.{k}"))
     uuids: tuple[str, ...] = ()
     if (u := d.get("u")) is not None:
-        if not isinstance(u, list):
+        if type(u) is not list:
             raise CaptureFormatError(f"{where}: u: must be a list")
-        uuids = tuple(_uuid(x, where, "u") for x in u)
+        uuids = tuple((type(x) is str and _uuid_keys.get(x)) or _remember(_uuid_keys, x, _uuid(x, where, "u"))
+                      for x in u)
     n = d.get("n")
-    if n is not None and not isinstance(n, str):
+    if n is not None and type(n) is not str:
         raise CaptureFormatError(f"{where}: n: must be a string, got {n!r}")
     return Advert(round(t * 1e9), a, at, r, tx, mfg, svc, uuids, n)
 
@@ -306,11 +348,13 @@ def read_recording(path: str | Path) -> tuple[RecordingHeader, Iterator[Advert]]
 
     def adverts() -> Iterator[Advert]:
         lines = _lines(p)
+        where = _Where(p)
         try:
             next(lines, None)
             for n, line in lines:
                 if line.strip():
-                    yield parse_line(line, f"{p}:{n}")
+                    where.n = n
+                    yield parse_line(line, where)
         finally:
             lines.close()
 
