@@ -73,6 +73,8 @@ class Monitor:
         self._webhook_task: asyncio.Task[None] | None = None
         self._webhook_queue: asyncio.Queue[Event] = asyncio.Queue(maxsize=WEBHOOK_QUEUE_MAX)
         self.webhook_sent = 0
+        self.rounds_led = 0
+        """Rounds this process ran as the lock holder."""
         self.webhook_failed = 0
 
     # ------------------------------------------------------------ life cycle
@@ -90,29 +92,45 @@ class Monitor:
                     await task
 
     async def _loop(self) -> None:
+        """
+        Leader or follower. The collector that gets the lock keeps it and runs every round while it lives
+        (so rounds never run twice fleet-wide, even when they do not overlap in time); the others follow
+        the stored states and try again each interval. A failed round gives the lock up.
+        """
+        interval = self.settings.monitor_interval_seconds
         while True:
             try:
-                await self.run_once()
+                async with self.store.exclusive("monitor") as held:
+                    if held:
+                        self._seeded = False  # states may have moved on while another collector led
+                        log.info("monitor_leading")
+                        while True:
+                            await self._round(RoundReport(held_lock=True))
+                            await self.clock.sleep(interval)
+                    await self._round(RoundReport(held_lock=False))
             except (StoreError, OSError) as e:
                 log.warning("monitor_round_failed", error=str(e))
             except Exception:
                 log.exception("monitor_round_failed")
-            await self.clock.sleep(self.settings.monitor_interval_seconds)
+            await self.clock.sleep(interval)
 
     # ------------------------------------------------------------ one round
 
     async def run_once(self) -> RoundReport:
-        report = RoundReport()
+        """One round now, taking the lock just for it (tests and tools; the service runs `start`)."""
         async with self.store.exclusive("monitor") as held:
-            report.held_lock = held
-            if held:
-                await self._seed()
-                await self._liveness(report)
-                await self._losses(report)
-                await self._retention(report)
-        if not held:
+            return await self._round(RoundReport(held_lock=held))
+
+    async def _round(self, report: RoundReport) -> RoundReport:
+        if report.held_lock:
+            await self._seed()
+            await self._liveness(report)
+            await self._losses(report)
+            await self._retention(report)
+        else:
             await self._follow_states()
         self.runtime.monitor_rounds += 1
+        self.rounds_led += report.held_lock
         return report
 
     async def _seed(self) -> None:
