@@ -137,6 +137,7 @@ async def retire_board(request: web.Request) -> web.Response:
     board = await _board_or_404(request)
     now = request.app[CLOCK].time()
     await request.app[STORE].retire_board(board.name, now)
+    request.app[RUNTIME].token_cache.clear()  # the token must stop working here at once
     await request.app[STORE].add_event(Event(now, board.name, "retired", {}))
     log.info("board_retired", board=board.name)
     return web.json_response({"name": board.name, "retired_at": now})
@@ -305,6 +306,7 @@ async def calibrate(request: web.Request) -> web.Response:
     cal = Calibration(board.name, now, float(result.offset_db), float(result.spread_db), int(result.samples), tag,
                       distance, board.fingerprint)
     await store.set_offset(cal)
+    request.app[RUNTIME].token_cache.clear()  # cached Board records carry the old offset
     await store.add_event(Event(now, board.name, "calibrated", {**_calibration_json(cal),
                                                                 "warnings": [str(w) for w in result.warnings]}))
     log.info("board_calibrated", board=board.name, offset_db=cal.offset_db, spread_db=cal.spread_db,

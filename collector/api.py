@@ -73,6 +73,25 @@ async def read_json(request: web.Request, limits: Limits) -> Any:
         raise ApiError(400, "bad_json", f"body is not valid JSON: {e}", field="body") from e
 
 
+TOKEN_CACHE_SECONDS = 10.0
+"""How long a token lookup is reused. Retiring a board here drops the cache at once; another collector
+on the same database notices within this time."""
+TOKEN_CACHE_MAX = 10_000
+
+
+async def _board_for_token(app: web.Application, token_hash: str) -> Board | None:
+    cache, now = app[RUNTIME].token_cache, app[CLOCK].time()
+    hit = cache.get(token_hash)
+    if hit is not None and 0 <= now - hit[1] < TOKEN_CACHE_SECONDS:
+        return hit[0]
+    board = await app[STORE].board_for_token(token_hash)
+    if board is not None:
+        if len(cache) >= TOKEN_CACHE_MAX:
+            cache.clear()  # a flood of distinct tokens must not grow memory
+        cache[token_hash] = (board, now)
+    return board
+
+
 async def require_board(request: web.Request) -> Board:
     """The board whose token is on the request: 401 without a valid one, 403 when retired."""
     token = bearer_token(request.headers.get("Authorization"))
@@ -81,7 +100,7 @@ async def require_board(request: web.Request) -> Board:
                        headers={"WWW-Authenticate": "Bearer"})
     # The store looks the board up by the token's sha256; a timing difference reveals nothing usable,
     # because a guess would need a sha256 preimage to get closer.
-    board = await request.app[STORE].board_for_token(hash_secret(token))
+    board = await _board_for_token(request.app, hash_secret(token))
     if board is None:
         raise ApiError(401, "unauthorized", "unknown board token", headers={"WWW-Authenticate": "Bearer"})
     if board.retired_at is not None:

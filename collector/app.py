@@ -54,6 +54,8 @@ class Runtime:
     recent_events: deque[Any] = field(default_factory=lambda: deque(maxlen=50))
     """The newest stored events (the page shows them), refreshed incrementally from ``events_cursor``."""
     events_cursor: int = 0
+    token_cache: dict[str, tuple[Any, float]] = field(default_factory=dict)
+    """sha256(token) → (Board, cached at): saves a database round trip per board request."""
 
 
 SETTINGS = web.AppKey("settings", CollectorSettings)
