@@ -12,8 +12,20 @@ database, so each board is evaluated once per round fleet-wide):
 3. retention: raw readings older than ``retention.days`` go, in bounded chunks.
 
 A collector that does not hold the lock follows the stored ``state_changed`` events instead, so every
-collector's page and ``/metrics`` show the same states. Webhook POSTs run in their own task with a
-timeout per attempt and a bounded number of attempts; the event stays in the store either way.
+collector's page and ``/metrics`` show the same states.
+
+Webhook (``webhook.url`` in collector.yaml): every ``state_changed`` and ``loss`` event this process
+stores is POSTed as JSON::
+
+    {"id": 17, "at": 1800000123.5, "board": "g2-a", "kind": "state_changed",
+     "detail": {"old": "live", "new": "deaf", "reason": "..."}}
+
+with ``Idempotency-Key: listenpost-event-<id>``: a receiver that answered but whose answer was lost gets
+the same event again and can drop it by that key. A 2xx is success; a 5xx, a 429, a timeout
+(``webhook.timeout_seconds`` on the injected clock) or a network error is retried after
+``webhook.backoff_seconds``, doubling, for at most ``webhook.attempts`` attempts; any other 4xx stops at
+once. The POSTs run in their own task behind a bounded queue, so a stalled receiver never holds up a
+round; an event given up on is logged (``webhook_failed``) and stays in the store.
 """
 
 from __future__ import annotations
@@ -36,6 +48,9 @@ log = structlog.get_logger("collector.monitor")
 LOSS_GRACE_SECONDS = 60.0
 """A seq hole must persist this long before it is a loss (one batch in flight may be just arriving)."""
 RETENTION_EVERY_SECONDS = 600.0
+"""How often a retention pass starts; a pass that has more to delete goes on in the next round."""
+RETENTION_CHUNKS_PER_ROUND = 2
+"""Chunks of ``retention.chunk`` rows deleted per round, so a large backlog never makes one round long."""
 WEBHOOK_QUEUE_MAX = 1000
 HISTORY_SECONDS = 900.0
 """Heartbeat history handed to the liveness evaluator."""
@@ -66,6 +81,8 @@ class Monitor:
         self._hole_first_seen: dict[tuple[str, str, int, int], float] = {}
         self._reported_holes: set[tuple[str, str, int, int]] = set()
         self._last_retention = float("-inf")
+        self._retention_more = False
+        """The last retention round hit its chunk budget: go on next round instead of waiting."""
         self._state_cursor = 0
         self._totals: deque[tuple[float, dict[str, int]]] = deque()
         self._batch_contacts: dict[str, deque[float]] = {}
@@ -80,8 +97,13 @@ class Monitor:
     # ------------------------------------------------------------ life cycle
 
     def start(self) -> None:
+        """Start the rounds and, when a webhook is configured, its sender."""
         self._task = asyncio.create_task(self._loop(), name="collector-monitor")
-        if self.settings.webhook.url:
+        self.start_webhook()
+
+    def start_webhook(self) -> None:
+        """Start only the webhook sender (tests that drive rounds by hand with `run_once` use it)."""
+        if self.settings.webhook.url and self._webhook_task is None:
             self._webhook_task = asyncio.create_task(self._webhook_loop(), name="collector-webhook")
 
     async def stop(self) -> None:
@@ -230,7 +252,9 @@ class Monitor:
         for key in list(self._hole_first_seen):
             if key not in current:
                 del self._hole_first_seen[key]  # filled in after all: a late batch, not a loss
-        for key in current - self._reported_holes:
+        for key in sorted(current - self._reported_holes):
+            if self._inside_reported(key):
+                continue  # what is left of a reported hole after a late batch split it
             first = self._hole_first_seen.setdefault(key, now)
             if now - first < LOSS_GRACE_SECONDS:
                 continue
@@ -243,13 +267,23 @@ class Monitor:
             log.warning("batches_lost", board=board, **detail)
             self._queue_webhook(event)
 
+    def _inside_reported(self, key: tuple[str, str, int, int]) -> bool:
+        board, epoch, lo, hi = key
+        return any(b == board and e == epoch and rlo <= lo and hi <= rhi
+                   for b, e, rlo, rhi in self._reported_holes)
+
     async def _retention(self, report: RoundReport) -> None:
         now = self.clock.time()
-        if self.settings.retention_days <= 0 or now - self._last_retention < RETENTION_EVERY_SECONDS:
+        if self.settings.retention_days <= 0:
             return
-        self._last_retention = now
+        if not self._retention_more and now - self._last_retention < RETENTION_EVERY_SECONDS:
+            return
+        if not self._retention_more:
+            self._last_retention = now
+        chunk = self.settings.retention_chunk
         report.deleted = await self.store.delete_readings_before(now - self.settings.retention_days * 86400.0,
-                                                                 chunk=self.settings.retention_chunk)
+                                                                 chunk=chunk, max_chunks=RETENTION_CHUNKS_PER_ROUND)
+        self._retention_more = report.deleted >= chunk * RETENTION_CHUNKS_PER_ROUND
 
     # ------------------------------------------------------------ webhook
 
@@ -266,37 +300,79 @@ class Monitor:
         import aiohttp
 
         wh = self.settings.webhook
-        timeout = aiohttp.ClientTimeout(total=wh.timeout_seconds)
+        # The deadline that counts runs on the injected clock (`_post_once`); aiohttp's own total
+        # timeout is only a backstop in real time, should that clock stop moving.
+        timeout = aiohttp.ClientTimeout(total=2 * wh.timeout_seconds + 5.0)
         async with aiohttp.ClientSession(timeout=timeout) as session:
             while True:
                 event = await self._webhook_queue.get()
                 await self.post_event(session, event)
 
+    @property
+    def webhook_pending(self) -> int:
+        """Events waiting for the webhook sender."""
+        return self._webhook_queue.qsize()
+
+    async def _post_once(self, session: Any, body: dict[str, Any], headers: dict[str, str]) -> int:
+        """One POST; its status, or `TimeoutError` once ``timeout_seconds`` of clock time have passed."""
+        wh = self.settings.webhook
+
+        async def post() -> int:
+            async with session.post(wh.url, json=body, headers=headers) as resp:
+                await resp.read()
+                return int(resp.status)
+
+        task = asyncio.ensure_future(post())
+        timer = asyncio.ensure_future(self.clock.sleep(wh.timeout_seconds))
+        try:
+            await asyncio.wait({task, timer}, return_when=asyncio.FIRST_COMPLETED)
+        finally:
+            timer.cancel()
+            if not task.done():
+                task.cancel()
+                with contextlib.suppress(asyncio.CancelledError, Exception):
+                    await task
+        if task.cancelled():
+            raise TimeoutError(f"no answer within {wh.timeout_seconds:g} s")
+        return task.result()
+
     async def post_event(self, session: Any, event: Event) -> bool:
-        """POST one event with bounded retries and doubling backoff; True once a 2xx came back."""
+        """
+        POST one event with bounded retries and doubling backoff on the injected clock.
+
+        Returns:
+            True once a 2xx came back; False when the attempts ran out or the receiver refused the
+            body with a 4xx other than 429 (logged as ``webhook_failed``).
+        """
         import aiohttp
 
         wh = self.settings.webhook
         assert wh.url is not None
         body = {"id": event.id, "at": event.at, "board": event.board, "kind": event.kind, "detail": event.detail}
+        headers = {"Idempotency-Key": f"listenpost-event-{event.id}"}
         delay = wh.backoff_seconds
+        error = "not sent"
+        attempt = 0
         for attempt in range(1, wh.attempts + 1):
             try:
-                async with session.post(wh.url, json=body) as resp:
-                    if 200 <= resp.status < 300:
-                        self.webhook_sent += 1
-                        return True
-                    error = f"HTTP {resp.status}"
-                    if 400 <= resp.status < 500 and resp.status != 429:
-                        break  # the receiver will never accept this body
-            except (aiohttp.ClientError, TimeoutError) as e:
+                status = await self._post_once(session, body, headers)
+                if 200 <= status < 300:
+                    self.webhook_sent += 1
+                    log.info("webhook_sent", kind=event.kind, board=event.board, event_id=event.id, attempts=attempt)
+                    return True
+                error = f"HTTP {status}"
+                if 400 <= status < 500 and status != 429:
+                    break  # the receiver will never accept this body
+            except (aiohttp.ClientError, OSError, TimeoutError) as e:
                 error = f"{type(e).__name__}: {e}"
-            log.info("webhook_retry", attempt=attempt, error=error, kind=event.kind, board=event.board)
             if attempt < wh.attempts:
+                log.info("webhook_retry", attempt=attempt, error=error, kind=event.kind, board=event.board,
+                         retry_in_s=delay)
                 await self.clock.sleep(delay)
                 delay *= 2
         self.webhook_failed += 1
-        log.warning("webhook_failed", error=error, kind=event.kind, board=event.board, attempts=attempt)
+        log.warning("webhook_failed", error=error, kind=event.kind, board=event.board, event_id=event.id,
+                    attempts=attempt)
         return False
 
 

@@ -269,11 +269,13 @@ class Store(Protocol):
     # export and retention
     async def readings(self, t_from: float, t_to: float, boards: Sequence[str] | None = None,
                        tags: Sequence[str] | None = None) -> ReadingRows: ...
-    async def delete_readings_before(self, t: float, chunk: int = 10_000) -> int:
-        """Remove raw readings older than ``t`` in bounded chunks; returns how many went.
+    async def delete_readings_before(self, t: float, chunk: int = 10_000, max_chunks: int | None = None) -> int:
+        """Remove raw readings older than ``t`` in chunks of ``chunk`` rows; returns how many went.
 
-        Telemetry rows and clock samples older than ``t`` go too (not counted); batch headers stay,
-        because dedup keys never expire while the board exists."""
+        With ``max_chunks`` at most that many chunks go per table in this call, so a caller can spread a
+        large backlog over several calls (the monitor does, one call per round): a return value of
+        ``chunk * max_chunks`` means there may be more. Telemetry rows and clock samples older than ``t``
+        go too (not counted); batch headers stay, because dedup keys never expire while the board exists."""
 
     def exclusive(self, name: str) -> AbstractAsyncContextManager[bool]:
         """Run-once work across collectors: yields True if this process holds the lock ``name``."""

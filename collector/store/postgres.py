@@ -18,6 +18,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import hashlib
+import itertools
 import json
 import math
 import re
@@ -513,13 +514,15 @@ class PostgresStore:
             rssi_dd=arr["rssi_dd"].astype(np.int32),
             offset_dd=arr["offset_dd"].astype(np.int32))
 
-    async def delete_readings_before(self, t: float, chunk: int = 10_000) -> int:
+    async def delete_readings_before(self, t: float, chunk: int = 10_000, max_chunks: int | None = None) -> int:
         if chunk < 1:
             raise ValueError(f"chunk must be >= 1, got {chunk!r}")
+        if max_chunks is not None and max_chunks < 1:
+            raise ValueError(f"max_chunks must be >= 1 or None, got {max_chunks!r}")
         total = 0
         for table, col, count in (("readings", "t_collector", True), ("telemetry", "at", False),
                                   ("clock_samples", "t2", False)):
-            while True:
+            for _ in itertools.count() if max_chunks is None else range(max_chunks):
                 # One short statement per chunk (autocommit): no giant transaction, no long row locks.
                 async with self._acquire() as con:
                     st = await con.execute(f"DELETE FROM {table} WHERE ctid = ANY(ARRAY(SELECT ctid FROM {table} "
@@ -529,7 +532,7 @@ class PostgresStore:
                     total += n
                 if n < chunk:
                     break
-        log.info("readings_deleted", backend="postgres", before=t, readings=total, chunk=chunk)
+        log.info("readings_deleted", backend="postgres", before=t, readings=total, chunk=chunk, max_chunks=max_chunks)
         return total
 
     @contextlib.asynccontextmanager

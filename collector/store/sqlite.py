@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import itertools
 import json
 import math
 import sqlite3
@@ -626,13 +627,15 @@ class SqliteStore:
                                arr["rssi_dd"].astype(np.int32), arr["offset_dd"].astype(np.int32))
         return await self._read(job)
 
-    async def delete_readings_before(self, t: float, chunk: int = 10_000) -> int:
+    async def delete_readings_before(self, t: float, chunk: int = 10_000, max_chunks: int | None = None) -> int:
         if chunk < 1:
             raise ValueError(f"chunk must be >= 1, got {chunk!r}")
+        if max_chunks is not None and max_chunks < 1:
+            raise ValueError(f"max_chunks must be >= 1 or None, got {max_chunks!r}")
         total = 0
         for table, col, count in (("readings", "t_collector", True), ("telemetry", "at", False),
                                   ("clock_samples", "t2", False)):
-            while True:
+            for _ in itertools.count() if max_chunks is None else range(max_chunks):
                 def tx(con: sqlite3.Connection, table: str = table, col: str = col) -> int:
                     return con.execute(f"DELETE FROM {table} WHERE rowid IN (SELECT rowid FROM {table} "
                                        f"WHERE {col} < ? LIMIT ?)", (t, chunk)).rowcount
@@ -642,7 +645,7 @@ class SqliteStore:
                     total += n
                 if n < chunk:
                     break
-        log.info("readings_deleted", backend="sqlite", before=t, readings=total, chunk=chunk)
+        log.info("readings_deleted", backend="sqlite", before=t, readings=total, chunk=chunk, max_chunks=max_chunks)
         return total
 
     @contextlib.asynccontextmanager

@@ -169,6 +169,14 @@ def _event_text(ev: dict[str, Any]) -> str:
     return f"→ {new}" if new else ev["kind"]
 
 
+def _event_note(ev: dict[str, Any]) -> str:
+    """What follows the kind in the events list: the new state, or which batches a loss covers."""
+    d = ev["detail"]
+    if ev["kind"] == "loss" and "first_seq" in d:
+        return f' batches {d["first_seq"]}–{d["last_seq"]} lost'
+    return f' → {d["new"]}' if d.get("new") else ""
+
+
 def _board_row(r: dict[str, Any]) -> str:
     ev = r["last_event"]
     cells = [
@@ -195,7 +203,7 @@ def render_page(doc: dict[str, Any], title: str = "listenpost · receivers") -> 
     events = "".join(
         f'<li><time>{time.strftime("%H:%M:%S", time.gmtime(e["at"]))}</time> '
         f'<b>{html.escape(e["board"] or "collector")}</b> {html.escape(e["kind"])}'
-        f'{" → " + html.escape(str(e["detail"].get("new"))) if e["detail"].get("new") else ""}'
+        f'{html.escape(_event_note(e))}'
         f'{" <span class=why>" + html.escape(str(e["detail"]["reason"])) + "</span>" if e["detail"].get("reason") else ""}</li>'
         for e in doc["events"]) or "<li>no events yet</li>"
     tpl = Template((TEMPLATES / "health.html").read_text())

@@ -11,6 +11,8 @@
     if (Math.abs(v) < 0.5 * Math.pow(10, -d)) v = 0;  // no "-0.00"
     return v.toLocaleString("en-US", {minimumFractionDigits: d, maximumFractionDigits: d}) + (unit || "");
   };
+  const evNote = (e) => !e.detail ? "" : e.kind === "loss" && e.detail.first_seq !== undefined
+    ? ` batches ${e.detail.first_seq}–${e.detail.last_seq} lost` : e.detail.new ? " → " + e.detail.new : "";
   const evText = (e) => e.kind === "state_changed" && e.detail && e.detail.new ? "→ " + e.detail.new : e.kind;
   const age = (s) => s === null || s === undefined ? "never" : s < 90 ? `${s.toFixed(0)} s ago`
     : s < 5400 ? `${(s / 60).toFixed(0)} min ago` : s < 172800 ? `${(s / 3600).toFixed(1)} h ago` : `${(s / 86400).toFixed(0)} d ago`;
@@ -45,7 +47,7 @@
         .map((s) => `<li>${badge(s, null)} <b>${doc.fleet.by_state[s]}</b></li>`).join("");
       document.getElementById("events").innerHTML = doc.events.map((e) =>
         `<li><time>${clock(e.at)}</time> <b>${esc(e.board || "collector")}</b> ${esc(e.kind)}` +
-        `${e.detail && e.detail.new ? " → " + esc(e.detail.new) : ""}` +
+        esc(evNote(e)) +
         `${e.detail && e.detail.reason ? " <span class=why>" + esc(e.detail.reason) + "</span>" : ""}</li>`).join("") || "<li>no events yet</li>";
       document.getElementById("generated").textContent = new Date(doc.at * 1000).toISOString().replace("T", " ").slice(0, 19) + " UTC";
       flag.textContent = ""; flag.className = "";
