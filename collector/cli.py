@@ -17,9 +17,12 @@ import sys
 from collections.abc import Sequence
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from agent.errors import ConfigError, DecodeError, ListenpostError
+
+if TYPE_CHECKING:
+    import ssl
 
 DEFAULT_URL = "http://127.0.0.1:8470"
 DEFAULT_STATE_DIR = "/var/lib/listenpost/collector"
@@ -140,9 +143,27 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
 
 # ------------------------------------------------------------------ serve
 
-def _serve(args: argparse.Namespace) -> int:
+def tls_context(settings: Any) -> ssl.SSLContext | None:
+    """
+    The server-side TLS context for ``tls.cert``/``tls.key`` of collector.yaml, or None for plain HTTP.
+
+    Raises:
+        ConfigError: a file is missing or unreadable, or the key does not match the certificate.
+    """
     import ssl
 
+    if not settings.tls_cert:
+        return None
+    ctx = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
+    ctx.minimum_version = ssl.TLSVersion.TLSv1_2
+    try:
+        ctx.load_cert_chain(settings.tls_cert, settings.tls_key)
+    except (OSError, ssl.SSLError) as e:
+        raise ConfigError(f"{settings.origin}: tls: cannot load {settings.tls_cert} / {settings.tls_key}: {e}") from e
+    return ctx
+
+
+def _serve(args: argparse.Namespace) -> int:
     from aiohttp import web
 
     from agent.clock import SystemClock
@@ -153,18 +174,12 @@ def _serve(args: argparse.Namespace) -> int:
 
     settings = load_settings(args.config, state_dir=str(args.state_dir), db_url=args.db, host=args.host, port=args.port)
     configure(args.log_format)
-    ssl_ctx = None
-    if settings.tls_cert:
-        ssl_ctx = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
-        try:
-            ssl_ctx.load_cert_chain(settings.tls_cert, settings.tls_key)
-        except (OSError, ssl.SSLError) as e:
-            raise ConfigError(f"{settings.origin}: tls: cannot load {settings.tls_cert} / {settings.tls_key}: {e}") from e
+    ssl_ctx = tls_context(settings)
     app = create_app(settings, clock=SystemClock())
     notifier = Notifier()
 
     async def notify_ctx(app: web.Application) -> Any:
-        notifier.ready(f"listening on {settings.host}:{settings.port}")
+        notifier.ready(f"listening on {'https' if ssl_ctx else 'http'}://{settings.host}:{settings.port}")
         task = asyncio.create_task(_watchdog(notifier)) if notifier.watchdog_interval else None
         yield
         notifier.stopping()
