@@ -106,6 +106,10 @@ class AgentService:
         self.drain_timeout_s = drain_timeout_s
         self.rng = rng
         self.stop_event = asyncio.Event()
+        self.started = asyncio.Event()
+        """Set once every task is running (after the spool opened on its worker thread). Virtual-time
+        drivers wait for it: advancing the clock before then shifts the sealer's phase by however much
+        real time the open took."""
         self.source_state = SourceState.STARTING
         self.source_error: str | None = None
         self.spool: Spool | None = None
@@ -184,6 +188,7 @@ class AgentService:
             log.info("agent_started", version=__version__, source=cfg.source.kind, collector=cfg.collector.url,
                      uploading=self.uplink is not None, tags=len(tags), offset_db=offset_db)
             self.notifier.ready(self.status_line())
+            self.started.set()
             await self.stop_event.wait()
             code = await self._shutdown()
             if self._fatal is not None:

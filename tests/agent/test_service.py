@@ -196,6 +196,10 @@ async def test_stop_seals_pending_readings_and_spool_only_without_a_collector(tm
     source = ListSource(clock, adverts, hang=True)
     service = AgentService(cfg, clock=clock, source=source)
     task = asyncio.create_task(service.run())
+    # Virtual time must stand still until the spool has opened (real I/O on its thread): otherwise
+    # the sealer starts late by however far the clock ran meanwhile, and its last seal before the
+    # stop can land after the last registered advert, leaving nothing pending.
+    await asyncio.wait_for(service.started.wait(), 10)
     while source.yielded < len(adverts):
         await asyncio.wait({task}, timeout=0.002)
         await clock.advance(0.5)

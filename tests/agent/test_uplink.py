@@ -162,12 +162,15 @@ def make_uplink(server, clock, spool, **kw) -> Uplink:
 
 async def drive(clock: VirtualClock, uplink: Uplink, task: asyncio.Task[Any],
                 until: Callable[[], bool] | None = None, rounds: int = 400) -> None:
-    """Step virtual time to each of the uplink's wake-ups until the task ends (or ``until`` holds)."""
+    """
+    Step virtual time to each of the uplink's wake-ups until the task ends (or ``until`` holds).
+
+    ``until`` is looked at only while the uplink is parked on the clock: right after an advance the
+    woken uplink may still have a loopback request in flight, and how far that got is real time.
+    """
     for _ in range(rounds):
         if task.done():
             task.result()
-            return
-        if until is not None and until():
             return
         parked = asyncio.ensure_future(uplink.wait_parked())
         done, _ = await asyncio.wait({parked, task}, timeout=10, return_when=asyncio.FIRST_COMPLETED)
