@@ -349,13 +349,50 @@ class _Disk:
                         raise
                     self._recover(e, mono, wall)
             else:
-                self._create_fresh(self.path, new_epoch(), (), lambda: ({}, []), mono, wall)
+                counters = {"corrupt_set_aside": 1} if self._set_orphans_aside() else {}
+                self._create_fresh(self.path, new_epoch(), (), lambda: (counters, []), mono, wall)
                 self._open_existing()
             self.degraded = False
         except (sqlite3.Error, OSError) as e:
             self._drop_conn()
             self.degraded = True
             raise _Degraded(f"{type(e).__name__}: {e}") from e
+
+    def _set_orphans_aside(self) -> bool:
+        """
+        Move journal files whose spool file is gone out of the way; True if one held data.
+
+        SQLite does not check that a ``-wal`` belongs to the file beside it: left in place, a stale
+        one is replayed onto the fresh spool and resurrects the old epoch and seq, or mixes old pages
+        with new ones. Without its database a WAL cannot be read back (a database file is needed for
+        its page size, schema and every page the WAL does not hold), so its batches are lost. A
+        non-empty ``-wal`` or ``-journal`` is kept as ``<name>.orphan-wal`` / ``.orphan-journal``
+        (one set, the newest) for a technician and counted in ``corrupt_set_aside``; the collector
+        sees what it never received as seq holes of the old epoch. A ``-shm`` is only an index and
+        is removed.
+        """
+        found = [Path(str(self.path) + sfx) for sfx in ("-wal", "-journal", "-shm")]
+        found = [p for p in found if p.exists() or p.is_symlink()]
+        if not found:
+            return False
+        data = [p for p in found if not p.name.endswith("-shm") and p.is_file() and p.stat().st_size > 0]
+        if data:
+            for sfx in ("-wal", "-journal"):
+                _remove(self.path.with_name(self.path.name + ".orphan" + sfx))
+        sizes = {}
+        for p in found:
+            sizes[p.name] = p.stat().st_size if p.is_file() else None
+            if p in data:
+                os.replace(p, self.path.with_name(self.path.name + ".orphan" + p.name[len(self.path.name):]))
+            else:
+                _remove(p)
+        _fsync_dir(self.path.parent)
+        if data:
+            log.error("spool_orphans_set_aside", path=str(self.path), files=sizes,
+                      hint="the spool file was deleted but not its journal; batches only there are lost")
+        else:
+            log.info("spool_orphans_removed", path=str(self.path), files=sizes)
+        return bool(data)
 
     def _connect(self, path: Path) -> sqlite3.Connection:
         if not path.is_file():
