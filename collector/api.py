@@ -185,10 +185,31 @@ async def get_config(request: web.Request) -> web.Response:
 
 
 async def post_batch(request: web.Request) -> web.Response:
-    """``POST /v1/batches``: validate, store atomically, answer only after the durable commit."""
+    """
+    ``POST /v1/batches``: validate, store atomically, answer only after the durable commit.
+
+    At most ``limits.max_inflight_batches`` are read and stored at once; one more gets 429 with
+    ``Retry-After`` before its body is read, so a burst (a fleet back after an outage) waits on the
+    boards, whose spools are made for waiting, rather than in this process's memory.
+    """
+    app = request.app
+    runtime, limits = app[RUNTIME], app[SETTINGS].limits
+    board = await require_board(request)
+    if runtime.batches_inflight >= limits.max_inflight_batches:
+        runtime.counters.overloaded += 1
+        raise ApiError(429, "busy", f"{runtime.batches_inflight} batches are being stored now; "
+                       f"retry after {limits.busy_retry_after_seconds} s",
+                       headers={"Retry-After": str(limits.busy_retry_after_seconds)})
+    runtime.batches_inflight += 1
+    try:
+        return await _store_batch(request, board)
+    finally:
+        runtime.batches_inflight -= 1
+
+
+async def _store_batch(request: web.Request, board: Board) -> web.Response:
     app = request.app
     store, runtime, t2 = app[STORE], app[RUNTIME], request[T2]
-    board = await require_board(request)
     body = await read_json(request, app[SETTINGS].limits)
     try:
         env = parse_batch(body, max_readings=app[SETTINGS].limits.max_readings)

@@ -33,6 +33,8 @@ class BatchCounters:
     conflict: int = 0
     rejected: int = 0
     unavailable: int = 0
+    overloaded: int = 0
+    """Answered 429: ``limits.max_inflight_batches`` batches were being stored already."""
     readings_stored: int = 0
     bytes_received: int = 0
     """Request body bytes as sent (compressed), for the bytes-per-reading figure."""
@@ -49,6 +51,8 @@ class Runtime:
     """board → {"state", "since", "reason"}: the monitor's latest verdict."""
     counters: BatchCounters = field(default_factory=BatchCounters)
     monitor_rounds: int = 0
+    batches_inflight: int = 0
+    """Batch requests past authentication and not yet answered (bounded by ``limits.max_inflight_batches``)."""
     rates: dict[str, deque[tuple[float, int]]] = field(default_factory=dict)
     """board → (collector time, readings total) snapshots, for readings per second."""
     recent_events: deque[Any] = field(default_factory=lambda: deque(maxlen=50))

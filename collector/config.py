@@ -11,7 +11,8 @@ Every key is optional; an absent file means all defaults::
     retention: {days: 90, chunk: 10000}
     liveness: {...}                            # any field of collector.liveness.LivenessSettings
     enrollment: {code_lifetime_hours: 72}
-    limits: {max_body_bytes: 4194304, max_decompressed_bytes: 33554432, max_readings: 200000}
+    limits: {max_body_bytes: 4194304, max_decompressed_bytes: 33554432, max_readings: 200000,
+             max_inflight_batches: 32, busy_retry_after_seconds: 2}   # past the 32nd batch at once: 429
     agent: {flush_seconds: 5, heartbeat_seconds: 10}
     decode:
       rules:
@@ -43,6 +44,11 @@ class Limits:
     """Largest body after gunzip, bytes; a gzip bomb stops here → 413."""
     max_readings: int = 200_000
     """Most readings in one batch."""
+    max_inflight_batches: int = 32
+    """Batch requests read and stored at once by this process; one more is answered 429 with
+    ``Retry-After`` instead of queueing, so memory stays below about this × ``max_decompressed_bytes``."""
+    busy_retry_after_seconds: int = 2
+    """``Retry-After`` of that 429, seconds (boards wait at least this, plus their own jitter)."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -175,6 +181,9 @@ def parse_settings(data: Any, origin: str = "collector.yaml", **overrides: Any) 
         max_body_bytes=lim.get("max_body_bytes", int, d.max_body_bytes, positive),
         max_decompressed_bytes=lim.get("max_decompressed_bytes", int, d.max_decompressed_bytes, positive),
         max_readings=lim.get("max_readings", int, d.max_readings, positive),
+        max_inflight_batches=lim.get("max_inflight_batches", int, d.max_inflight_batches, positive),
+        busy_retry_after_seconds=lim.get("busy_retry_after_seconds", int, d.busy_retry_after_seconds,
+                                         check=lambda v: None if 1 <= v <= 3600 else "must be 1..3600"),
     )
     lim.done()
     if limits.max_decompressed_bytes < limits.max_body_bytes:

@@ -65,14 +65,15 @@ def spec() -> dict[str, Any]:
         "/v1/batches": {"post": {
             "summary": "Store one sealed batch (or gap record); answered after the durable commit",
             "security": BOARD_AUTH, "tags": ["board"],
-            "description": "Body per agent/wire.py; may be gzip'd (Content-Encoding: gzip).",
+            "description": "Body per agent/wire.py; may be gzip'd (Content-Encoding: gzip). 429 + Retry-After "
+                           "when limits.max_inflight_batches batches are being stored already.",
             "requestBody": _body(_obj(["v", "board", "boot", "epoch", "seq", "digest", "t1", "content"],
                                       v={"type": "integer", "enum": [1]}, board=STR, boot=STR, epoch=STR, seq=INT,
                                       digest=STR, t1=NUM, clock={**clock, "nullable": True},
                                       content={"type": "object"})),
             "responses": {"200": _json(_obj(["status", "t2", "t3"], status={"type": "string", "enum": ["stored", "duplicate"]},
                                             t2=NUM, t3=NUM)),
-                          **_errors(400, 401, 403, 409, 413, 415, 503)}}},
+                          **_errors(400, 401, 403, 409, 413, 415, 429, 503)}}},
         "/v1/heartbeat": {"post": {
             "summary": "Board stats and a clock sample", "security": BOARD_AUTH, "tags": ["board"],
             "requestBody": _body(_obj(["boot"], board=STR, boot=STR, t1=NUM, wall=NUM,

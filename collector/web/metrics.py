@@ -24,9 +24,10 @@ from collector.web.pages import STATE_LABELS, status_doc
 class SnapshotCollector(Collector):
     """Metric families from one status snapshot (``collector.web.pages.status_doc``) and the batch counters."""
 
-    def __init__(self, doc: dict[str, Any], counters: Any) -> None:
+    def __init__(self, doc: dict[str, Any], counters: Any, inflight: int = 0) -> None:
         self.doc = doc
         self.counters = counters
+        self.inflight = inflight
 
     def collect(self) -> Iterator[Metric]:
         boards = self.doc["boards"]
@@ -74,9 +75,11 @@ class SnapshotCollector(Collector):
         c = self.counters
         batches = CounterMetricFamily("listenpost_batches", "Batch requests answered by this collector, by outcome.",
                                       labels=["status"])
-        for status in ("stored", "duplicate", "conflict", "rejected", "unavailable"):
+        for status in ("stored", "duplicate", "conflict", "rejected", "unavailable", "overloaded"):
             batches.add_metric([status], getattr(c, status))
         yield batches
+        yield GaugeMetricFamily("listenpost_batches_inflight", "Batch requests being read or stored now.",
+                                value=self.inflight)
         yield CounterMetricFamily("listenpost_request_bytes", "Batch request bytes received as sent (compressed).",
                                   value=c.bytes_received)
         yield GaugeMetricFamily("listenpost_tags", "Registered tags.", value=self.doc["fleet"]["tags"])
@@ -85,7 +88,8 @@ class SnapshotCollector(Collector):
 async def metrics(request: web.Request) -> web.Response:
     doc = await status_doc(request.app)
     registry = CollectorRegistry(auto_describe=False)
-    registry.register(SnapshotCollector(doc, request.app[RUNTIME].counters))
+    runtime = request.app[RUNTIME]
+    registry.register(SnapshotCollector(doc, runtime.counters, runtime.batches_inflight))
     body = generate_latest(registry)
     return web.Response(body=body, headers={"Content-Type": CONTENT_TYPE_PLAIN_0_0_4})
 

@@ -119,7 +119,8 @@ async def status_doc(app: web.Application) -> dict[str, Any]:
                   "readings_total": sum(r["readings_total"] for r in rows),
                   "tags": len(await store.list_tags()),
                   "batches": {"stored": runtime.counters.stored, "duplicate": runtime.counters.duplicate,
-                              "conflict": runtime.counters.conflict, "rejected": runtime.counters.rejected}},
+                              "conflict": runtime.counters.conflict, "rejected": runtime.counters.rejected,
+                              "overloaded": runtime.counters.overloaded}},
         "boards": rows,
         "events": [{"id": e.id, "at": e.at, "board": e.board, "kind": e.kind, "detail": e.detail}
                    for e in reversed(recent[-20:])],
