@@ -9,7 +9,6 @@ from __future__ import annotations
 import asyncio
 import json
 import random
-from collections.abc import Callable
 from pathlib import Path
 
 import pytest
@@ -23,16 +22,7 @@ from agent.uplink import Uplink, UplinkState
 from collector.app import RUNTIME, STORE
 from collector.config import parse_settings
 from tests.collector.test_api import TAGS, batch_body, enrolled, import_tags, make_client, readings
-
-
-async def until(cond: Callable[[], bool], what: str, seconds: float = 5.0) -> None:
-    """Poll while real loopback I/O finishes; fail naming ``what`` after ``seconds``."""
-    loop = asyncio.get_running_loop()
-    end = loop.time() + seconds
-    while not cond():
-        if loop.time() > end:
-            pytest.fail(f"timed out waiting for {what}")
-        await asyncio.sleep(0.002)
+from tests.collector.test_monitor import until
 
 
 async def filled_spool(path: Path, clock: VirtualClock, batches: int, per_batch: int) -> Spool:
