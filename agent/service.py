@@ -40,6 +40,7 @@ from agent.notify import Notifier
 from agent.pipeline import Pipeline, build_pipeline
 from agent.remote_config import ConfigCache, ConfigFetcher, RemoteConfig
 from agent.spool import Spool
+from agent.tagrate import TagRates
 from agent.types import Source
 from agent.uplink import ExchangeLog, Uplink, UplinkState
 
@@ -119,6 +120,8 @@ class AgentService:
         self.config: ConfigFetcher | None = None
         self.remote: RemoteConfig | None = None
         self.exchanges = ExchangeLog()
+        self.tag_rates = TagRates(clock)
+        """Effective readings per second per registered tag (the heartbeat sends only its summary)."""
         self.drained: bool | None = None
         """After a drain: True if the spool emptied in time (``None`` if no drain was asked for)."""
         self._rules: tuple[DecodeRule, ...] = cfg.rules
@@ -252,6 +255,7 @@ class AgentService:
                     r = self.pipeline.process(advert)  # type: ignore[union-attr]
                     if r is not None:
                         spool.add(r)
+                        self.tag_rates.note(r.tag)
                     backoff = 1.0
                 self.source_state = SourceState.ENDED
                 log.info("source_ended", adverts=self.pipeline.stats()["adverts_total"])  # type: ignore[union-attr]
@@ -362,10 +366,17 @@ class AgentService:
             "spool": sp,
             "drops": {"spool_readings": sp["dropped_readings"], "spool_batches": sp["dropped_batches"],
                       "dead_letters": sp["dead_letters"]},
-            "source": {"kind": self.cfg.source.kind, "state": self.source_state.value, "error": self.source_error},
+            "source": {"kind": self.cfg.source.kind, "state": self.source_state.value, "error": self.source_error,
+                       "radio": self._radio_stats()},
+            **self.tag_rates.summary().as_stats(),
             "uplink": self.uplink.stats() if self.uplink is not None else None,
             "offset_db": self.offset_db,
         }
+
+    def _radio_stats(self) -> dict[str, Any] | None:
+        """The live source's own figures (bleak: supervisor state, reason, restarts; HCI: packet counts)."""
+        fn = getattr(self.source, "stats", None)
+        return dict(fn()) if callable(fn) else None
 
     def _summary(self) -> dict[str, Any]:
         assert self.pipeline is not None and self.spool is not None

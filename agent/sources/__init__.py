@@ -18,6 +18,7 @@ from __future__ import annotations
 import asyncio
 import enum
 import math
+from collections import deque
 from collections.abc import AsyncIterator, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -41,39 +42,68 @@ log = structlog.get_logger(__name__)
 
 class RateMeter:
     """
-    Adverts per second per address over the last complete window.
+    Events per second per key over a window that slides in whole buckets.
 
     BlueZ cannot promise one report per advertisement (BLE-NOTES §2), so the agent measures what
-    it actually gets. Memory is two dicts of counters: addresses not heard for two windows vanish.
+    it actually gets: per address at the source, per registered tag after the pipeline. The window
+    is cut into ``buckets`` equal buckets; `rates` counts the last ``buckets`` *complete* ones and
+    divides by their span, so it lags the clock by less than one bucket. With ``buckets=1`` that is
+    the last complete window. Right after start the span is only as long as the complete buckets
+    seen so far (the first may be partly before the first event). Memory is one dict of counters
+    per bucket; a key not heard for a whole window vanishes.
     """
 
-    __slots__ = ("window", "_idx", "_cur", "_prev")
+    __slots__ = ("window", "buckets", "_width", "_start", "_idx", "_cur", "_done")
 
-    def __init__(self, window_seconds: float = 60.0) -> None:
-        if window_seconds <= 0:
+    def __init__(self, window_seconds: float = 60.0, buckets: int = 1) -> None:
+        if not window_seconds > 0:
             raise ValueError(f"window_seconds must be > 0, got {window_seconds!r}")
+        if isinstance(buckets, bool) or not isinstance(buckets, int) or buckets < 1:
+            raise ValueError(f"buckets must be an integer >= 1, got {buckets!r}")
         self.window = float(window_seconds)
+        self.buckets = buckets
+        self._width = self.window / buckets
+        self._start: int | None = None
         self._idx: int | None = None
         self._cur: dict[str, int] = {}
-        self._prev: dict[str, int] = {}
+        self._done: deque[tuple[int, dict[str, int]]] = deque()
+        """Complete buckets (index, counts), oldest first, at most ``buckets`` of them."""
 
-    def _roll(self, now: float) -> None:
-        idx = math.floor(now / self.window)
-        if idx == self._idx:
-            return
-        self._prev = self._cur if self._idx is not None and idx == self._idx + 1 else {}
-        self._cur = {}
-        self._idx = idx
+    def _roll(self, now: float) -> int:
+        idx = math.floor(now / self._width)
+        if idx != self._idx:
+            if self._idx is None:
+                self._start = idx
+            elif self._cur:
+                self._done.append((self._idx, self._cur))
+            self._cur = {}
+            self._idx = idx
+            while self._done and self._done[0][0] < idx - self.buckets:
+                self._done.popleft()
+        return idx
 
-    def note(self, address: str, now: float) -> None:
-        """Count one advert from ``address`` at clock time ``now`` (seconds)."""
-        self._roll(now)
-        self._cur[address] = self._cur.get(address, 0) + 1
+    def note(self, key: str, now: float) -> None:
+        """Count one event of ``key`` at clock time ``now`` (seconds)."""
+        if math.floor(now / self._width) != self._idx:
+            self._roll(now)
+        self._cur[key] = self._cur.get(key, 0) + 1
+
+    def span(self, now: float) -> float:
+        """Seconds the rates at ``now`` are counted over: the window, or less right after start."""
+        idx = self._roll(now)
+        assert self._start is not None
+        return min(self.buckets, idx - self._start) * self._width
 
     def rates(self, now: float) -> dict[str, float]:
-        """Adverts per second of each address in the last complete window before ``now``."""
-        self._roll(now)
-        return {a: n / self.window for a, n in self._prev.items()}
+        """Events per second of each key over the complete buckets of the window before ``now``."""
+        span = self.span(now)
+        if span <= 0:
+            return {}
+        total: dict[str, int] = {}
+        for _, counts in self._done:
+            for k, n in counts.items():
+                total[k] = total.get(k, 0) + n
+        return {k: n / span for k, n in total.items()}
 
 
 # ---------------------------------------------------------------- replay
