@@ -144,6 +144,7 @@ class Monitor:
             return await self._round(RoundReport(held_lock=held))
 
     async def _round(self, report: RoundReport) -> RoundReport:
+        await self._sample_rates()
         if report.held_lock:
             await self._seed()
             await self._liveness(report)
@@ -154,6 +155,14 @@ class Monitor:
         self.runtime.monitor_rounds += 1
         self.rounds_led += report.held_lock
         return report
+
+    async def _sample_rates(self) -> None:
+        """Every board's stored-readings total now, for the readings-per-second figure (web/pages.py)."""
+        from collector.web.pages import note_total
+
+        now = self.clock.time()
+        for c in await self.store.board_counts():
+            note_total(self.runtime.rates.setdefault(c.board, deque(maxlen=256)), now, c.readings_total)
 
     async def _seed(self) -> None:
         """Start the tracker from the stored states, so a restart does not announce every board again."""

@@ -44,6 +44,12 @@ class SnapshotCollector(Collector):
                         "Readings a board reported lost (spool overflow, corruption), per board.", "gap_readings")
         yield per_board(CounterMetricFamily, "listenpost_adverts",
                         "Advertisements the board's radio heard (all devices), from its latest heartbeat.", "adverts_total")
+        yield per_board(GaugeMetricFamily, "listenpost_readings_per_second",
+                        "Readings stored per second over the last two minutes, per board.", "readings_per_s")
+        yield per_board(GaugeMetricFamily, "listenpost_tag_rate_median_hertz",
+                        "Median over the tags a board heard recently of its readings per tag per second, "
+                        "from its latest heartbeat (far below the tags' advertising rate: the radio misses adverts).",
+                        "tag_rate_hz_median")
         yield per_board(GaugeMetricFamily, "listenpost_clock_offset_seconds",
                         "Collector time minus board monotonic time at the fit's reference point.", "clock_offset_ms", 1e-3)
         yield per_board(GaugeMetricFamily, "listenpost_clock_skew_ppm",

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import html
 import json
+import math
 import time
 from collections import deque
 from pathlib import Path
@@ -45,13 +46,35 @@ def stat(stats: dict[str, Any], *names: str) -> Any:
     return None
 
 
-def _rate(history: deque[tuple[float, int]], now: float, total: int) -> float | None:
-    """Readings per second over the last couple of minutes, from snapshots the status calls leave behind."""
-    history.append((now, total))
-    while len(history) > 2 and now - history[1][0] >= RATE_WINDOW_SECONDS:
+def note_total(history: deque[tuple[float, int]], at: float, total: int) -> None:
+    """
+    Keep one (collector time, readings total) sample; drop samples no longer needed for the window.
+
+    The monitor calls this for every board each round (leader or follower), so every collector's page
+    shows the same rate, however often the page is looked at.
+    """
+    if history and at <= history[-1][0]:
+        return
+    history.append((at, total))
+    while len(history) > 2 and at - history[1][0] >= RATE_WINDOW_SECONDS:
         history.popleft()
-    t0, n0 = history[0]
-    return (total - n0) / (now - t0) if now - t0 >= 1.0 else None
+
+
+def readings_rate(history: deque[tuple[float, int]] | None) -> float | None:
+    """
+    Readings stored per second over about the last ``RATE_WINDOW_SECONDS`` (oldest kept sample to newest);
+    None until two samples at least a second apart exist. Batches arrive every few seconds, so a
+    window of minutes smooths their steps.
+    """
+    if not history or len(history) < 2:
+        return None
+    (t0, n0), (t1, n1) = history[0], history[-1]
+    return (n1 - n0) / (t1 - t0) if t1 - t0 >= 1.0 else None
+
+
+def _number(v: Any) -> float | None:
+    """A heartbeat figure if it is a finite number (boards may be older or newer than this collector)."""
+    return float(v) if isinstance(v, int | float) and not isinstance(v, bool) and math.isfinite(v) else None
 
 
 async def recent_events(app: web.Application) -> list[Event]:
@@ -96,7 +119,9 @@ async def status_doc(app: web.Application) -> dict[str, Any]:
             "last_contact_at": contact,
             "heartbeat_age_s": None if hb is None else max(0.0, now - hb.at), "last_contact_age_s": None if contact is None else max(0.0, now - contact),
             "readings_total": total, "batches_total": c.batches_total if c else 0,
-            "readings_per_s": _rate(runtime.rates.setdefault(b.name, deque(maxlen=64)), now, total),
+            "readings_per_s": readings_rate(runtime.rates.get(b.name)) if b.enrolled_at is not None else None,
+            "tag_rate_hz_median": _number(stats.get("tag_rate_hz_median")),
+            "tags_heard": _number(stats.get("tags_heard")),
             "gap_readings": c.gap_readings if c else 0,
             "clock_offset_ms": fit.offset_s * 1000.0 if fit else None,
             "clock_skew_ppm": fit.skew_ppm if fit else None,
@@ -178,6 +203,12 @@ def _event_note(ev: dict[str, Any]) -> str:
     return f' → {d["new"]}' if d.get("new") else ""
 
 
+def _tag_rate_title(r: dict[str, Any]) -> str:
+    if r["tags_heard"] is None:
+        return ""
+    return f' title="median over {r["tags_heard"]:.0f} tags heard recently"'
+
+
 def _board_row(r: dict[str, Any]) -> str:
     ev = r["last_event"]
     cells = [
@@ -186,7 +217,8 @@ def _board_row(r: dict[str, Any]) -> str:
         f'<td class="st">{_state_badge(r["state"], r["state_reason"])}</td>',
         f'<td class="age num">{fmt_age(r["last_contact_age_s"])}</td>',
         f'<td class="num readings">{_fmt(r["readings_total"])}</td>',
-        f'<td class="num">{_fmt(r["readings_per_s"], "/s")}</td>',
+        f'<td class="num rate">{_fmt(r["readings_per_s"], "/s")}</td>',
+        f'<td class="num tagrate"{_tag_rate_title(r)}>{_fmt(r["tag_rate_hz_median"], " Hz", 2)}</td>',
         f'<td class="num">{_fmt(r["clock_skew_ppm"], " ppm", 2)}</td>',
         f'<td class="num">{_fmt(r["clock_residual_ms"], " ms", 2)}</td>',
         f'<td class="num">{_fmt(r["wall_error_ms"] / 1000.0 if r["wall_error_ms"] is not None else None, " s", 1)}</td>',

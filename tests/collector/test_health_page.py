@@ -33,6 +33,8 @@ class VirtualBoard:
         self.seq = 0
         self.adverts = 0
         self.spool = 0
+        self.tag_rate_hz: float | None = None
+        """What the board's heartbeat says of its readings per tag per second (None: an older agent)."""
 
     async def enroll(self, client: TestClient, tmp_path: Path) -> None:
         self.auth = await enrolled(client, tmp_path, self.name, self.room)
@@ -42,6 +44,8 @@ class VirtualBoard:
         t1 = self.clock.monotonic()
         body = {"board": self.name, "boot": self.clock.boot_id, "t1": t1, "clock": self.prev, "wall": self.clock.time(),
                 "stats": {"pipeline": {"adverts_total": self.adverts}, "spool": {"batches": self.spool}}}
+        if self.tag_rate_hz is not None:
+            body["stats"].update(tag_rate_hz_median=self.tag_rate_hz, tags_heard=5)
         r = await client.post("/v1/heartbeat", json=body, headers=self.auth)
         assert r.status == 200, await r.text()
         doc = await r.json()
@@ -71,6 +75,8 @@ async def build_fleet(aiohttp_client, tmp_path: Path, clock: VirtualClock) -> tu
         "u2-a": VirtualBoard("u2-a", "U2 Body Works", clock, skew_ppm=85),
         "g3-b": VirtualBoard("g3-b", "G3 Weather Hall", clock, skew_ppm=-20),
     }
+    # Tags advertise at 2 Hz in the venue: g0-a's radio delivers nearly all of it, g2-a's far fewer.
+    boards["g0-a"].tag_rate_hz, boards["g2-a"].tag_rate_hz = 1.95, 0.35
     for b in boards.values():
         await b.enroll(client, tmp_path)
     r = await client.post("/v1/admin/boards", json={"name": "u5-a", "room": "U5 Workshop", "floor": "upper"},
@@ -107,6 +113,11 @@ async def test_fleet_states_in_status_json(fleet):
     assert rows["g0-a"]["clock_skew_ppm"] == pytest.approx(0, abs=2)
     assert rows["g0-a"]["readings_total"] == 36 * 12
     assert rows["u3-a"]["last_contact_age_s"] == pytest.approx(320, abs=1)  # last beat at round 4 of 36
+    # 12 readings per 10 s round, sampled by the monitor every round: 1.2 readings/s (hand computation).
+    assert rows["g0-a"]["readings_per_s"] == pytest.approx(1.2) and rows["u2-a"]["readings_per_s"] == pytest.approx(1.2)
+    assert rows["g2-a"]["readings_per_s"] == 0.0 and rows["u3-a"]["readings_per_s"] == 0.0
+    assert (rows["g0-a"]["tag_rate_hz_median"], rows["g2-a"]["tag_rate_hz_median"]) == (1.95, 0.35)
+    assert rows["u3-a"]["tag_rate_hz_median"] is None and rows["u5-a"]["readings_per_s"] is None
     kinds = [(e["board"], e["detail"].get("new")) for e in doc["events"] if e["kind"] == "state_changed"]
     assert ("u3-a", "silent") in kinds and ("g2-a", "deaf") in kinds
 
@@ -117,6 +128,9 @@ async def test_page_renders_without_javascript(fleet):
     html = await r.text()
     assert r.status == 200 and r.content_type == "text/html"
     assert 'data-board="g2-a" data-state="deaf"' in html
+    row = html[html.index('data-board="g0-a"'):]
+    row = row[:row.index("</tr>")]
+    assert '<td class="num rate">1.2/s</td>' in row and ">1.95 Hz</td>" in row
     assert "http://" not in html.replace(str(client.make_url("/")), "") and "https://" not in html  # no external assets
 
 
@@ -161,10 +175,14 @@ async def test_health_page_in_a_real_browser(aiohttp_client, tmp_path, clock):
                 "() => document.querySelector('tr[data-board=\"g0-a\"] td.readings').textContent === '462'",
                 timeout=10_000)
             assert await page.locator("#refresh-state").inner_text() == ""
+            # The redrawn rows carry the rates too (the script's formatting, not the server's).
+            assert await page.locator('tr[data-board="g0-a"] td.rate').inner_text() == "1.2/s"
+            assert await page.locator('tr[data-board="g2-a"] td.tagrate').inner_text() == "0.35 Hz"
+            assert await page.locator('tr[data-board="u3-a"] td.tagrate').inner_text() == "–"
             shot = tmp_path / "health.png"
             await page.screenshot(path=str(shot), full_page=True)
             assert shot.stat().st_size > 10_000
             if os.path.isdir("/tmp/lp"):  # noqa: ASYNC240 (a copy for people to look at; not committed)
-                shutil.copyfile(shot, "/tmp/lp/health.png")
+                shutil.copyfile(shot, "/tmp/lp/health2.png")
         finally:
             await browser.close()

@@ -37,4 +37,9 @@ async def test_metrics_parse_and_match_the_fleet(aiohttp_client, tmp_path, clock
     offset = {s.labels["board"]: s.value for s in families["listenpost_clock_offset_seconds"].samples}
     # g0-a's clock has no skew, so collector − board time is the same at every reference point.
     assert offset["g0-a"] == pytest.approx(clock.time() - boards["g0-a"].clock.monotonic(), abs=0.01)
+    rate = {s.labels["board"]: s.value for s in families["listenpost_readings_per_second"].samples}
+    assert rate["g0-a"] == pytest.approx(1.2) and rate["g2-a"] == 0.0  # 12 readings per 10 s round
+    assert families["listenpost_tag_rate_median_hertz"].type == "gauge"
+    tag_rate = {s.labels["board"]: s.value for s in families["listenpost_tag_rate_median_hertz"].samples}
+    assert tag_rate == {"g0-a": 1.95, "g2-a": 0.35}  # only boards whose heartbeat carries it
     assert "listenpost_readings_created" not in families  # no _created series from our collector

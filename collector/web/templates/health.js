@@ -24,7 +24,9 @@
   const row = (r) => `<tr data-board="${esc(r.name)}" data-state="${esc(r.state)}">` +
     `<th scope="row">${esc(r.name)}</th><td>${esc(r.room)}</td><td>${r.floor === null ? "–" : esc(r.floor)}</td>` +
     `<td class="st">${badge(r.state, r.state_reason)}</td><td class="age num">${age(r.last_contact_age_s)}</td>` +
-    `<td class="num readings">${num(r.readings_total)}</td><td class="num">${num(r.readings_per_s, "/s", 1)}</td>` +
+    `<td class="num readings">${num(r.readings_total)}</td><td class="num rate">${num(r.readings_per_s, "/s", 1)}</td>` +
+    `<td class="num tagrate"${r.tags_heard === null || r.tags_heard === undefined ? "" : ` title="median over ${r.tags_heard} tags heard recently"`}>` +
+    `${num(r.tag_rate_hz_median, " Hz", 2)}</td>` +
     `<td class="num">${num(r.clock_skew_ppm, " ppm", 2)}</td><td class="num">${num(r.clock_residual_ms, " ms", 2)}</td>` +
     `<td class="num">${r.wall_error_ms === null ? "–" : num(r.wall_error_ms / 1000, " s", 1)}</td>` +
     `<td class="num">${num(r.spool_backlog_batches)}</td><td class="num">${num(r.adverts_total)}</td>` +
