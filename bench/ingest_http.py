@@ -9,8 +9,9 @@ its core: the figure is conservative).
 
   (a) HTTP → collector → SQLite store (group commit, synchronous=FULL) vs
   (b) raw ``executemany`` of the same rows into the same schema, one durable transaction per batch
-      (``bench.ingest_store.raw_sqlite``);
-  (c) HTTP → collector → PostgreSQL store vs (d) raw COPY of the same rows, one transaction per batch;
+      (``bench._raw_baselines.raw_sqlite``);
+  (c) HTTP → collector → PostgreSQL store vs (d) raw COPY of the same rows, one transaction per batch
+      (``bench._raw_baselines.raw_pg_copy``);
   (e) bytes on the wire per reading (request bodies as sent).
 
 Targets (DESIGN.md "Scale"): (a) ≥ 50 % of (b) and ≥ 150,000 readings/s; (c) ≥ 50 % of (d); (e) ≤ 6.
@@ -24,7 +25,6 @@ import os
 import tempfile
 import time
 import uuid
-from itertools import repeat
 from pathlib import Path
 from typing import Any
 
@@ -33,7 +33,8 @@ import numpy as np
 from agent import wire
 from agent.clock import SystemClock
 from agent.types import Reading
-from bench.ingest_store import make_tags, raw_sqlite
+from bench._raw_baselines import raw_pg_copy, raw_sqlite
+from bench.ingest_store import make_tags
 from collector.store import IngestBatch
 
 WORKLOADS = (
@@ -134,37 +135,6 @@ async def http_ingest(store: Any, per_board: list[list[bytes]], names: list[str]
         await runner.cleanup()
 
 
-async def raw_pg_copy(per_board: list[list[IngestBatch]], schema: str) -> float:
-    import asyncpg
-
-    from collector.store.postgres import PostgresStore
-    migrated = await PostgresStore.open(PG_URL, schema=schema, max_size=1)  # the store's schema, migrated
-    await migrated.close()
-    con = await asyncpg.connect(PG_URL, server_settings={"search_path": schema, "synchronous_commit": "on"})
-    try:
-        tag_ids = {}
-        for i, tag in enumerate(make_tags(), 1):
-            await con.execute("INSERT INTO tags (id, tag) VALUES ($1, $2)", i, tag)
-            tag_ids[tag] = i
-        for i, mine in enumerate(per_board, 1):
-            await con.execute("INSERT INTO boards (id, name, room, created_at) VALUES ($1, $2, 'bench', 0)", i, mine[0].board)
-        t = time.perf_counter()
-        for i, mine in enumerate(per_board, 1):
-            for b in mine:
-                async with con.transaction():
-                    bid = await con.fetchval("INSERT INTO batches (board_id, epoch, seq, digest, boot, n, received_at, "
-                                             "offset_dd) VALUES ($1, $2, $3, $4, $5, $6, $7, 25) RETURNING id",
-                                             i, b.epoch, b.seq, b.digest, b.boot, b.n, b.received_at)
-                    await con.copy_records_to_table(
-                        "readings", schema_name=schema,
-                        columns=["t_collector", "t_board_ms", "batch_id", "tag_id", "board_id", "rssi_dd"],
-                        records=zip(b.t_collector.tolist(), b.t_board_ms.tolist(), repeat(bid),
-                                    [tag_ids[x] for x in b.tags.tolist()], repeat(i), b.rssi_dd.tolist()))
-        return time.perf_counter() - t
-    finally:
-        await con.close()
-
-
 async def pg_part(bodies: list[list[bytes]], batches: list[list[IngestBatch]], names: list[str], n: int,
                   tmp: Path) -> None:
     import asyncpg
@@ -182,7 +152,7 @@ async def pg_part(bodies: list[list[bytes]], batches: list[list[IngestBatch]], n
             t_http, _ = await http_ingest(store, bodies, names, tmp / "pg")
         finally:
             await store.close()
-        t_raw = await raw_pg_copy(batches, schema + "_raw")
+        t_raw, _ = await raw_pg_copy(PG_URL, schema + "_raw", batches, make_tags())
         print(f"postgres (c) HTTP ingest                 : {n / t_http:>10,.0f} readings/s")
         print(f"postgres (d) raw COPY, txn per batch     : {n / t_raw:>10,.0f} readings/s")
         print(f"postgres ratio c/d = {t_raw / t_http:.2f} (target >= 0.50)")
@@ -202,7 +172,7 @@ async def sqlite_part(bodies: list[list[bytes]], batches: list[list[IngestBatch]
         t_http, sent = await http_ingest(store, bodies, names, tmp / "sqlite")
     finally:
         await store.close()
-    t_raw = raw_sqlite(tmp / "raw.db", batches, per_batch_commit=True)
+    t_raw = raw_sqlite(tmp / "raw.db", batches, make_tags(), per_batch_commit=True)
     print(f"sqlite  (a) HTTP ingest, {len(names)} clients     : {n / t_http:>10,.0f} readings/s (target >= 150,000)")
     print(f"sqlite  (b) raw executemany, commit/batch: {n / t_raw:>10,.0f} readings/s")
     print(f"sqlite  ratio a/b = {t_raw / t_http:.2f} (target >= 0.50)")

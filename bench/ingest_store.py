@@ -8,6 +8,7 @@ SQLite, each on a fresh file with the store's own schema:
   (a) ``SqliteStore.ingest`` from all boards at once: group commit, synchronous=FULL;
   (b) raw ``executemany`` of the same rows, one durable transaction per batch (batch row + readings);
   (c) raw ``executemany`` of the same rows in one single transaction (the floor: no per-batch commits).
+  (b), (c) and (e) are ``bench._raw_baselines``, shared with bench.ingest_http.
 PostgreSQL (LISTENPOST_TEST_PG, a throw-away schema):
   (d) ``PostgresStore.ingest`` from all boards at once;
   (e) raw ``copy_records_to_table`` of the same rows, one transaction per batch, one connection.
@@ -30,8 +31,8 @@ from pathlib import Path
 import numpy as np
 
 from agent import wire
+from bench._raw_baselines import raw_pg_copy, raw_sqlite
 from collector.store import Board, Enrollment, IngestBatch
-from collector.store.migrations import migrate_sqlite
 
 N_BOARDS = 100
 BATCHES_PER_BOARD = 8
@@ -81,40 +82,6 @@ async def run_store(store, per_board: list[list[IngestBatch]]) -> float:
     return time.perf_counter() - t
 
 
-def raw_sqlite(path: Path, per_board: list[list[IngestBatch]], *, per_batch_commit: bool) -> float:
-    con = sqlite3.connect(path, isolation_level=None)
-    con.execute("PRAGMA journal_mode = WAL")
-    con.execute("PRAGMA synchronous = FULL")
-    migrate_sqlite(con)
-    tag_ids: dict[str, int] = {}
-    for i, tag in enumerate(make_tags(), 1):
-        con.execute("INSERT INTO tags (id, tag) VALUES (?, ?)", (i, tag))
-        tag_ids[tag] = i
-    for i, mine in enumerate(per_board, 1):
-        con.execute("INSERT INTO boards (id, name, room, created_at) VALUES (?, ?, 'bench', 0)", (i, mine[0].board))
-    flat = [(i, b) for i, mine in enumerate(per_board, 1) for b in mine]
-    t = time.perf_counter()
-    if not per_batch_commit:
-        con.execute("BEGIN")
-    for board_id, b in flat:
-        if per_batch_commit:
-            con.execute("BEGIN")
-        cur = con.execute("INSERT INTO batches (board_id, epoch, seq, digest, boot, n, received_at, offset_dd) "
-                          "VALUES (?, ?, ?, ?, ?, ?, ?, 15)", (board_id, b.epoch, b.seq, b.digest, b.boot, b.n,
-                                                               b.received_at))
-        con.executemany("INSERT INTO readings (batch_id, board_id, tag_id, t_board_ms, t_collector, rssi_dd) "
-                        "VALUES (?, ?, ?, ?, ?, ?)",
-                        zip(repeat(cur.lastrowid), repeat(board_id), [tag_ids[x] for x in b.tags.tolist()],
-                            b.t_board_ms.tolist(), b.t_collector.tolist(), b.rssi_dd.tolist()))
-        if per_batch_commit:
-            con.execute("COMMIT")
-    if not per_batch_commit:
-        con.execute("COMMIT")
-    elapsed = time.perf_counter() - t
-    con.close()
-    return elapsed
-
-
 def bytes_per_reading_text(path: Path, per_board: list[list[IngestBatch]]) -> float:
     """The same readings with names repeated as text in every row (the layout interning replaces)."""
     con = sqlite3.connect(path, isolation_level=None)
@@ -150,8 +117,8 @@ async def sqlite_part(per_board: list[list[IngestBatch]], n: int, tmp: Path) -> 
     t_store = await run_store(store, per_board)
     commits, batches = store.ingest_commits, store.ingest_batches
     await store.close()
-    t_raw = raw_sqlite(tmp / "raw.db", per_board, per_batch_commit=True)
-    t_one = raw_sqlite(tmp / "one.db", per_board, per_batch_commit=False)
+    t_raw = raw_sqlite(tmp / "raw.db", per_board, make_tags(), per_batch_commit=True)
+    t_one = raw_sqlite(tmp / "one.db", per_board, make_tags(), per_batch_commit=False)
     print(f"sqlite  (a) store ingest, group commit : {n / t_store:>10,.0f} readings/s "
           f"({batches} batches in {commits} commits, {batches / commits:.1f} per commit)")
     print(f"sqlite  (b) raw executemany, commit/batch: {n / t_raw:>10,.0f} readings/s")
@@ -179,31 +146,7 @@ async def pg_part(per_board: list[list[IngestBatch]], n: int) -> None:
     try:
         t_store = await run_store(store, per_board)
         await store.close()
-        raw_schema = schema + "_raw"
-        raw = await PostgresStore.open(PG_URL, schema=raw_schema, max_size=1)  # same schema, migrated
-        await raw.close()
-        con = await asyncpg.connect(PG_URL, server_settings={"search_path": raw_schema, "synchronous_commit": "on"})
-        tag_ids = {}
-        for i, tag in enumerate(make_tags(), 1):
-            await con.execute("INSERT INTO tags (id, tag) VALUES ($1, $2)", i, tag)
-            tag_ids[tag] = i
-        for i, mine in enumerate(per_board, 1):
-            await con.execute("INSERT INTO boards (id, name, room, created_at) VALUES ($1, $2, 'bench', 0)", i, mine[0].board)
-        t = time.perf_counter()
-        for i, mine in enumerate(per_board, 1):
-            for b in mine:
-                async with con.transaction():
-                    bid = await con.fetchval("INSERT INTO batches (board_id, epoch, seq, digest, boot, n, received_at, "
-                                             "offset_dd) VALUES ($1, $2, $3, $4, $5, $6, $7, 15) RETURNING id",
-                                             i, b.epoch, b.seq, b.digest, b.boot, b.n, b.received_at)
-                    await con.copy_records_to_table(
-                        "readings", schema_name=raw_schema,
-                        columns=["t_collector", "t_board_ms", "batch_id", "tag_id", "board_id", "rssi_dd"],
-                        records=zip(b.t_collector.tolist(), b.t_board_ms.tolist(), repeat(bid),
-                                    [tag_ids[x] for x in b.tags.tolist()], repeat(i), b.rssi_dd.tolist()))
-        t_raw = time.perf_counter() - t
-        size = await con.fetchval(f"SELECT pg_total_relation_size('{raw_schema}.readings')")
-        await con.close()
+        t_raw, size = await raw_pg_copy(PG_URL, schema + "_raw", per_board, make_tags())
         print(f"postgres (d) store ingest, 100 boards   : {n / t_store:>10,.0f} readings/s")
         print(f"postgres (e) raw COPY, one connection   : {n / t_raw:>10,.0f} readings/s")
         print(f"postgres ratio d/e = {t_raw / t_store:.2f}; bytes/reading incl. BRIN index {size / n:.1f}")
