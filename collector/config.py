@@ -12,7 +12,7 @@ Every key is optional; an absent file means all defaults::
     liveness: {...}                            # any field of collector.liveness.LivenessSettings
     enrollment: {code_lifetime_hours: 72}
     limits: {max_body_bytes: 4194304, max_decompressed_bytes: 33554432, max_readings: 200000,
-             max_inflight_batches: 32, busy_retry_after_seconds: 2}   # past the 32nd batch at once: 429
+             max_inflight_batches: 128, busy_retry_after_seconds: 2}   # past the 128th batch at once: 429
     agent: {flush_seconds: 5, heartbeat_seconds: 10}
     decode:
       rules:
@@ -44,9 +44,11 @@ class Limits:
     """Largest body after gunzip, bytes; a gzip bomb stops here → 413."""
     max_readings: int = 200_000
     """Most readings in one batch."""
-    max_inflight_batches: int = 32
+    max_inflight_batches: int = 128
     """Batch requests read and stored at once by this process; one more is answered 429 with
-    ``Retry-After`` instead of queueing, so memory stays below about this × ``max_decompressed_bytes``."""
+    ``Retry-After`` instead of queueing, so memory stays below about this × ``max_decompressed_bytes``.
+    The default lets every board of a venue-sized fleet (about 100, DESIGN.md "Scale") have its one batch
+    in flight, which group commit needs to batch well."""
     busy_retry_after_seconds: int = 2
     """``Retry-After`` of that 429, seconds (boards wait at least this, plus their own jitter)."""
 

@@ -158,4 +158,4 @@ def test_limits_are_validated_with_the_key_named():
         parse_settings({"limits": {"max_inflight_batches": 0}}, "c.yaml")
     with pytest.raises(ConfigError, match=r"limits\.busy_retry_after_seconds"):
         parse_settings({"limits": {"busy_retry_after_seconds": 0}}, "c.yaml")
-    assert parse_settings({}, "c.yaml").limits.max_inflight_batches == 32
+    assert parse_settings({}, "c.yaml").limits.max_inflight_batches == 128
