@@ -1180,6 +1180,16 @@ class Spool:
             dead_letters=s.counters["dead_letters"], corrupt_set_aside=s.counters["corrupt_set_aside"],
             degraded=s.degraded)
 
+    async def idle(self) -> None:
+        """
+        Return once no spool operation is running on the worker thread.
+
+        A commit takes real time while a virtual clock stands still only if its driver waits here
+        before moving it; the sealer's next period starts when the seal returns.
+        """
+        while self._inflight:
+            await asyncio.wait(set(self._inflight))
+
     async def close(self) -> None:
         """Seal what is pending (a clean shutdown loses nothing), then close the file and the worker."""
         if self._closed:

@@ -196,12 +196,12 @@ async def test_stop_seals_pending_readings_and_spool_only_without_a_collector(tm
     source = ListSource(clock, adverts, hang=True)
     service = AgentService(cfg, clock=clock, source=source)
     task = asyncio.create_task(service.run())
-    # Virtual time must stand still until the spool has opened (real I/O on its thread): otherwise
-    # the sealer starts late by however far the clock ran meanwhile, and its last seal before the
-    # stop can land after the last registered advert, leaving nothing pending.
+    # Virtual time must stand still while the spool works on its thread (the open, each seal's commit):
+    # the sealer's next period starts when a seal returns, so a clock moved meanwhile shifts every later
+    # seal, and the last one before the stop can land after the last registered advert.
     await asyncio.wait_for(service.started.wait(), 10)
     while source.yielded < len(adverts):
-        await asyncio.wait({task}, timeout=0.002)
+        await asyncio.wait_for(service.spool.idle(), 10)
         await clock.advance(0.5)
     assert service.uplink is None and service.source_state is SourceState.RUNNING
     assert service.spool.stats().readings_pending > 0  # the stop must not lose these

@@ -226,10 +226,9 @@ class Life:
 async def advance(h: Harness, life: Life, seconds: float) -> None:
     for _ in range(round(seconds / STEP_S)):
         await asyncio.wait(life.tasks, timeout=0.002)  # bounded real wait: loopback I/O and SQLite threads
-        if life.spool._inflight:
-            # Virtual time stands still while a spool commit runs on its thread (as if the card were
-            # fast), so how much a cut loses depends on the flush period, not on this machine's fsync.
-            await asyncio.wait(set(life.spool._inflight), timeout=5)
+        # Virtual time stands still while a spool commit runs on its thread (as if the card were fast),
+        # so how much a cut loses depends on the flush period, not on this machine's fsync.
+        await asyncio.wait_for(life.spool.idle(), 5)
         for t in life.tasks:
             if t.done():
                 t.result()
