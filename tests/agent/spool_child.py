@@ -59,6 +59,9 @@ async def main(path: Path, first_id: int, flush: float, max_bytes: int) -> None:
                 i += 1
             await clock.sleep(50 / RATE_PER_S)
 
+    sealed = [0]
+    """Seals that committed (read by the disk-full driver)."""
+
     async def sealer() -> None:
         seals = 0
         while not stop.is_set():
@@ -70,6 +73,7 @@ async def main(path: Path, first_id: int, flush: float, max_bytes: int) -> None:
                 continue
             say("s", b.epoch, b.seq, b.digest, b.n_readings)
             seals += 1
+            sealed[0] = seals
             if crash == "after_seal":
                 os._exit(0)
             if crash == "disk_full":
@@ -97,9 +101,12 @@ async def main(path: Path, first_id: int, flush: float, max_bytes: int) -> None:
         while not spool.stats().degraded:
             await clock.sleep(flush / 2)
         await clock.sleep(flush * 3)
+        before = sealed[0]
         resource.setrlimit(resource.RLIMIT_FSIZE, (resource.RLIM_INFINITY, resource.RLIM_INFINITY))
         say("uncap")
-        while spool.stats().degraded:
+        # Under the cap the spool may recover and fail again (a checkpoint frees room in the WAL), so
+        # "not degraded now" proves nothing: wait for a seal that committed after the cap was lifted.
+        while spool.stats().degraded or sealed[0] == before:
             await clock.sleep(flush / 2)
         stop.set()
 
