@@ -485,7 +485,11 @@ class ClockModel:
             f = self._fit_segment(seg)
         assert f is not None
         predicted = float(f.offset_at(s.mid))
-        allowance = self.settings.step_tolerance_s + s.delay / 2
+        # The line is only as sure as its best exchange: a segment resting on one slow exchange (say a
+        # first heartbeat over a congested link) is off by up to that exchange's δ/2, and the fast
+        # exchanges that follow must not be taken for a step.
+        line_uncertainty = min(kept[0].delay for kept in seg.windows.values() if kept) / 2
+        allowance = self.settings.step_tolerance_s + s.delay / 2 + line_uncertainty
         if not f.skew_estimated:
             allowance += self.settings.max_skew_ppm * 1e-6 * abs(s.mid - f.ref_board_s)
         return abs(s.offset - predicted) <= allowance

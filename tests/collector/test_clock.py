@@ -323,3 +323,19 @@ def test_long_boot_is_bounded_and_tracks_skew():
     assert fit.span_s <= s.horizon_s + s.window_s
     assert fit.n_samples <= (s.horizon_s / s.window_s + 1) * s.keep_per_window
     assert_allclose(fit.skew_ppm, 31.0, atol=0.5)
+
+
+def test_a_slow_first_exchange_is_not_taken_for_a_step():
+    """A segment resting on one 0.44 s exchange: the fast exchanges after it agree with it within δ/2."""
+    b1, t2, t3, t4 = synth(14, 5.0, minutes=10)
+    t2, t3, t4 = t2.copy(), t3.copy(), t4.copy()
+    # Numbers from a demo run on a loaded machine: the first exchange's request waited 0.44 s to be read,
+    # so everything after T1 happened 0.44 s later (δ grows by 0.44 s, θ by 0.22 s).
+    t2[0] += 0.439
+    t3[0] += 0.439
+    t4[0] += 0.439 * (1 + 5.0e-6)
+    model = ClockModel()
+    assert all(r is None for r in feed(model, b1, t2, t3, t4))
+    fit = model.fit()
+    assert fit is not None and fit.steps == ()
+    assert_allclose(fit.offset_s - true_offset(fit.ref_board_s, 5.0), 0.0, atol=0.03)
