@@ -375,7 +375,7 @@ class PostgresStore:
                             columns=["t_collector", "t_board_ms", "batch_id", "tag_id", "board_id", "rssi_dd"],
                             records=zip(np.asarray(b.t_collector, dtype=np.float64).tolist(),
                                         np.asarray(b.t_board_ms, dtype=np.int64).tolist(),
-                                        repeat(batch_id), reading_tag_ids(b, tag_ids).tolist(), repeat(bid),
+                                        repeat(batch_id), reading_tag_ids(b, tag_ids), repeat(bid),
                                         np.asarray(b.rssi_dd, dtype=np.int64).tolist()))
                     if b.telemetry:
                         await con.executemany(

@@ -484,7 +484,7 @@ class SqliteStore:
             con.executemany(
                 "INSERT INTO readings (batch_id, board_id, tag_id, t_board_ms, t_collector, rssi_dd) "
                 "VALUES (?, ?, ?, ?, ?, ?)",
-                zip(repeat(batch_id), repeat(bid), reading_tag_ids(b, tag_ids).tolist(),
+                zip(repeat(batch_id), repeat(bid), reading_tag_ids(b, tag_ids),
                     np.asarray(b.t_board_ms, dtype=np.int64).tolist(),
                     np.asarray(b.t_collector, dtype=np.float64).tolist(),
                     np.asarray(b.rssi_dd, dtype=np.int64).tolist()))
