@@ -20,9 +20,11 @@ from __future__ import annotations
 
 import asyncio
 import concurrent.futures
+import contextlib
 import gzip
 import multiprocessing
 import re
+import sqlite3
 import sys
 import time
 from collections import Counter
@@ -42,6 +44,7 @@ from tests.e2e.conftest import (
     cli_async,
     dry_run_config,
     dry_run_to_file,
+    parse_dry_run,
     quiet_logs,
     state_changes,
     stored_counts,
@@ -154,8 +157,7 @@ async def _run_hour(base: Path) -> HourRun:
     finally:
         await fleet.close()
     db = fleet.state_dir / "collector.sqlite"
-    import sqlite3
-    with sqlite3.connect(f"file:{db}?mode=ro", uri=True) as con:
+    with contextlib.closing(sqlite3.connect(f"file:{db}?mode=ro", uri=True)) as con:
         first = dict(con.execute("SELECT b.name, min(c.t2) FROM clock_samples c JOIN boards b ON b.id = c.board_id "
                                  "GROUP BY b.name").fetchall())
     t3 = time.perf_counter()
@@ -237,8 +239,9 @@ def test_faults_flagged_within_a_minute_and_never_before(hour: HourRun):
     u2 = hour.venue.board("u2-a")
     detectable = hour.first_exchange_t["u2-a"] + span / (1 + u2.skew_ppm * 1e-6)
     drifting = _first(hour, "u2-a", "drifting")
-    assert drifting is not None and detectable - 1e-6 <= drifting <= detectable + LIMIT_S, (detectable, drifting)
-    assert not _left_live_before(hour, "u2-a", detectable - 1e-6)
+    # (1 ms of slack: float64 resolution near 1.8e9 s is a few tenths of a microsecond.)
+    assert drifting is not None and detectable - 1e-3 <= drifting <= detectable + LIMIT_S, (detectable, drifting)
+    assert not _left_live_before(hour, "u2-a", detectable - 1e-3)
     delays["u2-a drifting"] = drifting - detectable
 
     # The faults stay flagged to the end, and nobody else is ever anything but live.
@@ -292,7 +295,6 @@ def test_stored_readings_equal_what_the_boards_heard(hour: HourRun):
     # and the cut lost at most the unsealed readings (flush 5 s) plus a batch waiting for the 1 s
     # uplink poll and the 0.5 s replay grain.
     u3 = hour.venue.board("u3-a")
-    from tests.e2e.conftest import parse_dry_run
     expected = sorted(parse_dry_run(hour.dry_runs["u3-a"].read_text()), key=lambda r: r[1])
     got = stored_readings(hour.db, "u3-a")
     assert got, "u3-a stored nothing"
