@@ -41,6 +41,8 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
     en.add_argument("--code", required=True, help="enrollment code printed by 'collector board add'")
     en.add_argument("--state-dir", type=Path, default=Path("/var/lib/listenpost/agent"), metavar="DIR",
                     help="where the credential, config, cache and spool live (default %(default)s)")
+    en.add_argument("--ca-file", type=Path, metavar="PEM",
+                    help="trust only this CA for the collector's certificate (a private or self-signed one)")
     en.set_defaults(func=_enroll)
 
     rec = cmds.add_parser("record", help="record a live source to the replay format",
@@ -74,7 +76,7 @@ def _replay(args: argparse.Namespace) -> int:
 
 def _enroll(args: argparse.Namespace) -> int:
     from agent.enroll import enroll_command
-    return enroll_command(args.collector, args.code, args.state_dir)
+    return enroll_command(args.collector, args.code, args.state_dir, ca_file=args.ca_file)
 
 
 def _record(args: argparse.Namespace) -> int:

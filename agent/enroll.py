@@ -29,6 +29,7 @@ from agent.boardinfo import fingerprint
 from agent.clock import Clock, SystemClock
 from agent.config import parse_agent_config
 from agent.errors import ConfigError
+from agent.net import client_session
 from agent.remote_config import ConfigCache, parse_remote_config, write_atomic
 
 log = structlog.get_logger("agent.enroll")
@@ -70,7 +71,8 @@ class EnrollResult:
 
 async def enroll(collector_url: str, code: str, state_dir: str | Path, *, clock: Clock,
                  session: aiohttp.ClientSession | None = None, timeout_s: float = 10.0, attempts: int = 4,
-                 backoff_s: float = 2.0, fingerprint_data: dict[str, Any] | None = None) -> EnrollResult:
+                 backoff_s: float = 2.0, fingerprint_data: dict[str, Any] | None = None,
+                 ca_file: str | Path | None = None) -> EnrollResult:
     """
     Enroll once, retrying only an unreachable collector (at most ``attempts`` tries, doubling waits).
 
@@ -89,7 +91,7 @@ async def enroll(collector_url: str, code: str, state_dir: str | Path, *, clock:
     body = {"code": code, "fingerprint": fingerprint_data if fingerprint_data is not None else fingerprint()}
     timeout = aiohttp.ClientTimeout(total=timeout_s, connect=min(timeout_s, 10.0))
     own = session is None
-    sess = session or aiohttp.ClientSession()
+    sess = session or client_session(ca_file)
     try:
         last = ""
         for attempt in range(attempts):
@@ -103,7 +105,7 @@ async def enroll(collector_url: str, code: str, state_dir: str | Path, *, clock:
                 log.warning("enroll_unreachable", url=url, attempt=attempt + 1, error=last)
                 continue
             if status == 200:
-                return _complete(url, state, text)
+                return _complete(url, state, text, ca_file)
             if status in (404, 409, 410):
                 st = {404: EnrollStatus.UNKNOWN_CODE, 409: EnrollStatus.CODE_USED, 410: EnrollStatus.CODE_EXPIRED}[status]
                 return EnrollResult(st, _MESSAGES[st])
@@ -128,7 +130,7 @@ def _prepare_state_dir(state_dir: str | Path) -> Path:
     return state
 
 
-def _complete(url: str, state: Path, text: str) -> EnrollResult:
+def _complete(url: str, state: Path, text: str, ca_file: str | Path | None = None) -> EnrollResult:
     try:
         answer = json.loads(text)
     except ValueError:
@@ -141,6 +143,8 @@ def _complete(url: str, state: Path, text: str) -> EnrollResult:
     board = answer.get("board")
     remote = answer.get("config")
     data = agent_yaml(board, url, state, remote if isinstance(remote, dict) else None)
+    if ca_file is not None:
+        data["collector"]["ca_file"] = str(Path(ca_file).resolve())
     config_path = state / CONFIG_FILE
     # Validate exactly what will be written before touching anything on disk.
     parse_agent_config(data, origin=f"collector enroll answer -> {config_path}", base_dir=state)
@@ -185,10 +189,10 @@ def _yaml_text(data: dict[str, Any]) -> str:
 
 
 def enroll_command(collector_url: str, code: str, state_dir: str | Path, *, clock: Clock | None = None,
-                   attempts: int = 4, timeout_s: float = 10.0) -> int:
+                   attempts: int = 4, timeout_s: float = 10.0, ca_file: str | Path | None = None) -> int:
     """``listenpost agent enroll``: print the outcome, return the exit code (0, 1 or 2)."""
     result = asyncio.run(enroll(collector_url, code, state_dir, clock=clock or SystemClock(),
-                                attempts=attempts, timeout_s=timeout_s))
+                                attempts=attempts, timeout_s=timeout_s, ca_file=ca_file))
     if result.status is EnrollStatus.ENROLLED:
         print(result.message)
     else:

@@ -36,6 +36,7 @@ from agent.config import AgentConfig, DecodeRule, load_agent_config
 from agent.errors import SourceUnavailable
 from agent.heartbeat import Heartbeat
 from agent.identity import load_tag_file
+from agent.net import client_session
 from agent.notify import Notifier
 from agent.pipeline import Pipeline, build_pipeline
 from agent.remote_config import ConfigCache, ConfigFetcher, RemoteConfig
@@ -157,7 +158,8 @@ class AgentService:
 
     def _session_get(self) -> aiohttp.ClientSession:
         if self._session is None:
-            self._session = aiohttp.ClientSession()
+            ca = self.cfg.collector.ca_file
+            self._session = client_session(self.cfg.state_path(ca) if ca else None)
             self._own_session = True
         return self._session
 

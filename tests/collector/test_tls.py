@@ -160,3 +160,44 @@ async def test_agent_uplink_reaches_a_tls_collector(aiohttp_server, aiohttp_clie
         await spool.close()
     assert (uplink.counters.stored, uplink.counters.retries) == (3, 0)
     assert (await server.app[STORE].board_counts())[0].readings_total == 120
+
+
+async def test_agent_enrolls_and_fetches_config_over_tls_with_its_ca_file(aiohttp_server, aiohttp_client, tmp_path,
+                                                                          clock: VirtualClock):
+    """`agent enroll --ca-file` trusts a private CA, records it in agent.yaml, and every later call uses it."""
+    from agent.config import load_agent_config
+    from agent.enroll import EnrollStatus, enroll
+    from agent.net import client_session
+    from tests.collector.test_api import add_board
+
+    ca, cert, key = make_certs(tmp_path / "pki")
+    settings = settings_for(tmp_path, tls={"cert": str(cert), "key": str(key)})
+    server = await aiohttp_server(create_app(settings, clock=clock, run_monitor=False), ssl=tls_context(settings))
+    admin = await aiohttp_client(server, connector=aiohttp.TCPConnector(ssl=ssl.create_default_context(cafile=str(ca))))
+    url = str(admin.make_url("")).rstrip("/")
+    code = await add_board(admin, tmp_path, "g1-a", "G1 Light & Optics", "ground")
+
+    untrusting = await enroll(url, code, tmp_path / "no-ca", clock=clock, attempts=1)
+    assert untrusting.status is EnrollStatus.UNREACHABLE
+    assert "certificate" in untrusting.message.lower()
+
+    done = await enroll(url, code, tmp_path / "board", clock=clock, attempts=1, ca_file=ca)
+    assert done.status is EnrollStatus.ENROLLED, done.message
+    cfg = load_agent_config(done.config_path)
+    assert cfg.collector.ca_file == str(ca.resolve())
+    token = (tmp_path / "board" / cfg.collector.credential_file).read_text().strip()
+    async with client_session(cfg.collector.ca_file) as session:
+        async with session.get(url + "/v1/config", headers={"Authorization": f"Bearer {token}"},
+                               timeout=aiohttp.ClientTimeout(total=5)) as r:
+            assert r.status == 200
+            assert (await r.json())["board"] == "g1-a"
+
+
+def test_a_bad_ca_file_is_a_config_error_naming_the_key(tmp_path):
+    """A CA file that is not PEM is refused with the config key and the path."""
+    from agent.net import client_session
+
+    bad = tmp_path / "ca.pem"
+    bad.write_text("not a certificate")
+    with pytest.raises(ConfigError, match="collector.ca_file: cannot load CA certificates"):
+        client_session(bad)
