@@ -130,7 +130,7 @@ class LivenessSettings:
     silent_after_s: float = 45.0
     """Always silent from this long after the last contact, whatever φ says, seconds. With an
     evaluation every few seconds a dead board is flagged well within a minute."""
-    deaf_window_s: float = 120.0
+    deaf_window_s: float = 40.0
     """The advert counter must stay flat for this long before a board is deaf, seconds."""
     deaf_min_others_readings: int = 10
     """...while other boards stored at least this many registered-tag readings in that window."""

@@ -221,10 +221,10 @@ def test_not_deaf_when_the_venue_is_quiet_or_window_not_covered():
     now = T0
     flat = heartbeats(now, [1300] * 17)
     assert evaluate(BoardInputs("g2-a", contacts_until(now), flat, others_readings=0), now).state is BoardState.LIVE
-    short = heartbeats(now, [1300] * 10)   # 90 s of flat counter < deaf_window_s
+    short = heartbeats(now, [1300] * 4)    # 30 s of flat counter < deaf_window_s (40 s)
     assert evaluate(BoardInputs("g2-a", contacts_until(now), short, others_readings=400), now).state is BoardState.LIVE
-    # The agent restarted 60 s ago (counter went back to 0): the flat stretch is too short to judge.
-    restarted = heartbeats(now, [100 * i for i in range(11)] + [0] * 7)
+    # The agent restarted 20 s ago (counter went back to 0): the flat stretch is too short to judge.
+    restarted = heartbeats(now, [100 * i for i in range(14)] + [0] * 3)
     assert evaluate(BoardInputs("g2-a", contacts_until(now), restarted, others_readings=400), now).state \
         is BoardState.LIVE
 
