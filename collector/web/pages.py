@@ -171,6 +171,18 @@ def _fmt(v: Any, unit: str = "", digits: int = 1) -> str:
     return html.escape(str(v)) + unit
 
 
+def fmt_clock_error(seconds: float | None) -> str:
+    """A wall-clock error a technician can read: "0.3 s", "−4 min 10 s", "−3 h 12 min"."""
+    if seconds is None:
+        return "–"
+    sign, a = ("−" if seconds < 0 else ""), abs(seconds)
+    if a < 60:
+        return _fmt(seconds, " s", 1).replace("-", "−")
+    if a < 3600:
+        return f"{sign}{int(a // 60)} min {int(round(a % 60))} s"
+    return f"{sign}{int(a // 3600)} h {int(round(a % 3600 / 60))} min"
+
+
 def fmt_age(seconds: float | None) -> str:
     if seconds is None:
         return "never"
@@ -221,7 +233,7 @@ def _board_row(r: dict[str, Any]) -> str:
         f'<td class="num tagrate"{_tag_rate_title(r)}>{_fmt(r["tag_rate_hz_median"], " Hz", 2)}</td>',
         f'<td class="num">{_fmt(r["clock_skew_ppm"], " ppm", 2)}</td>',
         f'<td class="num">{_fmt(r["clock_residual_ms"], " ms", 2)}</td>',
-        f'<td class="num">{_fmt(r["wall_error_ms"] / 1000.0 if r["wall_error_ms"] is not None else None, " s", 1)}</td>',
+        f'<td class="num">{fmt_clock_error(r["wall_error_ms"] / 1000.0 if r["wall_error_ms"] is not None else None)}</td>',
         f'<td class="num">{_fmt(r["spool_backlog_batches"])}</td>',
         f'<td class="num">{_fmt(r["adverts_total"])}</td>',
         f'<td>{html.escape(_event_text(ev)) if ev else "–"}</td>',

@@ -186,3 +186,14 @@ async def test_health_page_in_a_real_browser(aiohttp_client, tmp_path, clock):
                 shutil.copyfile(shot, "/tmp/lp/health2.png")
         finally:
             await browser.close()
+
+
+@pytest.mark.parametrize(("seconds", "text"), [
+    (None, "–"), (0.04, "0.0 s"), (-0.3, "−0.3 s"), (59.94, "59.9 s"), (-250, "−4 min 10 s"),
+    (-11520, "−3 h 12 min"), (7260, "2 h 1 min"),
+])
+def test_wall_clock_error_reads_in_hours_and_minutes(seconds, text):
+    """A board hours off (no network time) shows "−3 h 12 min", not "-11,520.0 s"."""
+    from collector.web.pages import fmt_clock_error
+
+    assert fmt_clock_error(seconds) == text

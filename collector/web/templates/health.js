@@ -4,6 +4,14 @@
   const table = document.getElementById("boards");
   const LABELS = JSON.parse(table.dataset.labels);
   const esc = (s) => String(s).replace(/[&<>"']/g, (c) => ({"&": "&amp;", "<": "&lt;", ">": "&gt;", '"': "&quot;", "'": "&#39;"}[c]));
+  // Same wording as the server's fmt_clock_error: "0.3 s", "−4 min 10 s", "−3 h 12 min".
+  const clockError = (s) => {
+    if (s === null || s === undefined) return "–";
+    const sign = s < 0 ? "−" : "", a = Math.abs(s);
+    if (a < 60) return num(s, " s", 1).replace("-", "−");
+    if (a < 3600) return `${sign}${Math.floor(a / 60)} min ${Math.round(a % 60)} s`;
+    return `${sign}${Math.floor(a / 3600)} h ${Math.round((a % 3600) / 60)} min`;
+  };
   const num = (v, unit, digits) => {
     if (v === null || v === undefined) return "–";
     if (Number.isInteger(v) && digits === undefined) return v.toLocaleString("en-US") + (unit || "");
@@ -28,7 +36,7 @@
     `<td class="num tagrate"${r.tags_heard === null || r.tags_heard === undefined ? "" : ` title="median over ${r.tags_heard} tags heard recently"`}>` +
     `${num(r.tag_rate_hz_median, " Hz", 2)}</td>` +
     `<td class="num">${num(r.clock_skew_ppm, " ppm", 2)}</td><td class="num">${num(r.clock_residual_ms, " ms", 2)}</td>` +
-    `<td class="num">${r.wall_error_ms === null ? "–" : num(r.wall_error_ms / 1000, " s", 1)}</td>` +
+    `<td class="num">${r.wall_error_ms === null ? "–" : clockError(r.wall_error_ms / 1000)}</td>` +
     `<td class="num">${num(r.spool_backlog_batches)}</td><td class="num">${num(r.adverts_total)}</td>` +
     `<td>${r.last_event ? esc(evText(r.last_event)) : "–"}</td></tr>`;
   const clock = (t) => new Date(t * 1000).toISOString().slice(11, 19);
