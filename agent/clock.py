@@ -10,12 +10,16 @@ collector when that clock restarted from zero.
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import heapq
 import itertools
 import time as _time
 import uuid
+from collections.abc import Awaitable
 from pathlib import Path
-from typing import Protocol
+from typing import Protocol, TypeVar
+
+T = TypeVar("T")
 
 
 class Clock(Protocol):
@@ -149,6 +153,30 @@ async def settle(rounds: int = 20) -> None:
     """Let ready tasks run until they block again (a few event-loop turns)."""
     for _ in range(rounds):
         await asyncio.sleep(0)
+
+
+async def with_timeout(clock: Clock, aw: Awaitable[T], seconds: float, what: str) -> T:
+    """
+    Await ``aw`` for at most ``seconds`` of ``clock`` time (`asyncio.timeout` only knows real time).
+
+    Raises:
+        TimeoutError: naming ``what``, once the time is up (``aw`` is cancelled first).
+    """
+    task = asyncio.ensure_future(aw)
+    timer = asyncio.ensure_future(clock.sleep(seconds))
+    try:
+        await asyncio.wait({task, timer}, return_when=asyncio.FIRST_COMPLETED)
+    except asyncio.CancelledError:
+        task.cancel()
+        raise
+    finally:
+        timer.cancel()
+    if task.done():
+        return task.result()
+    task.cancel()
+    with contextlib.suppress(asyncio.CancelledError, Exception):
+        await task
+    raise TimeoutError(f"{what} did not finish within {seconds:g} s")
 
 
 class ScaledClock:

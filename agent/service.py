@@ -31,6 +31,7 @@ import aiohttp
 import structlog
 
 from agent import __version__
+from agent.backoff import capped_exponential
 from agent.clock import Clock, SystemClock
 from agent.config import AgentConfig, DecodeRule, load_agent_config
 from agent.errors import SourceUnavailable
@@ -242,7 +243,7 @@ class AgentService:
     # ------------------------------------------------------------------ tasks
 
     async def _source_loop(self) -> None:
-        backoff = 1.0
+        failures = 0
         while True:
             try:
                 if self.source is None:
@@ -258,7 +259,7 @@ class AgentService:
                     if r is not None:
                         spool.add(r)
                         self.tag_rates.note(r.tag)
-                    backoff = 1.0
+                    failures = 0
                 self.source_state = SourceState.ENDED
                 log.info("source_ended", adverts=self.pipeline.stats()["adverts_total"])  # type: ignore[union-attr]
                 if self.exit_when_source_ends:
@@ -267,6 +268,8 @@ class AgentService:
             except SourceUnavailable as e:
                 self.source_state = SourceState.UNAVAILABLE
                 self.source_error = f"{e.reason.value}: {e}"
+                backoff = capped_exponential(failures, 1.0, SOURCE_RETRY_MAX_S)
+                failures += 1
                 log.error("source_unavailable", reason=e.reason.value, error=str(e), retry_in_s=backoff)
                 if self._own_source:
                     self.source = None  # open it afresh next time
@@ -278,7 +281,6 @@ class AgentService:
                 self.request_stop()
                 return
             await self.clock.sleep(backoff)
-            backoff = min(backoff * 2, SOURCE_RETRY_MAX_S)
 
     async def _status_loop(self) -> None:
         """Watchdog keep-alives and the status line; this loop turning is what proves the process alive."""

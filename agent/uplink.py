@@ -38,6 +38,7 @@ import aiohttp
 import structlog
 
 from agent import wire
+from agent.backoff import full_jitter
 from agent.clock import Clock
 
 log = structlog.get_logger("agent.uplink")
@@ -181,17 +182,6 @@ def parse_retry_after(value: str | None, now_wall: float) -> float | None:
     if when is None:
         return None
     return min(max(0.0, when.timestamp() - now_wall), MAX_RETRY_AFTER_S)
-
-
-def full_jitter(attempt: int, initial_s: float, max_s: float, rng: random.Random) -> float:
-    """
-    Capped exponential backoff with full jitter: uniform in [0, min(max, initial·2^attempt)].
-
-    Full jitter spreads a fleet that lost the collector at the same moment, so the boards do not
-    return in lock-step (the AWS Architecture Blog's "Exponential Backoff and Jitter", common practice).
-    """
-    ceiling = min(max_s, initial_s * (2 ** min(attempt, 62)))
-    return rng.uniform(0.0, ceiling)
 
 
 @dataclass(slots=True)

@@ -38,7 +38,7 @@ from typing import Any
 
 import structlog
 
-from agent.clock import Clock
+from agent.clock import Clock, with_timeout
 from collector.config import CollectorSettings
 from collector.ingest import clock_model
 from collector.store import Event, Store, StoreError
@@ -331,19 +331,7 @@ class Monitor:
                 await resp.read()
                 return int(resp.status)
 
-        task = asyncio.ensure_future(post())
-        timer = asyncio.ensure_future(self.clock.sleep(wh.timeout_seconds))
-        try:
-            await asyncio.wait({task, timer}, return_when=asyncio.FIRST_COMPLETED)
-        finally:
-            timer.cancel()
-            if not task.done():
-                task.cancel()
-                with contextlib.suppress(asyncio.CancelledError, Exception):
-                    await task
-        if task.cancelled():
-            raise TimeoutError(f"no answer within {wh.timeout_seconds:g} s")
-        return task.result()
+        return await with_timeout(self.clock, post(), wh.timeout_seconds, "webhook POST")
 
     async def post_event(self, session: Any, event: Event) -> bool:
         """

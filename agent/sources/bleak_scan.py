@@ -23,8 +23,8 @@ import asyncio
 import contextlib
 import enum
 import random
-from collections.abc import AsyncIterator, Awaitable
-from typing import Any, TypeVar
+from collections.abc import AsyncIterator
+from typing import Any
 
 import structlog
 from bleak import BleakScanner
@@ -37,13 +37,13 @@ from bleak.exc import (
     BleakError,
 )
 
-from agent.clock import Clock
+from agent.backoff import half_jitter
+from agent.clock import Clock, with_timeout
 from agent.errors import SourceReason, SourceUnavailable
 from agent.sources import RateMeter
 from agent.types import Advert
 
 log = structlog.get_logger(__name__)
-T = TypeVar("T")
 
 NO_RSSI = -127
 """What bleak reports when BlueZ's Device1 has no RSSI property (``props.get("RSSI", -127)``)."""
@@ -104,25 +104,6 @@ def classify(e: BaseException, adapter: str | None = None) -> SourceUnavailable:
     if isinstance(e, OSError):
         return SourceUnavailable(SourceReason.OTHER, f"D-Bus connection failed: {e}")
     return SourceUnavailable(SourceReason.OTHER, f"{type(e).__name__}: {e}")
-
-
-async def with_timeout(clock: Clock, aw: Awaitable[T], seconds: float, what: str) -> T:
-    """Await ``aw`` for at most ``seconds`` of clock time; `TimeoutError` naming ``what`` otherwise."""
-    task = asyncio.ensure_future(aw)
-    timer = asyncio.ensure_future(clock.sleep(seconds))
-    try:
-        await asyncio.wait({task, timer}, return_when=asyncio.FIRST_COMPLETED)
-    except asyncio.CancelledError:
-        task.cancel()
-        raise
-    finally:
-        timer.cancel()
-    if task.done():
-        return task.result()
-    task.cancel()
-    with contextlib.suppress(asyncio.CancelledError, Exception):
-        await task
-    raise TimeoutError(f"{what} did not finish within {seconds:g} s")
 
 
 class BleakSource:
@@ -228,10 +209,6 @@ class BleakSource:
         except Exception as e:  # the bus or bluetoothd may be gone; the next scanner starts clean
             log.info("scanner_stop_failed", adapter=self.adapter, error=str(e))
 
-    def _backoff(self, failures_in_row: int) -> float:
-        cap = min(self.backoff_max, self.backoff_initial * 2 ** min(failures_in_row - 1, 30))
-        return cap * self._rng.uniform(0.5, 1.0)
-
     async def _supervise(self) -> None:
         clock = self.clock
         in_row = 0
@@ -252,7 +229,7 @@ class BleakSource:
                 if self.max_failures is not None and in_row >= self.max_failures:
                     log.error("scanner_unavailable", adapter=self.adapter, reason=err.reason.value, error=str(err))
                     raise err from e
-                delay = self._backoff(in_row)
+                delay = half_jitter(in_row - 1, self.backoff_initial, self.backoff_max, self._rng)
                 log.warning("scanner_start_failed", adapter=self.adapter, reason=err.reason.value,
                             error=str(err), retry_in_s=round(delay, 3))
                 await clock.sleep(delay)

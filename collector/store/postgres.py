@@ -18,7 +18,6 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import hashlib
-import itertools
 import json
 import math
 import re
@@ -31,8 +30,6 @@ import numpy as np
 import structlog
 
 from collector.store import (
-    SEQ_HOLES_SQL,
-    TELEMETRY_FIELDS,
     BadBatch,
     Board,
     BoardCounts,
@@ -50,8 +47,20 @@ from collector.store import (
     SeqHole,
     StoreUnavailable,
     TagTelemetry,
+)
+from collector.store.common import (
+    BOARD_COLS,
+    LATEST_TELEMETRY_SQL,
+    SEQ_HOLES_SQL,
+    TELEMETRY_FIELDS,
     batch_tag_names,
+    board_from_row,
+    calibration_from_row,
     check_batch,
+    check_clock_sample,
+    constraint_field,
+    delete_in_chunks,
+    json_text,
     reading_tag_ids,
 )
 from collector.store.migrations import migrate_postgres
@@ -74,7 +83,6 @@ _CONNECTION_LOST: tuple[type[BaseException], ...] = (
 )
 
 _SCHEMA_RE = re.compile(r"[a-z_][a-z0-9_]{0,62}")
-_BOARD_COLS = "name, room, floor, created_at, enrolled_at, fingerprint, offset_db, retired_at"
 
 # COPY binary format (PostgreSQL docs, "COPY", section "Binary Format"): 11-byte signature, int32 flags,
 # int32 header-extension length; per tuple an int16 field count, then per field an int32 length and the
@@ -108,15 +116,6 @@ def parse_copy_binary(buf: bytes | bytearray | memoryview) -> np.ndarray:
     if len(rows) and (np.any(rows["nf"] != 5) or any(np.any(rows[k] != v) for k, v in _EXPORT_LENGTHS.items())):
         raise ValueError("binary COPY rows do not have the expected five fixed-width fields")
     return rows
-
-
-def _json(obj: dict[str, Any] | None) -> str | None:
-    return None if obj is None else json.dumps(obj, sort_keys=True)
-
-
-def _board(r: asyncpg.Record) -> Board:
-    return Board(r["name"], r["room"], r["floor"], r["created_at"], r["enrolled_at"],
-                 json.loads(r["fingerprint"]) if r["fingerprint"] else None, r["offset_db"], r["retired_at"])
 
 
 def _count(status: str) -> int:
@@ -244,21 +243,21 @@ class PostgresStore:
         async with self._acquire() as con, con.transaction():
             try:
                 bid = await con.fetchval(
-                    f"INSERT INTO boards ({_BOARD_COLS}) VALUES ($1, $2, $3, $4, $5, $6, $7, $8) RETURNING id",
+                    f"INSERT INTO boards ({BOARD_COLS}) VALUES ($1, $2, $3, $4, $5, $6, $7, $8) RETURNING id",
                     board.name, board.room, board.floor, board.created_at, board.enrolled_at,
-                    _json(board.fingerprint), board.offset_db, board.retired_at)
+                    json_text(board.fingerprint), board.offset_db, board.retired_at)
             except asyncpg.UniqueViolationError as e:
                 raise ValueError(f"board {board.name!r} already exists") from e
             await con.execute("INSERT INTO enrollments (code_hash, board_id, expires_at, used_at) VALUES ($1, $2, $3, $4)",
                               enrollment.code_hash, bid, enrollment.expires_at, enrollment.used_at)
 
     async def get_board(self, name: str) -> Board | None:
-        rows = await self._fetch(f"SELECT {_BOARD_COLS} FROM boards WHERE name = $1", name)
-        return _board(rows[0]) if rows else None
+        rows = await self._fetch(f"SELECT {BOARD_COLS} FROM boards WHERE name = $1", name)
+        return board_from_row(rows[0]) if rows else None
 
     async def list_boards(self, include_retired: bool = True) -> list[Board]:
         where = "" if include_retired else "WHERE retired_at IS NULL"
-        return [_board(r) for r in await self._fetch(f"SELECT {_BOARD_COLS} FROM boards {where} ORDER BY name")]
+        return [board_from_row(r) for r in await self._fetch(f"SELECT {BOARD_COLS} FROM boards {where} ORDER BY name")]
 
     async def retire_board(self, name: str, at: float) -> bool:
         async with self._acquire() as con:
@@ -290,13 +289,13 @@ class PostgresStore:
                 raise EnrollmentRefused(EnrollmentReason.EXPIRED)
             await con.execute("UPDATE enrollments SET used_at = $1 WHERE code_hash = $2", at, code_hash)
             r = await con.fetchrow(f"UPDATE boards SET token_hash = $1, fingerprint = $2, enrolled_at = $3 "
-                                   f"WHERE id = $4 RETURNING {_BOARD_COLS}", token_hash, _json(fingerprint), at,
+                                   f"WHERE id = $4 RETURNING {BOARD_COLS}", token_hash, json_text(fingerprint), at,
                                    row["board_id"])
-            return _board(r)
+            return board_from_row(r)
 
     async def board_for_token(self, token_hash: str) -> Board | None:
-        rows = await self._fetch(f"SELECT {_BOARD_COLS} FROM boards WHERE token_hash = $1", token_hash)
-        return _board(rows[0]) if rows else None
+        rows = await self._fetch(f"SELECT {BOARD_COLS} FROM boards WHERE token_hash = $1", token_hash)
+        return board_from_row(rows[0]) if rows else None
 
     async def set_offset(self, calibration: Calibration) -> None:
         c = calibration
@@ -305,14 +304,14 @@ class PostgresStore:
             await con.execute("INSERT INTO calibrations (board_id, at, offset_db, spread_db, samples, reference_tag, "
                               "distance_m, fingerprint) VALUES ($1, $2, $3, $4, $5, $6, $7, $8)",
                               bid, c.at, c.offset_db, c.spread_db, c.samples, c.reference_tag, c.distance_m,
-                              _json(c.fingerprint))
+                              json_text(c.fingerprint))
             await con.execute("UPDATE boards SET offset_db = $1 WHERE id = $2", c.offset_db, bid)
 
     async def calibrations(self, board: str) -> list[Calibration]:
         rows = await self._fetch(
             "SELECT b.name, c.at, c.offset_db, c.spread_db, c.samples, c.reference_tag, c.distance_m, c.fingerprint "
             "FROM calibrations c JOIN boards b ON b.id = c.board_id WHERE b.name = $1 ORDER BY c.at, c.id", board)
-        return [Calibration(*tuple(r)[:7], json.loads(r["fingerprint"]) if r["fingerprint"] else None) for r in rows]
+        return [calibration_from_row(r) for r in rows]
 
     # -- tags --------------------------------------------------------------------------------------------
 
@@ -391,8 +390,7 @@ class PostgresStore:
                         "last_boot_at = greatest(last_boot_at, $3) WHERE id = $5",
                         b.n, gap.get("readings", 0), b.received_at, b.boot, bid)
             except (asyncpg.IntegrityConstraintViolationError, asyncpg.DataError) as e:
-                field = (getattr(e, "constraint_name", None) or getattr(e, "column_name", None) or "batch")
-                field = field.removesuffix("_range").removesuffix("_non_negative").removesuffix("_finite")
+                field = constraint_field(getattr(e, "constraint_name", None) or getattr(e, "column_name", None) or "")
                 raise BadBatch(field, f"refused by the database ({type(e).__name__}: {e}) in batch "
                                       f"{b.board}/{b.epoch}/{b.seq}") from e
         return IngestResult(IngestStatus.STORED, b.digest)
@@ -407,11 +405,7 @@ class PostgresStore:
         if tags is not None:
             where = "WHERE tag_id IN (SELECT id FROM tags WHERE tag = ANY($1::text[]))"
             args.append(list(tags))
-        rows = await self._fetch(
-            f"SELECT tg.tag, b.name, t.at, t.t_board_ms, t.battery_mv, t.temperature_c, t.adv_count, t.uptime_s "
-            f"FROM (SELECT *, row_number() OVER (PARTITION BY tag_id ORDER BY at DESC, t_board_ms DESC, id DESC) AS k "
-            f"      FROM telemetry {where}) t "
-            f"JOIN tags tg ON tg.id = t.tag_id JOIN boards b ON b.id = t.board_id WHERE t.k = 1", *args)
+        rows = await self._fetch(LATEST_TELEMETRY_SQL.format(where=where), *args)
         return {r[0]: TagTelemetry(*r) for r in rows}
 
     async def seq_holes(self, board: str | None = None) -> list[SeqHole]:
@@ -426,8 +420,7 @@ class PostgresStore:
 
     async def add_clock_sample(self, sample: ClockSample) -> None:
         s = sample
-        if not all(math.isfinite(v) for v in (s.t1, s.t2, s.t3, s.t4)):
-            raise ValueError(f"clock sample t1..t4 must be finite, got {(s.t1, s.t2, s.t3, s.t4)!r}")
+        check_clock_sample(s)
         async with self._acquire() as con, con.transaction():
             bid = await self._board_id(con, s.board)
             await con.execute("INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES ($1, $2, $3, $4, $5, $6)",
@@ -515,23 +508,14 @@ class PostgresStore:
             offset_dd=arr["offset_dd"].astype(np.int32))
 
     async def delete_readings_before(self, t: float, chunk: int = 10_000, max_chunks: int | None = None) -> int:
-        if chunk < 1:
-            raise ValueError(f"chunk must be >= 1, got {chunk!r}")
-        if max_chunks is not None and max_chunks < 1:
-            raise ValueError(f"max_chunks must be >= 1 or None, got {max_chunks!r}")
-        total = 0
-        for table, col, count in (("readings", "t_collector", True), ("telemetry", "at", False),
-                                  ("clock_samples", "t2", False)):
-            for _ in itertools.count() if max_chunks is None else range(max_chunks):
-                # One short statement per chunk (autocommit): no giant transaction, no long row locks.
-                async with self._acquire() as con:
-                    st = await con.execute(f"DELETE FROM {table} WHERE ctid = ANY(ARRAY(SELECT ctid FROM {table} "
-                                           f"WHERE {col} < $1 LIMIT $2))", t, chunk)
-                n = _count(st)
-                if count:
-                    total += n
-                if n < chunk:
-                    break
+        async def delete_chunk(table: str, col: str) -> int:
+            # One short statement per chunk (autocommit): no giant transaction, no long row locks.
+            async with self._acquire() as con:
+                st = await con.execute(f"DELETE FROM {table} WHERE ctid = ANY(ARRAY(SELECT ctid FROM {table} "
+                                       f"WHERE {col} < $1 LIMIT $2))", t, chunk)
+            return _count(st)
+
+        total = await delete_in_chunks(delete_chunk, chunk, max_chunks)
         log.info("readings_deleted", backend="postgres", before=t, readings=total, chunk=chunk, max_chunks=max_chunks)
         return total
 

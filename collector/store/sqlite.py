@@ -20,7 +20,6 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
-import itertools
 import json
 import math
 import sqlite3
@@ -35,8 +34,6 @@ import numpy as np
 import structlog
 
 from collector.store import (
-    SEQ_HOLES_SQL,
-    TELEMETRY_FIELDS,
     BadBatch,
     Board,
     BoardCounts,
@@ -55,8 +52,20 @@ from collector.store import (
     StoreError,
     StoreUnavailable,
     TagTelemetry,
+)
+from collector.store.common import (
+    BOARD_COLS,
+    LATEST_TELEMETRY_SQL,
+    SEQ_HOLES_SQL,
+    TELEMETRY_FIELDS,
     batch_tag_names,
+    board_from_row,
+    calibration_from_row,
     check_batch,
+    check_clock_sample,
+    constraint_field,
+    delete_in_chunks,
+    json_text,
     reading_tag_ids,
 )
 from collector.store.migrations import migrate_sqlite
@@ -68,7 +77,6 @@ T = TypeVar("T")
 _UNAVAILABLE = {"SQLITE_BUSY", "SQLITE_LOCKED", "SQLITE_FULL", "SQLITE_IOERR", "SQLITE_CANTOPEN",
                 "SQLITE_READONLY", "SQLITE_PROTOCOL", "SQLITE_NOMEM", "SQLITE_PERM", "SQLITE_NOLFS"}
 
-_BOARD_COLS = "name, room, floor, created_at, enrolled_at, fingerprint, offset_db, retired_at"
 _READING_DTYPE = np.dtype([("board_id", np.int64), ("tag_id", np.int64), ("t_collector", np.float64),
                            ("rssi_dd", np.int32), ("offset_dd", np.int32)])
 
@@ -77,15 +85,6 @@ def _unavailable(e: sqlite3.Error) -> bool:
     name = getattr(e, "sqlite_errorname", "") or ""
     base = "_".join(name.split("_")[:2])  # SQLITE_IOERR_FSYNC -> SQLITE_IOERR
     return base in _UNAVAILABLE or "locked" in str(e)
-
-
-def _json(obj: dict[str, Any] | None) -> str | None:
-    return None if obj is None else json.dumps(obj, sort_keys=True)
-
-
-def _board(row: Sequence[Any]) -> Board:
-    name, room, floor, created_at, enrolled_at, fp, offset_db, retired_at = row
-    return Board(name, room, floor, created_at, enrolled_at, json.loads(fp) if fp else None, offset_db, retired_at)
 
 
 class SqliteStore:
@@ -279,9 +278,9 @@ class SqliteStore:
         def tx(con: sqlite3.Connection) -> None:
             try:
                 cur = con.execute(
-                    f"INSERT INTO boards ({_BOARD_COLS}) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                    f"INSERT INTO boards ({BOARD_COLS}) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
                     (board.name, board.room, board.floor, board.created_at, board.enrolled_at,
-                     _json(board.fingerprint), board.offset_db, board.retired_at))
+                     json_text(board.fingerprint), board.offset_db, board.retired_at))
             except sqlite3.IntegrityError as e:
                 raise ValueError(f"board {board.name!r} already exists") from e
             con.execute("INSERT INTO enrollments (code_hash, board_id, expires_at, used_at) VALUES (?, ?, ?, ?)",
@@ -289,12 +288,12 @@ class SqliteStore:
         await self._wtx(tx)
 
     async def get_board(self, name: str) -> Board | None:
-        rows = await self._query(f"SELECT {_BOARD_COLS} FROM boards WHERE name = ?", (name,))
-        return _board(rows[0]) if rows else None
+        rows = await self._query(f"SELECT {BOARD_COLS} FROM boards WHERE name = ?", (name,))
+        return board_from_row(rows[0]) if rows else None
 
     async def list_boards(self, include_retired: bool = True) -> list[Board]:
         where = "" if include_retired else "WHERE retired_at IS NULL"
-        return [_board(r) for r in await self._query(f"SELECT {_BOARD_COLS} FROM boards {where} ORDER BY name")]
+        return [board_from_row(r) for r in await self._query(f"SELECT {BOARD_COLS} FROM boards {where} ORDER BY name")]
 
     async def retire_board(self, name: str, at: float) -> bool:
         def tx(con: sqlite3.Connection) -> bool:
@@ -331,13 +330,13 @@ class SqliteStore:
             con.execute("UPDATE enrollments SET used_at = ? WHERE code_hash = ?", (at, code_hash))
             # A re-enrolled board gets a new token; the old one stops matching.
             con.execute("UPDATE boards SET token_hash = ?, fingerprint = ?, enrolled_at = ? WHERE id = ?",
-                        (token_hash, _json(fingerprint), at, bid))
-            return _board(con.execute(f"SELECT {_BOARD_COLS} FROM boards WHERE id = ?", (bid,)).fetchone())
+                        (token_hash, json_text(fingerprint), at, bid))
+            return board_from_row(con.execute(f"SELECT {BOARD_COLS} FROM boards WHERE id = ?", (bid,)).fetchone())
         return await self._wtx(tx)
 
     async def board_for_token(self, token_hash: str) -> Board | None:
-        rows = await self._query(f"SELECT {_BOARD_COLS} FROM boards WHERE token_hash = ?", (token_hash,))
-        return _board(rows[0]) if rows else None
+        rows = await self._query(f"SELECT {BOARD_COLS} FROM boards WHERE token_hash = ?", (token_hash,))
+        return board_from_row(rows[0]) if rows else None
 
     async def set_offset(self, calibration: Calibration) -> None:
         c = calibration
@@ -347,7 +346,7 @@ class SqliteStore:
             con.execute("INSERT INTO calibrations (board_id, at, offset_db, spread_db, samples, reference_tag, "
                         "distance_m, fingerprint) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
                         (bid, c.at, c.offset_db, c.spread_db, c.samples, c.reference_tag, c.distance_m,
-                         _json(c.fingerprint)))
+                         json_text(c.fingerprint)))
             con.execute("UPDATE boards SET offset_db = ? WHERE id = ?", (c.offset_db, bid))
         await self._wtx(tx)
 
@@ -355,7 +354,7 @@ class SqliteStore:
         rows = await self._query(
             "SELECT b.name, c.at, c.offset_db, c.spread_db, c.samples, c.reference_tag, c.distance_m, c.fingerprint "
             "FROM calibrations c JOIN boards b ON b.id = c.board_id WHERE b.name = ? ORDER BY c.at, c.id", (board,))
-        return [Calibration(*r[:7], json.loads(r[7]) if r[7] else None) for r in rows]
+        return [calibration_from_row(r) for r in rows]
 
     # -- tags --------------------------------------------------------------------------------------------
 
@@ -513,11 +512,7 @@ class SqliteStore:
         if tags is not None:
             where = "WHERE tag_id IN (SELECT id FROM tags WHERE tag IN (SELECT value FROM json_each(?)))"
             params.append(json.dumps(list(tags)))
-        rows = await self._query(
-            f"SELECT tg.tag, b.name, t.at, t.t_board_ms, t.battery_mv, t.temperature_c, t.adv_count, t.uptime_s "
-            f"FROM (SELECT *, row_number() OVER (PARTITION BY tag_id ORDER BY at DESC, t_board_ms DESC, id DESC) AS k "
-            f"      FROM telemetry {where}) t "
-            f"JOIN tags tg ON tg.id = t.tag_id JOIN boards b ON b.id = t.board_id WHERE t.k = 1", params)
+        rows = await self._query(LATEST_TELEMETRY_SQL.format(where=where), params)
         return {r[0]: TagTelemetry(*r) for r in rows}
 
     async def seq_holes(self, board: str | None = None) -> list[SeqHole]:
@@ -532,8 +527,7 @@ class SqliteStore:
 
     async def add_clock_sample(self, sample: ClockSample) -> None:
         s = sample
-        if not all(math.isfinite(v) for v in (s.t1, s.t2, s.t3, s.t4)):
-            raise ValueError(f"clock sample t1..t4 must be finite, got {(s.t1, s.t2, s.t3, s.t4)!r}")
+        check_clock_sample(s)
 
         def tx(con: sqlite3.Connection) -> None:
             bid = self._board_id(con, s.board)
@@ -628,23 +622,14 @@ class SqliteStore:
         return await self._read(job)
 
     async def delete_readings_before(self, t: float, chunk: int = 10_000, max_chunks: int | None = None) -> int:
-        if chunk < 1:
-            raise ValueError(f"chunk must be >= 1, got {chunk!r}")
-        if max_chunks is not None and max_chunks < 1:
-            raise ValueError(f"max_chunks must be >= 1 or None, got {max_chunks!r}")
-        total = 0
-        for table, col, count in (("readings", "t_collector", True), ("telemetry", "at", False),
-                                  ("clock_samples", "t2", False)):
-            for _ in itertools.count() if max_chunks is None else range(max_chunks):
-                def tx(con: sqlite3.Connection, table: str = table, col: str = col) -> int:
-                    return con.execute(f"DELETE FROM {table} WHERE rowid IN (SELECT rowid FROM {table} "
-                                       f"WHERE {col} < ? LIMIT ?)", (t, chunk)).rowcount
-                # One short transaction per chunk: ingest groups get the writer between chunks.
-                n = await self._wtx(tx)
-                if count:
-                    total += n
-                if n < chunk:
-                    break
+        async def delete_chunk(table: str, col: str) -> int:
+            def tx(con: sqlite3.Connection) -> int:
+                return con.execute(f"DELETE FROM {table} WHERE rowid IN (SELECT rowid FROM {table} "
+                                   f"WHERE {col} < ? LIMIT ?)", (t, chunk)).rowcount
+            # One short transaction per chunk: ingest groups get the writer between chunks.
+            return await self._wtx(tx)
+
+        total = await delete_in_chunks(delete_chunk, chunk, max_chunks)
         log.info("readings_deleted", backend="sqlite", before=t, readings=total, chunk=chunk, max_chunks=max_chunks)
         return total
 
@@ -664,7 +649,7 @@ def _refusal(b: IngestBatch, e: Exception) -> Exception:
         return e
     # SQLite names the constraint: "CHECK constraint failed: rssi_dd_range".
     msg = str(e)
-    field = msg.rsplit(":", 1)[-1].strip().removesuffix("_range").removesuffix("_non_negative") or "batch"
+    field = constraint_field(msg.rsplit(":", 1)[-1].strip())
     return BadBatch(field, f"refused by the database ({msg}) in batch {b.board}/{b.epoch}/{b.seq}")
 
 

@@ -6,7 +6,7 @@ import asyncio
 
 import pytest
 
-from agent.clock import DerivedClock, ScaledClock, SystemClock, VirtualClock
+from agent.clock import DerivedClock, ScaledClock, SystemClock, VirtualClock, with_timeout
 
 
 async def test_virtual_clock_wakes_sleepers_in_deadline_order(clock: VirtualClock) -> None:
@@ -81,3 +81,32 @@ def test_scaled_clock_rejects_bad_speed() -> None:
     """A speed of zero would divide sleeps by zero: refused with the value named."""
     with pytest.raises(ValueError, match="speed must be > 0"):
         ScaledClock(0)
+
+
+async def test_with_timeout_runs_on_the_injected_clock(clock: VirtualClock) -> None:
+    """A slow awaitable is cancelled after its seconds of clock time; a quick one returns its value."""
+    cancelled = asyncio.Event()
+
+    async def slow() -> int:
+        try:
+            await clock.sleep(10)
+        except asyncio.CancelledError:
+            cancelled.set()
+            raise
+        return 1
+
+    async def quick() -> int:
+        await clock.sleep(1)
+        return 2
+
+    task = asyncio.create_task(with_timeout(clock, slow(), 3, "slow call"))
+    await clock.advance(2.9)
+    assert not task.done()
+    await clock.advance(0.1)
+    with pytest.raises(TimeoutError, match="slow call did not finish within 3 s"):
+        await task
+    assert cancelled.is_set()
+    task = asyncio.create_task(with_timeout(clock, quick(), 3, "quick call"))
+    await clock.advance(1)
+    assert await task == 2
+    assert clock.pending_sleepers == 0  # the timer went with it

@@ -33,7 +33,6 @@ from agent.uplink import (
     Outcome,
     Uplink,
     UplinkState,
-    full_jitter,
     parse_retry_after,
 )
 
@@ -370,12 +369,3 @@ def test_retry_after_seconds_and_http_date():
     assert parse_retry_after("Fri, 31 Dec 1999 23:59:59 GMT", now) == 0.0  # the RFC's own example, long past
     assert parse_retry_after("soon", now) is None and parse_retry_after(None, now) is None
     assert parse_retry_after("99999999", now) == 3600.0
-
-
-def test_full_jitter_is_bounded_by_the_capped_exponential():
-    rng = random.Random(3)
-    for attempt in range(40):
-        ceiling = min(60.0, 1.0 * 2 ** attempt)
-        samples = [full_jitter(attempt, 1.0, 60.0, rng) for _ in range(200)]
-        assert all(0.0 <= s <= ceiling for s in samples)
-        assert max(samples) > 0.5 * ceiling  # spread over the whole range, not clustered at 0

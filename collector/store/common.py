@@ -1,0 +1,175 @@
+"""
+What both store backends share: the checks a batch passes before it reaches the database, the SQL
+that is the same text in both dialects, and the conversions from database rows to the store's values.
+
+Not part of the `Store` interface; only ``sqlite.py`` and ``postgres.py`` import it.
+"""
+
+from __future__ import annotations
+
+import itertools
+import json
+import math
+from collections.abc import Awaitable, Callable, Sequence
+from typing import Any
+
+import numpy as np
+
+from collector.store import BadBatch, Board, Calibration, ClockSample, IngestBatch
+
+BOARD_COLS = "name, room, floor, created_at, enrolled_at, fingerprint, offset_db, retired_at"
+"""The `Board` columns, in the order `board_from_row` reads them."""
+
+# Readings are what the caller counts; telemetry and clock samples age out on the same cut.
+RETENTION_TABLES: tuple[tuple[str, str, bool], ...] = (
+    ("readings", "t_collector", True), ("telemetry", "at", False), ("clock_samples", "t2", False))
+
+# The latest telemetry row per tag. ``{where}`` is a backend-specific tag filter (or empty).
+LATEST_TELEMETRY_SQL = (
+    "SELECT tg.tag, b.name, t.at, t.t_board_ms, t.battery_mv, t.temperature_c, t.adv_count, t.uptime_s "
+    "FROM (SELECT *, row_number() OVER (PARTITION BY tag_id ORDER BY at DESC, t_board_ms DESC, id DESC) AS k "
+    "      FROM telemetry {where}) t "
+    "JOIN tags tg ON tg.id = t.tag_id JOIN boards b ON b.id = t.board_id WHERE t.k = 1")
+
+
+def json_text(obj: dict[str, Any] | None) -> str | None:
+    """A JSON column's text (keys sorted, so equal dicts store equal text), or NULL."""
+    return None if obj is None else json.dumps(obj, sort_keys=True)
+
+
+def board_from_row(row: Sequence[Any]) -> Board:
+    """A `Board` from the `BOARD_COLS` of one row."""
+    name, room, floor, created_at, enrolled_at, fp, offset_db, retired_at = row
+    return Board(name, room, floor, created_at, enrolled_at, json.loads(fp) if fp else None, offset_db, retired_at)
+
+
+def calibration_from_row(row: Sequence[Any]) -> Calibration:
+    """A `Calibration` from (board name, at, offset, spread, samples, reference tag, distance, fingerprint)."""
+    *values, fp = row
+    return Calibration(*values, json.loads(fp) if fp else None)
+
+
+def check_clock_sample(s: ClockSample) -> None:
+    """
+    Raises:
+        ValueError: one of t1..t4 is not finite.
+    """
+    if not all(math.isfinite(v) for v in (s.t1, s.t2, s.t3, s.t4)):
+        raise ValueError(f"clock sample t1..t4 must be finite, got {(s.t1, s.t2, s.t3, s.t4)!r}")
+
+
+def constraint_field(constraint: str) -> str:
+    """The batch field a CHECK constraint guards: ``rssi_dd_range`` -> ``rssi_dd``."""
+    return constraint.removesuffix("_range").removesuffix("_non_negative").removesuffix("_finite") or "batch"
+
+
+async def delete_in_chunks(delete_chunk: Callable[[str, str], Awaitable[int]], chunk: int,
+                           max_chunks: int | None) -> int:
+    """
+    Run ``delete_chunk(table, time_column)`` over `RETENTION_TABLES` until a chunk comes back short.
+
+    Args:
+        delete_chunk: deletes at most ``chunk`` old rows of one table in its own short transaction,
+            returns how many it deleted.
+        chunk: rows per statement.
+        max_chunks: statements per table at most (``None``: until done).
+
+    Returns:
+        Readings deleted.
+
+    Raises:
+        ValueError: ``chunk`` or ``max_chunks`` below 1.
+    """
+    if chunk < 1:
+        raise ValueError(f"chunk must be >= 1, got {chunk!r}")
+    if max_chunks is not None and max_chunks < 1:
+        raise ValueError(f"max_chunks must be >= 1 or None, got {max_chunks!r}")
+    total = 0
+    for table, col, count in RETENTION_TABLES:
+        for _ in itertools.count() if max_chunks is None else range(max_chunks):
+            n = await delete_chunk(table, col)
+            if count:
+                total += n
+            if n < chunk:
+                break
+    return total
+
+
+
+def check_batch(batch: IngestBatch) -> int:
+    """
+    Check a batch's shape before it reaches the database; returns its offset in tenths of a dB.
+
+    Value ranges (``rssi_dd``, ``seq``) are left to the schema's CHECK constraints, the last line behind
+    the API's validation; a violation there rolls the batch back whole.
+
+    Raises:
+        BadBatch: naming the field.
+    """
+    for name in ("board", "boot", "epoch", "digest"):
+        v = getattr(batch, name)
+        if not isinstance(v, str) or not v:
+            raise BadBatch(name, f"must be a non-empty string, got {v!r}")
+    if not isinstance(batch.seq, int) or isinstance(batch.seq, bool):
+        raise BadBatch("seq", f"must be an integer, got {batch.seq!r}")
+    n = len(batch.t_board_ms)
+    for name in ("tags", "t_collector", "rssi_dd"):
+        if len(getattr(batch, name)) != n:
+            raise BadBatch(name, f"has {len(getattr(batch, name))} entries, t_board_ms has {n}")
+    if n and not np.all(np.isfinite(np.asarray(batch.t_collector, dtype=np.float64))):
+        raise BadBatch("t_collector", "must be finite")
+    if batch.gap is not None:
+        if n:
+            raise BadBatch("gap", "a gap record carries no readings")
+        for k in ("first_seq", "last_seq", "readings"):
+            v = batch.gap.get(k)
+            if not isinstance(v, int) or isinstance(v, bool) or v < 0:
+                raise BadBatch(f"gap.{k}", f"must be a non-negative integer, got {v!r}")
+        if batch.gap["last_seq"] < batch.gap["first_seq"]:
+            raise BadBatch("gap.last_seq", "must be >= first_seq")
+    for i, t in enumerate(batch.telemetry):
+        if not isinstance(t, dict) or not isinstance(t.get("tag"), str) or not t["tag"]:
+            raise BadBatch(f"telemetry[{i}].tag", "must be a tag identity string")
+        if not isinstance(t.get("t_ms"), int) or isinstance(t.get("t_ms"), bool):
+            raise BadBatch(f"telemetry[{i}].t_ms", f"must be an integer, got {t.get('t_ms')!r}")
+    if not np.isfinite(batch.offset_db):
+        raise BadBatch("offset_db", f"must be finite, got {batch.offset_db!r}")
+    return round(batch.offset_db * 10)
+
+
+def batch_tag_names(batch: IngestBatch) -> set[str]:
+    """Every tag identity a batch mentions (readings and telemetry)."""
+    # A set of the str objects, not np.unique: sorting an object array costs ~10x more (and runs on the
+    # single writer thread, which is what ingest throughput waits on).
+    names = set(batch.tags.tolist())
+    names.update(t["tag"] for t in batch.telemetry)
+    return names
+
+
+def reading_tag_ids(batch: IngestBatch, tag_ids: dict[str, int]) -> list[int]:
+    """The interned id of every reading's tag, in reading order (a dict lookup each, no sort)."""
+    return list(map(tag_ids.__getitem__, batch.tags.tolist()))
+
+
+TELEMETRY_FIELDS = ("battery_mv", "temperature_c", "adv_count", "uptime_s")
+
+# Seq holes per (board, epoch): every batch row covers its own seq, a gap record also covers
+# [gap_first, gap_last]. Sorted by start, an interval that begins past the furthest seq reached by
+# the intervals before it leaves a hole. Holes before the first seq ever received are not reported
+# (an epoch's first seq is the agent's business). ``{board}`` is a backend-specific filter.
+SEQ_HOLES_SQL = """
+WITH iv AS (
+    SELECT board_id, epoch, seq AS lo, seq AS hi FROM batches WHERE {board}
+    UNION ALL
+    SELECT board_id, epoch, gap_first, gap_last FROM batches WHERE gap_first IS NOT NULL AND {board}
+), w AS (
+    SELECT board_id, epoch, lo,
+           max(hi) OVER (PARTITION BY board_id, epoch ORDER BY lo, hi
+                         ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING) AS reach
+    FROM iv
+)
+SELECT b.name, w.epoch, w.reach + 1, w.lo - 1
+FROM w JOIN boards b ON b.id = w.board_id
+WHERE w.reach IS NOT NULL AND w.lo > w.reach + 1
+ORDER BY b.name, w.epoch, w.lo
+"""
