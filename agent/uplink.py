@@ -40,6 +40,7 @@ import structlog
 from agent import wire
 from agent.backoff import full_jitter
 from agent.clock import Clock
+from agent.net import client_session
 
 log = structlog.get_logger("agent.uplink")
 
@@ -258,7 +259,7 @@ class Uplink:
 
     def _get_session(self) -> aiohttp.ClientSession:
         if self._session is None or self._session.closed:
-            self._session = aiohttp.ClientSession()
+            self._session = client_session()
             self._own_session = True
         return self._session
 

@@ -23,6 +23,10 @@ from collector.ingest import clock_model
 from collector.store import Event, Heartbeat
 
 TEMPLATES = Path(__file__).parent / "templates"
+# Read at import, not per request: the page handler must not read files on the event loop.
+_TEMPLATE_TEXT = {name: (TEMPLATES / name).read_text(encoding="utf-8")
+                  for name in ("health.html", "health.css", "health.js")}
+
 REFRESH_SECONDS = 5
 RATE_WINDOW_SECONDS = 120.0
 
@@ -251,11 +255,10 @@ def render_page(doc: dict[str, Any], title: str = "listenpost · receivers") -> 
         f'{html.escape(_event_note(e))}'
         f'{" <span class=why>" + html.escape(str(e["detail"]["reason"])) + "</span>" if e["detail"].get("reason") else ""}</li>'
         for e in doc["events"]) or "<li>no events yet</li>"
-    tpl = Template((TEMPLATES / "health.html").read_text())
-    return tpl.substitute(
+    return Template(_TEMPLATE_TEXT["health.html"]).substitute(
         title=html.escape(title),
-        css=(TEMPLATES / "health.css").read_text(),
-        js=(TEMPLATES / "health.js").read_text(),
+        css=_TEMPLATE_TEXT["health.css"],
+        js=_TEMPLATE_TEXT["health.js"],
         boards_total=fleet["boards"], readings_total=f'{fleet["readings_total"]:,}', tags_total=fleet["tags"],
         summary=summary, rows="".join(_board_row(r) for r in doc["boards"]), events=events,
         refresh_ms=int(doc["refresh_seconds"] * 1000),
