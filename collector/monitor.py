@@ -317,11 +317,6 @@ class Monitor:
                 event = await self._webhook_queue.get()
                 await self.post_event(session, event)
 
-    @property
-    def webhook_pending(self) -> int:
-        """Events waiting for the webhook sender."""
-        return self._webhook_queue.qsize()
-
     async def _post_once(self, session: Any, body: dict[str, Any], headers: dict[str, str]) -> int:
         """One POST; its status, or `TimeoutError` once ``timeout_seconds`` of clock time have passed."""
         wh = self.settings.webhook

@@ -173,7 +173,7 @@ class Disk:
         self.conn = conn
         self.epoch, self.next_seq, self.counters = epoch, next_seq, counters
         self.batches, self.bytes = int(n), int(total)
-        self._refresh_oldest(set())
+        self._refresh_oldest()
         log.info("spool_opened", path=str(self.path), epoch=epoch, next_seq=next_seq, batches=self.batches,
                  bytes=self.bytes)
 
@@ -329,7 +329,7 @@ class Disk:
             self._restore(before)
             raise
         if refresh:
-            self._refresh_oldest(set())
+            self._refresh_oldest()
         return result
 
     # -------------------------------------------------------------- operations
@@ -540,15 +540,13 @@ class Disk:
             self._seal_gap(conn, Interval(epoch, seq, seq, n), GapReason.SPOOL_CORRUPT, offset_db, mono, wall)
         log.error("spool_batch_corrupt", epoch=epoch, seq=seq, readings=n, problem=problem)
 
-    def _refresh_oldest(self, skip: set[tuple[str, int]]) -> None:
+    def _refresh_oldest(self) -> None:
         self.oldest = None
         if self.conn is None:
             return
         try:
-            for epoch, seq, boot, mono, wall in self.conn.execute(
-                    "SELECT epoch, seq, boot, sealed_at_mono, sealed_at_wall FROM batches ORDER BY id"):
-                if (epoch, seq) not in skip:
-                    self.oldest = Oldest(boot, mono, wall)
-                    return
+            row = self.conn.execute("SELECT boot, sealed_at_mono, sealed_at_wall FROM batches ORDER BY id LIMIT 1").fetchone()
+            if row is not None:
+                self.oldest = Oldest(*row)
         except sqlite3.Error:
             pass  # a statistic; the next real operation will meet and handle the failure

@@ -85,11 +85,6 @@ class Room:
     weight: float = 1.0
     """Relative attraction when a visitor picks the next room (0 = closed)."""
 
-    @property
-    def area_m2(self) -> float:
-        """Floor area, square metres."""
-        return (self.x[1] - self.x[0]) * (self.y[1] - self.y[0])
-
 
 @dataclass(frozen=True, slots=True)
 class BoardSpec:
