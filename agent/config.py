@@ -146,6 +146,19 @@ def parse_rule(s: Section) -> DecodeRule:
     return DecodeRule(name, company, svc, prefix, offset, length)
 
 
+def parse_rules(s: Section) -> tuple[DecodeRule, ...]:
+    """
+    Read ``s``'s ``rules`` list (agent.yaml's ``decode``, the collector's ``decode``, or a remote config).
+
+    Raises:
+        ConfigError: a bad rule (naming its index and key), or two rules with one name.
+    """
+    rules = tuple(parse_rule(r) for r in s.items("rules"))
+    if len({r.name for r in rules}) != len(rules):
+        raise s.fail("rules", "rule names must be unique")
+    return rules
+
+
 @dataclass(frozen=True, slots=True)
 class CollectorConfig:
     url: str | None = None
@@ -248,10 +261,8 @@ def parse_agent_config(data: Any, origin: str = "agent.yaml", base_dir: Path | N
     t.done()
 
     d = top.section("decode")
-    rules = tuple(parse_rule(r) for r in d.items("rules"))
+    rules = parse_rules(d)
     d.done()
-    if len({r.name for r in rules}) != len(rules):
-        raise d.fail("rules", "rule names must be unique")
 
     cal = top.section("calibration")
     offset_db = cal.get("offset_db", float, 0.0, check=lambda v: None if -40 <= v <= 40 else "must be within ±40 dB")

@@ -23,6 +23,7 @@ import structlog
 from agent import __version__
 from agent.boardinfo import board_info
 from agent.clock import Clock
+from agent.net import request_timeout
 from agent.remote_config import ConfigFetcher, FetchResult, RemoteConfig
 from agent.uplink import ExchangeLog
 from agent.wire import canonical_json
@@ -72,7 +73,7 @@ class Heartbeat:
         self.stats_fn = stats_fn
         self.exchanges = exchanges
         self.period_s = period_s
-        self.timeout = aiohttp.ClientTimeout(total=timeout_s, connect=min(timeout_s, 10.0))
+        self.timeout = request_timeout(timeout_s)
         self.config = config
         self.on_config = on_config
         self._board_info = board_info_fn or (lambda: board_info(state_dir).as_dict())

@@ -25,3 +25,13 @@ def client_session(ca_file: str | Path | None = None) -> aiohttp.ClientSession:
     except (OSError, ssl.SSLError) as e:
         raise ConfigError(f"collector.ca_file: cannot load CA certificates from {str(ca_file)!r}: {e}") from e
     return aiohttp.ClientSession(connector=aiohttp.TCPConnector(ssl=ctx))
+
+
+def request_timeout(seconds: float) -> aiohttp.ClientTimeout:
+    """
+    The per-request timeout every agent call uses: ``seconds`` in all, connecting at most 10 s of it.
+
+    aiohttp's default total is five minutes, far too long for a board that should notice an outage
+    and fall back to its spool.
+    """
+    return aiohttp.ClientTimeout(total=seconds, connect=min(seconds, 10.0))

@@ -24,9 +24,10 @@ from typing import Any
 import aiohttp
 import structlog
 
-from agent.config import DecodeRule, Section, parse_rule, positive
+from agent.config import DecodeRule, Section, parse_rules, positive
 from agent.errors import ConfigError, DecodeError
 from agent.identity import parse_tag_id
+from agent.net import request_timeout
 
 log = structlog.get_logger("agent.remote_config")
 
@@ -69,9 +70,7 @@ def parse_remote_config(data: Any, origin: str = "collector config", etag: str |
             tags.add(parse_tag_id(t))
         except DecodeError as e:
             raise top.fail(f"tags[{i}]", str(e)) from None
-    rules = tuple(parse_rule(r) for r in top.items("rules"))
-    if len({r.name for r in rules}) != len(rules):
-        raise top.fail("rules", "rule names must be unique")
+    rules = parse_rules(top)
     offset_db = top.get("offset_db", float, 0.0, check=lambda v: None if -40 <= v <= 40 else "must be within ±40 dB")
     flush = top.get("flush_seconds", float, 5.0, check=lambda v: None if 0 < v <= 3600 else "must be in (0, 3600]")
     heartbeat = top.get("heartbeat_seconds", float, 10.0, check=positive)
@@ -171,7 +170,7 @@ class ConfigFetcher:
         self.board = board
         self.cache = cache
         self.session = session
-        self.timeout = aiohttp.ClientTimeout(total=timeout_s, connect=min(timeout_s, 10.0))
+        self.timeout = request_timeout(timeout_s)
         self.current: RemoteConfig | None = cache.load()
         self.fetches = 0
         self.rejected = 0

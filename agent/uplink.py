@@ -40,7 +40,7 @@ import structlog
 from agent import wire
 from agent.backoff import full_jitter
 from agent.clock import Clock
-from agent.net import client_session
+from agent.net import client_session, request_timeout
 
 log = structlog.get_logger("agent.uplink")
 
@@ -241,7 +241,7 @@ class Uplink:
         self.spool = spool
         self._session = session
         self._own_session = session is None
-        self.timeout = aiohttp.ClientTimeout(total=timeout_s, connect=min(timeout_s, 10.0))
+        self.timeout = request_timeout(timeout_s)
         self.backoff_initial_s = backoff_initial_s
         self.backoff_max_s = backoff_max_s
         self.idle_poll_s = idle_poll_s

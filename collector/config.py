@@ -28,7 +28,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from agent.config import DecodeRule, Section, load_yaml, non_negative, parse_rule, positive
+from agent.config import DecodeRule, Section, load_yaml, non_negative, parse_rules, positive
 from agent.errors import ConfigError
 
 DEFAULT_PORT = 8470
@@ -197,10 +197,8 @@ def parse_settings(data: Any, origin: str = "collector.yaml", **overrides: Any) 
     ag.done()
 
     dec = top.section("decode")
-    rules = tuple(parse_rule(r) for r in dec.items("rules"))
+    rules = parse_rules(dec)
     dec.done()
-    if len({r.name for r in rules}) != len(rules):
-        raise dec.fail("rules", "rule names must be unique")
 
     mon = top.section("monitor")
     interval = mon.get("interval_seconds", float, 5.0, positive)
