@@ -10,6 +10,7 @@ import pkgutil
 import sys
 
 import bench
+from agent.logs import configure
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -19,6 +20,7 @@ def main(argv: list[str] | None = None) -> int:
     if unknown:
         print(f"bench: no benchmark named {', '.join(unknown)} (have: {', '.join(names)})", file=sys.stderr)
         return 2
+    configure("console", "warning")  # the figures are the output; the components' info logs are noise here
     for name in wanted:
         module = importlib.import_module(f"bench.{name}")
         run = getattr(module, "main", None)
