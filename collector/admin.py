@@ -19,7 +19,7 @@ from aiohttp import web
 
 from agent.config import _BOARD_NAME
 from agent.errors import DecodeError
-from agent.identity import parse_tag_id
+from agent.identity import BUILTIN_KINDS, parse_tag_id
 from collector.api import read_json
 from collector.app import CLOCK, RUNTIME, SETTINGS, STORE
 from collector.auth import bearer_token, code_hash, hash_secret, new_enrollment_code, same_secret
@@ -102,7 +102,8 @@ async def add_board(request: web.Request) -> web.Response:
     except ValueError as e:
         raise ApiError(409, "board_exists", str(e), field="name") from e
     log.info("board_added", board=name, room=room, floor=floor)
-    return web.json_response({**board_json(board), "code": code, "code_expires_at": expires}, status=201)
+    return web.json_response({**board_json(board), "code": code, "code_expires_at": expires,
+                              "collector_url": request.app[SETTINGS].public_url}, status=201)
 
 
 async def list_boards(request: web.Request) -> web.Response:
@@ -152,7 +153,8 @@ async def reissue_board(request: web.Request) -> web.Response:
     code, expires = await _issue_code(request, board.name)
     await request.app[STORE].new_enrollment(Enrollment(board.name, code_hash(code), expires))
     log.info("enrollment_reissued", board=board.name)
-    return web.json_response({**board_json(board), "code": code, "code_expires_at": expires})
+    return web.json_response({**board_json(board), "code": code, "code_expires_at": expires,
+                              "collector_url": request.app[SETTINGS].public_url})
 
 
 def _tag_list(body: dict[str, Any]) -> list[str]:
@@ -176,7 +178,24 @@ async def import_tags(request: web.Request) -> web.Response:
     ids = _tag_list(await _json_object(request))
     store = request.app[STORE]
     added = await store.add_tags(ids, request.app[CLOCK].time())
-    return web.json_response({"added": added, "given": len(ids), "total": len(await store.list_tags())})
+    return web.json_response({"added": added, "given": len(ids), "total": len(await store.list_tags()),
+                              "without_rule": _without_rule(ids, request.app[SETTINGS].rules)})
+
+
+def _without_rule(ids: list[str], rules: Any) -> dict[str, int]:
+    """
+    Tag count per configured-rule name that this collector's ``decode.rules`` does not define.
+
+    Such tags are stored, but no board can ever name them: their identity only exists once a rule
+    extracts it (DEVELOPERS.md, "How to add a decode rule").
+    """
+    known = set(BUILTIN_KINDS) | {r.name for r in rules}
+    out: dict[str, int] = {}
+    for t in ids:
+        kind = t.split(":", 1)[0]
+        if kind not in known:
+            out[kind] = out.get(kind, 0) + 1
+    return out
 
 
 async def list_tags(request: web.Request) -> web.Response:
@@ -200,7 +219,10 @@ async def events(request: web.Request) -> web.Response:
         limit = min(int(request.query.get("limit", "1000")), 10_000)
     except ValueError as e:
         raise bad_field("since", "since and limit must be integers") from e
-    evs = await request.app[STORE].events(since_id=since, limit=limit, board=request.query.get("board"))
+    board = request.query.get("board")
+    if board is not None and await request.app[STORE].get_board(board) is None:
+        raise ApiError(404, "unknown_board", f"no board named {board!r}", field="board")
+    evs = await request.app[STORE].events(since_id=since, limit=limit, board=board)
     return web.json_response({"events": [event_json(e) for e in evs]})
 
 

@@ -27,6 +27,9 @@ if TYPE_CHECKING:
 DEFAULT_URL = "http://127.0.0.1:8470"
 DEFAULT_STATE_DIR = "/var/lib/listenpost/collector"
 DEFAULT_TIMEOUT = 30.0
+JSON_HELP = "print JSON instead of text"
+PACKAGE_HELP = ("what the card's first boot pip-installs as the agent (a requirement, wheel URL or path "
+                "reachable from the board; default: listenpost==<this version>)")
 
 
 class AdminError(ListenpostError):
@@ -48,7 +51,8 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
     sv.add_argument("--host", help="listen address (default from the config, else 127.0.0.1)")
     sv.add_argument("--port", type=int, help="listen port (default from the config, else 8470)")
     sv.add_argument("--config", type=Path, metavar="FILE", help="collector.yaml")
-    sv.add_argument("--log-format", choices=("auto", "json", "console"), default="auto")
+    sv.add_argument("--log-format", choices=("auto", "json", "console"), default="auto",
+                    help="log lines as JSON or for a terminal (default: console on a terminal, else JSON)")
     sv.set_defaults(func=_serve)
 
     def client(parser: argparse.ArgumentParser) -> argparse.ArgumentParser:
@@ -61,83 +65,115 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
                             help="give up on a request after S seconds (default %(default)s)")
         return parser
 
-    board = cmds.add_parser("board", help="add, list, show, retire boards; reissue enrollment codes")
+    board = cmds.add_parser("board", help="add, list, show, retire boards; reissue enrollment codes",
+                            description="Add, list, show and retire boards; reissue enrollment codes.")
     bc = board.add_subparsers(dest="board_command", required=True, metavar="{add,list,show,retire,reissue}")
-    add = client(bc.add_parser("add", help="register a board and print its one-time enrollment code"))
-    add.add_argument("name", metavar="NAME")
-    add.add_argument("--room", required=True)
-    add.add_argument("--floor")
+    add = client(bc.add_parser(
+        "add", help="register a board and print its one-time enrollment code",
+        description="Register a board and print its one-time enrollment code. Boards reach the collector at "
+                    "public_url of collector.yaml, else at --collector: give one the board can reach."))
+    add.add_argument("name", metavar="NAME", help="board name: lower-case letters, digits, '.', '_', '-' (e.g. g0-a)")
+    add.add_argument("--room", required=True, help="the room the board hears, as walk-test marks name it")
+    add.add_argument("--floor", help="floor label (free text)")
     add.add_argument("--bundle", type=Path, metavar="DIR",
                      help="also write a provisioning bundle (agent.yaml, cloud-init user-data/meta-data) to DIR")
+    add.add_argument("--package", metavar="SPEC", help=PACKAGE_HELP)
     add.add_argument("--json", action="store_true", help="print JSON instead of text")
     add.set_defaults(func=_board_add)
-    ls = client(bc.add_parser("list", help="all boards"))
-    ls.add_argument("--json", action="store_true")
+    ls = client(bc.add_parser("list", help="all boards", description="All boards: room, floor, enrolled, offset."))
+    ls.add_argument("--json", action="store_true", help=JSON_HELP)
     ls.set_defaults(func=_board_list)
-    show = client(bc.add_parser("show", help="one board: record, state, counts, calibration history"))
-    show.add_argument("name", metavar="NAME")
-    show.add_argument("--json", action="store_true")
+    show = client(bc.add_parser("show", help="one board: record, state, counts, calibration history",
+                                description="One board: record, state, counts, calibration history."))
+    show.add_argument("name", metavar="NAME", help="board name")
+    show.add_argument("--json", action="store_true", help=JSON_HELP)
     show.set_defaults(func=_board_show)
-    ret = client(bc.add_parser("retire", help="retire a board: its token stops working"))
-    ret.add_argument("name", metavar="NAME")
+    ret = client(bc.add_parser("retire", help="retire a board: its token stops working",
+                               description="Retire a board: its token stops working; its readings stay."))
+    ret.add_argument("name", metavar="NAME", help="board name")
     ret.set_defaults(func=_board_retire)
-    rei = client(bc.add_parser("reissue", help="new enrollment code for a re-flashed card (older codes stop working)"))
-    rei.add_argument("name", metavar="NAME")
+    rei = client(bc.add_parser("reissue", help="new enrollment code for a re-flashed card (older codes stop working)",
+                               description="New one-time enrollment code for a re-flashed card; older codes "
+                                           "stop working."))
+    rei.add_argument("name", metavar="NAME", help="board name")
     rei.add_argument("--bundle", type=Path, metavar="DIR", help="also write a provisioning bundle to DIR")
-    rei.add_argument("--json", action="store_true")
+    rei.add_argument("--package", metavar="SPEC", help=PACKAGE_HELP)
+    rei.add_argument("--json", action="store_true", help=JSON_HELP)
     rei.set_defaults(func=_board_reissue)
 
-    tags = cmds.add_parser("tags", help="import, list, retire registered tags")
+    tags = cmds.add_parser("tags", help="import, list, retire registered tags",
+                           description="Import, list and retire registered tags (canonical IDs, README.md "
+                                       "'Tag identities').")
     tc = tags.add_subparsers(dest="tags_command", required=True, metavar="{import,list,retire}")
     imp = client(tc.add_parser("import", help="register tags from a file (all or nothing)",
                                description="FILE: one canonical ID per line with '#' comments, or CSV with an "
                                            "'id' column. A bad line stops the import; nothing is stored."))
-    imp.add_argument("file", type=Path, metavar="FILE")
+    imp.add_argument("file", type=Path, metavar="FILE", help="tag file or CSV")
     imp.set_defaults(func=_tags_import)
-    tl = client(tc.add_parser("list", help="registered tags, one per line"))
+    tl = client(tc.add_parser("list", help="registered tags, one per line",
+                              description="Registered tags, one canonical ID per line."))
     tl.add_argument("--retired", action="store_true", help="include retired tags")
     tl.set_defaults(func=_tags_list)
-    tr = client(tc.add_parser("retire", help="retire tags (boards stop reporting them)"))
-    tr.add_argument("ids", nargs="+", metavar="ID")
+    tr = client(tc.add_parser("retire", help="retire tags (boards stop reporting them)",
+                              description="Retire tags: boards stop reporting them; stored readings stay."))
+    tr.add_argument("ids", nargs="+", metavar="ID", help="canonical tag ID")
     tr.set_defaults(func=_tags_retire)
 
-    st = client(cmds.add_parser("status", help="fleet health: one line per board"))
-    st.add_argument("--json", action="store_true")
+    st = client(cmds.add_parser("status", help="fleet health: one line per board",
+                                description="Fleet health, one line per board: state, last contact, readings, "
+                                            "readings per second, clock skew (ppm) and fit residual (ms), wall "
+                                            "clock error (s), spool backlog (batches), and why."))
+    st.add_argument("--json", action="store_true", help=JSON_HELP)
     st.set_defaults(func=_status)
 
-    ex = client(cmds.add_parser("export", help="binned calibrated RSSI table (tag × time bin × board)"))
+    ex = client(cmds.add_parser(
+        "export", help="binned calibrated RSSI table (tag × time bin × board)",
+        description="Calibrated RSSI per tag, time bin and board, on the collector's clock (each board's clock "
+                    "correction applied); the strongest reading of each bin. CSV: one row per heard cell "
+                    "(t_start_iso, t_start, tag, board, rssi_dbm, n). npz: dense arrays rssi[tag, bin, board] "
+                    "(NaN where not heard), counts, tags, boards, bin_starts, metadata. See README.md."))
     ex.add_argument("--from", dest="t_from", required=True, metavar="T", help="ISO-8601 (UTC if no zone) or Unix seconds")
-    ex.add_argument("--to", dest="t_to", required=True, metavar="T")
+    ex.add_argument("--to", dest="t_to", required=True, metavar="T", help="end, same forms; must be after --from")
     ex.add_argument("--bin", type=float, required=True, metavar="S", help="bin width, seconds")
-    ex.add_argument("--format", choices=("csv", "npz"), default="csv")
-    ex.add_argument("--out", type=Path, required=True, metavar="FILE")
+    ex.add_argument("--format", choices=("csv", "npz"), default="csv", help="default %(default)s")
+    ex.add_argument("--out", type=Path, required=True, metavar="FILE", help="written whole or not at all")
     ex.add_argument("--board", action="append", metavar="NAME", help="only these boards (repeatable)")
     ex.add_argument("--tag", action="append", metavar="ID", help="only these tags (repeatable)")
     ex.set_defaults(func=_export)
 
-    cal = client(cmds.add_parser("calibrate", help="set a board's RSSI offset from a reference tag at a measured distance"))
-    cal.add_argument("name", metavar="NAME")
+    cal = client(cmds.add_parser(
+        "calibrate", help="set a board's RSSI offset from a reference tag at a measured distance",
+        description="Set a board's RSSI offset from the readings of a reference tag at a measured distance "
+                    "over the last few minutes: the median, corrected to 1 m with the log-distance model, "
+                    "against the tag's power at 1 m. The offset is applied at once and kept in the board's "
+                    "history; calibrate again to replace it."))
+    cal.add_argument("name", metavar="NAME", help="board name")
     cal.add_argument("--tag", required=True, metavar="ID", help="the reference tag's canonical ID")
     cal.add_argument("--distance", type=float, required=True, metavar="M", help="tag-to-board distance, metres")
     cal.add_argument("--minutes", type=float, default=5.0, metavar="N", help="use the last N minutes (default 5)")
     cal.add_argument("--power-1m", type=float, default=-59.0, metavar="DBM",
                      help="the reference tag's RSSI at 1 m, dBm (default -59)")
     cal.add_argument("--exponent", type=float, default=2.0, metavar="N", help="path-loss exponent (default 2)")
-    cal.add_argument("--json", action="store_true")
+    cal.add_argument("--json", action="store_true", help=JSON_HELP)
     cal.set_defaults(func=_calibrate)
 
     wt = client(cmds.add_parser("walktest", help="per-room report of a walk with a reference tag",
-                                description="MARKS: CSV with columns room,from,to (times ISO-8601 or Unix "
-                                            "seconds), one row per room visited with the reference tag."))
-    wt.add_argument("--tag", required=True, metavar="ID")
-    wt.add_argument("--marks", required=True, type=Path, metavar="FILE")
-    wt.add_argument("--json", action="store_true")
+                                description="Per room visited with a reference tag: which board heard it "
+                                            "strongest, by how many dB, and which boards of other rooms heard "
+                                            "it too. MARKS: CSV with columns room,from,to (times ISO-8601 or "
+                                            "Unix seconds; rooms named as in 'board add --room'), one row per "
+                                            "room visited."))
+    wt.add_argument("--tag", required=True, metavar="ID", help="the reference tag's canonical ID")
+    wt.add_argument("--marks", required=True, type=Path, metavar="FILE", help="CSV room,from,to")
+    wt.add_argument("--json", action="store_true", help=JSON_HELP)
     wt.set_defaults(func=_walktest)
 
-    ev = client(cmds.add_parser("events", help="state changes, losses, conflicts, calibrations"))
+    ev = client(cmds.add_parser("events", help="state changes, losses, conflicts, calibrations",
+                                description="Stored events, oldest first: state changes, losses, conflicts, "
+                                            "calibrations."))
     ev.add_argument("--since", type=int, default=0, metavar="ID", help="only events after this id")
-    ev.add_argument("--board", metavar="NAME")
-    ev.add_argument("--json", action="store_true")
+    ev.add_argument("--board", metavar="NAME", help="only this board's events")
+    ev.add_argument("--json", action="store_true", help=JSON_HELP)
     ev.set_defaults(func=_events)
 
 
@@ -164,6 +200,7 @@ def tls_context(settings: Any) -> ssl.SSLContext | None:
 
 
 def _serve(args: argparse.Namespace) -> int:
+    import structlog
     from aiohttp import web
 
     from agent.clock import SystemClock
@@ -179,7 +216,10 @@ def _serve(args: argparse.Namespace) -> int:
     notifier = Notifier()
 
     async def notify_ctx(app: web.Application) -> Any:
-        notifier.ready(f"listening on {'https' if ssl_ctx else 'http'}://{settings.host}:{settings.port}")
+        url = f"{'https' if ssl_ctx else 'http'}://{settings.host}:{settings.port}"
+        structlog.get_logger("collector.cli").info("collector_listening", url=url, health_page=url + "/",
+                                                   public_url=settings.public_url)
+        notifier.ready(f"listening on {url}")
         task = asyncio.create_task(_watchdog(notifier)) if notifier.watchdog_interval else None
         yield
         notifier.stopping()
@@ -203,11 +243,28 @@ def admin_token(args: argparse.Namespace) -> str:
     """The admin token: ``--state-dir`` first, then ``$LISTENPOST_ADMIN_TOKEN``, then the default state dir."""
     from collector.auth import ADMIN_TOKEN_ENV, read_admin_token
 
-    if args.state_dir is not None:
-        return read_admin_token(args.state_dir)
-    if os.environ.get(ADMIN_TOKEN_ENV):
+    if args.state_dir is None and os.environ.get(ADMIN_TOKEN_ENV):
         return os.environ[ADMIN_TOKEN_ENV].strip()
-    return read_admin_token(DEFAULT_STATE_DIR)
+    try:
+        return read_admin_token(args.state_dir if args.state_dir is not None else DEFAULT_STATE_DIR)
+    except ConfigError as e:
+        raise ConfigError(f"{e}; give --state-dir DIR (the collector's own --state-dir, where it wrote "
+                          f"admin-token at first start) or set ${ADMIN_TOKEN_ENV}") from None
+
+
+def collector_url(text: str) -> str:
+    """``--collector`` checked: an http(s) URL with a host, without a trailing slash."""
+    from urllib.parse import urlsplit
+
+    try:
+        parts = urlsplit(text.strip())
+        parts.port  # noqa: B018 - a bad port only raises when read
+    except ValueError as e:
+        raise ConfigError(f"--collector: {e}: {text!r}") from None
+    if parts.scheme not in ("http", "https") or not parts.hostname:
+        raise ConfigError(f"--collector: must be an http(s) URL like http://10.0.0.2:8470, got {text!r} "
+                          "(or set $LISTENPOST_COLLECTOR)")
+    return text.strip().rstrip("/")
 
 
 def request(args: argparse.Namespace, method: str, path: str, *, body: Any = None,
@@ -219,15 +276,16 @@ def request(args: argparse.Namespace, method: str, path: str, *, body: Any = Non
 async def _request(args: argparse.Namespace, method: str, path: str, *, body: Any, params: Any, raw: bool) -> Any:
     import aiohttp
 
+    base = collector_url(args.collector)
     token = admin_token(args)
-    url = args.collector.rstrip("/") + path
+    url = base + path
     timeout = aiohttp.ClientTimeout(total=args.timeout, connect=min(args.timeout, 10.0))
     try:
         async with aiohttp.ClientSession(timeout=timeout) as session, session.request(
                 method, url, json=body, params=params, headers={"Authorization": f"Bearer {token}"}) as resp:
             data = await resp.read()
             if resp.status >= 400:
-                _raise_for(resp.status, data, url)
+                _raise_for(resp.status, data, url, base)
             return data if raw else json.loads(data)
     except (aiohttp.ClientConnectionError, aiohttp.InvalidURL, OSError) as e:
         raise AdminError(f"cannot reach the collector at {args.collector}: {e}") from e
@@ -235,17 +293,30 @@ async def _request(args: argparse.Namespace, method: str, path: str, *, body: An
         raise AdminError(f"the collector at {args.collector} did not answer within {args.timeout:g} s") from e
 
 
-def _raise_for(status: int, data: bytes, url: str) -> None:
+_HINTS = {"unknown_board": "'listenpost collector board list' shows the boards",
+          "no_readings": "is the board live and the tag beside it? --minutes widens the window"}
+
+
+def _raise_for(status: int, data: bytes, url: str, base: str) -> None:
+    """
+    Turn an error answer into the CLI's error: a mistake in what was asked (400, 404 for a name) is a
+    `ConfigError` (exit 2); anything else an `AdminError` (exit 1).
+    """
     try:
         err = json.loads(data)["error"]
-        msg = err.get("message") or err.get("code")
-    except (ValueError, KeyError, TypeError):
-        msg = data[:200].decode("utf-8", "replace")
+        msg, code = err.get("message") or err.get("code"), err.get("code")
+    except (ValueError, KeyError, TypeError, AttributeError):
+        err, msg, code = None, data[:200].decode("utf-8", "replace").strip(), None
     if status == 401:
         raise AdminError("the collector refused the admin token (check --state-dir or $LISTENPOST_ADMIN_TOKEN)")
-    if status == 400:
-        raise ConfigError(f"the collector rejected the request: {msg}")
-    raise AdminError(f"{url}: {status}: {msg}")
+    if err is None and status in (404, 405):
+        # Not the collector's JSON error shape: a proxy, another service, or a wrong path in the URL.
+        raise AdminError(f"{url} answered {status}: is {base} a listenpost collector (no path after the port)?")
+    hint = _HINTS.get(code or "")
+    text = f"{msg}; {hint}" if hint else str(msg)
+    if status in (400, 404):
+        raise ConfigError(text if status == 404 else f"the collector rejected the request: {text}")
+    raise AdminError(f"the collector answered {status}: {text}")
 
 
 def table(rows: Sequence[Sequence[Any]], headers: Sequence[str], right: Sequence[int] = ()) -> str:
@@ -289,32 +360,58 @@ def _write_bundle(args: argparse.Namespace, answer: dict[str, Any]) -> Path | No
     if not getattr(args, "bundle", None):
         return None
     from collector.provision import write_bundle
-    url = answer.get("collector_url") or args.collector
+    extra = {"package": args.package} if getattr(args, "package", None) else {}
     write_bundle(args.bundle, board=answer["name"], room=answer["room"], floor=answer.get("floor"),
-                 code=answer["code"], collector_url=url, expires_at=answer["code_expires_at"])
+                 code=answer["code"], collector_url=_board_url(args, answer), expires_at=answer["code_expires_at"],
+                 **extra)
     return args.bundle
+
+
+def _board_url(args: argparse.Namespace, answer: dict[str, Any]) -> str:
+    """The URL a board is told to use: the collector's public_url, else the one this command used."""
+    return str(answer.get("collector_url") or collector_url(args.collector))
+
+
+def _loopback(url: str) -> bool:
+    import ipaddress
+    from urllib.parse import urlsplit
+
+    host = urlsplit(url).hostname or ""
+    if host == "localhost" or host.endswith(".localhost"):
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False
 
 
 def _print_code(args: argparse.Namespace, answer: dict[str, Any], verb: str) -> int:
     bundle = _write_bundle(args, answer)
+    url = _board_url(args, answer)
+    if _loopback(url):
+        # On the board, 127.0.0.1 is the board itself: such a code or bundle can only work on this machine.
+        print(f"listenpost: warning: boards are told to reach the collector at {url}, a loopback address; "
+              "set public_url in collector.yaml (and listen.host or --host to an address the boards can "
+              "reach), or run this command with --collector URL as the boards see it", file=sys.stderr)
     if args.json:
         _out(json.dumps({**answer, "bundle": str(bundle) if bundle else None}))
         return 0
     _out(f"{verb} board {answer['name']} (room {answer['room']}"
          f"{', floor ' + answer['floor'] if answer.get('floor') else ''})")
     _out(f"enrollment code: {answer['code']}   (one use, valid until {_fmt_time(answer['code_expires_at'])} UTC)")
-    _out(f"on the board:    listenpost agent enroll --collector {answer.get('collector_url') or args.collector} "
-         f"--code {answer['code']}")
+    _out(f"on the board:    listenpost agent enroll --collector {url} --code {answer['code']}")
     if bundle:
-        _out(f"bundle written:  {bundle}/ (copy user-data and meta-data to the card's boot partition)")
+        _out(f"bundle written:  {bundle}/ (copy user-data and meta-data to the card's boot partition; "
+             "see README.txt there)")
     return 0
 
 
 def _check_bundle_possible(args: argparse.Namespace) -> None:
     """Fail before the collector is asked for a code, so a bundle problem never leaves a half-done board."""
     if getattr(args, "bundle", None):
-        from collector.provision import agent_unit
+        from collector.provision import agent_unit, package_spec
         agent_unit()
+        package_spec(getattr(args, "package", None))
         if args.bundle.exists() and not args.bundle.is_dir():
             raise ConfigError(f"--bundle: {args.bundle} exists and is not a directory")
 
@@ -415,6 +512,9 @@ def _tags_import(args: argparse.Namespace) -> int:
         raise ConfigError(f"{args.file}: no tag identities found")
     answer = request(args, "POST", "/v1/admin/tags", body={"ids": ids})
     _out(f"{args.file}: {answer['given']} tags read, {answer['added']} new; {answer['total']} registered now")
+    for rule, n in sorted((answer.get("without_rule") or {}).items()):
+        _out(f"! {n} tags use the decode rule {rule!r}, which the collector's config does not define: no board "
+             f"can hear them until decode.rules in collector.yaml has it (DEVELOPERS.md, 'How to add a decode rule')")
     return 0
 
 
@@ -484,10 +584,22 @@ def _events(args: argparse.Namespace) -> int:
     if args.json:
         _out(json.dumps(answer))
         return 0
-    rows = [(e["id"], _fmt_time(e["at"]), e["board"] or "", e["kind"],
-             json.dumps(e["detail"], separators=(",", ":"))[:80]) for e in answer["events"]]
+    rows = [(e["id"], _fmt_time(e["at"]), e["board"] or "", e["kind"], event_detail(e["kind"], e["detail"]))
+            for e in answer["events"]]
     _out(table(rows, ("ID", "AT (UTC)", "BOARD", "KIND", "DETAIL"), right=(0,)))
     return 0
+
+
+def event_detail(kind: str, detail: Any) -> str:
+    """One readable line for an event: ``old → new: reason`` for state changes, else ``key=value`` pairs."""
+    if not isinstance(detail, dict):
+        return "" if detail is None else str(detail)
+    if kind == "state_changed" and "new" in detail:
+        old = detail.get("old") or "–"
+        reason = f": {detail['reason']}" if detail.get("reason") else ""
+        return f"{old} → {detail['new']}{reason}"
+    return " ".join(f"{k}={json.dumps(v, separators=(',', ':')) if isinstance(v, dict | list) else v}"
+                    for k, v in detail.items())
 
 
 # ------------------------------------------------------------------ calibration and walk test
@@ -501,10 +613,21 @@ def _calibrate(args: argparse.Namespace) -> int:
         return 0
     _out(f"board {answer['board']}: offset {answer['offset_db']:+.1f} dB (was {answer['previous_offset_db']:+.1f}), "
          f"spread {answer['spread_db']:.1f} dB from {answer['samples']} readings of {answer['reference_tag']} "
-         f"at {answer['distance_m']:g} m")
+         f"at {answer['distance_m']:g} m (raw median {answer['median_dbm']:.1f} dBm)")
     for w in answer["warnings"]:
-        _out(f"! {w}")
+        _out(f"! {_CALIBRATION_WARNINGS.get(w, w)}")
+    if answer["warnings"]:
+        _out("  The offset was applied; fix the cause and calibrate again to replace it.")
     return 0
+
+
+_CALIBRATION_WARNINGS = {
+    "too_few_samples": "few readings: leave the tag in place longer (or give a larger --minutes)",
+    "spread_too_wide": "the readings spread widely: people or reflections moved around the tag; calibrate when "
+                       "the room is quiet",
+    "offset_large": "an offset this large usually means a wrong --distance, the wrong reference tag (see "
+                    "--power-1m) or a damaged antenna",
+}
 
 
 def read_marks(path: Path) -> list[dict[str, Any]]:

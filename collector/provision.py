@@ -68,16 +68,43 @@ def agent_config(board: str, collector_url: str) -> dict[str, Any]:
             "source": {"kind": "bleak"}}
 
 
-def build_bundle(*, board: str, room: str, floor: str | None, code: str, collector_url: str,
-                 expires_at: float, package: str = "listenpost", unit_source: Path = UNIT_SOURCE) -> dict[str, str]:
-    """File name → content of the bundle."""
+def default_package() -> str:
+    """The pip requirement of the agent this collector runs with: ``listenpost==<installed version>``."""
     from importlib.metadata import PackageNotFoundError
     from importlib.metadata import version as dist_version
 
     try:
-        version = dist_version(package)
+        return f"listenpost=={dist_version('listenpost')}"
     except PackageNotFoundError:
-        version = "0.1.0"
+        return "listenpost"
+
+
+def package_spec(package: str | None) -> str:
+    """
+    ``--package`` checked, or `default_package` when it is not given.
+
+    Raises:
+        ConfigError: more than one word (user-data passes it to pip as a single argument).
+    """
+    spec = package.strip() if package and package.strip() else default_package()
+    if any(c.isspace() for c in spec):
+        raise ConfigError(f"--package: one pip requirement, URL or path without spaces, got {package!r}")
+    return spec
+
+
+def build_bundle(*, board: str, room: str, floor: str | None, code: str, collector_url: str,
+                 expires_at: float, package: str | None = None, unit_source: Path = UNIT_SOURCE) -> dict[str, str]:
+    """
+    File name → content of the bundle.
+
+    Args:
+        package: what the first boot pip-installs as the agent: a requirement, a wheel URL or a path on
+            the card (default `default_package`); it must be reachable from the board.
+    """
+    from datetime import UTC, datetime
+
+    spec = package_spec(package)
+    expires = datetime.fromtimestamp(expires_at, UTC).strftime("%Y-%m-%d %H:%M UTC")
     url = collector_url.rstrip("/")
     pip = f"{AGENT_PREFIX}/bin/pip"
     cli = f"{AGENT_PREFIX}/bin/listenpost"
@@ -95,7 +122,7 @@ def build_bundle(*, board: str, room: str, floor: str | None, code: str, collect
         ],
         "runcmd": [
             ["python3", "-m", "venv", AGENT_PREFIX],
-            [pip, "install", "--upgrade", f"{package}=={version}"],
+            [pip, "install", "--upgrade", spec],
             ["install", "-d", "-o", "listenpost", "-g", "listenpost", "-m", "0700", AGENT_STATE_DIR],
             # Enroll as the agent's user, so the credential (0600) belongs to it.
             ["runuser", "-u", "listenpost", "--", cli, "agent", "enroll", "--collector", url, "--code", code,
@@ -105,16 +132,21 @@ def build_bundle(*, board: str, room: str, floor: str | None, code: str, collect
         ],
     }
     user_data = (f"#cloud-config\n# listenpost board {board} ({room}{', floor ' + floor if floor else ''}).\n"
-                 f"# The enrollment code works once and expires at Unix time {expires_at:.0f}.\n"
+                 f"# The enrollment code works once and expires {expires}.\n"
+                 f"# The agent is installed with: pip install {spec}\n"
                  + yaml.dump(cloud, Dumper=_Dumper, sort_keys=False, default_flow_style=None, width=120))
     meta = {"instance-id": f"listenpost-{board}-{secrets.token_hex(4)}", "local-hostname": board}
     readme = (f"Provisioning bundle for board {board} (room {room}).\n\n"
               "1. Flash the board's OS image to the card.\n"
               "2. Copy user-data and meta-data to the card's boot partition (cloud-init NoCloud).\n"
               "3. Mount the board, power it on; on first boot it installs the agent, enrolls and starts scanning.\n"
+              f"   It needs the network then: pip installs {spec} (from PyPI unless that is a URL or path;\n"
+              "   choose it with 'board add --package') and the board must reach the collector at\n"
+              f"   {url}.\n"
               f"   By hand instead: listenpost agent enroll --collector {url} --code {code}\n"
               "4. Check the health page: the board appears as 'live' within a minute.\n\n"
-              "The enrollment code works once; after a re-flash run 'listenpost collector board reissue "
+              f"The enrollment code works once and expires {expires}; after a re-flash or expiry run "
+              "'listenpost collector board reissue "
               f"{board} --bundle DIR'.\n")
     return {"user-data": user_data,
             "meta-data": yaml.safe_dump(meta, sort_keys=False),

@@ -57,7 +57,10 @@ async def test_board_add_json_list_show_and_reissue(server, tmp_path, capsys):
     assert json.loads(capsys.readouterr().out)["code"] != added["code"]
     assert await cli(server, tmp_path, "board", "show", "g0-a") == 0
     assert "G0 Foyer" in capsys.readouterr().out
-    assert await cli(server, tmp_path, "board", "show", "nope") == 1
+    # An unknown name is a mistake in what was asked: exit 2, and the message says where to look.
+    assert await cli(server, tmp_path, "board", "show", "nope") == 2
+    err = capsys.readouterr().err
+    assert "no board named 'nope'" in err and "board list" in err and "Traceback" not in err
 
 
 async def test_board_add_with_bundle_writes_cloud_init_files(server, tmp_path, capsys):
@@ -238,3 +241,119 @@ async def test_walktest_report_per_room(server, tmp_path, clock, capsys):
     marks.write_text("room,from\nG1,1\n")
     assert await cli(server, tmp_path, "walktest", "--tag", ref, "--marks", str(marks)) == 2
     assert f"{marks}:1:" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("url", ["htp://127.0.0.1:8470", "127.0.0.1:8470", "http://", "http://127.0.0.1:99999"])
+async def test_a_malformed_collector_url_is_a_usage_error_naming_the_option(tmp_path, capsys, url):
+    """A mistyped --collector gets exit 2 and a message naming the option and the value, never a traceback."""
+    rc = await asyncio.to_thread(main, ["collector", "status", "--collector", url, "--state-dir", str(tmp_path)])
+    err = capsys.readouterr().err
+    assert rc == 2, err
+    assert "--collector" in err and "Traceback" not in err
+
+
+async def test_a_missing_admin_token_says_where_to_find_it(server, tmp_path, capsys):
+    """Pointing --state-dir at the wrong place names the file and both ways to give the token."""
+    empty = tmp_path / "elsewhere"
+    empty.mkdir()
+    rc = await asyncio.to_thread(main, ["collector", "board", "list", "--collector", str(server.make_url("")),
+                                        "--state-dir", str(empty)])
+    err = capsys.readouterr().err
+    assert rc == 2
+    assert f"{empty}/admin-token" in err and "--state-dir" in err and "LISTENPOST_ADMIN_TOKEN" in err
+
+
+async def test_a_url_that_is_not_a_collector_says_so(aiohttp_server, tmp_path, capsys):
+    """A plain 404 (another service, or a path after the port) is a runtime failure that names the URL."""
+    from aiohttp import web
+
+    async def hello(request: web.Request) -> web.Response:
+        return web.Response(text="hello")
+
+    app = web.Application()
+    app.router.add_get("/", hello)
+    other = await aiohttp_server(app)
+    (tmp_path / "admin-token").write_text("x" * 32 + "\n")
+    base = str(other.make_url("")).rstrip("/")
+    rc = await asyncio.to_thread(main, ["collector", "board", "list", "--collector", base, "--state-dir", str(tmp_path)])
+    err = capsys.readouterr().err
+    assert rc == 1
+    assert "answered 404" in err and f"is {base} a listenpost collector" in err
+
+
+async def test_tags_without_a_configured_rule_are_flagged_at_import(aiohttp_server, tmp_path, clock, capsys):
+    """Custom-firmware tags are stored either way, but without the rule in collector.yaml the import warns."""
+    configure("json", stream=io.StringIO())
+    bare = create_app(settings_for(tmp_path / "bare", decode={"rules": []}), clock=clock, run_monitor=False)
+    servers = {"bare": await aiohttp_server(bare)}
+    tags = tmp_path / "tags.txt"
+    tags.write_text(f"{TAGS[0]}\nlpx:00000001\nlpx:00000002\n")
+    rc = await asyncio.to_thread(main, ["collector", "tags", "import", str(tags), "--collector",
+                                        str(servers["bare"].make_url("")), "--state-dir", str(tmp_path / "bare")])
+    out = capsys.readouterr().out
+    assert rc == 0
+    assert "3 tags read" in out and "2 tags use the decode rule 'lpx'" in out and "decode.rules" in out
+
+
+async def test_tags_with_their_rule_configured_import_quietly(server, tmp_path, capsys):
+    tags = tmp_path / "tags.txt"
+    tags.write_text(f"{TAGS[0]}\nlpx:00000001\n")
+    assert await cli(server, tmp_path, "tags", "import", str(tags)) == 0
+    assert "decode rule" not in capsys.readouterr().out
+
+
+async def test_board_add_warns_when_boards_would_be_sent_to_loopback(server, aiohttp_server, tmp_path, clock, capsys):
+    """A code or bundle pointing boards at 127.0.0.1 cannot work on a board: say so, and say what to set."""
+    assert await cli(server, tmp_path, "board", "add", "g0-a", "--room", "G0 Foyer") == 0
+    captured = capsys.readouterr()
+    assert "loopback" in captured.err and "public_url" in captured.err
+    assert "enrollment code:" in captured.out
+
+    configure("json", stream=io.StringIO())
+    public = create_app(settings_for(tmp_path / "pub", public_url="http://10.20.0.2:8470"), clock=clock,
+                        run_monitor=False)
+    srv = await aiohttp_server(public)
+    bundle = tmp_path / "card"
+    rc = await asyncio.to_thread(main, ["collector", "board", "add", "g0-b", "--room", "G0 Foyer", "--bundle",
+                                        str(bundle), "--collector", str(srv.make_url("")),
+                                        "--state-dir", str(tmp_path / "pub")])
+    captured = capsys.readouterr()
+    assert rc == 0 and "loopback" not in captured.err
+    assert "--collector http://10.20.0.2:8470 --code" in captured.out
+    assert "http://10.20.0.2:8470" in (bundle / "user-data").read_text()
+
+
+async def test_a_spaced_package_is_refused_before_a_code_is_issued(server, tmp_path, capsys):
+    rc = await cli(server, tmp_path, "board", "add", "g0-a", "--room", "G0 Foyer", "--bundle", str(tmp_path / "card"),
+                   "--package", "listenpost --pre")
+    assert rc == 2 and "--package" in capsys.readouterr().err
+    assert await cli(server, tmp_path, "board", "list", "--json") == 0
+    assert json.loads(capsys.readouterr().out)["boards"] == []
+
+
+async def test_events_read_as_sentences_and_an_unknown_board_is_named(server, tmp_path, capsys):
+    from collector.cli import event_detail
+
+    assert event_detail("state_changed", {"old": "live", "new": "late", "reason": "no contact for 32 s"}) == \
+        "live → late: no contact for 32 s"
+    assert event_detail("state_changed", {"old": None, "new": "silent", "reason": "no contact yet"}) == \
+        "– → silent: no contact yet"
+    assert event_detail("calibrated", {"offset_db": 2.5, "warnings": []}) == "offset_db=2.5 warnings=[]"
+    assert await cli(server, tmp_path, "events", "--board", "nope") == 2
+    assert "no board named 'nope'" in capsys.readouterr().err
+
+
+async def test_calibration_warnings_say_what_to_do(server, tmp_path, capsys):
+    """A calibration far off (wrong distance) is applied but explained in words, with the next step."""
+    from agent.types import Reading
+
+    ref = TAGS[0]
+    assert await cli(server, tmp_path, "board", "add", "g0-b", "--room", "G0 Foyer", "--json") == 0
+    code = json.loads(capsys.readouterr().out)["code"]
+    rs = [Reading(ref, round((60 + i * 0.5) * 1e9), -95.0) for i in range(40)]
+    await _enroll_and_send(server, [batch_body("g0-b", 0, rs, t1=81.0)], code)
+    assert await cli(server, tmp_path, "calibrate", "g0-b", "--tag", ref, "--distance", "1") == 0
+    out = capsys.readouterr().out
+    # -59 - (-95) = +36 dB: far past the 15 dB the collector accepts without a warning.
+    assert "offset +36.0 dB" in out and "raw median -95.0 dBm" in out
+    assert "wrong --distance" in out and "offset_large" not in out and "calibrate again" in out
