@@ -115,7 +115,10 @@ async def enroll(collector_url: str, code: str, state_dir: str | Path, *, clock:
                 continue
             return EnrollResult(EnrollStatus.REFUSED, f"the collector refused the enrollment ({status}): {text[:200]}")
         return EnrollResult(EnrollStatus.UNREACHABLE,
-                            f"cannot reach the collector at {url} after {attempts} attempts ({last})")
+                            f"cannot reach the collector at {url} after {attempts} attempts ({last}); check the "
+                            "URL (the one 'collector board add' printed), that the collector runs and listens "
+                            "on an address this board can reach, then run the same command again: the code "
+                            "is still unused")
     finally:
         if own:
             await sess.close()

@@ -3,8 +3,13 @@
 
 With ``--dry-run`` nothing is uploaded: every reading the board would send is printed on stdout as
 one JSON object per line, ``{"tag": ID, "rssi": dBm after offset, "t": board seconds}`` (plus a
-``"telemetry"`` object for Eddystone-TLM frames), and a summary goes to stderr. Without it the
-recording is uploaded as the board of ``--config`` by the agent service.
+``"telemetry"`` object for Eddystone-TLM frames), and a summary goes to stderr. Tags, decode rules and
+offset are the board's: for an enrolled board (``--config`` with a collector) the collector's cached
+config, as ``agent run`` uses it; else the config's own; ``--tags`` and ``--offset-db`` override both.
+
+Without ``--dry-run`` the recording is uploaded as the board of ``--config`` by the agent service, on a
+board clock of its own (`replay_board_clock`): the collector places the recording so that it ends when
+its replay ends, whatever the uptime of the machine replaying it.
 """
 
 from __future__ import annotations
@@ -14,18 +19,22 @@ import json
 import os
 import statistics
 import sys
+import uuid
 from collections import Counter
 from collections.abc import Sequence
 from pathlib import Path
-from typing import IO, Any
+from typing import IO, TYPE_CHECKING, Any
 
 from agent.calibrate import Calibrate
-from agent.clock import SystemClock
-from agent.config import AgentConfig, DecodeRule, load_agent_config
+from agent.clock import Clock, DerivedClock, SystemClock
+from agent.config import AgentConfig, DecodeRule, SourceConfig, load_agent_config
 from agent.errors import CaptureFormatError, ConfigError
-from agent.identity import load_tag_file
+from agent.identity import BUILTIN_KINDS, load_tag_file
 from agent.pipeline import Pipeline, build_pipeline
 from agent.types import Reading
+
+if TYPE_CHECKING:
+    import aiohttp
 
 _PER_TAG_LINES = 40
 """Tags listed one by one in the summary; the rest are summed up."""
@@ -38,6 +47,34 @@ def _tags_path(tags: Path | None, cfg: AgentConfig | None) -> Path:
         return cfg.state_path(cfg.tags_file)
     where = f" ({cfg.origin} has no tags.file)" if cfg is not None else ""
     raise ConfigError(f"no registered tags: give --tags TAGFILE, or --config agent.yaml with tags.file{where}")
+
+
+def _board_settings(cfg: AgentConfig | None, tags: Path | None,
+                    offset_db: float | None) -> tuple[frozenset[str], tuple[DecodeRule, ...], float]:
+    """Registered tags, decode rules and offset the board of ``cfg`` would use, as `AgentService` picks them."""
+    from agent.remote_config import ConfigCache
+
+    cached = ConfigCache(cfg.state_dir).load() if cfg is not None and cfg.collector.url else None
+    if cached is not None:
+        registered, rules, offset = cached.tags, cached.rules, cached.offset_db
+    else:
+        registered = frozenset() if tags is not None else load_tag_file(_tags_path(None, cfg))
+        rules = cfg.rules if cfg is not None else ()
+        offset = cfg.offset_db if cfg is not None else 0.0
+    if tags is not None:
+        registered = load_tag_file(tags)
+    return registered, rules, offset_db if offset_db is not None else offset
+
+
+def _rule_hint(registered: frozenset[str], rules: Sequence[DecodeRule]) -> str | None:
+    """Why some registered tags can never be heard: their decode rule is not configured."""
+    known = set(BUILTIN_KINDS) | {r.name for r in rules}
+    missing = Counter(t.split(":", 1)[0] for t in registered if t.split(":", 1)[0] not in known)
+    if not missing:
+        return None
+    names = ", ".join(f"{n!r} ({k} tags)" for n, k in sorted(missing.items()))
+    return (f"note: no decode rule for {names}: these tags cannot be heard; give --config with "
+            "decode.rules (DEVELOPERS.md, 'How to add a decode rule')")
 
 
 def reading_json(r: Reading) -> dict[str, Any]:
@@ -119,9 +156,7 @@ def replay_command(files: Sequence[Path], *, dry_run: bool, config: Path | None,
     # stdout carries the readings; log lines (a capture with losses, say) go to stderr.
     configure(cfg.log_format if cfg is not None else "auto", "warning", stream=sys.stderr)  # type: ignore[arg-type]
 
-    registered = load_tag_file(_tags_path(tags, cfg))
-    rules: tuple[DecodeRule, ...] = cfg.rules if cfg is not None else ()
-    offset = offset_db if offset_db is not None else (cfg.offset_db if cfg is not None else 0.0)
+    registered, rules, offset = _board_settings(cfg, tags, offset_db)
     pipeline = build_pipeline(registered, rules, offset)
 
     clock = SystemClock()
@@ -139,7 +174,62 @@ def replay_command(files: Sequence[Path], *, dry_run: bool, config: Path | None,
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return 0
     print(_summary(pipeline, per_tag, clock.monotonic() - t0, files), file=sys.stderr)
+    hint = _rule_hint(registered, rules)
+    if hint:
+        print(hint, file=sys.stderr)
     return 0
+
+
+async def replay_board_clock(files: Sequence[Path], speed: float, base: Clock) -> DerivedClock:
+    """
+    A board clock for uploading a replay, on which the recording ends as its replay ends.
+
+    Readings keep their recorded board times; the collector places them through the clock exchanges
+    the agent stamps with its clock. On the machine's own monotonic clock a recording would land
+    wherever that machine's uptime puts it (hours back, or in the future). This clock reads
+    ``c0 + elapsed`` with ``c0`` the earliest start at which no advert is ever ahead of it: at speed S
+    advert i is due ``P_i / S`` after the start, ``P_i`` being the board seconds the replay paces up
+    to it (the positive steps between adverts, as `ReplaySource` counts them), so
+    ``c0 = max_i(t_i − P_i / S)``; as fast as possible (S = 0), ``c0 = max_i t_i``.
+
+    Each replay is a boot of its own (a fresh boot id), so the collector fits it apart from the
+    board's live boots and from earlier replays of the same file.
+
+    Raises:
+        CaptureFormatError: a file is missing, of neither format, or has a bad line (``file:line``).
+    """
+    from agent.sources import open_replay
+
+    c0: float | None = None
+    paced = 0.0
+    prev: float | None = None
+    async for adv in open_replay(list(files), base, 0.0).adverts():
+        t = adv.t_mono_ns / 1e9
+        if prev is not None and t > prev:
+            paced += t - prev
+        prev = t
+        due = t - paced / speed if speed > 0 else t
+        c0 = due if c0 is None else max(c0, due)
+    start = c0 if c0 is not None else 0.0
+    return DerivedClock(base, boot_at=base.monotonic() - start, boot_id=str(uuid.uuid4()))
+
+
+async def upload_replay(cfg: AgentConfig, files: Sequence[Path], speed: float, base: Clock, *,
+                        session: aiohttp.ClientSession | None = None) -> int:
+    """
+    Upload ``files`` as the board of ``cfg`` through the agent service, on `replay_board_clock`.
+
+    Returns:
+        The service's exit code: 0 once the spool drained, 1 if it did not in time.
+    """
+    from agent.service import run_agent
+    from agent.sources import open_replay
+
+    clock = await replay_board_clock(files, speed, base)
+    # The service reports this kind in its logs and heartbeats: say what is really feeding it.
+    cfg = cfg.replace(source=SourceConfig(kind="replay", files=tuple(str(f) for f in files), speed=speed))
+    source = open_replay(list(files), clock, speed)
+    return await run_agent(cfg, clock=clock, source=source, exit_when_source_ends=True, session=session)
 
 
 def _upload(files: Sequence[Path], cfg: AgentConfig | None, tags: Path | None, offset_db: float | None,
@@ -152,19 +242,10 @@ def _upload(files: Sequence[Path], cfg: AgentConfig | None, tags: Path | None, o
     if offset_db is not None:
         cfg = cfg.replace(offset_db=Calibrate(offset_db).offset_db)  # same range check as the config
     from agent.logs import configure
-    from agent.service import run_agent
-    from agent.sources import open_replay
 
     configure(cfg.log_format, cfg.log_level)  # type: ignore[arg-type]
-
-    clock = SystemClock()
-
-    async def main() -> int | None:
-        source = open_replay(list(files), clock, speed)
-        return await run_agent(cfg, clock=clock, source=source, exit_when_source_ends=True)
-
     try:
-        return int(asyncio.run(main()) or 0)
+        return int(asyncio.run(upload_replay(cfg, files, speed, SystemClock())) or 0)
     except CaptureFormatError as e:
         print(f"listenpost: {e}", file=sys.stderr)
         return 2

@@ -427,7 +427,16 @@ def run_command(config_path: str | Path) -> int:
     configure(cfg.log_format, cfg.log_level)  # type: ignore[arg-type]
 
     async def main() -> int:
-        service = AgentService(cfg, clock=SystemClock(), notifier=Notifier())
+        clock: Clock = SystemClock()
+        if cfg.source.kind in ("replay", "btsnoop"):
+            # A recording keeps its own board times: run on a board clock that fits them (agent.runner).
+            from agent.errors import CaptureFormatError, ConfigError
+            from agent.runner import replay_board_clock
+            try:
+                clock = await replay_board_clock([Path(f) for f in cfg.source.files], cfg.source.speed, clock)
+            except CaptureFormatError as e:
+                raise ConfigError(f"{cfg.origin}: source.files: {e}") from None
+        service = AgentService(cfg, clock=clock, notifier=Notifier())
         loop = asyncio.get_running_loop()
         for sig in (signal.SIGTERM, signal.SIGINT):
             loop.add_signal_handler(sig, service.request_stop)

@@ -132,6 +132,7 @@ async def test_unreachable_collector_gives_up_after_the_attempts(tmp_path):
     result = task.result()
     assert result.status is EnrollStatus.UNREACHABLE and EXIT_CODES[result.status] == 1
     assert "after 3 attempts" in result.message
+    assert "run the same command again" in result.message and "still unused" in result.message
     assert slept < 60
 
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import asyncio
 import json
 import subprocess
 import sys
@@ -176,3 +177,128 @@ def test_btsnoop_capture_is_detected_by_content(tmp_path):
     assert [("ibeacon:e2c56db5-dffb-48d2-b060-d0f5a71096e0:1:258", -60), ("ibeacon:e2c56db5-dffb-48d2-b060-d0f5a71096e0:1:258", -63)] \
         == [(x["tag"], x["rssi"]) for x in lines]
     assert 0.25 == pytest.approx(lines[1]["t"] - lines[0]["t"], abs=1e-6)
+
+
+# ---------------------------------------------------------------- the board settings a dry run uses
+
+def test_dry_run_of_an_enrolled_board_uses_the_collectors_cached_config(files, tmp_path):
+    """An agent.yaml written by 'agent enroll' has no tags file: the dry run takes tags, rules and offset
+    from the collector's cached config, as 'agent run' does, instead of refusing."""
+    from agent.remote_config import ConfigCache
+
+    rec, _ = files
+    state = tmp_path / "board"
+    state.mkdir()
+    (state / "agent.yaml").write_text(f"board: g0-a\nstate_dir: {state}\ncollector:\n  url: http://10.20.0.2:8470\n")
+    ConfigCache(state).save({"board": "g0-a", "tags": [f"ibeacon:{VENUE}:7:1", "lpx:00000007"],
+                             "rules": [{"name": "lpx", "company_id": 0xFFFF, "prefix": "4c50", "offset": 2,
+                                        "length": 4}],
+                             "offset_db": -3.0, "flush_seconds": 5, "heartbeat_seconds": 10}, None)
+    p = run(rec, "--dry-run", "--config", state / "agent.yaml", "--fast", cwd=tmp_path)
+    assert 0 == p.returncode, p.stderr
+    assert [{"tag": f"ibeacon:{VENUE}:7:1", "rssi": -70, "t": 100.5},
+            {"tag": "lpx:00000007", "rssi": -63, "t": 102.0}] == [json.loads(x) for x in p.stdout.splitlines()]
+    assert "no decode rule" not in p.stderr
+    # --offset-db still wins over the cached offset.
+    p = run(rec, "--dry-run", "--config", state / "agent.yaml", "--offset-db", "0", "--fast", cwd=tmp_path)
+    assert [-67, -60] == [json.loads(x)["rssi"] for x in p.stdout.splitlines()]
+
+
+def test_dry_run_names_registered_tags_no_rule_can_decode(files, tmp_path):
+    """Registered custom-firmware tags without their decode rule can never be heard: the summary says so."""
+    rec, tags = files
+    p = run(rec, "--dry-run", "--tags", tags, "--fast", cwd=tmp_path)
+    assert 0 == p.returncode
+    assert "no decode rule for 'lpx' (1 tags)" in p.stderr and "decode.rules" in p.stderr
+
+
+# ---------------------------------------------------------------- uploading: where the collector puts a replay
+
+async def _clock_start(rec: Path, speed: float, clock) -> tuple[float, str]:
+    from agent.runner import replay_board_clock
+
+    board = await replay_board_clock([rec], speed, clock)
+    return board.monotonic(), board.boot_id
+
+
+@pytest.mark.parametrize(("speed", "start"), [
+    # Adverts at board 100.5 .. 103.0 s. At speed 2 advert i is due (t_i - 100.5) / 2 after the start, so
+    # the clock must start at max(t_i - (t_i - 100.5) / 2) = 103.0 - 1.25; as fast as possible, at 103.0.
+    (2.0, 101.75), (1.0, 100.5), (0.0, 103.0)])
+async def test_replay_board_clock_starts_where_no_advert_is_ahead_of_it(files, speed, start):
+    from agent.clock import VirtualClock
+
+    rec, _ = files
+    clock = VirtualClock(start=5.0)  # a host booted 5 s ago: less uptime than the recording's times
+    got, boot = await _clock_start(rec, speed, clock)
+    assert start == pytest.approx(got, abs=1e-9)
+    assert boot not in ("b-1", clock.boot_id)
+    assert (await _clock_start(rec, speed, clock))[1] != boot  # every replay is a boot of its own
+
+
+async def test_paced_replay_never_emits_an_advert_ahead_of_the_board_clock(files):
+    """Through the real ReplaySource at speed 2 on virtual time: each advert's board time <= the clock's."""
+    from agent.clock import VirtualClock
+    from agent.runner import replay_board_clock
+    from agent.sources import open_replay
+
+    rec, _ = files
+    base = VirtualClock(start=5.0)
+    board = await replay_board_clock([rec, rec], 2.0, base)  # the second file steps back: counts as 0
+    seen: list[tuple[float, float]] = []
+
+    async def consume() -> None:
+        async for adv in open_replay([rec, rec], board, 2.0).adverts():
+            seen.append((adv.t_mono_ns / 1e9, board.monotonic()))
+
+    task = asyncio.create_task(consume())
+    while not task.done():
+        await asyncio.wait({task}, timeout=0.001)
+        await base.advance(0.05)
+    assert len(seen) == 16
+    assert all(t <= now + 1e-9 for t, now in seen), seen
+
+
+async def test_uploaded_replay_ends_at_the_collector_when_its_replay_ends(aiohttp_server, tmp_path, files):
+    """The real collector (SQLite file) places an uploaded recording by the replay's own board clock:
+    recorded spacing kept, the last advert at the time the replay finished, whatever the host's uptime."""
+    import sqlite3
+
+    import aiohttp
+
+    from agent.clock import VirtualClock
+    from agent.enroll import EnrollStatus, enroll
+    from agent.runner import upload_replay
+    from collector.app import STORE, create_app
+    from collector.auth import code_hash
+    from collector.config import CollectorSettings
+    from collector.store import Board, Enrollment
+    from tests.agent.test_service import run_on_virtual_time
+
+    rec, _ = files
+    clock = VirtualClock(start=5.0)
+    (tmp_path / "collector").mkdir()
+    app = create_app(CollectorSettings(state_dir=str(tmp_path / "collector")), clock=clock, run_monitor=False)
+    server = await aiohttp_server(app)
+    store = app[STORE]
+    await store.add_board(Board("g0-a", "G0 Foyer", "ground", clock.time()),
+                          Enrollment("g0-a", code_hash("BRK-G0A-1001"), clock.time() + 3600))
+    await store.add_tags([f"ibeacon:{VENUE}:7:1", f"eddystone:{NS}:00000000001e", "mac:C4:7A:10:00:2B:91"],
+                         clock.time())
+    result = await enroll(str(server.make_url("")).rstrip("/"), "BRK-G0A-1001", tmp_path / "board", clock=clock)
+    assert result.status is EnrollStatus.ENROLLED, result.message
+    from agent.config import load_agent_config
+    cfg = load_agent_config(result.config_path)
+
+    started = clock.time()
+    async with aiohttp.ClientSession() as session:
+        task = asyncio.create_task(upload_replay(cfg, [rec], 2.0, clock, session=session))
+        assert await run_on_virtual_time(clock, task, step=0.05) == 0
+
+    with sqlite3.connect(f"file:{tmp_path / 'collector' / 'collector.sqlite'}?mode=ro", uri=True) as con:
+        rows = con.execute("SELECT t_board_ms, t_collector FROM readings ORDER BY t_board_ms").fetchall()
+    assert [r[0] for r in rows] == [100_500, 101_250, 101_500, 103_000]
+    # Loopback exchanges take no virtual time, so the fit's offset is exact: board 101.75 s <-> `started`.
+    for t_board_ms, t_collector in rows:
+        assert t_collector == pytest.approx(started + (t_board_ms / 1000 - 101.75), abs=0.01)
+    assert rows[-1][1] <= clock.time()  # nothing lands in the collector's future
