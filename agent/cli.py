@@ -16,17 +16,20 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
 
     run = cmds.add_parser("run", help="scan and upload until stopped (what the systemd unit runs)",
                           description="Scan with the configured source, spool durably and upload to the collector.")
-    run.add_argument("--config", required=True, type=Path, help="agent.yaml (written by 'agent enroll')")
+    run.add_argument("--config", required=True, type=Path, metavar="FILE", help="agent.yaml (written by 'agent enroll')")
     run.set_defaults(func=_run)
 
     rp = cmds.add_parser(
         "replay", help="replay recordings or btsnoop captures through the agent",
         description="Replay recorded logs (.jsonl, .jsonl.gz) or btsnoop captures (detected by content) "
                     "through decode, filter and calibrate. With --dry-run, print one JSON object per reading "
-                    "on stdout and a summary on stderr; without it, upload as the board of --config.")
-    rp.add_argument("files", nargs="+", type=Path, metavar="FILE")
+                    "on stdout and a summary on stderr; without it, upload as the board of --config "
+                    "(the collector places the recording so that it ends when the replay ends).")
+    rp.add_argument("files", nargs="+", type=Path, metavar="FILE", help="recorded log or btsnoop capture (gzip'd or not)")
     rp.add_argument("--dry-run", action="store_true", help="upload nothing; print what the board would send")
-    rp.add_argument("--config", type=Path, help="agent.yaml: board, decode rules, tags, offset, collector")
+    rp.add_argument("--config", type=Path, metavar="FILE",
+                    help="agent.yaml: board, decode rules, tags, offset, collector (an enrolled board's "
+                         "cached collector config counts)")
     rp.add_argument("--tags", type=Path, metavar="TAGFILE", help="registered tags: one canonical ID per line, '#' comments")
     rp.add_argument("--offset-db", type=float, metavar="DB", help="board RSSI offset in dB (overrides the config)")
     speed = rp.add_mutually_exclusive_group()
@@ -48,16 +51,16 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
     rec = cmds.add_parser("record", help="record a live source to the replay format",
                           description="Write every advertisement the source hears to a recorded log "
                                       "(JSON Lines; gzip'd when FILE ends in .gz), for replay later.")
-    rec.add_argument("--out", required=True, type=Path, metavar="FILE")
-    rec.add_argument("--config", type=Path, help="agent.yaml whose source section to use (default: bleak, default adapter)")
+    rec.add_argument("--out", required=True, type=Path, metavar="FILE", help="recording to write")
+    rec.add_argument("--config", type=Path, metavar="FILE", help="agent.yaml whose source section to use (default: bleak, default adapter)")
     rec.add_argument("--source", choices=("bleak", "hci"), help="override the source kind")
     rec.add_argument("--adapter", metavar="hciN", help="adapter to scan with")
-    rec.add_argument("--seconds", type=float, help="stop after this many seconds (default: until Ctrl-C)")
+    rec.add_argument("--seconds", type=float, metavar="S", help="stop after this many seconds (default: until Ctrl-C)")
     rec.set_defaults(func=_record)
 
     cc = cmds.add_parser("check-config", help="validate an agent.yaml and print what it means",
                          description="Load and validate an agent.yaml; exit 2 with the key path on error.")
-    cc.add_argument("file", type=Path, metavar="FILE")
+    cc.add_argument("file", type=Path, metavar="FILE", help="agent.yaml")
     cc.set_defaults(func=_check_config)
 
 

@@ -309,8 +309,8 @@ def _raise_for(status: int, data: bytes, url: str, base: str) -> None:
         err, msg, code = None, data[:200].decode("utf-8", "replace").strip(), None
     if status == 401:
         raise AdminError("the collector refused the admin token (check --state-dir or $LISTENPOST_ADMIN_TOKEN)")
-    if err is None and status in (404, 405):
-        # Not the collector's JSON error shape: a proxy, another service, or a wrong path in the URL.
+    if status in (404, 405) and (err is None or code in ("not_found", "method_not_allowed")):
+        # No such route: a proxy, another service, or a path after the port in --collector.
         raise AdminError(f"{url} answered {status}: is {base} a listenpost collector (no path after the port)?")
     hint = _HINTS.get(code or "")
     text = f"{msg}; {hint}" if hint else str(msg)

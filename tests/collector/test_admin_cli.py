@@ -281,6 +281,14 @@ async def test_a_url_that_is_not_a_collector_says_so(aiohttp_server, tmp_path, c
     assert "answered 404" in err and f"is {base} a listenpost collector" in err
 
 
+async def test_a_path_after_the_port_is_named(server, tmp_path, capsys):
+    """The collector's own 404 for an unknown route gets the same explanation, not a bare 'Not Found'."""
+    base = str(server.make_url("")).rstrip("/") + "/v1"
+    rc = await asyncio.to_thread(main, ["collector", "status", "--collector", base, "--state-dir", str(tmp_path / "state")])
+    err = capsys.readouterr().err
+    assert rc == 1 and "no path after the port" in err
+
+
 async def test_tags_without_a_configured_rule_are_flagged_at_import(aiohttp_server, tmp_path, clock, capsys):
     """Custom-firmware tags are stored either way, but without the rule in collector.yaml the import warns."""
     configure("json", stream=io.StringIO())
