@@ -667,7 +667,7 @@ def _walktest(args: argparse.Namespace) -> int:
         best, heard = r["strongest"], r["heard"]
         runner = heard[1]["board"] if len(heard) > 1 else None
         rows.append((r["room"], best["board"] if best else "nobody", _num(best["median_dbm"] if best else None, ".1f"),
-                     runner, _num(r["margin_db"], ".1f"), "yes" if r["strongest_in_room"] else "NO",
+                     runner, _num(r["margin_db"], ".1f"), None if not best else "yes" if r["strongest_in_room"] else "NO",
                      ", ".join(h["board"] for h in r["overlap"]), f"{100 * r['seconds_share']:.0f}"))
     _out(table(rows, ("ROOM", "STRONGEST", "dBm", "RUNNER-UP", "MARGIN dB", "IN ROOM", "OVERLAP (other rooms)",
                       "COVER %"), right=(2, 4, 7)))

@@ -365,3 +365,14 @@ async def test_calibration_warnings_say_what_to_do(server, tmp_path, capsys):
     # -59 - (-95) = +36 dB: far past the 15 dB the collector accepts without a warning.
     assert "offset +36.0 dB" in out and "raw median -95.0 dBm" in out
     assert "wrong --distance" in out and "offset_large" not in out and "calibrate again" in out
+
+
+async def test_walktest_room_nobody_heard_is_not_called_wrong(server, tmp_path, clock, capsys):
+    """A room where no board heard the tag reads 'nobody' with no verdict, not 'NO' (which means: wrong room)."""
+    assert await cli(server, tmp_path, "board", "add", "g1-a", "--room", "G1 Light & Optics") == 0
+    marks = tmp_path / "marks.csv"
+    marks.write_text(f"room,from,to\nG1 Light & Optics,{clock.time() - 60},{clock.time() - 30}\n")
+    capsys.readouterr()
+    assert await cli(server, tmp_path, "walktest", "--tag", TAGS[1], "--marks", str(marks)) == 0
+    row = capsys.readouterr().out.splitlines()[2]
+    assert "nobody" in row and "NO" not in row.split()
