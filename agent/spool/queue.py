@@ -250,7 +250,8 @@ class Spool:
             else:  # sealed in an earlier boot: board monotonic time restarted, the wall clock did not
                 age = max(0.0, self._clock.time() - s.oldest.wall)
         return SpoolStats(
-            batches=s.batches, bytes=s.bytes, readings_pending=len(self._pending), oldest_age_s=age,
+            # acked batches stay on disk until the next seal commits their removal: not a backlog
+            batches=max(0, s.batches - len(self._acks)), bytes=s.bytes, readings_pending=len(self._pending), oldest_age_s=age,
             next_seq=s.next_seq, epoch=s.epoch, dropped_batches=s.counters["dropped_batches"],
             dropped_readings=s.counters["dropped_readings"] + self._ram_dropped,
             dead_letters=s.counters["dead_letters"], corrupt_set_aside=s.counters["corrupt_set_aside"],

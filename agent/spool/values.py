@@ -74,7 +74,7 @@ class SpoolStats:
     """What the heartbeat and the health flag read."""
 
     batches: int
-    """Sealed batches on disk, gap records included (acked ones leave within ``flush_seconds``)."""
+    """Sealed batches waiting for upload, gap records included (acked ones are not counted)."""
     bytes: int
     """Compressed bodies plus `ROW_OVERHEAD_BYTES` per row, bytes."""
     readings_pending: int

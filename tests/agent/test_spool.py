@@ -127,7 +127,10 @@ class TestRoundTrip:
         await spool.ack(first.epoch, first.seq)
         nxt = await spool.peek_oldest()
         assert nxt is not None and nxt.seq == 1
+        assert spool.stats().batches == 1                  # the acked one is no backlog, though still on disk
         await spool.ack("0000000000000000", 99)            # unknown keys are harmless
+        await spool.ack(nxt.epoch, nxt.seq)
+        assert spool.stats().batches == 0                  # a drained spool reports no backlog to the heartbeat
         await spool.close()
 
     async def test_close_seals_pending(self, tmp_path: Path, clock: VirtualClock) -> None:
