@@ -52,9 +52,13 @@ async def test_uploaded_readings_equal_the_dry_run_and_status_follows_the_board(
 
         await fleet.boards[BOARD].stop()
         stopped_at = fleet.t_true()
+        # The silence clock starts at the board's last contact (its last heartbeat or batch), which
+        # may be up to one heartbeat period before the stop.
+        last_contact = stopped_at - (await _state(fleet))["last_contact_age_s"]
         limits = LivenessSettings()
+        assert stopped_at - last_contact <= limits.heartbeat_s + 1.0
         # Short of the hard floor the board may be late but never silent ...
-        await fleet.run_until(stopped_at + limits.min_silent_s - 5.0, step_s=1.0)
+        await fleet.run_until(last_contact + limits.min_silent_s - 2.0, step_s=1.0)
         assert (await _state(fleet))["state"] in ("live", "late")
         # ... and past the hard limit plus one monitor round it is silent.
         await fleet.run_until(stopped_at + limits.silent_after_s + 10.0, step_s=1.0)
