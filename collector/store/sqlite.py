@@ -655,7 +655,8 @@ def _refusal(b: IngestBatch, e: Exception) -> Exception:
 # load the request handlers take the GIL at each of those releases, which doubled the writer's time per
 # reading. One statement of up to 2048 rows steps once: 12,288 parameters, below SQLite's default limit
 # of 32,766 (since 3.32).
-_READING_CHUNK = 2048
+# Older SQLite allowed only 999 parameters per statement: 128 rows (768) fit there.
+_READING_CHUNK = 2048 if sqlite3.sqlite_version_info >= (3, 32, 0) else 128
 _READING_COLS = 6
 
 
