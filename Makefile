@@ -16,6 +16,7 @@ demo: $(STAMP)
 	$(BIN)/listenpost demo
 
 test: $(STAMP)
+	$(BIN)/ruff check agent collector listenpost tests bench
 	$(BIN)/python -m pytest
 
 bench: $(STAMP)
