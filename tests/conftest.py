@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import shutil
 
 import pytest
 import structlog
@@ -14,6 +15,19 @@ PG_URL = os.environ.get("LISTENPOST_TEST_PG", "postgresql://postgres@127.0.0.1:5
 
 def pytest_addoption(parser: pytest.Parser) -> None:
     parser.addoption("--ble-adapter", default=None, help="run live-radio tests on this adapter (e.g. hci0)")
+
+
+def require_tool(name: str) -> str:
+    """
+    The path of a command-line tool the test checks against; skip without it locally, but fail when
+    LISTENPOST_REQUIRE_TOOLS=1 (CI installs every tool, so there a missing one is a broken install).
+    """
+    path = shutil.which(name)
+    if path is None:
+        if os.environ.get("LISTENPOST_REQUIRE_TOOLS") == "1":
+            pytest.fail(f"{name} is not installed and LISTENPOST_REQUIRE_TOOLS=1")
+        pytest.skip(f"{name} is not installed")
+    return path
 
 
 @pytest.fixture(autouse=True)

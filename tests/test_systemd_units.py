@@ -14,9 +14,15 @@ from pathlib import Path
 
 import pytest
 
+from tests.conftest import require_tool
+
 UNITS = Path(__file__).resolve().parent.parent / "systemd"
 ANALYZE = shutil.which("systemd-analyze")
-pytestmark = pytest.mark.skipif(ANALYZE is None, reason="systemd-analyze is not installed")
+
+
+@pytest.fixture(autouse=True)
+def _systemd_analyze() -> None:
+    require_tool("systemd-analyze")
 
 
 def directives(path: Path) -> dict[str, list[str]]:

@@ -5,7 +5,6 @@ from __future__ import annotations
 import datetime as dt
 import gzip
 import os
-import shutil
 import struct
 import subprocess
 
@@ -25,6 +24,7 @@ from agent.sources.btsnoop import (
     read_btsnoop,
 )
 from agent.types import Advert
+from tests.conftest import require_tool
 
 T0 = 1_700_000_000_123_456  # Unix µs of the REFERENCES.md §3 vector
 EVENT = bytes.fromhex("3e13020103015544332211c00702010603097431c4")  # REFERENCES.md §2 legacy vector, no H4 byte
@@ -74,15 +74,15 @@ def test_btsnoop_parser_reads_our_files(tmp_path, datalink):
     assert {g.hci_index for g in got} == {2 if datalink == DATALINK_MONITOR else 0}
 
 
-@pytest.mark.skipif(shutil.which("btmon") is None, reason="BlueZ btmon not installed")
 @pytest.mark.parametrize("datalink", [DATALINK_H4, DATALINK_MONITOR])
 def test_btmon_reads_our_files(tmp_path, datalink):
     """BlueZ btmon 5.66 `-r` decodes our capture: time, address and RSSI (golden check, REFERENCES.md §3)."""
+    btmon = require_tool("btmon")
     p = tmp_path / "c.btsnoop"
     with BtsnoopWriter(p, datalink) as w:
         w.write_event(T0, EVENT)
         w.write_advert(T0 + 1_000_000, _advert(0x2B, rssi=-77))
-    out = subprocess.run(["btmon", "-T", "-r", str(p)], capture_output=True, text=True, timeout=30,
+    out = subprocess.run([btmon, "-T", "-r", str(p)], capture_output=True, text=True, timeout=30,
                          env={**os.environ, "TZ": "UTC"}).stdout
     assert "2023-11-14 22:13:20.123456" in out
     assert "Address: C0:11:22:33:44:55" in out and "RSSI: -60 dBm (0xc4)" in out

@@ -11,9 +11,15 @@ import yaml
 
 from agent.config import parse_agent_config
 from collector.provision import build_bundle, write_bundle
+from tests.conftest import require_tool
 
 CLOUD_INIT = shutil.which("cloud-init")
-needs_cloud_init = pytest.mark.skipif(CLOUD_INIT is None, reason="cloud-init is not installed")
+needs_cloud_init = pytest.mark.usefixtures("_cloud_init")
+
+
+@pytest.fixture
+def _cloud_init() -> None:
+    require_tool("cloud-init")
 
 
 def _bundle(tmp_path: Path) -> Path:

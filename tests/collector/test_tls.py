@@ -19,6 +19,10 @@ from pathlib import Path
 import aiohttp
 import pytest
 import yaml
+from cryptography import x509
+from cryptography.hazmat.primitives import hashes, serialization
+from cryptography.hazmat.primitives.asymmetric import ec
+from cryptography.x509.oid import NameOID
 
 from agent.clock import VirtualClock
 from agent.errors import ConfigError
@@ -28,11 +32,6 @@ from agent.uplink import Uplink
 from collector.app import STORE, create_app
 from collector.cli import tls_context
 from tests.collector.test_api import TAGS, enrolled, import_tags, settings_for
-
-x509 = pytest.importorskip("cryptography.x509")
-from cryptography.hazmat.primitives import hashes, serialization  # noqa: E402
-from cryptography.hazmat.primitives.asymmetric import ec  # noqa: E402
-from cryptography.x509.oid import NameOID  # noqa: E402
 
 
 def make_certs(folder: Path) -> tuple[Path, Path, Path]:
