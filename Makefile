@@ -9,7 +9,7 @@ STAMP := $(VENV)/.installed
 $(STAMP): pyproject.toml
 	$(PY) -m venv $(VENV)
 	$(BIN)/pip install --quiet --upgrade pip
-	$(BIN)/pip install --quiet -e '.[test,dev]'
+	$(BIN)/pip install --quiet -e '.[collector,sim,test,dev]'
 	touch $(STAMP)
 
 demo: $(STAMP)

@@ -7,7 +7,7 @@ import json
 import sys
 from pathlib import Path
 
-from agent.errors import ConfigError
+from listenpost.core.errors import ConfigError
 
 
 def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None:  # type: ignore[type-arg]
@@ -65,12 +65,12 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
 
 
 def _run(args: argparse.Namespace) -> int:
-    from agent.service import run_command
+    from listenpost.agent.service import run_command
     return run_command(args.config)
 
 
 def _replay(args: argparse.Namespace) -> int:
-    from agent.runner import replay_command
+    from listenpost.agent.runner import replay_command
     if args.speed is not None and args.speed <= 0:
         raise ConfigError(f"--speed: must be > 0, got {args.speed}")
     return replay_command(args.files, dry_run=args.dry_run, config=args.config, tags=args.tags,
@@ -78,19 +78,19 @@ def _replay(args: argparse.Namespace) -> int:
 
 
 def _enroll(args: argparse.Namespace) -> int:
-    from agent.enroll import enroll_command
+    from listenpost.agent.client.enroll import enroll_command
     return enroll_command(args.collector, args.code, args.state_dir, ca_file=args.ca_file)
 
 
 def _record(args: argparse.Namespace) -> int:
-    from agent.record import record_command
+    from listenpost.agent.record import record_command
     return record_command(args.out, config=args.config, source=args.source, adapter=args.adapter, seconds=args.seconds)
 
 
 def _check_config(args: argparse.Namespace) -> int:
     from dataclasses import asdict
 
-    from agent.config import load_agent_config
+    from listenpost.agent.config import load_agent_config
     cfg = load_agent_config(args.file)
     out = asdict(cfg)
     out["rules"] = [{**r, "prefix": r["prefix"].hex()} for r in out["rules"]]

@@ -16,10 +16,10 @@ from pathlib import Path
 
 import structlog
 
-from agent.clock import Clock, SystemClock
-from agent.errors import ConfigError, SourceUnavailable
-from agent.sources.replay import RecordingWriter
-from agent.types import Advert, Source
+from listenpost.agent.sources.replay import RecordingWriter
+from listenpost.core.clock import Clock, SystemClock
+from listenpost.core.errors import ConfigError, SourceUnavailable
+from listenpost.core.records import Advert, Source
 
 log = structlog.get_logger(__name__)
 
@@ -82,7 +82,7 @@ def record_command(out: Path, *, config: Path | None, source: str | None, adapte
     """Entry point of ``listenpost agent record``; returns the exit code."""
     kind, board, stall = "bleak", socket.gethostname().lower() or "board", 60.0
     if config is not None:
-        from agent.config import load_agent_config
+        from listenpost.agent.config import load_agent_config
         cfg = load_agent_config(config)
         kind, board, stall = cfg.source.kind, cfg.board, cfg.source.stall_seconds
         adapter = adapter or cfg.source.adapter
@@ -93,20 +93,20 @@ def record_command(out: Path, *, config: Path | None, source: str | None, adapte
         raise ConfigError(f"--seconds: must be > 0, got {seconds}")
     if out.exists():
         raise ConfigError(f"--out: {out} exists; refusing to overwrite a recording")
-    from agent.logs import configure
+    from listenpost.core.logs import configure
     configure("auto", "info", board=board)  # a command entry point: logs go to stderr, stdout stays clean
     clock = SystemClock()
     src: Source
     if kind == "bleak":
         try:
-            from agent.sources.bleak_scan import BleakSource
+            from listenpost.agent.sources.bleak_scan import BleakSource
         except ImportError as e:
             print(f"listenpost: cannot record: source 'bleak' needs the Python package {e.name!r}", file=sys.stderr)
             return 1
         # an interactive command: report a radio that cannot start at once instead of retrying for ever
         src = BleakSource(adapter, clock, stall, max_failures=1)
     else:
-        from agent.sources.hci import HciSource, dev_id_of
+        from listenpost.agent.sources.hci import HciSource, dev_id_of
         src = HciSource(dev_id_of(adapter), clock)
     try:
         result = asyncio.run(record(out, src, clock, board=board, seconds=seconds))

@@ -19,19 +19,23 @@ import json
 import os
 import statistics
 import sys
-import uuid
 from collections import Counter
 from collections.abc import Sequence
 from pathlib import Path
 from typing import IO, TYPE_CHECKING, Any
 
-from agent.calibrate import Calibrate
-from agent.clock import Clock, DerivedClock, SystemClock
-from agent.config import AgentConfig, DecodeRule, SourceConfig, load_agent_config
-from agent.errors import CaptureFormatError, ConfigError
-from agent.identity import BUILTIN_KINDS, load_tag_file
-from agent.pipeline import Pipeline, build_pipeline
-from agent.types import Reading
+from listenpost.agent.client.remote_config import ConfigCache
+from listenpost.agent.config import AgentConfig, SourceConfig, load_agent_config
+from listenpost.agent.pipeline import Pipeline, build_pipeline
+from listenpost.agent.pipeline.calibrate import Calibrate
+from listenpost.agent.service import run_agent
+from listenpost.agent.sources import open_replay, replay_board_clock
+from listenpost.core.clock import Clock, SystemClock
+from listenpost.core.errors import CaptureFormatError, ConfigError
+from listenpost.core.identity import BUILTIN_KINDS, load_tag_file
+from listenpost.core.logs import configure
+from listenpost.core.records import Reading
+from listenpost.core.settings import DecodeRule
 
 if TYPE_CHECKING:
     import aiohttp
@@ -52,7 +56,6 @@ def _tags_path(tags: Path | None, cfg: AgentConfig | None) -> Path:
 def _board_settings(cfg: AgentConfig | None, tags: Path | None,
                     offset_db: float | None) -> tuple[frozenset[str], tuple[DecodeRule, ...], float]:
     """Registered tags, decode rules and offset the board of ``cfg`` would use, as `AgentService` picks them."""
-    from agent.remote_config import ConfigCache
 
     cached = ConfigCache(cfg.state_dir).load() if cfg is not None and cfg.collector.url else None
     if cached is not None:
@@ -113,7 +116,6 @@ def _summary(pipeline: Pipeline, per_tag: Counter[str], elapsed_s: float, files:
 
 
 async def _dry_run(files: Sequence[Path], pipeline: Pipeline, speed: float, out: IO[str]) -> Counter[str]:
-    from agent.sources import open_replay
 
     clock = SystemClock()
     source = open_replay(list(files), clock, speed)
@@ -148,7 +150,6 @@ def replay_command(files: Sequence[Path], *, dry_run: bool, config: Path | None,
     Raises:
         ConfigError: missing tags, bad tag file, bad config or offset (the CLI exits 2).
     """
-    from agent.logs import configure
 
     cfg = load_agent_config(config) if config is not None else None
     if not dry_run:
@@ -180,40 +181,6 @@ def replay_command(files: Sequence[Path], *, dry_run: bool, config: Path | None,
     return 0
 
 
-async def replay_board_clock(files: Sequence[Path], speed: float, base: Clock) -> DerivedClock:
-    """
-    A board clock for uploading a replay, on which the recording ends as its replay ends.
-
-    Readings keep their recorded board times; the collector places them through the clock exchanges
-    the agent stamps with its clock. On the machine's own monotonic clock a recording would land
-    wherever that machine's uptime puts it (hours back, or in the future). This clock reads
-    ``c0 + elapsed`` with ``c0`` the earliest start at which no advert is ever ahead of it: at speed S
-    advert i is due ``P_i / S`` after the start, ``P_i`` being the board seconds the replay paces up
-    to it (the positive steps between adverts, as `ReplaySource` counts them), so
-    ``c0 = max_i(t_i − P_i / S)``; as fast as possible (S = 0), ``c0 = max_i t_i``.
-
-    Each replay is a boot of its own (a fresh boot id), so the collector fits it apart from the
-    board's live boots and from earlier replays of the same file.
-
-    Raises:
-        CaptureFormatError: a file is missing, of neither format, or has a bad line (``file:line``).
-    """
-    from agent.sources import open_replay
-
-    c0: float | None = None
-    paced = 0.0
-    prev: float | None = None
-    async for adv in open_replay(list(files), base, 0.0).adverts():
-        t = adv.t_mono_ns / 1e9
-        if prev is not None and t > prev:
-            paced += t - prev
-        prev = t
-        due = t - paced / speed if speed > 0 else t
-        c0 = due if c0 is None else max(c0, due)
-    start = c0 if c0 is not None else 0.0
-    return DerivedClock(base, boot_at=base.monotonic() - start, boot_id=str(uuid.uuid4()))
-
-
 async def upload_replay(cfg: AgentConfig, files: Sequence[Path], speed: float, base: Clock, *,
                         session: aiohttp.ClientSession | None = None) -> int:
     """
@@ -222,8 +189,6 @@ async def upload_replay(cfg: AgentConfig, files: Sequence[Path], speed: float, b
     Returns:
         The service's exit code: 0 once the spool drained, 1 if it did not in time.
     """
-    from agent.service import run_agent
-    from agent.sources import open_replay
 
     clock = await replay_board_clock(files, speed, base)
     # The service reports this kind in its logs and heartbeats: say what is really feeding it.
@@ -241,7 +206,6 @@ def _upload(files: Sequence[Path], cfg: AgentConfig | None, tags: Path | None, o
         cfg = cfg.replace(tags_file=str(tags.resolve()))
     if offset_db is not None:
         cfg = cfg.replace(offset_db=Calibrate(offset_db).offset_db)  # same range check as the config
-    from agent.logs import configure
 
     configure(cfg.log_format, cfg.log_level)  # type: ignore[arg-type]
     try:

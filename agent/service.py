@@ -30,23 +30,26 @@ from typing import Any
 import aiohttp
 import structlog
 
-from agent import __version__
-from agent.backoff import capped_exponential
-from agent.clock import Clock, SystemClock
-from agent.config import AgentConfig, DecodeRule, load_agent_config
-from agent.errors import SourceUnavailable
-from agent.heartbeat import Heartbeat
-from agent.identity import load_tag_file
-from agent.net import client_session
-from agent.notify import Notifier
-from agent.pipeline import Pipeline, build_pipeline
-from agent.remote_config import ConfigCache, ConfigFetcher, RemoteConfig
-from agent.spool import Spool
-from agent.tagrate import TagRates
-from agent.types import Source
-from agent.uplink import ExchangeLog, Uplink, UplinkState
+from listenpost import __version__
+from listenpost.agent.client.heartbeat import Heartbeat
+from listenpost.agent.client.net import client_session
+from listenpost.agent.client.remote_config import ConfigCache, ConfigFetcher, RemoteConfig
+from listenpost.agent.client.uplink import ExchangeLog, Uplink, UplinkState
+from listenpost.agent.config import AgentConfig, load_agent_config
+from listenpost.agent.pipeline import Pipeline, build_pipeline
+from listenpost.agent.pipeline.tagrate import TagRates
+from listenpost.agent.sources import open_source, replay_board_clock
+from listenpost.agent.spool import Spool
+from listenpost.core.backoff import capped_exponential
+from listenpost.core.clock import Clock, SystemClock
+from listenpost.core.errors import CaptureFormatError, ConfigError, SourceUnavailable
+from listenpost.core.identity import load_tag_file
+from listenpost.core.logs import configure
+from listenpost.core.notify import Notifier
+from listenpost.core.records import Source
+from listenpost.core.settings import DecodeRule
 
-log = structlog.get_logger("agent.service")
+log = structlog.get_logger("listenpost.agent.service")
 
 STATUS_EVERY_S = 10.0
 """How often the one-line systemd STATUS is refreshed, seconds."""
@@ -247,7 +250,6 @@ class AgentService:
         while True:
             try:
                 if self.source is None:
-                    from agent.sources import open_source
                     self.source = open_source(self.cfg.source, self.clock)
                 self.source_state = SourceState.RUNNING
                 self.source_error = None
@@ -421,17 +423,13 @@ async def run_agent(cfg: AgentConfig, *, clock: Clock, source: Source | None = N
 
 def run_command(config_path: str | Path) -> int:
     """``listenpost agent run --config FILE``: the process systemd starts."""
-    from agent.logs import configure
-
     cfg = load_agent_config(config_path)
     configure(cfg.log_format, cfg.log_level)  # type: ignore[arg-type]
 
     async def main() -> int:
         clock: Clock = SystemClock()
         if cfg.source.kind in ("replay", "btsnoop"):
-            # A recording keeps its own board times: run on a board clock that fits them (agent.runner).
-            from agent.errors import CaptureFormatError, ConfigError
-            from agent.runner import replay_board_clock
+            # A recording keeps its own board times: run on a board clock that fits them.
             try:
                 clock = await replay_board_clock([Path(f) for f in cfg.source.files], cfg.source.speed, clock)
             except CaptureFormatError as e:

@@ -10,7 +10,7 @@ import pkgutil
 import sys
 
 import bench
-from agent.logs import configure
+from listenpost.core.logs import configure
 
 
 def main(argv: list[str] | None = None) -> int:

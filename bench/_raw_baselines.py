@@ -19,8 +19,8 @@ from collections.abc import Sequence
 from itertools import repeat
 from pathlib import Path
 
-from collector.store import IngestBatch
-from collector.store.migrations import migrate_sqlite
+from listenpost.collector.store import IngestBatch
+from listenpost.collector.store.migrations import migrate_sqlite
 
 
 def _offset_dd(b: IngestBatch) -> int:
@@ -66,7 +66,7 @@ async def raw_pg_copy(url: str, schema: str, per_board: list[list[IngestBatch]],
     """Seconds to COPY every batch (one transaction each, synchronous_commit=on) and the readings table's bytes."""
     import asyncpg
 
-    from collector.store.postgres import PostgresStore
+    from listenpost.collector.store.postgres import PostgresStore
 
     migrated = await PostgresStore.open(url, schema=schema, max_size=1)  # the store's schema, migrated
     await migrated.close()

@@ -7,7 +7,7 @@ file and read twice:
 
 (a) a bare loop: ``json.loads`` per line and the least decode that can find a registered tag
     (string slices of the hex payload, one set lookup) — the floor any pipeline is measured against;
-(b) the agent: replay source → decode → filter → calibrate → sink (the spool when ``agent.spool``
+(b) the agent: replay source → decode → filter → calibrate → sink (the spool when ``listenpost.agent.spool``
     provides one, otherwise a list, and the output says which).
 
 Then a child process holding the 1,000 registered tags runs (b) and reports its peak RSS.
@@ -29,9 +29,9 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
-from agent.config import DecodeRule
-from agent.decode import EDDYSTONE_UUID
-from agent.types import Advert, Reading
+from listenpost.agent.pipeline.decode import EDDYSTONE_UUID
+from listenpost.core.records import Advert, Reading
+from listenpost.core.settings import DecodeRule
 
 N_ADVERTS = 300_000
 N_IBEACON, N_EDDYSTONE, N_CUSTOM = 700, 200, 100          # 1,000 registered tags
@@ -95,7 +95,7 @@ def synthetic_adverts(n: int = N_ADVERTS, seed: int = 1) -> Iterator[Advert]:
 
 
 def write_synthetic(path: Path, n: int = N_ADVERTS) -> None:
-    from agent.sources.replay import write_recording
+    from listenpost.agent.sources.replay import write_recording
     write_recording(path, synthetic_adverts(n), board="g0-a", boot="bench-boot", wall_at_start=1_800_000_000.0)
 
 
@@ -147,14 +147,14 @@ SEAL_EVERY = 5000
 
 
 async def _agent_run(path: Path, tmp: Path) -> tuple[dict[str, int], str]:
-    from agent.clock import SystemClock
-    from agent.pipeline import build_pipeline
-    from agent.sources import open_replay
+    from listenpost.agent.pipeline import build_pipeline
+    from listenpost.agent.sources import open_replay
+    from listenpost.core.clock import SystemClock
 
     clock = SystemClock()
     pipeline = build_pipeline(registered_tags(), [LPX], offset_db=2.5)
     try:
-        from agent.spool import Spool
+        from listenpost.agent.spool import Spool
     except ImportError:
         out: list[Reading] = []
         await pipeline.run(open_replay([path], clock, speed=0), out.append)
@@ -186,13 +186,13 @@ async def _agent_run(path: Path, tmp: Path) -> tuple[dict[str, int], str]:
     st = spool.stats()
     if st.degraded or st.dropped_readings:
         print(f"    WARNING: spool degraded={st.degraded}, dropped {st.dropped_readings} readings")
-    return pipeline.stats(), (f"agent.spool.Spool, {st.next_seq} sealed batches of <= {SEAL_EVERY}, "
+    return pipeline.stats(), (f"listenpost.agent.spool.Spool, {st.next_seq} sealed batches of <= {SEAL_EVERY}, "
                               f"{st.bytes / 1e6:.1f} MB, dropped {st.dropped_readings}")
 
 
 async def _source_only(path: Path) -> int:
-    from agent.clock import SystemClock
-    from agent.sources import open_replay
+    from listenpost.agent.sources import open_replay
+    from listenpost.core.clock import SystemClock
     n = 0
     async for _ in open_replay([path], SystemClock(), speed=0).adverts():
         n += 1
@@ -232,7 +232,7 @@ def _timed(fn: Any, *args: Any) -> tuple[float, Any]:
 
 
 def main() -> None:
-    from agent.logs import configure
+    from listenpost.core.logs import configure
     configure("console", level="warning")   # the spool's per-batch debug lines would swamp the figures
     with tempfile.TemporaryDirectory() as d:
         tmp = Path(d)

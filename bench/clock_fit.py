@@ -15,7 +15,7 @@ import time
 
 import numpy as np
 
-from collector.clock import ClockModel, ClockSettings, FitMethod
+from listenpost.collector.models.clock import ClockModel, ClockSettings, FitMethod
 
 BOOT_WALL = 1_800_000_123.456
 

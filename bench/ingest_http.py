@@ -14,7 +14,7 @@ its core: the figure is conservative).
       (``bench._raw_baselines.raw_pg_copy``);
   (e) bytes on the wire per reading (request bodies as sent).
 
-Targets (DESIGN.md "Scale"): (a) ≥ 50 % of (b) and ≥ 150,000 readings/s; (c) ≥ 50 % of (d); (e) ≤ 6.
+Targets (docs/design.md §7): (a) ≥ 50 % of (b) and ≥ 150,000 readings/s; (c) ≥ 50 % of (d); (e) ≤ 6.
 """
 
 from __future__ import annotations
@@ -30,12 +30,12 @@ from typing import Any
 
 import numpy as np
 
-from agent import wire
-from agent.clock import SystemClock
-from agent.types import Reading
 from bench._raw_baselines import raw_pg_copy, raw_sqlite
 from bench.ingest_store import make_tags
-from collector.store import IngestBatch
+from listenpost.collector.store import IngestBatch
+from listenpost.core import wire
+from listenpost.core.clock import SystemClock
+from listenpost.core.records import Reading
 
 WORKLOADS = (
     # (name, boards, batches per board, readings per batch)
@@ -92,9 +92,9 @@ async def http_ingest(store: Any, per_board: list[list[bytes]], names: list[str]
     import aiohttp
     from aiohttp import web
 
-    from collector.app import create_app
-    from collector.auth import ADMIN_TOKEN_FILE
-    from collector.config import parse_settings
+    from listenpost.collector.app import create_app
+    from listenpost.collector.config import parse_settings
+    from listenpost.collector.http.auth import ADMIN_TOKEN_FILE
 
     settings = parse_settings({}, "bench", state_dir=str(tmp / "state"))
     app = create_app(settings, clock=SystemClock(), store=store, run_monitor=False)
@@ -139,8 +139,8 @@ async def pg_part(bodies: list[list[bytes]], batches: list[list[IngestBatch]], n
                   tmp: Path) -> None:
     import asyncpg
 
-    from collector.store import StoreUnavailable
-    from collector.store.postgres import PostgresStore
+    from listenpost.collector.store import StoreUnavailable
+    from listenpost.collector.store.postgres import PostgresStore
     schema = f"lp_bench_{uuid.uuid4().hex[:10]}"
     try:
         store = await PostgresStore.open(PG_URL, schema=schema, max_size=10)
@@ -165,7 +165,7 @@ async def pg_part(bodies: list[list[bytes]], batches: list[list[IngestBatch]], n
 
 async def sqlite_part(bodies: list[list[bytes]], batches: list[list[IngestBatch]], names: list[str], n: int,
                       tmp: Path) -> None:
-    from collector.store import open_store
+    from listenpost.collector.store import open_store
 
     store = await open_store(f"sqlite:///{tmp / 'http.db'}")
     try:
@@ -182,7 +182,7 @@ async def sqlite_part(bodies: list[list[bytes]], batches: list[list[IngestBatch]
 def main() -> None:
     import structlog
 
-    from agent.logs import configure
+    from listenpost.core.logs import configure
     configure("json", level="warning")
     try:
         for title, n_boards, per_board_batches, per_batch in WORKLOADS:

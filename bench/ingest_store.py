@@ -30,9 +30,9 @@ from pathlib import Path
 
 import numpy as np
 
-from agent import wire
 from bench._raw_baselines import raw_pg_copy, raw_sqlite
-from collector.store import Board, Enrollment, IngestBatch
+from listenpost.collector.store import Board, Enrollment, IngestBatch
+from listenpost.core import wire
 
 N_BOARDS = 100
 BATCHES_PER_BOARD = 8
@@ -112,7 +112,7 @@ def _db_bytes(con: sqlite3.Connection, tables: tuple[str, ...] | None = None) ->
 
 
 async def sqlite_part(per_board: list[list[IngestBatch]], n: int, tmp: Path) -> None:
-    from collector.store.sqlite import SqliteStore
+    from listenpost.collector.store.sqlite import SqliteStore
     store = await SqliteStore.open(tmp / "store.db")
     t_store = await run_store(store, per_board)
     commits, batches = store.ingest_commits, store.ingest_batches
@@ -135,8 +135,8 @@ async def sqlite_part(per_board: list[list[IngestBatch]], n: int, tmp: Path) -> 
 async def pg_part(per_board: list[list[IngestBatch]], n: int) -> None:
     import asyncpg
 
-    from collector.store import StoreUnavailable
-    from collector.store.postgres import PostgresStore
+    from listenpost.collector.store import StoreUnavailable
+    from listenpost.collector.store.postgres import PostgresStore
     schema = f"lp_bench_{uuid.uuid4().hex[:10]}"
     try:
         store = await PostgresStore.open(PG_URL, schema=schema, max_size=10)

@@ -1,6 +1,6 @@
 """
 Bytes the spool writes to storage per hour, against a naive one-row-per-reading SQLite table, in the
-same run (RELIABILITY-NOTES §7.1 and §7.5: estimated 10-20 MB/h for 5 s batches vs 70+ MB/h naive,
+same run (docs/reliability.md §1 and §5: estimated 10-20 MB/h for 5 s batches vs 70+ MB/h naive,
 budget 20 MB/h).
 
 Both sides take 200 readings/s from ~300 tags for ``LISTENPOST_BENCH_SPOOL_MINUTES`` (default 60) of
@@ -21,10 +21,9 @@ import tempfile
 import time
 from pathlib import Path
 
-from agent.clock import VirtualClock
-from agent.spool import GZIP_LEVEL, Spool
-from agent.types import Reading
-from agent.wire import canonical_json
+from listenpost.agent.spool import GZIP_LEVEL, Spool
+from listenpost.core.clock import VirtualClock
+from listenpost.core.records import Reading
 
 RATE_PER_S = 200
 FLUSH_S = 5.0
@@ -56,7 +55,7 @@ async def spool_side(directory: Path, periods: int) -> tuple[int, int]:
         await clock.advance(FLUSH_S)
         b = await spool.seal(boot=clock.boot_id, offset_db=0.0)
         assert b is not None
-        payload += len(gzip.compress(canonical_json(b.content), compresslevel=GZIP_LEVEL, mtime=0))
+        payload += len(gzip.compress(b.content, compresslevel=GZIP_LEVEL, mtime=0))
         n += b.n_readings
         head = await spool.peek_oldest()          # the uplink delivers each batch before the next seal
         assert head is not None

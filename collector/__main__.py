@@ -1,4 +1,4 @@
-"""``python -m collector ...`` is ``listenpost collector ...``."""
+"""``python -m listenpost.collector ...`` is ``listenpost collector ...``."""
 
 import sys
 

@@ -19,7 +19,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from agent.errors import ConfigError, DecodeError, ListenpostError
+from listenpost.core.errors import ConfigError, DecodeError, ListenpostError
 
 if TYPE_CHECKING:
     import ssl
@@ -203,11 +203,11 @@ def _serve(args: argparse.Namespace) -> int:
     import structlog
     from aiohttp import web
 
-    from agent.clock import SystemClock
-    from agent.logs import configure
-    from agent.notify import Notifier
-    from collector.app import create_app
-    from collector.config import load_settings
+    from listenpost.collector.app import create_app
+    from listenpost.collector.config import load_settings
+    from listenpost.core.clock import SystemClock
+    from listenpost.core.logs import configure
+    from listenpost.core.notify import Notifier
 
     settings = load_settings(args.config, state_dir=str(args.state_dir), db_url=args.db, host=args.host, port=args.port)
     configure(args.log_format)
@@ -217,7 +217,7 @@ def _serve(args: argparse.Namespace) -> int:
 
     async def notify_ctx(app: web.Application) -> Any:
         url = f"{'https' if ssl_ctx else 'http'}://{settings.host}:{settings.port}"
-        structlog.get_logger("collector.cli").info("collector_listening", url=url, health_page=url + "/",
+        structlog.get_logger("listenpost.collector.cli").info("collector_listening", url=url, health_page=url + "/",
                                                    public_url=settings.public_url)
         notifier.ready(f"listening on {url}")
         task = asyncio.create_task(_watchdog(notifier)) if notifier.watchdog_interval else None
@@ -241,7 +241,7 @@ async def _watchdog(notifier: Any) -> None:
 
 def admin_token(args: argparse.Namespace) -> str:
     """The admin token: ``--state-dir`` first, then ``$LISTENPOST_ADMIN_TOKEN``, then the default state dir."""
-    from collector.auth import ADMIN_TOKEN_ENV, read_admin_token
+    from listenpost.collector.http.auth import ADMIN_TOKEN_ENV, read_admin_token
 
     if args.state_dir is None and os.environ.get(ADMIN_TOKEN_ENV):
         return os.environ[ADMIN_TOKEN_ENV].strip()
@@ -359,7 +359,7 @@ def parse_time(text: str, what: str) -> float:
 def _write_bundle(args: argparse.Namespace, answer: dict[str, Any]) -> Path | None:
     if not getattr(args, "bundle", None):
         return None
-    from collector.provision import write_bundle
+    from listenpost.collector.provision import write_bundle
     extra = {"package": args.package} if getattr(args, "package", None) else {}
     write_bundle(args.bundle, board=answer["name"], room=answer["room"], floor=answer.get("floor"),
                  code=answer["code"], collector_url=_board_url(args, answer), expires_at=answer["code_expires_at"],
@@ -409,7 +409,7 @@ def _print_code(args: argparse.Namespace, answer: dict[str, Any], verb: str) -> 
 def _check_bundle_possible(args: argparse.Namespace) -> None:
     """Fail before the collector is asked for a code, so a bundle problem never leaves a half-done board."""
     if getattr(args, "bundle", None):
-        from collector.provision import agent_unit, package_spec
+        from listenpost.collector.provision import agent_unit, package_spec
         agent_unit()
         package_spec(getattr(args, "package", None))
         if args.bundle.exists() and not args.bundle.is_dir():
@@ -474,7 +474,7 @@ def _board_retire(args: argparse.Namespace) -> int:
 
 def read_tag_file(path: Path) -> list[str]:
     """Canonical IDs from a tag file (one per line, ``#`` comments) or a CSV with an ``id`` column."""
-    from agent.identity import load_tag_file, parse_tag_id
+    from listenpost.core.identity import load_tag_file, parse_tag_id
 
     try:
         text = path.read_text(encoding="utf-8")
@@ -534,7 +534,7 @@ def _tags_retire(args: argparse.Namespace) -> int:
 # ------------------------------------------------------------------ status, export, events
 
 def _age(s: float | None) -> str | None:
-    from collector.web.pages import fmt_age
+    from listenpost.collector.status import fmt_age
     return None if s is None else fmt_age(s)
 
 

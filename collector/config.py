@@ -1,5 +1,5 @@
 """
-``collector.yaml`` → `CollectorSettings`, validated at load with agent.config's `Section` reader.
+``collector.yaml`` → `CollectorSettings`, validated at load with the shared `listenpost.core.settings.Section` reader.
 
 Every error names the file and the key path, e.g. ``collector.yaml: limits.max_body_bytes: must be > 0, got -1``.
 Every key is optional; an absent file means all defaults::
@@ -9,7 +9,7 @@ Every key is optional; an absent file means all defaults::
     public_url: http://10.20.0.2:8470          # what boards are told to use (provisioning bundles)
     webhook: {url: https://ops.example/hook, timeout_seconds: 5, attempts: 4}
     retention: {days: 90, chunk: 10000}
-    liveness: {...}                            # any field of collector.liveness.LivenessSettings
+    liveness: {...}                            # any field of listenpost.collector.models.liveness.LivenessSettings
     enrollment: {code_lifetime_hours: 72}
     limits: {max_body_bytes: 4194304, max_decompressed_bytes: 33554432, max_readings: 200000,
              max_inflight_batches: 128, busy_retry_after_seconds: 2}   # past the 128th batch at once: 429
@@ -28,8 +28,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from agent.config import DecodeRule, Section, load_yaml, non_negative, parse_rules, positive
-from agent.errors import ConfigError
+from listenpost.core.errors import ConfigError
+from listenpost.core.settings import DecodeRule, Section, load_yaml, non_negative, parse_rules, positive
 
 DEFAULT_PORT = 8470
 
@@ -47,7 +47,7 @@ class Limits:
     max_inflight_batches: int = 128
     """Batch requests read and stored at once by this process; one more is answered 429 with
     ``Retry-After`` instead of queueing, so memory stays below about this × ``max_decompressed_bytes``.
-    The default lets every board of a venue-sized fleet (about 100, DESIGN.md "Scale") have its one batch
+    The default lets every board of a venue-sized fleet (about 100, docs/design.md §7) have its one batch
     in flight, which group commit needs to batch well."""
     busy_retry_after_seconds: int = 2
     """``Retry-After`` of that 429, seconds (boards wait at least this, plus their own jitter)."""
@@ -85,7 +85,7 @@ class CollectorSettings:
     retention_chunk: int = 10_000
     """Rows deleted per statement, so retention never holds a long lock."""
     liveness: dict[str, Any] = field(default_factory=dict)
-    """Overrides of `collector.liveness.LivenessSettings` fields."""
+    """Overrides of `listenpost.collector.models.liveness.LivenessSettings` fields."""
     code_lifetime_seconds: float = 72 * 3600.0
     """How long an enrollment code stays valid."""
     limits: Limits = field(default_factory=Limits)
@@ -107,7 +107,7 @@ class CollectorSettings:
 
 
 def rule_to_json(rule: DecodeRule) -> dict[str, Any]:
-    """A decode rule in the shape `agent.config.parse_rule` reads back (prefix as hex)."""
+    """A decode rule in the shape `listenpost.core.settings.parse_rule` reads back (prefix as hex)."""
     out: dict[str, Any] = {"name": rule.name}
     if rule.company_id is not None:
         out["company_id"] = rule.company_id
@@ -121,7 +121,7 @@ def _liveness_overrides(s: Section) -> dict[str, Any]:
     if not s.data:
         return {}
     # The field list belongs to collector/liveness.py; reading it here keeps one definition.
-    from collector.liveness import LivenessSettings
+    from listenpost.collector.models.liveness import LivenessSettings
 
     fields = {f.name: f for f in dataclasses.fields(LivenessSettings)}
     out: dict[str, Any] = {}
@@ -129,8 +129,9 @@ def _liveness_overrides(s: Section) -> dict[str, Any]:
         if key not in fields:
             raise s.fail(str(key), f"unknown key (known: {', '.join(sorted(fields))})")
         default = getattr(LivenessSettings(), key)
-        kind: type | tuple[type, ...] = (int, float) if isinstance(default, int | float) and not isinstance(default, bool) else type(default)
-        out[key] = s.get(key, kind, check=non_negative if kind == (int, float) else None)
+        # An integer setting stays an integer (Section.get widens ints only where a float is wanted).
+        kind = type(default)
+        out[key] = s.get(key, kind, default, check=non_negative if kind in (int, float) else None)
     s.done()
     try:
         LivenessSettings(**out)

@@ -37,13 +37,16 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import structlog
+from aiohttp import web
 
-from agent.clock import Clock, with_timeout
-from collector.config import CollectorSettings
-from collector.ingest import clock_model
-from collector.store import Event, Store, StoreError
+from listenpost.collector.config import CollectorSettings
+from listenpost.collector.ingest import clock_model
+from listenpost.collector.state import Runtime
+from listenpost.collector.status import note_total, stat
+from listenpost.collector.store import Event, Store, StoreError
+from listenpost.core.clock import Clock, with_timeout
 
-log = structlog.get_logger("collector.monitor")
+log = structlog.get_logger("listenpost.collector.monitor")
 
 LOSS_GRACE_SECONDS = 60.0
 """A seq hole must persist this long before it is a loss (one batch in flight may be just arriving)."""
@@ -70,13 +73,13 @@ class RoundReport:
 class Monitor:
     """Liveness, loss detection, retention and the webhook for one collector process."""
 
-    def __init__(self, store: Store, *, clock: Clock, settings: CollectorSettings, runtime: Any) -> None:
+    def __init__(self, store: Store, *, clock: Clock, settings: CollectorSettings, runtime: Runtime) -> None:
         self.store = store
         self.clock = clock
         self.settings = settings
         self.runtime = runtime
         self.tracker: Any = None
-        """collector.liveness tracker, made at the first round this process holds the lock."""
+        """listenpost.collector.models.liveness tracker, made at the first round this process holds the lock."""
         self._seeded = False
         self._hole_first_seen: dict[tuple[str, str, int, int], float] = {}
         self._reported_holes: set[tuple[str, str, int, int]] = set()
@@ -157,8 +160,7 @@ class Monitor:
         return report
 
     async def _sample_rates(self) -> None:
-        """Every board's stored-readings total now, for the readings-per-second figure (web/pages.py)."""
-        from collector.web.pages import note_total
+        """Every board's stored-readings total now, for the readings-per-second figure (collector/status.py)."""
 
         now = self.clock.time()
         for c in await self.store.board_counts():
@@ -168,7 +170,7 @@ class Monitor:
         """Start the tracker from the stored states, so a restart does not announce every board again."""
         if self._seeded:
             return
-        from collector.liveness import BoardState, LivenessSettings, LivenessTracker
+        from listenpost.collector.models.liveness import BoardState, LivenessSettings, LivenessTracker
 
         await self._follow_states()
         known = {b: BoardState(s["state"]) for b, s in self.runtime.states.items()
@@ -202,8 +204,7 @@ class Monitor:
                 return
 
     async def _liveness(self, report: RoundReport) -> None:
-        from collector.liveness import BoardInputs, HeartbeatSample
-        from collector.web.pages import stat
+        from listenpost.collector.models.liveness import BoardInputs, HeartbeatSample
 
         now = self.clock.time()
         boards = await self.store.list_boards()
@@ -370,3 +371,6 @@ class Monitor:
 
 def _value(state: Any) -> Any:
     return getattr(state, "value", state)
+
+
+MONITOR = web.AppKey("monitor", Monitor)

@@ -18,17 +18,18 @@ from __future__ import annotations
 import os
 import re
 import secrets
+from importlib import resources
 from pathlib import Path
 from typing import Any
 
 import yaml
 
-from agent.errors import ConfigError
+from listenpost.core.errors import ConfigError
 
 AGENT_PREFIX = "/opt/listenpost"
 AGENT_STATE_DIR = "/var/lib/listenpost/agent"
 UNIT_NAME = "listenpost-agent.service"
-UNIT_SOURCE = Path(__file__).resolve().parents[1] / "systemd" / UNIT_NAME
+UNIT_SOURCE = Path(str(resources.files("listenpost.systemd") / UNIT_NAME))  # package data of the wheel
 
 
 class _Literal(str):

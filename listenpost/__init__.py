@@ -1,1 +1,3 @@
-"""listenpost command line, venue simulator and demo."""
+"""listenpost: run a fleet of BLE receivers (edge agent, collector, simulator, demo)."""
+
+__version__ = "0.2.0"

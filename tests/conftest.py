@@ -8,7 +8,7 @@ import shutil
 import pytest
 import structlog
 
-from agent.clock import VirtualClock
+from listenpost.core.clock import VirtualClock
 
 PG_URL = os.environ.get("LISTENPOST_TEST_PG", "postgresql://postgres@127.0.0.1:5432/test")
 

@@ -1,5 +1,5 @@
 """
-The unit files pass ``systemd-analyze verify`` (systemd 252 here; REFERENCES.md §9).
+The unit files pass ``systemd-analyze verify`` (systemd 252 here; docs/references.md §9).
 
 ``verify`` exits 0 on warnings such as an unknown key, so stderr must be empty too; and it fails on an
 ``ExecStart=`` binary missing on this machine, so the copies point it at this Python.

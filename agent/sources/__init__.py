@@ -1,11 +1,11 @@
 """
-Where advertisements come from. Every source yields `agent.types.Advert` through ``adverts()``.
+Where advertisements come from. Every source yields `listenpost.core.records.Advert` through ``adverts()``.
 
 =========  ===========================================  =========================================
 kind       module                                       what it is
 =========  ===========================================  =========================================
-bleak      `agent.sources.bleak_scan.BleakSource`       live scanning through BlueZ over D-Bus
-hci        `agent.sources.hci.HciSource`                raw HCI socket (Linux), every report
+bleak      `listenpost.agent.sources.bleak_scan.BleakSource`       live scanning through BlueZ over D-Bus
+hci        `listenpost.agent.sources.hci.HciSource`                raw HCI socket (Linux), every report
 replay     `open_replay` → `ReplaySource`               recorded logs (.jsonl, .jsonl.gz)
 btsnoop    `open_replay` → `ReplaySource`               btsnoop captures (``btmon -w``)
 =========  ===========================================  =========================================
@@ -18,6 +18,7 @@ from __future__ import annotations
 import asyncio
 import enum
 import math
+import uuid
 from collections import deque
 from collections.abc import AsyncIterator, Iterator, Sequence
 from dataclasses import dataclass
@@ -26,14 +27,14 @@ from typing import TYPE_CHECKING
 
 import structlog
 
-from agent.clock import Clock
-from agent.errors import CaptureFormatError, SourceReason, SourceUnavailable
-from agent.types import Advert, Source
+from listenpost.core.clock import Clock, DerivedClock
+from listenpost.core.errors import CaptureFormatError, SourceReason, SourceUnavailable
+from listenpost.core.records import Advert, Source
 
 if TYPE_CHECKING:
-    from agent.config import SourceConfig
+    from listenpost.agent.config import SourceConfig
 
-__all__ = ["Source", "FileKind", "detect_kind", "open_replay", "open_source", "ReplaySource", "RateMeter"]
+__all__ = ["Source", "FileKind", "detect_kind", "open_replay", "open_source", "ReplaySource", "RateMeter", "replay_board_clock"]
 
 log = structlog.get_logger(__name__)
 
@@ -44,7 +45,7 @@ class RateMeter:
     """
     Events per second per key over a window that slides in whole buckets.
 
-    BlueZ cannot promise one report per advertisement (BLE-NOTES §2), so the agent measures what
+    BlueZ cannot promise one report per advertisement (docs/radio.md §2), so the agent measures what
     it actually gets: per address at the source, per registered tag after the pipeline. The window
     is cut into ``buckets`` equal buckets; `rates` counts the last ``buckets`` *complete* ones and
     divides by their span, so it lags the clock by less than one bucket. With ``buckets=1`` that is
@@ -126,7 +127,7 @@ def detect_kind(path: str | Path) -> FileKind:
     """
     import gzip
 
-    from agent.sources.btsnoop import is_btsnoop
+    from listenpost.agent.sources.btsnoop import is_btsnoop
     p = Path(path)
     try:
         with open(p, "rb") as f:
@@ -179,8 +180,8 @@ class ReplaySource:
         """Recording headers (or btsnoop stats) of the files opened so far, in order."""
 
     def _stream(self) -> Iterator[Advert]:
-        from agent.sources.btsnoop import BtsnoopReader
-        from agent.sources.replay import read_recording
+        from listenpost.agent.sources.btsnoop import BtsnoopReader
+        from listenpost.agent.sources.replay import read_recording
         for f in self.files:
             if f.kind is FileKind.RECORDING:
                 header, it = read_recording(f.path)
@@ -252,12 +253,12 @@ def open_source(cfg: SourceConfig, clock: Clock) -> Source:
     """
     if cfg.kind == "bleak":
         try:
-            from agent.sources.bleak_scan import BleakSource
+            from listenpost.agent.sources.bleak_scan import BleakSource
         except ImportError as e:
             raise _missing("bleak", e) from e
         return BleakSource(cfg.adapter, clock, cfg.stall_seconds)
     if cfg.kind == "hci":
-        from agent.sources.hci import HciSource, dev_id_of
+        from listenpost.agent.sources.hci import HciSource, dev_id_of
         return HciSource(dev_id_of(cfg.adapter), clock)
     if cfg.kind in ("replay", "btsnoop"):
         src = open_replay(list(cfg.files), clock, cfg.speed)
@@ -267,3 +268,35 @@ def open_source(cfg: SourceConfig, clock: Clock) -> Source:
                     raise CaptureFormatError(f"{f.path}: source.kind is 'btsnoop' but this is a recording")
         return src
     raise ValueError(f"unknown source kind {cfg.kind!r}")
+
+
+async def replay_board_clock(files: Sequence[Path], speed: float, base: Clock) -> DerivedClock:
+    """
+    A board clock for uploading a replay, on which the recording ends as its replay ends.
+
+    Readings keep their recorded board times; the collector places them through the clock exchanges
+    the agent stamps with its clock. On the machine's own monotonic clock a recording would land
+    wherever that machine's uptime puts it (hours back, or in the future). This clock reads
+    ``c0 + elapsed`` with ``c0`` the earliest start at which no advert is ever ahead of it: at speed S
+    advert i is due ``P_i / S`` after the start, ``P_i`` being the board seconds the replay paces up
+    to it (the positive steps between adverts, as `ReplaySource` counts them), so
+    ``c0 = max_i(t_i − P_i / S)``; as fast as possible (S = 0), ``c0 = max_i t_i``.
+
+    Each replay is a boot of its own (a fresh boot id), so the collector fits it apart from the
+    board's live boots and from earlier replays of the same file.
+
+    Raises:
+        CaptureFormatError: a file is missing, of neither format, or has a bad line (``file:line``).
+    """
+    c0: float | None = None
+    paced = 0.0
+    prev: float | None = None
+    async for adv in open_replay(list(files), base, 0.0).adverts():
+        t = adv.t_mono_ns / 1e9
+        if prev is not None and t > prev:
+            paced += t - prev
+        prev = t
+        due = t - paced / speed if speed > 0 else t
+        c0 = due if c0 is None else max(c0, due)
+    start = c0 if c0 is not None else 0.0
+    return DerivedClock(base, boot_at=base.monotonic() - start, boot_id=str(uuid.uuid4()))

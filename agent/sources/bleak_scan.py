@@ -1,7 +1,7 @@
 """
 Live scanning through bleak (BlueZ over D-Bus on the boards), supervised.
 
-bleak delivers callbacks, not packets, and fails silently (BLE-NOTES §2, §5): when bluetoothd or
+bleak delivers callbacks, not packets, and fails silently (docs/radio.md §2, §5): when bluetoothd or
 the bus goes away, callbacks just stop. So this source
 
 * builds one ``BleakScanner`` per attempt with ``bluez={"adapter": …, "filters": {"RSSI": -127,
@@ -37,11 +37,11 @@ from bleak.exc import (
     BleakError,
 )
 
-from agent.backoff import half_jitter
-from agent.clock import Clock, with_timeout
-from agent.errors import SourceReason, SourceUnavailable
-from agent.sources import RateMeter
-from agent.types import Advert
+from listenpost.agent.sources import RateMeter
+from listenpost.core.backoff import half_jitter
+from listenpost.core.clock import Clock, with_timeout
+from listenpost.core.errors import SourceReason, SourceUnavailable
+from listenpost.core.records import Advert
 
 log = structlog.get_logger(__name__)
 
@@ -80,7 +80,7 @@ _DBUS_REASONS = {
 
 
 def classify(e: BaseException, adapter: str | None = None) -> SourceUnavailable:
-    """Map what ``BleakScanner.start()`` raised to a `SourceUnavailable` with a reason (BLE-NOTES §3)."""
+    """Map what ``BleakScanner.start()`` raised to a `SourceUnavailable` with a reason (docs/radio.md §3)."""
     if isinstance(e, SourceUnavailable):
         return e
     if isinstance(e, BleakBluetoothNotAvailableError):

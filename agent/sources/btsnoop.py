@@ -30,15 +30,15 @@ from typing import IO, NamedTuple
 
 import structlog
 
-from agent.errors import CaptureFormatError, DecodeError
-from agent.hci_events import (
+from listenpost.agent.sources.hci_events import (
     H4_EVENT,
     ExtendedReassembler,
     advert_to_event,
     parse_event_packet,
     report_to_advert,
 )
-from agent.types import Advert
+from listenpost.core.errors import CaptureFormatError, DecodeError
+from listenpost.core.records import Advert
 
 log = structlog.get_logger(__name__)
 
@@ -52,7 +52,7 @@ MONITOR_EVENT = 3
 
 EPOCH_DELTA_US = 0x00DCDDB30F2F8000
 """btsnoop timestamp minus Unix µs. A convention of the format (719 540 days, not the calendar's
-719 528), as BlueZ and Android use it: never derive it with date arithmetic (REFERENCES.md §3)."""
+719 528), as BlueZ and Android use it: never derive it with date arithmetic (docs/references.md §3)."""
 
 _FILE_HDR = struct.Struct(">8sII")
 _REC_HDR = struct.Struct(">IIIIq")

@@ -2,14 +2,14 @@
 Raw HCI socket source (Linux): every LE advertising report the controller delivers.
 
 Sniff-only: the socket is bound to the adapter with a filter for event packets (Command
-Complete/Status and LE Meta, BLE-NOTES §6) and reads the copies of events that every bound raw
+Complete/Status and LE Meta, docs/radio.md §6) and reads the copies of events that every bound raw
 socket receives, as hcidump does. Scanning itself is left to BlueZ (run a bleak source or
 ``bluetoothctl scan on`` beside it), so this source never fights bluetoothd over scan commands
 and needs no write access to the controller. Reading needs CAP_NET_RAW for the LE Meta event
 (the kernel masks unprivileged filters with its security filter).
 
 Each ``recv`` returns one H4 packet (indicator 0x04, code, length, params), decoded by the same
-`agent.hci_events.parse_h4` that reads btsnoop captures.
+`listenpost.agent.sources.hci_events.parse_h4` that reads btsnoop captures.
 """
 
 from __future__ import annotations
@@ -23,10 +23,10 @@ from collections.abc import AsyncIterator
 
 import structlog
 
-from agent.clock import Clock
-from agent.errors import DecodeError, SourceReason, SourceUnavailable
-from agent.hci_events import ExtendedReassembler, parse_h4, report_to_advert
-from agent.types import Advert
+from listenpost.agent.sources.hci_events import ExtendedReassembler, parse_h4, report_to_advert
+from listenpost.core.clock import Clock
+from listenpost.core.errors import DecodeError, SourceReason, SourceUnavailable
+from listenpost.core.records import Advert
 
 log = structlog.get_logger(__name__)
 

@@ -26,8 +26,8 @@ from pathlib import Path
 from types import TracebackType
 from typing import IO, Any
 
-from agent.errors import CaptureFormatError
-from agent.types import BASE_UUID_SUFFIX, Advert, uuid16_to_128
+from listenpost.core.errors import CaptureFormatError
+from listenpost.core.records import BASE_UUID_SUFFIX, Advert, uuid16_to_128
 
 FORMAT = "listenpost-recording"
 VERSION = 1

@@ -2,12 +2,12 @@
 The agent's durable spool: sealed batches in one SQLite file (WAL), oldest first.
 
 Readings wait in memory at most ``flush_seconds``; then they are *sealed*: encoded with
-`agent.wire.encode_content`, gzip'd, given the next ``seq`` of the spool's epoch and committed
+`listenpost.core.wire.encode_content`, gzip'd, given the next ``seq`` of the spool's epoch and committed
 with ``synchronous=FULL`` (one fsync per batch). One row per batch, never one per reading, to
 spare SD cards. Everything else (ack deletes, dead letters) commits with ``synchronous=NORMAL``
 and becomes durable with the next seal's fsync.
 
-Keys and loss accounting (see RELIABILITY-NOTES.md §7.1):
+Keys and loss accounting (see docs/reliability.md §1):
 
 - A batch is keyed by (board, epoch, seq). The epoch is a random 64-bit id (16 hex) made with the
   spool file; ``seq`` is assigned inside the seal transaction and never re-cut.
@@ -34,8 +34,8 @@ when dropped. The collector counts as lost only covered seqs it never receives.
 
 from __future__ import annotations
 
-from agent.spool.queue import Spool
-from agent.spool.values import (
+from listenpost.agent.spool.queue import Spool
+from listenpost.agent.spool.values import (
     DEAD_LETTER_KEEP,
     GZIP_LEVEL,
     ROW_OVERHEAD_BYTES,

@@ -6,7 +6,6 @@ and recovery (set a damaged file aside, carry over what reads back), and every w
 from __future__ import annotations
 
 import gzip
-import hashlib
 import json
 import os
 import sqlite3
@@ -16,7 +15,7 @@ from typing import Any, TypeVar
 
 import structlog
 
-from agent.spool.sqlfile import (
+from listenpost.agent.spool.sqlfile import (
     SCHEMA_SQL,
     SQLITE_HEADER,
     CorruptSpool,
@@ -27,7 +26,7 @@ from agent.spool.sqlfile import (
     remove_path,
     transaction,
 )
-from agent.spool.values import (
+from listenpost.agent.spool.values import (
     BODY_ERRORS,
     BUSY_TIMEOUT_S,
     COUNTERS,
@@ -41,15 +40,15 @@ from agent.spool.values import (
     Oldest,
     SealedBatch,
     Snapshot,
-    compress,
     envelopes,
     is_epoch,
     new_epoch,
+    seal_content,
 )
-from agent.types import Reading
-from agent.wire import encode_content
+from listenpost.core.records import Reading
+from listenpost.core.wire import digest, encode_content
 
-log = structlog.get_logger("agent.spool")
+log = structlog.get_logger("listenpost.agent.spool")
 
 T = TypeVar("T")
 
@@ -337,16 +336,15 @@ class Disk:
     def seal(self, chunks: Sequence[Sequence[Reading]], boot: str, offset_db: float, acks: set[tuple[str, int]],
              extra_dropped_readings: int, mono: float, wall: float) -> list[SealedBatch]:
         """Seal each chunk as one batch, in one FULL commit; apply pending acks first."""
-        contents = [encode_content(c, boot=boot, offset_db=offset_db) for c in chunks]
-        bodies = [compress(c) for c in contents]
+        sealed = [seal_content(encode_content(c, boot=boot, offset_db=offset_db)) for c in chunks]
 
         def op(conn: sqlite3.Connection) -> list[SealedBatch]:
             out = []
             with transaction(conn, durable=True):
                 self._delete_acked(conn, acks)
-                need = sum(len(b) + ROW_OVERHEAD_BYTES for b, _ in bodies)
+                need = sum(len(body) + ROW_OVERHEAD_BYTES for _, body, _ in sealed)
                 self._make_room(conn, need, boot, offset_db, mono, wall)
-                for content, (body, dig), chunk in zip(contents, bodies, chunks, strict=True):
+                for (content, body, dig), chunk in zip(sealed, chunks, strict=True):
                     seq = self._next_seq(conn)  # assigned inside the seal transaction, never re-cut
                     self._insert(conn, seq, dig, body, len(chunk), None, boot, mono, wall)
                     out.append(SealedBatch(self.epoch, seq, dig, content, len(chunk), mono))
@@ -379,10 +377,9 @@ class Disk:
                                    " FROM batches WHERE id=?", (found,)).fetchone()
                 epoch, seq, dig, body, n, sealed_mono, nbytes = row
                 try:
-                    raw = gzip.decompress(body)
-                    if hashlib.sha256(raw).hexdigest() != dig:
+                    content = gzip.decompress(body)
+                    if digest(content) != dig:
                         raise ValueError("digest mismatch")
-                    content = json.loads(raw)
                 except BODY_ERRORS as e:
                     self._replace_bad_row(conn, found, epoch, seq, n, nbytes, str(e), offset_db, mono, wall)
                     continue
@@ -475,8 +472,7 @@ class Disk:
                     mono: float, wall: float, offset_db: float) -> None:
         """Insert a gap record into a spool being built (``_create_fresh``)."""
         gap = self._gap_object(iv, reason)
-        content = encode_content([], boot=self.boot, offset_db=offset_db, gap=gap)
-        body, dig = compress(content)
+        _, body, dig = seal_content(encode_content([], boot=self.boot, offset_db=offset_db, gap=gap))
         conn.execute("INSERT INTO batches (epoch, seq, digest, body, nbytes, n_readings, gap, boot, sealed_at_mono,"
                      " sealed_at_wall) VALUES (?,?,?,?,?,0,?,?,?,?)",
                      (epoch, seq, dig, body, len(body) + ROW_OVERHEAD_BYTES, json.dumps(gap), self.boot, mono, wall))
@@ -484,8 +480,7 @@ class Disk:
     def _seal_gap(self, conn: sqlite3.Connection, iv: Interval, reason: GapReason, offset_db: float,
                   mono: float, wall: float, status: int | None = None) -> None:
         gap = self._gap_object(iv, reason, status)
-        content = encode_content([], boot=self.boot, offset_db=offset_db, gap=gap)
-        body, dig = compress(content)
+        _, body, dig = seal_content(encode_content([], boot=self.boot, offset_db=offset_db, gap=gap))
         self._insert(conn, self._next_seq(conn), dig, body, 0, json.dumps(gap), self.boot, mono, wall)
 
     def _delete_acked(self, conn: sqlite3.Connection, acks: set[tuple[str, int]]) -> None:

@@ -1,6 +1,6 @@
 """
 The event-loop side of the spool: the in-memory intake, the sealer, and the queue API the uplink
-and the service call. Every disk operation runs on one worker thread (`agent.spool.disk.Disk`).
+and the service call. Every disk operation runs on one worker thread (`listenpost.agent.spool.disk.Disk`).
 """
 
 from __future__ import annotations
@@ -14,14 +14,14 @@ from typing import Any, TypeVar
 
 import structlog
 
-from agent.clock import Clock
-from agent.errors import SpoolError
-from agent.spool.disk import Disk
-from agent.spool.sqlfile import Degraded
-from agent.spool.values import RETRY_MAX_SECONDS, SealedBatch, SpoolStats
-from agent.types import Reading
+from listenpost.agent.spool.disk import Disk
+from listenpost.agent.spool.sqlfile import Degraded
+from listenpost.agent.spool.values import RETRY_MAX_SECONDS, SealedBatch, SpoolStats
+from listenpost.core.clock import Clock
+from listenpost.core.errors import SpoolError
+from listenpost.core.records import Reading
 
-log = structlog.get_logger("agent.spool")
+log = structlog.get_logger("listenpost.agent.spool")
 
 T = TypeVar("T")
 

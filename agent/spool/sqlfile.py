@@ -15,7 +15,7 @@ from collections.abc import Iterable, Iterator
 from pathlib import Path
 from typing import Any
 
-from agent.spool.values import (
+from listenpost.agent.spool.values import (
     BODY_ERRORS,
     BUSY_TIMEOUT_S,
     COUNTERS,

@@ -7,14 +7,13 @@ from __future__ import annotations
 
 import enum
 import gzip
-import hashlib
 import secrets
 import zlib
 from collections.abc import Iterable
 from dataclasses import dataclass
 from typing import Any
 
-from agent.wire import canonical_json
+from listenpost.core.wire import canonical_json, digest
 
 SCHEMA_VERSION = 1
 ROW_OVERHEAD_BYTES = 160
@@ -60,9 +59,10 @@ class SealedBatch:
     seq: int
     """Sequence number within the epoch, from 0."""
     digest: str
-    """``agent.wire.digest(content)``: sha256 hex of the canonical content."""
-    content: dict[str, Any]
-    """``agent.wire.encode_content`` output (gap records included)."""
+    """sha256 hex of ``content``."""
+    content: bytes
+    """The canonical JSON of ``listenpost.core.wire.encode_content`` (gap records included), made once at
+    seal time: the very bytes that were digested and that the uplink sends."""
     n_readings: int
     """Readings in the batch (0 for a gap record)."""
     sealed_at_mono: float
@@ -157,10 +157,11 @@ def merge_intervals(intervals: Iterable[Interval]) -> list[Interval]:
     return out
 
 
-def compress(content: dict[str, Any]) -> tuple[bytes, str]:
+def seal_content(content: dict[str, Any]) -> tuple[bytes, bytes, str]:
+    """Content → (its canonical bytes, their gzip for the spool file, their digest)."""
     raw = canonical_json(content)
     # mtime=0: the same content always gives the same bytes.
-    return gzip.compress(raw, compresslevel=GZIP_LEVEL, mtime=0), hashlib.sha256(raw).hexdigest()
+    return raw, gzip.compress(raw, compresslevel=GZIP_LEVEL, mtime=0), digest(raw)
 
 
 def is_epoch(s: str) -> bool:

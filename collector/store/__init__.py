@@ -285,9 +285,9 @@ class Store(Protocol):
 async def open_store(url: str, **options: Any) -> Store:
     """Open (and migrate) the store named by ``url``."""
     if url.startswith(("postgresql://", "postgres://")):
-        from collector.store.postgres import PostgresStore
+        from listenpost.collector.store.postgres import PostgresStore
         return await PostgresStore.open(url, **options)
-    from collector.store.sqlite import SqliteStore
+    from listenpost.collector.store.sqlite import SqliteStore
     path = url.removeprefix("sqlite:///") if url.startswith("sqlite:///") else url.removeprefix("sqlite://")
     return await SqliteStore.open(path, **options)
 

@@ -15,7 +15,7 @@ from typing import Any
 
 import numpy as np
 
-from collector.store import BadBatch, Board, Calibration, ClockSample, IngestBatch
+from listenpost.collector.store import BadBatch, Board, Calibration, ClockSample, IngestBatch
 
 BOARD_COLS = "name, room, floor, created_at, enrolled_at, fingerprint, offset_db, retired_at"
 """The `Board` columns, in the order `board_from_row` reads them."""

@@ -29,7 +29,7 @@ import asyncpg
 import numpy as np
 import structlog
 
-from collector.store import (
+from listenpost.collector.store import (
     BadBatch,
     Board,
     BoardCounts,
@@ -48,7 +48,7 @@ from collector.store import (
     StoreUnavailable,
     TagTelemetry,
 )
-from collector.store.common import (
+from listenpost.collector.store.common import (
     BOARD_COLS,
     LATEST_TELEMETRY_SQL,
     SEQ_HOLES_SQL,
@@ -63,9 +63,9 @@ from collector.store.common import (
     json_text,
     reading_tag_ids,
 )
-from collector.store.migrations import migrate_postgres
+from listenpost.collector.store.migrations import migrate_postgres
 
-log = structlog.get_logger("collector.store.postgres")
+log = structlog.get_logger("listenpost.collector.store.postgres")
 
 # Errors that say "the database cannot do it now" (retry later), not "this request is wrong".
 _UNAVAILABLE: tuple[type[BaseException], ...] = (

@@ -33,7 +33,7 @@ from typing import Any, TypeVar
 import numpy as np
 import structlog
 
-from collector.store import (
+from listenpost.collector.store import (
     BadBatch,
     Board,
     BoardCounts,
@@ -53,7 +53,7 @@ from collector.store import (
     StoreUnavailable,
     TagTelemetry,
 )
-from collector.store.common import (
+from listenpost.collector.store.common import (
     BOARD_COLS,
     LATEST_TELEMETRY_SQL,
     SEQ_HOLES_SQL,
@@ -68,9 +68,9 @@ from collector.store.common import (
     json_text,
     reading_tag_ids,
 )
-from collector.store.migrations import migrate_sqlite
+from listenpost.collector.store.migrations import migrate_sqlite
 
-log = structlog.get_logger("collector.store.sqlite")
+log = structlog.get_logger("listenpost.collector.store.sqlite")
 T = TypeVar("T")
 
 # Result codes that mean "the storage cannot do it now", not "this request is wrong".

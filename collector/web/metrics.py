@@ -17,12 +17,12 @@ from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metri
 from prometheus_client.exposition import CONTENT_TYPE_PLAIN_0_0_4
 from prometheus_client.registry import Collector
 
-from collector.app import RUNTIME
-from collector.web.pages import STATE_LABELS, status_doc
+from listenpost.collector.state import RUNTIME
+from listenpost.collector.status import STATE_LABELS, status_doc
 
 
 class SnapshotCollector(Collector):
-    """Metric families from one status snapshot (``collector.web.pages.status_doc``) and the batch counters."""
+    """Metric families from one status snapshot (``listenpost.collector.web.pages.status_doc``) and the batch counters."""
 
     def __init__(self, doc: dict[str, Any], counters: Any, inflight: int = 0) -> None:
         self.doc = doc

@@ -9,10 +9,3 @@ The venue simulator: a scenario file in, per-board recordings, a btsnoop capture
 
 ``listenpost sim brackenford --minutes 10 --out DIR`` runs the shipped demo venue.
 """
-
-from __future__ import annotations
-
-from listenpost.sim.generate import Result, Simulation, generate, simulate
-from listenpost.sim.scenario import Scenario, load_scenario, parse_scenario
-
-__all__ = ["Result", "Scenario", "Simulation", "generate", "load_scenario", "parse_scenario", "simulate"]

@@ -1,4 +1,4 @@
-"""``listenpost sim SCENARIO --minutes N --out DIR [--seed S]``: argument parsing only."""
+"""``listenpost sim <scenario> --minutes N --out DIR [--seed S]``: argument parsing only."""
 
 from __future__ import annotations
 
@@ -7,7 +7,7 @@ import json
 import sys
 from pathlib import Path
 
-from agent.errors import ConfigError
+from listenpost.core.errors import ConfigError
 
 
 def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None:  # type: ignore[type-arg]
@@ -15,7 +15,7 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
         name, help=help_text,
         description="Simulate a venue from a scenario file and write one gzip'd recording per board, a btsnoop "
                     "capture of one board, truth.json (true rooms, board offsets, clocks, faults) and tags.txt.")
-    p.add_argument("scenario", metavar="SCENARIO",
+    p.add_argument("scenario", metavar="scenario",
                    help="scenario YAML file, or the name of a shipped scenario (brackenford)")
     p.add_argument("--minutes", required=True, type=float, metavar="N", help="length of the recording, minutes")
     p.add_argument("--out", required=True, type=Path, metavar="DIR", help="output directory (created if missing)")
@@ -26,7 +26,7 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
 
 
 def _run(args: argparse.Namespace) -> int:
-    from agent.logs import configure
+    from listenpost.core.logs import configure
     from listenpost.sim.generate import generate
     from listenpost.sim.scenario import load_scenario
 

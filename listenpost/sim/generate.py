@@ -36,7 +36,7 @@ from typing import Any
 import numpy as np
 import structlog
 
-from agent.types import Advert, uuid16_to_128
+from listenpost.core.records import Advert, uuid16_to_128
 from listenpost.sim.radio import mean_rssi_dbm, sample_reports
 from listenpost.sim.scenario import FixedNoise, NoiseKind, Placed, Scenario
 from listenpost.sim.venue import Venue
@@ -350,7 +350,7 @@ def _gzip_deterministic(src: Path, dst: Path) -> None:
 
 def write_recordings(sim: Simulation, out_dir: Path) -> dict[str, int]:
     """Write ``<board>.jsonl.gz`` for every board with the project's recording writer; returns line counts."""
-    from agent.sources.replay import write_recording
+    from listenpost.agent.sources.replay import write_recording
 
     counts = {}
     for i, b in enumerate(sim.boards):
@@ -498,7 +498,7 @@ def write_btsnoop(sim: Simulation, board: str, path: Path) -> Path:
     Write one board's adverts as a gzip'd btsnoop capture (datalink 2001, as ``btmon -w`` writes) with
     the project's capture writer. Record times are the board's wall clock, Unix µs.
     """
-    from agent.sources.btsnoop import DATALINK_MONITOR, BtsnoopWriter
+    from listenpost.agent.sources.btsnoop import DATALINK_MONITOR, BtsnoopWriter
 
     i = [b.name for b in sim.boards].index(board)
     b = sim.boards[i]

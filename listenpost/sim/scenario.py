@@ -4,7 +4,7 @@ Scenario YAML → validated frozen dataclasses.
 A scenario describes one invented venue: floors, rooms (axis-aligned rectangles on a per-floor plan)
 and their doors, receiver boards with their hidden hardware quirks and faults, the tag population,
 noise devices, the radio model and the visitor flow. Every error names the file and the key path,
-through `agent.config.Section`, e.g. ``brackenford.yaml: boards[3].room: unknown room 'G9'``.
+through `listenpost.core.settings.Section`, e.g. ``brackenford.yaml: boards[3].room: unknown room 'G9'``.
 
 All lengths are metres, times seconds, powers dBm, gains and losses dB.
 """
@@ -19,8 +19,8 @@ from importlib import resources
 from pathlib import Path
 from typing import Any
 
-from agent.config import Section, load_yaml, non_negative, positive
-from agent.errors import ConfigError
+from listenpost.core.errors import ConfigError
+from listenpost.core.settings import Section, load_yaml, non_negative, positive
 
 _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,31}$")
 _BOARD = re.compile(r"^[a-z0-9][a-z0-9._-]{0,62}$")
@@ -503,7 +503,7 @@ def parse_scenario(data: Any, origin: str = "scenario") -> Scenario:
 
 def builtin_path(name: str) -> Path:
     """Path of a scenario shipped with the package (``brackenford``)."""
-    return Path(str(resources.files("listenpost") / "scenarios" / f"{name}.yaml"))
+    return Path(str(resources.files("listenpost.scenarios") / f"{name}.yaml"))
 
 
 def load_scenario(ref: str | Path) -> Scenario:

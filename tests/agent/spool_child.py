@@ -20,16 +20,17 @@ RLIMIT_FSIZE after the first seal, then lift the cap again, and exit when all is
 from __future__ import annotations
 
 import asyncio
+import json
 import os
 import resource
 import signal
 import sys
 from pathlib import Path
 
-from agent.clock import SystemClock
-from agent.logs import configure
-from agent.spool import Spool
-from agent.types import Reading
+from listenpost.agent.spool import Spool
+from listenpost.core.clock import SystemClock
+from listenpost.core.logs import configure
+from listenpost.core.records import Reading
 
 RATE_PER_S = 5000
 """Readings added per second (bursts of 50 every 10 ms)."""
@@ -82,7 +83,7 @@ async def main(path: Path, first_id: int, flush: float, max_bytes: int) -> None:
                 head = await spool.peek_oldest()
                 if head is not None:
                     await spool.ack(head.epoch, head.seq)
-                    ids = [int(t.split(":")[1], 16) for t in head.content["readings"]["tags"]]
+                    ids = [int(t.split(":")[1], 16) for t in json.loads(head.content)["readings"]["tags"]]
                     say("k", head.epoch, head.seq, min(ids, default=-1), max(ids, default=-1), len(ids))
                     if crash == "after_ack":
                         os._exit(0)

@@ -7,8 +7,8 @@ from bluetooth_data_tools import parse_advertisement_data_bytes
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from agent.adstruct import AdFields, ad_structure, build_ad, parse_ad, uuid_to_le
-from agent.types import uuid16_to_128
+from listenpost.agent.sources.adstruct import AdFields, ad_structure, build_ad, parse_ad, uuid_to_le
+from listenpost.core.records import uuid16_to_128
 
 U180F = uuid16_to_128(0x180F)
 UFEAA = uuid16_to_128(0xFEAA)
@@ -26,7 +26,7 @@ def _ours(data: bytes) -> tuple:
 
 
 def test_scapy_vector_from_references():
-    """The REFERENCES.md §1 vector built with scapy 2.8 parses to the fields scapy put in."""
+    """The docs/references.md §1 vector built with scapy 2.8 parses to the fields scapy put in."""
     from scapy.layers.bluetooth import (
         EIR_CompleteList16BitServiceUUIDs,
         EIR_CompleteLocalName,
@@ -45,13 +45,13 @@ def test_scapy_vector_from_references():
              EIR_Hdr() / EIR_Manufacturer_Specific_Data(company_identifier=0xFFFF) / Raw(b"\x01\x02\x03"),
              EIR_Hdr() / EIR_CompleteLocalName(local_name=b"tag-01")]
     ad = b"".join(bytes(e) for e in elems)
-    # hex from REFERENCES.md §1 [RUN with scapy 2.8.0]
+    # hex from docs/references.md §1 [RUN with scapy 2.8.0]
     assert ad.hex() == "02010605030f18aafe020afc04160f186406ffffff01020307097461672d3031"
     assert parse_ad(ad) == AdFields({0xFFFF: b"\x01\x02\x03"}, {U180F: b"d"}, (U180F, UFEAA), -4, "tag-01", 0x06, 0)
     # our writer produces the same bytes as scapy's builder
     assert build_ad(flags=6, service_uuids=[U180F, UFEAA], tx_power_dbm=-4, service_data={U180F: b"d"},
                     manufacturer_data={0xFFFF: b"\x01\x02\x03"}, local_name="tag-01") == ad
-    # and bluetooth-data-tools 1.29 agrees on its five fields (REFERENCES.md §1)
+    # and bluetooth-data-tools 1.29 agrees on its five fields (docs/references.md §1)
     assert _ours(ad) == _bdt(ad)
 
 
@@ -135,7 +135,7 @@ def ad_bytes(draw) -> bytes:
 @settings(max_examples=400, deadline=None)
 @given(ad_bytes())
 def test_agrees_with_bluetooth_data_tools_on_structured_input(data):
-    """On generated AD runs, our five common fields equal bluetooth-data-tools 1.29's (REFERENCES.md §1)."""
+    """On generated AD runs, our five common fields equal bluetooth-data-tools 1.29's (docs/references.md §1)."""
     assert _ours(data) == _bdt(data)
 
 

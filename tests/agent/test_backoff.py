@@ -6,7 +6,7 @@ import random
 
 import pytest
 
-from agent.backoff import capped_exponential, full_jitter, half_jitter
+from listenpost.core.backoff import capped_exponential, full_jitter, half_jitter
 
 
 @pytest.mark.parametrize(("attempt", "expected"), [(0, 1.0), (1, 2.0), (4, 16.0), (5, 32.0), (6, 60.0), (500, 60.0)])

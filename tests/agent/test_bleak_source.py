@@ -16,9 +16,9 @@ from bleak.exc import (
     BleakError,
 )
 
-from agent.clock import VirtualClock, settle
-from agent.errors import SourceReason, SourceUnavailable
-from agent.sources.bleak_scan import BleakSource, ScanState, classify
+from listenpost.agent.sources.bleak_scan import BleakSource, ScanState, classify
+from listenpost.core.clock import VirtualClock, settle
+from listenpost.core.errors import SourceReason, SourceUnavailable
 
 
 class FakeScanner(BaseBleakScanner):
@@ -80,7 +80,7 @@ async def running(src: BleakSource):
 
 
 async def test_adverts_flow_with_the_recommended_filter(clock, fake):
-    """Callbacks become Adverts stamped on the clock; BlueZ gets DuplicateData=True and RSSI -127 (BLE-NOTES §2)."""
+    """Callbacks become Adverts stamped on the clock; BlueZ gets DuplicateData=True and RSSI -127 (docs/radio.md §2)."""
     src = BleakSource("hci0", clock, 30, backend=fake)
     async with running(src) as (got, _):
         (sc,) = fake.instances
@@ -141,7 +141,7 @@ async def test_stall_rebuilds_the_scanner(clock, fake):
     (BleakError("passive scanning mode requires bluez or_patterns"), SourceReason.OTHER),
 ])
 def test_classify(error, reason):
-    """What start() raises (BLE-NOTES §3 table) maps to a SourceReason, keeping the original text."""
+    """What start() raises (docs/radio.md §3 table) maps to a SourceReason, keeping the original text."""
     e = classify(error)
     assert e.reason is reason
     assert str(error.args[0] if not isinstance(error, OSError) else error.strerror) in str(e)

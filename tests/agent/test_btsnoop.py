@@ -13,9 +13,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from agent.errors import CaptureFormatError, DecodeError
-from agent.hci_events import advert_to_event
-from agent.sources.btsnoop import (
+from listenpost.agent.sources.btsnoop import (
     DATALINK_H4,
     DATALINK_MONITOR,
     EPOCH_DELTA_US,
@@ -23,11 +21,13 @@ from agent.sources.btsnoop import (
     BtsnoopWriter,
     read_btsnoop,
 )
-from agent.types import Advert
+from listenpost.agent.sources.hci_events import advert_to_event
+from listenpost.core.errors import CaptureFormatError, DecodeError
+from listenpost.core.records import Advert
 from tests.conftest import require_tool
 
-T0 = 1_700_000_000_123_456  # Unix µs of the REFERENCES.md §3 vector
-EVENT = bytes.fromhex("3e13020103015544332211c00702010603097431c4")  # REFERENCES.md §2 legacy vector, no H4 byte
+T0 = 1_700_000_000_123_456  # Unix µs of the docs/references.md §3 vector
+EVENT = bytes.fromhex("3e13020103015544332211c00702010603097431c4")  # docs/references.md §2 legacy vector, no H4 byte
 
 
 def _advert(i: int, rssi: int = -60) -> Advert:
@@ -35,12 +35,12 @@ def _advert(i: int, rssi: int = -60) -> Advert:
 
 
 def test_epoch_constant_is_bluez_form():
-    """BlueZ writes (tv_sec - 946684800)·10⁶ + usec + 0x00E03AB44A676000; same offset (REFERENCES.md §3, BlueZ btsnoop.c)."""
+    """BlueZ writes (tv_sec - 946684800)·10⁶ + usec + 0x00E03AB44A676000; same offset (docs/references.md §3, BlueZ btsnoop.c)."""
     assert 0x00E03AB44A676000 - 946_684_800 * 10**6 == EPOCH_DELTA_US
 
 
 def test_writer_matches_reference_vector(tmp_path):
-    """Datalink 1002, one received event at 1700000000.123456: header and record bytes as in REFERENCES.md §3."""
+    """Datalink 1002, one received event at 1700000000.123456: header and record bytes as in docs/references.md §3."""
     p = tmp_path / "h4.btsnoop"
     with BtsnoopWriter(p, DATALINK_H4) as w:
         w.write_event(T0, EVENT)
@@ -57,7 +57,7 @@ def test_btsnoop_parser_reads_our_files(tmp_path, datalink):
     with BtsnoopWriter(p, datalink) as w:
         for i in range(3):
             w.write_advert(T0 + i * 250_000, _advert(i), index=2)
-    # reference_time just after the capture: the parser's epoch is 378 days off otherwise (REFERENCES.md §3)
+    # reference_time just after the capture: the parser's epoch is 378 days off otherwise (docs/references.md §3)
     recs = [r for r in btsnoop_parser.iter_records(str(p), reference_time=dt.datetime(2023, 11, 15, tzinfo=dt.UTC))
             if r["packet_type"] == 4]
     assert [r["payload"] for r in recs] == [advert_to_event(_advert(i)) for i in range(3)]
@@ -76,7 +76,7 @@ def test_btsnoop_parser_reads_our_files(tmp_path, datalink):
 
 @pytest.mark.parametrize("datalink", [DATALINK_H4, DATALINK_MONITOR])
 def test_btmon_reads_our_files(tmp_path, datalink):
-    """BlueZ btmon 5.66 `-r` decodes our capture: time, address and RSSI (golden check, REFERENCES.md §3)."""
+    """BlueZ btmon 5.66 `-r` decodes our capture: time, address and RSSI (golden check, docs/references.md §3)."""
     btmon = require_tool("btmon")
     p = tmp_path / "c.btsnoop"
     with BtsnoopWriter(p, datalink) as w:

@@ -6,7 +6,7 @@ import asyncio
 
 import pytest
 
-from agent.clock import DerivedClock, ScaledClock, SystemClock, VirtualClock, with_timeout
+from listenpost.core.clock import DerivedClock, ScaledClock, SystemClock, VirtualClock, with_timeout
 
 
 async def test_virtual_clock_wakes_sleepers_in_deadline_order(clock: VirtualClock) -> None:

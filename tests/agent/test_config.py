@@ -6,8 +6,8 @@ from pathlib import Path
 
 import pytest
 
-from agent.config import load_agent_config, parse_agent_config
-from agent.errors import ConfigError
+from listenpost.agent.config import load_agent_config, parse_agent_config
+from listenpost.core.errors import ConfigError
 
 GOOD = """
 board: g0-a

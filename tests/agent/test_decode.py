@@ -19,10 +19,10 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scapy.layers.bluetooth import EIR_Hdr, EIR_Manufacturer_Specific_Data
 
-from agent.config import DecodeRule
-from agent.decode import EDDYSTONE_UUID, Decoder, parse_tlm
-from agent.filter import TagFilter
-from agent.types import Advert, Reading, Telemetry, uuid16_to_128
+from listenpost.agent.pipeline.decode import EDDYSTONE_UUID, Decoder, parse_tlm
+from listenpost.agent.pipeline.filter import TagFilter
+from listenpost.core.records import Advert, Reading, Telemetry, uuid16_to_128
+from listenpost.core.settings import DecodeRule
 
 ADDR = "C4:7A:10:00:2B:91"
 
@@ -34,7 +34,7 @@ def advert_from_ad(ad: bytes, address: str = ADDR, rssi: int = -67, t_ns: int = 
 
 
 def ad_of(frame) -> bytes:
-    """AD bytes of a scapy beacon helper: each structure built on its own and joined (REFERENCES.md §1)."""
+    """AD bytes of a scapy beacon helper: each structure built on its own and joined (docs/references.md §1)."""
     return b"".join(bytes(x) for x in frame.build_eir())
 
 
@@ -42,11 +42,11 @@ def counters(d: Decoder) -> tuple[int, int, int, int, int]:
     return d.decoded, d.unregistered, d.decode_errors, d.no_identity, d.tlm_unmatched
 
 
-# --------------------------------------------------------------- published vectors (REFERENCES.md §4)
+# --------------------------------------------------------------- published vectors (docs/references.md §4)
 
 class TestPublishedVectors:
     def test_ibeacon_vector(self):
-        """REFERENCES.md §4 iBeacon vector (UUID e2c56db5-…, major 1, minor 258, power -59; [RUN] with scapy)."""
+        """docs/references.md §4 iBeacon vector (UUID e2c56db5-…, major 1, minor 258, power -59; [RUN] with scapy)."""
         ad = bytes.fromhex("0201061aff4c000215e2c56db5dffb48d2b060d0f5a71096e000010102c5")
         r = Decoder()(advert_from_ad(ad))
         assert r is not None
@@ -56,7 +56,7 @@ class TestPublishedVectors:
         assert f"ibeacon:{d.uuid}:{d.major}:{d.minor}" == r.tag
 
     def test_altbeacon_vector(self):
-        """AltBeacon Protocol Specification v1.0 (github AltBeacon/spec) layout; REFERENCES.md §4 vector, ID 01..14."""
+        """AltBeacon Protocol Specification v1.0 (github AltBeacon/spec) layout; docs/references.md §4 vector, ID 01..14."""
         ad = bytes.fromhex("1bff1801beac0102030405060708090a0b0c0d0e0f1011121314c200")
         r = Decoder()(advert_from_ad(ad))
         assert r is not None
@@ -65,7 +65,7 @@ class TestPublishedVectors:
         assert a.id1.bytes + a.id2.to_bytes(2, "big") + a.id3.to_bytes(2, "big") == bytes.fromhex(r.tag.split(":")[1])
 
     def test_eddystone_uid_vector(self):
-        """google/eddystone eddystone-uid/README.md layout; REFERENCES.md §4 vector (ranging -20)."""
+        """google/eddystone eddystone-uid/README.md layout; docs/references.md §4 vector (ranging -20)."""
         ad = bytes.fromhex("1716aafe00ec8b0ca750095477cb3e770000000000a10000")
         r = Decoder()(advert_from_ad(ad))
         assert r is not None
@@ -80,7 +80,7 @@ class TestPublishedVectors:
         assert r is not None and "eddystone:8b0ca750095477cb3e77:0000000000a1" == r.tag
 
     @pytest.mark.parametrize(("hex_ad", "expected"), [
-        # google/eddystone eddystone-tlm/tlm-plain.md field layout; REFERENCES.md §4 vectors [RUN].
+        # google/eddystone eddystone-tlm/tlm-plain.md field layout; docs/references.md §4 vectors [RUN].
         ("1116aafe20000bb817c0000004d200008ca0", Telemetry(3000, 23.75, 1234, 3600.0)),
         ("1116aafe20000bb8fa80000004d200008ca0", Telemetry(3000, -5.5, 1234, 3600.0)),
         # 0x8000 = temperature not supported, VBATT 0 = not supported (tlm-plain.md).
@@ -95,7 +95,7 @@ class TestPublishedVectors:
         assert (uid.tag, 6_000_000_000, -71, expected) == (r.tag, r.t_mono_ns, r.rssi_dbm, r.telemetry)
 
     def test_scapy_tlm_temperature_is_unsigned(self):
-        """scapy 2.8's Eddystone_TLM_Unencrypted reads TEMP as unsigned 8.8 (REFERENCES.md §4): -5.5 °C shows as 250.5.
+        """scapy 2.8's Eddystone_TLM_Unencrypted reads TEMP as unsigned 8.8 (docs/references.md §4): -5.5 °C shows as 250.5.
 
         The spec says signed 8.8, so we must differ from scapy by exactly 256 here.
         """
@@ -155,7 +155,7 @@ class TestAgainstScapy:
     @given(u16, st.integers(-128 * 256, 128 * 256 - 1), st.integers(0, 2**32 - 1), st.integers(0, 2**32 - 1))
     def test_eddystone_tlm(self, batt, temp_raw, adv, sec):
         """scapy builds TLM frames from raw 8.8 values; temperature compared with scapy's unsigned reading
-        corrected by 256 (scapy bug, REFERENCES.md §4)."""
+        corrected by 256 (scapy bug, docs/references.md §4)."""
         temp_unsigned = (temp_raw & 0xFFFF) / 256
         frame = s_eddy.Eddystone_Frame() / s_eddy.Eddystone_TLM(version=0) / s_eddy.Eddystone_TLM_Unencrypted(
             batt_mv=batt, temperature=temp_unsigned, adv_cnt=adv, sec_cnt=sec)
@@ -224,7 +224,7 @@ class TestNeverRaises:
 
 class TestBehaviour:
     def test_configured_company_rule(self):
-        """SCENARIO.md custom firmware: company 0xFFFF, payload 4C 50 + 4-byte tag number → lpx:<8 hex>."""
+        """docs/demo-venue.md custom firmware: company 0xFFFF, payload 4C 50 + 4-byte tag number → lpx:<8 hex>."""
         dec = Decoder(RULES)
         r = dec(Advert(1, ADDR, 1, -60, None, {0xFFFF: bytes.fromhex("4c5000000007ee")}))
         assert r is not None and "lpx:00000007" == r.tag
@@ -360,7 +360,7 @@ def test_make_reading_builds_the_same_frozen_reading():
     """The fast constructor gives an object equal to, hashing like and as immutable as Reading(...)."""
     import dataclasses
 
-    from agent.decode import make_reading
+    from listenpost.agent.pipeline.decode import make_reading
     tel = Telemetry(3000, -5.5, 1, 0.1)
     fast, slow = make_reading("lpx:00000007", 5, -61.5, tel), Reading("lpx:00000007", 5, -61.5, tel)
     assert (slow, hash(slow), repr(slow)) == (fast, hash(fast), repr(fast))

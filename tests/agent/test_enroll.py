@@ -12,12 +12,12 @@ import aiohttp
 import pytest
 from aiohttp import web
 
-from agent.clock import VirtualClock
-from agent.config import load_agent_config
-from agent.enroll import EXIT_CODES, EnrollStatus, enroll, enroll_command
-from agent.errors import ConfigError
-from agent.remote_config import ConfigCache
+from listenpost.agent.client.enroll import EXIT_CODES, EnrollStatus, enroll, enroll_command
+from listenpost.agent.client.remote_config import ConfigCache
+from listenpost.agent.config import load_agent_config
 from listenpost.cli import main as listenpost_main
+from listenpost.core.clock import VirtualClock
+from listenpost.core.errors import ConfigError
 
 TOKEN = "9f3c2b1a0d8e7f6a5b4c3d2e1f0a9b8c"
 CONFIG = {"board": "g3-b", "tags": ["ibeacon:4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10:9:3"],

@@ -7,10 +7,10 @@ import math
 import pytest
 import structlog
 
-from agent.calibrate import Calibrate
-from agent.errors import ConfigError, DecodeError
-from agent.filter import TagFilter
-from agent.types import Reading, Telemetry
+from listenpost.agent.pipeline.calibrate import Calibrate
+from listenpost.agent.pipeline.filter import TagFilter
+from listenpost.core.errors import ConfigError, DecodeError
+from listenpost.core.records import Reading, Telemetry
 
 IB = "ibeacon:4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10"
 

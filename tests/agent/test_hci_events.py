@@ -1,4 +1,4 @@
-"""HCI LE advertising report decoding, checked against scapy 2.8 (builder and decoder) and REFERENCES.md §2 vectors."""
+"""HCI LE advertising report decoding, checked against scapy 2.8 (builder and decoder) and docs/references.md §2 vectors."""
 
 from __future__ import annotations
 
@@ -16,9 +16,8 @@ from scapy.layers.bluetooth import (
     HCI_LE_Meta_Extended_Advertising_Reports,
 )
 
-from agent.adstruct import build_ad
-from agent.errors import DecodeError
-from agent.hci_events import (
+from listenpost.agent.sources.adstruct import build_ad
+from listenpost.agent.sources.hci_events import (
     DataStatus,
     ExtendedReassembler,
     HciReport,
@@ -30,15 +29,16 @@ from agent.hci_events import (
     parse_h4,
     report_to_advert,
 )
-from agent.types import Advert
+from listenpost.core.errors import DecodeError
+from listenpost.core.records import Advert
 
-# REFERENCES.md §2 test vectors [RUN: decoded identically by scapy 2.8.0 and BlueZ btmon 5.66]
+# docs/references.md §2 test vectors [RUN: decoded identically by scapy 2.8.0 and BlueZ btmon 5.66]
 LEGACY = bytes.fromhex("043e13020103015544332211c00702010603097431c4")
 EXTENDED = bytes.fromhex("043e210d011000015544332211c00100ff7fb80000000000000000000702010603097431")
 
 
 def test_legacy_vector():
-    """ADV_NONCONN_IND, random C0:11:22:33:44:55, flags 06 + name "t1", RSSI -60 (REFERENCES.md §2)."""
+    """ADV_NONCONN_IND, random C0:11:22:33:44:55, flags 06 + name "t1", RSSI -60 (docs/references.md §2)."""
     (r,) = parse_h4(LEGACY)
     assert r == HciReport(3, 1, "C0:11:22:33:44:55", -60, bytes.fromhex("02010603097431"))
 
@@ -51,7 +51,7 @@ def test_legacy_rssi_127_means_unavailable():
 
 
 def test_extended_vector():
-    """Extended report with the legacy bit, TX power n/a, RSSI -72 (REFERENCES.md §2)."""
+    """Extended report with the legacy bit, TX power n/a, RSSI -72 (docs/references.md §2)."""
     (r,) = parse_h4(EXTENDED)
     assert (r.event_type, r.address_type, r.address, r.rssi, r.tx_power, r.data_status, r.sid, r.extended) == (
         0x0010, 1, "C0:11:22:33:44:55", -72, None, DataStatus.COMPLETE, 0xFF, True)
@@ -239,7 +239,7 @@ async def test_hci_source_reads_h4_packets_from_a_socket(clock):
     import asyncio
     import socket
 
-    from agent.sources.hci import HciSource
+    from listenpost.agent.sources.hci import HciSource
     ours, theirs = socket.socketpair(socket.AF_UNIX, socket.SOCK_SEQPACKET)
     for pkt in (LEGACY, b"\x04\x0e\x04\x01\x0c\x20\x00", LEGACY[:-3], LEGACY[:-1] + b"\x7f", EXTENDED):
         theirs.send(pkt)
@@ -256,8 +256,8 @@ async def test_hci_source_without_af_bluetooth(clock, monkeypatch):
     """A Python without AF_BLUETOOTH gives SourceUnavailable(NO_BLUETOOTH) with a message saying so."""
     import socket
 
-    from agent.errors import SourceReason, SourceUnavailable
-    from agent.sources.hci import HciSource, dev_id_of
+    from listenpost.agent.sources.hci import HciSource, dev_id_of
+    from listenpost.core.errors import SourceReason, SourceUnavailable
     monkeypatch.delattr(socket, "AF_BLUETOOTH", raising=False)
     with pytest.raises(SourceUnavailable, match="no AF_BLUETOOTH") as e:
         await _drain(HciSource(0, clock))
@@ -268,9 +268,9 @@ async def test_hci_source_without_af_bluetooth(clock, monkeypatch):
 
 
 def test_hci_filter_layout():
-    """hci_ufilter: event packets; Command Complete, Command Status, LE Meta (BLE-NOTES §6, kernel hci_sock.h)."""
+    """hci_ufilter: event packets; Command Complete, Command Status, LE Meta (docs/radio.md §6, kernel hci_sock.h)."""
     import struct
 
-    from agent.sources.hci import HCI_FILTER_EVENTS
+    from listenpost.agent.sources.hci import HCI_FILTER_EVENTS
     type_mask, ev0, ev1, opcode = struct.unpack("<IIIH", HCI_FILTER_EVENTS)
     assert type_mask == 1 << 4 and ev0 == (1 << 0x0E) | (1 << 0x0F) and ev1 == 1 << (0x3E - 32) and opcode == 0

@@ -10,8 +10,8 @@ import aiohttp
 import pytest
 from aiohttp import web
 
-from agent import __version__
-from agent.boardinfo import (
+from listenpost import __version__
+from listenpost.agent.boardinfo import (
     bluetooth_adapters,
     board_info,
     cpu_temperature_c,
@@ -19,10 +19,10 @@ from agent.boardinfo import (
     fingerprint,
     uptime_s,
 )
-from agent.clock import VirtualClock
-from agent.heartbeat import BeatResult, Heartbeat
-from agent.remote_config import ConfigCache, ConfigFetcher
-from agent.uplink import ExchangeLog
+from listenpost.agent.client.heartbeat import BeatResult, Heartbeat
+from listenpost.agent.client.remote_config import ConfigCache, ConfigFetcher
+from listenpost.agent.client.uplink import ExchangeLog
+from listenpost.core.clock import VirtualClock
 
 TOKEN = "tok-g0-a-0123456789abcdef"
 CONFIG = {"board": "g0-a", "tags": ["mac:C4:7A:10:00:2B:91"], "rules": [], "offset_db": 1.5,

@@ -8,8 +8,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from agent.errors import ConfigError, DecodeError
-from agent.identity import (
+from listenpost.core.errors import ConfigError, DecodeError
+from listenpost.core.identity import (
     altbeacon_id,
     eddystone_id,
     ibeacon_id,

@@ -12,8 +12,8 @@ import asyncio
 import re
 import statistics
 
-from agent.clock import SystemClock
-from agent.sources.bleak_scan import BleakSource
+from listenpost.agent.sources.bleak_scan import BleakSource
+from listenpost.core.clock import SystemClock
 
 SCAN_S = 20.0
 
@@ -47,5 +47,5 @@ async def test_bleak_scanning_delivers_adverts_and_reports_rates(ble_adapter: st
     rates = source.effective_rates()
     print(f"\n{ble_adapter}: {len(heard)} adverts from {len({a.address for a in heard})} addresses in {SCAN_S} s; "
           f"median per-address rate {statistics.median(rates.values()) if rates else 0:.2f} Hz "
-          "(BlueZ may deliver far fewer than the devices send: see BLE-NOTES on DuplicateData)")
+          "(BlueZ may deliver far fewer than the devices send: see docs/radio.md §2 on DuplicateData)")
     assert source.stats()["state"] in ("scanning", "restarting")

@@ -8,7 +8,7 @@ import socket
 import pytest
 import sdnotify
 
-from agent.notify import Notifier
+from listenpost.core.notify import Notifier
 
 
 @pytest.fixture
@@ -33,7 +33,7 @@ def path_socket(tmp_path):
 
 
 def test_ready_and_status_match_the_sdnotify_package(abstract_socket, monkeypatch):
-    """Same datagram bytes as sdnotify 0.3.2 (REFERENCES.md §10) for READY=1 + STATUS."""
+    """Same datagram bytes as sdnotify 0.3.2 (docs/references.md §10) for READY=1 + STATUS."""
     rx, addr = abstract_socket
     n = Notifier({"NOTIFY_SOCKET": addr})
     assert n.enabled
@@ -59,7 +59,7 @@ def test_path_socket_and_status_is_one_line(path_socket):
 
 
 def test_watchdog_interval_is_half_of_watchdog_usec(abstract_socket):
-    """sd_watchdog_enabled(3) advice: ping at half the interval [from memory, REFERENCES.md §10]."""
+    """sd_watchdog_enabled(3) advice: ping at half the interval [from memory, docs/references.md §10]."""
     rx, addr = abstract_socket
     n = Notifier({"NOTIFY_SOCKET": addr, "WATCHDOG_USEC": "30000000", "WATCHDOG_PID": str(os.getpid())})
     assert n.watchdog_interval == 15.0

@@ -10,10 +10,10 @@ from collections.abc import AsyncIterator, Sequence
 import pytest
 import structlog
 
-from agent.config import DecodeRule
-from agent.decode import EDDYSTONE_UUID
-from agent.pipeline import STATS_DOC, build_pipeline
-from agent.types import Advert, Reading, Telemetry, uuid16_to_128
+from listenpost.agent.pipeline import STATS_DOC, build_pipeline
+from listenpost.agent.pipeline.decode import EDDYSTONE_UUID
+from listenpost.core.records import Advert, Reading, Telemetry, uuid16_to_128
+from listenpost.core.settings import DecodeRule
 
 VENUE = uuid.UUID("4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10")
 NAMESPACE = bytes.fromhex("8b0ca750e7a74e14bd99")

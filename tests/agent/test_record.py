@@ -8,12 +8,12 @@ import socket
 
 import pytest
 
-from agent.clock import settle
-from agent.errors import ConfigError, SourceReason, SourceUnavailable
-from agent.record import record, record_command
-from agent.sources.bleak_scan import BleakSource
-from agent.sources.replay import read_recording
+from listenpost.agent.record import record, record_command
+from listenpost.agent.sources.bleak_scan import BleakSource
+from listenpost.agent.sources.replay import read_recording
 from listenpost.cli import main
+from listenpost.core.clock import settle
+from listenpost.core.errors import ConfigError, SourceReason, SourceUnavailable
 from tests.agent.test_bleak_source import FakeScanner
 
 

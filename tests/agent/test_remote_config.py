@@ -9,8 +9,14 @@ import aiohttp
 import pytest
 from aiohttp import web
 
-from agent.errors import ConfigError
-from agent.remote_config import CACHE_FILE, ConfigCache, ConfigFetcher, FetchResult, parse_remote_config
+from listenpost.agent.client.remote_config import (
+    CACHE_FILE,
+    ConfigCache,
+    ConfigFetcher,
+    FetchResult,
+    parse_remote_config,
+)
+from listenpost.core.errors import ConfigError
 
 TOKEN = "tok-u2-a-0123456789abcdef"
 UUID = "4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10"

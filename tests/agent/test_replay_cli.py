@@ -144,7 +144,7 @@ def test_upload_needs_config(files, tmp_path):
 
 
 def test_btsnoop_capture_is_detected_by_content(tmp_path):
-    """A btsnoop capture (datalink 1002, layout per REFERENCES.md §3) whose HCI advertising reports scapy built
+    """A btsnoop capture (datalink 1002, layout per docs/references.md §3) whose HCI advertising reports scapy built
     from the §4 iBeacon vector replays like a recording; the file name says nothing about its kind."""
     import struct
 
@@ -161,7 +161,7 @@ def test_btsnoop_capture_is_detected_by_content(tmp_path):
         rep = HCI_LE_Meta_Advertising_Report(type=3, addr_type=1, addr="c0:11:22:33:44:55", data=ad, rssi=rssi)
         return bytes(HCI_Hdr() / HCI_Event_Hdr() / HCI_Event_LE_Meta() / HCI_LE_Meta_Advertising_Reports(reports=[rep]))
 
-    epoch_us = 0x00DCDDB30F2F8000          # btsnoop time zero, REFERENCES.md §3
+    epoch_us = 0x00DCDDB30F2F8000          # btsnoop time zero, docs/references.md §3
     t0 = 1_700_000_000_000_000
     cap = b"btsnoop\0" + struct.pack(">II", 1, 1002)
     for dt_us, rssi in ((0, -60), (250_000, -63)):
@@ -184,7 +184,7 @@ def test_btsnoop_capture_is_detected_by_content(tmp_path):
 def test_dry_run_of_an_enrolled_board_uses_the_collectors_cached_config(files, tmp_path):
     """An agent.yaml written by 'agent enroll' has no tags file: the dry run takes tags, rules and offset
     from the collector's cached config, as 'agent run' does, instead of refusing."""
-    from agent.remote_config import ConfigCache
+    from listenpost.agent.client.remote_config import ConfigCache
 
     rec, _ = files
     state = tmp_path / "board"
@@ -215,7 +215,7 @@ def test_dry_run_names_registered_tags_no_rule_can_decode(files, tmp_path):
 # ---------------------------------------------------------------- uploading: where the collector puts a replay
 
 async def _clock_start(rec: Path, speed: float, clock) -> tuple[float, str]:
-    from agent.runner import replay_board_clock
+    from listenpost.agent.sources import replay_board_clock
 
     board = await replay_board_clock([rec], speed, clock)
     return board.monotonic(), board.boot_id
@@ -226,7 +226,7 @@ async def _clock_start(rec: Path, speed: float, clock) -> tuple[float, str]:
     # the clock must start at max(t_i - (t_i - 100.5) / 2) = 103.0 - 1.25; as fast as possible, at 103.0.
     (2.0, 101.75), (1.0, 100.5), (0.0, 103.0)])
 async def test_replay_board_clock_starts_where_no_advert_is_ahead_of_it(files, speed, start):
-    from agent.clock import VirtualClock
+    from listenpost.core.clock import VirtualClock
 
     rec, _ = files
     clock = VirtualClock(start=5.0)  # a host booted 5 s ago: less uptime than the recording's times
@@ -238,9 +238,8 @@ async def test_replay_board_clock_starts_where_no_advert_is_ahead_of_it(files, s
 
 async def test_paced_replay_never_emits_an_advert_ahead_of_the_board_clock(files):
     """Through the real ReplaySource at speed 2 on virtual time: each advert's board time <= the clock's."""
-    from agent.clock import VirtualClock
-    from agent.runner import replay_board_clock
-    from agent.sources import open_replay
+    from listenpost.agent.sources import open_replay, replay_board_clock
+    from listenpost.core.clock import VirtualClock
 
     rec, _ = files
     base = VirtualClock(start=5.0)
@@ -266,13 +265,14 @@ async def test_uploaded_replay_ends_at_the_collector_when_its_replay_ends(aiohtt
 
     import aiohttp
 
-    from agent.clock import VirtualClock
-    from agent.enroll import EnrollStatus, enroll
-    from agent.runner import upload_replay
-    from collector.app import STORE, create_app
-    from collector.auth import code_hash
-    from collector.config import CollectorSettings
-    from collector.store import Board, Enrollment
+    from listenpost.agent.client.enroll import EnrollStatus, enroll
+    from listenpost.agent.runner import upload_replay
+    from listenpost.collector.app import create_app
+    from listenpost.collector.config import CollectorSettings
+    from listenpost.collector.http.auth import code_hash
+    from listenpost.collector.state import STORE
+    from listenpost.collector.store import Board, Enrollment
+    from listenpost.core.clock import VirtualClock
     from tests.agent.test_service import run_on_virtual_time
 
     rec, _ = files
@@ -287,7 +287,7 @@ async def test_uploaded_replay_ends_at_the_collector_when_its_replay_ends(aiohtt
                          clock.time())
     result = await enroll(str(server.make_url("")).rstrip("/"), "BRK-G0A-1001", tmp_path / "board", clock=clock)
     assert result.status is EnrollStatus.ENROLLED, result.message
-    from agent.config import load_agent_config
+    from listenpost.agent.config import load_agent_config
     cfg = load_agent_config(result.config_path)
 
     started = clock.time()

@@ -11,13 +11,13 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from agent.clock import VirtualClock, settle
-from agent.config import SourceConfig
-from agent.errors import CaptureFormatError, SourceReason, SourceUnavailable
-from agent.sources import FileKind, ReplaySource, detect_kind, open_replay, open_source
-from agent.sources.btsnoop import BtsnoopWriter
-from agent.sources.replay import RecordingWriter, read_header, read_recording, write_recording
-from agent.types import Advert, uuid16_to_128
+from listenpost.agent.config import SourceConfig
+from listenpost.agent.sources import FileKind, ReplaySource, detect_kind, open_replay, open_source
+from listenpost.agent.sources.btsnoop import BtsnoopWriter
+from listenpost.agent.sources.replay import RecordingWriter, read_header, read_recording, write_recording
+from listenpost.core.clock import VirtualClock, settle
+from listenpost.core.errors import CaptureFormatError, SourceReason, SourceUnavailable
+from listenpost.core.records import Advert, uuid16_to_128
 
 EDDY = uuid16_to_128(0xFEAA)
 
@@ -324,8 +324,8 @@ def test_open_source_kinds(tmp_path):
     assert isinstance(open_source(SourceConfig(kind="replay", files=(str(rec),), speed=2.0), clock), ReplaySource)
     with pytest.raises(CaptureFormatError, match="source.kind is 'btsnoop' but this is a recording"):
         open_source(SourceConfig(kind="btsnoop", files=(str(rec),)), clock)
-    from agent.sources.bleak_scan import BleakSource
-    from agent.sources.hci import HciSource
+    from listenpost.agent.sources.bleak_scan import BleakSource
+    from listenpost.agent.sources.hci import HciSource
     b = open_source(SourceConfig(kind="bleak", adapter="hci1", stall_seconds=30), clock)
     assert isinstance(b, BleakSource) and b.adapter == "hci1" and b.stall_seconds == 30
     h = open_source(SourceConfig(kind="hci", adapter="hci2"), clock)
@@ -335,7 +335,7 @@ def test_open_source_kinds(tmp_path):
 def test_open_source_names_a_missing_package(monkeypatch):
     """Without bleak installed, the bleak source says which package is missing."""
     monkeypatch.setitem(sys.modules, "bleak", None)
-    monkeypatch.delitem(sys.modules, "agent.sources.bleak_scan", raising=False)
+    monkeypatch.delitem(sys.modules, "listenpost.agent.sources.bleak_scan", raising=False)
     with pytest.raises(SourceUnavailable, match="needs the Python package 'bleak'") as e:
         open_source(SourceConfig(kind="bleak"), VirtualClock())
     assert e.value.reason is SourceReason.OTHER

@@ -21,13 +21,13 @@ from typing import Any
 import aiohttp
 from aiohttp import web
 
-from agent import wire
-from agent.clock import VirtualClock
-from agent.config import parse_agent_config
-from agent.remote_config import ConfigCache
-from agent.service import AgentService, SourceState, run_agent
-from agent.spool import Spool
-from agent.types import Advert
+from listenpost.agent.client.remote_config import ConfigCache
+from listenpost.agent.config import parse_agent_config
+from listenpost.agent.service import AgentService, SourceState, run_agent
+from listenpost.agent.spool import Spool
+from listenpost.core import wire
+from listenpost.core.clock import VirtualClock
+from listenpost.core.records import Advert
 
 UUID = bytes.fromhex("4d2a0c1e7f3b4c559e612b8f0a7d3c10")
 UUID_TEXT = "4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10"
@@ -39,7 +39,7 @@ def tag(minor: int) -> str:
 
 
 def ibeacon(t_s: float, minor: int, rssi: int, address: str = "D0:00:00:00:00:01") -> Advert:
-    """An iBeacon-format advert (Apple "Proximity Beacon Specification" layout, from memory; REFERENCES.md §4)."""
+    """An iBeacon-format advert (Apple "Proximity Beacon Specification" layout, from memory; docs/references.md §4)."""
     payload = b"\x02\x15" + UUID + (7).to_bytes(2, "big") + minor.to_bytes(2, "big") + b"\xc5"
     return Advert(round(t_s * 1e9), address, 1, rssi, manufacturer_data={0x004C: payload})
 
@@ -156,7 +156,7 @@ async def spooled_readings(path: Path, clock: VirtualClock) -> Counter:
     spool = await Spool.open(path, clock=clock, max_bytes=64 << 20, flush_seconds=5.0)
     out: Counter = Counter()
     while (b := await spool.peek_oldest()) is not None:
-        for r in wire.decode_content(b.content).readings():
+        for r in wire.decode_content(json.loads(b.content)).readings():
             out[(r.tag, r.t_mono_ns // 1_000_000, round(r.rssi_dbm * 10))] += 1
         await spool.ack(b.epoch, b.seq)
     await spool.close()
@@ -317,12 +317,13 @@ async def test_no_process_global_state_two_boards_in_one_loop(tmp_path):
 
 async def test_contract_with_the_real_collector_enroll_then_upload(aiohttp_server, tmp_path):
     """The real collector app (SQLite under tmp_path): enroll, fetch config, upload; readings stored once."""
-    from agent.config import load_agent_config
-    from agent.enroll import EnrollStatus, enroll
-    from collector.app import STORE, create_app
-    from collector.auth import code_hash
-    from collector.config import CollectorSettings
-    from collector.store import Board, Enrollment
+    from listenpost.agent.client.enroll import EnrollStatus, enroll
+    from listenpost.agent.config import load_agent_config
+    from listenpost.collector.app import create_app
+    from listenpost.collector.config import CollectorSettings
+    from listenpost.collector.http.auth import code_hash
+    from listenpost.collector.state import STORE
+    from listenpost.collector.store import Board, Enrollment
 
     clock = VirtualClock()
     app = create_app(CollectorSettings(state_dir=str(tmp_path / "collector")), clock=clock, run_monitor=False)

@@ -19,11 +19,11 @@ from hypothesis import HealthCheck, settings
 from hypothesis import strategies as st
 from hypothesis.stateful import RuleBasedStateMachine, invariant, rule
 
-from agent import wire
-from agent.clock import VirtualClock
-from agent.errors import SpoolError
-from agent.spool import ROW_OVERHEAD_BYTES, SealedBatch, Spool
-from agent.types import Reading, Telemetry
+from listenpost.agent.spool import ROW_OVERHEAD_BYTES, SealedBatch, Spool
+from listenpost.core import wire
+from listenpost.core.clock import VirtualClock
+from listenpost.core.errors import SpoolError
+from listenpost.core.records import Reading, Telemetry
 
 FLUSH = 5.0
 
@@ -84,7 +84,7 @@ class TestRoundTrip:
         assert [b.seq for b in got] == [0, 1, 2]
         for b, batch in zip(got, sent, strict=True):
             assert b.digest == wire.digest(b.content)
-            decoded = wire.decode_content(b.content)
+            decoded = wire.decode_content(json.loads(b.content))
             assert (decoded.boot, decoded.offset_db, decoded.gap) == (clock.boot_id, 2.5, None)
             assert list(decoded.readings()) == sorted(batch, key=lambda r: r.t_mono_ns)
         spool.add(reading(999))
@@ -114,7 +114,7 @@ class TestRoundTrip:
         assert body[:3] == b"\x1f\x8b\x08"
         raw = zlib.decompress(body, wbits=31)
         assert hashlib.sha256(raw).hexdigest() == digest == sealed.digest
-        assert json.loads(raw) == sealed.content and (n, gap) == (25, None)
+        assert raw == sealed.content and (n, gap) == (25, None)
 
     async def test_ack_is_never_peeked_again(self, tmp_path: Path, clock: VirtualClock) -> None:
         """An acked batch is skipped at once, before its delete is committed."""
@@ -154,7 +154,7 @@ class TestRoundTrip:
         assert last is not None and last.seq == 2
         got = await drain(spool)
         assert [b.n_readings for b in got] == [100, 100, 50]
-        ts = [r.t_mono_ns for b in got for r in wire.decode_content(b.content).readings()]
+        ts = [r.t_mono_ns for b in got for r in wire.decode_content(json.loads(b.content)).readings()]
         assert ts == sorted(ts) and len(set(ts)) == 250
         await spool.close()
 
@@ -184,7 +184,7 @@ class TestSealer:
         with pytest.raises(asyncio.CancelledError):
             await task
         got = await drain(spool)
-        assert [wire.decode_content(b.content).offset_db for b in got] == [1.5, 1.5]
+        assert [wire.decode_content(json.loads(b.content)).offset_db for b in got] == [1.5, 1.5]
         await spool.close()
 
     async def test_cancelled_seal_still_commits_exactly_once(self, tmp_path: Path, clock: VirtualClock) -> None:
@@ -226,7 +226,7 @@ def check_accounting(batches: list[SealedBatch], added: dict[int, int], next_seq
     covered: set[int] = set()
     gap_readings = 0
     for b in batches:
-        gap = b.content["gap"]
+        gap = json.loads(b.content)["gap"]
         if gap is None:
             continue
         assert gap["epoch"] == epoch and gap["reason"] == "spool_full"
@@ -255,7 +255,7 @@ class TestOverflow:
             b = await spool.seal(boot="b", offset_db=0)
             assert b is not None
             added[b.seq] = n
-            biggest = max(biggest, len(gzip.compress(wire.canonical_json(b.content))) + ROW_OVERHEAD_BYTES)
+            biggest = max(biggest, len(gzip.compress(b.content)) + ROW_OVERHEAD_BYTES)
             assert spool.stats().bytes <= cap + biggest
         st = spool.stats()
         assert st.dropped_batches > 0 and st.dropped_readings > 0
@@ -263,12 +263,12 @@ class TestOverflow:
         assert [b.seq for b in got] == sorted(b.seq for b in got)
         gap_readings = check_accounting(got, added, st.next_seq, st.epoch)
         assert gap_readings == st.dropped_readings
-        first_gap = next(b for b in got if b.content["gap"])
-        g = first_gap.content["gap"]
+        first_gap = next(b for b in got if json.loads(b.content)["gap"])
+        g = json.loads(first_gap.content)["gap"]
         # The first overflow drops a prefix 0..k-1 of data batches; its gap record takes seq k + 1 or later.
         assert g["first_seq"] == 0 and first_gap.seq > g["last_seq"]
         assert g["readings"] == sum(added[s] for s in range(g["first_seq"], g["last_seq"] + 1))
-        assert wire.decode_content(first_gap.content).gap == g   # a valid wire gap record
+        assert wire.decode_content(json.loads(first_gap.content)).gap == g   # a valid wire gap record
         await spool.close()
 
     async def test_long_outage_folds_gap_records(self, tmp_path: Path, clock: VirtualClock) -> None:
@@ -284,9 +284,9 @@ class TestOverflow:
             added[b.seq] = n
         st = spool.stats()
         got = await drain(spool)
-        gaps = [b for b in got if b.content["gap"]]
+        gaps = [b for b in got if json.loads(b.content)["gap"]]
         # Folding keeps the gap records few: one per overflow still in the queue, not one per drop.
-        gap_bytes = sum(len(gzip.compress(wire.canonical_json(b.content))) + ROW_OVERHEAD_BYTES for b in gaps)
+        gap_bytes = sum(len(gzip.compress(b.content)) + ROW_OVERHEAD_BYTES for b in gaps)
         assert 1 <= len(gaps) <= 6 and gap_bytes < st.bytes / 3
         assert check_accounting(got, added, st.next_seq, st.epoch) == st.dropped_readings
         await spool.close()
@@ -307,10 +307,10 @@ class TestDeadLettersAndEpochs:
         assert spool.stats().dead_letters == 1
         got = await drain(spool)
         assert [b.seq for b in got] == [0, 2, 3]
-        gap = got[-1].content["gap"]
+        gap = json.loads(got[-1].content)["gap"]
         assert gap == {"epoch": epoch, "first_seq": 1, "last_seq": 1, "readings": 11, "reason": "dead_letter",
                        "status": 400}
-        assert wire.decode_content(got[-1].content).gap == gap
+        assert wire.decode_content(json.loads(got[-1].content)).gap == gap
         await spool.close()
         with contextlib.closing(sqlite3.connect(path)) as c:
             assert c.execute("SELECT epoch, seq, status, reason, n_readings FROM dead_letters").fetchall() == [
@@ -324,7 +324,7 @@ class TestDeadLettersAndEpochs:
         e = spool.stats().epoch
         await spool.dead_letter(e, 0, 413, "too large")
         gap = await spool.peek_oldest()
-        assert gap is not None and gap.seq == 1 and gap.content["gap"]["reason"] == "dead_letter"
+        assert gap is not None and gap.seq == 1 and json.loads(gap.content)["gap"]["reason"] == "dead_letter"
         await spool.dead_letter(e, 1, 400, "refused")
         assert await spool.peek_oldest() is None
         assert spool.stats().dead_letters == 2 and spool.stats().next_seq == 2
@@ -389,7 +389,7 @@ class TestDegraded:
         st = spool.stats()
         assert (st.readings_pending, st.dropped_readings) == (100, 30)
         b = await spool.seal(boot="b", offset_db=0)
-        assert b is not None and wire.decode_content(b.content).t_ms[0] == 50_030
+        assert b is not None and wire.decode_content(json.loads(b.content)).t_ms[0] == 50_030
         await spool.close()
         spool = await open_spool(path, clock)
         assert spool.stats().dropped_readings == 30
@@ -441,7 +441,7 @@ class SpoolMachine(RuleBasedStateMachine):
             assert key not in self.digests, f"{key} cut twice"
             self.digests[key] = b.digest
             self.readings[key] = b.n_readings
-            self.biggest = max(self.biggest, len(gzip.compress(wire.canonical_json(b.content))) + ROW_OVERHEAD_BYTES)
+            self.biggest = max(self.biggest, len(gzip.compress(b.content)) + ROW_OVERHEAD_BYTES)
         assert self.spool.stats().readings_pending == 0 or self.spool.stats().degraded
 
     def _head(self) -> SealedBatch | None:
@@ -459,7 +459,7 @@ class SpoolMachine(RuleBasedStateMachine):
             self.run(self.spool.ack(b.epoch, b.seq))
             self.done.add((b.epoch, b.seq))
             self.finished_readings += b.n_readings
-            if (gap := b.content["gap"]) is not None:
+            if (gap := json.loads(b.content)["gap"]) is not None:
                 self.covered.update((gap["epoch"], s) for s in range(gap["first_seq"], gap["last_seq"] + 1))
                 if gap["reason"] == "spool_full":
                     self.finished_readings += gap["readings"]

@@ -1,6 +1,6 @@
 """
 The spool under faults: SIGKILL of a real process at random moments and at named crash points, a real
-write failure (RLIMIT_FSIZE), and a table of damaged files in the style of RELIABILITY-NOTES §7.4 item 5.
+write failure (RLIMIT_FSIZE), and a table of damaged files in the style of docs/reliability.md §4 item 5.
 """
 
 from __future__ import annotations
@@ -21,9 +21,9 @@ from pathlib import Path
 
 import pytest
 
-from agent import wire
-from agent.clock import VirtualClock
-from agent.spool import Spool
+from listenpost.agent.spool import Spool
+from listenpost.core import wire
+from listenpost.core.clock import VirtualClock
 
 CHILD = Path(__file__).with_name("spool_child.py")
 ROOT = Path(__file__).resolve().parents[2]
@@ -247,7 +247,7 @@ def _copy_files(path: Path, dest: Path) -> None:
 
 
 def wire_reading(i: int, rng: random.Random):
-    from agent.types import Reading
+    from listenpost.core.records import Reading
     return Reading(f"lpx:{i:08x}", (1000 + i) * 1_000_000, round(rng.uniform(-90, -40), 1))
 
 
@@ -367,11 +367,11 @@ async def test_damaged_spool(case: Case, tmp_path: Path) -> None:
     while (b := await spool.peek_oldest()) is not None:
         got.append(b)
         await spool.ack(b.epoch, b.seq)
-    data = [b for b in got if b.content["gap"] is None]
-    gaps = [b for b in got if b.content["gap"] is not None]
+    data = [b for b in got if json.loads(b.content)["gap"] is None]
+    gaps = [b for b in got if json.loads(b.content)["gap"] is not None]
     for b in got:
         assert b.digest == wire.digest(b.content)
-        wire.decode_content(b.content)
+        wire.decode_content(json.loads(b.content))
     aside = path.with_name(path.name + ".corrupt")
     old_seqs = [b.seq for b in data if b.epoch == old_epoch]
     if case.expect in ("all", "prefix", "row"):
@@ -385,19 +385,19 @@ async def test_damaged_spool(case: Case, tmp_path: Path) -> None:
         else:
             assert old_seqs == [s for s in range(N_BATCHES) if s != 7]
             (g,) = gaps
-            assert g.content["gap"] == {"epoch": old_epoch, "first_seq": 7, "last_seq": 7, "readings": 30,
+            assert json.loads(g.content)["gap"] == {"epoch": old_epoch, "first_seq": 7, "last_seq": 7, "readings": 30,
                                         "reason": "spool_corrupt"}
             assert spool.stats().dropped_batches == 1
     else:
         assert st.epoch != old_epoch and st.corrupt_set_aside == 1 and aside.exists()
         for g in gaps:
-            assert g.epoch == st.epoch and g.content["gap"]["reason"] == "spool_corrupt"
-            assert g.content["gap"]["epoch"] == old_epoch
+            assert g.epoch == st.epoch and json.loads(g.content)["gap"]["reason"] == "spool_corrupt"
+            assert json.loads(g.content)["gap"]["epoch"] == old_epoch
         salvaged = {b.seq for b in data}
         assert all(b.epoch == old_epoch for b in data)
         if case.expect == "aside_partial":
             assert salvaged, "nothing salvaged"
-            covered = {s for g in gaps for s in range(g.content["gap"]["first_seq"], g.content["gap"]["last_seq"] + 1)}
+            covered = {s for g in gaps for s in range(json.loads(g.content)["gap"]["first_seq"], json.loads(g.content)["gap"]["last_seq"] + 1)}
             assert salvaged | covered == set(range(N_BATCHES)) and not salvaged & covered
         else:
             assert not data

@@ -10,9 +10,9 @@ from pathlib import Path
 
 from structlog.testing import capture_logs
 
-from agent.clock import VirtualClock
-from agent.spool import Spool
-from agent.types import Reading
+from listenpost.agent.spool import Spool
+from listenpost.core.clock import VirtualClock
+from listenpost.core.records import Reading
 
 
 def read(path: Path, suffix: str = "") -> bytes:

@@ -1,5 +1,5 @@
 """
-Power loss at the spool's durable points (RELIABILITY-NOTES.md §7.4 item 2a): the test that catches seq reuse.
+Power loss at the spool's durable points (docs/reliability.md §4 item 2a): the test that catches seq reuse.
 
 The real Spool and Uplink run on virtual time against the real collector app (SQLite under tmp_path, on
 loopback). After every durable commit of the spool (the FULL-synchronous seal, dead-letter and epoch
@@ -45,11 +45,11 @@ from typing import Any
 import aiohttp
 import pytest
 
-from agent import wire
-from agent.clock import DerivedClock, VirtualClock
-from agent.spool import Spool
-from agent.types import Reading
-from agent.uplink import Outcome, Uplink
+from listenpost.agent.client.uplink import Outcome, Uplink
+from listenpost.agent.spool import Spool
+from listenpost.core import wire
+from listenpost.core.clock import DerivedClock, VirtualClock
+from listenpost.core.records import Reading
 
 BOARD = "g3-a"
 TOKEN = "tok-g3-a-powerloss-0123456789ab"
@@ -179,7 +179,7 @@ class Life:
                     keys: tuple[tuple[str, int], ...] = ()
                     if name == "seal":
                         for b in result:
-                            self.sealed |= batch_keys(b.content)
+                            self.sealed |= batch_keys(json.loads(b.content))
                         keys = tuple((b.epoch, b.seq) for b in result)
                     self.h.ever_sealed |= self.sealed
                     self.snapshots.append(Snapshot(copy_files(self.path), frozenset(self.sealed), name, keys))
@@ -252,10 +252,11 @@ async def drained(h: Harness, life: Life, limit_s: float = 120.0) -> None:
 
 @pytest.fixture
 async def collector(aiohttp_server, tmp_path: Path) -> tuple[str, Path, VirtualClock]:
-    from collector.app import STORE, create_app
-    from collector.auth import code_hash, hash_secret
-    from collector.config import CollectorSettings
-    from collector.store import Board, Enrollment
+    from listenpost.collector.app import create_app
+    from listenpost.collector.config import CollectorSettings
+    from listenpost.collector.http.auth import code_hash, hash_secret
+    from listenpost.collector.state import STORE
+    from listenpost.collector.store import Board, Enrollment
 
     base = VirtualClock()
     (tmp_path / "collector").mkdir()

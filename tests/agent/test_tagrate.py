@@ -15,11 +15,11 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from agent.clock import VirtualClock
-from agent.service import AgentService
-from agent.sources import RateMeter
-from agent.tagrate import TagRates, percentile
-from agent.types import Advert
+from listenpost.agent.pipeline.tagrate import TagRates, percentile
+from listenpost.agent.service import AgentService
+from listenpost.agent.sources import RateMeter
+from listenpost.core.clock import VirtualClock
+from listenpost.core.records import Advert
 from tests.agent.test_service import Collector, ListSource, board_config, ibeacon, tag
 
 PHASE = 0.0137

@@ -23,11 +23,7 @@ import ntplib
 import pytest
 from aiohttp import web
 
-from agent import wire
-from agent.clock import VirtualClock
-from agent.spool import Spool
-from agent.types import Reading
-from agent.uplink import (
+from listenpost.agent.client.uplink import (
     Exchange,
     ExchangeLog,
     Outcome,
@@ -35,6 +31,10 @@ from agent.uplink import (
     UplinkState,
     parse_retry_after,
 )
+from listenpost.agent.spool import Spool
+from listenpost.core import wire
+from listenpost.core.clock import VirtualClock
+from listenpost.core.records import Reading
 
 TOKEN = "tok-g3-a-0123456789abcdef"
 TAGS = ["ibeacon:4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10:7:1", "ibeacon:4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10:7:2",
@@ -73,6 +73,7 @@ class Collector:
         self.log: list[tuple[float, int | None, Any]] = []
         """(virtual arrival time, seq or None, what happened)"""
         self.bodies: list[dict[str, Any]] = []
+        self.raw_bodies: list[bytes] = []
         self.encodings: list[str | None] = []
         self.never = asyncio.Event()
 
@@ -100,6 +101,7 @@ class Collector:
             raw = gzip.decompress(raw)
         body = json.loads(raw)
         self.bodies.append(body)
+        self.raw_bodies.append(raw)
         seq = body["seq"]
         if isinstance(fault, int) and fault in (500, 503, 429):
             self.log.append((self.clock.monotonic(), seq, fault))
@@ -213,6 +215,31 @@ async def test_faults_and_lost_ack_store_every_reading_exactly_once(aiohttp_serv
         if what in (503, 429):
             assert t_next - t >= collector.retry_after
     assert all(e == "gzip" for e in collector.encodings)
+    await uplink.close()
+    await spool.close()
+
+
+async def test_the_spooled_content_bytes_are_sent_as_they_are(aiohttp_server, tmp_path):
+    """Content is encoded once, at seal time: the body carries the digested bytes verbatim."""
+    clock = VirtualClock()
+    collector = Collector(clock)
+    server = await aiohttp_server(collector.app())
+    spool = await open_spool(tmp_path, clock)
+    await fill(spool, clock, batches=3, per_batch=20)
+    spooled = []
+    while (b := await spool.peek_oldest()) is not None:
+        spooled.append(b)
+        await spool.ack(b.epoch, b.seq)
+    assert len(spooled) == 3
+    uplink = make_uplink(server, clock, spool)
+    for b in spooled:
+        await uplink.send(b)
+    for b, raw in zip(spooled, collector.raw_bodies, strict=True):
+        assert b'"content":' + b.content + b"}" in raw
+        assert wire.digest(b.content) == b.digest
+        env = wire.parse_batch(json.loads(raw), max_readings=10_000)  # the collector's reading of the envelope
+        assert (env.epoch, env.seq, env.digest, env.board) == (b.epoch, b.seq, b.digest, "g3-a")
+    assert [x for _, _, x in collector.log] == ["stored"] * 3
     await uplink.close()
     await spool.close()
 
@@ -339,7 +366,7 @@ async def test_clock_exchange_is_carried_on_the_next_request(aiohttp_server, tmp
 # --------------------------------------------------------------------------- pure parts
 
 def test_exchange_offset_and_delay_match_ntplib():
-    """RFC 5905 §8 worked example (REFERENCES.md §5), checked with PyPI ntplib 0.4.0's NTPStats."""
+    """RFC 5905 §8 worked example (docs/references.md §5), checked with PyPI ntplib 0.4.0's NTPStats."""
     ex = Exchange(t1=10.000, t2=10.060, t3=10.061, t4=10.023)
     st = ntplib.NTPStats()
     st.orig_timestamp, st.recv_timestamp, st.tx_timestamp, st.dest_timestamp = 10.000, 10.060, 10.061, 10.023

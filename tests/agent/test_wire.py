@@ -10,8 +10,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from agent.types import Reading, Telemetry
-from agent.wire import WireError, canonical_json, decode_content, digest, encode_content
+from listenpost.core.records import Reading, Telemetry
+from listenpost.core.wire import WireError, canonical_json, decode_content, digest, encode_content
 
 readings_st = st.lists(
     st.builds(Reading, tag=st.sampled_from(["mac:C4:7A:10:00:2B:91", "lpx:00000007", "ibeacon:4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10:7:42"]),

@@ -18,7 +18,7 @@ from typing import Any
 
 import pytest
 
-from collector.store import Store
+from listenpost.collector.store import Store
 
 PG_URL = os.environ.get("LISTENPOST_TEST_PG", "postgresql://postgres@127.0.0.1:5432/test")
 
@@ -68,10 +68,10 @@ class StoreFactory:
 
     async def open(self, **opts: Any) -> Store:
         if self.backend == "sqlite":
-            from collector.store.sqlite import SqliteStore
+            from listenpost.collector.store.sqlite import SqliteStore
             store: Store = await SqliteStore.open(self.path, **self.options(**opts))
         else:
-            from collector.store.postgres import PostgresStore
+            from listenpost.collector.store.postgres import PostgresStore
             store = await PostgresStore.open(PG_URL, **self.options(**opts))
         self.opened.append(store)
         return store

@@ -10,10 +10,11 @@ from pathlib import Path
 
 import pytest
 
-from agent.clock import VirtualClock
-from agent.logs import configure
-from collector.app import STORE, create_app
 from listenpost.cli import main
+from listenpost.collector.app import create_app
+from listenpost.collector.state import STORE
+from listenpost.core.clock import VirtualClock
+from listenpost.core.logs import configure
 from tests.collector.test_api import TAGS, batch_body, readings, settings_for
 
 
@@ -193,7 +194,7 @@ async def _enroll_and_send(server, body_for, code: str) -> str:
 
 
 async def test_calibrate_from_a_reference_tag(server, tmp_path, capsys):
-    from agent.types import Reading
+    from listenpost.core.records import Reading
 
     ref = TAGS[0]
     assert await cli(server, tmp_path, "board", "add", "g0-b", "--room", "G0 Foyer", "--json") == 0
@@ -204,7 +205,7 @@ async def test_calibrate_from_a_reference_tag(server, tmp_path, capsys):
     assert await cli(server, tmp_path, "calibrate", "g0-b", "--tag", ref, "--distance", "4", "--power-1m", "-59",
                      "--exponent", "2", "--json") == 0
     cal = json.loads(capsys.readouterr().out)
-    # REFERENCES.md §7 worked example (Rappaport log-distance model): P1 = -59 dBm, n = 2, d = 4 m gives
+    # docs/references.md §7 worked example (Rappaport log-distance model): P1 = -59 dBm, n = 2, d = 4 m gives
     # RSSI(4 m) = -71.0412 dBm; a board that hears -74.0 there needs +2.9588 dB added.
     assert cal["offset_db"] == pytest.approx(-71.0412 - (-74.0), abs=1e-3)
     assert cal["samples"] == 40 and cal["spread_db"] == 0
@@ -216,7 +217,7 @@ async def test_calibrate_from_a_reference_tag(server, tmp_path, capsys):
 
 
 async def test_walktest_report_per_room(server, tmp_path, clock, capsys):
-    from agent.types import Reading
+    from listenpost.core.records import Reading
 
     ref = TAGS[1]
     codes = {}
@@ -340,7 +341,7 @@ async def test_a_spaced_package_is_refused_before_a_code_is_issued(server, tmp_p
 
 
 async def test_events_read_as_sentences_and_an_unknown_board_is_named(server, tmp_path, capsys):
-    from collector.cli import event_detail
+    from listenpost.collector.cli import event_detail
 
     assert event_detail("state_changed", {"old": "live", "new": "late", "reason": "no contact for 32 s"}) == \
         "live → late: no contact for 32 s"
@@ -353,7 +354,7 @@ async def test_events_read_as_sentences_and_an_unknown_board_is_named(server, tm
 
 async def test_calibration_warnings_say_what_to_do(server, tmp_path, capsys):
     """A calibration far off (wrong distance) is applied but explained in words, with the next step."""
-    from agent.types import Reading
+    from listenpost.core.records import Reading
 
     ref = TAGS[0]
     assert await cli(server, tmp_path, "board", "add", "g0-b", "--room", "G0 Foyer", "--json") == 0

@@ -11,13 +11,14 @@ from typing import Any
 import pytest
 from aiohttp.test_utils import TestClient
 
-from agent import wire
-from agent.clock import VirtualClock
-from agent.types import Reading
-from collector.app import STORE, create_app
-from collector.auth import ADMIN_TOKEN_FILE
-from collector.config import parse_settings
-from collector.store import Store, StoreUnavailable, open_store
+from listenpost.collector.app import create_app
+from listenpost.collector.config import parse_settings
+from listenpost.collector.http.auth import ADMIN_TOKEN_FILE
+from listenpost.collector.state import STORE
+from listenpost.collector.store import Store, StoreUnavailable, open_store
+from listenpost.core import wire
+from listenpost.core.clock import VirtualClock
+from listenpost.core.records import Reading
 
 IBEACON_UUID = "4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10"
 TAGS = [f"ibeacon:{IBEACON_UUID}:7:{i}" for i in range(1, 6)] + ["lpx:00000007"]
@@ -50,7 +51,7 @@ async def add_board(client: TestClient, tmp_path: Path, name: str, room: str = "
 
 async def enrolled(client: TestClient, tmp_path: Path, name: str, room: str = "G0 Foyer",
                    fingerprint: dict[str, Any] | None = None) -> dict[str, str]:
-    """Add and enroll a board (floor from the room's letter, as in SCENARIO.md); returns its auth header."""
+    """Add and enroll a board (floor from the room's letter, as in docs/demo-venue.md); returns its auth header."""
     code = await add_board(client, tmp_path, name, room, "upper" if room.startswith("U") else "ground")
     r = await client.post("/v1/enroll", json={"code": code, "fingerprint": fingerprint or {"machine_id": name}})
     assert r.status == 200, await r.text()
@@ -307,7 +308,7 @@ async def test_heartbeat_stores_stats_and_clock_and_reports_wall_error(client, t
         b = 500.0 + 10 * k
         ex = {"t1": b, "t2": w + b + 0.003, "t3": w + b + 0.004, "t4": b + 0.007}
         body = {"board": "g4-a", "boot": "boot-1", "t1": b + 0.01, "clock": ex,
-                # This board's wall clock runs 3 h 12 min behind (SCENARIO.md's g4-a).
+                # This board's wall clock runs 3 h 12 min behind (g4-a of docs/demo-venue.md).
                 "wall": w + b + 0.01 - 11520.0, "stats": {"adverts_total": 1000 + k, "spool": {"batches": 2}}}
         t2 = clock.time()
         r = await client.post("/v1/heartbeat", json=body, headers=auth)

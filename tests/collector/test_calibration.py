@@ -11,7 +11,7 @@ from hypothesis import strategies as st
 from numpy.testing import assert_allclose
 from scipy.constants import c as SCIPY_C
 
-from collector.calibration import (
+from listenpost.collector.models.calibration import (
     SPEED_OF_LIGHT_M_S,
     CalibrationWarning,
     WalkMark,
@@ -27,7 +27,7 @@ T0 = 1_800_000_000.0
 
 
 def test_log_distance_worked_numbers():
-    """REFERENCES.md §7 [RUN]: P1 −59, n 2, 4 m → −71.0412 dBm and back; n 2.7, −75 dBm → 3.9137 m."""
+    """docs/references.md §7 [RUN]: P1 −59, n 2, 4 m → −71.0412 dBm and back; n 2.7, −75 dBm → 3.9137 m."""
     # Rappaport, Wireless Communications 2nd ed., §4.9 log-distance model (section number from memory).
     assert_allclose(rssi_at_distance(-59.0, 2.0, 4.0), -71.0412, atol=5e-5)
     assert_allclose(distance_from_rssi(-71.0412, -59.0, 2.0), 4.0, atol=1e-4)
@@ -35,14 +35,14 @@ def test_log_distance_worked_numbers():
 
 
 def test_free_space_loss_matches_reference_figures():
-    """FSPL 40.05 dB at 1 m / 2.4 GHz and 60.20 dB at 10 m / 2.44 GHz (REFERENCES.md §7, scipy.constants.c)."""
+    """FSPL 40.05 dB at 1 m / 2.4 GHz and 60.20 dB at 10 m / 2.44 GHz (docs/references.md §7, scipy.constants.c)."""
     assert SPEED_OF_LIGHT_M_S == SCIPY_C          # scipy.constants.c: the SI-exact value
     assert round(fspl_db(1.0, 2.4e9), 3) == 40.052
     assert round(fspl_db(10.0, 2.44e9), 3) == 60.196
     # Self-consistency: Friis is the n = 2 case of the log-distance model, so 1 m → 10 m costs 20 dB.
     assert_allclose(fspl_db(10.0, 2.4e9) - fspl_db(1.0, 2.4e9), -(rssi_at_distance(0.0, 2.0, 10.0)), atol=1e-12)
     # ITU-R P.1238 site-general form at 1 m and 2440 MHz (editions -7 to -9, from memory): 20·log10(f) − 28
-    # = 39.75 dB, within 0.5 dB of free space (REFERENCES.md §7).
+    # = 39.75 dB, within 0.5 dB of free space (docs/references.md §7).
     assert abs((20 * math.log10(2440) - 28) - fspl_db(1.0, 2.44e9)) < 0.5
 
 
@@ -58,7 +58,7 @@ def test_offset_from_reference_tag_at_4_m():
     spread = np.round(rng.normal(0, 1.5, 100))
     samples = np.concatenate([-74.0 + spread, -74.0 - spread, [-74.0]])   # median exactly −74
     r = calibrate_offset(samples, distance_m=4.0, p1_dbm=-59.0, exponent=2.0)
-    # Expected: −59 − (−74 + 20·log10 4) = 15 − 12.0412 = 2.9588 (model numbers as in REFERENCES.md §7).
+    # Expected: −59 − (−74 + 20·log10 4) = 15 − 12.0412 = 2.9588 (model numbers as in docs/references.md §7).
     assert_allclose(r.offset_db, 2.9588, atol=5e-5)
     assert r.median_dbm == -74.0 and r.samples == 201 and r.warnings == ()
     q75, q25 = np.percentile(samples, [75, 25])

@@ -10,17 +10,17 @@ import pytest
 from numpy.testing import assert_allclose
 from scipy.optimize import linprog
 
-from agent.clock import DerivedClock, VirtualClock
-from collector.clock import (
+from listenpost.collector.models.clock import (
     ClockModel,
     ClockSettings,
     FitMethod,
     band_fit,
     clock_filter_pick,
-    exchange,
     lower_envelope,
     wall_error_s,
 )
+from listenpost.core.clock import DerivedClock, VirtualClock
+from listenpost.core.timesync import offset_delay
 
 BOOT_WALL = 1_800_000_123.456  # collector Unix time when the simulated board booted
 
@@ -60,10 +60,10 @@ def feed(model: ClockModel, b1, t2, t3, t4) -> list:
 # -- RFC 5905 on-wire calculation -------------------------------------------------------------------------
 
 def test_exchange_matches_rfc5905_worked_example_and_ntplib():
-    """θ = 0.049 s and δ = 0.022 s for the REFERENCES.md §5 example, as ntplib computes them."""
-    # RFC 5905 §8 on-wire formulas; worked numbers from REFERENCES.md §5 (server +50 ms, 10 ms out,
+    """θ = 0.049 s and δ = 0.022 s for the docs/references.md §5 example, as ntplib computes them."""
+    # RFC 5905 §8 on-wire formulas; worked numbers from docs/references.md §5 (server +50 ms, 10 ms out,
     # 12 ms back, 1 ms hold).
-    offset, delay = exchange(10.000, 10.060, 10.061, 10.023)
+    offset, delay = offset_delay(10.000, 10.060, 10.061, 10.023)
     assert_allclose([offset, delay], [0.049, 0.022], atol=1e-12)
     # Reference library: ntplib 0.4.0 NTPStats computes the same formulas offline.
     st = ntplib.NTPStats()
@@ -78,17 +78,17 @@ def test_exchange_keeps_precision_at_unix_magnitudes():
     t1, t4 = 1234.5, 1234.5 + 0.030
     t2 = 1_800_000_000.0 + 1234.5 + 0.012
     t3 = t2 + 0.002
-    offset, delay = exchange(t1, t2, t3, t4)
+    offset, delay = offset_delay(t1, t2, t3, t4)
     assert_allclose(delay, 0.028, atol=1e-6)
     # out = 12 ms, back = 30 − 12 − 2 = 16 ms, so θ errs by (out − back)/2 = −2 ms.
     assert_allclose(offset - 1_800_000_000.0, (0.012 - 0.016) / 2, atol=1e-6)
     # Vectorised use gives the same numbers.
-    o, d = exchange(np.array([t1, t1]), np.array([t2, t2]), np.array([t3, t3]), np.array([t4, t4]))
+    o, d = offset_delay(np.array([t1, t1]), np.array([t2, t2]), np.array([t3, t3]), np.array([t4, t4]))
     assert_allclose(o, [offset, offset]) and assert_allclose(d, [delay, delay])
 
 
 def test_clock_filter_picks_minimum_delay_sample():
-    """From REFERENCES.md §5's sample list the filter picks (0.0495, 0.022)."""
+    """From docs/references.md §5's sample list the filter picks (0.0495, 0.022)."""
     # RFC 5905 §10 clock filter: use the offset of the minimum-delay sample.
     picked = clock_filter_pick([0.0480, 0.0495, 0.0610, 0.0470], [0.030, 0.022, 0.045, 0.028])
     assert picked == (0.0495, 0.022)
@@ -99,7 +99,7 @@ def test_clock_filter_picks_minimum_delay_sample():
 # -- the two line solvers against scipy's LP solver -------------------------------------------------------
 
 def mst_linprog(t, d):
-    """Moon, Skelly & Towsley (INFOCOM 1999) LP exactly as REFERENCES.md §5 states it, solved by HiGHS."""
+    """Moon, Skelly & Towsley (INFOCOM 1999) LP exactly as docs/references.md §5 states it, solved by HiGHS."""
     t, d = np.asarray(t, float), np.asarray(d, float)
     r = linprog(c=[-t.sum(), -len(t)], A_ub=np.column_stack([t, np.ones_like(t)]), b_ub=d,
                 bounds=[(None, None), (None, None)], method="highs")
@@ -108,7 +108,7 @@ def mst_linprog(t, d):
 
 
 def test_lower_envelope_reference_example():
-    """The REFERENCES.md §5 worked LP: points → alpha 0.1, beta 0.9 (hull edge over mean t = 2.5)."""
+    """The docs/references.md §5 worked LP: points → alpha 0.1, beta 0.9 (hull edge over mean t = 2.5)."""
     a, b = lower_envelope([0, 1, 2, 3, 4, 5], [1.0, 1.3, 1.1, 1.6, 1.3, 1.5])
     assert_allclose([a, b], [0.1, 0.9], atol=1e-12)
     assert_allclose([a, b], mst_linprog([0, 1, 2, 3, 4, 5], [1.0, 1.3, 1.1, 1.6, 1.3, 1.5]), atol=1e-9)
@@ -119,13 +119,13 @@ def test_lower_envelope_equals_linprog(seed):
     """Hull solution = scipy.optimize.linprog (HiGHS) optimum of the MST LP on skewed, queued delays."""
     rng = np.random.default_rng(seed)
     t = np.sort(rng.uniform(0, 3600, 400))
-    d = 50e-6 * t + 0.020 + rng.exponential(0.004, 400)   # REFERENCES.md §5: 50 ppm, 20 ms floor
+    d = 50e-6 * t + 0.020 + rng.exponential(0.004, 400)   # docs/references.md §5: 50 ppm, 20 ms floor
     a, b = lower_envelope(t, d)
     ra, rb = mst_linprog(t, d)
     # Tolerances: HiGHS' default feasibility tolerance is ~1e-7 on these O(1e-2) ordinates.
     assert_allclose(a, ra, atol=1e-9)
     assert_allclose(b, rb, atol=1e-7)
-    assert abs(a * 1e6 - 50.0) < 0.5 and abs(b - 0.020) < 1e-3   # REFERENCES.md §5 [RUN] figures
+    assert abs(a * 1e6 - 50.0) < 0.5 and abs(b - 0.020) < 1e-3   # docs/references.md §5 [RUN] figures
     assert np.all(a * t + b <= d + 1e-12)
 
 
@@ -307,7 +307,7 @@ def test_settings_validation_names_the_field():
 
 
 def test_wall_error_reports_board_behind():
-    """A board whose wall clock is 3 h 12 min behind (SCENARIO.md g4-a) reports −11520 s."""
+    """A board whose wall clock is 3 h 12 min behind (docs/demo-venue.md g4-a) reports −11520 s."""
     assert wall_error_s(BOOT_WALL - 11_520.0, BOOT_WALL) == pytest.approx(-11_520.0)
     assert_allclose(wall_error_s(np.array([10.0, 12.5]), np.array([11.0, 12.0])), [-1.0, 0.5])
 

@@ -14,8 +14,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from numpy.testing import assert_allclose, assert_array_equal
 
-from collector.export import CSV_COLUMNS, Aggregate, bin_readings, write_csv, write_npz
-from collector.store import ReadingRows
+from listenpost.collector.models.export import CSV_COLUMNS, Aggregate, bin_readings, write_csv, write_npz
+from listenpost.collector.store import ReadingRows
 
 T0 = 1_800_000_000.0
 TAG_A = "ibeacon:4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10:7:1"

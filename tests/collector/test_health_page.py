@@ -13,8 +13,8 @@ from typing import Any
 import pytest
 from aiohttp.test_utils import TestClient
 
-from agent.clock import DerivedClock, VirtualClock
-from collector.app import MONITOR
+from listenpost.collector.monitor import MONITOR
+from listenpost.core.clock import DerivedClock, VirtualClock
 from tests.collector.test_api import batch_body, enrolled, import_tags, make_client, readings
 
 CHROMIUM = "/usr/bin/chromium"
@@ -194,6 +194,6 @@ async def test_health_page_in_a_real_browser(aiohttp_client, tmp_path, clock):
 ])
 def test_wall_clock_error_reads_in_hours_and_minutes(seconds, text):
     """A board hours off (no network time) shows "−3 h 12 min", not "-11,520.0 s"."""
-    from collector.web.pages import fmt_clock_error
+    from listenpost.collector.status import fmt_clock_error
 
     assert fmt_clock_error(seconds) == text

@@ -11,9 +11,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.stats import norm
 
-from agent.clock import VirtualClock
-from collector.clock import ClockFit, ClockModel, ClockStep
-from collector.liveness import (
+from listenpost.collector.models.clock import ClockFit, ClockModel, ClockStep
+from listenpost.collector.models.liveness import (
     BoardInputs,
     BoardState,
     HeartbeatSample,
@@ -25,12 +24,13 @@ from collector.liveness import (
     log_sf,
     phi,
 )
+from listenpost.core.clock import VirtualClock
 
 T0 = 1_800_000_000.0
 
 
 def scipy_phi(delta, mu, sigma):
-    """Reference: −log10 of the normal survival function via scipy.stats.norm.logsf (REFERENCES.md §6)."""
+    """Reference: −log10 of the normal survival function via scipy.stats.norm.logsf (docs/references.md §6)."""
     return -norm.logsf(delta, loc=mu, scale=sigma) / math.log(10)
 
 
@@ -43,14 +43,14 @@ def scipy_phi(delta, mu, sigma):
     (5.0, 349.437006, 1e-4),   # z = 40: the survival function (~1e-350) is below the double range
 ])
 def test_phi_matches_reference_values(delta, expected, tol):
-    """φ(Δ, μ=1.0, σ=0.1) against REFERENCES.md §6 values computed with scipy.stats.norm.logsf."""
-    # Hayashibara et al., SRDS 2004: φ(Δ) = −log10(1 − F(Δ)); values [RUN] in REFERENCES.md §6.
+    """φ(Δ, μ=1.0, σ=0.1) against docs/references.md §6 values computed with scipy.stats.norm.logsf."""
+    # Hayashibara et al., SRDS 2004: φ(Δ) = −log10(1 − F(Δ)); values [RUN] in docs/references.md §6.
     assert abs(phi(delta, 1.0, 0.1) - expected) < tol
     assert abs(phi(delta, 1.0, 0.1) - scipy_phi(delta, 1.0, 0.1)) < tol
 
 
 def test_phi_threshold_eight_at_5_612_sigma():
-    """Φ = 8 is reached at Δ = μ + 5.612 σ (REFERENCES.md §6: norm.isf(1e-8) = 5.6120)."""
+    """Φ = 8 is reached at Δ = μ + 5.612 σ (docs/references.md §6: norm.isf(1e-8) = 5.6120)."""
     assert abs(phi(10.0 + norm.isf(1e-8) * 2.0, 10.0, 2.0) - 8.0) < 1e-9
 
 
@@ -248,7 +248,7 @@ def test_drifting_on_skew_step_or_residual():
 
 
 def test_real_clock_model_of_a_plus_85_ppm_board_is_drifting():
-    """A fit from exchanges of a board 85 ppm fast (SCENARIO.md u2-a) trips the skew rule."""
+    """A fit from exchanges of a board 85 ppm fast (docs/demo-venue.md u2-a) trips the skew rule."""
     model = ClockModel()
     s = 85e-6
     for k in range(60):

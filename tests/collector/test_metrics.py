@@ -1,4 +1,4 @@
-"""``/metrics`` parsed by prometheus_client's own parser (REFERENCES.md §8) and checked against the fleet."""
+"""``/metrics`` parsed by prometheus_client's own parser (docs/references.md §8) and checked against the fleet."""
 
 from __future__ import annotations
 
@@ -17,7 +17,7 @@ async def test_metrics_parse_and_match_the_fleet(aiohttp_client, tmp_path, clock
     # the Prometheus text exposition format 0.0.4); it raises ValueError on malformed input.
     families = {f.name: f for f in text_string_to_metric_families(await r.text())}
     assert all(name.startswith("listenpost_") for name in families)
-    # Counters: the family name drops "_total", the samples keep it (REFERENCES.md §8, observed behaviour).
+    # Counters: the family name drops "_total", the samples keep it (docs/references.md §8, observed behaviour).
     assert families["listenpost_readings"].type == "counter"
     readings = {s.labels["board"]: s.value for s in families["listenpost_readings"].samples}
     assert {s.name for s in families["listenpost_readings"].samples} == {"listenpost_readings_total"}

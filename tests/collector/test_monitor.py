@@ -18,11 +18,12 @@ from aiohttp import web
 from aiohttp.test_utils import TestClient
 from structlog.testing import capture_logs
 
-from agent.clock import VirtualClock
-from agent.logs import configure
-from collector.app import MONITOR, STORE
-from collector.store import Store
 from listenpost.cli import main
+from listenpost.collector.monitor import MONITOR
+from listenpost.collector.state import STORE
+from listenpost.collector.store import Store
+from listenpost.core.clock import VirtualClock
+from listenpost.core.logs import configure
 from tests.collector.conftest import StoreFactory, require_pg
 from tests.collector.test_api import batch_body, enrolled, import_tags, make_client, readings
 
@@ -178,7 +179,7 @@ async def _send(client: TestClient, auth: dict[str, str], board: str, seq: int, 
 
 async def test_seq_holes_become_loss_events_once_and_show_in_cli_and_page(aiohttp_client, tmp_path, clock, capsys):
     """A hole not covered by a gap record or a dead letter is a loss after the grace period, once."""
-    from collector.monitor import LOSS_GRACE_SECONDS
+    from listenpost.collector.monitor import LOSS_GRACE_SECONDS
 
     client = await make_client(aiohttp_client, tmp_path, clock)
     await import_tags(client, tmp_path)
@@ -266,7 +267,7 @@ async def any_store(request, tmp_path) -> AsyncIterator[Store | None]:
 # any_store comes first so the app stops before its store closes.
 async def test_retention_runs_in_bounded_chunks_across_rounds(any_store, aiohttp_client, tmp_path, clock):
     """1000 old readings, 150 per chunk, 2 chunks per round: 300, 300, 300, 100 — and the new ones stay."""
-    from collector.monitor import RETENTION_CHUNKS_PER_ROUND
+    from listenpost.collector.monitor import RETENTION_CHUNKS_PER_ROUND
 
     client = await make_client(aiohttp_client, tmp_path, clock, store=any_store,
                                retention={"days": 90, "chunk": 150})

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from aiohttp import web
 
-from collector.openapi import spec
+from listenpost.collector.http.openapi import spec
 from tests.collector.test_api import make_client
 
 

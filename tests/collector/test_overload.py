@@ -14,13 +14,13 @@ from pathlib import Path
 import pytest
 from aiohttp.test_utils import TestClient
 
-from agent.clock import VirtualClock
-from agent.errors import ConfigError
-from agent.spool import Spool
-from agent.types import Reading
-from agent.uplink import Uplink, UplinkState
-from collector.app import RUNTIME, STORE
-from collector.config import parse_settings
+from listenpost.agent.client.uplink import Uplink, UplinkState
+from listenpost.agent.spool import Spool
+from listenpost.collector.config import parse_settings
+from listenpost.collector.state import RUNTIME, STORE
+from listenpost.core.clock import VirtualClock
+from listenpost.core.errors import ConfigError
+from listenpost.core.records import Reading
 from tests.collector.test_api import TAGS, batch_body, enrolled, import_tags, make_client, readings
 from tests.collector.test_monitor import until
 

@@ -9,8 +9,8 @@ from pathlib import Path
 import pytest
 import yaml
 
-from agent.config import parse_agent_config
-from collector.provision import build_bundle, write_bundle
+from listenpost.agent.config import parse_agent_config
+from listenpost.collector.provision import build_bundle, write_bundle
 from tests.conftest import require_tool
 
 CLOUD_INIT = shutil.which("cloud-init")
@@ -30,7 +30,7 @@ def _bundle(tmp_path: Path) -> Path:
 
 
 def _schema(path: Path) -> subprocess.CompletedProcess[str]:
-    # REFERENCES.md §9: `cloud-init schema -c FILE` (cloud-init 22.4) exits 0 for a valid cloud-config, 1 otherwise.
+    # docs/references.md §9: `cloud-init schema -c FILE` (cloud-init 22.4) exits 0 for a valid cloud-config, 1 otherwise.
     return subprocess.run([CLOUD_INIT, "schema", "-c", str(path)], capture_output=True, text=True, timeout=60)
 
 
@@ -99,8 +99,8 @@ def test_package_spec_reaches_pip_and_the_user_data_stays_valid(tmp_path):
 def test_default_package_is_this_version_and_a_spaced_one_is_refused():
     from importlib.metadata import version
 
-    from agent.errors import ConfigError
-    from collector.provision import package_spec
+    from listenpost.collector.provision import package_spec
+    from listenpost.core.errors import ConfigError
 
     assert package_spec(None) == f"listenpost=={version('listenpost')}"
     assert package_spec("  listenpost>=0.1 ") == "listenpost>=0.1"

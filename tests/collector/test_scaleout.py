@@ -1,5 +1,5 @@
 """
-Two collectors on one PostgreSQL database (DESIGN.md "Scale"): the run-once work is done by one of
+Two collectors on one PostgreSQL database (docs/design.md §7): the run-once work is done by one of
 them per round, and a batch posted to both at once is stored once.
 """
 
@@ -8,9 +8,11 @@ from __future__ import annotations
 import asyncio
 from pathlib import Path
 
-from agent.clock import VirtualClock, settle
-from collector.app import MONITOR, STORE, create_app
-from collector.store import Event
+from listenpost.collector.app import create_app
+from listenpost.collector.monitor import MONITOR
+from listenpost.collector.state import STORE
+from listenpost.collector.store import Event
+from listenpost.core.clock import VirtualClock, settle
 from tests.collector.conftest import StoreFactory
 from tests.collector.test_api import admin_headers, batch_body, readings, settings_for
 

@@ -1,5 +1,5 @@
 """
-Two `listenpost collector serve` processes on one fresh PostgreSQL database (DESIGN.md "Scale"):
+Two `listenpost collector serve` processes on one fresh PostgreSQL database (docs/design.md §7):
 a batch posted to both at the same moment is stored once, whichever process wins, and the other
 answers `duplicate`. (Run-once monitor work across collectors is covered on virtual time in
 test_scaleout.py; here the point is two separate processes with their own pools.)
@@ -20,7 +20,7 @@ import asyncpg
 import pytest
 import yaml
 
-from collector.auth import ADMIN_TOKEN_FILE
+from listenpost.collector.http.auth import ADMIN_TOKEN_FILE
 from tests.collector.conftest import PG_URL, require_pg
 from tests.collector.test_api import TAGS, batch_body, readings
 

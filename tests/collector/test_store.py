@@ -9,8 +9,7 @@ import sqlite3
 import numpy as np
 import pytest
 
-from agent import wire
-from collector.store import (
+from listenpost.collector.store import (
     BadBatch,
     Board,
     Calibration,
@@ -27,10 +26,11 @@ from collector.store import (
     StoreUnavailable,
     open_store,
 )
-from collector.store import migrations as mig
+from listenpost.collector.store import migrations as mig
+from listenpost.core import wire
 from tests.collector.conftest import PG_URL, StoreFactory, require_pg
 
-# Demo venue (SCENARIO.md): Brackenford Science Centre.
+# Demo venue (docs/demo-venue.md): Brackenford Science Centre.
 TAGS = ["ibeacon:4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10:7:42", "eddystone:8b0ca750e7a74e14bd99:00000000001e",
         "lpx:00000007", "mac:C4:7A:10:00:2B:91"]
 
@@ -452,7 +452,7 @@ async def test_advisory_lock_shows_in_pg_locks(pg_factory: StoreFactory):
     """While held, the lock is a session advisory lock on the key's two halves (PostgreSQL docs, pg_locks)."""
     import asyncpg
 
-    from collector.store.postgres import lock_key
+    from listenpost.collector.store.postgres import lock_key
     store = await pg_factory.open()
     key = lock_key("retention") & 0xFFFF_FFFF_FFFF_FFFF
     # PostgreSQL docs, "pg_locks": a bigint advisory key shows its high half in classid, its low half
@@ -564,7 +564,7 @@ async def test_sqlite_locked_past_the_busy_timeout_is_unavailable_then_recovers(
 
 async def test_postgres_keeps_synchronous_commit_on_even_if_the_url_turns_it_off(pg_factory: StoreFactory):
     """A connection default of synchronous_commit=off (here from the URL) is overridden on every pooled connection."""
-    from collector.store.postgres import PostgresStore
+    from listenpost.collector.store.postgres import PostgresStore
     url = PG_URL + ("&" if "?" in PG_URL else "?") + "synchronous_commit=off"
     import asyncpg
     con = await asyncpg.connect(url, timeout=5)
@@ -639,7 +639,7 @@ def test_copy_binary_parser_reads_the_documented_layout():
     """A stream built by hand from the PostgreSQL docs ("COPY", Binary Format) parses to the values put in."""
     import struct
 
-    from collector.store.postgres import parse_copy_binary
+    from listenpost.collector.store.postgres import parse_copy_binary
     header = b"PGCOPY\n\xff\r\n\x00" + struct.pack(">ii", 0, 4) + b"abcd"  # 4-byte header extension, skipped
     row = lambda b, t, tc, r, o: struct.pack(">h" + "i" * 4 + "id" + "ii" * 2, 5, 4, b, 4, t, 8, tc, 4, r, 4, o)  # noqa: E731
     stream = header + row(1, 7, 1_800_000_000.25, -705, 25) + row(2, 9, 1_800_000_001.5, -1000, -12) + b"\xff\xff"

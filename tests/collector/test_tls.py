@@ -24,13 +24,14 @@ from cryptography.hazmat.primitives import hashes, serialization
 from cryptography.hazmat.primitives.asymmetric import ec
 from cryptography.x509.oid import NameOID
 
-from agent.clock import VirtualClock
-from agent.errors import ConfigError
-from agent.spool import Spool
-from agent.types import Reading
-from agent.uplink import Uplink
-from collector.app import STORE, create_app
-from collector.cli import tls_context
+from listenpost.agent.client.uplink import Uplink
+from listenpost.agent.spool import Spool
+from listenpost.collector.app import create_app
+from listenpost.collector.cli import tls_context
+from listenpost.collector.state import STORE
+from listenpost.core.clock import VirtualClock
+from listenpost.core.errors import ConfigError
+from listenpost.core.records import Reading
 from tests.collector.test_api import TAGS, enrolled, import_tags, settings_for
 
 
@@ -164,9 +165,9 @@ async def test_agent_uplink_reaches_a_tls_collector(aiohttp_server, aiohttp_clie
 async def test_agent_enrolls_and_fetches_config_over_tls_with_its_ca_file(aiohttp_server, aiohttp_client, tmp_path,
                                                                           clock: VirtualClock):
     """`agent enroll --ca-file` trusts a private CA, records it in agent.yaml, and every later call uses it."""
-    from agent.config import load_agent_config
-    from agent.enroll import EnrollStatus, enroll
-    from agent.net import client_session
+    from listenpost.agent.client.enroll import EnrollStatus, enroll
+    from listenpost.agent.client.net import client_session
+    from listenpost.agent.config import load_agent_config
     from tests.collector.test_api import add_board
 
     ca, cert, key = make_certs(tmp_path / "pki")
@@ -194,7 +195,7 @@ async def test_agent_enrolls_and_fetches_config_over_tls_with_its_ca_file(aiohtt
 
 def test_a_bad_ca_file_is_a_config_error_naming_the_key(tmp_path):
     """A CA file that is not PEM is refused with the config key and the path."""
-    from agent.net import client_session
+    from listenpost.agent.client.net import client_session
 
     bad = tmp_path / "ca.pem"
     bad.write_text("not a certificate")

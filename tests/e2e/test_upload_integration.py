@@ -14,9 +14,9 @@ import json
 from collections import Counter
 from pathlib import Path
 
-from agent.clock import VirtualClock
-from collector.liveness import LivenessSettings
-from listenpost.fleet import Fleet, load_venue
+from listenpost.collector.models.liveness import LivenessSettings
+from listenpost.core.clock import VirtualClock
+from listenpost.demo.fleet import Fleet, load_venue
 from tests.e2e.conftest import REPLAY_LOGS, cli_async, dry_run, dry_run_config, stored_readings
 
 BOARD = "g3-a"

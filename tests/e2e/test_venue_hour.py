@@ -35,10 +35,10 @@ import numpy as np
 import pytest
 import structlog
 
-from agent.clock import VirtualClock
-from collector.liveness import LivenessSettings
+from listenpost.collector.models.liveness import LivenessSettings
+from listenpost.core.clock import VirtualClock
 from listenpost.demo import DEMO_LIVENESS
-from listenpost.fleet import BoardSummary, Fleet, Venue, load_venue
+from listenpost.demo.fleet import BoardSummary, Fleet, Venue, load_venue
 from tests.e2e.conftest import (
     all_text,
     cli_async,
@@ -58,7 +58,7 @@ AFTER_S = 30.0
 """Virtual seconds run past the recording's end, so the last batches land and a monitor round follows."""
 STEP_S = 1.0
 LIMIT_S = 60.0
-"""Every fault must be flagged within this many simulated seconds (DESIGN.md: "within a minute")."""
+"""Every fault must be flagged within this many simulated seconds (docs/design.md §1: "within a minute")."""
 
 
 @dataclass

@@ -1,0 +1,1 @@
+"""The one collector client: uplink, heartbeat, remote config, enrollment, HTTP session."""

@@ -1,0 +1,1 @@
+"""HTTP handlers: the board API, the admin API, auth, middlewares, the OpenAPI document."""

@@ -1,0 +1,401 @@
+"""
+Admin API (``/v1/admin/...``, bearer admin token): boards, tags, calibration, walk test, export, events.
+
+The ``listenpost collector ...`` admin commands are thin clients of these routes (collector/cli.py).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import dataclasses
+import math
+import tempfile
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import structlog
+from aiohttp import web
+
+from listenpost.collector.http.api import read_json
+from listenpost.collector.http.auth import (
+    bearer_token,
+    code_hash,
+    hash_secret,
+    new_enrollment_code,
+    same_secret,
+)
+from listenpost.collector.http.middlewares import ApiError, bad_field
+from listenpost.collector.state import CLOCK, RUNTIME, SETTINGS, STORE
+from listenpost.collector.store import Board, Calibration, Enrollment, Event
+from listenpost.core.errors import DecodeError
+from listenpost.core.identity import BUILTIN_KINDS, parse_tag_id
+from listenpost.core.settings import BOARD_NAME
+
+log = structlog.get_logger("listenpost.collector.http.admin")
+
+MAX_TAGS_PER_REQUEST = 100_000
+MAX_EXPORT_SECONDS = 31 * 86400
+
+
+def require_admin(request: web.Request) -> None:
+    """401 unless the request carries the admin token."""
+    token = bearer_token(request.headers.get("Authorization"))
+    if token is None or not same_secret(hash_secret(token), request.app[RUNTIME].admin_token_hash):
+        raise ApiError(401, "unauthorized", "admin token missing or wrong", headers={"WWW-Authenticate": "Bearer"})
+
+
+async def _json_object(request: web.Request) -> dict[str, Any]:
+    body = await read_json(request, request.app[SETTINGS].limits)
+    if not isinstance(body, dict):
+        raise bad_field("body", "must be a JSON object")
+    return body
+
+
+def _str_field(body: dict[str, Any], name: str, *, required: bool = True, max_len: int = 100) -> str | None:
+    v = body.get(name)
+    if v is None and not required:
+        return None
+    if not isinstance(v, str) or not v.strip() or len(v) > max_len:
+        raise bad_field(name, f"must be a non-empty string of at most {max_len} characters")
+    return v.strip()
+
+
+def _number_field(body: dict[str, Any], name: str, lo: float, hi: float, default: float | None = None) -> float:
+    v = body.get(name, default)
+    if not isinstance(v, int | float) or isinstance(v, bool) or not math.isfinite(v) or not lo <= v <= hi:
+        raise bad_field(name, f"must be a number in {lo:g}..{hi:g}, got {v!r}")
+    return float(v)
+
+
+def board_json(b: Board) -> dict[str, Any]:
+    return {"name": b.name, "room": b.room, "floor": b.floor, "created_at": b.created_at,
+            "enrolled_at": b.enrolled_at, "offset_db": b.offset_db, "retired_at": b.retired_at,
+            "fingerprint": b.fingerprint}
+
+
+async def _board_or_404(request: web.Request) -> Board:
+    name = request.match_info["name"]
+    board = await request.app[STORE].get_board(name)
+    if board is None:
+        raise ApiError(404, "unknown_board", f"no board named {name!r}", field="name")
+    return board
+
+
+async def _issue_code(request: web.Request, board: str) -> tuple[str, float]:
+    code = new_enrollment_code()
+    expires = request.app[CLOCK].time() + request.app[SETTINGS].code_lifetime_seconds
+    return code, expires
+
+
+async def add_board(request: web.Request) -> web.Response:
+    """``POST /v1/admin/boards`` ``{name, room, floor?}`` → 201 with the one-time enrollment code."""
+    require_admin(request)
+    body = await _json_object(request)
+    name = body.get("name")
+    if not isinstance(name, str) or not BOARD_NAME.fullmatch(name):
+        raise bad_field("name", "must be 1-63 lower-case letters, digits, '.', '_' or '-', starting with a letter or digit")
+    room = _str_field(body, "room")
+    floor = _str_field(body, "floor", required=False, max_len=40)
+    store, now = request.app[STORE], request.app[CLOCK].time()
+    if await store.get_board(name) is not None:
+        raise ApiError(409, "board_exists", f"board {name!r} already exists; use 'board reissue' for a new code",
+                       field="name")
+    code, expires = await _issue_code(request, name)
+    board = Board(name=name, room=room or "", floor=floor, created_at=now)
+    try:
+        await store.add_board(board, Enrollment(name, code_hash(code), expires))
+    except ValueError as e:
+        raise ApiError(409, "board_exists", str(e), field="name") from e
+    log.info("board_added", board=name, room=room, floor=floor)
+    return web.json_response({**board_json(board), "code": code, "code_expires_at": expires,
+                              "collector_url": request.app[SETTINGS].public_url}, status=201)
+
+
+async def list_boards(request: web.Request) -> web.Response:
+    require_admin(request)
+    boards = await request.app[STORE].list_boards(include_retired=request.query.get("retired", "1") != "0")
+    return web.json_response({"boards": [board_json(b) for b in boards]})
+
+
+async def show_board(request: web.Request) -> web.Response:
+    """``GET /v1/admin/boards/{name}``: record, calibration history, counts, latest heartbeat, state."""
+    require_admin(request)
+    board = await _board_or_404(request)
+    store = request.app[STORE]
+    counts = {c.board: c for c in await store.board_counts()}.get(board.name)
+    hb = (await store.latest_heartbeats()).get(board.name)
+    cals = await store.calibrations(board.name)
+    state = request.app[RUNTIME].states.get(board.name, {})
+    return web.json_response({
+        **board_json(board),
+        "state": state.get("state"), "state_reason": state.get("reason"),
+        "readings_total": counts.readings_total if counts else 0,
+        "batches_total": counts.batches_total if counts else 0,
+        "last_batch_at": counts.last_batch_at if counts else None,
+        "last_heartbeat": {"at": hb.at, "boot": hb.boot, "stats": hb.stats} if hb else None,
+        "calibrations": [_calibration_json(c) for c in cals],
+        "recalibrate": bool(cals) and cals[-1].fingerprint is not None and cals[-1].fingerprint != board.fingerprint,
+    })
+
+
+async def retire_board(request: web.Request) -> web.Response:
+    require_admin(request)
+    board = await _board_or_404(request)
+    now = request.app[CLOCK].time()
+    await request.app[STORE].retire_board(board.name, now)
+    request.app[RUNTIME].token_cache.clear()  # the token must stop working here at once
+    await request.app[STORE].add_event(Event(now, board.name, "retired", {}))
+    log.info("board_retired", board=board.name)
+    return web.json_response({"name": board.name, "retired_at": now})
+
+
+async def reissue_board(request: web.Request) -> web.Response:
+    """``POST /v1/admin/boards/{name}/reissue``: a new one-time code (re-flashed card); older codes stop working."""
+    require_admin(request)
+    board = await _board_or_404(request)
+    if board.retired_at is not None:
+        raise ApiError(409, "board_retired", f"board {board.name!r} is retired", field="name")
+    code, expires = await _issue_code(request, board.name)
+    await request.app[STORE].new_enrollment(Enrollment(board.name, code_hash(code), expires))
+    log.info("enrollment_reissued", board=board.name)
+    return web.json_response({**board_json(board), "code": code, "code_expires_at": expires,
+                              "collector_url": request.app[SETTINGS].public_url})
+
+
+def _tag_list(body: dict[str, Any]) -> list[str]:
+    ids = body.get("ids")
+    if not isinstance(ids, list) or len(ids) > MAX_TAGS_PER_REQUEST:
+        raise bad_field("ids", f"must be a list of at most {MAX_TAGS_PER_REQUEST} tag identities")
+    out = []
+    for i, text in enumerate(ids):
+        if not isinstance(text, str):
+            raise bad_field(f"ids[{i}]", "must be a string")
+        try:
+            out.append(parse_tag_id(text))
+        except DecodeError as e:
+            raise bad_field(f"ids[{i}]", str(e)) from e
+    return out
+
+
+async def import_tags(request: web.Request) -> web.Response:
+    """``POST /v1/admin/tags`` ``{ids: [...]}``: all valid or nothing stored."""
+    require_admin(request)
+    ids = _tag_list(await _json_object(request))
+    store = request.app[STORE]
+    added = await store.add_tags(ids, request.app[CLOCK].time())
+    return web.json_response({"added": added, "given": len(ids), "total": len(await store.list_tags()),
+                              "without_rule": _without_rule(ids, request.app[SETTINGS].rules)})
+
+
+def _without_rule(ids: list[str], rules: Any) -> dict[str, int]:
+    """
+    Tag count per configured-rule name that this collector's ``decode.rules`` does not define.
+
+    Such tags are stored, but no board can ever name them: their identity only exists once a rule
+    extracts it (DEVELOPERS.md, "How to add a decode rule").
+    """
+    known = set(BUILTIN_KINDS) | {r.name for r in rules}
+    out: dict[str, int] = {}
+    for t in ids:
+        kind = t.split(":", 1)[0]
+        if kind not in known:
+            out[kind] = out.get(kind, 0) + 1
+    return out
+
+
+async def list_tags(request: web.Request) -> web.Response:
+    require_admin(request)
+    tags = await request.app[STORE].list_tags(include_retired=request.query.get("retired") == "1")
+    return web.json_response({"tags": sorted(tags)})
+
+
+async def retire_tags(request: web.Request) -> web.Response:
+    require_admin(request)
+    ids = _tag_list(await _json_object(request))
+    n = await request.app[STORE].retire_tags(ids, request.app[CLOCK].time())
+    return web.json_response({"retired": n, "given": len(ids)})
+
+
+async def events(request: web.Request) -> web.Response:
+    """``GET /v1/admin/events?since=ID&limit=N&board=NAME``: events after ``since``, oldest first."""
+    require_admin(request)
+    try:
+        since = int(request.query.get("since", "0"))
+        limit = min(int(request.query.get("limit", "1000")), 10_000)
+    except ValueError as e:
+        raise bad_field("since", "since and limit must be integers") from e
+    board = request.query.get("board")
+    if board is not None and await request.app[STORE].get_board(board) is None:
+        raise ApiError(404, "unknown_board", f"no board named {board!r}", field="board")
+    evs = await request.app[STORE].events(since_id=since, limit=limit, board=board)
+    return web.json_response({"events": [event_json(e) for e in evs]})
+
+
+def event_json(e: Event) -> dict[str, Any]:
+    return {"id": e.id, "at": e.at, "board": e.board, "kind": e.kind, "detail": e.detail}
+
+
+def _query_time(request: web.Request, name: str) -> float:
+    raw = request.query.get(name)
+    if raw is None:
+        raise bad_field(name, "is required (Unix seconds)")
+    try:
+        v = float(raw)
+    except ValueError as e:
+        raise bad_field(name, f"must be Unix seconds, got {raw!r}") from e
+    if not math.isfinite(v):
+        raise bad_field(name, f"must be finite, got {raw!r}")
+    return v
+
+
+async def export(request: web.Request) -> web.StreamResponse:
+    """``GET /v1/admin/export?from=&to=&bin=&format=csv|npz[&board=..][&tag=..]``: binned calibrated RSSI."""
+    require_admin(request)
+    from listenpost.collector.models.export import bin_readings, write_csv, write_npz
+
+    t_from, t_to = _query_time(request, "from"), _query_time(request, "to")
+    if t_to <= t_from:
+        raise bad_field("to", "must be after from")
+    if t_to - t_from > MAX_EXPORT_SECONDS:
+        raise bad_field("to", f"the range may span at most {MAX_EXPORT_SECONDS // 86400} days")
+    try:
+        bin_s = float(request.query.get("bin", "1"))
+    except ValueError as e:
+        raise bad_field("bin", "must be seconds") from e
+    if not math.isfinite(bin_s) or bin_s <= 0 or (t_to - t_from) / bin_s > 10_000_000:
+        raise bad_field("bin", "must be > 0 seconds and give at most 10 million bins")
+    fmt = request.query.get("format", "csv")
+    if fmt not in ("csv", "npz"):
+        raise bad_field("format", f"must be csv or npz, got {fmt!r}")
+    boards = request.query.getall("board", []) or None
+    tags = request.query.getall("tag", []) or None
+    store = request.app[STORE]
+    rows = await store.readings(t_from, t_to, boards=boards, tags=tags)
+    all_boards = boards or sorted(b.name for b in await store.list_boards())
+    all_tags = tags or sorted(set(rows.tag.tolist()) | set(await store.list_tags()))
+
+    try:  # size and name checks are cheap: do them here so a refusal is a 400, not a 500
+        table = bin_readings(rows, t_from, t_to, bin_s, all_boards, all_tags)
+    except ValueError as e:
+        raise bad_field("bin", str(e)) from e
+
+    def render() -> bytes:
+        with tempfile.TemporaryDirectory() as d:
+            path = Path(d) / f"export.{fmt}"
+            (write_csv if fmt == "csv" else write_npz)(table, path)
+            return path.read_bytes()
+
+    # Binning and compression are CPU work: keep the event loop free for boards meanwhile.
+    data = await asyncio.get_running_loop().run_in_executor(None, render)
+    ctype = "text/csv" if fmt == "csv" else "application/octet-stream"
+    return web.Response(body=data, content_type=ctype,
+                        headers={"Content-Disposition": f'attachment; filename="listenpost-export.{fmt}"',
+                                 "X-Readings": str(len(rows.tag))})
+
+
+def _calibration_json(c: Calibration) -> dict[str, Any]:
+    return {"at": c.at, "offset_db": c.offset_db, "spread_db": c.spread_db, "samples": c.samples,
+            "reference_tag": c.reference_tag, "distance_m": c.distance_m}
+
+
+async def calibrate(request: web.Request) -> web.Response:
+    """
+    ``POST /v1/admin/boards/{name}/calibrate`` ``{tag, distance_m, minutes?, power_1m_dbm?, exponent?}``.
+
+    The offset comes from the reference tag's readings of the last ``minutes`` (collector/calibration.py);
+    the result goes into the board's history and becomes its current offset.
+    """
+    require_admin(request)
+    from listenpost.collector.models.calibration import calibrate_offset
+
+    board = await _board_or_404(request)
+    body = await _json_object(request)
+    try:
+        tag = parse_tag_id(_str_field(body, "tag", max_len=200) or "")
+    except DecodeError as e:
+        raise bad_field("tag", str(e)) from e
+    distance = _number_field(body, "distance_m", 0.1, 100.0)
+    minutes = _number_field(body, "minutes", 0.5, 240.0, default=5.0)
+    power = _number_field(body, "power_1m_dbm", -120.0, 20.0, default=-59.0)
+    exponent = _number_field(body, "exponent", 1.0, 6.0, default=2.0)
+    store, now = request.app[STORE], request.app[CLOCK].time()
+    rows = await store.readings(now - minutes * 60, now, boards=[board.name], tags=[tag])
+    # The board's current offset is already in the stored RSSI; calibrate against the raw values.
+    raw_dbm = (rows.rssi_dd - rows.offset_dd) / 10.0
+    if len(raw_dbm) == 0:
+        raise ApiError(409, "no_readings", f"board {board.name!r} has no readings of {tag} in the last "
+                       f"{minutes:g} minutes", field="tag")
+    try:
+        result = calibrate_offset(np.asarray(raw_dbm, dtype=float), distance_m=distance, p1_dbm=power,
+                                  exponent=exponent)
+    except ValueError as e:
+        raise bad_field("distance_m", str(e)) from e
+    cal = Calibration(board.name, now, float(result.offset_db), float(result.spread_db), int(result.samples), tag,
+                      distance, board.fingerprint)
+    await store.set_offset(cal)
+    request.app[RUNTIME].token_cache.clear()  # cached Board records carry the old offset
+    await store.add_event(Event(now, board.name, "calibrated", {**_calibration_json(cal),
+                                                                "warnings": [str(w) for w in result.warnings]}))
+    log.info("board_calibrated", board=board.name, offset_db=cal.offset_db, spread_db=cal.spread_db,
+             samples=cal.samples)
+    return web.json_response({**_calibration_json(cal), "board": board.name, "warnings": [str(w) for w in result.warnings],
+                              "median_dbm": result.median_dbm, "previous_offset_db": board.offset_db})
+
+
+async def walktest(request: web.Request) -> web.Response:
+    """
+    ``POST /v1/admin/walktest`` ``{tag, marks: [{room, from, to}]}`` → per room, the board that heard the
+    reference tag strongest and by how many dB over the runner-up (collector/calibration.py ``walk_report``).
+    """
+    require_admin(request)
+    from listenpost.collector.models.calibration import walk_report
+
+    body = await _json_object(request)
+    try:
+        tag = parse_tag_id(_str_field(body, "tag", max_len=200) or "")
+    except DecodeError as e:
+        raise bad_field("tag", str(e)) from e
+    raw_marks = body.get("marks")
+    if not isinstance(raw_marks, list) or not raw_marks or len(raw_marks) > 1000:
+        raise bad_field("marks", "must be a list of 1-1000 {room, from, to} objects")
+    marks = []
+    for i, m in enumerate(raw_marks):
+        if not isinstance(m, dict):
+            raise bad_field(f"marks[{i}]", "must be an object")
+        room = _str_field(m, "room")
+        t0 = _number_field(m, "from", 0, 1e11)
+        t1 = _number_field(m, "to", 0, 1e11)
+        if t1 <= t0:
+            raise bad_field(f"marks[{i}].to", "must be after from")
+        marks.append((room, t0, t1))
+    store = request.app[STORE]
+    rows = await store.readings(min(m[1] for m in marks), max(m[2] for m in marks), tags=[tag])
+    boards = await store.list_boards()
+    room_of = {b.name: b.room for b in boards}
+    floors = {b.room: b.floor for b in boards if b.floor is not None}
+    rssi_dbm = rows.rssi_dd / 10.0
+    walk_rows = [(b, room_of.get(b, "?"), float(t), float(r))
+                 for b, t, r in zip(rows.board.tolist(), rows.t_collector.tolist(), rssi_dbm.tolist(), strict=True)]
+    try:
+        report = walk_report(marks, walk_rows, floors=floors)
+    except ValueError as e:
+        raise bad_field("marks", str(e)) from e
+    return web.json_response({"tag": tag, "readings": len(walk_rows),
+                              "rooms": [dataclasses.asdict(r) for r in report]})
+
+
+def add_routes(app: web.Application) -> None:
+    r = app.router
+    r.add_post("/v1/admin/boards", add_board)
+    r.add_get("/v1/admin/boards", list_boards, allow_head=False)
+    r.add_get("/v1/admin/boards/{name}", show_board, allow_head=False)
+    r.add_post("/v1/admin/boards/{name}/retire", retire_board)
+    r.add_post("/v1/admin/boards/{name}/reissue", reissue_board)
+    r.add_post("/v1/admin/boards/{name}/calibrate", calibrate)
+    r.add_post("/v1/admin/tags", import_tags)
+    r.add_get("/v1/admin/tags", list_tags, allow_head=False)
+    r.add_post("/v1/admin/tags/retire", retire_tags)
+    r.add_get("/v1/admin/events", events, allow_head=False)
+    r.add_get("/v1/admin/export", export, allow_head=False)
+    r.add_post("/v1/admin/walktest", walktest)

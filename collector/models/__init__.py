@@ -1,0 +1,1 @@
+"""Pure numerics over stored data: clock fit, liveness, calibration, export."""

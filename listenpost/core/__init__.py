@@ -1,0 +1,1 @@
+"""What agent and collector share: records, wire protocol, identities, time, settings, errors, logs."""

@@ -1,0 +1,268 @@
+"""
+Wire protocol v1: the batch body both sides agree on.
+
+The agent's uplink writes it, the collector's api validates it; both use these functions, so
+the digest and the columnar layout have exactly one definition.
+
+A batch body (JSON, usually gzip'd)::
+
+    {"v": 1, "board": "g0-a", "boot": "<boot id>", "epoch": "<16 hex>", "seq": 17,
+     "digest": "<sha256 hex of the content>", "clock": {"t1":..,"t2":..,"t3":..,"t4":..} | null,
+     "t1": <board monotonic seconds at send>,
+     "content": {                       # what the digest covers; fixed at seal time
+        "boot": "<boot id>", "offset_db": 2.5,
+        "readings": {"t0_ms": 51234, "dt_ms": [0, 3, ...], "tags": ["ibeacon:...", ...],
+                     "tag": [0, 1, ...], "rssi_dd": [-671, ...]},
+        "telemetry": [{"tag": "...", "t_ms": 51240, "battery_mv": 2980, ...}],
+        "gap": null | {"first_seq": 3, "last_seq": 9, "readings": 4200, "reason": "spool_full"}}}
+
+- ``t0_ms``/``dt_ms``: board monotonic milliseconds of the first reading, then non-negative deltas
+  (readings are sorted by time when sealed).
+- ``tag``: index into ``tags``, the distinct identities of this batch.
+- ``rssi_dd``: RSSI after the board offset, in tenths of a dB (``offset_db`` says what was added).
+- ``clock``: the four timestamps of the *previous* exchange (RFC 5905): t1 board send and t4 board
+  receive in board monotonic seconds, t2/t3 collector receive/reply in collector Unix seconds.
+- A gap record has ``readings`` empty and ``gap`` set; it takes its own ``seq``.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import re
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from itertools import accumulate
+from typing import Any
+
+from listenpost.core.errors import DecodeError
+from listenpost.core.records import Reading, Telemetry
+
+VERSION = 1
+GAP_REASONS = ("spool_full", "spool_corrupt", "dead_letter")
+
+
+class WireError(DecodeError):
+    """A batch body that breaks the protocol; ``field`` names the offending field."""
+
+    def __init__(self, field: str, problem: str) -> None:
+        super().__init__(f"{field}: {problem}")
+        self.field = field
+
+
+def canonical_json(obj: Any) -> bytes:
+    """The one serialisation the digest is computed over."""
+    return json.dumps(obj, sort_keys=True, separators=(",", ":"), ensure_ascii=True, allow_nan=False).encode()
+
+
+def digest(content: Mapping[str, Any] | bytes) -> str:
+    """sha256 hex of the canonical content (given as a mapping, or as its canonical bytes)."""
+    raw = content if isinstance(content, bytes) else canonical_json(content)
+    return hashlib.sha256(raw).hexdigest()
+
+
+def encode_content(readings: Sequence[Reading], *, boot: str, offset_db: float,
+                   gap: Mapping[str, Any] | None = None) -> dict[str, Any]:
+    """Columnar content of one sealed batch (readings sorted by time here)."""
+    rs = sorted(readings, key=lambda r: r.t_mono_ns)
+    tags: dict[str, int] = {}
+    t_ms = [r.t_mono_ns // 1_000_000 for r in rs]
+    cols: dict[str, Any] = {
+        "t0_ms": t_ms[0] if t_ms else 0,
+        "dt_ms": [b - a for a, b in zip([t_ms[0], *t_ms[:-1]] if t_ms else [], t_ms, strict=True)],
+        "tags": [],
+        "tag": [tags.setdefault(r.tag, len(tags)) for r in rs],
+        "rssi_dd": [round(r.rssi_dbm * 10) for r in rs],
+    }
+    cols["tags"] = list(tags)
+    telemetry = [
+        {"tag": r.tag, "t_ms": r.t_mono_ns // 1_000_000,
+         **{k: v for k, v in (("battery_mv", r.telemetry.battery_mv), ("temperature_c", r.telemetry.temperature_c),
+                             ("adv_count", r.telemetry.adv_count), ("uptime_s", r.telemetry.uptime_s)) if v is not None}}
+        for r in rs if r.telemetry is not None
+    ]
+    return {"boot": boot, "offset_db": float(offset_db), "readings": cols, "telemetry": telemetry,
+            "gap": dict(gap) if gap is not None else None}
+
+
+@dataclass(frozen=True, slots=True)
+class DecodedContent:
+    """A validated batch content, unpacked to one row per reading."""
+
+    boot: str
+    offset_db: float
+    t_ms: list[int]
+    tags: list[str]
+    rssi_dd: list[int]
+    telemetry: list[dict[str, Any]]
+    gap: dict[str, Any] | None
+
+    def readings(self) -> Iterable[Reading]:
+        tel = {(t["tag"], t["t_ms"]): t for t in self.telemetry}
+        for t, tag, rssi in zip(self.t_ms, self.tags, self.rssi_dd, strict=True):
+            x = tel.get((tag, t))
+            yield Reading(tag, t * 1_000_000, rssi / 10,
+                          Telemetry(x.get("battery_mv"), x.get("temperature_c"), x.get("adv_count"), x.get("uptime_s"))
+                          if x else None)
+
+
+def _int_list(obj: Any, field: str, lo: int, hi: int) -> list[int]:
+    if not isinstance(obj, list):
+        raise WireError(field, "must be a list of integers")
+    # Fast path for what json.loads produces (plain ints): the type test and the range test run in C,
+    # not once per element in Python. Anything else falls through to the loop, which names the first bad
+    # index exactly as before (and still accepts int subclasses other than bool).
+    if not obj or (set(map(type, obj)) == {int} and lo <= min(obj) and max(obj) <= hi):
+        return obj
+    for i, v in enumerate(obj):
+        if not isinstance(v, int) or isinstance(v, bool) or not lo <= v <= hi:
+            raise WireError(f"{field}[{i}]", f"must be an integer in {lo}..{hi}, got {v!r}")
+    return obj
+
+
+def decode_content(content: Any, *, max_readings: int = 200_000) -> DecodedContent:
+    """Validate a batch content and unpack it; raises `WireError` naming the first bad field."""
+    if not isinstance(content, dict):
+        raise WireError("content", "must be an object")
+    boot = content.get("boot")
+    if not isinstance(boot, str) or not 1 <= len(boot) <= 64:
+        raise WireError("content.boot", "must be a string of 1-64 characters")
+    offset = content.get("offset_db")
+    if not isinstance(offset, int | float) or isinstance(offset, bool) or not math.isfinite(offset) or abs(offset) > 40:
+        raise WireError("content.offset_db", f"must be a number within ±40, got {offset!r}")
+    gap = content.get("gap")
+    if gap is not None:
+        if not isinstance(gap, dict):
+            raise WireError("content.gap", "must be an object or null")
+        for k in ("first_seq", "last_seq", "readings"):
+            v = gap.get(k)
+            if not isinstance(v, int) or isinstance(v, bool) or v < 0:
+                raise WireError(f"content.gap.{k}", f"must be a non-negative integer, got {v!r}")
+        if gap["last_seq"] < gap["first_seq"]:
+            raise WireError("content.gap.last_seq", "must be >= first_seq")
+        if gap.get("reason") not in GAP_REASONS:
+            raise WireError("content.gap.reason", f"must be one of {', '.join(GAP_REASONS)}, got {gap.get('reason')!r}")
+    cols = content.get("readings")
+    if not isinstance(cols, dict):
+        raise WireError("content.readings", "must be an object")
+    t0 = cols.get("t0_ms")
+    if not isinstance(t0, int) or isinstance(t0, bool) or not 0 <= t0 < 2**53:
+        raise WireError("content.readings.t0_ms", f"must be a non-negative integer, got {t0!r}")
+    dt = _int_list(cols.get("dt_ms"), "content.readings.dt_ms", 0, 2**40)
+    n = len(dt)
+    if n > max_readings:
+        raise WireError("content.readings", f"has {n} readings, more than {max_readings}")
+    tags = cols.get("tags")
+    if not isinstance(tags, list) or not all(isinstance(x, str) and 0 < len(x) <= 200 for x in tags):
+        raise WireError("content.readings.tags", "must be a list of tag identity strings")
+    idx = _int_list(cols.get("tag"), "content.readings.tag", 0, max(len(tags) - 1, 0))
+    rssi = _int_list(cols.get("rssi_dd"), "content.readings.rssi_dd", -2000, 500)
+    if len(idx) != n or len(rssi) != n:
+        raise WireError("content.readings", f"columns differ in length: dt_ms {n}, tag {len(idx)}, rssi_dd {len(rssi)}")
+    if n and not tags:
+        raise WireError("content.readings.tags", "is empty but there are readings")
+    if gap is not None and n:
+        raise WireError("content.gap", "a gap record carries no readings")
+    t_ms = list(accumulate(dt, initial=t0))
+    del t_ms[0]
+    telemetry = content.get("telemetry") or []
+    if not isinstance(telemetry, list):
+        raise WireError("content.telemetry", "must be a list")
+    for i, x in enumerate(telemetry):
+        if not isinstance(x, dict) or not isinstance(x.get("tag"), str) or not isinstance(x.get("t_ms"), int):
+            raise WireError(f"content.telemetry[{i}]", "must be an object with tag and t_ms")
+        for k in ("battery_mv", "temperature_c", "adv_count", "uptime_s"):
+            v = x.get(k)
+            if v is not None and (not isinstance(v, int | float) or isinstance(v, bool) or not math.isfinite(v)):
+                raise WireError(f"content.telemetry[{i}].{k}", f"must be a number, got {v!r}")
+    return DecodedContent(boot, float(offset), t_ms, list(map(tags.__getitem__, idx)), rssi, telemetry, gap)
+
+
+# ------------------------------------------------------------------ the batch envelope
+
+@dataclass(frozen=True, slots=True)
+class BatchEnvelope:
+    """The outer fields of ``POST /v1/batches`` plus the validated content (docs/wire-protocol.md)."""
+
+    board: str
+    boot: str
+    """The board's boot at send time (content.boot is the boot at seal time; they differ after a reboot)."""
+    epoch: str
+    seq: int
+    digest: str
+    t1: float
+    """Board monotonic seconds at send, in ``boot``."""
+    clock: tuple[float, float, float, float] | None
+    """The previous exchange's t1..t4, or ``None`` on the first request of a boot."""
+    content: DecodedContent
+
+
+def encode_batch(*, board: str, boot: str, epoch: str, seq: int, digest: str, t1: float,
+                 clock: Mapping[str, float] | None, content: bytes) -> bytes:
+    """
+    One request body of ``POST /v1/batches``.
+
+    ``content`` is the canonical JSON the digest was computed over at seal time: it goes into the body
+    as the very bytes that were digested, never decoded and encoded again.
+    """
+    head = canonical_json({"v": VERSION, "board": board, "boot": boot, "epoch": epoch, "seq": seq,
+                           "digest": digest, "clock": dict(clock) if clock is not None else None, "t1": t1})
+    return head[:-1] + b',"content":' + content + b"}"
+
+
+def _finite(obj: Mapping[str, Any], key: str, field: str) -> float:
+    v = obj.get(key)
+    if not isinstance(v, int | float) or isinstance(v, bool) or not math.isfinite(v):
+        raise WireError(field, f"must be a finite number, got {v!r}")
+    return float(v)
+
+
+def parse_clock(obj: Any, field: str = "clock") -> tuple[float, float, float, float] | None:
+    """Validate a ``{"t1".."t4"}`` exchange (or null): board send ≤ board receive, collector receive ≤ reply."""
+    if obj is None:
+        return None
+    if not isinstance(obj, dict):
+        raise WireError(field, "must be an object with t1..t4, or null")
+    t1, t2, t3, t4 = (_finite(obj, k, f"{field}.{k}") for k in ("t1", "t2", "t3", "t4"))
+    if t4 < t1:
+        raise WireError(f"{field}.t4", "must be >= t1 (board receive after board send)")
+    if t3 < t2:
+        raise WireError(f"{field}.t3", "must be >= t2 (collector reply after collector receive)")
+    return t1, t2, t3, t4
+
+
+_EPOCH = re.compile(r"^[0-9a-f]{8,32}$")
+_DIGEST = re.compile(r"^[0-9a-f]{64}$")
+
+
+def parse_batch(body: Any, *, max_readings: int) -> BatchEnvelope:
+    """Validate a batch body; raises `WireError` whose ``field`` names the first bad field."""
+    if not isinstance(body, dict):
+        raise WireError("body", "must be a JSON object")
+    if body.get("v") != VERSION:
+        raise WireError("v", f"must be {VERSION}, got {body.get('v')!r}")
+    board = body.get("board")
+    if not isinstance(board, str) or not board:
+        raise WireError("board", "must be the board name")
+    boot = body.get("boot")
+    if not isinstance(boot, str) or not 1 <= len(boot) <= 64:
+        raise WireError("boot", "must be a string of 1-64 characters")
+    epoch = body.get("epoch")
+    if not isinstance(epoch, str) or not _EPOCH.match(epoch):
+        raise WireError("epoch", f"must be 8-32 lower-case hex characters, got {epoch!r}")
+    seq = body.get("seq")
+    if not isinstance(seq, int) or isinstance(seq, bool) or not 0 <= seq < 2**62:
+        raise WireError("seq", f"must be a non-negative integer, got {seq!r}")
+    dig = body.get("digest")
+    if not isinstance(dig, str) or not _DIGEST.match(dig):
+        raise WireError("digest", "must be 64 lower-case hex characters (sha256)")
+    t1 = _finite(body, "t1", "t1")
+    clock = parse_clock(body.get("clock"))
+    raw = body.get("content")
+    if not isinstance(raw, dict):
+        raise WireError("content", "must be an object")
+    content = decode_content(raw, max_readings=max_readings)
+    if digest(raw) != dig:
+        raise WireError("digest", "does not match the content")
+    return BatchEnvelope(board, boot, epoch, seq, dig, t1, clock, content)

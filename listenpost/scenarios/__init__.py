@@ -1,0 +1,1 @@
+"""The scenario files the simulator and the demo read (package data)."""
