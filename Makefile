@@ -17,6 +17,7 @@ demo: $(STAMP)
 
 test: $(STAMP)
 	$(BIN)/ruff check agent collector listenpost tests bench
+	$(BIN)/mypy listenpost/core
 	$(BIN)/python -m pytest
 
 bench: $(STAMP)
