@@ -17,6 +17,7 @@ demo: $(STAMP)
 
 test: $(STAMP)
 	$(BIN)/ruff check agent collector listenpost tests bench
+	$(BIN)/ruff format --check --quiet agent collector listenpost tests bench systemd replay_logs
 	$(BIN)/mypy listenpost/core
 	$(BIN)/python -m pytest
 
@@ -25,6 +26,7 @@ bench: $(STAMP)
 
 lint: $(STAMP)
 	$(BIN)/ruff check agent collector listenpost tests bench
+	$(BIN)/ruff format --check agent collector listenpost tests bench systemd replay_logs
 
 clean:
 	rm -rf $(VENV) .pytest_cache

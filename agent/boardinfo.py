@@ -33,8 +33,13 @@ class BoardInfo:
     """One-minute load average."""
 
     def as_dict(self) -> dict[str, Any]:
-        return {"cpu_temperature_c": self.cpu_temperature_c, "disk_free_bytes": self.disk_free_bytes,
-                "disk_total_bytes": self.disk_total_bytes, "uptime_s": self.uptime_s, "load_1m": self.load_1m}
+        return {
+            "cpu_temperature_c": self.cpu_temperature_c,
+            "disk_free_bytes": self.disk_free_bytes,
+            "disk_total_bytes": self.disk_total_bytes,
+            "uptime_s": self.uptime_s,
+            "load_1m": self.load_1m,
+        }
 
 
 def _read(path: Path) -> str | None:
@@ -106,6 +111,7 @@ def board_info(state_dir: str | Path, root: Path = _ROOT) -> BoardInfo:
 
 # ------------------------------------------------------------------ hardware fingerprint
 
+
 def machine_id(root: Path = _ROOT) -> str | None:
     """systemd's machine id (``/etc/machine-id``), regenerated on a freshly flashed card by cloud-init."""
     value = _read(root / "etc/machine-id")
@@ -139,5 +145,9 @@ def device_model(root: Path = _ROOT) -> str | None:
 
 def fingerprint(root: Path = _ROOT) -> dict[str, Any]:
     """The hardware fingerprint sent at enrollment: machine id, hostname, adapters, model."""
-    return {"machine_id": machine_id(root), "hostname": socket.gethostname(),
-            "adapters": bluetooth_adapters(root), "model": device_model(root)}
+    return {
+        "machine_id": machine_id(root),
+        "hostname": socket.gethostname(),
+        "adapters": bluetooth_adapters(root),
+        "model": device_model(root),
+    }

@@ -14,83 +14,145 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
     p = sub.add_parser(name, help=help_text, description=help_text)
     cmds = p.add_subparsers(dest="command", metavar="{run,replay,enroll,record,check-config}", required=True)
 
-    run = cmds.add_parser("run", help="scan and upload until stopped (what the systemd unit runs)",
-                          description="Scan with the configured source, spool durably and upload to the collector.")
-    run.add_argument("--config", required=True, type=Path, metavar="FILE", help="agent.yaml (written by 'agent enroll')")
+    run = cmds.add_parser(
+        "run",
+        help="scan and upload until stopped (what the systemd unit runs)",
+        description="Scan with the configured source, spool durably and upload to the collector.",
+    )
+    run.add_argument(
+        "--config", required=True, type=Path, metavar="FILE", help="agent.yaml (written by 'agent enroll')"
+    )
     run.set_defaults(func=_run)
 
     rp = cmds.add_parser(
-        "replay", help="replay recordings or btsnoop captures through the agent",
+        "replay",
+        help="replay recordings or btsnoop captures through the agent",
         description="Replay recorded logs (.jsonl, .jsonl.gz) or btsnoop captures (detected by content) "
-                    "through decode, filter and calibrate. With --dry-run, print one JSON object per reading "
-                    "on stdout and a summary on stderr; without it, upload as the board of --config "
-                    "(the collector places the recording so that it ends when the replay ends).")
-    rp.add_argument("files", nargs="+", type=Path, metavar="FILE", help="recorded log or btsnoop capture (gzip'd or not)")
+        "through decode, filter and calibrate. With --dry-run, print one JSON object per reading "
+        "on stdout and a summary on stderr; without it, upload as the board of --config "
+        "(the collector places the recording so that it ends when the replay ends).",
+    )
+    rp.add_argument(
+        "files", nargs="+", type=Path, metavar="FILE", help="recorded log or btsnoop capture (gzip'd or not)"
+    )
     rp.add_argument("--dry-run", action="store_true", help="upload nothing; print what the board would send")
-    rp.add_argument("--config", type=Path, metavar="FILE",
-                    help="agent.yaml: board, decode rules, tags, offset, collector (an enrolled board's "
-                         "cached collector config counts)")
-    rp.add_argument("--tags", type=Path, metavar="TAGFILE", help="registered tags: one canonical ID per line, '#' comments")
-    rp.add_argument("--offset-db", type=float, metavar="DB", help="board RSSI offset in dB (overrides the config)")
+    rp.add_argument(
+        "--config",
+        type=Path,
+        metavar="FILE",
+        help="agent.yaml: board, decode rules, tags, offset, collector (an enrolled board's "
+        "cached collector config counts)",
+    )
+    rp.add_argument(
+        "--tags",
+        type=Path,
+        metavar="TAGFILE",
+        help="registered tags: one canonical ID per line, '#' comments",
+    )
+    rp.add_argument(
+        "--offset-db", type=float, metavar="DB", help="board RSSI offset in dB (overrides the config)"
+    )
     speed = rp.add_mutually_exclusive_group()
-    speed.add_argument("--speed", type=float, metavar="S", help="replay S times faster than recorded (default 1)")
+    speed.add_argument(
+        "--speed", type=float, metavar="S", help="replay S times faster than recorded (default 1)"
+    )
     speed.add_argument("--fast", action="store_true", help="replay as fast as possible")
     rp.set_defaults(func=_replay)
 
-    en = cmds.add_parser("enroll", help="exchange a one-time enrollment code for this board's credential",
-                         description="Enroll this board with the collector; store the credential (mode 0600) "
-                                     "and write a complete agent.yaml into the state directory.")
-    en.add_argument("--collector", required=True, metavar="URL", help="collector base URL, e.g. http://10.0.0.2:8470")
+    en = cmds.add_parser(
+        "enroll",
+        help="exchange a one-time enrollment code for this board's credential",
+        description="Enroll this board with the collector; store the credential (mode 0600) "
+        "and write a complete agent.yaml into the state directory.",
+    )
+    en.add_argument(
+        "--collector", required=True, metavar="URL", help="collector base URL, e.g. http://10.0.0.2:8470"
+    )
     en.add_argument("--code", required=True, help="enrollment code printed by 'collector board add'")
-    en.add_argument("--state-dir", type=Path, default=Path("/var/lib/listenpost/agent"), metavar="DIR",
-                    help="where the credential, config, cache and spool live (default %(default)s)")
-    en.add_argument("--ca-file", type=Path, metavar="PEM",
-                    help="trust only this CA for the collector's certificate (a private or self-signed one)")
+    en.add_argument(
+        "--state-dir",
+        type=Path,
+        default=Path("/var/lib/listenpost/agent"),
+        metavar="DIR",
+        help="where the credential, config, cache and spool live (default %(default)s)",
+    )
+    en.add_argument(
+        "--ca-file",
+        type=Path,
+        metavar="PEM",
+        help="trust only this CA for the collector's certificate (a private or self-signed one)",
+    )
     en.set_defaults(func=_enroll)
 
-    rec = cmds.add_parser("record", help="record a live source to the replay format",
-                          description="Write every advertisement the source hears to a recorded log "
-                                      "(JSON Lines; gzip'd when FILE ends in .gz), for replay later.")
+    rec = cmds.add_parser(
+        "record",
+        help="record a live source to the replay format",
+        description="Write every advertisement the source hears to a recorded log "
+        "(JSON Lines; gzip'd when FILE ends in .gz), for replay later.",
+    )
     rec.add_argument("--out", required=True, type=Path, metavar="FILE", help="recording to write")
-    rec.add_argument("--config", type=Path, metavar="FILE", help="agent.yaml whose source section to use (default: bleak, default adapter)")
+    rec.add_argument(
+        "--config",
+        type=Path,
+        metavar="FILE",
+        help="agent.yaml whose source section to use (default: bleak, default adapter)",
+    )
     rec.add_argument("--source", choices=("bleak", "hci"), help="override the source kind")
     rec.add_argument("--adapter", metavar="hciN", help="adapter to scan with")
-    rec.add_argument("--seconds", type=float, metavar="S", help="stop after this many seconds (default: until Ctrl-C)")
+    rec.add_argument(
+        "--seconds", type=float, metavar="S", help="stop after this many seconds (default: until Ctrl-C)"
+    )
     rec.set_defaults(func=_record)
 
-    cc = cmds.add_parser("check-config", help="validate an agent.yaml and print what it means",
-                         description="Load and validate an agent.yaml; exit 2 with the key path on error.")
+    cc = cmds.add_parser(
+        "check-config",
+        help="validate an agent.yaml and print what it means",
+        description="Load and validate an agent.yaml; exit 2 with the key path on error.",
+    )
     cc.add_argument("file", type=Path, metavar="FILE", help="agent.yaml")
     cc.set_defaults(func=_check_config)
 
 
 def _run(args: argparse.Namespace) -> int:
     from listenpost.agent.service import run_command
+
     return run_command(args.config)
 
 
 def _replay(args: argparse.Namespace) -> int:
     from listenpost.agent.runner import replay_command
+
     if args.speed is not None and args.speed <= 0:
         raise ConfigError(f"--speed: must be > 0, got {args.speed}")
-    return replay_command(args.files, dry_run=args.dry_run, config=args.config, tags=args.tags,
-                          offset_db=args.offset_db, speed=0.0 if args.fast else (args.speed or 1.0))
+    return replay_command(
+        args.files,
+        dry_run=args.dry_run,
+        config=args.config,
+        tags=args.tags,
+        offset_db=args.offset_db,
+        speed=0.0 if args.fast else (args.speed or 1.0),
+    )
 
 
 def _enroll(args: argparse.Namespace) -> int:
     from listenpost.agent.client.enroll import enroll_command
+
     return enroll_command(args.collector, args.code, args.state_dir, ca_file=args.ca_file)
 
 
 def _record(args: argparse.Namespace) -> int:
     from listenpost.agent.record import record_command
-    return record_command(args.out, config=args.config, source=args.source, adapter=args.adapter, seconds=args.seconds)
+
+    return record_command(
+        args.out, config=args.config, source=args.source, adapter=args.adapter, seconds=args.seconds
+    )
 
 
 def _check_config(args: argparse.Namespace) -> int:
     from dataclasses import asdict
 
     from listenpost.agent.config import load_agent_config
+
     cfg = load_agent_config(args.file)
     out = asdict(cfg)
     out["rules"] = [{**r, "prefix": r["prefix"].hex()} for r in out["rules"]]

@@ -98,14 +98,24 @@ class AgentConfig:
 def parse_agent_config(data: Any, origin: str = "agent.yaml", base_dir: Path | None = None) -> AgentConfig:
     """Validate a parsed ``agent.yaml``. Relative ``state_dir`` is taken from ``base_dir``."""
     top = Section(data, "", origin)
-    board = top.get("board", str, check=lambda v: None if BOARD_NAME.fullmatch(v) else
-                    "must be 1-63 lower-case letters, digits, '.', '_' or '-'")
+    board = top.get(
+        "board",
+        str,
+        check=lambda v: (
+            None if BOARD_NAME.fullmatch(v) else "must be 1-63 lower-case letters, digits, '.', '_' or '-'"
+        ),
+    )
     state_dir = top.get("state_dir", str, ".")
     if base_dir is not None and not Path(state_dir).is_absolute():
         state_dir = str((base_dir / state_dir).resolve())
 
     c = top.section("collector")
-    url = c.get("url", str, None, check=lambda v: None if re.match(r"^https?://[^/\s]+", v) else "must be an http(s) URL")
+    url = c.get(
+        "url",
+        str,
+        None,
+        check=lambda v: None if re.match(r"^https?://[^/\s]+", v) else "must be an http(s) URL",
+    )
     collector = CollectorConfig(
         url=url.rstrip("/") if url else None,
         credential_file=c.get("credential_file", str, "credential"),
@@ -116,8 +126,18 @@ def parse_agent_config(data: Any, origin: str = "agent.yaml", base_dir: Path | N
 
     s = top.section("source")
     source = SourceConfig(
-        kind=s.get("kind", str, "bleak", check=lambda v: None if v in SOURCE_KINDS else f"must be one of {', '.join(SOURCE_KINDS)}"),
-        adapter=s.get("adapter", str, None, check=lambda v: None if re.fullmatch(r"hci\d+", v) else "must look like hci0"),
+        kind=s.get(
+            "kind",
+            str,
+            "bleak",
+            check=lambda v: None if v in SOURCE_KINDS else f"must be one of {', '.join(SOURCE_KINDS)}",
+        ),
+        adapter=s.get(
+            "adapter",
+            str,
+            None,
+            check=lambda v: None if re.fullmatch(r"hci\d+", v) else "must look like hci0",
+        ),
         files=tuple(s.get("files", list, [])),
         speed=s.get("speed", float, 1.0, non_negative),
         stall_seconds=s.get("stall_seconds", float, 60.0, positive),
@@ -135,13 +155,17 @@ def parse_agent_config(data: Any, origin: str = "agent.yaml", base_dir: Path | N
     d.done()
 
     cal = top.section("calibration")
-    offset_db = cal.get("offset_db", float, 0.0, check=lambda v: None if -40 <= v <= 40 else "must be within ±40 dB")
+    offset_db = cal.get(
+        "offset_db", float, 0.0, check=lambda v: None if -40 <= v <= 40 else "must be within ±40 dB"
+    )
     cal.done()
 
     sp = top.section("spool")
     spool = SpoolConfig(
         path=sp.get("path", str, "spool.sqlite"),
-        max_bytes=sp.get("max_bytes", int, 64 * 1024 * 1024, check=lambda v: None if v >= 65536 else "must be >= 65536"),
+        max_bytes=sp.get(
+            "max_bytes", int, 64 * 1024 * 1024, check=lambda v: None if v >= 65536 else "must be >= 65536"
+        ),
         flush_seconds=sp.get("flush_seconds", float, 5.0, positive),
     )
     sp.done()
@@ -161,12 +185,37 @@ def parse_agent_config(data: Any, origin: str = "agent.yaml", base_dir: Path | N
     h.done()
 
     lg = top.section("log")
-    log_format = lg.get("format", str, "auto", check=lambda v: None if v in ("auto", "json", "console") else "must be auto, json or console")
-    log_level = lg.get("level", str, "info", check=lambda v: None if v in ("debug", "info", "warning", "error") else "must be debug, info, warning or error")
+    log_format = lg.get(
+        "format",
+        str,
+        "auto",
+        check=lambda v: None if v in ("auto", "json", "console") else "must be auto, json or console",
+    )
+    log_level = lg.get(
+        "level",
+        str,
+        "info",
+        check=lambda v: (
+            None if v in ("debug", "info", "warning", "error") else "must be debug, info, warning or error"
+        ),
+    )
     lg.done()
     top.done()
-    return AgentConfig(board, state_dir, collector, source, tags_file, rules, offset_db, spool, uplink,
-                       heartbeat, log_format, log_level, origin)
+    return AgentConfig(
+        board,
+        state_dir,
+        collector,
+        source,
+        tags_file,
+        rules,
+        offset_db,
+        spool,
+        uplink,
+        heartbeat,
+        log_format,
+        log_level,
+        origin,
+    )
 
 
 def load_agent_config(path: str | Path) -> AgentConfig:

@@ -36,7 +36,9 @@ class RecordResult:
     """Clock time the recording ran."""
 
 
-async def record(out: Path, source: Source, clock: Clock, *, board: str, seconds: float | None) -> RecordResult:
+async def record(
+    out: Path, source: Source, clock: Clock, *, board: str, seconds: float | None
+) -> RecordResult:
     """
     Copy ``source`` into a recording at ``out`` until ``seconds`` of clock time pass (or for ever).
 
@@ -77,12 +79,14 @@ async def record(out: Path, source: Source, clock: Clock, *, board: str, seconds
     return RecordResult(writer.count if writer else 0, len(addresses), clock.monotonic() - start)
 
 
-def record_command(out: Path, *, config: Path | None, source: str | None, adapter: str | None,
-                   seconds: float | None) -> int:
+def record_command(
+    out: Path, *, config: Path | None, source: str | None, adapter: str | None, seconds: float | None
+) -> int:
     """Entry point of ``listenpost agent record``; returns the exit code."""
     kind, board, stall = "bleak", socket.gethostname().lower() or "board", 60.0
     if config is not None:
         from listenpost.agent.config import load_agent_config
+
         cfg = load_agent_config(config)
         kind, board, stall = cfg.source.kind, cfg.board, cfg.source.stall_seconds
         adapter = adapter or cfg.source.adapter
@@ -94,6 +98,7 @@ def record_command(out: Path, *, config: Path | None, source: str | None, adapte
     if out.exists():
         raise ConfigError(f"--out: {out} exists; refusing to overwrite a recording")
     from listenpost.core.logs import configure
+
     configure("auto", "info", board=board)  # a command entry point: logs go to stderr, stdout stays clean
     clock = SystemClock()
     src: Source
@@ -101,22 +106,31 @@ def record_command(out: Path, *, config: Path | None, source: str | None, adapte
         try:
             from listenpost.agent.sources.bleak_scan import BleakSource
         except ImportError as e:
-            print(f"listenpost: cannot record: source 'bleak' needs the Python package {e.name!r}", file=sys.stderr)
+            print(
+                f"listenpost: cannot record: source 'bleak' needs the Python package {e.name!r}",
+                file=sys.stderr,
+            )
             return 1
         # an interactive command: report a radio that cannot start at once instead of retrying for ever
         src = BleakSource(adapter, clock, stall, max_failures=1)
     else:
         from listenpost.agent.sources.hci import HciSource, dev_id_of
+
         src = HciSource(dev_id_of(adapter), clock)
     try:
         result = asyncio.run(record(out, src, clock, board=board, seconds=seconds))
     except SourceUnavailable as e:
-        print(f"listenpost: cannot record from {kind} ({adapter or 'default adapter'}): {e} [{e.reason.value}]",
-              file=sys.stderr)
+        print(
+            f"listenpost: cannot record from {kind} ({adapter or 'default adapter'}): {e} [{e.reason.value}]",
+            file=sys.stderr,
+        )
         return 1
     except KeyboardInterrupt:
         print(f"listenpost: recording stopped; {out} holds what was heard", file=sys.stderr)
         return 0
-    print(f"recorded {result.adverts} adverts from {result.addresses} addresses in {result.seconds:.1f} s"
-          + (f" to {out}" if result.adverts else " (nothing heard, no file written)"), file=sys.stderr)
+    print(
+        f"recorded {result.adverts} adverts from {result.addresses} addresses in {result.seconds:.1f} s"
+        + (f" to {out}" if result.adverts else " (nothing heard, no file written)"),
+        file=sys.stderr,
+    )
     return 0

@@ -50,11 +50,14 @@ def _tags_path(tags: Path | None, cfg: AgentConfig | None) -> Path:
     if cfg is not None and cfg.tags_file:
         return cfg.state_path(cfg.tags_file)
     where = f" ({cfg.origin} has no tags.file)" if cfg is not None else ""
-    raise ConfigError(f"no registered tags: give --tags TAGFILE, or --config agent.yaml with tags.file{where}")
+    raise ConfigError(
+        f"no registered tags: give --tags TAGFILE, or --config agent.yaml with tags.file{where}"
+    )
 
 
-def _board_settings(cfg: AgentConfig | None, tags: Path | None,
-                    offset_db: float | None) -> tuple[frozenset[str], tuple[DecodeRule, ...], float]:
+def _board_settings(
+    cfg: AgentConfig | None, tags: Path | None, offset_db: float | None
+) -> tuple[frozenset[str], tuple[DecodeRule, ...], float]:
     """Registered tags, decode rules and offset the board of ``cfg`` would use, as `AgentService` picks them."""
 
     cached = ConfigCache(cfg.state_dir).load() if cfg is not None and cfg.collector.url else None
@@ -76,8 +79,10 @@ def _rule_hint(registered: frozenset[str], rules: Sequence[DecodeRule]) -> str |
     if not missing:
         return None
     names = ", ".join(f"{n!r} ({k} tags)" for n, k in sorted(missing.items()))
-    return (f"note: no decode rule for {names}: these tags cannot be heard; give --config with "
-            "decode.rules (DEVELOPERS.md, 'How to add a decode rule')")
+    return (
+        f"note: no decode rule for {names}: these tags cannot be heard; give --config with "
+        "decode.rules (DEVELOPERS.md, 'How to add a decode rule')"
+    )
 
 
 def reading_json(r: Reading) -> dict[str, Any]:
@@ -85,9 +90,16 @@ def reading_json(r: Reading) -> dict[str, Any]:
     out: dict[str, Any] = {"tag": r.tag, "rssi": round(r.rssi_dbm, 1), "t": r.t_mono_ns / 1e9}
     tel = r.telemetry
     if tel is not None:
-        out["telemetry"] = {k: v for k, v in (("battery_mv", tel.battery_mv), ("temperature_c", tel.temperature_c),
-                                              ("adv_count", tel.adv_count), ("uptime_s", tel.uptime_s))
-                            if v is not None}
+        out["telemetry"] = {
+            k: v
+            for k, v in (
+                ("battery_mv", tel.battery_mv),
+                ("temperature_c", tel.temperature_c),
+                ("adv_count", tel.adv_count),
+                ("uptime_s", tel.uptime_s),
+            )
+            if v is not None
+        }
     return out
 
 
@@ -106,7 +118,9 @@ def _summary(pipeline: Pipeline, per_tag: Counter[str], elapsed_s: float, files:
     ]
     if per_tag:
         counts = sorted(per_tag.values())
-        lines.append(f"  readings per tag    min {counts[0]}, median {statistics.median(counts):g}, max {counts[-1]}")
+        lines.append(
+            f"  readings per tag    min {counts[0]}, median {statistics.median(counts):g}, max {counts[-1]}"
+        )
         for tag, n in sorted(per_tag.items())[:_PER_TAG_LINES]:
             lines.append(f"    {n:8d}  {tag}")
         if len(per_tag) > _PER_TAG_LINES:
@@ -131,8 +145,15 @@ async def _dry_run(files: Sequence[Path], pipeline: Pipeline, speed: float, out:
     return per_tag
 
 
-def replay_command(files: Sequence[Path], *, dry_run: bool, config: Path | None, tags: Path | None,
-                   offset_db: float | None, speed: float) -> int:
+def replay_command(
+    files: Sequence[Path],
+    *,
+    dry_run: bool,
+    config: Path | None,
+    tags: Path | None,
+    offset_db: float | None,
+    speed: float,
+) -> int:
     """
     Run ``listenpost agent replay``.
 
@@ -181,8 +202,14 @@ def replay_command(files: Sequence[Path], *, dry_run: bool, config: Path | None,
     return 0
 
 
-async def upload_replay(cfg: AgentConfig, files: Sequence[Path], speed: float, base: Clock, *,
-                        session: aiohttp.ClientSession | None = None) -> int:
+async def upload_replay(
+    cfg: AgentConfig,
+    files: Sequence[Path],
+    speed: float,
+    base: Clock,
+    *,
+    session: aiohttp.ClientSession | None = None,
+) -> int:
     """
     Upload ``files`` as the board of ``cfg`` through the agent service, on `replay_board_clock`.
 
@@ -197,8 +224,9 @@ async def upload_replay(cfg: AgentConfig, files: Sequence[Path], speed: float, b
     return await run_agent(cfg, clock=clock, source=source, exit_when_source_ends=True, session=session)
 
 
-def _upload(files: Sequence[Path], cfg: AgentConfig | None, tags: Path | None, offset_db: float | None,
-            speed: float) -> int:
+def _upload(
+    files: Sequence[Path], cfg: AgentConfig | None, tags: Path | None, offset_db: float | None, speed: float
+) -> int:
     if cfg is None:
         raise ConfigError("--config: required without --dry-run (the recording is uploaded as that board)")
     if tags is not None:

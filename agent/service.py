@@ -97,10 +97,18 @@ class AgentService:
         rng: jitter source for the uplink's backoff.
     """
 
-    def __init__(self, cfg: AgentConfig, *, clock: Clock, source: Source | None = None,
-                 exit_when_source_ends: bool = False, session: aiohttp.ClientSession | None = None,
-                 notifier: Notifier | None = None, drain_timeout_s: float = DRAIN_TIMEOUT_S,
-                 rng: random.Random | None = None) -> None:
+    def __init__(
+        self,
+        cfg: AgentConfig,
+        *,
+        clock: Clock,
+        source: Source | None = None,
+        exit_when_source_ends: bool = False,
+        session: aiohttp.ClientSession | None = None,
+        notifier: Notifier | None = None,
+        drain_timeout_s: float = DRAIN_TIMEOUT_S,
+        rng: random.Random | None = None,
+    ) -> None:
         self.cfg = cfg
         self.clock = clock
         self.source = source
@@ -181,21 +189,40 @@ class AgentService:
         tags, rules, offset_db, flush_s, heartbeat_s = self._initial_settings()
         self._rules = rules
         self.pipeline = build_pipeline(tags, rules, offset_db)
-        self.spool = await Spool.open(cfg.state_path(cfg.spool.path), clock=clock, max_bytes=cfg.spool.max_bytes,
-                                      flush_seconds=flush_s, max_batch_readings=cfg.uplink.max_batch_readings)
+        self.spool = await Spool.open(
+            cfg.state_path(cfg.spool.path),
+            clock=clock,
+            max_bytes=cfg.spool.max_bytes,
+            flush_seconds=flush_s,
+            max_batch_readings=cfg.uplink.max_batch_readings,
+        )
         try:
-            token = read_credential(cfg.state_path(cfg.collector.credential_file)) if cfg.collector.url else None
+            token = (
+                read_credential(cfg.state_path(cfg.collector.credential_file)) if cfg.collector.url else None
+            )
             if cfg.collector.url and token is None:
-                log.error("credential_missing", path=str(cfg.state_path(cfg.collector.credential_file)),
-                          hint="run 'listenpost agent enroll'; spooling only until then")
+                log.error(
+                    "credential_missing",
+                    path=str(cfg.state_path(cfg.collector.credential_file)),
+                    hint="run 'listenpost agent enroll'; spooling only until then",
+                )
             if cfg.collector.url and token is not None:
                 self._start_network(cfg.collector.url, token, heartbeat_s)
             self._tasks["source"] = asyncio.create_task(self._source_loop(), name=f"{cfg.board}:source")
             self._tasks["sealer"] = asyncio.create_task(
-                self.spool.run_sealer(lambda: clock.boot_id, lambda: self.offset_db), name=f"{cfg.board}:sealer")
+                self.spool.run_sealer(lambda: clock.boot_id, lambda: self.offset_db),
+                name=f"{cfg.board}:sealer",
+            )
             self._tasks["status"] = asyncio.create_task(self._status_loop(), name=f"{cfg.board}:status")
-            log.info("agent_started", version=__version__, source=cfg.source.kind, collector=cfg.collector.url,
-                     uploading=self.uplink is not None, tags=len(tags), offset_db=offset_db)
+            log.info(
+                "agent_started",
+                version=__version__,
+                source=cfg.source.kind,
+                collector=cfg.collector.url,
+                uploading=self.uplink is not None,
+                tags=len(tags),
+                offset_db=offset_db,
+            )
             self.notifier.ready(self.status_line())
             self.started.set()
             await self.stop_event.wait()
@@ -210,16 +237,41 @@ class AgentService:
     def _start_network(self, url: str, token: str, heartbeat_s: float) -> None:
         cfg, clock = self.cfg, self.clock
         session = self._session_get()
-        self.uplink = Uplink(base_url=url, token=token, board=cfg.board, clock=clock, spool=self.spool,  # type: ignore[arg-type]
-                             session=session, timeout_s=cfg.collector.timeout_seconds,
-                             backoff_initial_s=cfg.uplink.backoff_initial_seconds,
-                             backoff_max_s=cfg.uplink.backoff_max_seconds, rng=self.rng, exchanges=self.exchanges)
-        self.config = ConfigFetcher(base_url=url, token=token, board=cfg.board, cache=ConfigCache(cfg.state_dir),
-                                    session=session, timeout_s=cfg.collector.timeout_seconds)
-        self.heartbeat = Heartbeat(base_url=url, token=token, board=cfg.board, clock=clock, session=session,
-                                   stats_fn=self.stats, exchanges=self.exchanges, period_s=heartbeat_s,
-                                   timeout_s=cfg.collector.timeout_seconds, config=self.config,
-                                   on_config=self.apply_config, state_dir=cfg.state_dir)
+        self.uplink = Uplink(
+            base_url=url,
+            token=token,
+            board=cfg.board,
+            clock=clock,
+            spool=self.spool,  # type: ignore[arg-type]
+            session=session,
+            timeout_s=cfg.collector.timeout_seconds,
+            backoff_initial_s=cfg.uplink.backoff_initial_seconds,
+            backoff_max_s=cfg.uplink.backoff_max_seconds,
+            rng=self.rng,
+            exchanges=self.exchanges,
+        )
+        self.config = ConfigFetcher(
+            base_url=url,
+            token=token,
+            board=cfg.board,
+            cache=ConfigCache(cfg.state_dir),
+            session=session,
+            timeout_s=cfg.collector.timeout_seconds,
+        )
+        self.heartbeat = Heartbeat(
+            base_url=url,
+            token=token,
+            board=cfg.board,
+            clock=clock,
+            session=session,
+            stats_fn=self.stats,
+            exchanges=self.exchanges,
+            period_s=heartbeat_s,
+            timeout_s=cfg.collector.timeout_seconds,
+            config=self.config,
+            on_config=self.apply_config,
+            state_dir=cfg.state_dir,
+        )
         self._tasks["uplink"] = asyncio.create_task(self.uplink.run(), name=f"{cfg.board}:uplink")
         self._tasks["heartbeat"] = asyncio.create_task(self.heartbeat.run(), name=f"{cfg.board}:heartbeat")
 
@@ -241,7 +293,9 @@ class AgentService:
         if self.heartbeat is not None:
             self.heartbeat.period_s = new.heartbeat_seconds
         self.remote = new
-        log.info("config_applied", etag=new.etag, tags=len(new.tags), rules=len(new.rules), offset_db=new.offset_db)
+        log.info(
+            "config_applied", etag=new.etag, tags=len(new.tags), rules=len(new.rules), offset_db=new.offset_db
+        )
 
     # ------------------------------------------------------------------ tasks
 
@@ -311,9 +365,13 @@ class AgentService:
             self.drained = await self._drain()
             if not self.drained:
                 left = self.spool.stats()
-                log.error("drain_incomplete", batches=left.batches, uplink_state=self.uplink.state.value,
-                          last_error=self.uplink.counters.last_error,
-                          hint="the batches stay in the spool and go with the next run")
+                log.error(
+                    "drain_incomplete",
+                    batches=left.batches,
+                    uplink_state=self.uplink.state.value,
+                    last_error=self.uplink.counters.last_error,
+                    hint="the batches stay in the spool and go with the next run",
+                )
                 code = 1
         if self.heartbeat is not None and self.exit_when_source_ends:
             await self.heartbeat.beat()  # the collector's last word about this run's figures
@@ -370,10 +428,17 @@ class AgentService:
             "readings_total": p["readings_total"],
             "pipeline": dict(p),
             "spool": sp,
-            "drops": {"spool_readings": sp["dropped_readings"], "spool_batches": sp["dropped_batches"],
-                      "dead_letters": sp["dead_letters"]},
-            "source": {"kind": self.cfg.source.kind, "state": self.source_state.value, "error": self.source_error,
-                       "radio": self._radio_stats()},
+            "drops": {
+                "spool_readings": sp["dropped_readings"],
+                "spool_batches": sp["dropped_batches"],
+                "dead_letters": sp["dead_letters"],
+            },
+            "source": {
+                "kind": self.cfg.source.kind,
+                "state": self.source_state.value,
+                "error": self.source_error,
+                "radio": self._radio_stats(),
+            },
             **self.tag_rates.summary().as_stats(),
             "uplink": self.uplink.stats() if self.uplink is not None else None,
             "offset_db": self.offset_db,
@@ -388,25 +453,41 @@ class AgentService:
         assert self.pipeline is not None and self.spool is not None
         s = self.spool.stats()
         u = self.uplink.counters if self.uplink is not None else None
-        return {"adverts": self._stats_base["adverts_total"] + self.pipeline.stats()["adverts_total"],
-                "readings": self._stats_base["readings_total"] + self.pipeline.stats()["readings_total"],
-                "spool_batches": s.batches, "acked": u.acked if u else None,
-                "duplicates": u.duplicates if u else None, "dead_letters": u.dead_letters if u else None}
+        return {
+            "adverts": self._stats_base["adverts_total"] + self.pipeline.stats()["adverts_total"],
+            "readings": self._stats_base["readings_total"] + self.pipeline.stats()["readings_total"],
+            "spool_batches": s.batches,
+            "acked": u.acked if u else None,
+            "duplicates": u.duplicates if u else None,
+            "dead_letters": u.dead_letters if u else None,
+        }
 
     def status_line(self) -> str:
         """Short summary for ``systemctl status``."""
-        readings = (self._stats_base["readings_total"] + self.pipeline.stats()["readings_total"]
-                    if self.pipeline is not None else 0)
+        readings = (
+            self._stats_base["readings_total"] + self.pipeline.stats()["readings_total"]
+            if self.pipeline is not None
+            else 0
+        )
         spool = self.spool.stats() if self.spool is not None else None
         up = self.uplink.state.value if self.uplink is not None else "off"
-        return (f"{self.cfg.board}: source {self.source_state.value}, {readings} readings, "
-                f"spool {spool.batches if spool else 0} batches, uplink {up}")
+        return (
+            f"{self.cfg.board}: source {self.source_state.value}, {readings} readings, "
+            f"spool {spool.batches if spool else 0} batches, uplink {up}"
+        )
 
 
-async def run_agent(cfg: AgentConfig, *, clock: Clock, source: Source | None = None,
-                    exit_when_source_ends: bool = False, session: aiohttp.ClientSession | None = None,
-                    notifier: Notifier | None = None, drain_timeout_s: float = DRAIN_TIMEOUT_S,
-                    on_start: Callable[[AgentService], None] | None = None) -> int:
+async def run_agent(
+    cfg: AgentConfig,
+    *,
+    clock: Clock,
+    source: Source | None = None,
+    exit_when_source_ends: bool = False,
+    session: aiohttp.ClientSession | None = None,
+    notifier: Notifier | None = None,
+    drain_timeout_s: float = DRAIN_TIMEOUT_S,
+    on_start: Callable[[AgentService], None] | None = None,
+) -> int:
     """
     Run one board until cancelled, stopped, or (with ``exit_when_source_ends``) the source ends and
     the spool drained. Cancelling the task shuts down cleanly too (the spool is closed).
@@ -414,8 +495,15 @@ async def run_agent(cfg: AgentConfig, *, clock: Clock, source: Source | None = N
     Returns:
         0 on a clean stop; 1 if a drain was asked for and the spool did not empty in time.
     """
-    service = AgentService(cfg, clock=clock, source=source, exit_when_source_ends=exit_when_source_ends,
-                           session=session, notifier=notifier, drain_timeout_s=drain_timeout_s)
+    service = AgentService(
+        cfg,
+        clock=clock,
+        source=source,
+        exit_when_source_ends=exit_when_source_ends,
+        session=session,
+        notifier=notifier,
+        drain_timeout_s=drain_timeout_s,
+    )
     if on_start is not None:
         on_start(service)
     return await service.run()

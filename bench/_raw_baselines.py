@@ -27,7 +27,9 @@ def _offset_dd(b: IngestBatch) -> int:
     return round(b.offset_db * 10)
 
 
-def raw_sqlite(path: Path, per_board: list[list[IngestBatch]], tags: Sequence[str], *, per_batch_commit: bool) -> float:
+def raw_sqlite(
+    path: Path, per_board: list[list[IngestBatch]], tags: Sequence[str], *, per_batch_commit: bool
+) -> float:
     """Seconds to insert every batch row and its readings; ``per_batch_commit=False`` uses one transaction."""
     con = sqlite3.connect(path, isolation_level=None)
     con.execute("PRAGMA journal_mode = WAL")
@@ -38,7 +40,9 @@ def raw_sqlite(path: Path, per_board: list[list[IngestBatch]], tags: Sequence[st
         con.execute("INSERT INTO tags (id, tag) VALUES (?, ?)", (i, tag))
         tag_ids[tag] = i
     for i, mine in enumerate(per_board, 1):
-        con.execute("INSERT INTO boards (id, name, room, created_at) VALUES (?, ?, 'bench', 0)", (i, mine[0].board))
+        con.execute(
+            "INSERT INTO boards (id, name, room, created_at) VALUES (?, ?, 'bench', 0)", (i, mine[0].board)
+        )
     flat = [(i, b) for i, mine in enumerate(per_board, 1) for b in mine]
     t = time.perf_counter()
     if not per_batch_commit:
@@ -46,13 +50,23 @@ def raw_sqlite(path: Path, per_board: list[list[IngestBatch]], tags: Sequence[st
     for board_id, b in flat:
         if per_batch_commit:
             con.execute("BEGIN")
-        cur = con.execute("INSERT INTO batches (board_id, epoch, seq, digest, boot, n, received_at, offset_dd) "
-                          "VALUES (?, ?, ?, ?, ?, ?, ?, ?)", (board_id, b.epoch, b.seq, b.digest, b.boot, b.n,
-                                                              b.received_at, _offset_dd(b)))
-        con.executemany("INSERT INTO readings (batch_id, board_id, tag_id, t_board_ms, t_collector, rssi_dd) "
-                        "VALUES (?, ?, ?, ?, ?, ?)",
-                        zip(repeat(cur.lastrowid), repeat(board_id), [tag_ids[x] for x in b.tags.tolist()],
-                            b.t_board_ms.tolist(), b.t_collector.tolist(), b.rssi_dd.tolist()))
+        cur = con.execute(
+            "INSERT INTO batches (board_id, epoch, seq, digest, boot, n, received_at, offset_dd) "
+            "VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+            (board_id, b.epoch, b.seq, b.digest, b.boot, b.n, b.received_at, _offset_dd(b)),
+        )
+        con.executemany(
+            "INSERT INTO readings (batch_id, board_id, tag_id, t_board_ms, t_collector, rssi_dd) "
+            "VALUES (?, ?, ?, ?, ?, ?)",
+            zip(
+                repeat(cur.lastrowid),
+                repeat(board_id),
+                [tag_ids[x] for x in b.tags.tolist()],
+                b.t_board_ms.tolist(),
+                b.t_collector.tolist(),
+                b.rssi_dd.tolist(),
+            ),
+        )
         if per_batch_commit:
             con.execute("COMMIT")
     if not per_batch_commit:
@@ -62,7 +76,9 @@ def raw_sqlite(path: Path, per_board: list[list[IngestBatch]], tags: Sequence[st
     return elapsed
 
 
-async def raw_pg_copy(url: str, schema: str, per_board: list[list[IngestBatch]], tags: Sequence[str]) -> tuple[float, int]:
+async def raw_pg_copy(
+    url: str, schema: str, per_board: list[list[IngestBatch]], tags: Sequence[str]
+) -> tuple[float, int]:
     """Seconds to COPY every batch (one transaction each, synchronous_commit=on) and the readings table's bytes."""
     import asyncpg
 
@@ -77,20 +93,40 @@ async def raw_pg_copy(url: str, schema: str, per_board: list[list[IngestBatch]],
             await con.execute("INSERT INTO tags (id, tag) VALUES ($1, $2)", i, tag)
             tag_ids[tag] = i
         for i, mine in enumerate(per_board, 1):
-            await con.execute("INSERT INTO boards (id, name, room, created_at) VALUES ($1, $2, 'bench', 0)",
-                              i, mine[0].board)
+            await con.execute(
+                "INSERT INTO boards (id, name, room, created_at) VALUES ($1, $2, 'bench', 0)",
+                i,
+                mine[0].board,
+            )
         t = time.perf_counter()
         for i, mine in enumerate(per_board, 1):
             for b in mine:
                 async with con.transaction():
-                    bid = await con.fetchval("INSERT INTO batches (board_id, epoch, seq, digest, boot, n, received_at, "
-                                             "offset_dd) VALUES ($1, $2, $3, $4, $5, $6, $7, $8) RETURNING id",
-                                             i, b.epoch, b.seq, b.digest, b.boot, b.n, b.received_at, _offset_dd(b))
+                    bid = await con.fetchval(
+                        "INSERT INTO batches (board_id, epoch, seq, digest, boot, n, received_at, "
+                        "offset_dd) VALUES ($1, $2, $3, $4, $5, $6, $7, $8) RETURNING id",
+                        i,
+                        b.epoch,
+                        b.seq,
+                        b.digest,
+                        b.boot,
+                        b.n,
+                        b.received_at,
+                        _offset_dd(b),
+                    )
                     await con.copy_records_to_table(
-                        "readings", schema_name=schema,
+                        "readings",
+                        schema_name=schema,
                         columns=["t_collector", "t_board_ms", "batch_id", "tag_id", "board_id", "rssi_dd"],
-                        records=zip(b.t_collector.tolist(), b.t_board_ms.tolist(), repeat(bid),
-                                    [tag_ids[x] for x in b.tags.tolist()], repeat(i), b.rssi_dd.tolist()))
+                        records=zip(
+                            b.t_collector.tolist(),
+                            b.t_board_ms.tolist(),
+                            repeat(bid),
+                            [tag_ids[x] for x in b.tags.tolist()],
+                            repeat(i),
+                            b.rssi_dd.tolist(),
+                        ),
+                    )
         elapsed = time.perf_counter() - t
         size = await con.fetchval("SELECT pg_total_relation_size($1::regclass)", f'"{schema}".readings')
         return elapsed, int(size)

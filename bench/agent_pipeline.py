@@ -34,7 +34,7 @@ from listenpost.core.records import Advert, Reading
 from listenpost.core.settings import DecodeRule
 
 N_ADVERTS = 300_000
-N_IBEACON, N_EDDYSTONE, N_CUSTOM = 700, 200, 100          # 1,000 registered tags
+N_IBEACON, N_EDDYSTONE, N_CUSTOM = 700, 200, 100  # 1,000 registered tags
 VENUE = uuid.UUID("6f1d8a52-3c0e-4b7a-a9d1-5e2c7b40f913")  # invented for the bench
 NAMESPACE = bytes.fromhex("b7e4019c2d5a83f6e011")
 LPX = DecodeRule("lpx", company_id=0xFFFF, prefix=b"\x4c\x50", offset=2, length=4)
@@ -43,9 +43,11 @@ TARGET_RATIO, TARGET_RATE, TARGET_RSS_MB = 0.25, 100_000, 60.0
 
 def registered_tags() -> list[str]:
     """The 1,000 tags the board holds."""
-    return ([f"ibeacon:{VENUE}:7:{m}" for m in range(1, N_IBEACON + 1)]
-            + [f"eddystone:{NAMESPACE.hex()}:{i:012x}" for i in range(1, N_EDDYSTONE + 1)]
-            + [f"lpx:{n:08x}" for n in range(1, N_CUSTOM + 1)])
+    return (
+        [f"ibeacon:{VENUE}:7:{m}" for m in range(1, N_IBEACON + 1)]
+        + [f"eddystone:{NAMESPACE.hex()}:{i:012x}" for i in range(1, N_EDDYSTONE + 1)]
+        + [f"lpx:{n:08x}" for n in range(1, N_CUSTOM + 1)]
+    )
 
 
 def _addr(rng: random.Random) -> str:
@@ -72,34 +74,68 @@ def synthetic_adverts(n: int = N_ADVERTS, seed: int = 1) -> Iterator[Advert]:
         x = rng.random()
         if x < 0.55:
             m = rng.randrange(N_IBEACON)
-            yield Advert(t_ns, ib_addr[m], 1, rssi, None,
-                         {0x004C: b"\x02\x15" + VENUE.bytes + b"\x00\x07" + (m + 1).to_bytes(2, "big") + b"\xc5"})
+            yield Advert(
+                t_ns,
+                ib_addr[m],
+                1,
+                rssi,
+                None,
+                {0x004C: b"\x02\x15" + VENUE.bytes + b"\x00\x07" + (m + 1).to_bytes(2, "big") + b"\xc5"},
+            )
         elif x < 0.70:
             i = rng.randrange(N_EDDYSTONE)
             ed_seen[i] += 1
-            frame = tlm if ed_seen[i] % 10 == 0 else b"\x00\xec" + NAMESPACE + (i + 1).to_bytes(6, "big") + b"\0\0"
+            frame = (
+                tlm
+                if ed_seen[i] % 10 == 0
+                else b"\x00\xec" + NAMESPACE + (i + 1).to_bytes(6, "big") + b"\0\0"
+            )
             yield Advert(t_ns, ed_addr[i], 1, rssi, None, {}, {EDDYSTONE_UUID: frame}, (EDDYSTONE_UUID,))
         elif x < 0.75:
             k = rng.randrange(N_CUSTOM)
-            yield Advert(t_ns, cu_addr[k], 1, rssi, None, {0xFFFF: b"\x4c\x50" + (k + 1).to_bytes(4, "big") + b"\x5a"})
-        elif x < 0.87:   # phones: Apple continuity or other vendors' data
-            md = {0x004C: b"\x10\x05" + rng.randbytes(5)} if rng.random() < 0.6 else {0x0006: rng.randbytes(24)}
+            yield Advert(
+                t_ns, cu_addr[k], 1, rssi, None, {0xFFFF: b"\x4c\x50" + (k + 1).to_bytes(4, "big") + b"\x5a"}
+            )
+        elif x < 0.87:  # phones: Apple continuity or other vendors' data
+            md = (
+                {0x004C: b"\x10\x05" + rng.randbytes(5)}
+                if rng.random() < 0.6
+                else {0x0006: rng.randbytes(24)}
+            )
             yield Advert(t_ns, rng.choice(phones), 1, rssi, None, md)
-        elif x < 0.95:   # unregistered iBeacon-format tags
+        elif x < 0.95:  # unregistered iBeacon-format tags
             u = rng.choice(other_uuids) if rng.random() < 0.5 else VENUE.bytes
             minor = rng.randrange(1000, 65536)
-            yield Advert(t_ns, _addr(rng), 1, rssi, None,
-                         {0x004C: b"\x02\x15" + u + b"\x00\x09" + minor.to_bytes(2, "big") + b"\xc5"})
-        else:            # other devices: service data only, or nothing decodable
-            yield Advert(t_ns, _addr(rng), 1, rssi, None, {}, {"0000fd6f-0000-1000-8000-00805f9b34fb": rng.randbytes(20)})
+            yield Advert(
+                t_ns,
+                _addr(rng),
+                1,
+                rssi,
+                None,
+                {0x004C: b"\x02\x15" + u + b"\x00\x09" + minor.to_bytes(2, "big") + b"\xc5"},
+            )
+        else:  # other devices: service data only, or nothing decodable
+            yield Advert(
+                t_ns,
+                _addr(rng),
+                1,
+                rssi,
+                None,
+                {},
+                {"0000fd6f-0000-1000-8000-00805f9b34fb": rng.randbytes(20)},
+            )
 
 
 def write_synthetic(path: Path, n: int = N_ADVERTS) -> None:
     from listenpost.agent.sources.replay import write_recording
-    write_recording(path, synthetic_adverts(n), board="g0-a", boot="bench-boot", wall_at_start=1_800_000_000.0)
+
+    write_recording(
+        path, synthetic_adverts(n), board="g0-a", boot="bench-boot", wall_at_start=1_800_000_000.0
+    )
 
 
 # ---------------------------------------------------------------- (a) the bare loop
+
 
 def bare_loop(path: Path) -> tuple[int, int]:
     """Parse every line and find registered tags with the least work possible. Returns (adverts, kept)."""
@@ -160,9 +196,15 @@ async def _agent_run(path: Path, tmp: Path) -> tuple[dict[str, int], str]:
         await pipeline.run(open_replay([path], clock, speed=0), out.append)
         return pipeline.stats(), "list (agent/spool.py not present)"
 
-    spool_path = Path(tempfile.mkdtemp(dir=tmp)) / "bench-spool.sqlite"   # a fresh spool per run
-    spool = await Spool.open(spool_path, clock=clock, max_bytes=1 << 30, flush_seconds=5.0,
-                             max_batch_readings=SEAL_EVERY, max_pending_readings=4 * SEAL_EVERY)
+    spool_path = Path(tempfile.mkdtemp(dir=tmp)) / "bench-spool.sqlite"  # a fresh spool per run
+    spool = await Spool.open(
+        spool_path,
+        clock=clock,
+        max_bytes=1 << 30,
+        flush_seconds=5.0,
+        max_batch_readings=SEAL_EVERY,
+        max_pending_readings=4 * SEAL_EVERY,
+    )
     n = 0
     add, seal, boot = spool.add, spool.seal, clock.boot_id
 
@@ -186,13 +228,16 @@ async def _agent_run(path: Path, tmp: Path) -> tuple[dict[str, int], str]:
     st = spool.stats()
     if st.degraded or st.dropped_readings:
         print(f"    WARNING: spool degraded={st.degraded}, dropped {st.dropped_readings} readings")
-    return pipeline.stats(), (f"listenpost.agent.spool.Spool, {st.next_seq} sealed batches of <= {SEAL_EVERY}, "
-                              f"{st.bytes / 1e6:.1f} MB, dropped {st.dropped_readings}")
+    return pipeline.stats(), (
+        f"listenpost.agent.spool.Spool, {st.next_seq} sealed batches of <= {SEAL_EVERY}, "
+        f"{st.bytes / 1e6:.1f} MB, dropped {st.dropped_readings}"
+    )
 
 
 async def _source_only(path: Path) -> int:
     from listenpost.agent.sources import open_replay
     from listenpost.core.clock import SystemClock
+
     n = 0
     async for _ in open_replay([path], SystemClock(), speed=0).adverts():
         n += 1
@@ -208,7 +253,6 @@ def agent_pipeline(path: Path, tmp: Path) -> tuple[dict[str, int], str]:
     return asyncio.run(_agent_run(path, tmp))
 
 
-
 def _rss_child(path: str) -> None:
     """Run (b) in this process and print peak RSS (ru_maxrss is KiB on Linux)."""
     with tempfile.TemporaryDirectory() as d:
@@ -221,8 +265,16 @@ def _rss_child(path: str) -> None:
                 hwm_kib = int(line.split()[1])
     except OSError:
         pass
-    print(json.dumps({"maxrss_kib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss, "vmhwm_kib": hwm_kib,
-                      "readings": stats["readings_total"], "heavy_modules": heavy}))
+    print(
+        json.dumps(
+            {
+                "maxrss_kib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss,
+                "vmhwm_kib": hwm_kib,
+                "readings": stats["readings_total"],
+                "heavy_modules": heavy,
+            }
+        )
+    )
 
 
 def _timed(fn: Any, *args: Any) -> tuple[float, Any]:
@@ -233,23 +285,33 @@ def _timed(fn: Any, *args: Any) -> tuple[float, Any]:
 
 def main() -> None:
     from listenpost.core.logs import configure
-    configure("console", level="warning")   # the spool's per-batch debug lines would swamp the figures
+
+    configure("console", level="warning")  # the spool's per-batch debug lines would swamp the figures
     with tempfile.TemporaryDirectory() as d:
         tmp = Path(d)
         path = tmp / "synthetic.jsonl"
         gen_s, _ = _timed(write_synthetic, path)
-        print(f"synthetic recording: {N_ADVERTS} adverts, {path.stat().st_size / 1e6:.1f} MB, "
-              f"{len(registered_tags())} registered tags (written in {gen_s:.1f} s)")
+        print(
+            f"synthetic recording: {N_ADVERTS} adverts, {path.stat().st_size / 1e6:.1f} MB, "
+            f"{len(registered_tags())} registered tags (written in {gen_s:.1f} s)"
+        )
 
         # Measured first: Linux carries the parent's RSS high-water mark into the child's ru_maxrss across
         # fork+exec, so the child must start while this process is still small.
-        child = subprocess.run([sys.executable, "-m", "bench.agent_pipeline", "--rss-child", str(path)],
-                               capture_output=True, text=True, timeout=600, check=True)
+        child = subprocess.run(
+            [sys.executable, "-m", "bench.agent_pipeline", "--rss-child", str(path)],
+            capture_output=True,
+            text=True,
+            timeout=600,
+            check=True,
+        )
         info = json.loads(child.stdout.strip().splitlines()[-1])
         rss_mb = info["maxrss_kib"] / 1024
         hwm = f", VmHWM {info['vmhwm_kib'] / 1024:.1f} MB" if info.get("vmhwm_kib") else ""
-        print(f"agent peak RSS: {rss_mb:.1f} MB by getrusage{hwm} (target <= {TARGET_RSS_MB:g} MB; "
-              f"numpy/scipy/collector imported: {info['heavy_modules'] or 'none'})")
+        print(
+            f"agent peak RSS: {rss_mb:.1f} MB by getrusage{hwm} (target <= {TARGET_RSS_MB:g} MB; "
+            f"numpy/scipy/collector imported: {info['heavy_modules'] or 'none'})"
+        )
 
         # Interleave and keep the best of each: the machine's noise hits both the same way.
         best_a, best_b, best_src = float("inf"), float("inf"), float("inf")
@@ -264,14 +326,22 @@ def main() -> None:
         rate_a, rate_b = N_ADVERTS / best_a, N_ADVERTS / best_b
         ratio = rate_b / rate_a
         print(f"(a) bare loop:      {rate_a:>10,.0f} adverts/s  ({kept_a} registered)")
-        print(f"(b) agent pipeline: {rate_b:>10,.0f} adverts/s  ({stats['readings_total']} readings; sink: {what})")
-        print(f"    ratio b/a {ratio:.2f} (target >= {TARGET_RATIO}); "
-              f"rate {'meets' if rate_b >= TARGET_RATE else 'MISSES'} the {TARGET_RATE:,} adverts/s target")
-        print(f"    of which the replay source alone: {N_ADVERTS / best_src:,.0f} adverts/s "
-              f"({best_src / N_ADVERTS * 1e6:.2f} us/advert); decode+filter+calibrate+spool "
-              f"{(best_b - best_src) / N_ADVERTS * 1e6:.2f} us/advert; bare loop {best_a / N_ADVERTS * 1e6:.2f} us/advert")
+        print(
+            f"(b) agent pipeline: {rate_b:>10,.0f} adverts/s  ({stats['readings_total']} readings; sink: {what})"
+        )
+        print(
+            f"    ratio b/a {ratio:.2f} (target >= {TARGET_RATIO}); "
+            f"rate {'meets' if rate_b >= TARGET_RATE else 'MISSES'} the {TARGET_RATE:,} adverts/s target"
+        )
+        print(
+            f"    of which the replay source alone: {N_ADVERTS / best_src:,.0f} adverts/s "
+            f"({best_src / N_ADVERTS * 1e6:.2f} us/advert); decode+filter+calibrate+spool "
+            f"{(best_b - best_src) / N_ADVERTS * 1e6:.2f} us/advert; bare loop {best_a / N_ADVERTS * 1e6:.2f} us/advert"
+        )
         if stats["readings_total"] != kept_a:
-            print(f"    WARNING: the two loops disagree on registered adverts ({kept_a} vs {stats['readings_total']})")
+            print(
+                f"    WARNING: the two loops disagree on registered adverts ({kept_a} vs {stats['readings_total']})"
+            )
         print("    pipeline stats: " + ", ".join(f"{k}={v}" for k, v in stats.items()))
 
 

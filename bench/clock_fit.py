@@ -54,9 +54,11 @@ def main(argv: list[str] | None = None) -> int:
             off_err.append(abs(fit.offset_s - truth) * 1e3)
         elapsed = time.perf_counter() - started
         se, oe = np.array(skew_err), np.array(off_err)
-        print(f"{method.value:8s} skew |err| ppm: median {np.median(se):.3f} p95 {np.percentile(se, 95):.3f} "
-              f"max {se.max():.3f} | offset |err| ms: median {np.median(oe):.3f} p95 {np.percentile(oe, 95):.3f} "
-              f"max {oe.max():.3f} | {elapsed / args.seeds * 1e3:.0f} ms per board")
+        print(
+            f"{method.value:8s} skew |err| ppm: median {np.median(se):.3f} p95 {np.percentile(se, 95):.3f} "
+            f"max {se.max():.3f} | offset |err| ms: median {np.median(oe):.3f} p95 {np.percentile(oe, 95):.3f} "
+            f"max {oe.max():.3f} | {elapsed / args.seeds * 1e3:.0f} ms per board"
+        )
     return 0
 
 

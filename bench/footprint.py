@@ -34,14 +34,28 @@ def main() -> None:
     with tempfile.TemporaryDirectory(prefix="listenpost-footprint-") as tmp:
         root = Path(tmp)
         wheel = build_wheel(root / "dist")
-        envs = {"agent only": make_env(root / "agent", wheel), "with [collector]": make_env(root / "full", wheel,
-                                                                                             "collector")}
+        envs = {
+            "agent only": make_env(root / "agent", wheel),
+            "with [collector]": make_env(root / "full", wheel, "collector"),
+        }
         logs = package_data(envs["agent only"], "listenpost.replay_logs")
         rss: dict[str, list[int]] = {name: [] for name in envs}
         for _ in range(REPEATS):
             for name, bin_dir in envs.items():
-                rss[name].append(peak_rss_kib([str(bin_dir / "listenpost"), "agent", "replay", "--dry-run", "--fast",
-                                               "--tags", str(logs / "tags.txt"), str(logs / "g0-a.jsonl.gz")]))
+                rss[name].append(
+                    peak_rss_kib(
+                        [
+                            str(bin_dir / "listenpost"),
+                            "agent",
+                            "replay",
+                            "--dry-run",
+                            "--fast",
+                            "--tags",
+                            str(logs / "tags.txt"),
+                            str(logs / "g0-a.jsonl.gz"),
+                        ]
+                    )
+                )
         print(f"{'environment':<18} {'on disk MB':>10} {'peak RSS MB (median of ' + str(REPEATS) + ')':>28}")
         sizes = {}
         for name, bin_dir in envs.items():
@@ -49,8 +63,10 @@ def main() -> None:
             print(f"{name:<18} {sizes[name] / 1e6:>10.1f} {statistics.median(rss[name]) / 1024:>28.1f}")
         a, f = sizes["agent only"], sizes["with [collector]"]
         print(f"agent-only / full on disk: {a / f:.2f}; the collector extra adds {(f - a) / 1e6:.1f} MB")
-        print(f"agent dry-run RSS, agent-only / full: "
-              f"{statistics.median(rss['agent only']) / statistics.median(rss['with [collector]']):.2f}")
+        print(
+            f"agent dry-run RSS, agent-only / full: "
+            f"{statistics.median(rss['agent only']) / statistics.median(rss['with [collector]']):.2f}"
+        )
 
 
 if __name__ == "__main__":

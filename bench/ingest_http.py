@@ -46,7 +46,9 @@ OFFSET_DB = 2.5
 PG_URL = os.environ.get("LISTENPOST_TEST_PG", "postgresql://postgres@127.0.0.1:5432/test")
 
 
-def make_workload(n_boards: int, batches_per_board: int, per_batch: int, seed: int = 7) -> list[list[dict[str, Any]]]:
+def make_workload(
+    n_boards: int, batches_per_board: int, per_batch: int, seed: int = 7
+) -> list[list[dict[str, Any]]]:
     """Per board, its batch bodies in seq order (plain dicts, as the agent builds them)."""
     rng = np.random.default_rng(seed)
     universe = make_tags()
@@ -62,10 +64,24 @@ def make_workload(n_boards: int, batches_per_board: int, per_batch: int, seed: i
             t_ms_arr = t_ms + np.cumsum(rng.integers(0, 5, per_batch))
             t_ms = int(t_ms_arr[-1]) + 1
             rssi = np.round(mean[which] + rng.normal(0, 5, per_batch)) + OFFSET_DB
-            rs = [Reading(room_tags[k], int(t) * 1_000_000, float(r)) for k, t, r in zip(which, t_ms_arr, rssi, strict=True)]
+            rs = [
+                Reading(room_tags[k], int(t) * 1_000_000, float(r))
+                for k, t, r in zip(which, t_ms_arr, rssi, strict=True)
+            ]
             content = wire.encode_content(rs, boot=boot, offset_db=OFFSET_DB)
-            bodies.append({"v": 1, "board": f"b{b:03d}", "boot": boot, "epoch": f"{b + 1:016x}", "seq": seq,
-                           "digest": wire.digest(content), "clock": None, "t1": t_ms / 1000.0, "content": content})
+            bodies.append(
+                {
+                    "v": 1,
+                    "board": f"b{b:03d}",
+                    "boot": boot,
+                    "epoch": f"{b + 1:016x}",
+                    "seq": seq,
+                    "digest": wire.digest(content),
+                    "clock": None,
+                    "t1": t_ms / 1000.0,
+                    "content": content,
+                }
+            )
         out.append(bodies)
     return out
 
@@ -78,16 +94,28 @@ def as_ingest_batches(per_board: list[list[dict[str, Any]]]) -> list[list[Ingest
         for body in bodies:
             c = wire.decode_content(body["content"])
             t = np.asarray(c.t_ms, dtype=np.int64)
-            mine.append(IngestBatch(board=body["board"], boot=body["boot"], epoch=body["epoch"], seq=body["seq"],
-                                    digest=body["digest"], received_at=1_800_000_000.0, offset_db=OFFSET_DB,
-                                    tags=np.array(c.tags, dtype=object), t_board_ms=t,
-                                    t_collector=1_800_000_000.0 + t / 1000.0,
-                                    rssi_dd=np.asarray(c.rssi_dd, dtype=np.int32)))
+            mine.append(
+                IngestBatch(
+                    board=body["board"],
+                    boot=body["boot"],
+                    epoch=body["epoch"],
+                    seq=body["seq"],
+                    digest=body["digest"],
+                    received_at=1_800_000_000.0,
+                    offset_db=OFFSET_DB,
+                    tags=np.array(c.tags, dtype=object),
+                    t_board_ms=t,
+                    t_collector=1_800_000_000.0 + t / 1000.0,
+                    rssi_dd=np.asarray(c.rssi_dd, dtype=np.int32),
+                )
+            )
         out.append(mine)
     return out
 
 
-async def http_ingest(store: Any, per_board: list[list[bytes]], names: list[str], tmp: Path) -> tuple[float, int]:
+async def http_ingest(
+    store: Any, per_board: list[list[bytes]], names: list[str], tmp: Path
+) -> tuple[float, int]:
     """Seconds to post every batch through a real collector on loopback; also the bytes sent."""
     import aiohttp
     from aiohttp import web
@@ -111,7 +139,9 @@ async def http_ingest(store: Any, per_board: list[list[bytes]], names: list[str]
             await s.post(f"{base}/v1/admin/tags", json={"ids": make_tags()}, headers=admin)
             tokens = []
             for name in names:
-                async with s.post(f"{base}/v1/admin/boards", json={"name": name, "room": "bench"}, headers=admin) as r:
+                async with s.post(
+                    f"{base}/v1/admin/boards", json={"name": name, "room": "bench"}, headers=admin
+                ) as r:
                     code = (await r.json())["code"]
                 async with s.post(f"{base}/v1/enroll", json={"code": code, "fingerprint": {}}) as r:
                     tokens.append((await r.json())["token"])
@@ -119,8 +149,11 @@ async def http_ingest(store: Any, per_board: list[list[bytes]], names: list[str]
 
             async def board(token: str, bodies: list[bytes]) -> None:
                 nonlocal sent
-                headers = {"Authorization": f"Bearer {token}", "Content-Encoding": "gzip",
-                           "Content-Type": "application/json"}
+                headers = {
+                    "Authorization": f"Bearer {token}",
+                    "Content-Encoding": "gzip",
+                    "Content-Type": "application/json",
+                }
                 for body in bodies:
                     async with s.post(f"{base}/v1/batches", data=body, headers=headers) as r:
                         answer = await r.json()
@@ -135,12 +168,14 @@ async def http_ingest(store: Any, per_board: list[list[bytes]], names: list[str]
         await runner.cleanup()
 
 
-async def pg_part(bodies: list[list[bytes]], batches: list[list[IngestBatch]], names: list[str], n: int,
-                  tmp: Path) -> None:
+async def pg_part(
+    bodies: list[list[bytes]], batches: list[list[IngestBatch]], names: list[str], n: int, tmp: Path
+) -> None:
     import asyncpg
 
     from listenpost.collector.store import StoreUnavailable
     from listenpost.collector.store.postgres import PostgresStore
+
     schema = f"lp_bench_{uuid.uuid4().hex[:10]}"
     try:
         store = await PostgresStore.open(PG_URL, schema=schema, max_size=10)
@@ -163,8 +198,9 @@ async def pg_part(bodies: list[list[bytes]], batches: list[list[IngestBatch]], n
         await con.close()
 
 
-async def sqlite_part(bodies: list[list[bytes]], batches: list[list[IngestBatch]], names: list[str], n: int,
-                      tmp: Path) -> None:
+async def sqlite_part(
+    bodies: list[list[bytes]], batches: list[list[IngestBatch]], names: list[str], n: int, tmp: Path
+) -> None:
     from listenpost.collector.store import open_store
 
     store = await open_store(f"sqlite:///{tmp / 'http.db'}")
@@ -173,7 +209,9 @@ async def sqlite_part(bodies: list[list[bytes]], batches: list[list[IngestBatch]
     finally:
         await store.close()
     t_raw = raw_sqlite(tmp / "raw.db", batches, make_tags(), per_batch_commit=True)
-    print(f"sqlite  (a) HTTP ingest, {len(names)} clients     : {n / t_http:>10,.0f} readings/s (target >= 150,000)")
+    print(
+        f"sqlite  (a) HTTP ingest, {len(names)} clients     : {n / t_http:>10,.0f} readings/s (target >= 150,000)"
+    )
     print(f"sqlite  (b) raw executemany, commit/batch: {n / t_raw:>10,.0f} readings/s")
     print(f"sqlite  ratio a/b = {t_raw / t_http:.2f} (target >= 0.50)")
     print(f"wire    (e) bytes per reading (gzip'd)   : {sent / n:>10.2f} (target <= 6)")
@@ -183,15 +221,20 @@ def main() -> None:
     import structlog
 
     from listenpost.core.logs import configure
+
     configure("json", level="warning")
     try:
         for title, n_boards, per_board_batches, per_batch in WORKLOADS:
             per_board = make_workload(n_boards, per_board_batches, per_batch)
             names = [bodies[0]["board"] for bodies in per_board]
-            bodies = [[gzip.compress(wire.canonical_json(b), compresslevel=6) for b in mine] for mine in per_board]
+            bodies = [
+                [gzip.compress(wire.canonical_json(b), compresslevel=6) for b in mine] for mine in per_board
+            ]
             batches = as_ingest_batches(per_board)
             n = n_boards * per_board_batches * per_batch
-            print(f"-- {title}: {n_boards} boards x {per_board_batches} batches x {per_batch} readings = {n:,} readings")
+            print(
+                f"-- {title}: {n_boards} boards x {per_board_batches} batches x {per_batch} readings = {n:,} readings"
+            )
             with tempfile.TemporaryDirectory() as d:
                 asyncio.run(sqlite_part(bodies, batches, names, n, Path(d)))
                 asyncio.run(pg_part(bodies, batches, names, n, Path(d)))

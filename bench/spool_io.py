@@ -39,14 +39,22 @@ def proc_io() -> dict[str, int]:
 
 
 def readings(rng: random.Random, t0_s: float, n: int) -> list[Reading]:
-    return [Reading(rng.choice(TAGS), round((t0_s + i / RATE_PER_S) * 1e9) + rng.randrange(2_000_000),
-                    round(rng.uniform(-95, -45), 1)) for i in range(n)]
+    return [
+        Reading(
+            rng.choice(TAGS),
+            round((t0_s + i / RATE_PER_S) * 1e9) + rng.randrange(2_000_000),
+            round(rng.uniform(-95, -45), 1),
+        )
+        for i in range(n)
+    ]
 
 
 async def spool_side(directory: Path, periods: int) -> tuple[int, int]:
     """Returns (compressed payload bytes, readings)."""
     clock = VirtualClock()
-    spool = await Spool.open(directory / "spool.sqlite", clock=clock, max_bytes=64 << 20, flush_seconds=FLUSH_S)
+    spool = await Spool.open(
+        directory / "spool.sqlite", clock=clock, max_bytes=64 << 20, flush_seconds=FLUSH_S
+    )
     rng = random.Random(1)
     payload = n = 0
     for k in range(periods):
@@ -57,7 +65,7 @@ async def spool_side(directory: Path, periods: int) -> tuple[int, int]:
         assert b is not None
         payload += len(gzip.compress(b.content, compresslevel=GZIP_LEVEL, mtime=0))
         n += b.n_readings
-        head = await spool.peek_oldest()          # the uplink delivers each batch before the next seal
+        head = await spool.peek_oldest()  # the uplink delivers each batch before the next seal
         assert head is not None
         await spool.ack(head.epoch, head.seq)
     await spool.close()
@@ -70,16 +78,20 @@ def naive_side(directory: Path, periods: int) -> int:
     with contextlib.closing(sqlite3.connect(directory / "naive.sqlite", isolation_level=None)) as c:
         c.execute("PRAGMA journal_mode=WAL")
         c.execute("PRAGMA synchronous=FULL")
-        c.execute("CREATE TABLE readings (id INTEGER PRIMARY KEY, tag TEXT NOT NULL, t_ns INTEGER NOT NULL,"
-                  " rssi REAL NOT NULL)")
+        c.execute(
+            "CREATE TABLE readings (id INTEGER PRIMARY KEY, tag TEXT NOT NULL, t_ns INTEGER NOT NULL,"
+            " rssi REAL NOT NULL)"
+        )
         c.execute("CREATE INDEX readings_t ON readings (t_ns)")
         n = 0
         for k in range(periods):
             rs = readings(rng, k * FLUSH_S, int(RATE_PER_S * FLUSH_S))
             c.execute("BEGIN")
-            c.execute("DELETE FROM readings")                  # the previous period was delivered
-            c.executemany("INSERT INTO readings (tag, t_ns, rssi) VALUES (?,?,?)",
-                          [(r.tag, r.t_mono_ns, r.rssi_dbm) for r in rs])
+            c.execute("DELETE FROM readings")  # the previous period was delivered
+            c.executemany(
+                "INSERT INTO readings (tag, t_ns, rssi) VALUES (?,?,?)",
+                [(r.tag, r.t_mono_ns, r.rssi_dbm) for r in rs],
+            )
             c.execute("COMMIT")
             n += len(rs)
     return n
@@ -98,15 +110,23 @@ def main() -> None:
         io2, t2 = proc_io(), time.perf_counter()
     spool_w, naive_w = io1["write_bytes"] - io0["write_bytes"], io2["write_bytes"] - io1["write_bytes"]
     spool_c, naive_c = io1["wchar"] - io0["wchar"], io2["wchar"] - io1["wchar"]
-    print(f"{minutes:g} virtual minutes at {RATE_PER_S} readings/s, {FLUSH_S:g} s commits "
-          f"({n_spool} / {n_naive} readings)")
-    print(f"  spool (one gzip'd row per batch): write_bytes {spool_w * per_hour / 1e6:8.1f} MB/h   "
-          f"wchar {spool_c * per_hour / 1e6:8.1f} MB/h   ({t1 - t0:.1f} s)")
-    print(f"  naive (one row per reading):      write_bytes {naive_w * per_hour / 1e6:8.1f} MB/h   "
-          f"wchar {naive_c * per_hour / 1e6:8.1f} MB/h   ({t2 - t1:.1f} s)")
-    print(f"  spool payload (compressed bodies): {payload * per_hour / 1e6:.1f} MB/h, "
-          f"{payload / max(n_spool, 1):.2f} B/reading; write amplification "
-          f"{spool_w / max(payload, 1):.1f}x (write_bytes / payload)")
+    print(
+        f"{minutes:g} virtual minutes at {RATE_PER_S} readings/s, {FLUSH_S:g} s commits "
+        f"({n_spool} / {n_naive} readings)"
+    )
+    print(
+        f"  spool (one gzip'd row per batch): write_bytes {spool_w * per_hour / 1e6:8.1f} MB/h   "
+        f"wchar {spool_c * per_hour / 1e6:8.1f} MB/h   ({t1 - t0:.1f} s)"
+    )
+    print(
+        f"  naive (one row per reading):      write_bytes {naive_w * per_hour / 1e6:8.1f} MB/h   "
+        f"wchar {naive_c * per_hour / 1e6:8.1f} MB/h   ({t2 - t1:.1f} s)"
+    )
+    print(
+        f"  spool payload (compressed bodies): {payload * per_hour / 1e6:.1f} MB/h, "
+        f"{payload / max(n_spool, 1):.2f} B/reading; write amplification "
+        f"{spool_w / max(payload, 1):.1f}x (write_bytes / payload)"
+    )
     if spool_w:
         print(f"  naive / spool write_bytes ratio: {naive_w / spool_w:.1f}x")
     else:

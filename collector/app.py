@@ -28,8 +28,9 @@ from listenpost.core.clock import Clock
 log = structlog.get_logger("collector")
 
 
-def create_app(settings: CollectorSettings, *, clock: Clock, store: Store | None = None,
-               run_monitor: bool = True) -> web.Application:
+def create_app(
+    settings: CollectorSettings, *, clock: Clock, store: Store | None = None, run_monitor: bool = True
+) -> web.Application:
     """
     Build the collector application.
 

@@ -28,8 +28,10 @@ DEFAULT_URL = "http://127.0.0.1:8470"
 DEFAULT_STATE_DIR = "/var/lib/listenpost/collector"
 DEFAULT_TIMEOUT = 30.0
 JSON_HELP = "print JSON instead of text"
-PACKAGE_HELP = ("what the card's first boot pip-installs as the agent (a requirement, wheel URL or path "
-                "reachable from the board; default: listenpost==<this version>)")
+PACKAGE_HELP = (
+    "what the card's first boot pip-installs as the agent (a requirement, wheel URL or path "
+    "reachable from the board; default: listenpost==<this version>)"
+)
 
 
 class AdminError(ListenpostError):
@@ -38,102 +40,188 @@ class AdminError(ListenpostError):
 
 # ------------------------------------------------------------------ parser
 
+
 def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None:  # type: ignore[type-arg]
     p = sub.add_parser(name, help=help_text, description=help_text)
-    cmds = p.add_subparsers(dest="command", required=True,
-                            metavar="{serve,board,tags,status,export,calibrate,walktest,events}")
+    cmds = p.add_subparsers(
+        dest="command", required=True, metavar="{serve,board,tags,status,export,calibrate,walktest,events}"
+    )
 
-    sv = cmds.add_parser("serve", help="run the collector service",
-                         description="Run the collector: board API, admin API, health page, /metrics.")
-    sv.add_argument("--state-dir", required=True, type=Path, metavar="DIR",
-                    help="admin token and (unless --db) the SQLite database live here")
+    sv = cmds.add_parser(
+        "serve",
+        help="run the collector service",
+        description="Run the collector: board API, admin API, health page, /metrics.",
+    )
+    sv.add_argument(
+        "--state-dir",
+        required=True,
+        type=Path,
+        metavar="DIR",
+        help="admin token and (unless --db) the SQLite database live here",
+    )
     sv.add_argument("--db", metavar="URL", help="postgresql://... for several collectors on one database")
     sv.add_argument("--host", help="listen address (default from the config, else 127.0.0.1)")
     sv.add_argument("--port", type=int, help="listen port (default from the config, else 8470)")
     sv.add_argument("--config", type=Path, metavar="FILE", help="collector.yaml")
-    sv.add_argument("--log-format", choices=("auto", "json", "console"), default="auto",
-                    help="log lines as JSON or for a terminal (default: console on a terminal, else JSON)")
+    sv.add_argument(
+        "--log-format",
+        choices=("auto", "json", "console"),
+        default="auto",
+        help="log lines as JSON or for a terminal (default: console on a terminal, else JSON)",
+    )
     sv.set_defaults(func=_serve)
 
     def client(parser: argparse.ArgumentParser) -> argparse.ArgumentParser:
-        parser.add_argument("--collector", metavar="URL", default=os.environ.get("LISTENPOST_COLLECTOR", DEFAULT_URL),
-                            help="collector base URL (default $LISTENPOST_COLLECTOR or %(default)s)")
-        parser.add_argument("--state-dir", type=Path, metavar="DIR",
-                            help=f"read the admin token from DIR/admin-token (default: $LISTENPOST_ADMIN_TOKEN, "
-                                 f"else {DEFAULT_STATE_DIR})")
-        parser.add_argument("--timeout", type=float, default=DEFAULT_TIMEOUT, metavar="S",
-                            help="give up on a request after S seconds (default %(default)s)")
+        parser.add_argument(
+            "--collector",
+            metavar="URL",
+            default=os.environ.get("LISTENPOST_COLLECTOR", DEFAULT_URL),
+            help="collector base URL (default $LISTENPOST_COLLECTOR or %(default)s)",
+        )
+        parser.add_argument(
+            "--state-dir",
+            type=Path,
+            metavar="DIR",
+            help=f"read the admin token from DIR/admin-token (default: $LISTENPOST_ADMIN_TOKEN, "
+            f"else {DEFAULT_STATE_DIR})",
+        )
+        parser.add_argument(
+            "--timeout",
+            type=float,
+            default=DEFAULT_TIMEOUT,
+            metavar="S",
+            help="give up on a request after S seconds (default %(default)s)",
+        )
         return parser
 
-    board = cmds.add_parser("board", help="add, list, show, retire boards; reissue enrollment codes",
-                            description="Add, list, show and retire boards; reissue enrollment codes.")
+    board = cmds.add_parser(
+        "board",
+        help="add, list, show, retire boards; reissue enrollment codes",
+        description="Add, list, show and retire boards; reissue enrollment codes.",
+    )
     bc = board.add_subparsers(dest="board_command", required=True, metavar="{add,list,show,retire,reissue}")
-    add = client(bc.add_parser(
-        "add", help="register a board and print its one-time enrollment code",
-        description="Register a board and print its one-time enrollment code. Boards reach the collector at "
-                    "public_url of collector.yaml, else at --collector: give one the board can reach."))
-    add.add_argument("name", metavar="NAME", help="board name: lower-case letters, digits, '.', '_', '-' (e.g. g0-a)")
+    add = client(
+        bc.add_parser(
+            "add",
+            help="register a board and print its one-time enrollment code",
+            description="Register a board and print its one-time enrollment code. Boards reach the collector at "
+            "public_url of collector.yaml, else at --collector: give one the board can reach.",
+        )
+    )
+    add.add_argument(
+        "name", metavar="NAME", help="board name: lower-case letters, digits, '.', '_', '-' (e.g. g0-a)"
+    )
     add.add_argument("--room", required=True, help="the room the board hears, as walk-test marks name it")
     add.add_argument("--floor", help="floor label (free text)")
-    add.add_argument("--bundle", type=Path, metavar="DIR",
-                     help="also write a provisioning bundle (agent.yaml, cloud-init user-data/meta-data) to DIR")
+    add.add_argument(
+        "--bundle",
+        type=Path,
+        metavar="DIR",
+        help="also write a provisioning bundle (agent.yaml, cloud-init user-data/meta-data) to DIR",
+    )
     add.add_argument("--package", metavar="SPEC", help=PACKAGE_HELP)
     add.add_argument("--json", action="store_true", help="print JSON instead of text")
     add.set_defaults(func=_board_add)
-    ls = client(bc.add_parser("list", help="all boards", description="All boards: room, floor, enrolled, offset."))
+    ls = client(
+        bc.add_parser("list", help="all boards", description="All boards: room, floor, enrolled, offset.")
+    )
     ls.add_argument("--json", action="store_true", help=JSON_HELP)
     ls.set_defaults(func=_board_list)
-    show = client(bc.add_parser("show", help="one board: record, state, counts, calibration history",
-                                description="One board: record, state, counts, calibration history."))
+    show = client(
+        bc.add_parser(
+            "show",
+            help="one board: record, state, counts, calibration history",
+            description="One board: record, state, counts, calibration history.",
+        )
+    )
     show.add_argument("name", metavar="NAME", help="board name")
     show.add_argument("--json", action="store_true", help=JSON_HELP)
     show.set_defaults(func=_board_show)
-    ret = client(bc.add_parser("retire", help="retire a board: its token stops working",
-                               description="Retire a board: its token stops working; its readings stay."))
+    ret = client(
+        bc.add_parser(
+            "retire",
+            help="retire a board: its token stops working",
+            description="Retire a board: its token stops working; its readings stay.",
+        )
+    )
     ret.add_argument("name", metavar="NAME", help="board name")
     ret.set_defaults(func=_board_retire)
-    rei = client(bc.add_parser("reissue", help="new enrollment code for a re-flashed card (older codes stop working)",
-                               description="New one-time enrollment code for a re-flashed card; older codes "
-                                           "stop working."))
+    rei = client(
+        bc.add_parser(
+            "reissue",
+            help="new enrollment code for a re-flashed card (older codes stop working)",
+            description="New one-time enrollment code for a re-flashed card; older codes stop working.",
+        )
+    )
     rei.add_argument("name", metavar="NAME", help="board name")
     rei.add_argument("--bundle", type=Path, metavar="DIR", help="also write a provisioning bundle to DIR")
     rei.add_argument("--package", metavar="SPEC", help=PACKAGE_HELP)
     rei.add_argument("--json", action="store_true", help=JSON_HELP)
     rei.set_defaults(func=_board_reissue)
 
-    tags = cmds.add_parser("tags", help="import, list, retire registered tags",
-                           description="Import, list and retire registered tags (canonical IDs, README.md "
-                                       "'Tag identities').")
+    tags = cmds.add_parser(
+        "tags",
+        help="import, list, retire registered tags",
+        description="Import, list and retire registered tags (canonical IDs, README.md 'Tag identities').",
+    )
     tc = tags.add_subparsers(dest="tags_command", required=True, metavar="{import,list,retire}")
-    imp = client(tc.add_parser("import", help="register tags from a file (all or nothing)",
-                               description="FILE: one canonical ID per line with '#' comments, or CSV with an "
-                                           "'id' column. A bad line stops the import; nothing is stored."))
+    imp = client(
+        tc.add_parser(
+            "import",
+            help="register tags from a file (all or nothing)",
+            description="FILE: one canonical ID per line with '#' comments, or CSV with an "
+            "'id' column. A bad line stops the import; nothing is stored.",
+        )
+    )
     imp.add_argument("file", type=Path, metavar="FILE", help="tag file or CSV")
     imp.set_defaults(func=_tags_import)
-    tl = client(tc.add_parser("list", help="registered tags, one per line",
-                              description="Registered tags, one canonical ID per line."))
+    tl = client(
+        tc.add_parser(
+            "list",
+            help="registered tags, one per line",
+            description="Registered tags, one canonical ID per line.",
+        )
+    )
     tl.add_argument("--retired", action="store_true", help="include retired tags")
     tl.set_defaults(func=_tags_list)
-    tr = client(tc.add_parser("retire", help="retire tags (boards stop reporting them)",
-                              description="Retire tags: boards stop reporting them; stored readings stay."))
+    tr = client(
+        tc.add_parser(
+            "retire",
+            help="retire tags (boards stop reporting them)",
+            description="Retire tags: boards stop reporting them; stored readings stay.",
+        )
+    )
     tr.add_argument("ids", nargs="+", metavar="ID", help="canonical tag ID")
     tr.set_defaults(func=_tags_retire)
 
-    st = client(cmds.add_parser("status", help="fleet health: one line per board",
-                                description="Fleet health, one line per board: state, last contact, readings, "
-                                            "readings per second, clock skew (ppm) and fit residual (ms), wall "
-                                            "clock error (s), spool backlog (batches), and why."))
+    st = client(
+        cmds.add_parser(
+            "status",
+            help="fleet health: one line per board",
+            description="Fleet health, one line per board: state, last contact, readings, "
+            "readings per second, clock skew (ppm) and fit residual (ms), wall "
+            "clock error (s), spool backlog (batches), and why.",
+        )
+    )
     st.add_argument("--json", action="store_true", help=JSON_HELP)
     st.set_defaults(func=_status)
 
-    ex = client(cmds.add_parser(
-        "export", help="binned calibrated RSSI table (tag × time bin × board)",
-        description="Calibrated RSSI per tag, time bin and board, on the collector's clock (each board's clock "
-                    "correction applied); the strongest reading of each bin. CSV: one row per heard cell "
-                    "(t_start_iso, t_start, tag, board, rssi_dbm, n). npz: dense arrays rssi[tag, bin, board] "
-                    "(NaN where not heard), counts, tags, boards, bin_starts, metadata. See README.md."))
-    ex.add_argument("--from", dest="t_from", required=True, metavar="T", help="ISO-8601 (UTC if no zone) or Unix seconds")
-    ex.add_argument("--to", dest="t_to", required=True, metavar="T", help="end, same forms; must be after --from")
+    ex = client(
+        cmds.add_parser(
+            "export",
+            help="binned calibrated RSSI table (tag × time bin × board)",
+            description="Calibrated RSSI per tag, time bin and board, on the collector's clock (each board's clock "
+            "correction applied); the strongest reading of each bin. CSV: one row per heard cell "
+            "(t_start_iso, t_start, tag, board, rssi_dbm, n). npz: dense arrays rssi[tag, bin, board] "
+            "(NaN where not heard), counts, tags, boards, bin_starts, metadata. See README.md.",
+        )
+    )
+    ex.add_argument(
+        "--from", dest="t_from", required=True, metavar="T", help="ISO-8601 (UTC if no zone) or Unix seconds"
+    )
+    ex.add_argument(
+        "--to", dest="t_to", required=True, metavar="T", help="end, same forms; must be after --from"
+    )
     ex.add_argument("--bin", type=float, required=True, metavar="S", help="bin width, seconds")
     ex.add_argument("--format", choices=("csv", "npz"), default="csv", help="default %(default)s")
     ex.add_argument("--out", type=Path, required=True, metavar="FILE", help="written whole or not at all")
@@ -141,36 +229,60 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
     ex.add_argument("--tag", action="append", metavar="ID", help="only these tags (repeatable)")
     ex.set_defaults(func=_export)
 
-    cal = client(cmds.add_parser(
-        "calibrate", help="set a board's RSSI offset from a reference tag at a measured distance",
-        description="Set a board's RSSI offset from the readings of a reference tag at a measured distance "
-                    "over the last few minutes: the median, corrected to 1 m with the log-distance model, "
-                    "against the tag's power at 1 m. The offset is applied at once and kept in the board's "
-                    "history; calibrate again to replace it."))
+    cal = client(
+        cmds.add_parser(
+            "calibrate",
+            help="set a board's RSSI offset from a reference tag at a measured distance",
+            description="Set a board's RSSI offset from the readings of a reference tag at a measured distance "
+            "over the last few minutes: the median, corrected to 1 m with the log-distance model, "
+            "against the tag's power at 1 m. The offset is applied at once and kept in the board's "
+            "history; calibrate again to replace it.",
+        )
+    )
     cal.add_argument("name", metavar="NAME", help="board name")
     cal.add_argument("--tag", required=True, metavar="ID", help="the reference tag's canonical ID")
-    cal.add_argument("--distance", type=float, required=True, metavar="M", help="tag-to-board distance, metres")
-    cal.add_argument("--minutes", type=float, default=5.0, metavar="N", help="use the last N minutes (default 5)")
-    cal.add_argument("--power-1m", type=float, default=-59.0, metavar="DBM",
-                     help="the reference tag's RSSI at 1 m, dBm (default -59)")
-    cal.add_argument("--exponent", type=float, default=2.0, metavar="N", help="path-loss exponent (default 2)")
+    cal.add_argument(
+        "--distance", type=float, required=True, metavar="M", help="tag-to-board distance, metres"
+    )
+    cal.add_argument(
+        "--minutes", type=float, default=5.0, metavar="N", help="use the last N minutes (default 5)"
+    )
+    cal.add_argument(
+        "--power-1m",
+        type=float,
+        default=-59.0,
+        metavar="DBM",
+        help="the reference tag's RSSI at 1 m, dBm (default -59)",
+    )
+    cal.add_argument(
+        "--exponent", type=float, default=2.0, metavar="N", help="path-loss exponent (default 2)"
+    )
     cal.add_argument("--json", action="store_true", help=JSON_HELP)
     cal.set_defaults(func=_calibrate)
 
-    wt = client(cmds.add_parser("walktest", help="per-room report of a walk with a reference tag",
-                                description="Per room visited with a reference tag: which board heard it "
-                                            "strongest, by how many dB, and which boards of other rooms heard "
-                                            "it too. MARKS: CSV with columns room,from,to (times ISO-8601 or "
-                                            "Unix seconds; rooms named as in 'board add --room'), one row per "
-                                            "room visited."))
+    wt = client(
+        cmds.add_parser(
+            "walktest",
+            help="per-room report of a walk with a reference tag",
+            description="Per room visited with a reference tag: which board heard it "
+            "strongest, by how many dB, and which boards of other rooms heard "
+            "it too. MARKS: CSV with columns room,from,to (times ISO-8601 or "
+            "Unix seconds; rooms named as in 'board add --room'), one row per "
+            "room visited.",
+        )
+    )
     wt.add_argument("--tag", required=True, metavar="ID", help="the reference tag's canonical ID")
     wt.add_argument("--marks", required=True, type=Path, metavar="FILE", help="CSV room,from,to")
     wt.add_argument("--json", action="store_true", help=JSON_HELP)
     wt.set_defaults(func=_walktest)
 
-    ev = client(cmds.add_parser("events", help="state changes, losses, conflicts, calibrations",
-                                description="Stored events, oldest first: state changes, losses, conflicts, "
-                                            "calibrations."))
+    ev = client(
+        cmds.add_parser(
+            "events",
+            help="state changes, losses, conflicts, calibrations",
+            description="Stored events, oldest first: state changes, losses, conflicts, calibrations.",
+        )
+    )
     ev.add_argument("--since", type=int, default=0, metavar="ID", help="only events after this id")
     ev.add_argument("--board", metavar="NAME", help="only this board's events")
     ev.add_argument("--json", action="store_true", help=JSON_HELP)
@@ -178,6 +290,7 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
 
 
 # ------------------------------------------------------------------ serve
+
 
 def tls_context(settings: Any) -> ssl.SSLContext | None:
     """
@@ -195,7 +308,9 @@ def tls_context(settings: Any) -> ssl.SSLContext | None:
     try:
         ctx.load_cert_chain(settings.tls_cert, settings.tls_key)
     except (OSError, ssl.SSLError) as e:
-        raise ConfigError(f"{settings.origin}: tls: cannot load {settings.tls_cert} / {settings.tls_key}: {e}") from e
+        raise ConfigError(
+            f"{settings.origin}: tls: cannot load {settings.tls_cert} / {settings.tls_key}: {e}"
+        ) from e
     return ctx
 
 
@@ -209,7 +324,9 @@ def _serve(args: argparse.Namespace) -> int:
     from listenpost.core.logs import configure
     from listenpost.core.notify import Notifier
 
-    settings = load_settings(args.config, state_dir=str(args.state_dir), db_url=args.db, host=args.host, port=args.port)
+    settings = load_settings(
+        args.config, state_dir=str(args.state_dir), db_url=args.db, host=args.host, port=args.port
+    )
     configure(args.log_format)
     ssl_ctx = tls_context(settings)
     app = create_app(settings, clock=SystemClock())
@@ -217,8 +334,9 @@ def _serve(args: argparse.Namespace) -> int:
 
     async def notify_ctx(app: web.Application) -> Any:
         url = f"{'https' if ssl_ctx else 'http'}://{settings.host}:{settings.port}"
-        structlog.get_logger("listenpost.collector.cli").info("collector_listening", url=url, health_page=url + "/",
-                                                   public_url=settings.public_url)
+        structlog.get_logger("listenpost.collector.cli").info(
+            "collector_listening", url=url, health_page=url + "/", public_url=settings.public_url
+        )
         notifier.ready(f"listening on {url}")
         task = asyncio.create_task(_watchdog(notifier)) if notifier.watchdog_interval else None
         yield
@@ -239,6 +357,7 @@ async def _watchdog(notifier: Any) -> None:
 
 # ------------------------------------------------------------------ admin client
 
+
 def admin_token(args: argparse.Namespace) -> str:
     """The admin token: ``--state-dir`` first, then ``$LISTENPOST_ADMIN_TOKEN``, then the default state dir."""
     from listenpost.collector.http.auth import ADMIN_TOKEN_ENV, read_admin_token
@@ -248,8 +367,10 @@ def admin_token(args: argparse.Namespace) -> str:
     try:
         return read_admin_token(args.state_dir if args.state_dir is not None else DEFAULT_STATE_DIR)
     except ConfigError as e:
-        raise ConfigError(f"{e}; give --state-dir DIR (the collector's own --state-dir, where it wrote "
-                          f"admin-token at first start) or set ${ADMIN_TOKEN_ENV}") from None
+        raise ConfigError(
+            f"{e}; give --state-dir DIR (the collector's own --state-dir, where it wrote "
+            f"admin-token at first start) or set ${ADMIN_TOKEN_ENV}"
+        ) from None
 
 
 def collector_url(text: str) -> str:
@@ -262,18 +383,29 @@ def collector_url(text: str) -> str:
     except ValueError as e:
         raise ConfigError(f"--collector: {e}: {text!r}") from None
     if parts.scheme not in ("http", "https") or not parts.hostname:
-        raise ConfigError(f"--collector: must be an http(s) URL like http://10.0.0.2:8470, got {text!r} "
-                          "(or set $LISTENPOST_COLLECTOR)")
+        raise ConfigError(
+            f"--collector: must be an http(s) URL like http://10.0.0.2:8470, got {text!r} "
+            "(or set $LISTENPOST_COLLECTOR)"
+        )
     return text.strip().rstrip("/")
 
 
-def request(args: argparse.Namespace, method: str, path: str, *, body: Any = None,
-            params: Sequence[tuple[str, str]] | None = None, raw: bool = False) -> Any:
+def request(
+    args: argparse.Namespace,
+    method: str,
+    path: str,
+    *,
+    body: Any = None,
+    params: Sequence[tuple[str, str]] | None = None,
+    raw: bool = False,
+) -> Any:
     """One admin API call with a total timeout; returns the JSON answer (or bytes with ``raw``)."""
     return asyncio.run(_request(args, method, path, body=body, params=params, raw=raw))
 
 
-async def _request(args: argparse.Namespace, method: str, path: str, *, body: Any, params: Any, raw: bool) -> Any:
+async def _request(
+    args: argparse.Namespace, method: str, path: str, *, body: Any, params: Any, raw: bool
+) -> Any:
     import aiohttp
 
     base = collector_url(args.collector)
@@ -281,8 +413,12 @@ async def _request(args: argparse.Namespace, method: str, path: str, *, body: An
     url = base + path
     timeout = aiohttp.ClientTimeout(total=args.timeout, connect=min(args.timeout, 10.0))
     try:
-        async with aiohttp.ClientSession(timeout=timeout) as session, session.request(
-                method, url, json=body, params=params, headers={"Authorization": f"Bearer {token}"}) as resp:
+        async with (
+            aiohttp.ClientSession(timeout=timeout) as session,
+            session.request(
+                method, url, json=body, params=params, headers={"Authorization": f"Bearer {token}"}
+            ) as resp,
+        ):
             data = await resp.read()
             if resp.status >= 400:
                 _raise_for(resp.status, data, url, base)
@@ -293,8 +429,10 @@ async def _request(args: argparse.Namespace, method: str, path: str, *, body: An
         raise AdminError(f"the collector at {args.collector} did not answer within {args.timeout:g} s") from e
 
 
-_HINTS = {"unknown_board": "'listenpost collector board list' shows the boards",
-          "no_readings": "is the board live and the tag beside it? --minutes widens the window"}
+_HINTS = {
+    "unknown_board": "'listenpost collector board list' shows the boards",
+    "no_readings": "is the board live and the tag beside it? --minutes widens the window",
+}
 
 
 def _raise_for(status: int, data: bytes, url: str, base: str) -> None:
@@ -308,10 +446,14 @@ def _raise_for(status: int, data: bytes, url: str, base: str) -> None:
     except (ValueError, KeyError, TypeError, AttributeError):
         err, msg, code = None, data[:200].decode("utf-8", "replace").strip(), None
     if status == 401:
-        raise AdminError("the collector refused the admin token (check --state-dir or $LISTENPOST_ADMIN_TOKEN)")
+        raise AdminError(
+            "the collector refused the admin token (check --state-dir or $LISTENPOST_ADMIN_TOKEN)"
+        )
     if status in (404, 405) and (err is None or code in ("not_found", "method_not_allowed")):
         # No such route: a proxy, another service, or a path after the port in --collector.
-        raise AdminError(f"{url} answered {status}: is {base} a listenpost collector (no path after the port)?")
+        raise AdminError(
+            f"{url} answered {status}: is {base} a listenpost collector (no path after the port)?"
+        )
     hint = _HINTS.get(code or "")
     text = f"{msg}; {hint}" if hint else str(msg)
     if status in (400, 404):
@@ -325,7 +467,12 @@ def table(rows: Sequence[Sequence[Any]], headers: Sequence[str], right: Sequence
     widths = [max(len(r[i]) for r in cells) for i in range(len(headers))]
     lines = []
     for n, r in enumerate(cells):
-        lines.append("  ".join(v.rjust(w) if i in right else v.ljust(w) for i, (v, w) in enumerate(zip(r, widths, strict=True))).rstrip())
+        lines.append(
+            "  ".join(
+                v.rjust(w) if i in right else v.ljust(w)
+                for i, (v, w) in enumerate(zip(r, widths, strict=True))
+            ).rstrip()
+        )
         if n == 0:
             lines.append("  ".join("-" * w for w in widths))
     return "\n".join(lines)
@@ -356,14 +503,23 @@ def parse_time(text: str, what: str) -> float:
 
 # ------------------------------------------------------------------ boards
 
+
 def _write_bundle(args: argparse.Namespace, answer: dict[str, Any]) -> Path | None:
     if not getattr(args, "bundle", None):
         return None
     from listenpost.collector.provision import write_bundle
+
     extra = {"package": args.package} if getattr(args, "package", None) else {}
-    write_bundle(args.bundle, board=answer["name"], room=answer["room"], floor=answer.get("floor"),
-                 code=answer["code"], collector_url=_board_url(args, answer), expires_at=answer["code_expires_at"],
-                 **extra)
+    write_bundle(
+        args.bundle,
+        board=answer["name"],
+        room=answer["room"],
+        floor=answer.get("floor"),
+        code=answer["code"],
+        collector_url=_board_url(args, answer),
+        expires_at=answer["code_expires_at"],
+        **extra,
+    )
     return args.bundle
 
 
@@ -390,19 +546,28 @@ def _print_code(args: argparse.Namespace, answer: dict[str, Any], verb: str) -> 
     url = _board_url(args, answer)
     if _loopback(url):
         # On the board, 127.0.0.1 is the board itself: such a code or bundle can only work on this machine.
-        print(f"listenpost: warning: boards are told to reach the collector at {url}, a loopback address; "
-              "set public_url in collector.yaml (and listen.host or --host to an address the boards can "
-              "reach), or run this command with --collector URL as the boards see it", file=sys.stderr)
+        print(
+            f"listenpost: warning: boards are told to reach the collector at {url}, a loopback address; "
+            "set public_url in collector.yaml (and listen.host or --host to an address the boards can "
+            "reach), or run this command with --collector URL as the boards see it",
+            file=sys.stderr,
+        )
     if args.json:
         _out(json.dumps({**answer, "bundle": str(bundle) if bundle else None}))
         return 0
-    _out(f"{verb} board {answer['name']} (room {answer['room']}"
-         f"{', floor ' + answer['floor'] if answer.get('floor') else ''})")
-    _out(f"enrollment code: {answer['code']}   (one use, valid until {_fmt_time(answer['code_expires_at'])} UTC)")
+    _out(
+        f"{verb} board {answer['name']} (room {answer['room']}"
+        f"{', floor ' + answer['floor'] if answer.get('floor') else ''})"
+    )
+    _out(
+        f"enrollment code: {answer['code']}   (one use, valid until {_fmt_time(answer['code_expires_at'])} UTC)"
+    )
     _out(f"on the board:    listenpost agent enroll --collector {url} --code {answer['code']}")
     if bundle:
-        _out(f"bundle written:  {bundle}/ (copy user-data and meta-data to the card's boot partition; "
-             "see README.txt there)")
+        _out(
+            f"bundle written:  {bundle}/ (copy user-data and meta-data to the card's boot partition; "
+            "see README.txt there)"
+        )
     return 0
 
 
@@ -410,6 +575,7 @@ def _check_bundle_possible(args: argparse.Namespace) -> None:
     """Fail before the collector is asked for a code, so a bundle problem never leaves a half-done board."""
     if getattr(args, "bundle", None):
         from listenpost.collector.provision import agent_unit, package_spec
+
         agent_unit()
         package_spec(getattr(args, "package", None))
         if args.bundle.exists() and not args.bundle.is_dir():
@@ -418,7 +584,9 @@ def _check_bundle_possible(args: argparse.Namespace) -> None:
 
 def _board_add(args: argparse.Namespace) -> int:
     _check_bundle_possible(args)
-    answer = request(args, "POST", "/v1/admin/boards", body={"name": args.name, "room": args.room, "floor": args.floor})
+    answer = request(
+        args, "POST", "/v1/admin/boards", body={"name": args.name, "room": args.room, "floor": args.floor}
+    )
     return _print_code(args, answer, "added")
 
 
@@ -433,8 +601,17 @@ def _board_list(args: argparse.Namespace) -> int:
     if args.json:
         _out(json.dumps(answer))
         return 0
-    rows = [(b["name"], b["room"], b["floor"], "yes" if b["enrolled_at"] else "no", f"{b['offset_db']:+.1f}",
-             "retired" if b["retired_at"] else "") for b in answer["boards"]]
+    rows = [
+        (
+            b["name"],
+            b["room"],
+            b["floor"],
+            "yes" if b["enrolled_at"] else "no",
+            f"{b['offset_db']:+.1f}",
+            "retired" if b["retired_at"] else "",
+        )
+        for b in answer["boards"]
+    ]
     _out(table(rows, ("BOARD", "ROOM", "FLOOR", "ENROLLED", "OFFSET dB", ""), right=(4,)))
     return 0
 
@@ -445,20 +622,43 @@ def _board_show(args: argparse.Namespace) -> int:
         _out(json.dumps(b))
         return 0
     hb = b["last_heartbeat"]
-    pairs = [("board", b["name"]), ("room", b["room"]), ("floor", b["floor"]), ("state", b["state"]),
-             ("reason", b["state_reason"]), ("enrolled", _fmt_time(b["enrolled_at"])),
-             ("retired", _fmt_time(b["retired_at"])), ("offset", f"{b['offset_db']:+.1f} dB"),
-             ("readings", b["readings_total"]), ("batches", b["batches_total"]),
-             ("last batch", _fmt_time(b["last_batch_at"])), ("last heartbeat", _fmt_time(hb["at"]) if hb else None),
-             ("fingerprint", json.dumps(b["fingerprint"]) if b["fingerprint"] else None)]
+    pairs = [
+        ("board", b["name"]),
+        ("room", b["room"]),
+        ("floor", b["floor"]),
+        ("state", b["state"]),
+        ("reason", b["state_reason"]),
+        ("enrolled", _fmt_time(b["enrolled_at"])),
+        ("retired", _fmt_time(b["retired_at"])),
+        ("offset", f"{b['offset_db']:+.1f} dB"),
+        ("readings", b["readings_total"]),
+        ("batches", b["batches_total"]),
+        ("last batch", _fmt_time(b["last_batch_at"])),
+        ("last heartbeat", _fmt_time(hb["at"]) if hb else None),
+        ("fingerprint", json.dumps(b["fingerprint"]) if b["fingerprint"] else None),
+    ]
     width = max(len(k) for k, _ in pairs)
     for k, v in pairs:
         _out(f"{k.ljust(width)}  {'–' if v is None else v}")
     if b["calibrations"]:
         _out("\ncalibrations:")
-        _out(table([(_fmt_time(c["at"]), f"{c['offset_db']:+.1f}", f"{c['spread_db']:.1f}", c["samples"],
-                     c["reference_tag"], f"{c['distance_m']:g}") for c in b["calibrations"]],
-                   ("AT (UTC)", "OFFSET dB", "SPREAD dB", "SAMPLES", "TAG", "DIST m"), right=(1, 2, 3, 5)))
+        _out(
+            table(
+                [
+                    (
+                        _fmt_time(c["at"]),
+                        f"{c['offset_db']:+.1f}",
+                        f"{c['spread_db']:.1f}",
+                        c["samples"],
+                        c["reference_tag"],
+                        f"{c['distance_m']:g}",
+                    )
+                    for c in b["calibrations"]
+                ],
+                ("AT (UTC)", "OFFSET dB", "SPREAD dB", "SAMPLES", "TAG", "DIST m"),
+                right=(1, 2, 3, 5),
+            )
+        )
     if b["recalibrate"]:
         _out("\n! the hardware fingerprint changed since the last calibration: calibrate again")
     return 0
@@ -471,6 +671,7 @@ def _board_retire(args: argparse.Namespace) -> int:
 
 
 # ------------------------------------------------------------------ tags
+
 
 def read_tag_file(path: Path) -> list[str]:
     """Canonical IDs from a tag file (one per line, ``#`` comments) or a CSV with an ``id`` column."""
@@ -513,8 +714,10 @@ def _tags_import(args: argparse.Namespace) -> int:
     answer = request(args, "POST", "/v1/admin/tags", body={"ids": ids})
     _out(f"{args.file}: {answer['given']} tags read, {answer['added']} new; {answer['total']} registered now")
     for rule, n in sorted((answer.get("without_rule") or {}).items()):
-        _out(f"! {n} tags use the decode rule {rule!r}, which the collector's config does not define: no board "
-             f"can hear them until decode.rules in collector.yaml has it (DEVELOPERS.md, 'How to add a decode rule')")
+        _out(
+            f"! {n} tags use the decode rule {rule!r}, which the collector's config does not define: no board "
+            f"can hear them until decode.rules in collector.yaml has it (DEVELOPERS.md, 'How to add a decode rule')"
+        )
     return 0
 
 
@@ -533,8 +736,10 @@ def _tags_retire(args: argparse.Namespace) -> int:
 
 # ------------------------------------------------------------------ status, export, events
 
+
 def _age(s: float | None) -> str | None:
     from listenpost.collector.status import fmt_age
+
     return None if s is None else fmt_age(s)
 
 
@@ -548,14 +753,45 @@ def _status(args: argparse.Namespace) -> int:
         _out(json.dumps(doc))
         return 0
     f = doc["fleet"]
-    _out(f"{f['boards']} boards · {f['readings_total']:,} readings · {f['tags']} tags · "
-         + ", ".join(f"{n} {s}" for s, n in sorted(f["by_state"].items())))
-    rows = [(r["name"], r["room"], r["state"], _age(r["last_contact_age_s"]), f"{r['readings_total']:,}",
-             _num(r["readings_per_s"], ".1f"), _num(r["clock_skew_ppm"], "+.1f"), _num(r["clock_residual_ms"], ".1f"),
-             _num(None if r["wall_error_ms"] is None else r["wall_error_ms"] / 1000, "+.1f"),
-             r["spool_backlog_batches"], r["state_reason"] or "") for r in doc["boards"]]
-    _out(table(rows, ("BOARD", "ROOM", "STATE", "LAST CONTACT", "READINGS", "PER s", "SKEW ppm", "FIT ms",
-                      "WALL s", "BACKLOG", "WHY"), right=(4, 5, 6, 7, 8, 9)))
+    _out(
+        f"{f['boards']} boards · {f['readings_total']:,} readings · {f['tags']} tags · "
+        + ", ".join(f"{n} {s}" for s, n in sorted(f["by_state"].items()))
+    )
+    rows = [
+        (
+            r["name"],
+            r["room"],
+            r["state"],
+            _age(r["last_contact_age_s"]),
+            f"{r['readings_total']:,}",
+            _num(r["readings_per_s"], ".1f"),
+            _num(r["clock_skew_ppm"], "+.1f"),
+            _num(r["clock_residual_ms"], ".1f"),
+            _num(None if r["wall_error_ms"] is None else r["wall_error_ms"] / 1000, "+.1f"),
+            r["spool_backlog_batches"],
+            r["state_reason"] or "",
+        )
+        for r in doc["boards"]
+    ]
+    _out(
+        table(
+            rows,
+            (
+                "BOARD",
+                "ROOM",
+                "STATE",
+                "LAST CONTACT",
+                "READINGS",
+                "PER s",
+                "SKEW ppm",
+                "FIT ms",
+                "WALL s",
+                "BACKLOG",
+                "WHY",
+            ),
+            right=(4, 5, 6, 7, 8, 9),
+        )
+    )
     return 0
 
 
@@ -584,8 +820,10 @@ def _events(args: argparse.Namespace) -> int:
     if args.json:
         _out(json.dumps(answer))
         return 0
-    rows = [(e["id"], _fmt_time(e["at"]), e["board"] or "", e["kind"], event_detail(e["kind"], e["detail"]))
-            for e in answer["events"]]
+    rows = [
+        (e["id"], _fmt_time(e["at"]), e["board"] or "", e["kind"], event_detail(e["kind"], e["detail"]))
+        for e in answer["events"]
+    ]
     _out(table(rows, ("ID", "AT (UTC)", "BOARD", "KIND", "DETAIL"), right=(0,)))
     return 0
 
@@ -598,22 +836,32 @@ def event_detail(kind: str, detail: Any) -> str:
         old = detail.get("old") or "–"
         reason = f": {detail['reason']}" if detail.get("reason") else ""
         return f"{old} → {detail['new']}{reason}"
-    return " ".join(f"{k}={json.dumps(v, separators=(',', ':')) if isinstance(v, dict | list) else v}"
-                    for k, v in detail.items())
+    return " ".join(
+        f"{k}={json.dumps(v, separators=(',', ':')) if isinstance(v, dict | list) else v}"
+        for k, v in detail.items()
+    )
 
 
 # ------------------------------------------------------------------ calibration and walk test
 
+
 def _calibrate(args: argparse.Namespace) -> int:
-    body = {"tag": args.tag, "distance_m": args.distance, "minutes": args.minutes,
-            "power_1m_dbm": args.power_1m, "exponent": args.exponent}
+    body = {
+        "tag": args.tag,
+        "distance_m": args.distance,
+        "minutes": args.minutes,
+        "power_1m_dbm": args.power_1m,
+        "exponent": args.exponent,
+    }
     answer = request(args, "POST", f"/v1/admin/boards/{args.name}/calibrate", body=body)
     if args.json:
         _out(json.dumps(answer))
         return 0
-    _out(f"board {answer['board']}: offset {answer['offset_db']:+.1f} dB (was {answer['previous_offset_db']:+.1f}), "
-         f"spread {answer['spread_db']:.1f} dB from {answer['samples']} readings of {answer['reference_tag']} "
-         f"at {answer['distance_m']:g} m (raw median {answer['median_dbm']:.1f} dBm)")
+    _out(
+        f"board {answer['board']}: offset {answer['offset_db']:+.1f} dB (was {answer['previous_offset_db']:+.1f}), "
+        f"spread {answer['spread_db']:.1f} dB from {answer['samples']} readings of {answer['reference_tag']} "
+        f"at {answer['distance_m']:g} m (raw median {answer['median_dbm']:.1f} dBm)"
+    )
     for w in answer["warnings"]:
         _out(f"! {_CALIBRATION_WARNINGS.get(w, w)}")
     if answer["warnings"]:
@@ -624,9 +872,9 @@ def _calibrate(args: argparse.Namespace) -> int:
 _CALIBRATION_WARNINGS = {
     "too_few_samples": "few readings: leave the tag in place longer (or give a larger --minutes)",
     "spread_too_wide": "the readings spread widely: people or reflections moved around the tag; calibrate when "
-                       "the room is quiet",
+    "the room is quiet",
     "offset_large": "an offset this large usually means a wrong --distance, the wrong reference tag (see "
-                    "--power-1m) or a damaged antenna",
+    "--power-1m) or a damaged antenna",
 }
 
 
@@ -639,7 +887,9 @@ def read_marks(path: Path) -> list[dict[str, Any]]:
     reader = csv.DictReader(io.StringIO(text))
     missing = {"room", "from", "to"} - {(h or "").strip().lower() for h in reader.fieldnames or []}
     if missing:
-        raise ConfigError(f"{path}:1: header must name the columns room, from, to (missing {', '.join(sorted(missing))})")
+        raise ConfigError(
+            f"{path}:1: header must name the columns room, from, to (missing {', '.join(sorted(missing))})"
+        )
     marks = []
     for row in reader:
         row = {(k or "").strip().lower(): (v or "").strip() for k, v in row.items()}
@@ -648,8 +898,13 @@ def read_marks(path: Path) -> list[dict[str, Any]]:
         where = f"{path}:{reader.line_num}"
         if not row["room"]:
             raise ConfigError(f"{where}: room is empty")
-        marks.append({"room": row["room"], "from": parse_time(row["from"], f"{where}: from"),
-                      "to": parse_time(row["to"], f"{where}: to")})
+        marks.append(
+            {
+                "room": row["room"],
+                "from": parse_time(row["from"], f"{where}: from"),
+                "to": parse_time(row["to"], f"{where}: to"),
+            }
+        )
         if marks[-1]["to"] <= marks[-1]["from"]:
             raise ConfigError(f"{where}: to must be after from")
     if not marks:
@@ -658,7 +913,9 @@ def read_marks(path: Path) -> list[dict[str, Any]]:
 
 
 def _walktest(args: argparse.Namespace) -> int:
-    answer = request(args, "POST", "/v1/admin/walktest", body={"tag": args.tag, "marks": read_marks(args.marks)})
+    answer = request(
+        args, "POST", "/v1/admin/walktest", body={"tag": args.tag, "marks": read_marks(args.marks)}
+    )
     if args.json:
         _out(json.dumps(answer))
         return 0
@@ -666,9 +923,32 @@ def _walktest(args: argparse.Namespace) -> int:
     for r in answer["rooms"]:
         best, heard = r["strongest"], r["heard"]
         runner = heard[1]["board"] if len(heard) > 1 else None
-        rows.append((r["room"], best["board"] if best else "nobody", _num(best["median_dbm"] if best else None, ".1f"),
-                     runner, _num(r["margin_db"], ".1f"), None if not best else "yes" if r["strongest_in_room"] else "NO",
-                     ", ".join(h["board"] for h in r["overlap"]), f"{100 * r['seconds_share']:.0f}"))
-    _out(table(rows, ("ROOM", "STRONGEST", "dBm", "RUNNER-UP", "MARGIN dB", "IN ROOM", "OVERLAP (other rooms)",
-                      "COVER %"), right=(2, 4, 7)))
+        rows.append(
+            (
+                r["room"],
+                best["board"] if best else "nobody",
+                _num(best["median_dbm"] if best else None, ".1f"),
+                runner,
+                _num(r["margin_db"], ".1f"),
+                None if not best else "yes" if r["strongest_in_room"] else "NO",
+                ", ".join(h["board"] for h in r["overlap"]),
+                f"{100 * r['seconds_share']:.0f}",
+            )
+        )
+    _out(
+        table(
+            rows,
+            (
+                "ROOM",
+                "STRONGEST",
+                "dBm",
+                "RUNNER-UP",
+                "MARGIN dB",
+                "IN ROOM",
+                "OVERLAP (other rooms)",
+                "COVER %",
+            ),
+            right=(2, 4, 7),
+        )
+    )
     return 0

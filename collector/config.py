@@ -185,8 +185,12 @@ def parse_settings(data: Any, origin: str = "collector.yaml", **overrides: Any) 
         max_decompressed_bytes=lim.get("max_decompressed_bytes", int, d.max_decompressed_bytes, positive),
         max_readings=lim.get("max_readings", int, d.max_readings, positive),
         max_inflight_batches=lim.get("max_inflight_batches", int, d.max_inflight_batches, positive),
-        busy_retry_after_seconds=lim.get("busy_retry_after_seconds", int, d.busy_retry_after_seconds,
-                                         check=lambda v: None if 1 <= v <= 3600 else "must be 1..3600"),
+        busy_retry_after_seconds=lim.get(
+            "busy_retry_after_seconds",
+            int,
+            d.busy_retry_after_seconds,
+            check=lambda v: None if 1 <= v <= 3600 else "must be 1..3600",
+        ),
     )
     lim.done()
     if limits.max_decompressed_bytes < limits.max_body_bytes:
@@ -207,10 +211,22 @@ def parse_settings(data: Any, origin: str = "collector.yaml", **overrides: Any) 
     top.done()
 
     settings = CollectorSettings(
-        host=host, port=port, tls_cert=cert, tls_key=key, public_url=public_url.rstrip("/") if public_url else None,
-        webhook=webhook, retention_days=retention_days, retention_chunk=retention_chunk, liveness=liveness,
-        code_lifetime_seconds=code_hours * 3600.0, limits=limits, flush_seconds=flush, heartbeat_seconds=heartbeat,
-        rules=rules, monitor_interval_seconds=interval, origin=origin,
+        host=host,
+        port=port,
+        tls_cert=cert,
+        tls_key=key,
+        public_url=public_url.rstrip("/") if public_url else None,
+        webhook=webhook,
+        retention_days=retention_days,
+        retention_chunk=retention_chunk,
+        liveness=liveness,
+        code_lifetime_seconds=code_hours * 3600.0,
+        limits=limits,
+        flush_seconds=flush,
+        heartbeat_seconds=heartbeat,
+        rules=rules,
+        monitor_interval_seconds=interval,
+        origin=origin,
     )
     return settings.replace(**{k: v for k, v in overrides.items() if v is not None})
 

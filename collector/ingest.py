@@ -30,8 +30,13 @@ async def clock_model(models: dict[tuple[str, str], Any], store: Store, board: s
     return model
 
 
-async def record_exchange(models: dict[tuple[str, str], Any], store: Store, board: str, boot: str,
-                          exchange: tuple[float, float, float, float]) -> Any:
+async def record_exchange(
+    models: dict[tuple[str, str], Any],
+    store: Store,
+    board: str,
+    boot: str,
+    exchange: tuple[float, float, float, float],
+) -> Any:
     """Store one four-timestamp exchange and feed it to the model; returns the `ClockStep` it confirmed, if any."""
     model = await clock_model(models, store, board, boot)
     try:
@@ -58,8 +63,13 @@ def to_ingest_batch(env: BatchEnvelope, *, received_at: float, model: Any) -> In
     c = env.content
     offset_db = float(c.offset_db)
     return IngestBatch(
-        board=env.board, boot=c.boot, epoch=env.epoch, seq=env.seq, digest=env.digest,
-        received_at=received_at, offset_db=offset_db,
+        board=env.board,
+        boot=c.boot,
+        epoch=env.epoch,
+        seq=env.seq,
+        digest=env.digest,
+        received_at=received_at,
+        offset_db=offset_db,
         tags=np.array(c.tags, dtype=object),
         t_board_ms=np.asarray(c.t_ms, dtype=np.int64),
         t_collector=collector_times(env, model, t2=received_at),

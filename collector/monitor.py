@@ -173,13 +173,18 @@ class Monitor:
         from listenpost.collector.models.liveness import BoardState, LivenessSettings, LivenessTracker
 
         await self._follow_states()
-        known = {b: BoardState(s["state"]) for b, s in self.runtime.states.items()
-                 if s.get("state") in BoardState._value2member_map_}
+        known = {
+            b: BoardState(s["state"])
+            for b, s in self.runtime.states.items()
+            if s.get("state") in BoardState._value2member_map_
+        }
         overrides = {"heartbeat_s": self.settings.heartbeat_seconds, **self.settings.liveness}
         self.tracker = LivenessTracker(LivenessSettings(**overrides), initial=known)
         for e in await self._all_events("loss"):
             d = e.detail
-            self._reported_holes.add((e.board or "", d.get("epoch", ""), d.get("first_seq", -1), d.get("last_seq", -1)))
+            self._reported_holes.add(
+                (e.board or "", d.get("epoch", ""), d.get("first_seq", -1), d.get("last_seq", -1))
+            )
         self._seeded = True
 
     async def _all_events(self, kind: str) -> list[Event]:
@@ -196,8 +201,11 @@ class Monitor:
             page = await self.store.events(since_id=self._state_cursor, limit=1000)
             for e in page:
                 if e.kind == "state_changed" and e.board:
-                    self.runtime.states[e.board] = {"state": e.detail.get("new"), "since": e.at,
-                                                    "reason": e.detail.get("reason")}
+                    self.runtime.states[e.board] = {
+                        "state": e.detail.get("new"),
+                        "since": e.at,
+                        "reason": e.detail.get("reason"),
+                    }
             if page:
                 self._state_cursor = max(e.id or 0 for e in page)
             if len(page) < 1000:
@@ -232,27 +240,50 @@ class Monitor:
             fit = None
             if hb is not None:
                 fit = (await clock_model(self.runtime.clock_models, self.store, b.name, hb.boot)).fit()
-            samples = [HeartbeatSample(h.at, int(stat(h.stats, "adverts_total", "pipeline.adverts_total") or 0),
-                                       int(stat(h.stats, "spool_batches", "spool.batches") or 0)) for h in hbs]
-            others = sum(total - then.get(name, 0) for name, total in
-                         ((n, c2.readings_total) for n, c2 in counts.items()) if name != b.name)
-            inputs = BoardInputs(board=b.name, contacts=contacts, heartbeats=samples, clock=fit,
-                                 retired=b.retired_at is not None, others_readings=others)
+            samples = [
+                HeartbeatSample(
+                    h.at,
+                    int(stat(h.stats, "adverts_total", "pipeline.adverts_total") or 0),
+                    int(stat(h.stats, "spool_batches", "spool.batches") or 0),
+                )
+                for h in hbs
+            ]
+            others = sum(
+                total - then.get(name, 0)
+                for name, total in ((n, c2.readings_total) for n, c2 in counts.items())
+                if name != b.name
+            )
+            inputs = BoardInputs(
+                board=b.name,
+                contacts=contacts,
+                heartbeats=samples,
+                clock=fit,
+                retired=b.retired_at is not None,
+                others_readings=others,
+            )
             change = self.tracker.update(inputs, now)
             report.evaluated.append(b.name)
             verdict = self.tracker.verdict(b.name)
             prev = self.runtime.states.get(b.name, {})
             st = _value(verdict.state)
-            self.runtime.states[b.name] = {"state": st, "reason": verdict.reason,
-                                           "since": prev.get("since") if prev.get("state") == st else now}
+            self.runtime.states[b.name] = {
+                "state": st,
+                "reason": verdict.reason,
+                "since": prev.get("since") if prev.get("state") == st else now,
+            }
             if change is None:
                 continue
             detail = {"old": _value(change.old), "new": _value(change.new), "reason": change.reason}
             event = Event(change.at, change.board, "state_changed", detail)
             event = Event(event.at, event.board, event.kind, event.detail, await self.store.add_event(event))
             report.changes.append(event)
-            log.info("board_state_changed", board=change.board, old=detail["old"], new=detail["new"],
-                     reason=change.reason)
+            log.info(
+                "board_state_changed",
+                board=change.board,
+                old=detail["old"],
+                new=detail["new"],
+                reason=change.reason,
+            )
             self._queue_webhook(event)
 
     async def _losses(self, report: RoundReport) -> None:
@@ -279,8 +310,9 @@ class Monitor:
 
     def _inside_reported(self, key: tuple[str, str, int, int]) -> bool:
         board, epoch, lo, hi = key
-        return any(b == board and e == epoch and rlo <= lo and hi <= rhi
-                   for b, e, rlo, rhi in self._reported_holes)
+        return any(
+            b == board and e == epoch and rlo <= lo and hi <= rhi for b, e, rlo, rhi in self._reported_holes
+        )
 
     async def _retention(self, report: RoundReport) -> None:
         now = self.clock.time()
@@ -291,8 +323,9 @@ class Monitor:
         if not self._retention_more:
             self._last_retention = now
         chunk = self.settings.retention_chunk
-        report.deleted = await self.store.delete_readings_before(now - self.settings.retention_days * 86400.0,
-                                                                 chunk=chunk, max_chunks=RETENTION_CHUNKS_PER_ROUND)
+        report.deleted = await self.store.delete_readings_before(
+            now - self.settings.retention_days * 86400.0, chunk=chunk, max_chunks=RETENTION_CHUNKS_PER_ROUND
+        )
         self._retention_more = report.deleted >= chunk * RETENTION_CHUNKS_PER_ROUND
 
     # ------------------------------------------------------------ webhook
@@ -341,7 +374,13 @@ class Monitor:
 
         wh = self.settings.webhook
         assert wh.url is not None
-        body = {"id": event.id, "at": event.at, "board": event.board, "kind": event.kind, "detail": event.detail}
+        body = {
+            "id": event.id,
+            "at": event.at,
+            "board": event.board,
+            "kind": event.kind,
+            "detail": event.detail,
+        }
         headers = {"Idempotency-Key": f"listenpost-event-{event.id}"}
         delay = wh.backoff_seconds
         error = "not sent"
@@ -351,7 +390,13 @@ class Monitor:
                 status = await self._post_once(session, body, headers)
                 if 200 <= status < 300:
                     self.webhook_sent += 1
-                    log.info("webhook_sent", kind=event.kind, board=event.board, event_id=event.id, attempts=attempt)
+                    log.info(
+                        "webhook_sent",
+                        kind=event.kind,
+                        board=event.board,
+                        event_id=event.id,
+                        attempts=attempt,
+                    )
                     return True
                 error = f"HTTP {status}"
                 if 400 <= status < 500 and status != 429:
@@ -359,13 +404,25 @@ class Monitor:
             except (aiohttp.ClientError, OSError, TimeoutError) as e:
                 error = f"{type(e).__name__}: {e}"
             if attempt < wh.attempts:
-                log.info("webhook_retry", attempt=attempt, error=error, kind=event.kind, board=event.board,
-                         retry_in_s=delay)
+                log.info(
+                    "webhook_retry",
+                    attempt=attempt,
+                    error=error,
+                    kind=event.kind,
+                    board=event.board,
+                    retry_in_s=delay,
+                )
                 await self.clock.sleep(delay)
                 delay *= 2
         self.webhook_failed += 1
-        log.warning("webhook_failed", error=error, kind=event.kind, board=event.board, event_id=event.id,
-                    attempts=attempt)
+        log.warning(
+            "webhook_failed",
+            error=error,
+            kind=event.kind,
+            board=event.board,
+            event_id=event.id,
+            attempts=attempt,
+        )
         return False
 
 

@@ -64,9 +64,12 @@ def agent_unit(source: Path = UNIT_SOURCE) -> str:
 
 def agent_config(board: str, collector_url: str) -> dict[str, Any]:
     """The agent.yaml of a board enrolled into ``AGENT_STATE_DIR`` (accepted by ``agent check-config``)."""
-    return {"board": board, "state_dir": AGENT_STATE_DIR,
-            "collector": {"url": collector_url.rstrip("/"), "credential_file": "credential"},
-            "source": {"kind": "bleak"}}
+    return {
+        "board": board,
+        "state_dir": AGENT_STATE_DIR,
+        "collector": {"url": collector_url.rstrip("/"), "credential_file": "credential"},
+        "source": {"kind": "bleak"},
+    }
 
 
 def default_package() -> str:
@@ -93,8 +96,17 @@ def package_spec(package: str | None) -> str:
     return spec
 
 
-def build_bundle(*, board: str, room: str, floor: str | None, code: str, collector_url: str,
-                 expires_at: float, package: str | None = None, unit_source: Path = UNIT_SOURCE) -> dict[str, str]:
+def build_bundle(
+    *,
+    board: str,
+    room: str,
+    floor: str | None,
+    code: str,
+    collector_url: str,
+    expires_at: float,
+    package: str | None = None,
+    unit_source: Path = UNIT_SOURCE,
+) -> dict[str, str]:
     """
     File name → content of the bundle.
 
@@ -115,44 +127,75 @@ def build_bundle(*, board: str, room: str, floor: str | None, code: str, collect
         "package_update": True,
         "packages": ["python3-venv", "bluez"],
         # The unit runs the agent as this user (User=listenpost, SupplementaryGroups=bluetooth).
-        "users": ["default", {"name": "listenpost", "system": True, "shell": "/usr/sbin/nologin",
-                              "groups": "bluetooth", "lock_passwd": True}],
+        "users": [
+            "default",
+            {
+                "name": "listenpost",
+                "system": True,
+                "shell": "/usr/sbin/nologin",
+                "groups": "bluetooth",
+                "lock_passwd": True,
+            },
+        ],
         "write_files": [
-            {"path": f"/etc/systemd/system/{UNIT_NAME}", "owner": "root:root", "permissions": "0644",
-             "content": _Literal(agent_unit(unit_source))},
+            {
+                "path": f"/etc/systemd/system/{UNIT_NAME}",
+                "owner": "root:root",
+                "permissions": "0644",
+                "content": _Literal(agent_unit(unit_source)),
+            },
         ],
         "runcmd": [
             ["python3", "-m", "venv", AGENT_PREFIX],
             [pip, "install", "--upgrade", spec],
             ["install", "-d", "-o", "listenpost", "-g", "listenpost", "-m", "0700", AGENT_STATE_DIR],
             # Enroll as the agent's user, so the credential (0600) belongs to it.
-            ["runuser", "-u", "listenpost", "--", cli, "agent", "enroll", "--collector", url, "--code", code,
-             "--state-dir", AGENT_STATE_DIR],
+            [
+                "runuser",
+                "-u",
+                "listenpost",
+                "--",
+                cli,
+                "agent",
+                "enroll",
+                "--collector",
+                url,
+                "--code",
+                code,
+                "--state-dir",
+                AGENT_STATE_DIR,
+            ],
             ["systemctl", "daemon-reload"],
             ["systemctl", "enable", "--now", UNIT_NAME],
         ],
     }
-    user_data = (f"#cloud-config\n# listenpost board {board} ({room}{', floor ' + floor if floor else ''}).\n"
-                 f"# The enrollment code works once and expires {expires}.\n"
-                 f"# The agent is installed with: pip install {spec}\n"
-                 + yaml.dump(cloud, Dumper=_Dumper, sort_keys=False, default_flow_style=None, width=120))
+    user_data = (
+        f"#cloud-config\n# listenpost board {board} ({room}{', floor ' + floor if floor else ''}).\n"
+        f"# The enrollment code works once and expires {expires}.\n"
+        f"# The agent is installed with: pip install {spec}\n"
+        + yaml.dump(cloud, Dumper=_Dumper, sort_keys=False, default_flow_style=None, width=120)
+    )
     meta = {"instance-id": f"listenpost-{board}-{secrets.token_hex(4)}", "local-hostname": board}
-    readme = (f"Provisioning bundle for board {board} (room {room}).\n\n"
-              "1. Flash the board's OS image to the card.\n"
-              "2. Copy user-data and meta-data to the card's boot partition (cloud-init NoCloud).\n"
-              "3. Mount the board, power it on; on first boot it installs the agent, enrolls and starts scanning.\n"
-              f"   It needs the network then: pip installs {spec} (from PyPI unless that is a URL or path;\n"
-              "   choose it with 'board add --package') and the board must reach the collector at\n"
-              f"   {url}.\n"
-              f"   By hand instead: listenpost agent enroll --collector {url} --code {code}\n"
-              "4. Check the health page: the board appears as 'live' within a minute.\n\n"
-              f"The enrollment code works once and expires {expires}; after a re-flash or expiry run "
-              "'listenpost collector board reissue "
-              f"{board} --bundle DIR'.\n")
-    return {"user-data": user_data,
-            "meta-data": yaml.safe_dump(meta, sort_keys=False),
-            "agent.yaml": yaml.safe_dump(agent_config(board, url), sort_keys=False),
-            "README.txt": readme}
+    readme = (
+        f"Provisioning bundle for board {board} (room {room}).\n\n"
+        "1. Flash the board's OS image to the card.\n"
+        "2. Copy user-data and meta-data to the card's boot partition (cloud-init NoCloud).\n"
+        "3. Mount the board, power it on; on first boot it installs the agent, enrolls and starts scanning.\n"
+        f"   It needs the network then: pip installs {spec} (from PyPI unless that is a URL or path;\n"
+        "   choose it with 'board add --package') and the board must reach the collector at\n"
+        f"   {url}.\n"
+        f"   By hand instead: listenpost agent enroll --collector {url} --code {code}\n"
+        "4. Check the health page: the board appears as 'live' within a minute.\n\n"
+        f"The enrollment code works once and expires {expires}; after a re-flash or expiry run "
+        "'listenpost collector board reissue "
+        f"{board} --bundle DIR'.\n"
+    )
+    return {
+        "user-data": user_data,
+        "meta-data": yaml.safe_dump(meta, sort_keys=False),
+        "agent.yaml": yaml.safe_dump(agent_config(board, url), sort_keys=False),
+        "README.txt": readme,
+    }
 
 
 def write_bundle(directory: str | Path, **kwargs: Any) -> list[Path]:

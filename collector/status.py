@@ -19,8 +19,13 @@ REFRESH_SECONDS = 5
 RATE_WINDOW_SECONDS = 120.0
 
 STATE_LABELS = {
-    "live": ("live", "●"), "late": ("late", "◐"), "silent": ("silent", "■"), "deaf": ("deaf", "◆"),
-    "drifting": ("drifting", "▲"), "backlogged": ("backlogged", "▼"), "retired": ("retired", "○"),
+    "live": ("live", "●"),
+    "late": ("late", "◐"),
+    "silent": ("silent", "■"),
+    "deaf": ("deaf", "◆"),
+    "drifting": ("drifting", "▲"),
+    "backlogged": ("backlogged", "▼"),
+    "retired": ("retired", "○"),
     "unknown": ("not yet seen", "?"),
 }
 """State → (text, symbol): the state is never told by colour alone."""
@@ -94,7 +99,10 @@ async def status_doc(app: web.Application) -> dict[str, Any]:
         c = counts.get(b.name)
         hb = beats.get(b.name)
         stats = hb.stats if hb else {}
-        contact = max([t for t in (c.last_batch_at if c else None, hb.at if hb else None) if t is not None], default=None)
+        contact = max(
+            [t for t in (c.last_batch_at if c else None, hb.at if hb else None) if t is not None],
+            default=None,
+        )
         state = runtime.states.get(b.name, {})
         st = "retired" if b.retired_at is not None else state.get("state") or "unknown"
         fit = None
@@ -104,43 +112,63 @@ async def status_doc(app: web.Application) -> dict[str, Any]:
         total = c.readings_total if c else 0
         wall_err = stats.get("wall_error_s")
         ev = last_event.get(b.name)
-        rows.append({
-            "name": b.name, "room": b.room, "floor": b.floor, "state": st,
-            "state_reason": state.get("reason"), "state_since": state.get("since"),
-            "enrolled": b.enrolled_at is not None, "boot": boot,
-            "last_contact_at": contact,
-            "heartbeat_age_s": None if hb is None else max(0.0, now - hb.at), "last_contact_age_s": None if contact is None else max(0.0, now - contact),
-            "readings_total": total, "batches_total": c.batches_total if c else 0,
-            "readings_per_s": readings_rate(runtime.rates.get(b.name)) if b.enrolled_at is not None else None,
-            "tag_rate_hz_median": _number(stats.get("tag_rate_hz_median")),
-            "tags_heard": _number(stats.get("tags_heard")),
-            "gap_readings": c.gap_readings if c else 0,
-            "clock_offset_ms": fit.offset_s * 1000.0 if fit else None,
-            "clock_skew_ppm": fit.skew_ppm if fit else None,
-            "clock_residual_ms": fit.residual_ms if fit else None,
-            "clock_steps": len(fit.steps) if fit else 0,
-            "wall_error_ms": wall_err * 1000.0 if isinstance(wall_err, int | float) else None,
-            "spool_backlog_batches": stat(stats, "spool_batches", "spool.batches"),
-            "spool_backlog_bytes": stat(stats, "spool_bytes", "spool.bytes"),
-            "adverts_total": stat(stats, "adverts_total", "pipeline.adverts_total"),
-            "adverts_registered": stat(stats, "adverts_registered", "pipeline.adverts_registered"),
-            "offset_db": b.offset_db,
-            "last_event": {"kind": ev.kind, "at": ev.at, "detail": ev.detail} if ev else None,
-        })
+        rows.append(
+            {
+                "name": b.name,
+                "room": b.room,
+                "floor": b.floor,
+                "state": st,
+                "state_reason": state.get("reason"),
+                "state_since": state.get("since"),
+                "enrolled": b.enrolled_at is not None,
+                "boot": boot,
+                "last_contact_at": contact,
+                "heartbeat_age_s": None if hb is None else max(0.0, now - hb.at),
+                "last_contact_age_s": None if contact is None else max(0.0, now - contact),
+                "readings_total": total,
+                "batches_total": c.batches_total if c else 0,
+                "readings_per_s": readings_rate(runtime.rates.get(b.name))
+                if b.enrolled_at is not None
+                else None,
+                "tag_rate_hz_median": _number(stats.get("tag_rate_hz_median")),
+                "tags_heard": _number(stats.get("tags_heard")),
+                "gap_readings": c.gap_readings if c else 0,
+                "clock_offset_ms": fit.offset_s * 1000.0 if fit else None,
+                "clock_skew_ppm": fit.skew_ppm if fit else None,
+                "clock_residual_ms": fit.residual_ms if fit else None,
+                "clock_steps": len(fit.steps) if fit else 0,
+                "wall_error_ms": wall_err * 1000.0 if isinstance(wall_err, int | float) else None,
+                "spool_backlog_batches": stat(stats, "spool_batches", "spool.batches"),
+                "spool_backlog_bytes": stat(stats, "spool_bytes", "spool.bytes"),
+                "adverts_total": stat(stats, "adverts_total", "pipeline.adverts_total"),
+                "adverts_registered": stat(stats, "adverts_registered", "pipeline.adverts_registered"),
+                "offset_db": b.offset_db,
+                "last_event": {"kind": ev.kind, "at": ev.at, "detail": ev.detail} if ev else None,
+            }
+        )
     by_state: dict[str, int] = {}
     for r in rows:
         by_state[r["state"]] = by_state.get(r["state"], 0) + 1
     return {
         "at": now,
-        "fleet": {"boards": len(rows), "by_state": by_state,
-                  "readings_total": sum(r["readings_total"] for r in rows),
-                  "tags": len(await store.list_tags()),
-                  "batches": {"stored": runtime.counters.stored, "duplicate": runtime.counters.duplicate,
-                              "conflict": runtime.counters.conflict, "rejected": runtime.counters.rejected,
-                              "overloaded": runtime.counters.overloaded}},
+        "fleet": {
+            "boards": len(rows),
+            "by_state": by_state,
+            "readings_total": sum(r["readings_total"] for r in rows),
+            "tags": len(await store.list_tags()),
+            "batches": {
+                "stored": runtime.counters.stored,
+                "duplicate": runtime.counters.duplicate,
+                "conflict": runtime.counters.conflict,
+                "rejected": runtime.counters.rejected,
+                "overloaded": runtime.counters.overloaded,
+            },
+        },
         "boards": rows,
-        "events": [{"id": e.id, "at": e.at, "board": e.board, "kind": e.kind, "detail": e.detail}
-                   for e in reversed(recent[-20:])],
+        "events": [
+            {"id": e.id, "at": e.at, "board": e.board, "kind": e.kind, "detail": e.detail}
+            for e in reversed(recent[-20:])
+        ],
         "refresh_seconds": REFRESH_SECONDS,
     }
 

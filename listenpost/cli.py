@@ -37,8 +37,10 @@ def missing_extra(group: str) -> str | None:
     missing = [m for m in modules if importlib.util.find_spec(m) is None]
     if not missing:
         return None
-    return (f"'listenpost {group}' needs the {extra} extra, which is not installed here "
-            f"(missing: {', '.join(missing)}); install it with: pip install 'listenpost[{extra}]'")
+    return (
+        f"'listenpost {group}' needs the {extra} extra, which is not installed here "
+        f"(missing: {', '.join(missing)}); install it with: pip install 'listenpost[{extra}]'"
+    )
 
 
 def build_parser() -> argparse.ArgumentParser:

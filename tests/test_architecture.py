@@ -26,16 +26,26 @@ def installed_layout(dest: Path) -> Path:
     # longest package name last, so a sub-package mapped to its own folder lands over its parent's copy
     for package, folder in sorted(cfg["package-dir"].items(), key=lambda kv: kv[0].count(".")):
         target = dest.joinpath(*package.split("."))
-        shutil.copytree(ROOT / folder, target, dirs_exist_ok=True,
-                        ignore=shutil.ignore_patterns("__pycache__", "*.gz", "*.json", "templates"))
+        shutil.copytree(
+            ROOT / folder,
+            target,
+            dirs_exist_ok=True,
+            ignore=shutil.ignore_patterns("__pycache__", "*.gz", "*.json", "templates"),
+        )
     shutil.copy(ROOT / "pyproject.toml", dest / "pyproject.toml")
     return dest
 
 
 def lint(tree: Path) -> subprocess.CompletedProcess[str]:
     env = {**os.environ, "PYTHONPATH": str(tree)}
-    return subprocess.run([str(LINT), "--config", str(tree / "pyproject.toml"), "--no-cache"], cwd=tree, env=env,
-                          capture_output=True, text=True, timeout=300)
+    return subprocess.run(
+        [str(LINT), "--config", str(tree / "pyproject.toml"), "--no-cache"],
+        cwd=tree,
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=300,
+    )
 
 
 def test_every_package_folder_is_listed_for_the_wheel():
@@ -54,13 +64,28 @@ def test_the_import_contracts_hold(tmp_path):
     assert "4 kept, 0 broken" in result.stdout
 
 
-@pytest.mark.parametrize(("module", "line", "contract"), [
-    ("core/_probe.py", "import listenpost.agent.config", "the shared core imports no part of the product"),
-    ("agent/_probe.py", "import listenpost.collector.store", "agent and collector never import each other"),
-    ("collector/_probe.py", "import listenpost.agent.spool", "agent and collector never import each other"),
-    ("agent/_probe.py", "import numpy", "the agent and the core need nothing the collector alone needs"),
-    ("agent/pipeline/filter.py", "import listenpost.agent.spool", "pure pipeline stages do no I/O"),
-])
+@pytest.mark.parametrize(
+    ("module", "line", "contract"),
+    [
+        (
+            "core/_probe.py",
+            "import listenpost.agent.config",
+            "the shared core imports no part of the product",
+        ),
+        (
+            "agent/_probe.py",
+            "import listenpost.collector.store",
+            "agent and collector never import each other",
+        ),
+        (
+            "collector/_probe.py",
+            "import listenpost.agent.spool",
+            "agent and collector never import each other",
+        ),
+        ("agent/_probe.py", "import numpy", "the agent and the core need nothing the collector alone needs"),
+        ("agent/pipeline/filter.py", "import listenpost.agent.spool", "pure pipeline stages do no I/O"),
+    ],
+)
 def test_a_broken_contract_fails_the_check(tmp_path, module, line, contract):
     tree = installed_layout(tmp_path)
     path = tree / "listenpost" / module

@@ -50,13 +50,17 @@ def documented(section: str) -> dict[str, tuple[str, str, str, str]]:
     return rows
 
 
-@pytest.mark.parametrize(("section", "reads"), [("1. agent.yaml", agent_reads), ("2. collector.yaml", collector_reads)])
+@pytest.mark.parametrize(
+    ("section", "reads"), [("1. agent.yaml", agent_reads), ("2. collector.yaml", collector_reads)]
+)
 def test_every_key_read_is_documented_with_its_type_and_default(section, reads):
     have = documented(section)
     want = {row(r)[0]: row(r) for r in reads()}
     assert len(want) > 20
     problems = [f"missing row: | {' | '.join(w)} | <meaning> |" for k, w in want.items() if k not in have]
-    problems += [f"row differs: {have[k][:3]} != code {w}" for k, w in want.items() if k in have and have[k][:3] != w]
+    problems += [
+        f"row differs: {have[k][:3]} != code {w}" for k, w in want.items() if k in have and have[k][:3] != w
+    ]
     problems += [f"documented but never read: {k}" for k in have if k not in want]
     problems += [f"{k}: no meaning" for k, cells in have.items() if len(cells[3]) < 10]
     assert not problems, "\n".join(problems)
@@ -72,4 +76,7 @@ def test_a_typo_is_an_error_not_a_silent_default():
 
 def test_an_integer_liveness_setting_accepts_an_integer():
     """collector.yaml ``liveness: {phi_window: 50}`` is an int setting and stays one."""
-    assert parse_settings({"liveness": {"phi_window": 50, "late_phi": 2}}).liveness == {"phi_window": 50, "late_phi": 2.0}
+    assert parse_settings({"liveness": {"phi_window": 50, "late_phi": 2}}).liveness == {
+        "phi_window": 50,
+        "late_phi": 2.0,
+    }

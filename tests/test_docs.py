@@ -11,7 +11,9 @@ POINTER = re.compile(r"docs/([a-z0-9-]+\.md)((?:,? (?:§|and §)\d+(?:\.\d+)?)*)
 
 
 def pointers() -> list[tuple[Path, str, list[str]]]:
-    files = [p for d in SCANNED for p in (ROOT / d).rglob("*") if p.suffix in (".py", ".md", ".yaml", ".service")]
+    files = [
+        p for d in SCANNED for p in (ROOT / d).rglob("*") if p.suffix in (".py", ".md", ".yaml", ".service")
+    ]
     files += [ROOT / "README.md", ROOT / "DEVELOPERS.md"]
     out = []
     for f in files:

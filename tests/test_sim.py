@@ -50,10 +50,12 @@ def venue_run(tmp_path_factory, brackenford):
 
 def _quiet(scenario, **radio):
     """Only the four fixed reference tags advertise: no visitors, no phones, no fixed noise."""
-    return replace(scenario,
-                   visitors=replace(scenario.visitors, arrivals_per_minute=0.0),
-                   noise=replace(scenario.noise, phone_fraction=0.0, fixed=()),
-                   radio=replace(scenario.radio, **radio))
+    return replace(
+        scenario,
+        visitors=replace(scenario.visitors, arrivals_per_minute=0.0),
+        noise=replace(scenario.noise, phone_fraction=0.0, fixed=()),
+        radio=replace(scenario.radio, **radio),
+    )
 
 
 def _raw():
@@ -61,6 +63,7 @@ def _raw():
 
 
 # ---------------------------------------------------------------- scenario file
+
 
 def test_shipped_scenario_matches_the_venue_description(brackenford):
     """The shipped file has docs/demo-venue.md's rooms, 16 boards, faults and tag population."""
@@ -74,26 +77,49 @@ def test_shipped_scenario_matches_the_venue_description(brackenford):
     t = brackenford.tags
     assert (t.ibeacon_major, t.ibeacon_minors, t.measured_power_dbm, t.interval_s) == (7, (1, 80), -59, 0.5)
     assert t.eddystone_instances == (1, 30) and len(t.eddystone_namespace) == 10 and t.tlm_every == 10
-    assert t.custom_numbers == (1, 10) and t.custom_rule.company_id == 0xFFFF and t.custom_rule.prefix == b"LP"
+    assert (
+        t.custom_numbers == (1, 10) and t.custom_rule.company_id == 0xFFFF and t.custom_rule.prefix == b"LP"
+    )
     assert t.reference_major == 9 and [r.place.room for r in t.reference] == ["G0", "G3", "U0", "U4"]
     r = brackenford.radio
-    assert (r.exponent, r.wall_db, r.floor_db, r.shadowing_sigma_db, r.sensitivity_dbm, r.hear_probability) == \
-        (3.0, 5.0, 15.0, 5.0, -100.0, 0.9)
+    assert (
+        r.exponent,
+        r.wall_db,
+        r.floor_db,
+        r.shadowing_sigma_db,
+        r.sensitivity_dbm,
+        r.hear_probability,
+    ) == (3.0, 5.0, 15.0, 5.0, -100.0, 0.9)
     assert "demo choice" in builtin_path("brackenford").read_text()
 
 
-@pytest.mark.parametrize(("edit", "where"), [
-    (lambda d: d["boards"][3].__setitem__("room", "G9"), "boards[3].room: unknown room"),
-    (lambda d: d["boards"][0].__setitem__("at", [0, 0, 2.5]), "boards[0].at: must lie inside room G0"),
-    (lambda d: d["rooms"][1].__setitem__("doors", ["G2"]), "rooms[0].doors: door to 'G1' must be listed on both sides"),
-    (lambda d: d["rooms"][2].__setitem__("x", [10, 20]), "overlaps"),
-    (lambda d: d["radio"].__setitem__("hear_probability", 1.5), "radio.hear_probability: must be within 0..1"),
-    (lambda d: d["radio"].__setitem__("shadowing_sigma", 5), "radio.shadowing_sigma: unknown key"),
-    (lambda d: d["tags"]["ibeacon"].__setitem__("uuid", "not-a-uuid"), "tags.ibeacon.uuid: must be a UUID"),
-    (lambda d: d["tags"]["eddystone"].__setitem__("namespace", "abcd"), "tags.eddystone.namespace: must be 10 bytes"),
-    (lambda d: d["noise"]["fixed"][2].__setitem__("company_id", 0xFFFF), "noise.fixed[2].company_id"),
-    (lambda d: d.pop("seed"), "seed: is required"),
-])
+@pytest.mark.parametrize(
+    ("edit", "where"),
+    [
+        (lambda d: d["boards"][3].__setitem__("room", "G9"), "boards[3].room: unknown room"),
+        (lambda d: d["boards"][0].__setitem__("at", [0, 0, 2.5]), "boards[0].at: must lie inside room G0"),
+        (
+            lambda d: d["rooms"][1].__setitem__("doors", ["G2"]),
+            "rooms[0].doors: door to 'G1' must be listed on both sides",
+        ),
+        (lambda d: d["rooms"][2].__setitem__("x", [10, 20]), "overlaps"),
+        (
+            lambda d: d["radio"].__setitem__("hear_probability", 1.5),
+            "radio.hear_probability: must be within 0..1",
+        ),
+        (lambda d: d["radio"].__setitem__("shadowing_sigma", 5), "radio.shadowing_sigma: unknown key"),
+        (
+            lambda d: d["tags"]["ibeacon"].__setitem__("uuid", "not-a-uuid"),
+            "tags.ibeacon.uuid: must be a UUID",
+        ),
+        (
+            lambda d: d["tags"]["eddystone"].__setitem__("namespace", "abcd"),
+            "tags.eddystone.namespace: must be 10 bytes",
+        ),
+        (lambda d: d["noise"]["fixed"][2].__setitem__("company_id", 0xFFFF), "noise.fixed[2].company_id"),
+        (lambda d: d.pop("seed"), "seed: is required"),
+    ],
+)
 def test_bad_scenario_names_the_key_path(brackenford, edit, where):
     """A bad value is rejected with the file name and the key path."""
     data = copy.deepcopy(_raw())
@@ -113,6 +139,7 @@ def test_missing_scenario_file_is_a_config_error(tmp_path):
 
 
 # ---------------------------------------------------------------- geometry and radio
+
 
 def test_walls_and_floors_for_known_positions(brackenford):
     """Counts worked out by hand on the plan in brackenford.yaml."""
@@ -137,10 +164,12 @@ def test_walls_and_floors_for_known_positions(brackenford):
     a = np.array([c[0] for c in cases], dtype=float)
     b = np.array([c[1] for c in cases], dtype=float)
     assert v.walls_crossed(a, b).tolist() == [c[2] for c in cases]
-    assert v.walls_crossed(b, a).tolist() == [c[2] for c in cases]          # direction does not matter
+    assert v.walls_crossed(b, a).tolist() == [c[2] for c in cases]  # direction does not matter
     assert v.floors_crossed(a[:, 2], b[:, 2]).tolist() == [c[3] for c in cases]
     assert [v.names[i] for i in v.room_at(a[:, 0], a[:, 1], a[:, 2])] == ["G0"] * len(cases)
-    assert v.shortest_path(v.index["G0"], v.index["U5"]) == [v.index[r] for r in ("G0", "G6", "U0", "U3", "U4", "U5")]
+    assert v.shortest_path(v.index["G0"], v.index["U5"]) == [
+        v.index[r] for r in ("G0", "G6", "U0", "U3", "U4", "U5")
+    ]
 
 
 def _walls_by_sampling(v: Venue, a, b, steps: int = 4000) -> int:
@@ -193,7 +222,9 @@ def test_mean_rssi_is_the_log_distance_model(brackenford, d):
     with_walls = float(mean_rssi_dbm(-59, np.array(d), np.array(2), np.array(1), r))
     assert with_walls == pytest.approx(-59 - 30 * math.log10(d) - 2 * 5 - 15, abs=1e-9)
     # Common practice: each doubling of distance with n = 3 costs 10·3·log10(2) ≈ 9.03 dB.
-    assert float(mean_rssi_dbm(-59, np.array(2 * d), np.array(0), np.array(0), r)) - got == pytest.approx(-9.0309, abs=1e-4)
+    assert float(mean_rssi_dbm(-59, np.array(2 * d), np.array(0), np.array(0), r)) - got == pytest.approx(
+        -9.0309, abs=1e-4
+    )
 
 
 def test_reports_follow_the_formula_with_shadowing_off(brackenford):
@@ -234,8 +265,15 @@ def test_shadowing_sigma_and_hearing_probability(brackenford):
             if dev.kind.value != "reference":
                 continue
             p = dev.track.pos[0]
-            mean = float(mean_rssi_dbm(dev.p1_dbm, np.linalg.norm(p - bpos[bi]), v.walls_crossed(p, bpos[bi]),
-                                       v.floors_crossed(p[2], bpos[bi][2]), sc.radio))
+            mean = float(
+                mean_rssi_dbm(
+                    dev.p1_dbm,
+                    np.linalg.norm(p - bpos[bi]),
+                    v.walls_crossed(p, bpos[bi]),
+                    v.floors_crossed(p[2], bpos[bi][2]),
+                    sc.radio,
+                )
+            )
             r = h.rssi[h.device == di].astype(float)
             heard += len(r)
             # Reports are int8 and clip at -127 dBm: keep pairs whose mean is > 4σ above that.
@@ -253,6 +291,7 @@ def test_shadowing_sigma_and_hearing_probability(brackenford):
 
 # ---------------------------------------------------------------- outputs of a full run
 
+
 def test_reproducible_by_seed(tmp_path, brackenford):
     """Same seed → byte-identical files; another seed → different recordings."""
     a, b, c = tmp_path / "a", tmp_path / "b", tmp_path / "c"
@@ -261,12 +300,12 @@ def test_reproducible_by_seed(tmp_path, brackenford):
     generate(brackenford, 1, c, seed=6, btsnoop_board=None)
     names = sorted(p.name for p in a.iterdir())
     assert names == sorted(p.name for p in b.iterdir())
-    assert not [p for p in a.iterdir() if p.name.startswith(".")]      # no temporary files left behind
+    assert not [p for p in a.iterdir() if p.name.startswith(".")]  # no temporary files left behind
     assert len(names) == 16 + 3
     for n in names:
         assert (a / n).read_bytes() == (b / n).read_bytes(), n
     assert (a / "g0-a.jsonl.gz").read_bytes() != (c / "g0-a.jsonl.gz").read_bytes()
-    assert (a / "g0-a.jsonl.gz").read_bytes()[4:8] == b"\0\0\0\0"       # gzip MTIME field (RFC 1952 §2.3)
+    assert (a / "g0-a.jsonl.gz").read_bytes()[4:8] == b"\0\0\0\0"  # gzip MTIME field (RFC 1952 §2.3)
 
 
 def _true_times(path: Path, board: dict) -> np.ndarray:
@@ -330,7 +369,7 @@ def test_recordings_decode_to_registered_tags_and_noise(venue_run):
     kinds = {truth["tags"][t]["kind"] for t in seen}
     assert kinds == {"ibeacon", "eddystone", "custom", "reference"}
     assert any(t.startswith("lpx:0000000") for t in seen)
-    assert dropped > 1000                    # phones, foreign beacons and other companies were in the air
+    assert dropped > 1000  # phones, foreign beacons and other companies were in the air
     assert telemetry > 100 and 2700 < min(batteries) <= max(batteries) <= 3100
     assert 17 < min(temps) <= max(temps) < 26
 
@@ -397,8 +436,8 @@ def test_btsnoop_capture_reads_with_an_independent_parser(venue_run):
     wall0 = truth["start_wall"] + b["wall_error_s"]
     for r, a in list(zip(recs, adverts, strict=True))[::97]:
         p = r["payload"]
-        assert p[0] == 0x3E and p[2] == 0x02 and p[3] == 1              # LE Meta, Advertising Report, 1 report
-        assert p[6:12][::-1].hex(":").upper() == a.address               # address is little-endian on the wire
+        assert p[0] == 0x3E and p[2] == 0x02 and p[3] == 1  # LE Meta, Advertising Report, 1 report
+        assert p[6:12][::-1].hex(":").upper() == a.address  # address is little-endian on the wire
         assert int.from_bytes(p[-1:], "big", signed=True) == a.rssi_dbm
         t_true = a.t_mono_ns / 1e9 / (1 + b["skew_ppm"] * 1e-6) - b["uptime_at_start_s"]
         assert r["timestamp"].timestamp() == pytest.approx(wall0 + t_true, abs=2e-3)
@@ -428,23 +467,36 @@ def test_an_hour_of_the_full_venue_is_fast(brackenford, venue_run):
     lines = sum(len(h.t_true) for h in sim.heard)
     _, result, _ = venue_run
     per_line = result.seconds["recordings"] / sum(result.lines.values())
-    print(f"\nsimulate 60 min: {took:.2f} s, {lines} lines; writing ≈ {per_line * 1e6:.1f} µs/line "
-          f"→ ≈ {took + per_line * lines:.1f} s for the hour")
+    print(
+        f"\nsimulate 60 min: {took:.2f} s, {lines} lines; writing ≈ {per_line * 1e6:.1f} µs/line "
+        f"→ ≈ {took + per_line * lines:.1f} s for the hour"
+    )
     assert lines > 500_000
     assert took < 30
-    assert took + per_line * lines < 120     # loose: machines are noisy; the report gives measured figures
+    assert took + per_line * lines < 120  # loose: machines are noisy; the report gives measured figures
 
 
 def test_cli_runs_and_rejects_bad_input(tmp_path, capsys):
-    assert listenpost_main(["sim", "brackenford", "--minutes", "0.5", "--out", str(tmp_path / "o"), "--seed", "2"]) == 0
+    assert (
+        listenpost_main(
+            ["sim", "brackenford", "--minutes", "0.5", "--out", str(tmp_path / "o"), "--seed", "2"]
+        )
+        == 0
+    )
     assert (tmp_path / "o" / "u5-a.jsonl.gz").exists() and (tmp_path / "o" / "g0-a.btsnoop.gz").exists()
     assert listenpost_main(["sim", "brackenford", "--minutes", "0", "--out", str(tmp_path / "p")]) == 2
     assert "--minutes" in capsys.readouterr().err
-    assert listenpost_main(["sim", str(tmp_path / "missing.yaml"), "--minutes", "1", "--out", str(tmp_path / "p")]) == 2
+    assert (
+        listenpost_main(
+            ["sim", str(tmp_path / "missing.yaml"), "--minutes", "1", "--out", str(tmp_path / "p")]
+        )
+        == 2
+    )
     assert not (tmp_path / "p").exists()
 
 
 # ---------------------------------------------------------------- the committed recording
+
 
 def test_committed_replay_logs_are_complete_and_small():
     files = {p.name: p for p in REPLAY_LOGS.iterdir()}
@@ -462,8 +514,12 @@ def test_committed_replay_logs_are_complete_and_small():
 def test_committed_replay_logs_are_what_the_command_makes(tmp_path):
     """Regenerating with the README's command gives the committed bytes (else: regenerate and commit)."""
     truth = json.loads((REPLAY_LOGS / "truth.json").read_text())
-    assert listenpost_main(["sim", "brackenford", "--minutes", "10", "--out", str(tmp_path),
-                            "--seed", str(truth["seed"])]) == 0
+    assert (
+        listenpost_main(
+            ["sim", "brackenford", "--minutes", "10", "--out", str(tmp_path), "--seed", str(truth["seed"])]
+        )
+        == 0
+    )
     for p in (q for q in REPLAY_LOGS.iterdir() if q.name != "__init__.py"):
         if p.name != "README.md":
             assert (tmp_path / p.name).read_bytes() == p.read_bytes(), p.name

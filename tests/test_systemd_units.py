@@ -39,10 +39,14 @@ def directives(path: Path) -> dict[str, list[str]]:
 
 def verify(unit: Path, tmp_path: Path) -> subprocess.CompletedProcess[str]:
     copy = tmp_path / unit.name
-    text = unit.read_text().replace("ExecStart=/usr/local/bin/listenpost ", f"ExecStart={sys.executable} -m listenpost ")
+    text = unit.read_text().replace(
+        "ExecStart=/usr/local/bin/listenpost ", f"ExecStart={sys.executable} -m listenpost "
+    )
     assert text != unit.read_text(), "ExecStart no longer points at /usr/local/bin/listenpost"
     copy.write_text(text)
-    return subprocess.run([ANALYZE, "verify", "--man=no", str(copy)], capture_output=True, text=True, timeout=60)
+    return subprocess.run(
+        [ANALYZE, "verify", "--man=no", str(copy)], capture_output=True, text=True, timeout=60
+    )
 
 
 @pytest.mark.parametrize("name", ["listenpost-agent.service", "listenpost-collector.service"])
@@ -56,7 +60,9 @@ def test_a_warning_is_caught_by_the_stderr_check(tmp_path):
     """Anti-vacuity: an unknown key only warns (exit 0), and this suite's check sees it."""
     bad = tmp_path / "src" / "listenpost-agent.service"
     bad.parent.mkdir()
-    bad.write_text((UNITS / "listenpost-agent.service").read_text().replace("[Service]\n", "[Service]\nBogus=1\n"))
+    bad.write_text(
+        (UNITS / "listenpost-agent.service").read_text().replace("[Service]\n", "[Service]\nBogus=1\n")
+    )
     r = verify(bad, tmp_path)
     assert r.returncode == 0 and "Bogus" in r.stderr
 
@@ -66,7 +72,9 @@ def test_agent_unit_contract():
     assert d["Type"] == ["notify"] and d["NotifyAccess"] == ["main"]
     assert int(d["WatchdogSec"][0]) > 0 and d["Restart"] == ["on-failure"] and d["RestartSec"]
     assert {"bluetooth.target", "network-online.target"} <= set(d["After"][0].split())
-    assert d["ProtectSystem"] == ["strict"] and d["NoNewPrivileges"] == ["true"] and d["PrivateTmp"] == ["true"]
+    assert (
+        d["ProtectSystem"] == ["strict"] and d["NoNewPrivileges"] == ["true"] and d["PrivateTmp"] == ["true"]
+    )
     assert d["StateDirectory"] == ["listenpost/agent"]
     assert d["ReadWritePaths"] == ["/var/lib/listenpost/agent"]
     assert d["CapabilityBoundingSet"] == ["CAP_NET_RAW"]
@@ -80,7 +88,11 @@ def test_agent_unit_contract():
 def test_agent_unit_with_the_hci_capability_enabled_still_verifies(tmp_path):
     hci = tmp_path / "src" / "listenpost-agent.service"
     hci.parent.mkdir()
-    hci.write_text((UNITS / "listenpost-agent.service").read_text().replace("#AmbientCapabilities=", "AmbientCapabilities="))
+    hci.write_text(
+        (UNITS / "listenpost-agent.service")
+        .read_text()
+        .replace("#AmbientCapabilities=", "AmbientCapabilities=")
+    )
     r = verify(hci, tmp_path)
     assert r.returncode == 0 and r.stderr == ""
 

@@ -52,13 +52,19 @@ class EnrollStatus(enum.Enum):
 
 _MESSAGES = {
     EnrollStatus.UNKNOWN_CODE: "the collector does not know this enrollment code (404); check it against "
-                               "'collector board add' output",
+    "'collector board add' output",
     EnrollStatus.CODE_USED: "this enrollment code was already used (409); issue a new one for the board",
     EnrollStatus.CODE_EXPIRED: "this enrollment code has expired (410); issue a new one for the board",
 }
 
-EXIT_CODES = {EnrollStatus.ENROLLED: 0, EnrollStatus.UNREACHABLE: 1, EnrollStatus.UNKNOWN_CODE: 2,
-              EnrollStatus.CODE_USED: 2, EnrollStatus.CODE_EXPIRED: 2, EnrollStatus.REFUSED: 2}
+EXIT_CODES = {
+    EnrollStatus.ENROLLED: 0,
+    EnrollStatus.UNREACHABLE: 1,
+    EnrollStatus.UNKNOWN_CODE: 2,
+    EnrollStatus.CODE_USED: 2,
+    EnrollStatus.CODE_EXPIRED: 2,
+    EnrollStatus.REFUSED: 2,
+}
 
 
 @dataclass(frozen=True, slots=True)
@@ -69,10 +75,19 @@ class EnrollResult:
     config_path: Path | None = None
 
 
-async def enroll(collector_url: str, code: str, state_dir: str | Path, *, clock: Clock,
-                 session: aiohttp.ClientSession | None = None, timeout_s: float = 10.0, attempts: int = 4,
-                 backoff_s: float = 2.0, fingerprint_data: dict[str, Any] | None = None,
-                 ca_file: str | Path | None = None) -> EnrollResult:
+async def enroll(
+    collector_url: str,
+    code: str,
+    state_dir: str | Path,
+    *,
+    clock: Clock,
+    session: aiohttp.ClientSession | None = None,
+    timeout_s: float = 10.0,
+    attempts: int = 4,
+    backoff_s: float = 2.0,
+    fingerprint_data: dict[str, Any] | None = None,
+    ca_file: str | Path | None = None,
+) -> EnrollResult:
     """
     Enroll once, retrying only an unreachable collector (at most ``attempts`` tries, doubling waits).
 
@@ -107,18 +122,26 @@ async def enroll(collector_url: str, code: str, state_dir: str | Path, *, clock:
             if status == 200:
                 return _complete(url, state, text, ca_file)
             if status in (404, 409, 410):
-                st = {404: EnrollStatus.UNKNOWN_CODE, 409: EnrollStatus.CODE_USED, 410: EnrollStatus.CODE_EXPIRED}[status]
+                st = {
+                    404: EnrollStatus.UNKNOWN_CODE,
+                    409: EnrollStatus.CODE_USED,
+                    410: EnrollStatus.CODE_EXPIRED,
+                }[status]
                 return EnrollResult(st, _MESSAGES[st])
             if status >= 500 or status == 429:
                 last = f"collector answered {status}"
                 log.warning("enroll_unreachable", url=url, attempt=attempt + 1, status=status)
                 continue
-            return EnrollResult(EnrollStatus.REFUSED, f"the collector refused the enrollment ({status}): {text[:200]}")
-        return EnrollResult(EnrollStatus.UNREACHABLE,
-                            f"cannot reach the collector at {url} after {attempts} attempts ({last}); check the "
-                            "URL (the one 'collector board add' printed), that the collector runs and listens "
-                            "on an address this board can reach, then run the same command again: the code "
-                            "is still unused")
+            return EnrollResult(
+                EnrollStatus.REFUSED, f"the collector refused the enrollment ({status}): {text[:200]}"
+            )
+        return EnrollResult(
+            EnrollStatus.UNREACHABLE,
+            f"cannot reach the collector at {url} after {attempts} attempts ({last}); check the "
+            "URL (the one 'collector board add' printed), that the collector runs and listens "
+            "on an address this board can reach, then run the same command again: the code "
+            "is still unused",
+        )
     finally:
         if own:
             await sess.close()
@@ -159,8 +182,9 @@ def _complete(url: str, state: Path, text: str, ca_file: str | Path | None = Non
         cache.save(remote, None)
     write_atomic(config_path, _yaml_text(data).encode(), mode=0o644)
     log.info("board_enrolled", board=board, config=str(config_path))
-    return EnrollResult(EnrollStatus.ENROLLED, f"enrolled as {board}; config written to {config_path}", board,
-                        config_path)
+    return EnrollResult(
+        EnrollStatus.ENROLLED, f"enrolled as {board}; config written to {config_path}", board, config_path
+    )
 
 
 def agent_yaml(board: Any, url: str, state: Path, remote: dict[str, Any] | None) -> dict[str, Any]:
@@ -171,8 +195,11 @@ def agent_yaml(board: Any, url: str, state: Path, remote: dict[str, Any] | None)
         "state_dir": str(state),
         "collector": {"url": url, "credential_file": CREDENTIAL_FILE, "timeout_seconds": 10.0},
         "source": {"kind": "bleak"},
-        "spool": {"path": "spool.sqlite", "max_bytes": 64 * 1024 * 1024,
-                  "flush_seconds": _number(remote.get("flush_seconds"), 5.0)},
+        "spool": {
+            "path": "spool.sqlite",
+            "max_bytes": 64 * 1024 * 1024,
+            "flush_seconds": _number(remote.get("flush_seconds"), 5.0),
+        },
         "uplink": {"backoff_initial_seconds": 1.0, "backoff_max_seconds": 60.0},
         "heartbeat": {"period_seconds": _number(remote.get("heartbeat_seconds"), 10.0)},
         "calibration": {"offset_db": _number(remote.get("offset_db"), 0.0)},
@@ -186,19 +213,37 @@ def _number(v: Any, default: float) -> float:
 
 
 def _yaml_text(data: dict[str, Any]) -> str:
-    head = ("# Written by 'listenpost agent enroll'. The collector's config (tags, decode rules, offset)\n"
-            "# is fetched at run time and wins over the values here; these are the offline defaults.\n")
+    head = (
+        "# Written by 'listenpost agent enroll'. The collector's config (tags, decode rules, offset)\n"
+        "# is fetched at run time and wins over the values here; these are the offline defaults.\n"
+    )
     return head + yaml.safe_dump(data, sort_keys=False, default_flow_style=False)
 
 
-def enroll_command(collector_url: str, code: str, state_dir: str | Path, *, clock: Clock | None = None,
-                   attempts: int = 4, timeout_s: float = 10.0, ca_file: str | Path | None = None) -> int:
+def enroll_command(
+    collector_url: str,
+    code: str,
+    state_dir: str | Path,
+    *,
+    clock: Clock | None = None,
+    attempts: int = 4,
+    timeout_s: float = 10.0,
+    ca_file: str | Path | None = None,
+) -> int:
     """``listenpost agent enroll``: print the outcome, return the exit code (0, 1 or 2)."""
-    result = asyncio.run(enroll(collector_url, code, state_dir, clock=clock or SystemClock(),
-                                attempts=attempts, timeout_s=timeout_s, ca_file=ca_file))
+    result = asyncio.run(
+        enroll(
+            collector_url,
+            code,
+            state_dir,
+            clock=clock or SystemClock(),
+            attempts=attempts,
+            timeout_s=timeout_s,
+            ca_file=ca_file,
+        )
+    )
     if result.status is EnrollStatus.ENROLLED:
         print(result.message)
     else:
         print(f"listenpost: enroll: {result.message}", file=sys.stderr)
     return EXIT_CODES[result.status]
-

@@ -58,11 +58,23 @@ class Heartbeat:
         state_dir: where free disk space is measured.
     """
 
-    def __init__(self, *, base_url: str, token: str, board: str, clock: Clock, session: aiohttp.ClientSession,
-                 stats_fn: Callable[[], Mapping[str, Any]], exchanges: ExchangeLog, period_s: float = 10.0,
-                 timeout_s: float = 10.0, config: ConfigFetcher | None = None,
-                 on_config: Callable[[RemoteConfig], None] | None = None, state_dir: str | Path = ".",
-                 board_info_fn: Callable[[], Mapping[str, Any]] | None = None) -> None:
+    def __init__(
+        self,
+        *,
+        base_url: str,
+        token: str,
+        board: str,
+        clock: Clock,
+        session: aiohttp.ClientSession,
+        stats_fn: Callable[[], Mapping[str, Any]],
+        exchanges: ExchangeLog,
+        period_s: float = 10.0,
+        timeout_s: float = 10.0,
+        config: ConfigFetcher | None = None,
+        on_config: Callable[[RemoteConfig], None] | None = None,
+        state_dir: str | Path = ".",
+        board_info_fn: Callable[[], Mapping[str, Any]] | None = None,
+    ) -> None:
         if period_s <= 0 or timeout_s <= 0:
             raise ValueError("heartbeat: period_s and timeout_s must be > 0")
         self.url = base_url.rstrip("/") + "/v1/heartbeat"
@@ -94,8 +106,14 @@ class Heartbeat:
         stats["agent_uptime_s"] = round(t1 - self.started_mono, 3)
         stats["version"] = __version__
         stats["config_etag"] = self.config.etag if self.config is not None else None
-        return {"board": self.board, "boot": self.clock.boot_id, "t1": t1, "clock": self.exchanges.take(),
-                "wall": self.clock.time(), "stats": stats}
+        return {
+            "board": self.board,
+            "boot": self.clock.boot_id,
+            "t1": t1,
+            "clock": self.exchanges.take(),
+            "wall": self.clock.time(),
+            "stats": stats,
+        }
 
     async def beat(self) -> BeatResult:
         """Send one heartbeat; fetch the config if the collector's ETag moved on. Never raises for I/O."""
@@ -104,7 +122,9 @@ class Heartbeat:
         headers = {"Authorization": f"Bearer {self.token}", "Content-Type": "application/json"}
         self.sent += 1
         try:
-            async with self.session.post(self.url, data=payload, headers=headers, timeout=self.timeout) as resp:
+            async with self.session.post(
+                self.url, data=payload, headers=headers, timeout=self.timeout
+            ) as resp:
                 status = resp.status
                 text = await resp.text()
         except (TimeoutError, aiohttp.ClientError, OSError) as e:
@@ -129,8 +149,11 @@ class Heartbeat:
         self.collector_etag = etag if isinstance(etag, str) else None
         if self.config is not None and self.collector_etag and self.collector_etag != self.config.etag:
             log.info("config_etag_changed", ours=self.config.etag, collector=self.collector_etag)
-            if await self.config.fetch() is FetchResult.UPDATED and self.on_config is not None \
-                    and self.config.current is not None:
+            if (
+                await self.config.fetch() is FetchResult.UPDATED
+                and self.on_config is not None
+                and self.config.current is not None
+            ):
                 self.on_config(self.config.current)
         return BeatResult.OK
 

@@ -71,8 +71,12 @@ def parse_remote_config(data: Any, origin: str = "collector config", etag: str |
         except DecodeError as e:
             raise top.fail(f"tags[{i}]", str(e)) from None
     rules = parse_rules(top)
-    offset_db = top.get("offset_db", float, 0.0, check=lambda v: None if -40 <= v <= 40 else "must be within ±40 dB")
-    flush = top.get("flush_seconds", float, 5.0, check=lambda v: None if 0 < v <= 3600 else "must be in (0, 3600]")
+    offset_db = top.get(
+        "offset_db", float, 0.0, check=lambda v: None if -40 <= v <= 40 else "must be within ±40 dB"
+    )
+    flush = top.get(
+        "flush_seconds", float, 5.0, check=lambda v: None if 0 < v <= 3600 else "must be in (0, 3600]"
+    )
     heartbeat = top.get("heartbeat_seconds", float, 10.0, check=positive)
     # Unknown top-level keys are tolerated (unlike agent.yaml): a newer collector may add fields,
     # and an older board must keep working with the ones it knows.
@@ -99,8 +103,9 @@ class ConfigCache:
             return None
         try:
             etag = raw.get("etag")
-            return parse_remote_config(raw.get("config"), origin=f"{self.path}: config",
-                                       etag=etag if isinstance(etag, str) else None)
+            return parse_remote_config(
+                raw.get("config"), origin=f"{self.path}: config", etag=etag if isinstance(etag, str) else None
+            )
         except ConfigError as e:
             log.warning("config_cache_invalid", path=str(self.path), error=str(e))
             return None
@@ -108,7 +113,9 @@ class ConfigCache:
     def save(self, body: Mapping[str, Any], etag: str | None) -> None:
         """Replace the cache atomically: a crash leaves the old file or the new one, never half of one."""
         self.path.parent.mkdir(parents=True, exist_ok=True)
-        data = json.dumps({"etag": etag, "saved_at": time.time(), "config": body}, indent=1, sort_keys=True).encode()
+        data = json.dumps(
+            {"etag": etag, "saved_at": time.time(), "config": body}, indent=1, sort_keys=True
+        ).encode()
         write_atomic(self.path, data, mode=0o644)
 
 
@@ -163,8 +170,16 @@ class ConfigFetcher:
         timeout_s: total timeout of each request.
     """
 
-    def __init__(self, *, base_url: str, token: str, board: str, cache: ConfigCache,
-                 session: aiohttp.ClientSession, timeout_s: float = 10.0) -> None:
+    def __init__(
+        self,
+        *,
+        base_url: str,
+        token: str,
+        board: str,
+        cache: ConfigCache,
+        session: aiohttp.ClientSession,
+        timeout_s: float = 10.0,
+    ) -> None:
         self.url = base_url.rstrip("/") + "/v1/config"
         self.token = token
         self.board = board
@@ -222,5 +237,7 @@ class ConfigFetcher:
         await asyncio.to_thread(self.cache.save, body, etag)  # fsync: keep it off the event loop
         self.current = cfg
         self.last_error = None
-        log.info("config_updated", etag=etag, tags=len(cfg.tags), rules=len(cfg.rules), offset_db=cfg.offset_db)
+        log.info(
+            "config_updated", etag=etag, tags=len(cfg.tags), rules=len(cfg.rules), offset_db=cfg.offset_db
+        )
         return FetchResult.UPDATED

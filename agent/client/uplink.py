@@ -117,7 +117,9 @@ class ExchangeLog:
     def record(self, t1: float, t4: float, answer: Mapping[str, Any]) -> Exchange | None:
         """Note an exchange from an answer carrying ``t2``/``t3``; ignored if they are missing or odd."""
         t2, t3 = answer.get("t2"), answer.get("t3")
-        if not all(isinstance(v, int | float) and not isinstance(v, bool) and math.isfinite(v) for v in (t2, t3)):
+        if not all(
+            isinstance(v, int | float) and not isinstance(v, bool) and math.isfinite(v) for v in (t2, t3)
+        ):
             return None
         ex = Exchange(t1, float(t2), float(t3), t4)  # type: ignore[arg-type]
         self._last = ex
@@ -203,12 +205,26 @@ class Uplink:
         exchanges: shared clock-exchange log (the heartbeat uses the same one).
     """
 
-    def __init__(self, *, base_url: str, token: str, board: str, clock: Clock, spool: SpoolLike,
-                 session: aiohttp.ClientSession | None = None, timeout_s: float = 10.0,
-                 backoff_initial_s: float = 1.0, backoff_max_s: float = 60.0, idle_poll_s: float = 1.0,
-                 rng: random.Random | None = None, exchanges: ExchangeLog | None = None) -> None:
+    def __init__(
+        self,
+        *,
+        base_url: str,
+        token: str,
+        board: str,
+        clock: Clock,
+        spool: SpoolLike,
+        session: aiohttp.ClientSession | None = None,
+        timeout_s: float = 10.0,
+        backoff_initial_s: float = 1.0,
+        backoff_max_s: float = 60.0,
+        idle_poll_s: float = 1.0,
+        rng: random.Random | None = None,
+        exchanges: ExchangeLog | None = None,
+    ) -> None:
         if timeout_s <= 0 or backoff_initial_s <= 0 or backoff_max_s < backoff_initial_s or idle_poll_s <= 0:
-            raise ValueError("uplink: timeouts and backoff must be > 0 and backoff_max_s >= backoff_initial_s")
+            raise ValueError(
+                "uplink: timeouts and backoff must be > 0 and backoff_max_s >= backoff_initial_s"
+            )
         self.url = base_url.rstrip("/") + "/v1/batches"
         self.token = token
         self.board = board
@@ -247,8 +263,16 @@ class Uplink:
 
     def body(self, batch: SealedBatchLike, t1: float, clock_prev: dict[str, float] | None) -> bytes:
         """The request body of one attempt (docs/wire-protocol.md §6): the spooled content bytes as they are."""
-        return wire.encode_batch(board=self.board, boot=self.clock.boot_id, epoch=batch.epoch, seq=batch.seq,
-                                 digest=batch.digest, t1=t1, clock=clock_prev, content=batch.content)
+        return wire.encode_batch(
+            board=self.board,
+            boot=self.clock.boot_id,
+            epoch=batch.epoch,
+            seq=batch.seq,
+            digest=batch.digest,
+            t1=t1,
+            clock=clock_prev,
+            content=batch.content,
+        )
 
     async def send(self, batch: SealedBatchLike) -> tuple[Outcome, float | None]:
         """
@@ -260,14 +284,18 @@ class Uplink:
         clock_prev = self.exchanges.take()
         t1 = self.clock.monotonic()
         payload = gzip.compress(self.body(batch, t1, clock_prev), compresslevel=6)
-        headers = {"Authorization": f"Bearer {self.token}", "Content-Type": "application/json",
-                   "Content-Encoding": "gzip"}
+        headers = {
+            "Authorization": f"Bearer {self.token}",
+            "Content-Type": "application/json",
+            "Content-Encoding": "gzip",
+        }
         self.counters.sent += 1
         self.counters.bytes_sent += len(payload)
         self.state = UplinkState.SENDING
         try:
-            async with self._get_session().post(self.url, data=payload, headers=headers,
-                                                timeout=self.timeout) as resp:
+            async with self._get_session().post(
+                self.url, data=payload, headers=headers, timeout=self.timeout
+            ) as resp:
                 status = resp.status
                 retry_after = parse_retry_after(resp.headers.get("Retry-After"), self.clock.time())
                 text = await resp.text()
@@ -301,8 +329,14 @@ class Uplink:
             return Outcome.CONFLICT, None
         if status == 429 or status >= 500:
             self.counters.retries += 1
-            log.warning("batch_send_refused", epoch=batch.epoch, seq=batch.seq, status=status,
-                        retry_after=retry_after, error=error)
+            log.warning(
+                "batch_send_refused",
+                epoch=batch.epoch,
+                seq=batch.seq,
+                status=status,
+                retry_after=retry_after,
+                error=error,
+            )
             return Outcome.RETRY, retry_after
         # Anything else (404 from a proxy, 3xx, 405 ...) is a deployment fault, not this batch's:
         # keep the batch and retry rather than throwing readings away.
@@ -345,15 +379,24 @@ class Uplink:
         elif outcome is Outcome.DEAD_LETTER:
             self.counters.dead_letters += 1
             reason = self.counters.last_error or "rejected"
-            log.error("batch_dead_lettered", epoch=batch.epoch, seq=batch.seq,
-                      status=self.counters.last_status, reason=reason)
-            await _call(self.spool.dead_letter(batch.epoch, batch.seq, self.counters.last_status or 400, reason))
+            log.error(
+                "batch_dead_lettered",
+                epoch=batch.epoch,
+                seq=batch.seq,
+                status=self.counters.last_status,
+                reason=reason,
+            )
+            await _call(
+                self.spool.dead_letter(batch.epoch, batch.seq, self.counters.last_status or 400, reason)
+            )
             self._attempt = 0
             self.state = UplinkState.IDLE
         elif outcome is Outcome.UNAUTHORIZED:
             self.counters.unauthorized += 1
             if self.state is not UplinkState.UNAUTHORIZED:
-                log.error("uplink_unauthorized", status=self.counters.last_status, error=self.counters.last_error)
+                log.error(
+                    "uplink_unauthorized", status=self.counters.last_status, error=self.counters.last_error
+                )
             self.state = UplinkState.UNAUTHORIZED
         elif outcome is Outcome.CONFLICT:
             await self._conflict(batch)
@@ -363,8 +406,13 @@ class Uplink:
 
     async def _conflict(self, batch: SealedBatchLike) -> None:
         self.counters.conflicts += 1
-        log.error("digest_conflict", epoch=batch.epoch, seq=batch.seq, digest=batch.digest,
-                  error=self.counters.last_error)
+        log.error(
+            "digest_conflict",
+            epoch=batch.epoch,
+            seq=batch.seq,
+            digest=batch.digest,
+            error=self.counters.last_error,
+        )
         stats = getattr(self.spool, "stats", None)
         current = getattr(stats(), "epoch", None) if callable(stats) else None
         if current is None or current == batch.epoch:
@@ -430,10 +478,21 @@ class Uplink:
     def stats(self) -> dict[str, Any]:
         """Counters and state for the heartbeat."""
         c = self.counters
-        return {"state": self.state.value, "sent": c.sent, "acked": c.acked, "stored": c.stored,
-                "duplicates": c.duplicates, "retries": c.retries, "dead_letters": c.dead_letters,
-                "conflicts": c.conflicts, "unauthorized": c.unauthorized, "readings_acked": c.readings_acked,
-                "bytes_sent": c.bytes_sent, "last_error": c.last_error, "last_status": c.last_status}
+        return {
+            "state": self.state.value,
+            "sent": c.sent,
+            "acked": c.acked,
+            "stored": c.stored,
+            "duplicates": c.duplicates,
+            "retries": c.retries,
+            "dead_letters": c.dead_letters,
+            "conflicts": c.conflicts,
+            "unauthorized": c.unauthorized,
+            "readings_acked": c.readings_acked,
+            "bytes_sent": c.bytes_sent,
+            "last_error": c.last_error,
+            "last_status": c.last_status,
+        }
 
 
 def _json_object(text: str) -> dict[str, Any]:

@@ -13,8 +13,12 @@ MAX_OFFSET_DB = 40.0
 
 
 def _checked(offset_db: float) -> float:
-    if isinstance(offset_db, bool) or not isinstance(offset_db, int | float) or not math.isfinite(offset_db) \
-            or abs(offset_db) > MAX_OFFSET_DB:
+    if (
+        isinstance(offset_db, bool)
+        or not isinstance(offset_db, int | float)
+        or not math.isfinite(offset_db)
+        or abs(offset_db) > MAX_OFFSET_DB
+    ):
         raise ConfigError(f"offset_db: must be a number within ±{MAX_OFFSET_DB:g} dB, got {offset_db!r}")
     return float(offset_db)
 

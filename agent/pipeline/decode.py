@@ -151,11 +151,26 @@ class Decoder:
         telemetry: readings that carry TLM telemetry.
     """
 
-    __slots__ = ("_rules", "_registry", "_eddy_by_addr", "_tlm_memory",
-                 "decoded", "unregistered", "decode_errors", "no_identity", "tlm_unmatched", "telemetry")
+    __slots__ = (
+        "_rules",
+        "_registry",
+        "_eddy_by_addr",
+        "_tlm_memory",
+        "decoded",
+        "unregistered",
+        "decode_errors",
+        "no_identity",
+        "tlm_unmatched",
+        "telemetry",
+    )
 
-    def __init__(self, rules: Sequence[DecodeRule] = (), *, registry: TagFilter | None = None,
-                 tlm_memory: int = DEFAULT_TLM_MEMORY) -> None:
+    def __init__(
+        self,
+        rules: Sequence[DecodeRule] = (),
+        *,
+        registry: TagFilter | None = None,
+        tlm_memory: int = DEFAULT_TLM_MEMORY,
+    ) -> None:
         if tlm_memory < 1:
             raise ValueError(f"tlm_memory: must be >= 1, got {tlm_memory}")
         self._rules = tuple(_Rule(r) for r in rules)
@@ -240,7 +255,7 @@ class Decoder:
             if p is not None and p.startswith(rule.prefix):
                 if len(p) < rule.end:
                     return self._malformed()
-                key = p[rule.start:rule.end]
+                key = p[rule.start : rule.end]
                 if snap is None:
                     tag = rule.id_prefix + key.hex()
                 else:
@@ -277,6 +292,11 @@ class Decoder:
 
     def stats(self) -> dict[str, int]:
         """The counters as a dict (names as in the class docstring)."""
-        return {"decoded": self.decoded, "unregistered": self.unregistered, "decode_errors": self.decode_errors,
-                "no_identity": self.no_identity,
-                "tlm_unmatched": self.tlm_unmatched, "telemetry": self.telemetry}
+        return {
+            "decoded": self.decoded,
+            "unregistered": self.unregistered,
+            "decode_errors": self.decode_errors,
+            "no_identity": self.no_identity,
+            "tlm_unmatched": self.tlm_unmatched,
+            "telemetry": self.telemetry,
+        }

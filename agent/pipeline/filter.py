@@ -40,9 +40,14 @@ def _snapshot(tags: Iterable[str]) -> Registered:
     for t in ids:
         kind, key = identity_key(t)
         by_kind.setdefault(kind, {})[key] = t
-    return Registered(ids, {t[4:]: t for t in ids if t.startswith("mac:")},
-                      by_kind.get("ibeacon", {}), by_kind.get("altbeacon", {}), by_kind.get("eddystone", {}),
-                      {k: v for k, v in by_kind.items() if k not in BUILTIN_KINDS})
+    return Registered(
+        ids,
+        {t[4:]: t for t in ids if t.startswith("mac:")},
+        by_kind.get("ibeacon", {}),
+        by_kind.get("altbeacon", {}),
+        by_kind.get("eddystone", {}),
+        {k: v for k, v in by_kind.items() if k not in BUILTIN_KINDS},
+    )
 
 
 class TagFilter:

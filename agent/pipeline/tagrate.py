@@ -57,10 +57,12 @@ class TagRateSummary:
 
     def as_stats(self) -> dict[str, float | int | None]:
         """The heartbeat's keys: ``tags_heard``, ``tag_rate_hz_median``, ``tag_rate_hz_p10``, ``tag_rate_window_s``."""
-        return {"tags_heard": self.tags_heard,
-                "tag_rate_hz_median": None if self.median_hz is None else round(self.median_hz, 4),
-                "tag_rate_hz_p10": None if self.p10_hz is None else round(self.p10_hz, 4),
-                "tag_rate_window_s": round(self.window_s, 3)}
+        return {
+            "tags_heard": self.tags_heard,
+            "tag_rate_hz_median": None if self.median_hz is None else round(self.median_hz, 4),
+            "tag_rate_hz_p10": None if self.p10_hz is None else round(self.p10_hz, 4),
+            "tag_rate_window_s": round(self.window_s, 3),
+        }
 
 
 class TagRates:

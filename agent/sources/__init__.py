@@ -34,12 +34,22 @@ from listenpost.core.records import Advert, Source
 if TYPE_CHECKING:
     from listenpost.agent.config import SourceConfig
 
-__all__ = ["Source", "FileKind", "detect_kind", "open_replay", "open_source", "ReplaySource", "RateMeter", "replay_board_clock"]
+__all__ = [
+    "Source",
+    "FileKind",
+    "detect_kind",
+    "open_replay",
+    "open_source",
+    "ReplaySource",
+    "RateMeter",
+    "replay_board_clock",
+]
 
 log = structlog.get_logger(__name__)
 
 
 # ---------------------------------------------------------------- effective rate
+
 
 class RateMeter:
     """
@@ -109,6 +119,7 @@ class RateMeter:
 
 # ---------------------------------------------------------------- replay
 
+
 class FileKind(enum.Enum):
     """What a replay file holds, by content."""
 
@@ -128,6 +139,7 @@ def detect_kind(path: str | Path) -> FileKind:
     import gzip
 
     from listenpost.agent.sources.btsnoop import is_btsnoop
+
     p = Path(path)
     try:
         with open(p, "rb") as f:
@@ -143,8 +155,9 @@ def detect_kind(path: str | Path) -> FileKind:
         return FileKind.BTSNOOP
     if head.lstrip()[:1] == b"{":
         return FileKind.RECORDING
-    raise CaptureFormatError(f"{p}: neither a listenpost recording nor a btsnoop capture "
-                             f"(starts with {head[:8]!r})")
+    raise CaptureFormatError(
+        f"{p}: neither a listenpost recording nor a btsnoop capture (starts with {head[:8]!r})"
+    )
 
 
 @dataclass(frozen=True, slots=True)
@@ -182,6 +195,7 @@ class ReplaySource:
     def _stream(self) -> Iterator[Advert]:
         from listenpost.agent.sources.btsnoop import BtsnoopReader
         from listenpost.agent.sources.replay import read_recording
+
         for f in self.files:
             if f.kind is FileKind.RECORDING:
                 header, it = read_recording(f.path)
@@ -193,8 +207,12 @@ class ReplaySource:
                 for cap in reader:
                     yield cap.advert
                 if reader.stats.truncated or reader.stats.bad_events:
-                    log.warning("capture_replayed_with_losses", file=str(f.path),
-                                truncated=reader.stats.truncated, bad_events=reader.stats.bad_events)
+                    log.warning(
+                        "capture_replayed_with_losses",
+                        file=str(f.path),
+                        truncated=reader.stats.truncated,
+                        bad_events=reader.stats.bad_events,
+                    )
 
     async def adverts(self) -> AsyncIterator[Advert]:
         clock, speed = self.clock, self.speed
@@ -235,11 +253,13 @@ def open_replay(paths: Sequence[str | Path], clock: Clock, speed: float = 1.0) -
 
 # ---------------------------------------------------------------- factory
 
+
 def _missing(kind: str, e: ImportError) -> SourceUnavailable:
     name = e.name or str(e)
-    return SourceUnavailable(SourceReason.OTHER,
-                             f"source {kind!r} needs the Python package {name!r}, which is not installed "
-                             f"(pip install {name})")
+    return SourceUnavailable(
+        SourceReason.OTHER,
+        f"source {kind!r} needs the Python package {name!r}, which is not installed (pip install {name})",
+    )
 
 
 def open_source(cfg: SourceConfig, clock: Clock) -> Source:
@@ -259,6 +279,7 @@ def open_source(cfg: SourceConfig, clock: Clock) -> Source:
         return BleakSource(cfg.adapter, clock, cfg.stall_seconds)
     if cfg.kind == "hci":
         from listenpost.agent.sources.hci import HciSource, dev_id_of
+
         return HciSource(dev_id_of(cfg.adapter), clock)
     if cfg.kind in ("replay", "btsnoop"):
         src = open_replay(list(cfg.files), clock, cfg.speed)

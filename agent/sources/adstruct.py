@@ -150,7 +150,7 @@ def parse_ad(data: bytes) -> AdFields:
             errors += 1
             break
         typ = data[i + 1]
-        body = data[i + 2:end]
+        body = data[i + 2 : end]
         i = end
         if typ == 0xFF:
             if len(body) < 2:
@@ -185,11 +185,12 @@ def parse_ad(data: bytes) -> AdFields:
             whole = len(body) - len(body) % w
             if whole != len(body):
                 errors += 1
-            uuids.extend(_uuid_from_le(body[k:k + w]) for k in range(0, whole, w))
+            uuids.extend(_uuid_from_le(body[k : k + w]) for k in range(0, whole, w))
     return AdFields(mfg, svc, tuple(uuids), tx, name, flags, errors)
 
 
 # ---------------------------------------------------------------- writing
+
 
 def ad_structure(ad_type: int, data: bytes) -> bytes:
     """
@@ -229,9 +230,15 @@ def uuid_to_le(uuid: str) -> bytes:
     raise ValueError(f"not a UUID: {uuid!r}")
 
 
-def build_ad(*, flags: int | None = None, manufacturer_data: Mapping[int, bytes] | None = None,
-             service_data: Mapping[str, bytes] | None = None, service_uuids: Iterable[str] = (),
-             tx_power_dbm: int | None = None, local_name: str | None = None) -> bytes:
+def build_ad(
+    *,
+    flags: int | None = None,
+    manufacturer_data: Mapping[int, bytes] | None = None,
+    service_data: Mapping[str, bytes] | None = None,
+    service_uuids: Iterable[str] = (),
+    tx_power_dbm: int | None = None,
+    local_name: str | None = None,
+) -> bytes:
     """
     Advertising data carrying the given fields (flags, UUID lists, TX power, service data,
     manufacturer data, complete name — in that order). The inverse of `parse_ad` for well-formed data.
@@ -245,7 +252,11 @@ def build_ad(*, flags: int | None = None, manufacturer_data: Mapping[int, bytes]
     for u in service_uuids:
         le = uuid_to_le(u)
         by_width.setdefault(len(le), bytearray()).extend(le)
-    for width, typ in ((2, AdType.UUID16_COMPLETE), (4, AdType.UUID32_COMPLETE), (16, AdType.UUID128_COMPLETE)):
+    for width, typ in (
+        (2, AdType.UUID16_COMPLETE),
+        (4, AdType.UUID32_COMPLETE),
+        (16, AdType.UUID128_COMPLETE),
+    ):
         if width in by_width:
             out += ad_structure(typ, bytes(by_width[width]))
     if tx_power_dbm is not None:

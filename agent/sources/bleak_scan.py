@@ -84,11 +84,15 @@ def classify(e: BaseException, adapter: str | None = None) -> SourceUnavailable:
     if isinstance(e, SourceUnavailable):
         return e
     if isinstance(e, BleakBluetoothNotAvailableError):
-        return SourceUnavailable(_BLEAK_REASONS.get(e.reason, SourceReason.OTHER),
-                                 f"Bluetooth not available ({e.reason.name}): {e.args[0]}")
+        return SourceUnavailable(
+            _BLEAK_REASONS.get(e.reason, SourceReason.OTHER),
+            f"Bluetooth not available ({e.reason.name}): {e.args[0]}",
+        )
     if isinstance(e, BleakDBusError):
-        return SourceUnavailable(_DBUS_REASONS.get(e.dbus_error, SourceReason.OTHER),
-                                 f"D-Bus error {e.dbus_error}: {e.dbus_error_details or ''}".rstrip(": "))
+        return SourceUnavailable(
+            _DBUS_REASONS.get(e.dbus_error, SourceReason.OTHER),
+            f"D-Bus error {e.dbus_error}: {e.dbus_error_details or ''}".rstrip(": "),
+        )
     if isinstance(e, BleakError):
         text = str(e)
         if "not found" in text and "adapter" in text:
@@ -99,8 +103,10 @@ def classify(e: BaseException, adapter: str | None = None) -> SourceUnavailable:
     if isinstance(e, PermissionError):
         return SourceUnavailable(SourceReason.DENIED, f"no permission to reach the system D-Bus: {e}")
     if isinstance(e, FileNotFoundError | ConnectionRefusedError):
-        return SourceUnavailable(SourceReason.NO_BLUETOOTH,
-                                 f"no system D-Bus to reach BlueZ ({e.strerror or e}); is this a machine with Bluetooth?")
+        return SourceUnavailable(
+            SourceReason.NO_BLUETOOTH,
+            f"no system D-Bus to reach BlueZ ({e.strerror or e}); is this a machine with Bluetooth?",
+        )
     if isinstance(e, OSError):
         return SourceUnavailable(SourceReason.OTHER, f"D-Bus connection failed: {e}")
     return SourceUnavailable(SourceReason.OTHER, f"{type(e).__name__}: {e}")
@@ -125,15 +131,27 @@ class BleakSource:
         rng: random source for the jitter (tests pass a seeded one).
     """
 
-    def __init__(self, adapter: str | None, clock: Clock, stall_seconds: float = 60.0,
-                 backend: type[BaseBleakScanner] | None = None, *, queue_size: int = 4096,
-                 backoff_initial: float = 1.0, backoff_max: float = 60.0, call_timeout: float = 15.0,
-                 max_failures: int | None = None, rate_window_seconds: float = 60.0,
-                 rng: random.Random | None = None) -> None:
+    def __init__(
+        self,
+        adapter: str | None,
+        clock: Clock,
+        stall_seconds: float = 60.0,
+        backend: type[BaseBleakScanner] | None = None,
+        *,
+        queue_size: int = 4096,
+        backoff_initial: float = 1.0,
+        backoff_max: float = 60.0,
+        call_timeout: float = 15.0,
+        max_failures: int | None = None,
+        rate_window_seconds: float = 60.0,
+        rng: random.Random | None = None,
+    ) -> None:
         if stall_seconds <= 0:
             raise ValueError(f"stall_seconds must be > 0, got {stall_seconds!r}")
         if not 0 < backoff_initial <= backoff_max:
-            raise ValueError(f"need 0 < backoff_initial <= backoff_max, got {backoff_initial!r}, {backoff_max!r}")
+            raise ValueError(
+                f"need 0 < backoff_initial <= backoff_max, got {backoff_initial!r}, {backoff_max!r}"
+            )
         self.adapter = adapter
         self.clock = clock
         self.stall_seconds = float(stall_seconds)
@@ -179,10 +197,15 @@ class BleakSource:
             props = adv.platform_data[1]
         addr_type = 0 if isinstance(props, dict) and props.get("AddressType") == "public" else 1
         advert = Advert(
-            t_mono_ns=self.clock.monotonic_ns(), address=device.address.upper(), address_type=addr_type,
-            rssi_dbm=int(adv.rssi), tx_power_dbm=adv.tx_power,
-            manufacturer_data=dict(adv.manufacturer_data), service_data=dict(adv.service_data),
-            service_uuids=tuple(u.lower() for u in adv.service_uuids), local_name=adv.local_name,
+            t_mono_ns=self.clock.monotonic_ns(),
+            address=device.address.upper(),
+            address_type=addr_type,
+            rssi_dbm=int(adv.rssi),
+            tx_power_dbm=adv.tx_power,
+            manufacturer_data=dict(adv.manufacturer_data),
+            service_data=dict(adv.service_data),
+            service_uuids=tuple(u.lower() for u in adv.service_uuids),
+            local_name=adv.local_name,
         )
         # Only real adverts keep the stall watchdog quiet: a callback without RSSI is a cached
         # property change (Connected, ServicesResolved…), not proof that the radio hears.
@@ -227,11 +250,18 @@ class BleakSource:
                 self.last_restart_reason = err.reason
                 await self._stop(scanner)
                 if self.max_failures is not None and in_row >= self.max_failures:
-                    log.error("scanner_unavailable", adapter=self.adapter, reason=err.reason.value, error=str(err))
+                    log.error(
+                        "scanner_unavailable", adapter=self.adapter, reason=err.reason.value, error=str(err)
+                    )
                     raise err from e
                 delay = half_jitter(in_row - 1, self.backoff_initial, self.backoff_max, self._rng)
-                log.warning("scanner_start_failed", adapter=self.adapter, reason=err.reason.value,
-                            error=str(err), retry_in_s=round(delay, 3))
+                log.warning(
+                    "scanner_start_failed",
+                    adapter=self.adapter,
+                    reason=err.reason.value,
+                    error=str(err),
+                    retry_in_s=round(delay, 3),
+                )
                 await clock.sleep(delay)
                 self.restarts += 1
                 continue
@@ -292,9 +322,15 @@ class BleakSource:
 
     def stats(self) -> dict[str, Any]:
         """Counters and state for the heartbeat (no addresses: those are filtered by the caller)."""
-        return {"state": self.state.value, "reason": self.reason.value if self.reason else None,
-                "restarts": self.restarts,
-                "last_restart_reason": self.last_restart_reason.value if self.last_restart_reason else None,
-                "failures": self.failures, "callbacks": self.callbacks,
-                "adverts": self.adverts_seen, "dropped_no_rssi": self.dropped_no_rssi,
-                "dropped_overflow": self.dropped_overflow, "queue_depth": self._queue.qsize()}
+        return {
+            "state": self.state.value,
+            "reason": self.reason.value if self.reason else None,
+            "restarts": self.restarts,
+            "last_restart_reason": self.last_restart_reason.value if self.last_restart_reason else None,
+            "failures": self.failures,
+            "callbacks": self.callbacks,
+            "adverts": self.adverts_seen,
+            "dropped_no_rssi": self.dropped_no_rssi,
+            "dropped_overflow": self.dropped_overflow,
+            "queue_depth": self._queue.qsize(),
+        }

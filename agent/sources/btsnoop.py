@@ -139,8 +139,10 @@ class BtsnoopReader:
         if version != 1:
             raise CaptureFormatError(f"{path}: btsnoop version {version} is not supported (only 1)")
         if datalink not in DATALINKS:
-            raise CaptureFormatError(f"{path}: btsnoop datalink {datalink} is not supported "
-                                     f"(only {', '.join(map(str, DATALINKS))})")
+            raise CaptureFormatError(
+                f"{path}: btsnoop datalink {datalink} is not supported "
+                f"(only {', '.join(map(str, DATALINKS))})"
+            )
         self.datalink = datalink
         t0: int | None = None
         reasm: dict[int, ExtendedReassembler] = {}
@@ -155,8 +157,10 @@ class BtsnoopReader:
                 return
             orig, incl, flags, _drops, ts = _REC_HDR.unpack(rh)
             if incl > orig or incl > MAX_RECORD:
-                raise CaptureFormatError(f"{path}: record {rec}: included length {incl} "
-                                         f"(original {orig}) is not a valid record size")
+                raise CaptureFormatError(
+                    f"{path}: record {rec}: included length {incl} "
+                    f"(original {orig}) is not a valid record size"
+                )
             pkt = _read(f, incl, path, rec)
             if len(pkt) < incl:
                 self._truncated(rec, "packet")
@@ -269,5 +273,7 @@ class BtsnoopWriter:
     def __enter__(self) -> BtsnoopWriter:
         return self
 
-    def __exit__(self, et: type[BaseException] | None, e: BaseException | None, tb: TracebackType | None) -> None:
+    def __exit__(
+        self, et: type[BaseException] | None, e: BaseException | None, tb: TracebackType | None
+    ) -> None:
         self.close()

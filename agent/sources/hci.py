@@ -58,9 +58,11 @@ def open_hci_socket(dev_id: int) -> socket.socket:
     """
     af = getattr(socket, "AF_BLUETOOTH", None)
     if af is None:
-        raise SourceUnavailable(SourceReason.NO_BLUETOOTH,
-                                "this Python has no AF_BLUETOOTH sockets (built without BlueZ headers); "
-                                "use source kind 'bleak', or a Python built with libbluetooth-dev")
+        raise SourceUnavailable(
+            SourceReason.NO_BLUETOOTH,
+            "this Python has no AF_BLUETOOTH sockets (built without BlueZ headers); "
+            "use source kind 'bleak', or a Python built with libbluetooth-dev",
+        )
     try:
         s = socket.socket(af, socket.SOCK_RAW | socket.SOCK_CLOEXEC, BTPROTO_HCI)
     except OSError as e:
@@ -72,9 +74,12 @@ def open_hci_socket(dev_id: int) -> socket.socket:
         s.bind((dev_id,))
     except OSError as e:
         s.close()
-        reason = {errno.ENODEV: SourceReason.ADAPTER_MISSING, errno.EPERM: SourceReason.DENIED,
-                  errno.EACCES: SourceReason.DENIED, errno.ENETDOWN: SourceReason.POWERED_OFF}.get(
-                      e.errno or 0, SourceReason.OTHER)
+        reason = {
+            errno.ENODEV: SourceReason.ADAPTER_MISSING,
+            errno.EPERM: SourceReason.DENIED,
+            errno.EACCES: SourceReason.DENIED,
+            errno.ENETDOWN: SourceReason.POWERED_OFF,
+        }.get(e.errno or 0, SourceReason.OTHER)
         raise SourceUnavailable(reason, f"cannot bind raw HCI socket to hci{dev_id}: {e}") from e
     return s
 
@@ -102,8 +107,13 @@ class HciSource:
         self._reasm = ExtendedReassembler()
 
     def stats(self) -> dict[str, int]:
-        return {"packets": self.packets, "adverts": self.adverts_seen, "bad_packets": self.bad_packets,
-                "dropped_no_rssi": self.dropped_no_rssi, "fragments_dropped": self._reasm.dropped}
+        return {
+            "packets": self.packets,
+            "adverts": self.adverts_seen,
+            "bad_packets": self.bad_packets,
+            "dropped_no_rssi": self.dropped_no_rssi,
+            "fragments_dropped": self._reasm.dropped,
+        }
 
     def _decode(self, pkt: bytes, t_ns: int) -> list[Advert]:
         self.packets += 1

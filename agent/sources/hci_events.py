@@ -137,17 +137,23 @@ def _legacy(p: bytes) -> list[HciReport]:
     i = 2
     for k in range(n):
         if i + 9 > len(p):
-            raise DecodeError(f"LE Advertising Report {k}: header needs 9 bytes at offset {i}, event has {len(p)}")
+            raise DecodeError(
+                f"LE Advertising Report {k}: header needs 9 bytes at offset {i}, event has {len(p)}"
+            )
         evt, atype = p[i], p[i + 1]
-        addr = _addr(p[i + 2:i + 8])
+        addr = _addr(p[i + 2 : i + 8])
         dlen = p[i + 8]
         if dlen > LEGACY_MAX_DATA:
             raise DecodeError(f"LE Advertising Report {k}: Data_Length {dlen} > {LEGACY_MAX_DATA}")
         j = i + 9 + dlen
         if j + 1 > len(p):
-            raise DecodeError(f"LE Advertising Report {k}: data and RSSI run past the end ({j + 1} > {len(p)})")
+            raise DecodeError(
+                f"LE Advertising Report {k}: data and RSSI run past the end ({j + 1} > {len(p)})"
+            )
         rssi = _int8(p[j])
-        out.append(HciReport(evt, atype, addr, None if rssi == RSSI_UNAVAILABLE else rssi, bytes(p[i + 9:j])))
+        out.append(
+            HciReport(evt, atype, addr, None if rssi == RSSI_UNAVAILABLE else rssi, bytes(p[i + 9 : j]))
+        )
         i = j + 1
     if i != len(p):
         raise DecodeError(f"LE Advertising Report: {len(p) - i} bytes left after {n} reports")
@@ -163,19 +169,32 @@ def _extended(p: bytes) -> list[HciReport]:
     i = 2
     for k in range(n):
         if i + _EXT_FIXED.size > len(p):
-            raise DecodeError(f"LE Extended Advertising Report {k}: header needs {_EXT_FIXED.size} bytes "
-                              f"at offset {i}, event has {len(p)}")
-        (evt, atype, addr, _pphy, _sphy, sid, tx, rssi, _interval, _datype, _daddr,
-         dlen) = _EXT_FIXED.unpack_from(p, i)
+            raise DecodeError(
+                f"LE Extended Advertising Report {k}: header needs {_EXT_FIXED.size} bytes "
+                f"at offset {i}, event has {len(p)}"
+            )
+        (evt, atype, addr, _pphy, _sphy, sid, tx, rssi, _interval, _datype, _daddr, dlen) = (
+            _EXT_FIXED.unpack_from(p, i)
+        )
         j = i + _EXT_FIXED.size + dlen
         if j > len(p):
             raise DecodeError(f"LE Extended Advertising Report {k}: data runs past the end ({j} > {len(p)})")
         status = (evt >> 5) & 0x3
         if status == 3:
             raise DecodeError(f"LE Extended Advertising Report {k}: data status 3 is reserved")
-        out.append(HciReport(evt, atype, _addr(addr), None if rssi == RSSI_UNAVAILABLE else rssi,
-                             bytes(p[i + _EXT_FIXED.size:j]), None if tx == TX_POWER_UNAVAILABLE else tx,
-                             DataStatus(status), sid, True))
+        out.append(
+            HciReport(
+                evt,
+                atype,
+                _addr(addr),
+                None if rssi == RSSI_UNAVAILABLE else rssi,
+                bytes(p[i + _EXT_FIXED.size : j]),
+                None if tx == TX_POWER_UNAVAILABLE else tx,
+                DataStatus(status),
+                sid,
+                True,
+            )
+        )
         i = j
     if i != len(p):
         raise DecodeError(f"LE Extended Advertising Report: {len(p) - i} bytes left after {n} reports")
@@ -206,7 +225,9 @@ def parse_event_packet(event: bytes) -> list[HciReport]:
     if len(event) < 2:
         raise DecodeError(f"HCI event of {len(event)} bytes is shorter than its 2-byte header")
     if event[1] != len(event) - 2:
-        raise DecodeError(f"HCI event 0x{event[0]:02x}: Parameter_Total_Length {event[1]} but {len(event) - 2} bytes follow")
+        raise DecodeError(
+            f"HCI event 0x{event[0]:02x}: Parameter_Total_Length {event[1]} but {len(event) - 2} bytes follow"
+        )
     return parse_event(event[0], event[2:])
 
 
@@ -245,8 +266,17 @@ class ExtendedReassembler:
             if len(first.data) + len(rep.data) > self.MAX_DATA:
                 self.dropped += 1
                 return None
-            rep = HciReport(first.event_type, first.address_type, first.address, first.rssi,
-                            first.data + rep.data, first.tx_power, rep.data_status, first.sid, True)
+            rep = HciReport(
+                first.event_type,
+                first.address_type,
+                first.address,
+                first.rssi,
+                first.data + rep.data,
+                first.tx_power,
+                rep.data_status,
+                first.sid,
+                True,
+            )
         if rep.data_status is DataStatus.INCOMPLETE:
             if len(self._pending) >= self.max_pending:
                 self._pending.pop(next(iter(self._pending)))
@@ -258,6 +288,7 @@ class ExtendedReassembler:
 
 # ---------------------------------------------------------------- Advert
 
+
 def report_to_advert(rep: HciReport, t_mono_ns: int, platform_data: object = None) -> Advert | None:
     """
     Turn a report into an `Advert`; ``None`` when the controller gave no RSSI (nothing to measure).
@@ -267,8 +298,18 @@ def report_to_advert(rep: HciReport, t_mono_ns: int, platform_data: object = Non
     f = parse_ad(rep.data)
     # Advert.tx_power_dbm is the TX Power Level AD value; the extended report's own TX_Power
     # field stays in HciReport (it is the controller's view, not the tag's claim).
-    return Advert(t_mono_ns, rep.address, rep.address_type, rep.rssi, f.tx_power_dbm, f.manufacturer_data,
-                  f.service_data, f.service_uuids, f.local_name, platform_data)
+    return Advert(
+        t_mono_ns,
+        rep.address,
+        rep.address_type,
+        rep.rssi,
+        f.tx_power_dbm,
+        f.manufacturer_data,
+        f.service_data,
+        f.service_uuids,
+        f.local_name,
+        platform_data,
+    )
 
 
 def _addr_le(address: str) -> bytes:
@@ -293,8 +334,13 @@ def build_adv_report_event(reports: Sequence[tuple[int, int, str, bytes, int]]) 
     return _event(body)
 
 
-def build_ext_adv_report_event(reports: Iterable[tuple[int, int, str, bytes, int, int]], *,
-                               sid: int = 0xFF, primary_phy: int = 1, secondary_phy: int = 0) -> bytes:
+def build_ext_adv_report_event(
+    reports: Iterable[tuple[int, int, str, bytes, int, int]],
+    *,
+    sid: int = 0xFF,
+    primary_phy: int = 1,
+    secondary_phy: int = 0,
+) -> bytes:
     """
     An LE Extended Advertising Report event (no H4 indicator).
 
@@ -304,8 +350,23 @@ def build_ext_adv_report_event(reports: Iterable[tuple[int, int, str, bytes, int
     reps = list(reports)
     body = bytearray((SUBEVT_EXT_ADV_REPORT, len(reps)))
     for evt, atype, address, data, rssi, tx in reps:
-        body += _EXT_FIXED.pack(evt, atype, _addr_le(address), primary_phy, secondary_phy, sid,
-                                _int8(tx & 0xFF), _int8(rssi & 0xFF), 0, 0, b"\0" * 6, len(data)) + data
+        body += (
+            _EXT_FIXED.pack(
+                evt,
+                atype,
+                _addr_le(address),
+                primary_phy,
+                secondary_phy,
+                sid,
+                _int8(tx & 0xFF),
+                _int8(rssi & 0xFF),
+                0,
+                0,
+                b"\0" * 6,
+                len(data),
+            )
+            + data
+        )
     return _event(body)
 
 
@@ -315,19 +376,29 @@ def _event(params: bytes | bytearray) -> bytes:
     return bytes((EVT_LE_META, len(params))) + bytes(params)
 
 
-def advert_to_event(advert: Advert, *, event_type: int = LegacyEventType.ADV_NONCONN_IND,
-                    flags: int | None = 0x06) -> bytes:
+def advert_to_event(
+    advert: Advert, *, event_type: int = LegacyEventType.ADV_NONCONN_IND, flags: int | None = 0x06
+) -> bytes:
     """
     The HCI event a controller would have sent for ``advert`` (no H4 indicator): a legacy
     LE Advertising Report when the AD data fits 31 bytes, else an extended report with the
     legacy bit clear (up to 229 data bytes in one event).
     """
-    ad = build_ad(flags=flags, manufacturer_data=advert.manufacturer_data, service_data=advert.service_data,
-                  service_uuids=advert.service_uuids, tx_power_dbm=advert.tx_power_dbm,
-                  local_name=advert.local_name)
+    ad = build_ad(
+        flags=flags,
+        manufacturer_data=advert.manufacturer_data,
+        service_data=advert.service_data,
+        service_uuids=advert.service_uuids,
+        tx_power_dbm=advert.tx_power_dbm,
+        local_name=advert.local_name,
+    )
     if len(ad) <= LEGACY_MAX_DATA:
-        return build_adv_report_event([(event_type, advert.address_type, advert.address, ad, advert.rssi_dbm)])
+        return build_adv_report_event(
+            [(event_type, advert.address_type, advert.address, ad, advert.rssi_dbm)]
+        )
     if len(ad) > 255 - 2 - _EXT_FIXED.size:
         raise ValueError(f"advertising data of {len(ad)} bytes does not fit one event")
     tx = advert.tx_power_dbm if advert.tx_power_dbm is not None else TX_POWER_UNAVAILABLE
-    return build_ext_adv_report_event([(0x0000, advert.address_type, advert.address, ad, advert.rssi_dbm, tx)])
+    return build_ext_adv_report_event(
+        [(0x0000, advert.address_type, advert.address, ad, advert.rssi_dbm, tx)]
+    )

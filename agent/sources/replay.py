@@ -56,8 +56,13 @@ class RecordingHeader:
     version: int = VERSION
 
     def to_json(self) -> dict[str, Any]:
-        return {"format": FORMAT, "version": self.version, "board": self.board, "boot": self.boot,
-                "wall_at_start": self.wall_at_start}
+        return {
+            "format": FORMAT,
+            "version": self.version,
+            "board": self.board,
+            "boot": self.boot,
+            "wall_at_start": self.wall_at_start,
+        }
 
 
 # ---------------------------------------------------------------- writing
@@ -106,8 +111,11 @@ class RecordingWriter:
         raw: IO[str]
         if self.path.name.endswith(".gz"):
             # compresslevel 6: most of level 9's ratio on repetitive JSON at a fraction of the CPU
-            raw = io.TextIOWrapper(gzip.GzipFile(self.path, "wb", compresslevel=6, mtime=0),  # mtime 0: same input, same bytes
-                                       encoding="utf-8", newline="\n")
+            raw = io.TextIOWrapper(
+                gzip.GzipFile(self.path, "wb", compresslevel=6, mtime=0),  # mtime 0: same input, same bytes
+                encoding="utf-8",
+                newline="\n",
+            )
         else:
             raw = open(self.path, "w", encoding="utf-8", newline="\n")  # noqa: SIM115 - closed in close()
         self._f = raw
@@ -138,12 +146,15 @@ class RecordingWriter:
     def __enter__(self) -> RecordingWriter:
         return self
 
-    def __exit__(self, et: type[BaseException] | None, e: BaseException | None, tb: TracebackType | None) -> None:
+    def __exit__(
+        self, et: type[BaseException] | None, e: BaseException | None, tb: TracebackType | None
+    ) -> None:
         self.close()
 
 
-def write_recording(path: str | Path, adverts: Iterable[Advert], *, board: str, boot: str,
-                    wall_at_start: float) -> int:
+def write_recording(
+    path: str | Path, adverts: Iterable[Advert], *, board: str, boot: str, wall_at_start: float
+) -> int:
     """Write a whole recording; gzip'd when the name ends in ``.gz``. Returns the number of lines after the header."""
     with RecordingWriter(path, board=board, boot=boot, wall_at_start=wall_at_start) as w:
         w.write_many(adverts)
@@ -151,6 +162,7 @@ def write_recording(path: str | Path, adverts: Iterable[Advert], *, board: str, 
 
 
 # ---------------------------------------------------------------- reading
+
 
 def _open_binary(path: Path) -> IO[bytes]:
     try:
@@ -172,7 +184,9 @@ def _lines(path: Path) -> Iterator[tuple[int, str]]:
             try:
                 raw = f.readline(MAX_LINE + 1)
             except EOFError:
-                raise CaptureFormatError(f"{path}:{n + 1}: compressed data ends early (file truncated?)") from None
+                raise CaptureFormatError(
+                    f"{path}:{n + 1}: compressed data ends early (file truncated?)"
+                ) from None
             except OSError as e:  # includes gzip.BadGzipFile
                 raise CaptureFormatError(f"{path}:{n + 1}: cannot read: {e}") from None
             except Exception as e:  # zlib.error and friends from a damaged stream
@@ -185,7 +199,9 @@ def _lines(path: Path) -> Iterator[tuple[int, str]]:
             try:
                 line = raw.decode("utf-8")
             except UnicodeDecodeError as e:
-                raise CaptureFormatError(f"{path}:{n}: not UTF-8 text ({e.reason} at byte {e.start})") from None
+                raise CaptureFormatError(
+                    f"{path}:{n}: not UTF-8 text ({e.reason} at byte {e.start})"
+                ) from None
             yield n, line
     finally:
         f.close()
@@ -200,7 +216,9 @@ def _header(path: Path, line: str | None) -> RecordingHeader:
     except ValueError as e:
         raise CaptureFormatError(f"{where}: header is not JSON ({e})") from None
     if not isinstance(h, dict) or h.get("format") != FORMAT:
-        raise CaptureFormatError(f"{where}: format: expected {FORMAT!r}, got {h.get('format') if isinstance(h, dict) else h!r}")
+        raise CaptureFormatError(
+            f"{where}: format: expected {FORMAT!r}, got {h.get('format') if isinstance(h, dict) else h!r}"
+        )
     if h.get("version") != VERSION:
         raise CaptureFormatError(f"{where}: version: expected {VERSION}, got {h.get('version')!r}")
     board, boot, wall = h.get("board"), h.get("boot"), h.get("wall_at_start")
@@ -314,8 +332,10 @@ def parse_line(line: str, where: str | _Where) -> Advert:
     if (u := d.get("u")) is not None:
         if type(u) is not list:
             raise CaptureFormatError(f"{where}: u: must be a list")
-        uuids = tuple((type(x) is str and _uuid_keys.get(x)) or _remember(_uuid_keys, x, _uuid(x, where, "u"))
-                      for x in u)
+        uuids = tuple(
+            (type(x) is str and _uuid_keys.get(x)) or _remember(_uuid_keys, x, _uuid(x, where, "u"))
+            for x in u
+        )
     n = d.get("n")
     if n is not None and type(n) is not str:
         raise CaptureFormatError(f"{where}: n: must be a string, got {n!r}")

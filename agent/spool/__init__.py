@@ -45,5 +45,13 @@ from listenpost.agent.spool.values import (
     new_epoch,
 )
 
-__all__ = ["DEAD_LETTER_KEEP", "GZIP_LEVEL", "ROW_OVERHEAD_BYTES", "GapReason", "SealedBatch", "Spool", "SpoolStats",
-           "new_epoch"]
+__all__ = [
+    "DEAD_LETTER_KEEP",
+    "GZIP_LEVEL",
+    "ROW_OVERHEAD_BYTES",
+    "GapReason",
+    "SealedBatch",
+    "Spool",
+    "SpoolStats",
+    "new_epoch",
+]

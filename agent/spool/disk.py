@@ -77,8 +77,15 @@ class Disk:
     # -------------------------------------------------------------- open / recover
 
     def snapshot(self) -> Snapshot:
-        return Snapshot(self.epoch, self.next_seq, self.batches, self.bytes, self.oldest,
-                         dict(self.counters), self.degraded)
+        return Snapshot(
+            self.epoch,
+            self.next_seq,
+            self.batches,
+            self.bytes,
+            self.oldest,
+            dict(self.counters),
+            self.degraded,
+        )
 
     def open(self, mono: float, wall: float) -> None:
         """Open (or create, or recover) the spool file. Raises `Degraded` if the storage fails."""
@@ -126,13 +133,17 @@ class Disk:
         for p in found:
             sizes[p.name] = p.stat().st_size if p.is_file() else None
             if p in data:
-                os.replace(p, self.path.with_name(self.path.name + ".orphan" + p.name[len(self.path.name):]))
+                os.replace(p, self.path.with_name(self.path.name + ".orphan" + p.name[len(self.path.name) :]))
             else:
                 remove_path(p)
         fsync_dir(self.path.parent)
         if data:
-            log.error("spool_orphans_set_aside", path=str(self.path), files=sizes,
-                      hint="the spool file was deleted but not its journal; batches only there are lost")
+            log.error(
+                "spool_orphans_set_aside",
+                path=str(self.path),
+                files=sizes,
+                hint="the spool file was deleted but not its journal; batches only there are lost",
+            )
         else:
             log.info("spool_orphans_removed", path=str(self.path), files=sizes)
         return bool(data)
@@ -173,8 +184,14 @@ class Disk:
         self.epoch, self.next_seq, self.counters = epoch, next_seq, counters
         self.batches, self.bytes = int(n), int(total)
         self._refresh_oldest()
-        log.info("spool_opened", path=str(self.path), epoch=epoch, next_seq=next_seq, batches=self.batches,
-                 bytes=self.bytes)
+        log.info(
+            "spool_opened",
+            path=str(self.path),
+            epoch=epoch,
+            next_seq=next_seq,
+            batches=self.batches,
+            bytes=self.bytes,
+        )
 
     @staticmethod
     def _read_meta(conn: sqlite3.Connection) -> dict[str, str]:
@@ -216,8 +233,9 @@ class Disk:
             counters = dict(salvage.counters)
             counters["corrupt_set_aside"] = counters.get("corrupt_set_aside", 0) + 1
             lost = salvage.lost()
-            counters["dropped_batches"] = (counters.get("dropped_batches", 0)
-                                           + sum(i.last - i.first + 1 for i in lost if not i.unknown))
+            counters["dropped_batches"] = counters.get("dropped_batches", 0) + sum(
+                i.last - i.first + 1 for i in lost if not i.unknown
+            )
             counters["dropped_readings"] = counters.get("dropped_readings", 0) + sum(i.readings for i in lost)
             reported.extend(lost)
             return counters, lost
@@ -236,14 +254,27 @@ class Disk:
         os.replace(self.path, aside)
         os.replace(fresh, self.path)
         fsync_dir(self.path.parent)
-        log.error("spool_corrupt_set_aside", path=str(self.path), set_aside=str(aside), cause=str(cause),
-                  old_epoch=salvage.epoch or None, salvaged_batches=salvage.salvaged,
-                  lost_ranges=[(i.epoch, i.first, i.last) for i in reported], new_epoch=epoch)
+        log.error(
+            "spool_corrupt_set_aside",
+            path=str(self.path),
+            set_aside=str(aside),
+            cause=str(cause),
+            old_epoch=salvage.epoch or None,
+            salvaged_batches=salvage.salvaged,
+            lost_ranges=[(i.epoch, i.first, i.last) for i in reported],
+            new_epoch=epoch,
+        )
         self._open_existing()
 
-    def _create_fresh(self, path: Path, epoch: str, rows: Iterable[tuple[Any, ...]],
-                      finish: Callable[[], tuple[dict[str, int], list[Interval]]], mono: float,
-                      wall: float) -> None:
+    def _create_fresh(
+        self,
+        path: Path,
+        epoch: str,
+        rows: Iterable[tuple[Any, ...]],
+        finish: Callable[[], tuple[dict[str, int], list[Interval]]],
+        mono: float,
+        wall: float,
+    ) -> None:
         """
         Build a complete spool at ``path`` via a side file, so a crash never leaves half a spool.
 
@@ -264,13 +295,20 @@ class Disk:
             for row in rows:
                 conn.execute(
                     "INSERT INTO batches (epoch, seq, digest, body, nbytes, n_readings, gap, boot, sealed_at_mono,"
-                    " sealed_at_wall) VALUES (?,?,?,?,?,?,?,?,?,?)", row)
+                    " sealed_at_wall) VALUES (?,?,?,?,?,?,?,?,?,?)",
+                    row,
+                )
             counters, gaps = finish()
             seq = 0
             for iv in gaps:
                 self._insert_gap(conn, epoch, seq, iv, GapReason.SPOOL_CORRUPT, mono, wall, offset_db=0.0)
                 seq += 1
-            meta = {"format": str(SCHEMA_VERSION), "epoch": epoch, "next_seq": str(seq), "created_wall": repr(wall)}
+            meta = {
+                "format": str(SCHEMA_VERSION),
+                "epoch": epoch,
+                "next_seq": str(seq),
+                "created_wall": repr(wall),
+            }
             meta.update({k: str(counters.get(k, 0)) for k in COUNTERS})
             conn.executemany("INSERT INTO meta (key, value) VALUES (?, ?)", meta.items())
             conn.execute("COMMIT")
@@ -333,8 +371,16 @@ class Disk:
 
     # -------------------------------------------------------------- operations
 
-    def seal(self, chunks: Sequence[Sequence[Reading]], boot: str, offset_db: float, acks: set[tuple[str, int]],
-             extra_dropped_readings: int, mono: float, wall: float) -> list[SealedBatch]:
+    def seal(
+        self,
+        chunks: Sequence[Sequence[Reading]],
+        boot: str,
+        offset_db: float,
+        acks: set[tuple[str, int]],
+        extra_dropped_readings: int,
+        mono: float,
+        wall: float,
+    ) -> list[SealedBatch]:
         """Seal each chunk as one batch, in one FULL commit; apply pending acks first."""
         sealed = [seal_content(encode_content(c, boot=boot, offset_db=offset_db)) for c in chunks]
 
@@ -361,7 +407,9 @@ class Disk:
 
         self._apply(op, mono, wall, refresh=True)
 
-    def peek(self, skip: set[tuple[str, int]], offset_db: float, mono: float, wall: float) -> SealedBatch | None:
+    def peek(
+        self, skip: set[tuple[str, int]], offset_db: float, mono: float, wall: float
+    ) -> SealedBatch | None:
         """The oldest batch not in ``skip``; a row whose body fails its digest is replaced by a gap record."""
 
         def op(conn: sqlite3.Connection) -> SealedBatch | None:
@@ -373,8 +421,11 @@ class Disk:
                         break
                 if found is None:
                     return None
-                row = conn.execute("SELECT epoch, seq, digest, body, n_readings, sealed_at_mono, nbytes"
-                                   " FROM batches WHERE id=?", (found,)).fetchone()
+                row = conn.execute(
+                    "SELECT epoch, seq, digest, body, n_readings, sealed_at_mono, nbytes"
+                    " FROM batches WHERE id=?",
+                    (found,),
+                ).fetchone()
                 epoch, seq, dig, body, n, sealed_mono, nbytes = row
                 try:
                     content = gzip.decompress(body)
@@ -387,28 +438,45 @@ class Disk:
 
         return self._apply(op, mono, wall, refresh=False)
 
-    def dead_letter(self, epoch: str, seq: int, status: int, reason: str, offset_db: float,
-                    mono: float, wall: float) -> bool:
+    def dead_letter(
+        self, epoch: str, seq: int, status: int, reason: str, offset_db: float, mono: float, wall: float
+    ) -> bool:
         """Move a batch aside and seal a gap record for it; False if no such batch is spooled."""
 
         def op(conn: sqlite3.Connection) -> bool:
             with transaction(conn, durable=True):
-                row = conn.execute("DELETE FROM batches WHERE epoch=? AND seq=? RETURNING digest, body,"
-                                   " n_readings, nbytes, gap", (epoch, seq)).fetchone()
+                row = conn.execute(
+                    "DELETE FROM batches WHERE epoch=? AND seq=? RETURNING digest, body,"
+                    " n_readings, nbytes, gap",
+                    (epoch, seq),
+                ).fetchone()
                 if row is None:
                     return False
                 dig, body, n, nbytes, gap = row
                 self.batches -= 1
                 self.bytes -= nbytes
-                conn.execute("INSERT INTO dead_letters (epoch, seq, digest, body, n_readings, status, reason,"
-                             " at_wall) VALUES (?,?,?,?,?,?,?,?)", (epoch, seq, dig, body, n, status, reason, wall))
-                conn.execute("DELETE FROM dead_letters WHERE id NOT IN"
-                             " (SELECT id FROM dead_letters ORDER BY id DESC LIMIT ?)", (DEAD_LETTER_KEEP,))
+                conn.execute(
+                    "INSERT INTO dead_letters (epoch, seq, digest, body, n_readings, status, reason,"
+                    " at_wall) VALUES (?,?,?,?,?,?,?,?)",
+                    (epoch, seq, dig, body, n, status, reason, wall),
+                )
+                conn.execute(
+                    "DELETE FROM dead_letters WHERE id NOT IN"
+                    " (SELECT id FROM dead_letters ORDER BY id DESC LIMIT ?)",
+                    (DEAD_LETTER_KEEP,),
+                )
                 self._bump(conn, "dead_letters", 1)
                 if gap is None:
                     # A refused gap record gets no gap record of its own (no loop); the counter says it.
-                    self._seal_gap(conn, Interval(epoch, seq, seq, n), GapReason.DEAD_LETTER, offset_db,
-                                   mono, wall, status=status)
+                    self._seal_gap(
+                        conn,
+                        Interval(epoch, seq, seq, n),
+                        GapReason.DEAD_LETTER,
+                        offset_db,
+                        mono,
+                        wall,
+                        status=status,
+                    )
             return True
 
         return self._apply(op, mono, wall, refresh=True)
@@ -449,58 +517,98 @@ class Disk:
         self.counters[key] += by
         conn.execute("UPDATE meta SET value=? WHERE key=?", (str(self.counters[key]), key))
 
-    def _insert(self, conn: sqlite3.Connection, seq: int, dig: str, body: bytes, n: int, gap: str | None,
-                boot: str, mono: float, wall: float) -> None:
+    def _insert(
+        self,
+        conn: sqlite3.Connection,
+        seq: int,
+        dig: str,
+        body: bytes,
+        n: int,
+        gap: str | None,
+        boot: str,
+        mono: float,
+        wall: float,
+    ) -> None:
         nbytes = len(body) + ROW_OVERHEAD_BYTES
-        conn.execute("INSERT INTO batches (epoch, seq, digest, body, nbytes, n_readings, gap, boot, sealed_at_mono,"
-                     " sealed_at_wall) VALUES (?,?,?,?,?,?,?,?,?,?)",
-                     (self.epoch, seq, dig, body, nbytes, n, gap, boot, mono, wall))
+        conn.execute(
+            "INSERT INTO batches (epoch, seq, digest, body, nbytes, n_readings, gap, boot, sealed_at_mono,"
+            " sealed_at_wall) VALUES (?,?,?,?,?,?,?,?,?,?)",
+            (self.epoch, seq, dig, body, nbytes, n, gap, boot, mono, wall),
+        )
         self.batches += 1
         self.bytes += nbytes
 
     @staticmethod
     def _gap_object(iv: Interval, reason: GapReason, status: int | None = None) -> dict[str, Any]:
-        gap: dict[str, Any] = {"epoch": iv.epoch, "first_seq": iv.first, "last_seq": iv.last,
-                               "readings": iv.readings, "reason": reason.value}
+        gap: dict[str, Any] = {
+            "epoch": iv.epoch,
+            "first_seq": iv.first,
+            "last_seq": iv.last,
+            "readings": iv.readings,
+            "reason": reason.value,
+        }
         if iv.unknown:
             gap["readings_unknown"] = True
         if status is not None:
             gap["status"] = status
         return gap
 
-    def _insert_gap(self, conn: sqlite3.Connection, epoch: str, seq: int, iv: Interval, reason: GapReason,
-                    mono: float, wall: float, offset_db: float) -> None:
+    def _insert_gap(
+        self,
+        conn: sqlite3.Connection,
+        epoch: str,
+        seq: int,
+        iv: Interval,
+        reason: GapReason,
+        mono: float,
+        wall: float,
+        offset_db: float,
+    ) -> None:
         """Insert a gap record into a spool being built (``_create_fresh``)."""
         gap = self._gap_object(iv, reason)
         _, body, dig = seal_content(encode_content([], boot=self.boot, offset_db=offset_db, gap=gap))
-        conn.execute("INSERT INTO batches (epoch, seq, digest, body, nbytes, n_readings, gap, boot, sealed_at_mono,"
-                     " sealed_at_wall) VALUES (?,?,?,?,?,0,?,?,?,?)",
-                     (epoch, seq, dig, body, len(body) + ROW_OVERHEAD_BYTES, json.dumps(gap), self.boot, mono, wall))
+        conn.execute(
+            "INSERT INTO batches (epoch, seq, digest, body, nbytes, n_readings, gap, boot, sealed_at_mono,"
+            " sealed_at_wall) VALUES (?,?,?,?,?,0,?,?,?,?)",
+            (epoch, seq, dig, body, len(body) + ROW_OVERHEAD_BYTES, json.dumps(gap), self.boot, mono, wall),
+        )
 
-    def _seal_gap(self, conn: sqlite3.Connection, iv: Interval, reason: GapReason, offset_db: float,
-                  mono: float, wall: float, status: int | None = None) -> None:
+    def _seal_gap(
+        self,
+        conn: sqlite3.Connection,
+        iv: Interval,
+        reason: GapReason,
+        offset_db: float,
+        mono: float,
+        wall: float,
+        status: int | None = None,
+    ) -> None:
         gap = self._gap_object(iv, reason, status)
         _, body, dig = seal_content(encode_content([], boot=self.boot, offset_db=offset_db, gap=gap))
         self._insert(conn, self._next_seq(conn), dig, body, 0, json.dumps(gap), self.boot, mono, wall)
 
     def _delete_acked(self, conn: sqlite3.Connection, acks: set[tuple[str, int]]) -> None:
         for epoch, seq in acks:
-            row = conn.execute("DELETE FROM batches WHERE epoch=? AND seq=? RETURNING nbytes",
-                               (epoch, seq)).fetchone()
+            row = conn.execute(
+                "DELETE FROM batches WHERE epoch=? AND seq=? RETURNING nbytes", (epoch, seq)
+            ).fetchone()
             if row is not None:
                 self.batches -= 1
                 self.bytes -= row[0]
 
-    def _make_room(self, conn: sqlite3.Connection, need: int, boot: str, offset_db: float,
-                   mono: float, wall: float) -> None:
+    def _make_room(
+        self, conn: sqlite3.Connection, need: int, boot: str, offset_db: float, mono: float, wall: float
+    ) -> None:
         if self.bytes + need <= self.max_bytes:
             return
         target = self.max_bytes - need - int(self.max_bytes * DROP_SLACK)
         covered: dict[GapReason, list[Interval]] = {r: [] for r in GapReason}
         dropped_batches = dropped_readings = 0
         while self.bytes > target:
-            row = conn.execute("DELETE FROM batches WHERE id = (SELECT MIN(id) FROM batches)"
-                               " RETURNING epoch, seq, n_readings, nbytes, gap").fetchone()
+            row = conn.execute(
+                "DELETE FROM batches WHERE id = (SELECT MIN(id) FROM batches)"
+                " RETURNING epoch, seq, n_readings, nbytes, gap"
+            ).fetchone()
             if row is None:
                 break
             epoch, seq, n, nbytes, gap = row
@@ -511,7 +619,14 @@ class Disk:
                 # Fold the dropped gap record into the new one: its range stays reported, under its reason.
                 g = json.loads(gap)
                 covered[GapReason(g["reason"])].append(
-                    Interval(g["epoch"], g["first_seq"], g["last_seq"], g["readings"], bool(g.get("readings_unknown"))))
+                    Interval(
+                        g["epoch"],
+                        g["first_seq"],
+                        g["last_seq"],
+                        g["readings"],
+                        bool(g.get("readings_unknown")),
+                    )
+                )
             else:
                 dropped_batches += 1
                 dropped_readings += n
@@ -520,12 +635,27 @@ class Disk:
                 self._seal_gap(conn, iv, reason, offset_db, mono, wall)
         self._bump(conn, "dropped_batches", dropped_batches)
         self._bump(conn, "dropped_readings", dropped_readings)
-        log.warning("spool_full_dropped", batches=dropped_batches, readings=dropped_readings,
-                    ranges=[(i.epoch, i.first, i.last) for i in envelopes(covered[GapReason.SPOOL_FULL])],
-                    max_bytes=self.max_bytes)
+        log.warning(
+            "spool_full_dropped",
+            batches=dropped_batches,
+            readings=dropped_readings,
+            ranges=[(i.epoch, i.first, i.last) for i in envelopes(covered[GapReason.SPOOL_FULL])],
+            max_bytes=self.max_bytes,
+        )
 
-    def _replace_bad_row(self, conn: sqlite3.Connection, rid: int, epoch: str, seq: int, n: int, nbytes: int,
-                         problem: str, offset_db: float, mono: float, wall: float) -> None:
+    def _replace_bad_row(
+        self,
+        conn: sqlite3.Connection,
+        rid: int,
+        epoch: str,
+        seq: int,
+        n: int,
+        nbytes: int,
+        problem: str,
+        offset_db: float,
+        mono: float,
+        wall: float,
+    ) -> None:
         with transaction(conn, durable=True):
             conn.execute("DELETE FROM batches WHERE id=?", (rid,))
             self.batches -= 1
@@ -540,7 +670,9 @@ class Disk:
         if self.conn is None:
             return
         try:
-            row = self.conn.execute("SELECT boot, sealed_at_mono, sealed_at_wall FROM batches ORDER BY id LIMIT 1").fetchone()
+            row = self.conn.execute(
+                "SELECT boot, sealed_at_mono, sealed_at_wall FROM batches ORDER BY id LIMIT 1"
+            ).fetchone()
             if row is not None:
                 self.oldest = Oldest(*row)
         except sqlite3.Error:

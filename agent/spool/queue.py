@@ -39,8 +39,16 @@ class Spool:
         await spool.ack(batch.epoch, batch.seq)
     """
 
-    def __init__(self, path: Path, *, clock: Clock, max_bytes: int, flush_seconds: float,
-                 max_batch_readings: int, max_pending_readings: int) -> None:
+    def __init__(
+        self,
+        path: Path,
+        *,
+        clock: Clock,
+        max_bytes: int,
+        flush_seconds: float,
+        max_batch_readings: int,
+        max_pending_readings: int,
+    ) -> None:
         self.path = path
         self._clock = clock
         self.max_bytes = max_bytes
@@ -66,8 +74,16 @@ class Spool:
         self._closed = False
 
     @classmethod
-    async def open(cls, path: Path, *, clock: Clock, max_bytes: int, flush_seconds: float,
-                   max_batch_readings: int = 5000, max_pending_readings: int = 50_000) -> Spool:
+    async def open(
+        cls,
+        path: Path,
+        *,
+        clock: Clock,
+        max_bytes: int,
+        flush_seconds: float,
+        max_batch_readings: int = 5000,
+        max_pending_readings: int = 50_000,
+    ) -> Spool:
         """
         Open the spool at ``path`` (creating it and its directory if missing).
 
@@ -86,13 +102,22 @@ class Spool:
         Raises:
             ValueError: a bound is not positive (the message names it).
         """
-        for name, value in (("max_bytes", max_bytes), ("flush_seconds", flush_seconds),
-                            ("max_batch_readings", max_batch_readings),
-                            ("max_pending_readings", max_pending_readings)):
+        for name, value in (
+            ("max_bytes", max_bytes),
+            ("flush_seconds", flush_seconds),
+            ("max_batch_readings", max_batch_readings),
+            ("max_pending_readings", max_pending_readings),
+        ):
             if not isinstance(value, int | float) or isinstance(value, bool) or not value > 0:
                 raise ValueError(f"{name}: must be > 0, got {value!r}")
-        spool = cls(Path(path), clock=clock, max_bytes=int(max_bytes), flush_seconds=float(flush_seconds),
-                    max_batch_readings=int(max_batch_readings), max_pending_readings=int(max_pending_readings))
+        spool = cls(
+            Path(path),
+            clock=clock,
+            max_bytes=int(max_bytes),
+            flush_seconds=float(flush_seconds),
+            max_batch_readings=int(max_batch_readings),
+            max_pending_readings=int(max_pending_readings),
+        )
         await spool._call(spool._disk.open, clock.monotonic(), clock.time())
         return spool
 
@@ -109,13 +134,18 @@ class Spool:
             self._ram_dropped += 1
             self._ram_dropped_total += 1
             if self._ram_dropped_total == 1 or self._ram_dropped_total % 10_000 == 0:
-                log.error("spool_ram_buffer_full", dropped_readings=self._ram_dropped_total,
-                          cap=self.max_pending_readings)
+                log.error(
+                    "spool_ram_buffer_full",
+                    dropped_readings=self._ram_dropped_total,
+                    cap=self.max_pending_readings,
+                )
 
     def due(self) -> bool:
         """True when pending readings have waited ``flush_seconds`` or more."""
-        return (self._first_add_mono is not None
-                and self._clock.monotonic() - self._first_add_mono >= self.flush_seconds)
+        return (
+            self._first_add_mono is not None
+            and self._clock.monotonic() - self._first_add_mono >= self.flush_seconds
+        )
 
     async def seal(self, *, boot: str, offset_db: float) -> SealedBatch | None:
         """
@@ -137,13 +167,17 @@ class Spool:
             return None
         readings = list(self._pending)
         front_dropped = self._front_dropped
-        chunks = [readings[i:i + self.max_batch_readings] for i in range(0, len(readings), self.max_batch_readings)]
+        chunks = [
+            readings[i : i + self.max_batch_readings]
+            for i in range(0, len(readings), self.max_batch_readings)
+        ]
         acks = set(self._acks)
         ram_dropped = self._ram_dropped
         try:
             if chunks or ram_dropped:
-                sealed = await self._call(self._disk.seal, chunks, boot, offset_db, acks, ram_dropped,
-                                          now, self._clock.time())
+                sealed = await self._call(
+                    self._disk.seal, chunks, boot, offset_db, acks, ram_dropped, now, self._clock.time()
+                )
             else:
                 sealed = []
                 await self._call(self._disk.flush_acks, acks, now, self._clock.time())
@@ -182,8 +216,15 @@ class Spool:
         if self._snap.degraded:
             return None
         try:
-            return await self._shielded(self._call(self._disk.peek, set(self._acks), self._last_offset_db,
-                                                   self._clock.monotonic(), self._clock.time()))
+            return await self._shielded(
+                self._call(
+                    self._disk.peek,
+                    set(self._acks),
+                    self._last_offset_db,
+                    self._clock.monotonic(),
+                    self._clock.time(),
+                )
+            )
         except Degraded:
             return None
 
@@ -214,9 +255,19 @@ class Spool:
         """
         self._check_open()
         try:
-            found = await self._shielded(self._serial(self._call, self._disk.dead_letter, epoch, seq, status,
-                                                      reason, self._last_offset_db, self._clock.monotonic(),
-                                                      self._clock.time()))
+            found = await self._shielded(
+                self._serial(
+                    self._call,
+                    self._disk.dead_letter,
+                    epoch,
+                    seq,
+                    status,
+                    reason,
+                    self._last_offset_db,
+                    self._clock.monotonic(),
+                    self._clock.time(),
+                )
+            )
         except Degraded:
             return  # still spooled: it will be sent, refused and moved aside again later
         if found:
@@ -233,8 +284,9 @@ class Spool:
         """
         self._check_open()
         try:
-            epoch = await self._shielded(self._serial(self._call, self._disk.start_epoch, self._clock.monotonic(),
-                                                      self._clock.time()))
+            epoch = await self._shielded(
+                self._serial(self._call, self._disk.start_epoch, self._clock.monotonic(), self._clock.time())
+            )
         except Degraded as e:
             raise SpoolError(f"{self.path}: cannot start a new epoch: {e}") from e
         log.warning("spool_epoch_created", epoch=epoch, reason=reason)
@@ -251,11 +303,18 @@ class Spool:
                 age = max(0.0, self._clock.time() - s.oldest.wall)
         return SpoolStats(
             # acked batches stay on disk until the next seal commits their removal: not a backlog
-            batches=max(0, s.batches - len(self._acks)), bytes=s.bytes, readings_pending=len(self._pending), oldest_age_s=age,
-            next_seq=s.next_seq, epoch=s.epoch, dropped_batches=s.counters["dropped_batches"],
+            batches=max(0, s.batches - len(self._acks)),
+            bytes=s.bytes,
+            readings_pending=len(self._pending),
+            oldest_age_s=age,
+            next_seq=s.next_seq,
+            epoch=s.epoch,
+            dropped_batches=s.counters["dropped_batches"],
             dropped_readings=s.counters["dropped_readings"] + self._ram_dropped,
-            dead_letters=s.counters["dead_letters"], corrupt_set_aside=s.counters["corrupt_set_aside"],
-            degraded=s.degraded)
+            dead_letters=s.counters["dead_letters"],
+            corrupt_set_aside=s.counters["corrupt_set_aside"],
+            degraded=s.degraded,
+        )
 
     async def idle(self) -> None:
         """
@@ -303,8 +362,13 @@ class Spool:
         except Degraded as e:
             now = self._clock.monotonic()
             self._retry_at = now + self._retry_interval
-            log.error("spool_degraded", path=str(self.path), error=str(e), retry_in_s=self._retry_interval,
-                      readings_pending=len(self._pending))
+            log.error(
+                "spool_degraded",
+                path=str(self.path),
+                error=str(e),
+                retry_in_s=self._retry_interval,
+                readings_pending=len(self._pending),
+            )
             self._retry_interval = min(self._retry_interval * 2, RETRY_MAX_SECONDS)
             raise
 
@@ -333,4 +397,5 @@ def _forget(tasks: set[asyncio.Task[Any]]) -> Callable[[asyncio.Task[Any]], None
         tasks.discard(t)
         if not t.cancelled():
             t.exception()  # retrieved here so an orphaned failure is not reported as "never retrieved"
+
     return done

@@ -73,8 +73,11 @@ def is_corruption(e: BaseException) -> bool:
     if isinstance(e, sqlite3.DatabaseError) and _errcode(e) in _CORRUPT_CODES:
         return True
     # Some corruption surfaces without an extended code (e.g. via the row decoder).
-    return isinstance(e, sqlite3.DatabaseError) and not isinstance(e, sqlite3.OperationalError) and (
-        "malformed" in str(e) or "not a database" in str(e))
+    return (
+        isinstance(e, sqlite3.DatabaseError)
+        and not isinstance(e, sqlite3.OperationalError)
+        and ("malformed" in str(e) or "not a database" in str(e))
+    )
 
 
 class CorruptSpool(Exception):
@@ -133,7 +136,7 @@ def remove_path(p: Path) -> None:
             pass
 
 
-ROW_COLUMNS = ("epoch, seq, digest, body, nbytes, n_readings, gap, boot, sealed_at_mono, sealed_at_wall")
+ROW_COLUMNS = "epoch, seq, digest, body, nbytes, n_readings, gap, boot, sealed_at_mono, sealed_at_wall"
 
 
 class Salvage:
@@ -177,9 +180,11 @@ class Salvage:
 
     def _list_keys(self) -> None:
         assert self._conn is not None
-        queries = ("SELECT epoch, seq, NULL FROM batches ORDER BY epoch, seq",  # the covering index only
-                   "SELECT epoch, seq, n_readings FROM batches ORDER BY id",
-                   "SELECT epoch, seq, n_readings FROM batches ORDER BY id DESC")
+        queries = (
+            "SELECT epoch, seq, NULL FROM batches ORDER BY epoch, seq",  # the covering index only
+            "SELECT epoch, seq, n_readings FROM batches ORDER BY id",
+            "SELECT epoch, seq, n_readings FROM batches ORDER BY id DESC",
+        )
         for q in queries:
             try:
                 for ep, seq, n in self._conn.execute(q):
@@ -198,8 +203,9 @@ class Salvage:
         order: list[tuple[int, str, int]] = []
         for (ep, seq), n in self._keys.items():
             try:
-                row = self._conn.execute("SELECT id, n_readings FROM batches WHERE epoch=? AND seq=?",
-                                         (ep, seq)).fetchone()
+                row = self._conn.execute(
+                    "SELECT id, n_readings FROM batches WHERE epoch=? AND seq=?", (ep, seq)
+                ).fetchone()
                 if row is None:
                     raise ValueError("row missing")
                 order.append((int(row[0]), ep, seq))

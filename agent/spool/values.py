@@ -138,9 +138,17 @@ def envelopes(intervals: Iterable[Interval]) -> list[Interval]:
     by_epoch: dict[str, Interval] = {}
     for iv in intervals:
         prev = by_epoch.get(iv.epoch)
-        by_epoch[iv.epoch] = iv if prev is None else Interval(
-            iv.epoch, min(prev.first, iv.first), max(prev.last, iv.last), prev.readings + iv.readings,
-            prev.unknown or iv.unknown)
+        by_epoch[iv.epoch] = (
+            iv
+            if prev is None
+            else Interval(
+                iv.epoch,
+                min(prev.first, iv.first),
+                max(prev.last, iv.last),
+                prev.readings + iv.readings,
+                prev.unknown or iv.unknown,
+            )
+        )
     return sorted(by_epoch.values(), key=lambda i: (i.first, i.epoch))
 
 
@@ -150,8 +158,13 @@ def merge_intervals(intervals: Iterable[Interval]) -> list[Interval]:
     for iv in sorted(intervals, key=lambda i: (i.epoch, i.first, i.last)):
         if out and out[-1].epoch == iv.epoch and iv.first <= out[-1].last + 1:
             prev = out[-1]
-            out[-1] = Interval(prev.epoch, prev.first, max(prev.last, iv.last), prev.readings + iv.readings,
-                                prev.unknown or iv.unknown)
+            out[-1] = Interval(
+                prev.epoch,
+                prev.first,
+                max(prev.last, iv.last),
+                prev.readings + iv.readings,
+                prev.unknown or iv.unknown,
+            )
         else:
             out.append(iv)
     return out

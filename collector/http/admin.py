@@ -42,7 +42,9 @@ def require_admin(request: web.Request) -> None:
     """401 unless the request carries the admin token."""
     token = bearer_token(request.headers.get("Authorization"))
     if token is None or not same_secret(hash_secret(token), request.app[RUNTIME].admin_token_hash):
-        raise ApiError(401, "unauthorized", "admin token missing or wrong", headers={"WWW-Authenticate": "Bearer"})
+        raise ApiError(
+            401, "unauthorized", "admin token missing or wrong", headers={"WWW-Authenticate": "Bearer"}
+        )
 
 
 async def _json_object(request: web.Request) -> dict[str, Any]:
@@ -61,7 +63,9 @@ def _str_field(body: dict[str, Any], name: str, *, required: bool = True, max_le
     return v.strip()
 
 
-def _number_field(body: dict[str, Any], name: str, lo: float, hi: float, default: float | None = None) -> float:
+def _number_field(
+    body: dict[str, Any], name: str, lo: float, hi: float, default: float | None = None
+) -> float:
     v = body.get(name, default)
     if not isinstance(v, int | float) or isinstance(v, bool) or not math.isfinite(v) or not lo <= v <= hi:
         raise bad_field(name, f"must be a number in {lo:g}..{hi:g}, got {v!r}")
@@ -69,9 +73,16 @@ def _number_field(body: dict[str, Any], name: str, lo: float, hi: float, default
 
 
 def board_json(b: Board) -> dict[str, Any]:
-    return {"name": b.name, "room": b.room, "floor": b.floor, "created_at": b.created_at,
-            "enrolled_at": b.enrolled_at, "offset_db": b.offset_db, "retired_at": b.retired_at,
-            "fingerprint": b.fingerprint}
+    return {
+        "name": b.name,
+        "room": b.room,
+        "floor": b.floor,
+        "created_at": b.created_at,
+        "enrolled_at": b.enrolled_at,
+        "offset_db": b.offset_db,
+        "retired_at": b.retired_at,
+        "fingerprint": b.fingerprint,
+    }
 
 
 async def _board_or_404(request: web.Request) -> Board:
@@ -94,13 +105,20 @@ async def add_board(request: web.Request) -> web.Response:
     body = await _json_object(request)
     name = body.get("name")
     if not isinstance(name, str) or not BOARD_NAME.fullmatch(name):
-        raise bad_field("name", "must be 1-63 lower-case letters, digits, '.', '_' or '-', starting with a letter or digit")
+        raise bad_field(
+            "name",
+            "must be 1-63 lower-case letters, digits, '.', '_' or '-', starting with a letter or digit",
+        )
     room = _str_field(body, "room")
     floor = _str_field(body, "floor", required=False, max_len=40)
     store, now = request.app[STORE], request.app[CLOCK].time()
     if await store.get_board(name) is not None:
-        raise ApiError(409, "board_exists", f"board {name!r} already exists; use 'board reissue' for a new code",
-                       field="name")
+        raise ApiError(
+            409,
+            "board_exists",
+            f"board {name!r} already exists; use 'board reissue' for a new code",
+            field="name",
+        )
     code, expires = await _issue_code(request, name)
     board = Board(name=name, room=room or "", floor=floor, created_at=now)
     try:
@@ -108,8 +126,15 @@ async def add_board(request: web.Request) -> web.Response:
     except ValueError as e:
         raise ApiError(409, "board_exists", str(e), field="name") from e
     log.info("board_added", board=name, room=room, floor=floor)
-    return web.json_response({**board_json(board), "code": code, "code_expires_at": expires,
-                              "collector_url": request.app[SETTINGS].public_url}, status=201)
+    return web.json_response(
+        {
+            **board_json(board),
+            "code": code,
+            "code_expires_at": expires,
+            "collector_url": request.app[SETTINGS].public_url,
+        },
+        status=201,
+    )
 
 
 async def list_boards(request: web.Request) -> web.Response:
@@ -127,16 +152,21 @@ async def show_board(request: web.Request) -> web.Response:
     hb = (await store.latest_heartbeats()).get(board.name)
     cals = await store.calibrations(board.name)
     state = request.app[RUNTIME].states.get(board.name, {})
-    return web.json_response({
-        **board_json(board),
-        "state": state.get("state"), "state_reason": state.get("reason"),
-        "readings_total": counts.readings_total if counts else 0,
-        "batches_total": counts.batches_total if counts else 0,
-        "last_batch_at": counts.last_batch_at if counts else None,
-        "last_heartbeat": {"at": hb.at, "boot": hb.boot, "stats": hb.stats} if hb else None,
-        "calibrations": [_calibration_json(c) for c in cals],
-        "recalibrate": bool(cals) and cals[-1].fingerprint is not None and cals[-1].fingerprint != board.fingerprint,
-    })
+    return web.json_response(
+        {
+            **board_json(board),
+            "state": state.get("state"),
+            "state_reason": state.get("reason"),
+            "readings_total": counts.readings_total if counts else 0,
+            "batches_total": counts.batches_total if counts else 0,
+            "last_batch_at": counts.last_batch_at if counts else None,
+            "last_heartbeat": {"at": hb.at, "boot": hb.boot, "stats": hb.stats} if hb else None,
+            "calibrations": [_calibration_json(c) for c in cals],
+            "recalibrate": bool(cals)
+            and cals[-1].fingerprint is not None
+            and cals[-1].fingerprint != board.fingerprint,
+        }
+    )
 
 
 async def retire_board(request: web.Request) -> web.Response:
@@ -159,8 +189,14 @@ async def reissue_board(request: web.Request) -> web.Response:
     code, expires = await _issue_code(request, board.name)
     await request.app[STORE].new_enrollment(Enrollment(board.name, code_hash(code), expires))
     log.info("enrollment_reissued", board=board.name)
-    return web.json_response({**board_json(board), "code": code, "code_expires_at": expires,
-                              "collector_url": request.app[SETTINGS].public_url})
+    return web.json_response(
+        {
+            **board_json(board),
+            "code": code,
+            "code_expires_at": expires,
+            "collector_url": request.app[SETTINGS].public_url,
+        }
+    )
 
 
 def _tag_list(body: dict[str, Any]) -> list[str]:
@@ -184,8 +220,14 @@ async def import_tags(request: web.Request) -> web.Response:
     ids = _tag_list(await _json_object(request))
     store = request.app[STORE]
     added = await store.add_tags(ids, request.app[CLOCK].time())
-    return web.json_response({"added": added, "given": len(ids), "total": len(await store.list_tags()),
-                              "without_rule": _without_rule(ids, request.app[SETTINGS].rules)})
+    return web.json_response(
+        {
+            "added": added,
+            "given": len(ids),
+            "total": len(await store.list_tags()),
+            "without_rule": _without_rule(ids, request.app[SETTINGS].rules),
+        }
+    )
 
 
 def _without_rule(ids: list[str], rules: Any) -> dict[str, int]:
@@ -289,14 +331,25 @@ async def export(request: web.Request) -> web.StreamResponse:
     # Binning and compression are CPU work: keep the event loop free for boards meanwhile.
     data = await asyncio.get_running_loop().run_in_executor(None, render)
     ctype = "text/csv" if fmt == "csv" else "application/octet-stream"
-    return web.Response(body=data, content_type=ctype,
-                        headers={"Content-Disposition": f'attachment; filename="listenpost-export.{fmt}"',
-                                 "X-Readings": str(len(rows.tag))})
+    return web.Response(
+        body=data,
+        content_type=ctype,
+        headers={
+            "Content-Disposition": f'attachment; filename="listenpost-export.{fmt}"',
+            "X-Readings": str(len(rows.tag)),
+        },
+    )
 
 
 def _calibration_json(c: Calibration) -> dict[str, Any]:
-    return {"at": c.at, "offset_db": c.offset_db, "spread_db": c.spread_db, "samples": c.samples,
-            "reference_tag": c.reference_tag, "distance_m": c.distance_m}
+    return {
+        "at": c.at,
+        "offset_db": c.offset_db,
+        "spread_db": c.spread_db,
+        "samples": c.samples,
+        "reference_tag": c.reference_tag,
+        "distance_m": c.distance_m,
+    }
 
 
 async def calibrate(request: web.Request) -> web.Response:
@@ -324,23 +377,54 @@ async def calibrate(request: web.Request) -> web.Response:
     # The board's current offset is already in the stored RSSI; calibrate against the raw values.
     raw_dbm = (rows.rssi_dd - rows.offset_dd) / 10.0
     if len(raw_dbm) == 0:
-        raise ApiError(409, "no_readings", f"board {board.name!r} has no readings of {tag} in the last "
-                       f"{minutes:g} minutes", field="tag")
+        raise ApiError(
+            409,
+            "no_readings",
+            f"board {board.name!r} has no readings of {tag} in the last {minutes:g} minutes",
+            field="tag",
+        )
     try:
-        result = calibrate_offset(np.asarray(raw_dbm, dtype=float), distance_m=distance, p1_dbm=power,
-                                  exponent=exponent)
+        result = calibrate_offset(
+            np.asarray(raw_dbm, dtype=float), distance_m=distance, p1_dbm=power, exponent=exponent
+        )
     except ValueError as e:
         raise bad_field("distance_m", str(e)) from e
-    cal = Calibration(board.name, now, float(result.offset_db), float(result.spread_db), int(result.samples), tag,
-                      distance, board.fingerprint)
+    cal = Calibration(
+        board.name,
+        now,
+        float(result.offset_db),
+        float(result.spread_db),
+        int(result.samples),
+        tag,
+        distance,
+        board.fingerprint,
+    )
     await store.set_offset(cal)
     request.app[RUNTIME].token_cache.clear()  # cached Board records carry the old offset
-    await store.add_event(Event(now, board.name, "calibrated", {**_calibration_json(cal),
-                                                                "warnings": [str(w) for w in result.warnings]}))
-    log.info("board_calibrated", board=board.name, offset_db=cal.offset_db, spread_db=cal.spread_db,
-             samples=cal.samples)
-    return web.json_response({**_calibration_json(cal), "board": board.name, "warnings": [str(w) for w in result.warnings],
-                              "median_dbm": result.median_dbm, "previous_offset_db": board.offset_db})
+    await store.add_event(
+        Event(
+            now,
+            board.name,
+            "calibrated",
+            {**_calibration_json(cal), "warnings": [str(w) for w in result.warnings]},
+        )
+    )
+    log.info(
+        "board_calibrated",
+        board=board.name,
+        offset_db=cal.offset_db,
+        spread_db=cal.spread_db,
+        samples=cal.samples,
+    )
+    return web.json_response(
+        {
+            **_calibration_json(cal),
+            "board": board.name,
+            "warnings": [str(w) for w in result.warnings],
+            "median_dbm": result.median_dbm,
+            "previous_offset_db": board.offset_db,
+        }
+    )
 
 
 async def walktest(request: web.Request) -> web.Response:
@@ -375,14 +459,17 @@ async def walktest(request: web.Request) -> web.Response:
     room_of = {b.name: b.room for b in boards}
     floors = {b.room: b.floor for b in boards if b.floor is not None}
     rssi_dbm = rows.rssi_dd / 10.0
-    walk_rows = [(b, room_of.get(b, "?"), float(t), float(r))
-                 for b, t, r in zip(rows.board.tolist(), rows.t_collector.tolist(), rssi_dbm.tolist(), strict=True)]
+    walk_rows = [
+        (b, room_of.get(b, "?"), float(t), float(r))
+        for b, t, r in zip(rows.board.tolist(), rows.t_collector.tolist(), rssi_dbm.tolist(), strict=True)
+    ]
     try:
         report = walk_report(marks, walk_rows, floors=floors)
     except ValueError as e:
         raise bad_field("marks", str(e)) from e
-    return web.json_response({"tag": tag, "readings": len(walk_rows),
-                              "rooms": [dataclasses.asdict(r) for r in report]})
+    return web.json_response(
+        {"tag": tag, "readings": len(walk_rows), "rooms": [dataclasses.asdict(r) for r in report]}
+    )
 
 
 def add_routes(app: web.Application) -> None:

@@ -48,10 +48,14 @@ async def read_json(request: web.Request, limits: Limits) -> Any:
     """
     encoding = request.headers.get("Content-Encoding", "identity").strip().lower()
     if encoding not in ("identity", "gzip", ""):
-        raise ApiError(415, "unsupported_encoding", f"Content-Encoding {encoding!r} is not supported; use gzip")
+        raise ApiError(
+            415, "unsupported_encoding", f"Content-Encoding {encoding!r} is not supported; use gzip"
+        )
     sent = request.content_length
     if sent is not None and sent > limits.max_body_bytes:
-        raise ApiError(413, "too_large", f"body of {sent} bytes is over the {limits.max_body_bytes}-byte limit")
+        raise ApiError(
+            413, "too_large", f"body of {sent} bytes is over the {limits.max_body_bytes}-byte limit"
+        )
     cap = limits.max_decompressed_bytes if encoding == "gzip" else limits.max_body_bytes
     parts: list[bytes] = []
     total = 0
@@ -59,13 +63,19 @@ async def read_json(request: web.Request, limits: Limits) -> Any:
         while chunk := await request.content.read(_READ_CHUNK):
             total += len(chunk)
             if total > cap:
-                raise ApiError(413, "too_large", f"body is over the {cap}-byte limit"
-                               + (" after decompression" if encoding == "gzip" else ""))
+                raise ApiError(
+                    413,
+                    "too_large",
+                    f"body is over the {cap}-byte limit"
+                    + (" after decompression" if encoding == "gzip" else ""),
+                )
             parts.append(chunk)
     except ApiError:
         raise
     except Exception as e:  # aiohttp's ContentEncodingError and friends: a corrupt gzip stream
-        raise ApiError(400, "bad_encoding", f"body could not be decoded as {encoding}: {e}", field="body") from e
+        raise ApiError(
+            400, "bad_encoding", f"body could not be decoded as {encoding}: {e}", field="body"
+        ) from e
     request[BYTES_SENT] = sent if sent is not None else total
     try:
         return json.loads(b"".join(parts))
@@ -96,8 +106,12 @@ async def require_board(request: web.Request) -> Board:
     """The board whose token is on the request: 401 without a valid one, 403 when retired."""
     token = bearer_token(request.headers.get("Authorization"))
     if token is None:
-        raise ApiError(401, "unauthorized", "missing 'Authorization: Bearer <board token>'",
-                       headers={"WWW-Authenticate": "Bearer"})
+        raise ApiError(
+            401,
+            "unauthorized",
+            "missing 'Authorization: Bearer <board token>'",
+            headers={"WWW-Authenticate": "Bearer"},
+        )
     # The store looks the board up by the token's sha256; a timing difference reveals nothing usable,
     # because a guess would need a sha256 preimage to get closer.
     board = await _board_for_token(request.app, hash_secret(token))
@@ -143,11 +157,19 @@ async def enroll(request: web.Request) -> web.Response:
     if enr is None:
         raise ApiError(404, "unknown_code", "no such enrollment code", field="code")
     if enr.used_at is not None:
-        raise ApiError(409, "code_used", "this enrollment code was already used; "
-                       "ask for a new one with 'collector board reissue'", field="code")
+        raise ApiError(
+            409,
+            "code_used",
+            "this enrollment code was already used; ask for a new one with 'collector board reissue'",
+            field="code",
+        )
     if enr.expires_at <= now:
-        raise ApiError(410, "code_expired", "this enrollment code has expired; "
-                       "ask for a new one with 'collector board reissue'", field="code")
+        raise ApiError(
+            410,
+            "code_expired",
+            "this enrollment code has expired; ask for a new one with 'collector board reissue'",
+            field="code",
+        )
     before = await store.get_board(enr.board)
     if before is None or before.retired_at is not None:
         raise ApiError(410, "board_retired", f"board {enr.board!r} is retired", field="code")
@@ -155,7 +177,9 @@ async def enroll(request: web.Request) -> web.Response:
     try:
         board = await store.complete_enrollment(h, hash_secret(token), fingerprint, now)
     except EnrollmentRefused as e:  # checked again atomically: a racing enrollment may have won
-        status = {EnrollmentReason.UNKNOWN: 404, EnrollmentReason.USED: 409, EnrollmentReason.EXPIRED: 410}[e.reason]
+        status = {EnrollmentReason.UNKNOWN: 404, EnrollmentReason.USED: 409, EnrollmentReason.EXPIRED: 410}[
+            e.reason
+        ]
         raise ApiError(status, f"code_{e.reason.value}", str(e), field="code") from e
     await _flag_fingerprint_change(app, board, before.fingerprint, fingerprint, now)
     log.info("board_enrolled", board=board.name, room=board.room)
@@ -163,15 +187,23 @@ async def enroll(request: web.Request) -> web.Response:
     return web.json_response({"board": board.name, "token": token, "config": doc})
 
 
-async def _flag_fingerprint_change(app: web.Application, board: Board, previous: dict[str, Any] | None,
-                                   fingerprint: dict[str, Any], now: float) -> None:
+async def _flag_fingerprint_change(
+    app: web.Application,
+    board: Board,
+    previous: dict[str, Any] | None,
+    fingerprint: dict[str, Any],
+    now: float,
+) -> None:
     """A board whose hardware changed since it was calibrated needs a new calibration: say so."""
     cals = await app[STORE].calibrations(board.name)
     reference = cals[-1].fingerprint if cals else previous
     if reference is not None and reference != fingerprint:
-        changed = sorted(k for k in set(reference) | set(fingerprint) if reference.get(k) != fingerprint.get(k))
-        await app[STORE].add_event(Event(now, board.name, "fingerprint_changed",
-                                         {"keys": changed, "calibrated": bool(cals)}))
+        changed = sorted(
+            k for k in set(reference) | set(fingerprint) if reference.get(k) != fingerprint.get(k)
+        )
+        await app[STORE].add_event(
+            Event(now, board.name, "fingerprint_changed", {"keys": changed, "calibrated": bool(cals)})
+        )
         log.warning("fingerprint_changed", board=board.name, keys=changed, calibrated=bool(cals))
 
 
@@ -197,9 +229,13 @@ async def post_batch(request: web.Request) -> web.Response:
     board = await require_board(request)
     if runtime.batches_inflight >= limits.max_inflight_batches:
         runtime.counters.overloaded += 1
-        raise ApiError(429, "busy", f"{runtime.batches_inflight} batches are being stored now; "
-                       f"retry after {limits.busy_retry_after_seconds} s",
-                       headers={"Retry-After": str(limits.busy_retry_after_seconds)})
+        raise ApiError(
+            429,
+            "busy",
+            f"{runtime.batches_inflight} batches are being stored now; "
+            f"retry after {limits.busy_retry_after_seconds} s",
+            headers={"Retry-After": str(limits.busy_retry_after_seconds)},
+        )
     runtime.batches_inflight += 1
     try:
         return await _store_batch(request, board)
@@ -218,8 +254,9 @@ async def _store_batch(request: web.Request, board: Board) -> web.Response:
         raise bad_field(e.field, str(e).removeprefix(f"{e.field}: ")) from e
     if env.board != board.name:
         runtime.counters.rejected += 1
-        raise ApiError(403, "wrong_board", f"token of board {board.name!r} cannot post for {env.board!r}",
-                       field="board")
+        raise ApiError(
+            403, "wrong_board", f"token of board {board.name!r} cannot post for {env.board!r}", field="board"
+        )
     if env.clock is not None:
         await _exchange(request, board, env.boot, env.clock)
     model = await clock_model(runtime.clock_models, store, board.name, env.content.boot)
@@ -235,11 +272,20 @@ async def _store_batch(request: web.Request, board: Board) -> web.Response:
     runtime.counters.bytes_received += request.get(BYTES_SENT, 0)
     if result.status is IngestStatus.CONFLICT:
         runtime.counters.conflict += 1
-        detail = {"epoch": env.epoch, "seq": env.seq, "digest": env.digest, "stored_digest": result.stored_digest}
+        detail = {
+            "epoch": env.epoch,
+            "seq": env.seq,
+            "digest": env.digest,
+            "stored_digest": result.stored_digest,
+        }
         await store.add_event(Event(t2, board.name, "digest_conflict", detail))
         log.warning("digest_conflict", **detail)
-        raise ApiError(409, "digest_conflict", f"batch ({env.epoch}, {env.seq}) was stored with another digest; "
-                       "start a new epoch", field="digest")
+        raise ApiError(
+            409,
+            "digest_conflict",
+            f"batch ({env.epoch}, {env.seq}) was stored with another digest; start a new epoch",
+            field="digest",
+        )
     if result.status is IngestStatus.STORED:
         runtime.counters.stored += 1
         runtime.counters.readings_stored += batch.n
@@ -248,8 +294,9 @@ async def _store_batch(request: web.Request, board: Board) -> web.Response:
     return web.json_response({"status": result.status.value, "t2": t2, "t3": app[CLOCK].time()})
 
 
-async def _exchange(request: web.Request, board: Board, boot: str,
-                    exchange: tuple[float, float, float, float]) -> None:
+async def _exchange(
+    request: web.Request, board: Board, boot: str, exchange: tuple[float, float, float, float]
+) -> None:
     """Keep a clock sample; a confirmed step of the board's clock becomes an event."""
     app = request.app
     try:
@@ -271,8 +318,12 @@ async def heartbeat(request: web.Request) -> web.Response:
     if not isinstance(body, dict):
         raise bad_field("body", "must be a JSON object")
     if body.get("board", board.name) != board.name:
-        raise ApiError(403, "wrong_board", f"token of board {board.name!r} cannot speak for {body.get('board')!r}",
-                       field="board")
+        raise ApiError(
+            403,
+            "wrong_board",
+            f"token of board {board.name!r} cannot speak for {body.get('board')!r}",
+            field="board",
+        )
     boot = body.get("boot")
     if not isinstance(boot, str) or not 1 <= len(boot) <= 64:
         raise bad_field("boot", "must be a string of 1-64 characters")

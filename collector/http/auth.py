@@ -39,7 +39,7 @@ def same_secret(a: str, b: str) -> bool:
 def new_enrollment_code() -> str:
     """16 base32 characters (80 bits) in four groups: ``7KQ2-M9XD-4TPA-WZ3R``."""
     chars = "".join(secrets.choice(_CODE_ALPHABET) for _ in range(16))
-    return "-".join(chars[i:i + 4] for i in range(0, 16, 4))
+    return "-".join(chars[i : i + 4] for i in range(0, 16, 4))
 
 
 def normalize_code(code: str) -> str:

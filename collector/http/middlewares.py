@@ -38,8 +38,15 @@ BYTES_SENT = web.RequestKey("bytes_sent", int)
 class ApiError(Exception):
     """A request the collector refuses; becomes the JSON error shape with ``status``."""
 
-    def __init__(self, status: int, code: str, message: str, *, field: str | None = None,
-                 headers: dict[str, str] | None = None) -> None:
+    def __init__(
+        self,
+        status: int,
+        code: str,
+        message: str,
+        *,
+        field: str | None = None,
+        headers: dict[str, str] | None = None,
+    ) -> None:
         super().__init__(message)
         self.status = status
         self.code = code
@@ -53,8 +60,9 @@ def bad_field(field: str, message: str) -> ApiError:
     return ApiError(400, "bad_field", f"{field}: {message}", field=field)
 
 
-def error_response(status: int, code: str, message: str, field: str | None = None,
-                   headers: dict[str, str] | None = None) -> web.Response:
+def error_response(
+    status: int, code: str, message: str, field: str | None = None, headers: dict[str, str] | None = None
+) -> web.Response:
     err: dict[str, Any] = {"code": code, "message": message}
     if field is not None:
         err["field"] = field
@@ -73,8 +81,14 @@ def request_context_middleware(*, clock: Clock) -> Middleware:
             response = await handler(request)
             board = request.get(BOARD)
             level = log.info if response.status >= 400 else log.debug
-            level("request_handled", method=request.method, path=request.path, status=response.status,
-                  board=board.name if board else None, ms=round((clock.time() - request[T2]) * 1000, 2))
+            level(
+                "request_handled",
+                method=request.method,
+                path=request.path,
+                status=response.status,
+                board=board.name if board else None,
+                ms=round((clock.time() - request[T2]) * 1000, 2),
+            )
             return response
 
     return impl
@@ -91,8 +105,12 @@ def error_middleware() -> Middleware:
             return error_response(e.status, e.code, e.message, e.field, e.headers)
         except StoreUnavailable as e:
             log.warning("store_unavailable", path=request.path, error=str(e))
-            return error_response(503, "store_unavailable", "the database is not available now; retry later",
-                                  headers={"Retry-After": str(RETRY_AFTER_SECONDS)})
+            return error_response(
+                503,
+                "store_unavailable",
+                "the database is not available now; retry later",
+                headers={"Retry-After": str(RETRY_AFTER_SECONDS)},
+            )
         except web.HTTPException as e:
             if e.status < 400:
                 raise

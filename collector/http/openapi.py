@@ -50,140 +50,382 @@ def spec() -> dict[str, Any]:
     """The OpenAPI document."""
     clock = _obj(["t1", "t2", "t3", "t4"], t1=NUM, t2=NUM, t3=NUM, t4=NUM)
     paths: dict[str, Any] = {
-        "/v1/enroll": {"post": {
-            "summary": "Exchange a one-time enrollment code and hardware fingerprint for a board token",
-            "security": PUBLIC, "tags": ["board"],
-            "requestBody": _body(_obj(["code"], code=STR, fingerprint={"type": "object"})),
-            "responses": {"200": _json(_obj(["board", "token", "config"], board=STR, token=STR, config=_ref("BoardConfig"))),
-                          **_errors(400, 404, 409, 410, 413, 503)}}},
-        "/v1/config": {"get": {
-            "summary": "The board's config: tags, decode rules, RSSI offset, periods", "security": BOARD_AUTH,
-            "tags": ["board"],
-            "parameters": [{"name": "If-None-Match", "in": "header", "required": False, "schema": STR}],
-            "responses": {"200": {**_json(_ref("BoardConfig")), "headers": {"ETag": {"schema": STR}}},
-                          "304": {"description": "Not modified"}, **_errors(401, 403, 503)}}},
-        "/v1/batches": {"post": {
-            "summary": "Store one sealed batch (or gap record); answered after the durable commit",
-            "security": BOARD_AUTH, "tags": ["board"],
-            "description": "Body per agent/wire.py; may be gzip'd (Content-Encoding: gzip). 429 + Retry-After "
-                           "when limits.max_inflight_batches batches are being stored already.",
-            "requestBody": _body(_obj(["v", "board", "boot", "epoch", "seq", "digest", "t1", "content"],
-                                      v={"type": "integer", "enum": [1]}, board=STR, boot=STR, epoch=STR, seq=INT,
-                                      digest=STR, t1=NUM, clock={**clock, "nullable": True},
-                                      content={"type": "object"})),
-            "responses": {"200": _json(_obj(["status", "t2", "t3"], status={"type": "string", "enum": ["stored", "duplicate"]},
-                                            t2=NUM, t3=NUM)),
-                          **_errors(400, 401, 403, 409, 413, 415, 429, 503)}}},
-        "/v1/heartbeat": {"post": {
-            "summary": "Board stats and a clock sample", "security": BOARD_AUTH, "tags": ["board"],
-            "requestBody": _body(_obj(["boot"], board=STR, boot=STR, t1=NUM, wall=NUM,
-                                      clock={**clock, "nullable": True}, stats={"type": "object"})),
-            "responses": {"200": _json(_obj(["t2", "t3", "config_etag"], t2=NUM, t3=NUM, config_etag=STR)),
-                          **_errors(400, 401, 403, 413, 503)}}},
-        "/v1/status": {"get": {
-            "summary": "Fleet and per-board health (what the health page shows)", "security": PUBLIC,
-            "tags": ["health"], "responses": {"200": _json(_ref("Status"))}}},
-        "/v1/openapi.json": {"get": {"summary": "This document", "security": PUBLIC, "tags": ["health"],
-                                     "responses": {"200": _json({"type": "object"})}}},
-        "/": {"get": {"summary": "Health page (HTML)", "security": PUBLIC, "tags": ["health"],
-                      "responses": {"200": {"description": "HTML", "content": {"text/html": {"schema": STR}}}}}},
-        "/metrics": {"get": {"summary": "Prometheus text exposition", "security": PUBLIC, "tags": ["health"],
-                             "responses": {"200": {"description": "text format 0.0.4",
-                                                   "content": {"text/plain": {"schema": STR}}}}}},
+        "/v1/enroll": {
+            "post": {
+                "summary": "Exchange a one-time enrollment code and hardware fingerprint for a board token",
+                "security": PUBLIC,
+                "tags": ["board"],
+                "requestBody": _body(_obj(["code"], code=STR, fingerprint={"type": "object"})),
+                "responses": {
+                    "200": _json(
+                        _obj(["board", "token", "config"], board=STR, token=STR, config=_ref("BoardConfig"))
+                    ),
+                    **_errors(400, 404, 409, 410, 413, 503),
+                },
+            }
+        },
+        "/v1/config": {
+            "get": {
+                "summary": "The board's config: tags, decode rules, RSSI offset, periods",
+                "security": BOARD_AUTH,
+                "tags": ["board"],
+                "parameters": [{"name": "If-None-Match", "in": "header", "required": False, "schema": STR}],
+                "responses": {
+                    "200": {**_json(_ref("BoardConfig")), "headers": {"ETag": {"schema": STR}}},
+                    "304": {"description": "Not modified"},
+                    **_errors(401, 403, 503),
+                },
+            }
+        },
+        "/v1/batches": {
+            "post": {
+                "summary": "Store one sealed batch (or gap record); answered after the durable commit",
+                "security": BOARD_AUTH,
+                "tags": ["board"],
+                "description": "Body per agent/wire.py; may be gzip'd (Content-Encoding: gzip). 429 + Retry-After "
+                "when limits.max_inflight_batches batches are being stored already.",
+                "requestBody": _body(
+                    _obj(
+                        ["v", "board", "boot", "epoch", "seq", "digest", "t1", "content"],
+                        v={"type": "integer", "enum": [1]},
+                        board=STR,
+                        boot=STR,
+                        epoch=STR,
+                        seq=INT,
+                        digest=STR,
+                        t1=NUM,
+                        clock={**clock, "nullable": True},
+                        content={"type": "object"},
+                    )
+                ),
+                "responses": {
+                    "200": _json(
+                        _obj(
+                            ["status", "t2", "t3"],
+                            status={"type": "string", "enum": ["stored", "duplicate"]},
+                            t2=NUM,
+                            t3=NUM,
+                        )
+                    ),
+                    **_errors(400, 401, 403, 409, 413, 415, 429, 503),
+                },
+            }
+        },
+        "/v1/heartbeat": {
+            "post": {
+                "summary": "Board stats and a clock sample",
+                "security": BOARD_AUTH,
+                "tags": ["board"],
+                "requestBody": _body(
+                    _obj(
+                        ["boot"],
+                        board=STR,
+                        boot=STR,
+                        t1=NUM,
+                        wall=NUM,
+                        clock={**clock, "nullable": True},
+                        stats={"type": "object"},
+                    )
+                ),
+                "responses": {
+                    "200": _json(_obj(["t2", "t3", "config_etag"], t2=NUM, t3=NUM, config_etag=STR)),
+                    **_errors(400, 401, 403, 413, 503),
+                },
+            }
+        },
+        "/v1/status": {
+            "get": {
+                "summary": "Fleet and per-board health (what the health page shows)",
+                "security": PUBLIC,
+                "tags": ["health"],
+                "responses": {"200": _json(_ref("Status"))},
+            }
+        },
+        "/v1/openapi.json": {
+            "get": {
+                "summary": "This document",
+                "security": PUBLIC,
+                "tags": ["health"],
+                "responses": {"200": _json({"type": "object"})},
+            }
+        },
+        "/": {
+            "get": {
+                "summary": "Health page (HTML)",
+                "security": PUBLIC,
+                "tags": ["health"],
+                "responses": {"200": {"description": "HTML", "content": {"text/html": {"schema": STR}}}},
+            }
+        },
+        "/metrics": {
+            "get": {
+                "summary": "Prometheus text exposition",
+                "security": PUBLIC,
+                "tags": ["health"],
+                "responses": {
+                    "200": {"description": "text format 0.0.4", "content": {"text/plain": {"schema": STR}}}
+                },
+            }
+        },
         "/v1/admin/boards": {
-            "post": {"summary": "Register a board; returns its one-time enrollment code", "security": ADMIN_AUTH,
-                     "tags": ["admin"], "requestBody": _body(_obj(["name", "room"], name=STR, room=STR, floor=STR)),
-                     "responses": {"201": _json(_ref("BoardWithCode")), **_errors(400, 401, 409)}},
-            "get": {"summary": "All boards", "security": ADMIN_AUTH, "tags": ["admin"],
-                    "responses": {"200": _json(_obj(["boards"], boards={"type": "array", "items": _ref("Board")})),
-                                  **_errors(401)}}},
-        "/v1/admin/boards/{name}": {"get": {
-            "summary": "One board with counts, state, latest heartbeat and calibration history",
-            "security": ADMIN_AUTH, "tags": ["admin"], "parameters": [NAME_PARAM],
-            "responses": {"200": _json(_ref("Board")), **_errors(401, 404)}}},
-        "/v1/admin/boards/{name}/retire": {"post": {
-            "summary": "Retire a board", "security": ADMIN_AUTH, "tags": ["admin"], "parameters": [NAME_PARAM],
-            "responses": {"200": _json(_obj(name=STR, retired_at=NUM)), **_errors(401, 404)}}},
-        "/v1/admin/boards/{name}/reissue": {"post": {
-            "summary": "New enrollment code (re-flashed card); older unused codes stop working",
-            "security": ADMIN_AUTH, "tags": ["admin"], "parameters": [NAME_PARAM],
-            "responses": {"200": _json(_ref("BoardWithCode")), **_errors(401, 404, 409)}}},
-        "/v1/admin/boards/{name}/calibrate": {"post": {
-            "summary": "Set the board's RSSI offset from a reference tag at a measured distance",
-            "security": ADMIN_AUTH, "tags": ["admin"], "parameters": [NAME_PARAM],
-            "requestBody": _body(_obj(["tag", "distance_m"], tag=STR, distance_m=NUM, minutes=NUM,
-                                      power_1m_dbm=NUM, exponent=NUM)),
-            "responses": {"200": _json(_obj(board=STR, offset_db=NUM, spread_db=NUM, samples=INT,
-                                            reference_tag=STR, distance_m=NUM, previous_offset_db=NUM,
-                                            warnings={"type": "array", "items": STR})),
-                          **_errors(400, 401, 404, 409)}}},
+            "post": {
+                "summary": "Register a board; returns its one-time enrollment code",
+                "security": ADMIN_AUTH,
+                "tags": ["admin"],
+                "requestBody": _body(_obj(["name", "room"], name=STR, room=STR, floor=STR)),
+                "responses": {"201": _json(_ref("BoardWithCode")), **_errors(400, 401, 409)},
+            },
+            "get": {
+                "summary": "All boards",
+                "security": ADMIN_AUTH,
+                "tags": ["admin"],
+                "responses": {
+                    "200": _json(_obj(["boards"], boards={"type": "array", "items": _ref("Board")})),
+                    **_errors(401),
+                },
+            },
+        },
+        "/v1/admin/boards/{name}": {
+            "get": {
+                "summary": "One board with counts, state, latest heartbeat and calibration history",
+                "security": ADMIN_AUTH,
+                "tags": ["admin"],
+                "parameters": [NAME_PARAM],
+                "responses": {"200": _json(_ref("Board")), **_errors(401, 404)},
+            }
+        },
+        "/v1/admin/boards/{name}/retire": {
+            "post": {
+                "summary": "Retire a board",
+                "security": ADMIN_AUTH,
+                "tags": ["admin"],
+                "parameters": [NAME_PARAM],
+                "responses": {"200": _json(_obj(name=STR, retired_at=NUM)), **_errors(401, 404)},
+            }
+        },
+        "/v1/admin/boards/{name}/reissue": {
+            "post": {
+                "summary": "New enrollment code (re-flashed card); older unused codes stop working",
+                "security": ADMIN_AUTH,
+                "tags": ["admin"],
+                "parameters": [NAME_PARAM],
+                "responses": {"200": _json(_ref("BoardWithCode")), **_errors(401, 404, 409)},
+            }
+        },
+        "/v1/admin/boards/{name}/calibrate": {
+            "post": {
+                "summary": "Set the board's RSSI offset from a reference tag at a measured distance",
+                "security": ADMIN_AUTH,
+                "tags": ["admin"],
+                "parameters": [NAME_PARAM],
+                "requestBody": _body(
+                    _obj(
+                        ["tag", "distance_m"],
+                        tag=STR,
+                        distance_m=NUM,
+                        minutes=NUM,
+                        power_1m_dbm=NUM,
+                        exponent=NUM,
+                    )
+                ),
+                "responses": {
+                    "200": _json(
+                        _obj(
+                            board=STR,
+                            offset_db=NUM,
+                            spread_db=NUM,
+                            samples=INT,
+                            reference_tag=STR,
+                            distance_m=NUM,
+                            previous_offset_db=NUM,
+                            warnings={"type": "array", "items": STR},
+                        )
+                    ),
+                    **_errors(400, 401, 404, 409),
+                },
+            }
+        },
         "/v1/admin/tags": {
-            "post": {"summary": "Register tags (all valid or nothing stored)", "security": ADMIN_AUTH, "tags": ["admin"],
-                     "requestBody": _body(_obj(["ids"], ids={"type": "array", "items": STR})),
-                     "responses": {"200": _json(_obj(added=INT, given=INT, total=INT)), **_errors(400, 401)}},
-            "get": {"summary": "Registered tags", "security": ADMIN_AUTH, "tags": ["admin"],
-                    "parameters": [{"name": "retired", "in": "query", "schema": {"type": "string", "enum": ["0", "1"]}}],
-                    "responses": {"200": _json(_obj(tags={"type": "array", "items": STR})), **_errors(401)}}},
-        "/v1/admin/tags/retire": {"post": {
-            "summary": "Retire tags", "security": ADMIN_AUTH, "tags": ["admin"],
-            "requestBody": _body(_obj(["ids"], ids={"type": "array", "items": STR})),
-            "responses": {"200": _json(_obj(retired=INT, given=INT)), **_errors(400, 401)}}},
-        "/v1/admin/events": {"get": {
-            "summary": "Events after an id, oldest first", "security": ADMIN_AUTH, "tags": ["admin"],
-            "parameters": [{"name": "since", "in": "query", "schema": INT}, {"name": "limit", "in": "query", "schema": INT},
-                           {"name": "board", "in": "query", "schema": STR}],
-            "responses": {"200": _json(_obj(events={"type": "array", "items": _ref("Event")})), **_errors(400, 401)}}},
-        "/v1/admin/export": {"get": {
-            "summary": "Binned calibrated RSSI (tag × time bin × board) as CSV or .npz", "security": ADMIN_AUTH,
-            "tags": ["admin"],
-            "parameters": [{"name": n, "in": "query", "required": n in ("from", "to"), "schema": s}
-                           for n, s in (("from", NUM), ("to", NUM), ("bin", NUM),
-                                        ("format", {"type": "string", "enum": ["csv", "npz"]}),
-                                        ("board", STR), ("tag", STR))],
-            "responses": {"200": {"description": "the table", "content": {"text/csv": {"schema": STR},
-                                                                           "application/octet-stream": {"schema": STR}}},
-                          **_errors(400, 401)}}},
-        "/v1/admin/walktest": {"post": {
-            "summary": "Per-room report of a walk with a reference tag", "security": ADMIN_AUTH, "tags": ["admin"],
-            "requestBody": _body(_obj(["tag", "marks"], tag=STR, marks={"type": "array", "items": _obj(
-                ["room", "from", "to"], room=STR, **{"from": NUM, "to": NUM})})),
-            "responses": {"200": _json(_obj(tag=STR, rooms={"type": "array", "items": {"type": "object"}})),
-                          **_errors(400, 401)}}},
+            "post": {
+                "summary": "Register tags (all valid or nothing stored)",
+                "security": ADMIN_AUTH,
+                "tags": ["admin"],
+                "requestBody": _body(_obj(["ids"], ids={"type": "array", "items": STR})),
+                "responses": {"200": _json(_obj(added=INT, given=INT, total=INT)), **_errors(400, 401)},
+            },
+            "get": {
+                "summary": "Registered tags",
+                "security": ADMIN_AUTH,
+                "tags": ["admin"],
+                "parameters": [
+                    {"name": "retired", "in": "query", "schema": {"type": "string", "enum": ["0", "1"]}}
+                ],
+                "responses": {"200": _json(_obj(tags={"type": "array", "items": STR})), **_errors(401)},
+            },
+        },
+        "/v1/admin/tags/retire": {
+            "post": {
+                "summary": "Retire tags",
+                "security": ADMIN_AUTH,
+                "tags": ["admin"],
+                "requestBody": _body(_obj(["ids"], ids={"type": "array", "items": STR})),
+                "responses": {"200": _json(_obj(retired=INT, given=INT)), **_errors(400, 401)},
+            }
+        },
+        "/v1/admin/events": {
+            "get": {
+                "summary": "Events after an id, oldest first",
+                "security": ADMIN_AUTH,
+                "tags": ["admin"],
+                "parameters": [
+                    {"name": "since", "in": "query", "schema": INT},
+                    {"name": "limit", "in": "query", "schema": INT},
+                    {"name": "board", "in": "query", "schema": STR},
+                ],
+                "responses": {
+                    "200": _json(_obj(events={"type": "array", "items": _ref("Event")})),
+                    **_errors(400, 401),
+                },
+            }
+        },
+        "/v1/admin/export": {
+            "get": {
+                "summary": "Binned calibrated RSSI (tag × time bin × board) as CSV or .npz",
+                "security": ADMIN_AUTH,
+                "tags": ["admin"],
+                "parameters": [
+                    {"name": n, "in": "query", "required": n in ("from", "to"), "schema": s}
+                    for n, s in (
+                        ("from", NUM),
+                        ("to", NUM),
+                        ("bin", NUM),
+                        ("format", {"type": "string", "enum": ["csv", "npz"]}),
+                        ("board", STR),
+                        ("tag", STR),
+                    )
+                ],
+                "responses": {
+                    "200": {
+                        "description": "the table",
+                        "content": {"text/csv": {"schema": STR}, "application/octet-stream": {"schema": STR}},
+                    },
+                    **_errors(400, 401),
+                },
+            }
+        },
+        "/v1/admin/walktest": {
+            "post": {
+                "summary": "Per-room report of a walk with a reference tag",
+                "security": ADMIN_AUTH,
+                "tags": ["admin"],
+                "requestBody": _body(
+                    _obj(
+                        ["tag", "marks"],
+                        tag=STR,
+                        marks={
+                            "type": "array",
+                            "items": _obj(["room", "from", "to"], room=STR, **{"from": NUM, "to": NUM}),
+                        },
+                    )
+                ),
+                "responses": {
+                    "200": _json(_obj(tag=STR, rooms={"type": "array", "items": {"type": "object"}})),
+                    **_errors(400, 401),
+                },
+            }
+        },
     }
     return {
         "openapi": "3.0.3",
-        "info": {"title": "listenpost collector", "version": "1",
-                 "description": "Board API (wire protocol v1), admin API and health endpoints."},
+        "info": {
+            "title": "listenpost collector",
+            "version": "1",
+            "description": "Board API (wire protocol v1), admin API and health endpoints.",
+        },
         "paths": paths,
         "components": {
-            "securitySchemes": {"board": {"type": "http", "scheme": "bearer", "description": "board token"},
-                                "admin": {"type": "http", "scheme": "bearer", "description": "admin token"}},
-            "responses": {"Error": _json(_obj(["error"], error=_obj(["code", "message"], code=STR, field=STR,
-                                                                       message=STR)), "Error")},
+            "securitySchemes": {
+                "board": {"type": "http", "scheme": "bearer", "description": "board token"},
+                "admin": {"type": "http", "scheme": "bearer", "description": "admin token"},
+            },
+            "responses": {
+                "Error": _json(
+                    _obj(["error"], error=_obj(["code", "message"], code=STR, field=STR, message=STR)),
+                    "Error",
+                )
+            },
             "schemas": {
-                "BoardConfig": _obj(["board", "tags", "rules", "offset_db", "flush_seconds", "heartbeat_seconds"],
-                                    board=STR, tags={"type": "array", "items": STR},
-                                    rules={"type": "array", "items": _obj(["name"], name=STR, company_id=INT,
-                                                                           service_uuid16=INT, prefix=STR, offset=INT,
-                                                                           length=INT)},
-                                    offset_db=NUM, flush_seconds=NUM, heartbeat_seconds=NUM),
-                "Board": _obj(["name", "room"], name=STR, room=STR, floor={**STR, "nullable": True}, created_at=NUM,
-                              enrolled_at={**NUM, "nullable": True}, offset_db=NUM,
-                              retired_at={**NUM, "nullable": True}, fingerprint={"type": "object", "nullable": True}),
-                "BoardWithCode": {"allOf": [_ref("Board"), _obj(["code", "code_expires_at"], code=STR,
-                                                                 code_expires_at=NUM,
-                                                                 collector_url={**STR, "nullable": True})]},
-                "Event": _obj(["id", "at", "kind"], id=INT, at=NUM, board={**STR, "nullable": True}, kind=STR,
-                              detail={"type": "object"}),
-                "Status": _obj(["at", "fleet", "boards", "events"], at=NUM, fleet={"type": "object"},
-                               boards={"type": "array", "items": _obj(
-                                   ["name", "room", "state", "readings_total", "clock_skew_ppm", "clock_offset_ms"],
-                                   name=STR, room=STR, floor={**STR, "nullable": True}, state=STR,
-                                   readings_total=INT, clock_skew_ppm={**NUM, "nullable": True},
-                                   clock_offset_ms={**NUM, "nullable": True},
-                                   last_contact_age_s={**NUM, "nullable": True},
-                                   wall_error_ms={**NUM, "nullable": True})},
-                               events={"type": "array", "items": _ref("Event")}),
+                "BoardConfig": _obj(
+                    ["board", "tags", "rules", "offset_db", "flush_seconds", "heartbeat_seconds"],
+                    board=STR,
+                    tags={"type": "array", "items": STR},
+                    rules={
+                        "type": "array",
+                        "items": _obj(
+                            ["name"],
+                            name=STR,
+                            company_id=INT,
+                            service_uuid16=INT,
+                            prefix=STR,
+                            offset=INT,
+                            length=INT,
+                        ),
+                    },
+                    offset_db=NUM,
+                    flush_seconds=NUM,
+                    heartbeat_seconds=NUM,
+                ),
+                "Board": _obj(
+                    ["name", "room"],
+                    name=STR,
+                    room=STR,
+                    floor={**STR, "nullable": True},
+                    created_at=NUM,
+                    enrolled_at={**NUM, "nullable": True},
+                    offset_db=NUM,
+                    retired_at={**NUM, "nullable": True},
+                    fingerprint={"type": "object", "nullable": True},
+                ),
+                "BoardWithCode": {
+                    "allOf": [
+                        _ref("Board"),
+                        _obj(
+                            ["code", "code_expires_at"],
+                            code=STR,
+                            code_expires_at=NUM,
+                            collector_url={**STR, "nullable": True},
+                        ),
+                    ]
+                },
+                "Event": _obj(
+                    ["id", "at", "kind"],
+                    id=INT,
+                    at=NUM,
+                    board={**STR, "nullable": True},
+                    kind=STR,
+                    detail={"type": "object"},
+                ),
+                "Status": _obj(
+                    ["at", "fleet", "boards", "events"],
+                    at=NUM,
+                    fleet={"type": "object"},
+                    boards={
+                        "type": "array",
+                        "items": _obj(
+                            ["name", "room", "state", "readings_total", "clock_skew_ppm", "clock_offset_ms"],
+                            name=STR,
+                            room=STR,
+                            floor={**STR, "nullable": True},
+                            state=STR,
+                            readings_total=INT,
+                            clock_skew_ppm={**NUM, "nullable": True},
+                            clock_offset_ms={**NUM, "nullable": True},
+                            last_contact_age_s={**NUM, "nullable": True},
+                            wall_error_ms={**NUM, "nullable": True},
+                        ),
+                    },
+                    events={"type": "array", "items": _ref("Event")},
+                ),
             },
         },
         "security": ADMIN_AUTH,

@@ -73,9 +73,16 @@ class CalibrationResult:
     warnings: tuple[CalibrationWarning, ...] = ()
 
 
-def calibrate_offset(samples_dbm: Sequence[float] | np.ndarray, *, distance_m: float, p1_dbm: float,
-                     exponent: float = 2.0, min_samples: int = 30, max_spread_db: float = 6.0,
-                     max_offset_db: float = 15.0) -> CalibrationResult:
+def calibrate_offset(
+    samples_dbm: Sequence[float] | np.ndarray,
+    *,
+    distance_m: float,
+    p1_dbm: float,
+    exponent: float = 2.0,
+    min_samples: int = 30,
+    max_spread_db: float = 6.0,
+    max_offset_db: float = 15.0,
+) -> CalibrationResult:
     """
     Board offset from raw RSSI samples of a reference tag at a measured distance.
 
@@ -117,8 +124,14 @@ def calibrate_offset(samples_dbm: Sequence[float] | np.ndarray, *, distance_m: f
         warnings.append(CalibrationWarning.SPREAD_TOO_WIDE)
     if abs(offset) > max_offset_db:
         warnings.append(CalibrationWarning.OFFSET_LARGE)
-    return CalibrationResult(offset_db=offset, spread_db=spread, median_dbm=median, samples=int(x.size),
-                             distance_m=float(distance_m), warnings=tuple(warnings))
+    return CalibrationResult(
+        offset_db=offset,
+        spread_db=spread,
+        median_dbm=median,
+        samples=int(x.size),
+        distance_m=float(distance_m),
+        warnings=tuple(warnings),
+    )
 
 
 def _positive(name: str, value: float | np.ndarray) -> None:
@@ -128,6 +141,7 @@ def _positive(name: str, value: float | np.ndarray) -> None:
 
 
 # -- walk test -----------------------------------------------------------------------------------------------
+
 
 @dataclass(frozen=True, slots=True)
 class WalkMark:
@@ -187,9 +201,13 @@ class RoomCoverage:
     """Share of whole seconds of the mark with at least one reading (any board), 0..1."""
 
 
-def walk_report(marks: Iterable[WalkMark | tuple[str, float, float]],
-                rows: Iterable[WalkRow | tuple[str, str, float, float]], *,
-                overlap_db: float = 6.0, floors: Mapping[str, str] | None = None) -> list[RoomCoverage]:
+def walk_report(
+    marks: Iterable[WalkMark | tuple[str, float, float]],
+    rows: Iterable[WalkRow | tuple[str, str, float, float]],
+    *,
+    overlap_db: float = 6.0,
+    floors: Mapping[str, str] | None = None,
+) -> list[RoomCoverage]:
     """
     Per marked room: the strongest board, its margin, overlapping boards of other rooms, coverage.
 
@@ -212,7 +230,9 @@ def walk_report(marks: Iterable[WalkMark | tuple[str, float, float]],
     rw = [r if isinstance(r, WalkRow) else WalkRow(*r) for r in rows]
     for i, m in enumerate(mk):
         if not (math.isfinite(m.t_start) and math.isfinite(m.t_end)) or m.t_end <= m.t_start:
-            raise ValueError(f"marks[{i}] ({m.room!r}): t_end must be after t_start, got {m.t_start!r}..{m.t_end!r}")
+            raise ValueError(
+                f"marks[{i}] ({m.room!r}): t_end must be after t_start, got {m.t_start!r}..{m.t_end!r}"
+            )
     for i, r in enumerate(rw):
         if not (math.isfinite(r.t_collector) and math.isfinite(r.rssi_dbm)):
             raise ValueError(f"rows[{i}] ({r.board!r}): t_collector and rssi_dbm must be finite")
@@ -227,8 +247,15 @@ def walk_report(marks: Iterable[WalkMark | tuple[str, float, float]],
         heard = []
         for b in sorted(set(boards[sel])):
             vals = rssi[sel & (boards == b)]
-            heard.append(BoardHearing(board=b, room=room_of[b], floor=floors.get(room_of[b]),
-                                      median_dbm=float(np.median(vals)), readings=int(vals.size)))
+            heard.append(
+                BoardHearing(
+                    board=b,
+                    room=room_of[b],
+                    floor=floors.get(room_of[b]),
+                    median_dbm=float(np.median(vals)),
+                    readings=int(vals.size),
+                )
+            )
         heard.sort(key=lambda h: (-h.median_dbm, h.board))
         n_seconds = max(1, math.ceil(m.t_end - m.t_start))
         covered = np.unique(np.floor(t[sel] - m.t_start).astype(np.int64)).size
@@ -236,18 +263,41 @@ def walk_report(marks: Iterable[WalkMark | tuple[str, float, float]],
         margin = heard[0].median_dbm - heard[1].median_dbm if len(heard) >= 2 else None
         overlap: tuple[BoardHearing, ...] = ()
         if strongest is not None:
-            overlap = tuple(h for h in heard
-                            if h.room != m.room and h.median_dbm >= strongest.median_dbm - overlap_db)
+            overlap = tuple(
+                h for h in heard if h.room != m.room and h.median_dbm >= strongest.median_dbm - overlap_db
+            )
         mark_floor = floors.get(m.room)
-        other_floor = tuple(h for h in overlap
-                            if mark_floor is not None and h.floor is not None and h.floor != mark_floor)
-        out.append(RoomCoverage(room=m.room, t_start=m.t_start, t_end=m.t_end, strongest=strongest,
-                                margin_db=margin, strongest_in_room=strongest is not None and strongest.room == m.room,
-                                overlap=overlap, other_floor=other_floor, heard=tuple(heard),
-                                seconds_share=covered / n_seconds))
+        other_floor = tuple(
+            h for h in overlap if mark_floor is not None and h.floor is not None and h.floor != mark_floor
+        )
+        out.append(
+            RoomCoverage(
+                room=m.room,
+                t_start=m.t_start,
+                t_end=m.t_end,
+                strongest=strongest,
+                margin_db=margin,
+                strongest_in_room=strongest is not None and strongest.room == m.room,
+                overlap=overlap,
+                other_floor=other_floor,
+                heard=tuple(heard),
+                seconds_share=covered / n_seconds,
+            )
+        )
     return out
 
 
-__all__ = ["BoardHearing", "CalibrationResult", "CalibrationWarning", "RoomCoverage", "SPEED_OF_LIGHT_M_S",
-           "WalkMark", "WalkRow", "calibrate_offset", "distance_from_rssi", "fspl_db", "rssi_at_distance",
-           "walk_report"]
+__all__ = [
+    "BoardHearing",
+    "CalibrationResult",
+    "CalibrationWarning",
+    "RoomCoverage",
+    "SPEED_OF_LIGHT_M_S",
+    "WalkMark",
+    "WalkRow",
+    "calibrate_offset",
+    "distance_from_rssi",
+    "fspl_db",
+    "rssi_at_distance",
+    "walk_report",
+]

@@ -141,8 +141,9 @@ def wall_error_s(board_wall: float | np.ndarray, t_collector: float | np.ndarray
     return float(board_wall) - float(t_collector)
 
 
-def band_fit(t_upper: np.ndarray, upper: np.ndarray, t_lower: np.ndarray, lower: np.ndarray,
-             max_slope: float = 2e-3) -> tuple[float, float, float]:
+def band_fit(
+    t_upper: np.ndarray, upper: np.ndarray, t_lower: np.ndarray, lower: np.ndarray, max_slope: float = 2e-3
+) -> tuple[float, float, float]:
     """
     The widest-margin line between two point sets: below every ``upper`` point, above every ``lower`` one.
 
@@ -323,7 +324,7 @@ class _Segment:
         kept = self.windows.setdefault(idx, [])
         kept.append(s)
         kept.sort(key=lambda x: x.delay)
-        del kept[settings.keep_per_window:]
+        del kept[settings.keep_per_window :]
         self.dirty = True
 
     def kept(self, settings: ClockSettings) -> list[_Sample]:
@@ -411,8 +412,11 @@ class ClockModel:
         first = self._pending[0]
         old_fit = self._fit_segment(seg)
         assert old_fit is not None  # a segment always holds at least one sample
-        step = ClockStep(at_board_s=first.mid, at_collector_s=first.t2,
-                         size_s=float(first.offset - old_fit.offset_at(first.mid)))
+        step = ClockStep(
+            at_board_s=first.mid,
+            at_collector_s=first.t2,
+            size_s=float(first.offset - old_fit.offset_at(first.mid)),
+        )
         self._steps.append(step)
         new = _Segment(start_b=first.mid, theta_ref=first.offset)
         for p in self._pending:
@@ -475,8 +479,12 @@ class ClockModel:
         return abs(s.offset - predicted) <= allowance
 
     def _consistent_pair(self, a: _Sample, b: _Sample) -> bool:
-        allowance = (self.settings.step_tolerance_s + a.delay / 2 + b.delay / 2
-                     + self.settings.max_skew_ppm * 1e-6 * abs(b.mid - a.mid))
+        allowance = (
+            self.settings.step_tolerance_s
+            + a.delay / 2
+            + b.delay / 2
+            + self.settings.max_skew_ppm * 1e-6 * abs(b.mid - a.mid)
+        )
         return abs(b.offset - a.offset) <= allowance
 
     def _fit_segment(self, seg: _Segment) -> ClockFit | None:
@@ -490,14 +498,15 @@ class ClockModel:
         t4 = np.array([s.t4 for s in kept])
         mid = (t1 + t4) / 2
         # Relative ordinates: (T2 − ref) first keeps full precision.
-        fwd = np.array([(s.t2 - ref) - s.t1 for s in kept])    # θ(T1) + out
-        back = np.array([(s.t3 - ref) - s.t4 for s in kept])   # θ(T4) − back
+        fwd = np.array([(s.t2 - ref) - s.t1 for s in kept])  # θ(T1) + out
+        back = np.array([(s.t3 - ref) - s.t4 for s in kept])  # θ(T4) − back
         theta = np.array([s.offset - ref for s in kept])
         delay = np.array([s.delay for s in kept])
         span = float(mid.max() - mid.min())
         x_ref = float(mid.max())
-        skew_estimated = span >= self.settings.min_skew_span_s and len(np.unique(t1)) >= 2 \
-            and len(np.unique(t4)) >= 2
+        skew_estimated = (
+            span >= self.settings.min_skew_span_s and len(np.unique(t1)) >= 2 and len(np.unique(t4)) >= 2
+        )
         if skew_estimated:
             # Centre the abscissae so slopes and intercepts stay well conditioned after days of uptime.
             x0 = float(mid.mean())
@@ -518,7 +527,7 @@ class ClockModel:
             offset_s=ref + theta_at_ref,
             ref_board_s=x_ref,
             skew_ppm=_skew_from_slope(alpha),
-            residual_ms=float(np.sqrt(np.mean(resid ** 2)) * 1000.0),
+            residual_ms=float(np.sqrt(np.mean(resid**2)) * 1000.0),
             n_samples=len(kept),
             span_s=span,
             skew_estimated=bool(skew_estimated),
@@ -530,7 +539,9 @@ class ClockModel:
         return fit
 
 
-def clock_filter_pick(offsets: Sequence[float] | np.ndarray, delays: Sequence[float] | np.ndarray) -> tuple[float, float]:
+def clock_filter_pick(
+    offsets: Sequence[float] | np.ndarray, delays: Sequence[float] | np.ndarray
+) -> tuple[float, float]:
     """
     RFC 5905 §10 clock filter choice among recent samples: the ``(offset, delay)`` of minimum delay.
 
@@ -540,10 +551,21 @@ def clock_filter_pick(offsets: Sequence[float] | np.ndarray, delays: Sequence[fl
     o = np.asarray(offsets, dtype=np.float64)
     d = np.asarray(delays, dtype=np.float64)
     if o.shape != d.shape or o.size == 0:
-        raise ValueError(f"offsets and delays must be non-empty and of equal length, got {o.shape} and {d.shape}")
+        raise ValueError(
+            f"offsets and delays must be non-empty and of equal length, got {o.shape} and {d.shape}"
+        )
     i = int(np.argmin(d))
     return float(o[i]), float(d[i])
 
 
-__all__ = ["ClockFit", "ClockModel", "ClockSettings", "ClockStep", "FitMethod", "band_fit", "clock_filter_pick",
-           "lower_envelope", "wall_error_s"]
+__all__ = [
+    "ClockFit",
+    "ClockModel",
+    "ClockSettings",
+    "ClockStep",
+    "FitMethod",
+    "band_fit",
+    "clock_filter_pick",
+    "lower_envelope",
+    "wall_error_s",
+]

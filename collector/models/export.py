@@ -71,15 +71,29 @@ class ExportTable:
 
     def metadata(self) -> dict[str, Any]:
         """Descriptive fields written alongside the arrays."""
-        return {"format": EXPORT_FORMAT, "version": EXPORT_VERSION, "t_from": self.t_from, "t_to": self.t_to,
-                "bin_s": self.bin_s, "agg": self.agg.value, "rssi_unit": "dBm, calibrated",
-                "time": "collector Unix seconds, clock-corrected; bin_starts are bin starts",
-                "shape": "rssi[tag, bin, board]"}
+        return {
+            "format": EXPORT_FORMAT,
+            "version": EXPORT_VERSION,
+            "t_from": self.t_from,
+            "t_to": self.t_to,
+            "bin_s": self.bin_s,
+            "agg": self.agg.value,
+            "rssi_unit": "dBm, calibrated",
+            "time": "collector Unix seconds, clock-corrected; bin_starts are bin starts",
+            "shape": "rssi[tag, bin, board]",
+        }
 
 
-def bin_readings(rows: ReadingRows, t_from: float, t_to: float, bin_s: float,
-                 boards: Sequence[str] | None = None, tags: Sequence[str] | None = None,
-                 agg: Aggregate | str = Aggregate.MAX, max_cells: int = 50_000_000) -> ExportTable:
+def bin_readings(
+    rows: ReadingRows,
+    t_from: float,
+    t_to: float,
+    bin_s: float,
+    boards: Sequence[str] | None = None,
+    tags: Sequence[str] | None = None,
+    agg: Aggregate | str = Aggregate.MAX,
+    max_cells: int = 50_000_000,
+) -> ExportTable:
     """
     Aggregate readings into a tag × time-bin × board table.
 
@@ -124,8 +138,10 @@ def bin_readings(rows: ReadingRows, t_from: float, t_to: float, bin_s: float,
     n_bins = max(1, math.ceil((t_to - t_from) / bin_s))
     cells = len(tag_list) * n_bins * len(board_list)
     if cells > max_cells:
-        raise ValueError(f"max_cells: table of {len(tag_list)} tags x {n_bins} bins x {len(board_list)} boards "
-                         f"= {cells} cells exceeds {max_cells}; narrow the range or widen bin_s")
+        raise ValueError(
+            f"max_cells: table of {len(tag_list)} tags x {n_bins} bins x {len(board_list)} boards "
+            f"= {cells} cells exceeds {max_cells}; narrow the range or widen bin_s"
+        )
 
     ti, tag_ok = _index(tag_list, row_tag)
     bi, board_ok = _index(board_list, row_board)
@@ -152,9 +168,17 @@ def bin_readings(rows: ReadingRows, t_from: float, t_to: float, bin_s: float,
             out = np.bincount(flat, weights=values, minlength=size) / counts
     out[counts == 0] = np.nan
     bin_starts = t_from + np.arange(n_bins, dtype=np.float64) * bin_s
-    return ExportTable(rssi=out.reshape(shape), counts=counts.reshape(shape), tags=tuple(tag_list),
-                       boards=tuple(board_list), bin_starts=bin_starts, t_from=float(t_from), t_to=float(t_to),
-                       bin_s=float(bin_s), agg=agg)
+    return ExportTable(
+        rssi=out.reshape(shape),
+        counts=counts.reshape(shape),
+        tags=tuple(tag_list),
+        boards=tuple(board_list),
+        bin_starts=bin_starts,
+        t_from=float(t_from),
+        t_to=float(t_to),
+        bin_s=float(bin_s),
+        agg=agg,
+    )
 
 
 def _names(arg: str, given: Sequence[str] | None, present: np.ndarray) -> list[str]:
@@ -211,8 +235,16 @@ def write_csv(table: ExportTable, path: str | os.PathLike[str]) -> int:
         w.writerow(CSV_COLUMNS)
         for b, g, o in zip(bins.tolist(), tags_i.tolist(), boards_i.tolist(), strict=True):
             start = float(table.bin_starts[b])
-            w.writerow([_iso(start), repr(start), table.tags[g], table.boards[o],
-                        f"{table.rssi[g, b, o]:.3f}", int(table.counts[g, b, o])])
+            w.writerow(
+                [
+                    _iso(start),
+                    repr(start),
+                    table.tags[g],
+                    table.boards[o],
+                    f"{table.rssi[g, b, o]:.3f}",
+                    int(table.counts[g, b, o]),
+                ]
+            )
 
     _atomic_write(Path(path), write, binary=False)
     return int(bins.size)
@@ -235,5 +267,13 @@ def write_npz(table: ExportTable, path: str | os.PathLike[str]) -> None:
     _atomic_write(Path(path), write, binary=True)
 
 
-__all__ = ["Aggregate", "CSV_COLUMNS", "EXPORT_FORMAT", "EXPORT_VERSION", "ExportTable", "bin_readings",
-           "write_csv", "write_npz"]
+__all__ = [
+    "Aggregate",
+    "CSV_COLUMNS",
+    "EXPORT_FORMAT",
+    "EXPORT_VERSION",
+    "ExportTable",
+    "bin_readings",
+    "write_csv",
+    "write_npz",
+]

@@ -97,7 +97,9 @@ def phi(delta_s: float, mu_s: float, sigma_s: float) -> float:
         ValueError: ``sigma_s`` is not positive or an argument is not finite.
     """
     if not (math.isfinite(delta_s) and math.isfinite(mu_s) and math.isfinite(sigma_s)):
-        raise ValueError(f"phi: arguments must be finite, got delta={delta_s!r}, mu={mu_s!r}, sigma={sigma_s!r}")
+        raise ValueError(
+            f"phi: arguments must be finite, got delta={delta_s!r}, mu={mu_s!r}, sigma={sigma_s!r}"
+        )
     if sigma_s <= 0:
         raise ValueError(f"phi: sigma must be > 0, got {sigma_s!r}")
     return -log10_sf((delta_s - mu_s) / sigma_s)
@@ -154,8 +156,18 @@ class LivenessSettings:
     """...and rise or stay level between at least this share of consecutive heartbeats."""
 
     def __post_init__(self) -> None:
-        positive = ("heartbeat_s", "min_std_s", "late_phi", "silent_phi", "silent_after_s", "deaf_window_s",
-                    "skew_tolerance_ppm", "residual_tolerance_ms", "step_recent_s", "backlog_window_s")
+        positive = (
+            "heartbeat_s",
+            "min_std_s",
+            "late_phi",
+            "silent_phi",
+            "silent_after_s",
+            "deaf_window_s",
+            "skew_tolerance_ppm",
+            "residual_tolerance_ms",
+            "step_recent_s",
+            "backlog_window_s",
+        )
         for name in positive:
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value > 0):
@@ -164,19 +176,31 @@ class LivenessSettings:
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0):
                 raise ValueError(f"LivenessSettings.{name}: must be a number >= 0, got {value!r}")
-        for name in ("phi_window", "min_intervals", "deaf_min_others_readings", "drift_min_samples",
-                     "backlog_min_heartbeats", "backlog_min_growth"):
+        for name in (
+            "phi_window",
+            "min_intervals",
+            "deaf_min_others_readings",
+            "drift_min_samples",
+            "backlog_min_heartbeats",
+            "backlog_min_growth",
+        ):
             value = getattr(self, name)
             if not isinstance(value, int) or value < 1:
                 raise ValueError(f"LivenessSettings.{name}: must be an integer >= 1, got {value!r}")
         if not 0 < self.backlog_rising_share <= 1:
-            raise ValueError(f"LivenessSettings.backlog_rising_share: must be in (0, 1], got {self.backlog_rising_share!r}")
+            raise ValueError(
+                f"LivenessSettings.backlog_rising_share: must be in (0, 1], got {self.backlog_rising_share!r}"
+            )
         if self.late_phi >= self.silent_phi:
-            raise ValueError(f"LivenessSettings.late_phi: must be below silent_phi ({self.silent_phi!r}), "
-                             f"got {self.late_phi!r}")
+            raise ValueError(
+                f"LivenessSettings.late_phi: must be below silent_phi ({self.silent_phi!r}), "
+                f"got {self.late_phi!r}"
+            )
         if not self.min_late_s <= self.min_silent_s <= self.silent_after_s:
-            raise ValueError("LivenessSettings.min_silent_s: need min_late_s <= min_silent_s <= silent_after_s, got "
-                             f"{self.min_late_s!r}, {self.min_silent_s!r}, {self.silent_after_s!r}")
+            raise ValueError(
+                "LivenessSettings.min_silent_s: need min_late_s <= min_silent_s <= silent_after_s, got "
+                f"{self.min_late_s!r}, {self.min_silent_s!r}, {self.silent_after_s!r}"
+            )
 
 
 @dataclass(frozen=True, slots=True)
@@ -254,8 +278,8 @@ def contact_stats(contacts: Sequence[float] | np.ndarray, settings: LivenessSett
     arr = np.asarray(contacts, dtype=np.float64)
     if arr.size and np.any(np.diff(arr) < 0):
         arr = np.sort(arr)
-    kept = _coalesce(arr[-(settings.phi_window * 4 + 1):], settings.coalesce_s)
-    intervals = np.diff(kept)[-settings.phi_window:]
+    kept = _coalesce(arr[-(settings.phi_window * 4 + 1) :], settings.coalesce_s)
+    intervals = np.diff(kept)[-settings.phi_window :]
     if intervals.size < settings.min_intervals:
         return ContactStats(settings.heartbeat_s, settings.heartbeat_s / 4, 0)
     return ContactStats(float(intervals.mean()), float(intervals.std()), int(intervals.size))
@@ -333,8 +357,10 @@ def _deaf(hbs: list[HeartbeatSample], others: int, now: float, s: LivenessSettin
         return None  # the flat stretch does not yet cover the whole window
     if newest.adverts_seen - baseline.adverts_seen > 0:
         return None
-    return (f"radio counted no advertisements in {newest.at - baseline.at:.0f} s while other boards stored "
-            f"{others} tag readings")
+    return (
+        f"radio counted no advertisements in {newest.at - baseline.at:.0f} s while other boards stored "
+        f"{others} tag readings"
+    )
 
 
 def _drifting(fit: ClockFit | None, now: float, s: LivenessSettings) -> str | None:
@@ -376,8 +402,9 @@ class LivenessTracker:
                 await store.add_event(...)
     """
 
-    def __init__(self, settings: LivenessSettings | None = None,
-                 initial: Mapping[str, BoardState] | None = None) -> None:
+    def __init__(
+        self, settings: LivenessSettings | None = None, initial: Mapping[str, BoardState] | None = None
+    ) -> None:
         self.settings = settings or LivenessSettings()
         self._states: dict[str, BoardState] = dict(initial or {})
         self._verdicts: dict[str, Verdict] = {}
@@ -411,5 +438,18 @@ class LivenessTracker:
         return dict(self._states)
 
 
-__all__ = ["BoardInputs", "BoardState", "ContactStats", "HeartbeatSample", "LivenessSettings", "LivenessTracker",
-           "StateChange", "Verdict", "contact_stats", "evaluate", "log10_sf", "log_sf", "phi"]
+__all__ = [
+    "BoardInputs",
+    "BoardState",
+    "ContactStats",
+    "HeartbeatSample",
+    "LivenessSettings",
+    "LivenessTracker",
+    "StateChange",
+    "Verdict",
+    "contact_stats",
+    "evaluate",
+    "log10_sf",
+    "log_sf",
+    "phi",
+]

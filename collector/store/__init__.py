@@ -32,8 +32,10 @@ class SchemaTooNew(StoreError):
     """The database was migrated by a newer listenpost than this one; refusing to touch it."""
 
     def __init__(self, found: int, supported: int) -> None:
-        super().__init__(f"database schema version {found} is newer than this listenpost supports "
-                         f"({supported}); upgrade listenpost or point it at another database")
+        super().__init__(
+            f"database schema version {found} is newer than this listenpost supports "
+            f"({supported}); upgrade listenpost or point it at another database"
+        )
         self.found = found
         self.supported = supported
 
@@ -120,10 +122,10 @@ class IngestBatch:
     digest: str
     received_at: float
     offset_db: float
-    tags: np.ndarray            # str object array, one per reading
-    t_board_ms: np.ndarray      # int64
-    t_collector: np.ndarray     # float64, corrected collector time
-    rssi_dd: np.ndarray         # int16/int32, calibrated, tenths of dB
+    tags: np.ndarray  # str object array, one per reading
+    t_board_ms: np.ndarray  # int64
+    t_collector: np.ndarray  # float64, corrected collector time
+    rssi_dd: np.ndarray  # int16/int32, calibrated, tenths of dB
     telemetry: Sequence[dict[str, Any]] = ()
     gap: dict[str, Any] | None = None
     """For a gap record: first_seq, last_seq, readings, reason."""
@@ -206,11 +208,11 @@ class TagTelemetry:
 class ReadingRows:
     """Columnar readings for export: one entry per reading, equal lengths."""
 
-    board: np.ndarray        # str objects
-    tag: np.ndarray          # str objects
+    board: np.ndarray  # str objects
+    tag: np.ndarray  # str objects
     t_collector: np.ndarray  # float64
-    rssi_dd: np.ndarray      # int32
-    offset_dd: np.ndarray    # int32
+    rssi_dd: np.ndarray  # int32
+    offset_dd: np.ndarray  # int32
 
 
 class Store(Protocol):
@@ -223,24 +225,31 @@ class Store(Protocol):
     # boards and enrollment
     async def add_board(self, board: Board, enrollment: Enrollment) -> None:
         """Create a board with its first enrollment code; ``ValueError`` if the name exists."""
+
     async def get_board(self, name: str) -> Board | None: ...
     async def list_boards(self, include_retired: bool = True) -> list[Board]: ...
     async def retire_board(self, name: str, at: float) -> bool: ...
     async def new_enrollment(self, enrollment: Enrollment) -> None:
         """Issue a fresh code for an existing board (re-flash); older unused codes stop working."""
+
     async def get_enrollment(self, code_hash: str) -> Enrollment | None: ...
-    async def complete_enrollment(self, code_hash: str, token_hash: str, fingerprint: dict[str, Any], at: float) -> Board:
+    async def complete_enrollment(
+        self, code_hash: str, token_hash: str, fingerprint: dict[str, Any], at: float
+    ) -> Board:
         """Mark the code used and set the board's token and fingerprint, atomically.
 
         Raises `EnrollmentRefused` (``.reason`` unknown / used / expired) if the code cannot be used at ``at``."""
+
     async def board_for_token(self, token_hash: str) -> Board | None: ...
     async def set_offset(self, calibration: Calibration) -> None:
         """Store a calibration in the history and make its offset the board's current one."""
+
     async def calibrations(self, board: str) -> list[Calibration]: ...
 
     # tags
     async def add_tags(self, ids: Sequence[str], at: float) -> int:
         """Register tags (idempotent; a retired tag becomes active again); returns how many were new."""
+
     async def retire_tags(self, ids: Sequence[str], at: float) -> int: ...
     async def list_tags(self, include_retired: bool = False) -> list[str]: ...
 
@@ -250,9 +259,11 @@ class Store(Protocol):
 
         Raises `BadBatch` (nothing stored) for a batch the database refuses, ``ValueError`` for an unknown
         board, `StoreUnavailable` when the database cannot commit now."""
+
     async def board_counts(self) -> list[BoardCounts]: ...
     async def latest_telemetry(self, tags: Sequence[str] | None = None) -> dict[str, TagTelemetry]:
         """The newest telemetry row per tag (by board time within the newest batch)."""
+
     async def seq_holes(self, board: str | None = None) -> list[SeqHole]: ...
 
     # clock, heartbeats, events
@@ -261,15 +272,23 @@ class Store(Protocol):
     async def latest_boot(self, board: str) -> str | None: ...
     async def add_heartbeat(self, hb: Heartbeat) -> None:
         """Keep the latest heartbeat per board, plus a bounded history for trends."""
+
     async def heartbeats(self, board: str, since: float) -> list[Heartbeat]: ...
     async def latest_heartbeats(self) -> dict[str, Heartbeat]: ...
     async def add_event(self, event: Event) -> int: ...
     async def events(self, since_id: int = 0, limit: int = 1000, board: str | None = None) -> list[Event]: ...
 
     # export and retention
-    async def readings(self, t_from: float, t_to: float, boards: Sequence[str] | None = None,
-                       tags: Sequence[str] | None = None) -> ReadingRows: ...
-    async def delete_readings_before(self, t: float, chunk: int = 10_000, max_chunks: int | None = None) -> int:
+    async def readings(
+        self,
+        t_from: float,
+        t_to: float,
+        boards: Sequence[str] | None = None,
+        tags: Sequence[str] | None = None,
+    ) -> ReadingRows: ...
+    async def delete_readings_before(
+        self, t: float, chunk: int = 10_000, max_chunks: int | None = None
+    ) -> int:
         """Remove raw readings older than ``t`` in chunks of ``chunk`` rows; returns how many went.
 
         With ``max_chunks`` at most that many chunks go per table in this call, so a caller can spread a
@@ -286,13 +305,35 @@ async def open_store(url: str, **options: Any) -> Store:
     """Open (and migrate) the store named by ``url``."""
     if url.startswith(("postgresql://", "postgres://")):
         from listenpost.collector.store.postgres import PostgresStore
+
         return await PostgresStore.open(url, **options)
     from listenpost.collector.store.sqlite import SqliteStore
+
     path = url.removeprefix("sqlite:///") if url.startswith("sqlite:///") else url.removeprefix("sqlite://")
     return await SqliteStore.open(path, **options)
 
 
-__all__ = ["AsyncIterator", "BadBatch", "Board", "BoardCounts", "Calibration", "ClockSample", "Enrollment",
-           "EnrollmentReason", "EnrollmentRefused", "Event", "Heartbeat", "IngestBatch", "IngestResult",
-           "IngestStatus", "ReadingRows", "SchemaTooNew", "SeqHole", "Store", "StoreError", "StoreUnavailable",
-           "TagTelemetry", "open_store"]
+__all__ = [
+    "AsyncIterator",
+    "BadBatch",
+    "Board",
+    "BoardCounts",
+    "Calibration",
+    "ClockSample",
+    "Enrollment",
+    "EnrollmentReason",
+    "EnrollmentRefused",
+    "Event",
+    "Heartbeat",
+    "IngestBatch",
+    "IngestResult",
+    "IngestStatus",
+    "ReadingRows",
+    "SchemaTooNew",
+    "SeqHole",
+    "Store",
+    "StoreError",
+    "StoreUnavailable",
+    "TagTelemetry",
+    "open_store",
+]

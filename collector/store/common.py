@@ -22,14 +22,18 @@ BOARD_COLS = "name, room, floor, created_at, enrolled_at, fingerprint, offset_db
 
 # Readings are what the caller counts; telemetry and clock samples age out on the same cut.
 RETENTION_TABLES: tuple[tuple[str, str, bool], ...] = (
-    ("readings", "t_collector", True), ("telemetry", "at", False), ("clock_samples", "t2", False))
+    ("readings", "t_collector", True),
+    ("telemetry", "at", False),
+    ("clock_samples", "t2", False),
+)
 
 # The latest telemetry row per tag. ``{where}`` is a backend-specific tag filter (or empty).
 LATEST_TELEMETRY_SQL = (
     "SELECT tg.tag, b.name, t.at, t.t_board_ms, t.battery_mv, t.temperature_c, t.adv_count, t.uptime_s "
     "FROM (SELECT *, row_number() OVER (PARTITION BY tag_id ORDER BY at DESC, t_board_ms DESC, id DESC) AS k "
     "      FROM telemetry {where}) t "
-    "JOIN tags tg ON tg.id = t.tag_id JOIN boards b ON b.id = t.board_id WHERE t.k = 1")
+    "JOIN tags tg ON tg.id = t.tag_id JOIN boards b ON b.id = t.board_id WHERE t.k = 1"
+)
 
 
 def json_text(obj: dict[str, Any] | None) -> str | None:
@@ -40,7 +44,9 @@ def json_text(obj: dict[str, Any] | None) -> str | None:
 def board_from_row(row: Sequence[Any]) -> Board:
     """A `Board` from the `BOARD_COLS` of one row."""
     name, room, floor, created_at, enrolled_at, fp, offset_db, retired_at = row
-    return Board(name, room, floor, created_at, enrolled_at, json.loads(fp) if fp else None, offset_db, retired_at)
+    return Board(
+        name, room, floor, created_at, enrolled_at, json.loads(fp) if fp else None, offset_db, retired_at
+    )
 
 
 def calibration_from_row(row: Sequence[Any]) -> Calibration:
@@ -63,8 +69,9 @@ def constraint_field(constraint: str) -> str:
     return constraint.removesuffix("_range").removesuffix("_non_negative").removesuffix("_finite") or "batch"
 
 
-async def delete_in_chunks(delete_chunk: Callable[[str, str], Awaitable[int]], chunk: int,
-                           max_chunks: int | None) -> int:
+async def delete_in_chunks(
+    delete_chunk: Callable[[str, str], Awaitable[int]], chunk: int, max_chunks: int | None
+) -> int:
     """
     Run ``delete_chunk(table, time_column)`` over `RETENTION_TABLES` until a chunk comes back short.
 
@@ -93,7 +100,6 @@ async def delete_in_chunks(delete_chunk: Callable[[str, str], Awaitable[int]], c
             if n < chunk:
                 break
     return total
-
 
 
 def check_batch(batch: IngestBatch) -> int:

@@ -39,8 +39,11 @@ class Migration:
 
 
 SQLITE: tuple[Migration, ...] = (
-    Migration(1, "boards, enrollment, tags, calibration, events, heartbeats, clock samples", (
-        """CREATE TABLE boards (
+    Migration(
+        1,
+        "boards, enrollment, tags, calibration, events, heartbeats, clock samples",
+        (
+            """CREATE TABLE boards (
             id INTEGER PRIMARY KEY,
             name TEXT NOT NULL UNIQUE,
             room TEXT NOT NULL,
@@ -57,13 +60,13 @@ SQLITE: tuple[Migration, ...] = (
             batches_total INTEGER NOT NULL DEFAULT 0,
             gap_readings INTEGER NOT NULL DEFAULT 0,
             last_batch_at REAL)""",
-        """CREATE TABLE enrollments (
+            """CREATE TABLE enrollments (
             code_hash TEXT PRIMARY KEY,
             board_id INTEGER NOT NULL references boards(id),
             expires_at REAL NOT NULL,
             used_at REAL)""",
-        "CREATE INDEX enrollments_board ON enrollments(board_id)",
-        """CREATE TABLE calibrations (
+            "CREATE INDEX enrollments_board ON enrollments(board_id)",
+            """CREATE TABLE calibrations (
             id INTEGER PRIMARY KEY,
             board_id INTEGER NOT NULL references boards(id),
             at REAL NOT NULL,
@@ -73,37 +76,41 @@ SQLITE: tuple[Migration, ...] = (
             reference_tag TEXT NOT NULL,
             distance_m REAL NOT NULL,
             fingerprint TEXT)""",
-        "CREATE INDEX calibrations_board ON calibrations(board_id, at)",
-        """CREATE TABLE tags (
+            "CREATE INDEX calibrations_board ON calibrations(board_id, at)",
+            """CREATE TABLE tags (
             id INTEGER PRIMARY KEY,
             tag TEXT NOT NULL UNIQUE,
             added_at REAL,
             retired_at REAL)""",
-        # AUTOINCREMENT: event ids are a cursor (events(since_id=...)), so they must never be reused.
-        """CREATE TABLE events (
+            # AUTOINCREMENT: event ids are a cursor (events(since_id=...)), so they must never be reused.
+            """CREATE TABLE events (
             id INTEGER PRIMARY KEY AUTOINCREMENT,
             at REAL NOT NULL,
             board_id INTEGER references boards(id),
             kind TEXT NOT NULL,
             detail TEXT NOT NULL)""",
-        "CREATE INDEX events_board ON events(board_id, id)",
-        """CREATE TABLE heartbeats (
+            "CREATE INDEX events_board ON events(board_id, id)",
+            """CREATE TABLE heartbeats (
             id INTEGER PRIMARY KEY,
             board_id INTEGER NOT NULL references boards(id),
             at REAL NOT NULL,
             boot TEXT NOT NULL,
             stats TEXT NOT NULL)""",
-        "CREATE INDEX heartbeats_board_at ON heartbeats(board_id, at)",
-        """CREATE TABLE clock_samples (
+            "CREATE INDEX heartbeats_board_at ON heartbeats(board_id, at)",
+            """CREATE TABLE clock_samples (
             id INTEGER PRIMARY KEY,
             board_id INTEGER NOT NULL references boards(id),
             boot TEXT NOT NULL,
             t1 REAL NOT NULL, t2 REAL NOT NULL, t3 REAL NOT NULL, t4 REAL NOT NULL)""",
-        "CREATE INDEX clock_samples_board ON clock_samples(board_id, boot, t2)",
-        "CREATE INDEX clock_samples_t2 ON clock_samples(t2)",
-    )),
-    Migration(2, "batches, readings, telemetry", (
-        """CREATE TABLE batches (
+            "CREATE INDEX clock_samples_board ON clock_samples(board_id, boot, t2)",
+            "CREATE INDEX clock_samples_t2 ON clock_samples(t2)",
+        ),
+    ),
+    Migration(
+        2,
+        "batches, readings, telemetry",
+        (
+            """CREATE TABLE batches (
             id INTEGER PRIMARY KEY,
             board_id INTEGER NOT NULL references boards(id),
             epoch TEXT NOT NULL,
@@ -118,17 +125,17 @@ SQLITE: tuple[Migration, ...] = (
             gap_readings INTEGER,
             gap_reason TEXT,
             UNIQUE (board_id, epoch, seq))""",
-        # No foreign keys on the big table: SQLite would check each one per row; ids come from the
-        # same transaction that inserts the batch.
-        """CREATE TABLE readings (
+            # No foreign keys on the big table: SQLite would check each one per row; ids come from the
+            # same transaction that inserts the batch.
+            """CREATE TABLE readings (
             batch_id INTEGER NOT NULL,
             board_id INTEGER NOT NULL,
             tag_id INTEGER NOT NULL,
             t_board_ms INTEGER NOT NULL,
             t_collector REAL NOT NULL,
             rssi_dd INTEGER NOT NULL CONSTRAINT rssi_dd_range CHECK (rssi_dd BETWEEN -2000 AND 500))""",
-        "CREATE INDEX readings_t ON readings(t_collector)",
-        """CREATE TABLE telemetry (
+            "CREATE INDEX readings_t ON readings(t_collector)",
+            """CREATE TABLE telemetry (
             id INTEGER PRIMARY KEY,
             batch_id INTEGER NOT NULL references batches(id),
             board_id INTEGER NOT NULL,
@@ -136,16 +143,20 @@ SQLITE: tuple[Migration, ...] = (
             at REAL NOT NULL,
             t_board_ms INTEGER NOT NULL,
             battery_mv REAL, temperature_c REAL, adv_count REAL, uptime_s REAL)""",
-        "CREATE INDEX telemetry_tag ON telemetry(tag_id, at)",
-        "CREATE INDEX telemetry_at ON telemetry(at)",
-    )),
+            "CREATE INDEX telemetry_tag ON telemetry(tag_id, at)",
+            "CREATE INDEX telemetry_at ON telemetry(at)",
+        ),
+    ),
 )
 
 
 POSTGRES: tuple[Migration, ...] = (
-    Migration(1, "boards, enrollment, tags, calibration, events, heartbeats, clock samples", (
-        # smallint board ids: readings.board_id is smallint, which keeps a readings row at 56 bytes.
-        """CREATE TABLE boards (
+    Migration(
+        1,
+        "boards, enrollment, tags, calibration, events, heartbeats, clock samples",
+        (
+            # smallint board ids: readings.board_id is smallint, which keeps a readings row at 56 bytes.
+            """CREATE TABLE boards (
             id smallint GENERATED BY DEFAULT AS IDENTITY PRIMARY KEY,
             name text NOT NULL UNIQUE,
             room text NOT NULL,
@@ -162,13 +173,13 @@ POSTGRES: tuple[Migration, ...] = (
             batches_total bigint NOT NULL DEFAULT 0,
             gap_readings bigint NOT NULL DEFAULT 0,
             last_batch_at float8)""",
-        """CREATE TABLE enrollments (
+            """CREATE TABLE enrollments (
             code_hash text PRIMARY KEY,
             board_id smallint NOT NULL references boards(id),
             expires_at float8 NOT NULL,
             used_at float8)""",
-        "CREATE INDEX enrollments_board ON enrollments(board_id)",
-        """CREATE TABLE calibrations (
+            "CREATE INDEX enrollments_board ON enrollments(board_id)",
+            """CREATE TABLE calibrations (
             id bigint GENERATED BY DEFAULT AS IDENTITY PRIMARY KEY,
             board_id smallint NOT NULL references boards(id),
             at float8 NOT NULL,
@@ -178,36 +189,40 @@ POSTGRES: tuple[Migration, ...] = (
             reference_tag text NOT NULL,
             distance_m float8 NOT NULL,
             fingerprint text)""",
-        "CREATE INDEX calibrations_board ON calibrations(board_id, at)",
-        """CREATE TABLE tags (
+            "CREATE INDEX calibrations_board ON calibrations(board_id, at)",
+            """CREATE TABLE tags (
             id integer GENERATED BY DEFAULT AS IDENTITY PRIMARY KEY,
             tag text NOT NULL UNIQUE,
             added_at float8,
             retired_at float8)""",
-        """CREATE TABLE events (
+            """CREATE TABLE events (
             id bigint GENERATED BY DEFAULT AS IDENTITY PRIMARY KEY,
             at float8 NOT NULL,
             board_id smallint references boards(id),
             kind text NOT NULL,
             detail text NOT NULL)""",
-        "CREATE INDEX events_board ON events(board_id, id)",
-        """CREATE TABLE heartbeats (
+            "CREATE INDEX events_board ON events(board_id, id)",
+            """CREATE TABLE heartbeats (
             id bigint GENERATED BY DEFAULT AS IDENTITY PRIMARY KEY,
             board_id smallint NOT NULL references boards(id),
             at float8 NOT NULL,
             boot text NOT NULL,
             stats text NOT NULL)""",
-        "CREATE INDEX heartbeats_board_at ON heartbeats(board_id, at)",
-        """CREATE TABLE clock_samples (
+            "CREATE INDEX heartbeats_board_at ON heartbeats(board_id, at)",
+            """CREATE TABLE clock_samples (
             id bigint GENERATED BY DEFAULT AS IDENTITY PRIMARY KEY,
             board_id smallint NOT NULL references boards(id),
             boot text NOT NULL,
             t1 float8 NOT NULL, t2 float8 NOT NULL, t3 float8 NOT NULL, t4 float8 NOT NULL)""",
-        "CREATE INDEX clock_samples_board ON clock_samples(board_id, boot, t2)",
-        "CREATE INDEX clock_samples_t2 ON clock_samples(t2)",
-    )),
-    Migration(2, "batches, readings, telemetry", (
-        """CREATE TABLE batches (
+            "CREATE INDEX clock_samples_board ON clock_samples(board_id, boot, t2)",
+            "CREATE INDEX clock_samples_t2 ON clock_samples(t2)",
+        ),
+    ),
+    Migration(
+        2,
+        "batches, readings, telemetry",
+        (
+            """CREATE TABLE batches (
             id bigint GENERATED BY DEFAULT AS IDENTITY PRIMARY KEY,
             board_id smallint NOT NULL references boards(id),
             epoch text NOT NULL,
@@ -222,9 +237,9 @@ POSTGRES: tuple[Migration, ...] = (
             gap_readings bigint,
             gap_reason text,
             UNIQUE (board_id, epoch, seq))""",
-        # Column order follows alignment (8-byte, then 4, then 2) so a row has no padding.
-        # float8 compares NaN greater than every number, so the upper bound also keeps NaN out.
-        """CREATE TABLE readings (
+            # Column order follows alignment (8-byte, then 4, then 2) so a row has no padding.
+            # float8 compares NaN greater than every number, so the upper bound also keeps NaN out.
+            """CREATE TABLE readings (
             t_collector float8 NOT NULL
                 CONSTRAINT t_collector_finite CHECK (t_collector > '-Infinity' AND t_collector < 'Infinity'),
             t_board_ms bigint NOT NULL,
@@ -232,10 +247,10 @@ POSTGRES: tuple[Migration, ...] = (
             tag_id integer NOT NULL,
             board_id smallint NOT NULL,
             rssi_dd smallint NOT NULL CONSTRAINT rssi_dd_range CHECK (rssi_dd BETWEEN -2000 AND 500))""",
-        # BRIN: readings arrive roughly in collector-time order, so a block-range index answers time
-        # ranges and retention at a tiny fraction of a b-tree's size and insert cost.
-        "CREATE INDEX readings_t ON readings USING brin (t_collector) WITH (pages_per_range = 32)",
-        """CREATE TABLE telemetry (
+            # BRIN: readings arrive roughly in collector-time order, so a block-range index answers time
+            # ranges and retention at a tiny fraction of a b-tree's size and insert cost.
+            "CREATE INDEX readings_t ON readings USING brin (t_collector) WITH (pages_per_range = 32)",
+            """CREATE TABLE telemetry (
             id bigint GENERATED BY DEFAULT AS IDENTITY PRIMARY KEY,
             batch_id bigint NOT NULL references batches(id),
             board_id smallint NOT NULL,
@@ -243,9 +258,10 @@ POSTGRES: tuple[Migration, ...] = (
             at float8 NOT NULL,
             t_board_ms bigint NOT NULL,
             battery_mv float8, temperature_c float8, adv_count float8, uptime_s float8)""",
-        "CREATE INDEX telemetry_tag ON telemetry(tag_id, at)",
-        "CREATE INDEX telemetry_at ON telemetry(at)",
-    )),
+            "CREATE INDEX telemetry_tag ON telemetry(tag_id, at)",
+            "CREATE INDEX telemetry_at ON telemetry(at)",
+        ),
+    ),
 )
 
 _VERSION_TABLE = "CREATE TABLE IF NOT EXISTS schema_version (version integer PRIMARY KEY, name text NOT NULL, applied_at text NOT NULL)"
@@ -262,8 +278,9 @@ def _check_order(migrations: tuple[Migration, ...]) -> None:
         raise ValueError(f"migrations must be numbered 1..n in order, got {versions}")
 
 
-def migrate_sqlite(con: sqlite3.Connection, migrations: tuple[Migration, ...] = SQLITE,
-                   upto: int | None = None) -> int:
+def migrate_sqlite(
+    con: sqlite3.Connection, migrations: tuple[Migration, ...] = SQLITE, upto: int | None = None
+) -> int:
     """
     Bring a SQLite database (connection in autocommit mode) up to date.
 
@@ -302,8 +319,10 @@ def migrate_sqlite(con: sqlite3.Connection, migrations: tuple[Migration, ...] = 
                 continue
             for stmt in m.statements:
                 con.execute(stmt)
-            con.execute("INSERT INTO schema_version (version, name, applied_at) VALUES (?, ?, datetime('now'))",
-                        (m.version, m.name))
+            con.execute(
+                "INSERT INTO schema_version (version, name, applied_at) VALUES (?, ?, datetime('now'))",
+                (m.version, m.name),
+            )
             con.execute("COMMIT")
         except BaseException:
             con.execute("ROLLBACK")
@@ -316,7 +335,9 @@ def migrate_sqlite(con: sqlite3.Connection, migrations: tuple[Migration, ...] = 
 _MIGRATION_LOCK_KEY = 0x6C70_6D69_6772  # "lpmigr"
 
 
-async def migrate_postgres(con: Any, migrations: tuple[Migration, ...] = POSTGRES, upto: int | None = None) -> int:
+async def migrate_postgres(
+    con: Any, migrations: tuple[Migration, ...] = POSTGRES, upto: int | None = None
+) -> int:
     """
     Bring a PostgreSQL schema (the connection's ``search_path``) up to date; see `migrate_sqlite`.
 
@@ -341,7 +362,10 @@ async def migrate_postgres(con: Any, migrations: tuple[Migration, ...] = POSTGRE
                 continue
             for stmt in m.statements:
                 await con.execute(stmt)
-            await con.execute("INSERT INTO schema_version (version, name, applied_at) VALUES ($1, $2, now()::text)",
-                              m.version, m.name)
+            await con.execute(
+                "INSERT INTO schema_version (version, name, applied_at) VALUES ($1, $2, now()::text)",
+                m.version,
+                m.name,
+            )
         current = m.version
     return current

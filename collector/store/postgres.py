@@ -69,17 +69,24 @@ log = structlog.get_logger("listenpost.collector.store.postgres")
 
 # Errors that say "the database cannot do it now" (retry later), not "this request is wrong".
 _UNAVAILABLE: tuple[type[BaseException], ...] = (
-    OSError, TimeoutError, asyncpg.InterfaceError, asyncpg.PostgresConnectionError,
-    asyncpg.exceptions.OperatorInterventionError,      # admin shutdown, crash shutdown, cannot connect now
-    asyncpg.exceptions.InsufficientResourcesError,     # disk full, too many connections
-    asyncpg.exceptions.LockNotAvailableError,          # lock_timeout
-    asyncpg.exceptions.TransactionRollbackError,       # deadlock, serialization failure
-    asyncpg.exceptions.ReadOnlySQLTransactionError,    # talking to a standby after a failover
+    OSError,
+    TimeoutError,
+    asyncpg.InterfaceError,
+    asyncpg.PostgresConnectionError,
+    asyncpg.exceptions.OperatorInterventionError,  # admin shutdown, crash shutdown, cannot connect now
+    asyncpg.exceptions.InsufficientResourcesError,  # disk full, too many connections
+    asyncpg.exceptions.LockNotAvailableError,  # lock_timeout
+    asyncpg.exceptions.TransactionRollbackError,  # deadlock, serialization failure
+    asyncpg.exceptions.ReadOnlySQLTransactionError,  # talking to a standby after a failover
 )
 # ...and of those, the ones after which pooled connections are probably dead.
 _CONNECTION_LOST: tuple[type[BaseException], ...] = (
-    OSError, asyncpg.InterfaceError, asyncpg.PostgresConnectionError, asyncpg.exceptions.AdminShutdownError,
-    asyncpg.exceptions.CrashShutdownError, asyncpg.exceptions.CannotConnectNowError,
+    OSError,
+    asyncpg.InterfaceError,
+    asyncpg.PostgresConnectionError,
+    asyncpg.exceptions.AdminShutdownError,
+    asyncpg.exceptions.CrashShutdownError,
+    asyncpg.exceptions.CannotConnectNowError,
 )
 
 _SCHEMA_RE = re.compile(r"[a-z_][a-z0-9_]{0,62}")
@@ -88,10 +95,21 @@ _SCHEMA_RE = re.compile(r"[a-z_][a-z0-9_]{0,62}")
 # int32 header-extension length; per tuple an int16 field count, then per field an int32 length and the
 # value, all big-endian; an int16 -1 trailer. Our export query yields five NOT NULL fixed-width fields.
 _COPY_SIGNATURE = b"PGCOPY\n\xff\r\n\x00"
-_EXPORT_ROW = np.dtype([("nf", ">i2"),
-                        ("l0", ">i4"), ("board_id", ">i4"), ("l1", ">i4"), ("tag_id", ">i4"),
-                        ("l2", ">i4"), ("t_collector", ">f8"), ("l3", ">i4"), ("rssi_dd", ">i4"),
-                        ("l4", ">i4"), ("offset_dd", ">i4")])
+_EXPORT_ROW = np.dtype(
+    [
+        ("nf", ">i2"),
+        ("l0", ">i4"),
+        ("board_id", ">i4"),
+        ("l1", ">i4"),
+        ("tag_id", ">i4"),
+        ("l2", ">i4"),
+        ("t_collector", ">f8"),
+        ("l3", ">i4"),
+        ("rssi_dd", ">i4"),
+        ("l4", ">i4"),
+        ("offset_dd", ">i4"),
+    ]
+)
 _EXPORT_LENGTHS = {"l0": 4, "l1": 4, "l2": 8, "l3": 4, "l4": 4}
 
 
@@ -111,9 +129,13 @@ def parse_copy_binary(buf: bytes | bytearray | memoryview) -> np.ndarray:
         raise ValueError("binary COPY stream has no trailer")
     body = mv[start:-2]
     if len(body) % _EXPORT_ROW.itemsize:
-        raise ValueError(f"binary COPY body of {len(body)} bytes is not whole {_EXPORT_ROW.itemsize}-byte rows")
+        raise ValueError(
+            f"binary COPY body of {len(body)} bytes is not whole {_EXPORT_ROW.itemsize}-byte rows"
+        )
     rows = np.frombuffer(body, dtype=_EXPORT_ROW)
-    if len(rows) and (np.any(rows["nf"] != 5) or any(np.any(rows[k] != v) for k, v in _EXPORT_LENGTHS.items())):
+    if len(rows) and (
+        np.any(rows["nf"] != 5) or any(np.any(rows[k] != v) for k, v in _EXPORT_LENGTHS.items())
+    ):
         raise ValueError("binary COPY rows do not have the expected five fixed-width fields")
     return rows
 
@@ -131,8 +153,14 @@ class PostgresStore:
         schema: the schema holding the tables (``None``: the server's default ``search_path``).
     """
 
-    def __init__(self, url: str, schema: str | None, heartbeat_history: int, acquire_timeout_s: float,
-                 command_timeout_s: float) -> None:
+    def __init__(
+        self,
+        url: str,
+        schema: str | None,
+        heartbeat_history: int,
+        acquire_timeout_s: float,
+        command_timeout_s: float,
+    ) -> None:
         self.url = url
         self.schema = schema
         self._heartbeat_history = heartbeat_history
@@ -144,10 +172,19 @@ class PostgresStore:
         self._tag_ids: dict[str, int] = {}
 
     @classmethod
-    async def open(cls, url: str, *, schema: str | None = None, min_size: int = 1, max_size: int = 10,
-                   connect_timeout_s: float = 5.0, command_timeout_s: float = 30.0,
-                   acquire_timeout_s: float = 10.0, lock_timeout_s: float = 5.0,
-                   heartbeat_history: int = 2880) -> PostgresStore:
+    async def open(
+        cls,
+        url: str,
+        *,
+        schema: str | None = None,
+        min_size: int = 1,
+        max_size: int = 10,
+        connect_timeout_s: float = 5.0,
+        command_timeout_s: float = 30.0,
+        acquire_timeout_s: float = 10.0,
+        lock_timeout_s: float = 5.0,
+        heartbeat_history: int = 2880,
+    ) -> PostgresStore:
         """
         Connect a pool, create ``schema`` if asked for one, and migrate.
 
@@ -170,8 +207,11 @@ class PostgresStore:
         if not 1 <= min_size <= max_size or heartbeat_history < 1:
             raise ValueError("need 1 <= min_size <= max_size and heartbeat_history >= 1")
         store = cls(url, schema, heartbeat_history, acquire_timeout_s, command_timeout_s)
-        settings = {"synchronous_commit": "on", "lock_timeout": str(round(lock_timeout_s * 1000)),
-                    "application_name": "listenpost-collector"}
+        settings = {
+            "synchronous_commit": "on",
+            "lock_timeout": str(round(lock_timeout_s * 1000)),
+            "application_name": "listenpost-collector",
+        }
         if schema is not None:
             settings["search_path"] = schema
         try:
@@ -181,9 +221,14 @@ class PostgresStore:
                     await con.execute(f'CREATE SCHEMA IF NOT EXISTS "{schema}"', timeout=command_timeout_s)
                 finally:
                     await con.close(timeout=connect_timeout_s)
-            store._pool = await asyncpg.create_pool(url, min_size=min_size, max_size=max_size,
-                                                    timeout=connect_timeout_s, command_timeout=command_timeout_s,
-                                                    server_settings=settings)
+            store._pool = await asyncpg.create_pool(
+                url,
+                min_size=min_size,
+                max_size=max_size,
+                timeout=connect_timeout_s,
+                command_timeout=command_timeout_s,
+                server_settings=settings,
+            )
         except _UNAVAILABLE as e:
             raise StoreUnavailable(f"PostgreSQL unreachable: {type(e).__name__}: {e}") from e
         try:
@@ -244,12 +289,24 @@ class PostgresStore:
             try:
                 bid = await con.fetchval(
                     f"INSERT INTO boards ({BOARD_COLS}) VALUES ($1, $2, $3, $4, $5, $6, $7, $8) RETURNING id",
-                    board.name, board.room, board.floor, board.created_at, board.enrolled_at,
-                    json_text(board.fingerprint), board.offset_db, board.retired_at)
+                    board.name,
+                    board.room,
+                    board.floor,
+                    board.created_at,
+                    board.enrolled_at,
+                    json_text(board.fingerprint),
+                    board.offset_db,
+                    board.retired_at,
+                )
             except asyncpg.UniqueViolationError as e:
                 raise ValueError(f"board {board.name!r} already exists") from e
-            await con.execute("INSERT INTO enrollments (code_hash, board_id, expires_at, used_at) VALUES ($1, $2, $3, $4)",
-                              enrollment.code_hash, bid, enrollment.expires_at, enrollment.used_at)
+            await con.execute(
+                "INSERT INTO enrollments (code_hash, board_id, expires_at, used_at) VALUES ($1, $2, $3, $4)",
+                enrollment.code_hash,
+                bid,
+                enrollment.expires_at,
+                enrollment.used_at,
+            )
 
     async def get_board(self, name: str) -> Board | None:
         rows = await self._fetch(f"SELECT {BOARD_COLS} FROM boards WHERE name = $1", name)
@@ -257,30 +314,46 @@ class PostgresStore:
 
     async def list_boards(self, include_retired: bool = True) -> list[Board]:
         where = "" if include_retired else "WHERE retired_at IS NULL"
-        return [board_from_row(r) for r in await self._fetch(f"SELECT {BOARD_COLS} FROM boards {where} ORDER BY name")]
+        return [
+            board_from_row(r)
+            for r in await self._fetch(f"SELECT {BOARD_COLS} FROM boards {where} ORDER BY name")
+        ]
 
     async def retire_board(self, name: str, at: float) -> bool:
         async with self._acquire() as con:
-            st = await con.execute("UPDATE boards SET retired_at = $1 WHERE name = $2 AND retired_at IS NULL", at, name)
+            st = await con.execute(
+                "UPDATE boards SET retired_at = $1 WHERE name = $2 AND retired_at IS NULL", at, name
+            )
         return _count(st) == 1
 
     async def new_enrollment(self, enrollment: Enrollment) -> None:
         async with self._acquire() as con, con.transaction():
             bid = await self._board_id(con, enrollment.board)
             await con.execute("DELETE FROM enrollments WHERE board_id = $1 AND used_at IS NULL", bid)
-            await con.execute("INSERT INTO enrollments (code_hash, board_id, expires_at, used_at) VALUES ($1, $2, $3, $4)",
-                              enrollment.code_hash, bid, enrollment.expires_at, enrollment.used_at)
+            await con.execute(
+                "INSERT INTO enrollments (code_hash, board_id, expires_at, used_at) VALUES ($1, $2, $3, $4)",
+                enrollment.code_hash,
+                bid,
+                enrollment.expires_at,
+                enrollment.used_at,
+            )
 
     async def get_enrollment(self, code_hash: str) -> Enrollment | None:
-        rows = await self._fetch("SELECT b.name, e.code_hash, e.expires_at, e.used_at FROM enrollments e "
-                                 "JOIN boards b ON b.id = e.board_id WHERE e.code_hash = $1", code_hash)
+        rows = await self._fetch(
+            "SELECT b.name, e.code_hash, e.expires_at, e.used_at FROM enrollments e "
+            "JOIN boards b ON b.id = e.board_id WHERE e.code_hash = $1",
+            code_hash,
+        )
         return Enrollment(*rows[0]) if rows else None
 
-    async def complete_enrollment(self, code_hash: str, token_hash: str, fingerprint: dict[str, Any],
-                                  at: float) -> Board:
+    async def complete_enrollment(
+        self, code_hash: str, token_hash: str, fingerprint: dict[str, Any], at: float
+    ) -> Board:
         async with self._acquire() as con, con.transaction():
-            row = await con.fetchrow("SELECT board_id, expires_at, used_at FROM enrollments WHERE code_hash = $1 "
-                                     "FOR UPDATE", code_hash)
+            row = await con.fetchrow(
+                "SELECT board_id, expires_at, used_at FROM enrollments WHERE code_hash = $1 FOR UPDATE",
+                code_hash,
+            )
             if row is None:
                 raise EnrollmentRefused(EnrollmentReason.UNKNOWN)
             if row["used_at"] is not None:
@@ -288,9 +361,14 @@ class PostgresStore:
             if at > row["expires_at"]:
                 raise EnrollmentRefused(EnrollmentReason.EXPIRED)
             await con.execute("UPDATE enrollments SET used_at = $1 WHERE code_hash = $2", at, code_hash)
-            r = await con.fetchrow(f"UPDATE boards SET token_hash = $1, fingerprint = $2, enrolled_at = $3 "
-                                   f"WHERE id = $4 RETURNING {BOARD_COLS}", token_hash, json_text(fingerprint), at,
-                                   row["board_id"])
+            r = await con.fetchrow(
+                f"UPDATE boards SET token_hash = $1, fingerprint = $2, enrolled_at = $3 "
+                f"WHERE id = $4 RETURNING {BOARD_COLS}",
+                token_hash,
+                json_text(fingerprint),
+                at,
+                row["board_id"],
+            )
             return board_from_row(r)
 
     async def board_for_token(self, token_hash: str) -> Board | None:
@@ -301,16 +379,26 @@ class PostgresStore:
         c = calibration
         async with self._acquire() as con, con.transaction():
             bid = await self._board_id(con, c.board)
-            await con.execute("INSERT INTO calibrations (board_id, at, offset_db, spread_db, samples, reference_tag, "
-                              "distance_m, fingerprint) VALUES ($1, $2, $3, $4, $5, $6, $7, $8)",
-                              bid, c.at, c.offset_db, c.spread_db, c.samples, c.reference_tag, c.distance_m,
-                              json_text(c.fingerprint))
+            await con.execute(
+                "INSERT INTO calibrations (board_id, at, offset_db, spread_db, samples, reference_tag, "
+                "distance_m, fingerprint) VALUES ($1, $2, $3, $4, $5, $6, $7, $8)",
+                bid,
+                c.at,
+                c.offset_db,
+                c.spread_db,
+                c.samples,
+                c.reference_tag,
+                c.distance_m,
+                json_text(c.fingerprint),
+            )
             await con.execute("UPDATE boards SET offset_db = $1 WHERE id = $2", c.offset_db, bid)
 
     async def calibrations(self, board: str) -> list[Calibration]:
         rows = await self._fetch(
             "SELECT b.name, c.at, c.offset_db, c.spread_db, c.samples, c.reference_tag, c.distance_m, c.fingerprint "
-            "FROM calibrations c JOIN boards b ON b.id = c.board_id WHERE b.name = $1 ORDER BY c.at, c.id", board)
+            "FROM calibrations c JOIN boards b ON b.id = c.board_id WHERE b.name = $1 ORDER BY c.at, c.id",
+            board,
+        )
         return [calibration_from_row(r) for r in rows]
 
     # -- tags --------------------------------------------------------------------------------------------
@@ -318,17 +406,27 @@ class PostgresStore:
     async def add_tags(self, ids: Sequence[str], at: float) -> int:
         wanted = sorted(set(ids))
         async with self._acquire() as con, con.transaction():
-            active = await con.fetchval("SELECT count(*) FROM tags WHERE tag = ANY($1::text[]) AND "
-                                        "added_at IS NOT NULL AND retired_at IS NULL", wanted)
-            await con.execute("INSERT INTO tags (tag, added_at) SELECT unnest($1::text[]), $2 ON CONFLICT (tag) "
-                              "DO UPDATE SET added_at = coalesce(tags.added_at, excluded.added_at), retired_at = NULL",
-                              wanted, at)
+            active = await con.fetchval(
+                "SELECT count(*) FROM tags WHERE tag = ANY($1::text[]) AND "
+                "added_at IS NOT NULL AND retired_at IS NULL",
+                wanted,
+            )
+            await con.execute(
+                "INSERT INTO tags (tag, added_at) SELECT unnest($1::text[]), $2 ON CONFLICT (tag) "
+                "DO UPDATE SET added_at = coalesce(tags.added_at, excluded.added_at), retired_at = NULL",
+                wanted,
+                at,
+            )
         return len(wanted) - active
 
     async def retire_tags(self, ids: Sequence[str], at: float) -> int:
         async with self._acquire() as con:
-            st = await con.execute("UPDATE tags SET retired_at = $1 WHERE tag = ANY($2::text[]) AND "
-                                   "added_at IS NOT NULL AND retired_at IS NULL", at, sorted(set(ids)))
+            st = await con.execute(
+                "UPDATE tags SET retired_at = $1 WHERE tag = ANY($2::text[]) AND "
+                "added_at IS NOT NULL AND retired_at IS NULL",
+                at,
+                sorted(set(ids)),
+            )
         return _count(st)
 
     async def list_tags(self, include_retired: bool = False) -> list[str]:
@@ -343,9 +441,13 @@ class PostgresStore:
             # Its own short autocommit statement, outside the batch transaction: interned names are
             # harmless if the batch later fails, and no lock on a tags row is held across a COPY.
             # Sorted so two collectors interning overlapping sets take row locks in one order.
-            await con.execute("INSERT INTO tags (tag) SELECT unnest($1::text[]) ON CONFLICT (tag) DO NOTHING", missing)
-            self._tag_ids.update((r["tag"], r["id"]) for r in await con.fetch(
-                "SELECT tag, id FROM tags WHERE tag = ANY($1::text[])", missing))
+            await con.execute(
+                "INSERT INTO tags (tag) SELECT unnest($1::text[]) ON CONFLICT (tag) DO NOTHING", missing
+            )
+            self._tag_ids.update(
+                (r["tag"], r["id"])
+                for r in await con.fetch("SELECT tag, id FROM tags WHERE tag = ANY($1::text[])", missing)
+            )
         return self._tag_ids
 
     async def ingest(self, batch: IngestBatch) -> IngestResult:
@@ -361,43 +463,91 @@ class PostgresStore:
                         "INSERT INTO batches (board_id, epoch, seq, digest, boot, n, received_at, offset_dd, gap_first, "
                         "gap_last, gap_readings, gap_reason) VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12) "
                         "ON CONFLICT (board_id, epoch, seq) DO NOTHING RETURNING id",
-                        bid, b.epoch, b.seq, b.digest, b.boot, b.n, b.received_at, offset_dd, gap.get("first_seq"),
-                        gap.get("last_seq"), gap.get("readings"), gap.get("reason"))
+                        bid,
+                        b.epoch,
+                        b.seq,
+                        b.digest,
+                        b.boot,
+                        b.n,
+                        b.received_at,
+                        offset_dd,
+                        gap.get("first_seq"),
+                        gap.get("last_seq"),
+                        gap.get("readings"),
+                        gap.get("reason"),
+                    )
                     if batch_id is None:
-                        stored = await con.fetchval("SELECT digest FROM batches WHERE board_id = $1 AND epoch = $2 "
-                                                    "AND seq = $3", bid, b.epoch, b.seq)
+                        stored = await con.fetchval(
+                            "SELECT digest FROM batches WHERE board_id = $1 AND epoch = $2 AND seq = $3",
+                            bid,
+                            b.epoch,
+                            b.seq,
+                        )
                         status = IngestStatus.DUPLICATE if stored == b.digest else IngestStatus.CONFLICT
                         return IngestResult(status, stored)
                     if b.n:
                         await con.copy_records_to_table(
-                            "readings", schema_name=self.schema,
-                            columns=["t_collector", "t_board_ms", "batch_id", "tag_id", "board_id", "rssi_dd"],
-                            records=zip(np.asarray(b.t_collector, dtype=np.float64).tolist(),
-                                        np.asarray(b.t_board_ms, dtype=np.int64).tolist(),
-                                        repeat(batch_id), reading_tag_ids(b, tag_ids), repeat(bid),
-                                        np.asarray(b.rssi_dd, dtype=np.int64).tolist()))
+                            "readings",
+                            schema_name=self.schema,
+                            columns=[
+                                "t_collector",
+                                "t_board_ms",
+                                "batch_id",
+                                "tag_id",
+                                "board_id",
+                                "rssi_dd",
+                            ],
+                            records=zip(
+                                np.asarray(b.t_collector, dtype=np.float64).tolist(),
+                                np.asarray(b.t_board_ms, dtype=np.int64).tolist(),
+                                repeat(batch_id),
+                                reading_tag_ids(b, tag_ids),
+                                repeat(bid),
+                                np.asarray(b.rssi_dd, dtype=np.int64).tolist(),
+                            ),
+                        )
                     if b.telemetry:
                         await con.executemany(
                             "INSERT INTO telemetry (batch_id, board_id, tag_id, at, t_board_ms, battery_mv, "
                             "temperature_c, adv_count, uptime_s) VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9)",
-                            [(batch_id, bid, tag_ids[t["tag"]], b.received_at, t["t_ms"],
-                              *(None if t.get(k) is None else float(t[k]) for k in TELEMETRY_FIELDS))
-                             for t in b.telemetry])
+                            [
+                                (
+                                    batch_id,
+                                    bid,
+                                    tag_ids[t["tag"]],
+                                    b.received_at,
+                                    t["t_ms"],
+                                    *(None if t.get(k) is None else float(t[k]) for k in TELEMETRY_FIELDS),
+                                )
+                                for t in b.telemetry
+                            ],
+                        )
                     await con.execute(
                         "UPDATE boards SET readings_total = readings_total + $1, batches_total = batches_total + 1, "
                         "gap_readings = gap_readings + $2, last_batch_at = greatest(last_batch_at, $3), "
                         "last_boot = CASE WHEN last_boot_at IS NULL OR last_boot_at <= $3 THEN $4 ELSE last_boot END, "
                         "last_boot_at = greatest(last_boot_at, $3) WHERE id = $5",
-                        b.n, gap.get("readings", 0), b.received_at, b.boot, bid)
+                        b.n,
+                        gap.get("readings", 0),
+                        b.received_at,
+                        b.boot,
+                        bid,
+                    )
             except (asyncpg.IntegrityConstraintViolationError, asyncpg.DataError) as e:
-                field = constraint_field(getattr(e, "constraint_name", None) or getattr(e, "column_name", None) or "")
-                raise BadBatch(field, f"refused by the database ({type(e).__name__}: {e}) in batch "
-                                      f"{b.board}/{b.epoch}/{b.seq}") from e
+                field = constraint_field(
+                    getattr(e, "constraint_name", None) or getattr(e, "column_name", None) or ""
+                )
+                raise BadBatch(
+                    field,
+                    f"refused by the database ({type(e).__name__}: {e}) in batch {b.board}/{b.epoch}/{b.seq}",
+                ) from e
         return IngestResult(IngestStatus.STORED, b.digest)
 
     async def board_counts(self) -> list[BoardCounts]:
-        rows = await self._fetch("SELECT name, readings_total, batches_total, last_batch_at, gap_readings "
-                                 "FROM boards ORDER BY name")
+        rows = await self._fetch(
+            "SELECT name, readings_total, batches_total, last_batch_at, gap_readings "
+            "FROM boards ORDER BY name"
+        )
         return [BoardCounts(*r) for r in rows]
 
     async def latest_telemetry(self, tags: Sequence[str] | None = None) -> dict[str, TagTelemetry]:
@@ -412,8 +562,9 @@ class PostgresStore:
         if board is None:
             rows = await self._fetch(SEQ_HOLES_SQL.format(board="true"))
         else:
-            rows = await self._fetch(SEQ_HOLES_SQL.format(board="board_id = (SELECT id FROM boards WHERE name = $1)"),
-                                     board)
+            rows = await self._fetch(
+                SEQ_HOLES_SQL.format(board="board_id = (SELECT id FROM boards WHERE name = $1)"), board
+            )
         return [SeqHole(*r) for r in rows]
 
     # -- clock, heartbeats, events -----------------------------------------------------------------------
@@ -423,14 +574,25 @@ class PostgresStore:
         check_clock_sample(s)
         async with self._acquire() as con, con.transaction():
             bid = await self._board_id(con, s.board)
-            await con.execute("INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES ($1, $2, $3, $4, $5, $6)",
-                              bid, s.boot, s.t1, s.t2, s.t3, s.t4)
+            await con.execute(
+                "INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES ($1, $2, $3, $4, $5, $6)",
+                bid,
+                s.boot,
+                s.t1,
+                s.t2,
+                s.t3,
+                s.t4,
+            )
             await _note_boot(con, bid, s.boot, s.t2)
 
     async def clock_samples(self, board: str, boot: str, since: float | None = None) -> list[ClockSample]:
         rows = await self._fetch(
             "SELECT t1, t2, t3, t4 FROM clock_samples WHERE board_id = (SELECT id FROM boards WHERE name = $1) "
-            "AND boot = $2 AND t2 >= $3 ORDER BY t2, id", board, boot, -math.inf if since is None else since)
+            "AND boot = $2 AND t2 >= $3 ORDER BY t2, id",
+            board,
+            boot,
+            -math.inf if since is None else since,
+        )
         return [ClockSample(board, boot, *r) for r in rows]
 
     async def latest_boot(self, board: str) -> str | None:
@@ -440,42 +602,69 @@ class PostgresStore:
     async def add_heartbeat(self, hb: Heartbeat) -> None:
         async with self._acquire() as con, con.transaction():
             bid = await self._board_id(con, hb.board)
-            await con.execute("INSERT INTO heartbeats (board_id, at, boot, stats) VALUES ($1, $2, $3, $4)",
-                              bid, hb.at, hb.boot, json.dumps(hb.stats, sort_keys=True))
-            await con.execute("DELETE FROM heartbeats WHERE id IN (SELECT id FROM heartbeats WHERE board_id = $1 "
-                              "ORDER BY at DESC, id DESC OFFSET $2)", bid, self._heartbeat_history)
+            await con.execute(
+                "INSERT INTO heartbeats (board_id, at, boot, stats) VALUES ($1, $2, $3, $4)",
+                bid,
+                hb.at,
+                hb.boot,
+                json.dumps(hb.stats, sort_keys=True),
+            )
+            await con.execute(
+                "DELETE FROM heartbeats WHERE id IN (SELECT id FROM heartbeats WHERE board_id = $1 "
+                "ORDER BY at DESC, id DESC OFFSET $2)",
+                bid,
+                self._heartbeat_history,
+            )
             await _note_boot(con, bid, hb.boot, hb.at)
 
     async def heartbeats(self, board: str, since: float) -> list[Heartbeat]:
-        rows = await self._fetch("SELECT at, boot, stats FROM heartbeats WHERE board_id = "
-                                 "(SELECT id FROM boards WHERE name = $1) AND at >= $2 ORDER BY at, id", board, since)
+        rows = await self._fetch(
+            "SELECT at, boot, stats FROM heartbeats WHERE board_id = "
+            "(SELECT id FROM boards WHERE name = $1) AND at >= $2 ORDER BY at, id",
+            board,
+            since,
+        )
         return [Heartbeat(board, r["at"], r["boot"], json.loads(r["stats"])) for r in rows]
 
     async def latest_heartbeats(self) -> dict[str, Heartbeat]:
         rows = await self._fetch(
             "SELECT DISTINCT ON (h.board_id) b.name, h.at, h.boot, h.stats FROM heartbeats h "
-            "JOIN boards b ON b.id = h.board_id ORDER BY h.board_id, h.at DESC, h.id DESC")
+            "JOIN boards b ON b.id = h.board_id ORDER BY h.board_id, h.at DESC, h.id DESC"
+        )
         return {r["name"]: Heartbeat(r["name"], r["at"], r["boot"], json.loads(r["stats"])) for r in rows}
 
     async def add_event(self, event: Event) -> int:
         async with self._acquire() as con:
             bid = None if event.board is None else await self._board_id(con, event.board)
-            return await con.fetchval("INSERT INTO events (at, board_id, kind, detail) VALUES ($1, $2, $3, $4) "
-                                      "RETURNING id", event.at, bid, event.kind, json.dumps(event.detail, sort_keys=True))
+            return await con.fetchval(
+                "INSERT INTO events (at, board_id, kind, detail) VALUES ($1, $2, $3, $4) RETURNING id",
+                event.at,
+                bid,
+                event.kind,
+                json.dumps(event.detail, sort_keys=True),
+            )
 
     async def events(self, since_id: int = 0, limit: int = 1000, board: str | None = None) -> list[Event]:
         cond, args = "e.id > $1", [since_id, limit]
         if board is not None:
             cond += " AND e.board_id = (SELECT id FROM boards WHERE name = $3)"
             args.append(board)
-        rows = await self._fetch(f"SELECT e.at, b.name, e.kind, e.detail, e.id FROM events e LEFT JOIN boards b "
-                                 f"ON b.id = e.board_id WHERE {cond} ORDER BY e.id LIMIT $2", *args)
+        rows = await self._fetch(
+            f"SELECT e.at, b.name, e.kind, e.detail, e.id FROM events e LEFT JOIN boards b "
+            f"ON b.id = e.board_id WHERE {cond} ORDER BY e.id LIMIT $2",
+            *args,
+        )
         return [Event(r["at"], r["name"], r["kind"], json.loads(r["detail"]), r["id"]) for r in rows]
 
     # -- export and retention ----------------------------------------------------------------------------
 
-    async def readings(self, t_from: float, t_to: float, boards: Sequence[str] | None = None,
-                       tags: Sequence[str] | None = None) -> ReadingRows:
+    async def readings(
+        self,
+        t_from: float,
+        t_to: float,
+        boards: Sequence[str] | None = None,
+        tags: Sequence[str] | None = None,
+    ) -> ReadingRows:
         """Readings with ``t_from <= t_collector < t_to``, ordered by collector time (binary COPY, no row objects)."""
         cond, args = ["r.t_collector >= $1", "r.t_collector < $2"], [float(t_from), float(t_to)]
         if boards is not None:
@@ -484,9 +673,11 @@ class PostgresStore:
         if tags is not None:
             args.append(list(tags))
             cond.append(f"r.tag_id IN (SELECT id FROM tags WHERE tag = ANY(${len(args)}::text[]))")
-        sql = (f"SELECT r.board_id::int4, r.tag_id, r.t_collector, r.rssi_dd::int4, b.offset_dd::int4 "
-               f"FROM readings r JOIN batches b ON b.id = r.batch_id WHERE {' AND '.join(cond)} "
-               f"ORDER BY r.t_collector, r.board_id, r.tag_id")
+        sql = (
+            f"SELECT r.board_id::int4, r.tag_id, r.t_collector, r.rssi_dd::int4, b.offset_dd::int4 "
+            f"FROM readings r JOIN batches b ON b.id = r.batch_id WHERE {' AND '.join(cond)} "
+            f"ORDER BY r.t_collector, r.board_id, r.tag_id"
+        )
         buf = bytearray()
 
         async def sink(chunk: bytes) -> None:
@@ -497,26 +688,45 @@ class PostgresStore:
             arr = parse_copy_binary(buf)
             board_ids, board_inv = np.unique(arr["board_id"], return_inverse=True)
             tag_ids, tag_inv = np.unique(arr["tag_id"], return_inverse=True)
-            board_names = dict(await con.fetch("SELECT id::int4, name FROM boards WHERE id = ANY($1::int4[])",
-                                               board_ids.tolist()))
-            tag_names = dict(await con.fetch("SELECT id, tag FROM tags WHERE id = ANY($1::int4[])", tag_ids.tolist()))
+            board_names = dict(
+                await con.fetch(
+                    "SELECT id::int4, name FROM boards WHERE id = ANY($1::int4[])", board_ids.tolist()
+                )
+            )
+            tag_names = dict(
+                await con.fetch("SELECT id, tag FROM tags WHERE id = ANY($1::int4[])", tag_ids.tolist())
+            )
         return ReadingRows(
             board=np.array([board_names[i] for i in board_ids.tolist()], dtype=object)[board_inv],
             tag=np.array([tag_names[i] for i in tag_ids.tolist()], dtype=object)[tag_inv],
             t_collector=arr["t_collector"].astype(np.float64),
             rssi_dd=arr["rssi_dd"].astype(np.int32),
-            offset_dd=arr["offset_dd"].astype(np.int32))
+            offset_dd=arr["offset_dd"].astype(np.int32),
+        )
 
-    async def delete_readings_before(self, t: float, chunk: int = 10_000, max_chunks: int | None = None) -> int:
+    async def delete_readings_before(
+        self, t: float, chunk: int = 10_000, max_chunks: int | None = None
+    ) -> int:
         async def delete_chunk(table: str, col: str) -> int:
             # One short statement per chunk (autocommit): no giant transaction, no long row locks.
             async with self._acquire() as con:
-                st = await con.execute(f"DELETE FROM {table} WHERE ctid = ANY(ARRAY(SELECT ctid FROM {table} "
-                                       f"WHERE {col} < $1 LIMIT $2))", t, chunk)
+                st = await con.execute(
+                    f"DELETE FROM {table} WHERE ctid = ANY(ARRAY(SELECT ctid FROM {table} "
+                    f"WHERE {col} < $1 LIMIT $2))",
+                    t,
+                    chunk,
+                )
             return _count(st)
 
         total = await delete_in_chunks(delete_chunk, chunk, max_chunks)
-        log.info("readings_deleted", backend="postgres", before=t, readings=total, chunk=chunk, max_chunks=max_chunks)
+        log.info(
+            "readings_deleted",
+            backend="postgres",
+            before=t,
+            readings=total,
+            chunk=chunk,
+            max_chunks=max_chunks,
+        )
         return total
 
     @contextlib.asynccontextmanager
@@ -537,5 +747,10 @@ class PostgresStore:
 
 
 async def _note_boot(con: asyncpg.Connection, board_id: int, boot: str, at: float) -> None:
-    await con.execute("UPDATE boards SET last_boot = $1, last_boot_at = $2 WHERE id = $3 AND "
-                      "(last_boot_at IS NULL OR last_boot_at <= $2)", boot, at, board_id)
+    await con.execute(
+        "UPDATE boards SET last_boot = $1, last_boot_at = $2 WHERE id = $3 AND "
+        "(last_boot_at IS NULL OR last_boot_at <= $2)",
+        boot,
+        at,
+        board_id,
+    )

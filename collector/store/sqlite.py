@@ -74,11 +74,28 @@ log = structlog.get_logger("listenpost.collector.store.sqlite")
 T = TypeVar("T")
 
 # Result codes that mean "the storage cannot do it now", not "this request is wrong".
-_UNAVAILABLE = {"SQLITE_BUSY", "SQLITE_LOCKED", "SQLITE_FULL", "SQLITE_IOERR", "SQLITE_CANTOPEN",
-                "SQLITE_READONLY", "SQLITE_PROTOCOL", "SQLITE_NOMEM", "SQLITE_PERM", "SQLITE_NOLFS"}
+_UNAVAILABLE = {
+    "SQLITE_BUSY",
+    "SQLITE_LOCKED",
+    "SQLITE_FULL",
+    "SQLITE_IOERR",
+    "SQLITE_CANTOPEN",
+    "SQLITE_READONLY",
+    "SQLITE_PROTOCOL",
+    "SQLITE_NOMEM",
+    "SQLITE_PERM",
+    "SQLITE_NOLFS",
+}
 
-_READING_DTYPE = np.dtype([("board_id", np.int64), ("tag_id", np.int64), ("t_collector", np.float64),
-                           ("rssi_dd", np.int32), ("offset_dd", np.int32)])
+_READING_DTYPE = np.dtype(
+    [
+        ("board_id", np.int64),
+        ("tag_id", np.int64),
+        ("t_collector", np.float64),
+        ("rssi_dd", np.int32),
+        ("offset_dd", np.int32),
+    ]
+)
 
 
 def _unavailable(e: sqlite3.Error) -> bool:
@@ -98,8 +115,15 @@ class SqliteStore:
         ingest_batches: how many batches went through those commits (stored, duplicate, conflict or refused).
     """
 
-    def __init__(self, path: Path, *, busy_timeout_s: float, heartbeat_history: int,
-                 max_group_batches: int, max_group_readings: int) -> None:
+    def __init__(
+        self,
+        path: Path,
+        *,
+        busy_timeout_s: float,
+        heartbeat_history: int,
+        max_group_batches: int,
+        max_group_readings: int,
+    ) -> None:
         self.path = path
         self.url = f"sqlite:///{path}"
         self.ingest_commits = 0
@@ -124,8 +148,15 @@ class SqliteStore:
     # -- life cycle ------------------------------------------------------------------------------------
 
     @classmethod
-    async def open(cls, path: str | Path, *, busy_timeout_s: float = 5.0, heartbeat_history: int = 2880,
-                   max_group_batches: int = 512, max_group_readings: int = 500_000) -> SqliteStore:
+    async def open(
+        cls,
+        path: str | Path,
+        *,
+        busy_timeout_s: float = 5.0,
+        heartbeat_history: int = 2880,
+        max_group_batches: int = 512,
+        max_group_readings: int = 500_000,
+    ) -> SqliteStore:
         """
         Open (create, migrate) the store in ``path``.
 
@@ -142,9 +173,16 @@ class SqliteStore:
             StoreError: the file is not a listenpost database SQLite can read.
         """
         if busy_timeout_s <= 0 or heartbeat_history < 1 or max_group_batches < 1 or max_group_readings < 1:
-            raise ValueError("busy_timeout_s, heartbeat_history, max_group_batches and max_group_readings must be positive")
-        store = cls(Path(path), busy_timeout_s=busy_timeout_s, heartbeat_history=heartbeat_history,
-                    max_group_batches=max_group_batches, max_group_readings=max_group_readings)
+            raise ValueError(
+                "busy_timeout_s, heartbeat_history, max_group_batches and max_group_readings must be positive"
+            )
+        store = cls(
+            Path(path),
+            busy_timeout_s=busy_timeout_s,
+            heartbeat_history=heartbeat_history,
+            max_group_batches=max_group_batches,
+            max_group_readings=max_group_readings,
+        )
         try:
             await store._write(store._open_writer)
             await store._read(store._open_reader)
@@ -155,8 +193,9 @@ class SqliteStore:
         return store
 
     def _connect(self) -> sqlite3.Connection:
-        con = sqlite3.connect(self.path, isolation_level=None, timeout=self._busy_timeout_s,
-                              check_same_thread=True)
+        con = sqlite3.connect(
+            self.path, isolation_level=None, timeout=self._busy_timeout_s, check_same_thread=True
+        )
         con.execute(f"PRAGMA busy_timeout = {int(self._busy_timeout_s * 1000)}")
         return con
 
@@ -219,9 +258,12 @@ class SqliteStore:
             except sqlite3.Error as e:
                 if _unavailable(e):
                     raise StoreUnavailable(f"{self.path}: {e}") from e
-                if isinstance(e, sqlite3.DatabaseError) and not isinstance(e, sqlite3.IntegrityError | sqlite3.OperationalError):
+                if isinstance(e, sqlite3.DatabaseError) and not isinstance(
+                    e, sqlite3.IntegrityError | sqlite3.OperationalError
+                ):
                     raise StoreError(f"{self.path}: {e}") from e
                 raise
+
         return await asyncio.get_running_loop().run_in_executor(executor, guarded)
 
     async def _write(self, fn: Callable[..., T], *args: Any) -> T:
@@ -250,6 +292,7 @@ class SqliteStore:
                 if con.in_transaction:
                     con.execute("ROLLBACK")
                 raise
+
         return await self._write(job)
 
     async def _query(self, sql: str, params: Sequence[Any] = ()) -> list[Any]:
@@ -258,6 +301,7 @@ class SqliteStore:
         def job() -> list[Any]:
             assert self._rcon is not None
             return self._rcon.execute(sql, params).fetchall()
+
         return await self._read(job)
 
     def _board_id(self, con: sqlite3.Connection, name: str) -> int:
@@ -279,12 +323,24 @@ class SqliteStore:
             try:
                 cur = con.execute(
                     f"INSERT INTO boards ({BOARD_COLS}) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
-                    (board.name, board.room, board.floor, board.created_at, board.enrolled_at,
-                     json_text(board.fingerprint), board.offset_db, board.retired_at))
+                    (
+                        board.name,
+                        board.room,
+                        board.floor,
+                        board.created_at,
+                        board.enrolled_at,
+                        json_text(board.fingerprint),
+                        board.offset_db,
+                        board.retired_at,
+                    ),
+                )
             except sqlite3.IntegrityError as e:
                 raise ValueError(f"board {board.name!r} already exists") from e
-            con.execute("INSERT INTO enrollments (code_hash, board_id, expires_at, used_at) VALUES (?, ?, ?, ?)",
-                        (enrollment.code_hash, cur.lastrowid, enrollment.expires_at, enrollment.used_at))
+            con.execute(
+                "INSERT INTO enrollments (code_hash, board_id, expires_at, used_at) VALUES (?, ?, ?, ?)",
+                (enrollment.code_hash, cur.lastrowid, enrollment.expires_at, enrollment.used_at),
+            )
+
         await self._wtx(tx)
 
     async def get_board(self, name: str) -> Board | None:
@@ -293,12 +349,18 @@ class SqliteStore:
 
     async def list_boards(self, include_retired: bool = True) -> list[Board]:
         where = "" if include_retired else "WHERE retired_at IS NULL"
-        return [board_from_row(r) for r in await self._query(f"SELECT {BOARD_COLS} FROM boards {where} ORDER BY name")]
+        return [
+            board_from_row(r)
+            for r in await self._query(f"SELECT {BOARD_COLS} FROM boards {where} ORDER BY name")
+        ]
 
     async def retire_board(self, name: str, at: float) -> bool:
         def tx(con: sqlite3.Connection) -> bool:
-            cur = con.execute("UPDATE boards SET retired_at = ? WHERE name = ? AND retired_at IS NULL", (at, name))
+            cur = con.execute(
+                "UPDATE boards SET retired_at = ? WHERE name = ? AND retired_at IS NULL", (at, name)
+            )
             return cur.rowcount == 1
+
         return await self._wtx(tx)
 
     async def new_enrollment(self, enrollment: Enrollment) -> None:
@@ -306,20 +368,28 @@ class SqliteStore:
             bid = self._board_id(con, enrollment.board)
             # Older unused codes stop working: a re-flash invalidates whatever was printed before.
             con.execute("DELETE FROM enrollments WHERE board_id = ? AND used_at IS NULL", (bid,))
-            con.execute("INSERT INTO enrollments (code_hash, board_id, expires_at, used_at) VALUES (?, ?, ?, ?)",
-                        (enrollment.code_hash, bid, enrollment.expires_at, enrollment.used_at))
+            con.execute(
+                "INSERT INTO enrollments (code_hash, board_id, expires_at, used_at) VALUES (?, ?, ?, ?)",
+                (enrollment.code_hash, bid, enrollment.expires_at, enrollment.used_at),
+            )
+
         await self._wtx(tx)
 
     async def get_enrollment(self, code_hash: str) -> Enrollment | None:
-        rows = await self._query("SELECT b.name, e.code_hash, e.expires_at, e.used_at FROM enrollments e "
-                                 "JOIN boards b ON b.id = e.board_id WHERE e.code_hash = ?", (code_hash,))
+        rows = await self._query(
+            "SELECT b.name, e.code_hash, e.expires_at, e.used_at FROM enrollments e "
+            "JOIN boards b ON b.id = e.board_id WHERE e.code_hash = ?",
+            (code_hash,),
+        )
         return Enrollment(*rows[0]) if rows else None
 
-    async def complete_enrollment(self, code_hash: str, token_hash: str, fingerprint: dict[str, Any],
-                                  at: float) -> Board:
+    async def complete_enrollment(
+        self, code_hash: str, token_hash: str, fingerprint: dict[str, Any], at: float
+    ) -> Board:
         def tx(con: sqlite3.Connection) -> Board:
-            row = con.execute("SELECT board_id, expires_at, used_at FROM enrollments WHERE code_hash = ?",
-                              (code_hash,)).fetchone()
+            row = con.execute(
+                "SELECT board_id, expires_at, used_at FROM enrollments WHERE code_hash = ?", (code_hash,)
+            ).fetchone()
             if row is None:
                 raise EnrollmentRefused(EnrollmentReason.UNKNOWN)
             bid, expires_at, used_at = row
@@ -329,9 +399,14 @@ class SqliteStore:
                 raise EnrollmentRefused(EnrollmentReason.EXPIRED)
             con.execute("UPDATE enrollments SET used_at = ? WHERE code_hash = ?", (at, code_hash))
             # A re-enrolled board gets a new token; the old one stops matching.
-            con.execute("UPDATE boards SET token_hash = ?, fingerprint = ?, enrolled_at = ? WHERE id = ?",
-                        (token_hash, json_text(fingerprint), at, bid))
-            return board_from_row(con.execute(f"SELECT {BOARD_COLS} FROM boards WHERE id = ?", (bid,)).fetchone())
+            con.execute(
+                "UPDATE boards SET token_hash = ?, fingerprint = ?, enrolled_at = ? WHERE id = ?",
+                (token_hash, json_text(fingerprint), at, bid),
+            )
+            return board_from_row(
+                con.execute(f"SELECT {BOARD_COLS} FROM boards WHERE id = ?", (bid,)).fetchone()
+            )
+
         return await self._wtx(tx)
 
     async def board_for_token(self, token_hash: str) -> Board | None:
@@ -343,17 +418,30 @@ class SqliteStore:
 
         def tx(con: sqlite3.Connection) -> None:
             bid = self._board_id(con, c.board)
-            con.execute("INSERT INTO calibrations (board_id, at, offset_db, spread_db, samples, reference_tag, "
-                        "distance_m, fingerprint) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
-                        (bid, c.at, c.offset_db, c.spread_db, c.samples, c.reference_tag, c.distance_m,
-                         json_text(c.fingerprint)))
+            con.execute(
+                "INSERT INTO calibrations (board_id, at, offset_db, spread_db, samples, reference_tag, "
+                "distance_m, fingerprint) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                (
+                    bid,
+                    c.at,
+                    c.offset_db,
+                    c.spread_db,
+                    c.samples,
+                    c.reference_tag,
+                    c.distance_m,
+                    json_text(c.fingerprint),
+                ),
+            )
             con.execute("UPDATE boards SET offset_db = ? WHERE id = ?", (c.offset_db, bid))
+
         await self._wtx(tx)
 
     async def calibrations(self, board: str) -> list[Calibration]:
         rows = await self._query(
             "SELECT b.name, c.at, c.offset_db, c.spread_db, c.samples, c.reference_tag, c.distance_m, c.fingerprint "
-            "FROM calibrations c JOIN boards b ON b.id = c.board_id WHERE b.name = ? ORDER BY c.at, c.id", (board,))
+            "FROM calibrations c JOIN boards b ON b.id = c.board_id WHERE b.name = ? ORDER BY c.at, c.id",
+            (board,),
+        )
         return [calibration_from_row(r) for r in rows]
 
     # -- tags --------------------------------------------------------------------------------------------
@@ -362,20 +450,32 @@ class SqliteStore:
         wanted = sorted(set(ids))
 
         def tx(con: sqlite3.Connection) -> int:
-            active = {r[0] for r in con.execute(
-                "SELECT tag FROM tags WHERE added_at IS NOT NULL AND retired_at IS NULL "
-                "AND tag IN (SELECT value FROM json_each(?))", (json.dumps(wanted),))}
-            con.executemany("INSERT INTO tags (tag, added_at) VALUES (?, ?) ON CONFLICT (tag) DO UPDATE SET "
-                            "added_at = coalesce(tags.added_at, excluded.added_at), retired_at = NULL",
-                            [(t, at) for t in wanted])
+            active = {
+                r[0]
+                for r in con.execute(
+                    "SELECT tag FROM tags WHERE added_at IS NOT NULL AND retired_at IS NULL "
+                    "AND tag IN (SELECT value FROM json_each(?))",
+                    (json.dumps(wanted),),
+                )
+            }
+            con.executemany(
+                "INSERT INTO tags (tag, added_at) VALUES (?, ?) ON CONFLICT (tag) DO UPDATE SET "
+                "added_at = coalesce(tags.added_at, excluded.added_at), retired_at = NULL",
+                [(t, at) for t in wanted],
+            )
             return len(wanted) - len(active)
+
         return await self._wtx(tx)
 
     async def retire_tags(self, ids: Sequence[str], at: float) -> int:
         def tx(con: sqlite3.Connection) -> int:
-            cur = con.execute("UPDATE tags SET retired_at = ? WHERE added_at IS NOT NULL AND retired_at IS NULL "
-                              "AND tag IN (SELECT value FROM json_each(?))", (at, json.dumps(sorted(set(ids)))))
+            cur = con.execute(
+                "UPDATE tags SET retired_at = ? WHERE added_at IS NOT NULL AND retired_at IS NULL "
+                "AND tag IN (SELECT value FROM json_each(?))",
+                (at, json.dumps(sorted(set(ids)))),
+            )
             return cur.rowcount
+
         return await self._wtx(tx)
 
     async def list_tags(self, include_retired: bool = False) -> list[str]:
@@ -400,8 +500,11 @@ class SqliteStore:
         while self._pending:
             group: list[tuple[IngestBatch, asyncio.Future[IngestResult]]] = []
             readings = 0
-            while self._pending and len(group) < self._max_group_batches and (
-                    not group or readings + self._pending[0][0].n <= self._max_group_readings):
+            while (
+                self._pending
+                and len(group) < self._max_group_batches
+                and (not group or readings + self._pending[0][0].n <= self._max_group_readings)
+            ):
                 item = self._pending.popleft()
                 readings += item[0].n
                 group.append(item)
@@ -461,48 +564,101 @@ class SqliteStore:
         missing = sorted(names - self._tag_ids.keys())
         if not missing:
             return {}
-        con.executemany("INSERT INTO tags (tag) VALUES (?) ON CONFLICT (tag) DO NOTHING", [(t,) for t in missing])
-        return dict(con.execute("SELECT tag, id FROM tags WHERE tag IN (SELECT value FROM json_each(?))",
-                                (json.dumps(missing),)).fetchall())
+        con.executemany(
+            "INSERT INTO tags (tag) VALUES (?) ON CONFLICT (tag) DO NOTHING", [(t,) for t in missing]
+        )
+        return dict(
+            con.execute(
+                "SELECT tag, id FROM tags WHERE tag IN (SELECT value FROM json_each(?))",
+                (json.dumps(missing),),
+            ).fetchall()
+        )
 
     def _insert_batch(self, con: sqlite3.Connection, b: IngestBatch, tag_ids: dict[str, int]) -> IngestResult:
         offset_dd = check_batch(b)
         bid = self._board_id(con, b.board)
-        row = con.execute("SELECT digest FROM batches WHERE board_id = ? AND epoch = ? AND seq = ?",
-                          (bid, b.epoch, b.seq)).fetchone()
+        row = con.execute(
+            "SELECT digest FROM batches WHERE board_id = ? AND epoch = ? AND seq = ?", (bid, b.epoch, b.seq)
+        ).fetchone()
         if row is not None:
-            return IngestResult(IngestStatus.DUPLICATE if row[0] == b.digest else IngestStatus.CONFLICT, row[0])
+            return IngestResult(
+                IngestStatus.DUPLICATE if row[0] == b.digest else IngestStatus.CONFLICT, row[0]
+            )
         gap = b.gap or {}
         cur = con.execute(
             "INSERT INTO batches (board_id, epoch, seq, digest, boot, n, received_at, offset_dd, gap_first, "
             "gap_last, gap_readings, gap_reason) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
-            (bid, b.epoch, b.seq, b.digest, b.boot, b.n, b.received_at, offset_dd, gap.get("first_seq"),
-             gap.get("last_seq"), gap.get("readings"), gap.get("reason")))
+            (
+                bid,
+                b.epoch,
+                b.seq,
+                b.digest,
+                b.boot,
+                b.n,
+                b.received_at,
+                offset_dd,
+                gap.get("first_seq"),
+                gap.get("last_seq"),
+                gap.get("readings"),
+                gap.get("reason"),
+            ),
+        )
         batch_id = cur.lastrowid
         if b.n:
-            _insert_readings(con, b.n, chain.from_iterable(zip(
-                repeat(batch_id), repeat(bid), reading_tag_ids(b, tag_ids),
-                np.asarray(b.t_board_ms, dtype=np.int64).tolist(),
-                np.asarray(b.t_collector, dtype=np.float64).tolist(),
-                np.asarray(b.rssi_dd, dtype=np.int64).tolist())))
+            _insert_readings(
+                con,
+                b.n,
+                chain.from_iterable(
+                    zip(
+                        repeat(batch_id),
+                        repeat(bid),
+                        reading_tag_ids(b, tag_ids),
+                        np.asarray(b.t_board_ms, dtype=np.int64).tolist(),
+                        np.asarray(b.t_collector, dtype=np.float64).tolist(),
+                        np.asarray(b.rssi_dd, dtype=np.int64).tolist(),
+                    )
+                ),
+            )
         if b.telemetry:
             con.executemany(
                 "INSERT INTO telemetry (batch_id, board_id, tag_id, at, t_board_ms, battery_mv, temperature_c, "
                 "adv_count, uptime_s) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                [(batch_id, bid, tag_ids[t["tag"]], b.received_at, t["t_ms"], *(t.get(k) for k in TELEMETRY_FIELDS))
-                 for t in b.telemetry])
+                [
+                    (
+                        batch_id,
+                        bid,
+                        tag_ids[t["tag"]],
+                        b.received_at,
+                        t["t_ms"],
+                        *(t.get(k) for k in TELEMETRY_FIELDS),
+                    )
+                    for t in b.telemetry
+                ],
+            )
         con.execute(
             "UPDATE boards SET readings_total = readings_total + ?, batches_total = batches_total + 1, "
             "gap_readings = gap_readings + ?, last_batch_at = max(coalesce(last_batch_at, ?), ?), "
             "last_boot = CASE WHEN last_boot_at IS NULL OR last_boot_at <= ? THEN ? ELSE last_boot END, "
             "last_boot_at = max(coalesce(last_boot_at, ?), ?) WHERE id = ?",
-            (b.n, gap.get("readings", 0), b.received_at, b.received_at, b.received_at, b.boot,
-             b.received_at, b.received_at, bid))
+            (
+                b.n,
+                gap.get("readings", 0),
+                b.received_at,
+                b.received_at,
+                b.received_at,
+                b.boot,
+                b.received_at,
+                b.received_at,
+                bid,
+            ),
+        )
         return IngestResult(IngestStatus.STORED, b.digest)
 
     async def board_counts(self) -> list[BoardCounts]:
-        rows = await self._query("SELECT name, readings_total, batches_total, last_batch_at, gap_readings "
-                                 "FROM boards ORDER BY name")
+        rows = await self._query(
+            "SELECT name, readings_total, batches_total, last_batch_at, gap_readings "
+            "FROM boards ORDER BY name"
+        )
         return [BoardCounts(*r) for r in rows]
 
     async def latest_telemetry(self, tags: Sequence[str] | None = None) -> dict[str, TagTelemetry]:
@@ -529,15 +685,20 @@ class SqliteStore:
 
         def tx(con: sqlite3.Connection) -> None:
             bid = self._board_id(con, s.board)
-            con.execute("INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES (?, ?, ?, ?, ?, ?)",
-                        (bid, s.boot, s.t1, s.t2, s.t3, s.t4))
+            con.execute(
+                "INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES (?, ?, ?, ?, ?, ?)",
+                (bid, s.boot, s.t1, s.t2, s.t3, s.t4),
+            )
             _note_boot(con, bid, s.boot, s.t2)
+
         await self._wtx(tx)
 
     async def clock_samples(self, board: str, boot: str, since: float | None = None) -> list[ClockSample]:
         rows = await self._query(
             "SELECT t1, t2, t3, t4 FROM clock_samples WHERE board_id = (SELECT id FROM boards WHERE name = ?) "
-            "AND boot = ? AND t2 >= ? ORDER BY t2, id", (board, boot, -math.inf if since is None else since))
+            "AND boot = ? AND t2 >= ? ORDER BY t2, id",
+            (board, boot, -math.inf if since is None else since),
+        )
         return [ClockSample(board, boot, *r) for r in rows]
 
     async def latest_boot(self, board: str) -> str | None:
@@ -549,32 +710,45 @@ class SqliteStore:
 
         def tx(con: sqlite3.Connection) -> None:
             bid = self._board_id(con, hb.board)
-            con.execute("INSERT INTO heartbeats (board_id, at, boot, stats) VALUES (?, ?, ?, ?)",
-                        (bid, hb.at, hb.boot, json.dumps(hb.stats, sort_keys=True)))
-            con.execute("DELETE FROM heartbeats WHERE id IN (SELECT id FROM heartbeats WHERE board_id = ? "
-                        "ORDER BY at DESC, id DESC LIMIT -1 OFFSET ?)", (bid, keep))
+            con.execute(
+                "INSERT INTO heartbeats (board_id, at, boot, stats) VALUES (?, ?, ?, ?)",
+                (bid, hb.at, hb.boot, json.dumps(hb.stats, sort_keys=True)),
+            )
+            con.execute(
+                "DELETE FROM heartbeats WHERE id IN (SELECT id FROM heartbeats WHERE board_id = ? "
+                "ORDER BY at DESC, id DESC LIMIT -1 OFFSET ?)",
+                (bid, keep),
+            )
             _note_boot(con, bid, hb.boot, hb.at)
+
         await self._wtx(tx)
 
     async def heartbeats(self, board: str, since: float) -> list[Heartbeat]:
-        rows = await self._query("SELECT at, boot, stats FROM heartbeats WHERE board_id = "
-                                 "(SELECT id FROM boards WHERE name = ?) AND at >= ? ORDER BY at, id", (board, since))
+        rows = await self._query(
+            "SELECT at, boot, stats FROM heartbeats WHERE board_id = "
+            "(SELECT id FROM boards WHERE name = ?) AND at >= ? ORDER BY at, id",
+            (board, since),
+        )
         return [Heartbeat(board, at, boot, json.loads(stats)) for at, boot, stats in rows]
 
     async def latest_heartbeats(self) -> dict[str, Heartbeat]:
         rows = await self._query(
             "SELECT b.name, h.at, h.boot, h.stats FROM (SELECT *, row_number() OVER "
             "(PARTITION BY board_id ORDER BY at DESC, id DESC) AS k FROM heartbeats) h "
-            "JOIN boards b ON b.id = h.board_id WHERE h.k = 1")
+            "JOIN boards b ON b.id = h.board_id WHERE h.k = 1"
+        )
         return {name: Heartbeat(name, at, boot, json.loads(stats)) for name, at, boot, stats in rows}
 
     async def add_event(self, event: Event) -> int:
         def tx(con: sqlite3.Connection) -> int:
             bid = None if event.board is None else self._board_id(con, event.board)
-            cur = con.execute("INSERT INTO events (at, board_id, kind, detail) VALUES (?, ?, ?, ?)",
-                              (event.at, bid, event.kind, json.dumps(event.detail, sort_keys=True)))
+            cur = con.execute(
+                "INSERT INTO events (at, board_id, kind, detail) VALUES (?, ?, ?, ?)",
+                (event.at, bid, event.kind, json.dumps(event.detail, sort_keys=True)),
+            )
             assert cur.lastrowid is not None
             return cur.lastrowid
+
         return await self._wtx(tx)
 
     async def events(self, since_id: int = 0, limit: int = 1000, board: str | None = None) -> list[Event]:
@@ -582,26 +756,38 @@ class SqliteStore:
         if board is not None:
             cond += " AND e.board_id = (SELECT id FROM boards WHERE name = ?)"
             params.append(board)
-        rows = await self._query(f"SELECT e.at, b.name, e.kind, e.detail, e.id FROM events e LEFT JOIN boards b "
-                                 f"ON b.id = e.board_id WHERE {cond} ORDER BY e.id LIMIT ?", [*params, limit])
+        rows = await self._query(
+            f"SELECT e.at, b.name, e.kind, e.detail, e.id FROM events e LEFT JOIN boards b "
+            f"ON b.id = e.board_id WHERE {cond} ORDER BY e.id LIMIT ?",
+            [*params, limit],
+        )
         return [Event(at, name, kind, json.loads(detail), id_) for at, name, kind, detail, id_ in rows]
 
     # -- export and retention ----------------------------------------------------------------------------
 
-    async def readings(self, t_from: float, t_to: float, boards: Sequence[str] | None = None,
-                       tags: Sequence[str] | None = None) -> ReadingRows:
+    async def readings(
+        self,
+        t_from: float,
+        t_to: float,
+        boards: Sequence[str] | None = None,
+        tags: Sequence[str] | None = None,
+    ) -> ReadingRows:
         """Readings with ``t_from <= t_collector < t_to``, ordered by collector time."""
         self._check_open()
         cond, params = ["r.t_collector >= ?", "r.t_collector < ?"], [t_from, t_to]
         if boards is not None:
-            cond.append("r.board_id IN (SELECT id FROM boards WHERE name IN (SELECT value FROM json_each(?)))")
+            cond.append(
+                "r.board_id IN (SELECT id FROM boards WHERE name IN (SELECT value FROM json_each(?)))"
+            )
             params.append(json.dumps(list(boards)))
         if tags is not None:
             cond.append("r.tag_id IN (SELECT id FROM tags WHERE tag IN (SELECT value FROM json_each(?)))")
             params.append(json.dumps(list(tags)))
-        sql = (f"SELECT r.board_id, r.tag_id, r.t_collector, r.rssi_dd, b.offset_dd FROM readings r "
-               f"JOIN batches b ON b.id = r.batch_id WHERE {' AND '.join(cond)} "
-               f"ORDER BY r.t_collector, r.board_id, r.tag_id")
+        sql = (
+            f"SELECT r.board_id, r.tag_id, r.t_collector, r.rssi_dd, b.offset_dd FROM readings r "
+            f"JOIN batches b ON b.id = r.batch_id WHERE {' AND '.join(cond)} "
+            f"ORDER BY r.t_collector, r.board_id, r.tag_id"
+        )
 
         def job() -> ReadingRows:
             con = self._rcon
@@ -611,24 +797,41 @@ class SqliteStore:
             try:
                 arr = np.fromiter(con.execute(sql, params), dtype=_READING_DTYPE)
                 board_names = _names(con, "SELECT id, name FROM boards", arr["board_id"])
-                tag_names = _names(con, "SELECT id, tag FROM tags WHERE id IN (SELECT value FROM json_each(?))",
-                                   arr["tag_id"], by_ids=True)
+                tag_names = _names(
+                    con,
+                    "SELECT id, tag FROM tags WHERE id IN (SELECT value FROM json_each(?))",
+                    arr["tag_id"],
+                    by_ids=True,
+                )
             finally:
                 con.execute("COMMIT")
-            return ReadingRows(board_names, tag_names, arr["t_collector"].copy(),
-                               arr["rssi_dd"].astype(np.int32), arr["offset_dd"].astype(np.int32))
+            return ReadingRows(
+                board_names,
+                tag_names,
+                arr["t_collector"].copy(),
+                arr["rssi_dd"].astype(np.int32),
+                arr["offset_dd"].astype(np.int32),
+            )
+
         return await self._read(job)
 
-    async def delete_readings_before(self, t: float, chunk: int = 10_000, max_chunks: int | None = None) -> int:
+    async def delete_readings_before(
+        self, t: float, chunk: int = 10_000, max_chunks: int | None = None
+    ) -> int:
         async def delete_chunk(table: str, col: str) -> int:
             def tx(con: sqlite3.Connection) -> int:
-                return con.execute(f"DELETE FROM {table} WHERE rowid IN (SELECT rowid FROM {table} "
-                                   f"WHERE {col} < ? LIMIT ?)", (t, chunk)).rowcount
+                return con.execute(
+                    f"DELETE FROM {table} WHERE rowid IN (SELECT rowid FROM {table} WHERE {col} < ? LIMIT ?)",
+                    (t, chunk),
+                ).rowcount
+
             # One short transaction per chunk: ingest groups get the writer between chunks.
             return await self._wtx(tx)
 
         total = await delete_in_chunks(delete_chunk, chunk, max_chunks)
-        log.info("readings_deleted", backend="sqlite", before=t, readings=total, chunk=chunk, max_chunks=max_chunks)
+        log.info(
+            "readings_deleted", backend="sqlite", before=t, readings=total, chunk=chunk, max_chunks=max_chunks
+        )
         return total
 
     @contextlib.asynccontextmanager
@@ -661,8 +864,10 @@ _READING_COLS = 6
 
 
 def _readings_sql(rows: int) -> str:
-    return ("INSERT INTO readings (batch_id, board_id, tag_id, t_board_ms, t_collector, rssi_dd) VALUES "
-            + ", ".join(["(?, ?, ?, ?, ?, ?)"] * rows))
+    return (
+        "INSERT INTO readings (batch_id, board_id, tag_id, t_board_ms, t_collector, rssi_dd) VALUES "
+        + ", ".join(["(?, ?, ?, ?, ?, ?)"] * rows)
+    )
 
 
 # Full chunks, then the remainder as powers of two: at most twelve statement texts ever, all of which
@@ -677,14 +882,19 @@ def _insert_readings(con: sqlite3.Connection, n: int, flat: Iterator[Any]) -> No
         k = _READING_CHUNK if left >= _READING_CHUNK else 1 << (left.bit_length() - 1)
         params = list(islice(flat, k * _READING_COLS))
         if len(params) != k * _READING_COLS:
-            raise ValueError(f"readings: expected {n} rows, the columns ran out after {n - left + len(params) // _READING_COLS}")
+            raise ValueError(
+                f"readings: expected {n} rows, the columns ran out after {n - left + len(params) // _READING_COLS}"
+            )
         con.execute(_READINGS_SQL[k], params)
         left -= k
 
 
 def _note_boot(con: sqlite3.Connection, board_id: int, boot: str, at: float) -> None:
-    con.execute("UPDATE boards SET last_boot = ?, last_boot_at = ? WHERE id = ? AND "
-                "(last_boot_at IS NULL OR last_boot_at <= ?)", (boot, at, board_id, at))
+    con.execute(
+        "UPDATE boards SET last_boot = ?, last_boot_at = ? WHERE id = ? AND "
+        "(last_boot_at IS NULL OR last_boot_at <= ?)",
+        (boot, at, board_id, at),
+    )
 
 
 def _names(con: sqlite3.Connection, sql: str, ids: np.ndarray, by_ids: bool = False) -> np.ndarray:

@@ -91,7 +91,9 @@ class VirtualClock:
         await clock.advance(30)      # worker's sleeps up to t=30 s have all returned
     """
 
-    def __init__(self, start: float = 1000.0, wall: float = 1_800_000_000.0, boot_id: str = "virtual-boot-0") -> None:
+    def __init__(
+        self, start: float = 1000.0, wall: float = 1_800_000_000.0, boot_id: str = "virtual-boot-0"
+    ) -> None:
         self._now = float(start)
         self._wall_minus_mono = wall - start
         self._boot_id = boot_id
@@ -215,8 +217,15 @@ class DerivedClock:
     base's wall clock plus ``wall_error_s``. Used for virtual boards in the demo and tests.
     """
 
-    def __init__(self, base: Clock, *, skew_ppm: float = 0.0, boot_at: float | None = None,
-                 wall_error_s: float = 0.0, boot_id: str | None = None) -> None:
+    def __init__(
+        self,
+        base: Clock,
+        *,
+        skew_ppm: float = 0.0,
+        boot_at: float | None = None,
+        wall_error_s: float = 0.0,
+        boot_id: str | None = None,
+    ) -> None:
         self.base = base
         self.rate = 1.0 + skew_ppm * 1e-6
         self.boot_at = base.monotonic() if boot_at is None else boot_at

@@ -26,7 +26,9 @@ BUILTIN_KINDS = ("mac", "ibeacon", "altbeacon", "eddystone")
 
 _RULE_NAME = re.compile(r"[a-z][a-z0-9_-]{0,31}")
 _HEX = "0-9a-fA-F"
-_MAC = re.compile(rf"([{_HEX}]{{2}})[:-]([{_HEX}]{{2}})[:-]([{_HEX}]{{2}})[:-]([{_HEX}]{{2}})[:-]([{_HEX}]{{2}})[:-]([{_HEX}]{{2}})")
+_MAC = re.compile(
+    rf"([{_HEX}]{{2}})[:-]([{_HEX}]{{2}})[:-]([{_HEX}]{{2}})[:-]([{_HEX}]{{2}})[:-]([{_HEX}]{{2}})[:-]([{_HEX}]{{2}})"
+)
 _UUID = re.compile(rf"([{_HEX}]{{8}})-?([{_HEX}]{{4}})-?([{_HEX}]{{4}})-?([{_HEX}]{{4}})-?([{_HEX}]{{12}})")
 _DECIMAL_U16 = re.compile(r"[0-9]{1,5}")
 _HEX_BYTES = re.compile(rf"(?:[{_HEX}]{{2}})+")
@@ -81,7 +83,9 @@ def eddystone_id(namespace10: bytes, instance6: bytes) -> str:
         DecodeError: wrong namespace or instance length.
     """
     if len(namespace10) != 10 or len(instance6) != 6:
-        raise DecodeError(f"Eddystone-UID: namespace must be 10 bytes and instance 6, got {len(namespace10)} and {len(instance6)}")
+        raise DecodeError(
+            f"Eddystone-UID: namespace must be 10 bytes and instance 6, got {len(namespace10)} and {len(instance6)}"
+        )
     return f"eddystone:{namespace10.hex()}:{instance6.hex()}"
 
 
@@ -92,8 +96,10 @@ def rule_prefix(name: str) -> str:
         DecodeError: the name is not lower-case letters/digits/``_``/``-`` or is a built-in kind.
     """
     if not _RULE_NAME.fullmatch(name) or name in BUILTIN_KINDS:
-        raise DecodeError(f"rule name {name!r}: must be 1-32 lower-case letters, digits, '_' or '-', "
-                          f"starting with a letter, and not one of {', '.join(BUILTIN_KINDS)}")
+        raise DecodeError(
+            f"rule name {name!r}: must be 1-32 lower-case letters, digits, '_' or '-', "
+            f"starting with a letter, and not one of {', '.join(BUILTIN_KINDS)}"
+        )
     return name + ":"
 
 
@@ -123,7 +129,9 @@ def parse_tag_id(text: str) -> str:
     s = text.strip()
     kind, sep, rest = s.partition(":")
     if not sep or not kind:
-        raise DecodeError(f"tag id {text!r}: must be KIND:VALUE, e.g. mac:C4:7A:10:00:2B:91 or ibeacon:<uuid>:<major>:<minor>")
+        raise DecodeError(
+            f"tag id {text!r}: must be KIND:VALUE, e.g. mac:C4:7A:10:00:2B:91 or ibeacon:<uuid>:<major>:<minor>"
+        )
     if _MAC.fullmatch(s):
         raise DecodeError(f"tag id {text!r}: an address needs the kind, write {mac_id(s)!r}")
     kind = kind.lower()
@@ -131,7 +139,9 @@ def parse_tag_id(text: str) -> str:
         try:
             return mac_id(rest)
         except DecodeError:
-            raise DecodeError(f"tag id {text!r}: address must be six hex octets like C4:7A:10:00:2B:91") from None
+            raise DecodeError(
+                f"tag id {text!r}: address must be six hex octets like C4:7A:10:00:2B:91"
+            ) from None
     if kind == "ibeacon":
         uuid_text, _, rest2 = rest.partition(":")
         major_text, _, minor_text = rest2.partition(":")
@@ -140,7 +150,9 @@ def parse_tag_id(text: str) -> str:
             raise DecodeError(f"tag id {text!r}: iBeacon UUID must be 32 hex digits (hyphens allowed)")
         for label, v in (("major", major_text), ("minor", minor_text)):
             if not _DECIMAL_U16.fullmatch(v) or int(v) > 0xFFFF:
-                raise DecodeError(f"tag id {text!r}: iBeacon {label} must be a decimal number 0..65535, got {v!r}")
+                raise DecodeError(
+                    f"tag id {text!r}: iBeacon {label} must be a decimal number 0..65535, got {v!r}"
+                )
         return ibeacon_id(bytes.fromhex("".join(m.groups())), int(major_text), int(minor_text))
     if kind == "altbeacon":
         if not (len(rest) == 40 and _HEX_BYTES.fullmatch(rest)):
@@ -148,8 +160,12 @@ def parse_tag_id(text: str) -> str:
         return "altbeacon:" + rest.lower()
     if kind == "eddystone":
         ns, _, inst = rest.partition(":")
-        if not (len(ns) == 20 and _HEX_BYTES.fullmatch(ns) and len(inst) == 12 and _HEX_BYTES.fullmatch(inst)):
-            raise DecodeError(f"tag id {text!r}: Eddystone-UID must be eddystone:<20 hex namespace>:<12 hex instance>")
+        if not (
+            len(ns) == 20 and _HEX_BYTES.fullmatch(ns) and len(inst) == 12 and _HEX_BYTES.fullmatch(inst)
+        ):
+            raise DecodeError(
+                f"tag id {text!r}: Eddystone-UID must be eddystone:<20 hex namespace>:<12 hex instance>"
+            )
         return f"eddystone:{ns.lower()}:{inst.lower()}"
     try:
         prefix = rule_prefix(kind)
@@ -178,7 +194,9 @@ def identity_key(tag: str) -> tuple[str, bytes]:
         return kind, bytes.fromhex(rest.replace(":", ""))
     if kind == "ibeacon":
         u, major, minor = rest.split(":")
-        return kind, bytes.fromhex(u.replace("-", "")) + int(major).to_bytes(2, "big") + int(minor).to_bytes(2, "big")
+        return kind, bytes.fromhex(u.replace("-", "")) + int(major).to_bytes(2, "big") + int(minor).to_bytes(
+            2, "big"
+        )
     return kind, bytes.fromhex(rest.replace(":", ""))
 
 

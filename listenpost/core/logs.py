@@ -24,8 +24,9 @@ def configure(fmt: LogFormat = "auto", level: str = "info", stream: Any = None, 
     out = stream or sys.stderr
     if fmt == "auto":
         fmt = "console" if getattr(out, "isatty", lambda: False)() else "json"
-    renderer: Any = (structlog.processors.JSONRenderer() if fmt == "json"
-                     else structlog.dev.ConsoleRenderer(colors=False))
+    renderer: Any = (
+        structlog.processors.JSONRenderer() if fmt == "json" else structlog.dev.ConsoleRenderer(colors=False)
+    )
     structlog.configure(
         processors=[
             structlog.contextvars.merge_contextvars,

@@ -60,7 +60,9 @@ class Section:
         if data is None:
             data = {}
         if not isinstance(data, Mapping):
-            raise ConfigError(f"{origin}: {path or '(top level)'}: must be a mapping, got {type(data).__name__}")
+            raise ConfigError(
+                f"{origin}: {path or '(top level)'}: must be a mapping, got {type(data).__name__}"
+            )
         self.data = data
         self.path = path
         self.origin = origin
@@ -72,14 +74,24 @@ class Section:
     def fail(self, name: str, problem: str) -> ConfigError:
         return ConfigError(f"{self.origin}: {self.key(name)}: {problem}")
 
-    def get(self, name: str, kind: type[T] | tuple[type, ...], default: Any = _MISSING,
-            check: Callable[[Any], str | None] | None = None) -> Any:
+    def get(
+        self,
+        name: str,
+        kind: type[T] | tuple[type, ...],
+        default: Any = _MISSING,
+        check: Callable[[Any], str | None] | None = None,
+    ) -> Any:
         """Read ``name``; ``check`` returns a problem text or None."""
         self._seen.add(name)
         if _reads is not None:
             kinds_read = kind if isinstance(kind, tuple) else (kind,)
-            _reads.append(KeyRead(re.sub(r"\[\d+\]", "[]", self.key(name)), tuple(k.__name__ for k in kinds_read),
-                                  REQUIRED if default is _MISSING else default))
+            _reads.append(
+                KeyRead(
+                    re.sub(r"\[\d+\]", "[]", self.key(name)),
+                    tuple(k.__name__ for k in kinds_read),
+                    REQUIRED if default is _MISSING else default,
+                )
+            )
         if name not in self.data or self.data[name] is None:
             if default is _MISSING:
                 raise self.fail(name, "is required")
@@ -157,8 +169,16 @@ class DecodeRule:
 
 def parse_rule(s: Section) -> DecodeRule:
     """Read one decode rule (``decode.rules[i]`` locally, or from the collector's config)."""
-    name = s.get("name", str, check=lambda v: None if re.fullmatch(r"[a-z][a-z0-9_-]{0,31}", v) and v not in
-                 ("mac", "ibeacon", "altbeacon", "eddystone") else "must be lower-case letters/digits, not a built-in kind")
+    name = s.get(
+        "name",
+        str,
+        check=lambda v: (
+            None
+            if re.fullmatch(r"[a-z][a-z0-9_-]{0,31}", v)
+            and v not in ("mac", "ibeacon", "altbeacon", "eddystone")
+            else "must be lower-case letters/digits, not a built-in kind"
+        ),
+    )
     company = s.get("company_id", int, None, check=lambda v: None if 0 <= v <= 0xFFFF else "must be 0..65535")
     svc = s.get("service_uuid16", int, None, check=lambda v: None if 0 <= v <= 0xFFFF else "must be 0..65535")
     if (company is None) == (svc is None):

@@ -62,8 +62,9 @@ def digest(content: Mapping[str, Any] | bytes) -> str:
     return hashlib.sha256(raw).hexdigest()
 
 
-def encode_content(readings: Sequence[Reading], *, boot: str, offset_db: float,
-                   gap: Mapping[str, Any] | None = None) -> dict[str, Any]:
+def encode_content(
+    readings: Sequence[Reading], *, boot: str, offset_db: float, gap: Mapping[str, Any] | None = None
+) -> dict[str, Any]:
     """Columnar content of one sealed batch (readings sorted by time here)."""
     rs = sorted(readings, key=lambda r: r.t_mono_ns)
     tags: dict[str, int] = {}
@@ -77,13 +78,30 @@ def encode_content(readings: Sequence[Reading], *, boot: str, offset_db: float,
     }
     cols["tags"] = list(tags)
     telemetry = [
-        {"tag": r.tag, "t_ms": r.t_mono_ns // 1_000_000,
-         **{k: v for k, v in (("battery_mv", r.telemetry.battery_mv), ("temperature_c", r.telemetry.temperature_c),
-                             ("adv_count", r.telemetry.adv_count), ("uptime_s", r.telemetry.uptime_s)) if v is not None}}
-        for r in rs if r.telemetry is not None
+        {
+            "tag": r.tag,
+            "t_ms": r.t_mono_ns // 1_000_000,
+            **{
+                k: v
+                for k, v in (
+                    ("battery_mv", r.telemetry.battery_mv),
+                    ("temperature_c", r.telemetry.temperature_c),
+                    ("adv_count", r.telemetry.adv_count),
+                    ("uptime_s", r.telemetry.uptime_s),
+                )
+                if v is not None
+            },
+        }
+        for r in rs
+        if r.telemetry is not None
     ]
-    return {"boot": boot, "offset_db": float(offset_db), "readings": cols, "telemetry": telemetry,
-            "gap": dict(gap) if gap is not None else None}
+    return {
+        "boot": boot,
+        "offset_db": float(offset_db),
+        "readings": cols,
+        "telemetry": telemetry,
+        "gap": dict(gap) if gap is not None else None,
+    }
 
 
 @dataclass(frozen=True, slots=True)
@@ -102,9 +120,14 @@ class DecodedContent:
         tel = {(t["tag"], t["t_ms"]): t for t in self.telemetry}
         for t, tag, rssi in zip(self.t_ms, self.tags, self.rssi_dd, strict=True):
             x = tel.get((tag, t))
-            yield Reading(tag, t * 1_000_000, rssi / 10,
-                          Telemetry(x.get("battery_mv"), x.get("temperature_c"), x.get("adv_count"), x.get("uptime_s"))
-                          if x else None)
+            yield Reading(
+                tag,
+                t * 1_000_000,
+                rssi / 10,
+                Telemetry(x.get("battery_mv"), x.get("temperature_c"), x.get("adv_count"), x.get("uptime_s"))
+                if x
+                else None,
+            )
 
 
 def _int_list(obj: Any, field: str, lo: int, hi: int) -> list[int]:
@@ -129,7 +152,12 @@ def decode_content(content: Any, *, max_readings: int = 200_000) -> DecodedConte
     if not isinstance(boot, str) or not 1 <= len(boot) <= 64:
         raise WireError("content.boot", "must be a string of 1-64 characters")
     offset = content.get("offset_db")
-    if not isinstance(offset, int | float) or isinstance(offset, bool) or not math.isfinite(offset) or abs(offset) > 40:
+    if (
+        not isinstance(offset, int | float)
+        or isinstance(offset, bool)
+        or not math.isfinite(offset)
+        or abs(offset) > 40
+    ):
         raise WireError("content.offset_db", f"must be a number within ±40, got {offset!r}")
     gap = content.get("gap")
     if gap is not None:
@@ -142,7 +170,9 @@ def decode_content(content: Any, *, max_readings: int = 200_000) -> DecodedConte
         if gap["last_seq"] < gap["first_seq"]:
             raise WireError("content.gap.last_seq", "must be >= first_seq")
         if gap.get("reason") not in GAP_REASONS:
-            raise WireError("content.gap.reason", f"must be one of {', '.join(GAP_REASONS)}, got {gap.get('reason')!r}")
+            raise WireError(
+                "content.gap.reason", f"must be one of {', '.join(GAP_REASONS)}, got {gap.get('reason')!r}"
+            )
     cols = content.get("readings")
     if not isinstance(cols, dict):
         raise WireError("content.readings", "must be an object")
@@ -159,7 +189,9 @@ def decode_content(content: Any, *, max_readings: int = 200_000) -> DecodedConte
     idx = _int_list(cols.get("tag"), "content.readings.tag", 0, max(len(tags) - 1, 0))
     rssi = _int_list(cols.get("rssi_dd"), "content.readings.rssi_dd", -2000, 500)
     if len(idx) != n or len(rssi) != n:
-        raise WireError("content.readings", f"columns differ in length: dt_ms {n}, tag {len(idx)}, rssi_dd {len(rssi)}")
+        raise WireError(
+            "content.readings", f"columns differ in length: dt_ms {n}, tag {len(idx)}, rssi_dd {len(rssi)}"
+        )
     if n and not tags:
         raise WireError("content.readings.tags", "is empty but there are readings")
     if gap is not None and n:
@@ -174,12 +206,15 @@ def decode_content(content: Any, *, max_readings: int = 200_000) -> DecodedConte
             raise WireError(f"content.telemetry[{i}]", "must be an object with tag and t_ms")
         for k in ("battery_mv", "temperature_c", "adv_count", "uptime_s"):
             v = x.get(k)
-            if v is not None and (not isinstance(v, int | float) or isinstance(v, bool) or not math.isfinite(v)):
+            if v is not None and (
+                not isinstance(v, int | float) or isinstance(v, bool) or not math.isfinite(v)
+            ):
                 raise WireError(f"content.telemetry[{i}].{k}", f"must be a number, got {v!r}")
     return DecodedContent(boot, float(offset), t_ms, list(map(tags.__getitem__, idx)), rssi, telemetry, gap)
 
 
 # ------------------------------------------------------------------ the batch envelope
+
 
 @dataclass(frozen=True, slots=True)
 class BatchEnvelope:
@@ -198,16 +233,35 @@ class BatchEnvelope:
     content: DecodedContent
 
 
-def encode_batch(*, board: str, boot: str, epoch: str, seq: int, digest: str, t1: float,
-                 clock: Mapping[str, float] | None, content: bytes) -> bytes:
+def encode_batch(
+    *,
+    board: str,
+    boot: str,
+    epoch: str,
+    seq: int,
+    digest: str,
+    t1: float,
+    clock: Mapping[str, float] | None,
+    content: bytes,
+) -> bytes:
     """
     One request body of ``POST /v1/batches``.
 
     ``content`` is the canonical JSON the digest was computed over at seal time: it goes into the body
     as the very bytes that were digested, never decoded and encoded again.
     """
-    head = canonical_json({"v": VERSION, "board": board, "boot": boot, "epoch": epoch, "seq": seq,
-                           "digest": digest, "clock": dict(clock) if clock is not None else None, "t1": t1})
+    head = canonical_json(
+        {
+            "v": VERSION,
+            "board": board,
+            "boot": boot,
+            "epoch": epoch,
+            "seq": seq,
+            "digest": digest,
+            "clock": dict(clock) if clock is not None else None,
+            "t1": t1,
+        }
+    )
     return head[:-1] + b',"content":' + content + b"}"
 
 

@@ -47,19 +47,43 @@ REPLAY_DIR = Path(str(resources.files("listenpost.replay_logs")))  # package dat
 
 
 def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None:  # type: ignore[type-arg]
-    p = sub.add_parser(name, help=help_text, description=(
-        "Run the collector and 16 virtual boards replaying the simulated Brackenford Science Centre on "
-        "loopback, then compare what the collector concluded with the truth."))
+    p = sub.add_parser(
+        name,
+        help=help_text,
+        description=(
+            "Run the collector and 16 virtual boards replaying the simulated Brackenford Science Centre on "
+            "loopback, then compare what the collector concluded with the truth."
+        ),
+    )
     p.add_argument("--summary-json", type=Path, metavar="FILE", help="also write the summary as JSON to FILE")
-    p.add_argument("--speed", type=float, default=DEFAULT_SPEED, metavar="S",
-                   help="run S times faster than real time (default %(default)g)")
-    p.add_argument("--state-dir", type=Path, metavar="DIR",
-                   help="collector and board state here (must be new or empty; default: a new temporary directory)")
-    p.add_argument("--port", type=int, default=0, metavar="P", help="collector port on 127.0.0.1 (default: a free one)")
-    p.add_argument("--keep-open", action="store_true",
-                   help="after the summary, keep the collector and boards running until Ctrl-C")
-    p.add_argument("--replay-dir", type=Path, default=REPLAY_DIR, metavar="DIR",
-                   help="simulator output to replay (default: the project's replay_logs/)")
+    p.add_argument(
+        "--speed",
+        type=float,
+        default=DEFAULT_SPEED,
+        metavar="S",
+        help="run S times faster than real time (default %(default)g)",
+    )
+    p.add_argument(
+        "--state-dir",
+        type=Path,
+        metavar="DIR",
+        help="collector and board state here (must be new or empty; default: a new temporary directory)",
+    )
+    p.add_argument(
+        "--port", type=int, default=0, metavar="P", help="collector port on 127.0.0.1 (default: a free one)"
+    )
+    p.add_argument(
+        "--keep-open",
+        action="store_true",
+        help="after the summary, keep the collector and boards running until Ctrl-C",
+    )
+    p.add_argument(
+        "--replay-dir",
+        type=Path,
+        default=REPLAY_DIR,
+        metavar="DIR",
+        help="simulator output to replay (default: the project's replay_logs/)",
+    )
     p.set_defaults(func=run_command)
 
 
@@ -67,7 +91,9 @@ def _state_dir(given: Path | None) -> Path:
     if given is None:
         return Path(tempfile.mkdtemp(prefix="listenpost-demo-"))
     if given.exists() and (not given.is_dir() or any(given.iterdir())):
-        raise ConfigError(f"--state-dir: {given} is not an empty directory (the demo starts from a fresh one)")
+        raise ConfigError(
+            f"--state-dir: {given} is not an empty directory (the demo starts from a fresh one)"
+        )
     try:
         given.mkdir(parents=True, exist_ok=True)
     except OSError as e:
@@ -129,15 +155,21 @@ async def _demo(args: argparse.Namespace, venue: Any, state_dir: Path, counter: 
     base = ScaledClock(speed)
     fleet = Fleet(venue, state_dir, base, liveness=DEMO_LIVENESS)
     end = venue.duration_s + EXTRA_S
-    _out(f"listenpost demo · Brackenford Science Centre (an invented venue, simulated) · {len(fleet.boards)} boards")
-    _out(f"recording {venue.duration_s / 60:g} min from {venue.directory}, run at {speed:g}x "
-         f"(about {end / speed:.0f} s)")
+    _out(
+        f"listenpost demo · Brackenford Science Centre (an invented venue, simulated) · {len(fleet.boards)} boards"
+    )
+    _out(
+        f"recording {venue.duration_s / 60:g} min from {venue.directory}, run at {speed:g}x "
+        f"(about {end / speed:.0f} s)"
+    )
     _out(f"state directory: {state_dir}  (logs: {state_dir / 'demo.log'})")
     try:
         url = await fleet.start_collector(port=args.port)
         _out(f"health page:     {url}/")
         await fleet.start_boards()
-        _out(f"{len(fleet.boards)} boards registered, enrolled and replaying; tags from {venue.tags_file.name}")
+        _out(
+            f"{len(fleet.boards)} boards registered, enrolled and replaying; tags from {venue.tags_file.name}"
+        )
         next_progress = [PROGRESS_EVERY_S]
 
         async def progress(f: Fleet) -> None:
@@ -146,8 +178,12 @@ async def _demo(args: argparse.Namespace, venue: Any, state_dir: Path, counter: 
                 return
             next_progress[0] = real + PROGRESS_EVERY_S
             doc = await f.status()
-            states = ", ".join(f"{n} {s}" for s, n in sorted(doc["fleet"]["by_state"].items(), key=lambda x: -x[1]))
-            _out(f"  minute {max(f.t_true(), 0.0) / 60:5.2f}  ·  {doc['fleet']['readings_total']:>9,} readings  ·  {states}")
+            states = ", ".join(
+                f"{n} {s}" for s, n in sorted(doc["fleet"]["by_state"].items(), key=lambda x: -x[1])
+            )
+            _out(
+                f"  minute {max(f.t_true(), 0.0) / 60:5.2f}  ·  {doc['fleet']['readings_total']:>9,} readings  ·  {states}"
+            )
 
         await fleet.run_until(end, step_s=STEP_S, on_step=progress)
         summary = await fleet.summary()
@@ -157,8 +193,10 @@ async def _demo(args: argparse.Namespace, venue: Any, state_dir: Path, counter: 
             _write_json(args.summary_json, summary, venue, url, state_dir, speed, wall_s, ok)
             _out(f"summary written to {args.summary_json}")
         if args.keep_open:
-            _out(f"\nstill serving {url}/ — the recording has ended, so states will move on from here "
-                 "(boards keep heartbeating but no longer hear tags). Ctrl-C to stop.")
+            _out(
+                f"\nstill serving {url}/ — the recording has ended, so states will move on from here "
+                "(boards keep heartbeating but no longer hear tags). Ctrl-C to stop."
+            )
             with contextlib.suppress(asyncio.CancelledError):
                 await asyncio.Event().wait()
         return 0 if ok else 1
@@ -166,27 +204,57 @@ async def _demo(args: argparse.Namespace, venue: Any, state_dir: Path, counter: 
         await fleet.close()
 
 
-def _report(summary: list[Any], venue: Any, wall_s: float, speed: float, counter: _LevelCounter,
-            state_dir: Path) -> bool:
+def _report(
+    summary: list[Any], venue: Any, wall_s: float, speed: float, counter: _LevelCounter, state_dir: Path
+) -> bool:
     from listenpost.collector.cli import table
 
     def num(v: float | None, fmt: str) -> str | None:
         return None if v is None else format(v, fmt)
 
-    rows = [(s.name, s.room, s.state if s.state == s.expected_state else f"{s.state} (expected {s.expected_state})",
-             f"{s.readings_stored:,}", num(s.skew_est_ppm, "+.2f"), f"{s.skew_true_ppm:+.2f}",
-             num(s.offset_est_s, ".3f"), num(s.offset_true_s, ".3f"), num(s.offset_error_ms, "+.2f"))
-            for s in summary]
+    rows = [
+        (
+            s.name,
+            s.room,
+            s.state if s.state == s.expected_state else f"{s.state} (expected {s.expected_state})",
+            f"{s.readings_stored:,}",
+            num(s.skew_est_ppm, "+.2f"),
+            f"{s.skew_true_ppm:+.2f}",
+            num(s.offset_est_s, ".3f"),
+            num(s.offset_true_s, ".3f"),
+            num(s.offset_error_ms, "+.2f"),
+        )
+        for s in summary
+    ]
     _out()
-    _out(table(rows, ("BOARD", "ROOM", "STATE", "READINGS", "SKEW est ppm", "true ppm", "OFFSET est s", "true s",
-                      "err ms"), right=(3, 4, 5, 6, 7, 8)))
-    _out("OFFSET: collector time minus the board's monotonic clock, at the newest clock exchange the collector "
-         "kept for that board\n(what the collector adds to board time); err ms = estimate minus truth.")
+    _out(
+        table(
+            rows,
+            (
+                "BOARD",
+                "ROOM",
+                "STATE",
+                "READINGS",
+                "SKEW est ppm",
+                "true ppm",
+                "OFFSET est s",
+                "true s",
+                "err ms",
+            ),
+            right=(3, 4, 5, 6, 7, 8),
+        )
+    )
+    _out(
+        "OFFSET: collector time minus the board's monotonic clock, at the newest clock exchange the collector "
+        "kept for that board\n(what the collector adds to board time); err ms = estimate minus truth."
+    )
     for s in summary:
         if abs(s.wall_error_true_s) > 1.0:
             est = "none" if s.wall_error_est_s is None else f"{s.wall_error_est_s:+.3f} s"
-            _out(f"{s.name} wall clock: collector estimates {est}, truly {s.wall_error_true_s:+.3f} s "
-                 f"({s.wall_error_true_s / 3600:+.2f} h)")
+            _out(
+                f"{s.name} wall clock: collector estimates {est}, truly {s.wall_error_true_s:+.3f} s "
+                f"({s.wall_error_true_s / 3600:+.2f} h)"
+            )
     total = sum(s.readings_stored for s in summary)
     _out(f"{total:,} readings stored in {wall_s:.0f} s of real time ({speed:g}x).")
     warn = counter.counts.get("warning", 0)
@@ -197,21 +265,40 @@ def _report(summary: list[Any], venue: Any, wall_s: float, speed: float, counter
     if wrong:
         _out("\nOUTCOME DIFFERS FROM THE TRUTH:")
         for s in wrong:
-            _out(f"  {s.name}: ended {s.state} ({s.state_reason or 'no reason given'}), expected {s.expected_state}")
+            _out(
+                f"  {s.name}: ended {s.state} ({s.state_reason or 'no reason given'}), expected {s.expected_state}"
+            )
         return False
-    _out("\noutcome as expected: u3-a silent (power cut), g2-a deaf (radio hang), u2-a drifting (+85 ppm), "
-         "all others live.")
+    _out(
+        "\noutcome as expected: u3-a silent (power cut), g2-a deaf (radio hang), u2-a drifting (+85 ppm), "
+        "all others live."
+    )
     return True
 
 
-def _write_json(path: Path, summary: list[Any], venue: Any, url: str, state_dir: Path, speed: float,
-                wall_s: float, ok: bool) -> None:
-    doc = {"venue": "Brackenford Science Centre (simulated)", "recording": str(venue.directory),
-           "duration_s": venue.duration_s, "speed": speed, "wall_time_s": round(wall_s, 2), "collector": url,
-           "state_dir": str(state_dir), "outcome_as_expected": ok,
-           "offset_definition": "collector time minus board monotonic time, seconds, at offset_at_board_s "
-                                "(the newest clock exchange the collector's fit kept); offset_error_ms = est - true",
-           "boards": [s.to_json() for s in summary]}
+def _write_json(
+    path: Path,
+    summary: list[Any],
+    venue: Any,
+    url: str,
+    state_dir: Path,
+    speed: float,
+    wall_s: float,
+    ok: bool,
+) -> None:
+    doc = {
+        "venue": "Brackenford Science Centre (simulated)",
+        "recording": str(venue.directory),
+        "duration_s": venue.duration_s,
+        "speed": speed,
+        "wall_time_s": round(wall_s, 2),
+        "collector": url,
+        "state_dir": str(state_dir),
+        "outcome_as_expected": ok,
+        "offset_definition": "collector time minus board monotonic time, seconds, at offset_at_board_s "
+        "(the newest clock exchange the collector's fit kept); offset_error_ms = est - true",
+        "boards": [s.to_json() for s in summary],
+    }
     tmp = path.with_name(path.name + ".part")
     try:
         tmp.write_text(json.dumps(doc, indent=2) + "\n")

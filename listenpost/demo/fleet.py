@@ -59,6 +59,7 @@ class FleetError(ListenpostError):
 
 # ---------------------------------------------------------------- the venue's truth
 
+
 @dataclass(frozen=True, slots=True)
 class BoardTruth:
     """One board as the simulator made it (``truth.json`` ``boards.<name>``)."""
@@ -149,21 +150,38 @@ def load_venue(directory: str | Path) -> Venue:
         rec = d / need(b, "file", where)
         if not rec.exists():
             raise ConfigError(f"{path}: {where}file: {rec} does not exist")
-        boards.append(BoardTruth(
-            name=name, room=room, room_label=f"{room} {need(info, 'title', f'venue.rooms.{room}.')}",
-            floor=str(floors[floor_idx]), recording=rec, boot=str(need(b, "boot", where)),
-            skew_ppm=float(need(b, "skew_ppm", where)), uptime_at_start_s=float(need(b, "uptime_at_start_s", where)),
-            wall_error_s=float(need(b, "wall_error_s", where)), true_offset_db=float(need(b, "true_offset_db", where)),
-            power_off_at_s=b.get("power_off_at_s"), radio_hang_at_s=b.get("radio_hang_at_s")))
+        boards.append(
+            BoardTruth(
+                name=name,
+                room=room,
+                room_label=f"{room} {need(info, 'title', f'venue.rooms.{room}.')}",
+                floor=str(floors[floor_idx]),
+                recording=rec,
+                boot=str(need(b, "boot", where)),
+                skew_ppm=float(need(b, "skew_ppm", where)),
+                uptime_at_start_s=float(need(b, "uptime_at_start_s", where)),
+                wall_error_s=float(need(b, "wall_error_s", where)),
+                true_offset_db=float(need(b, "true_offset_db", where)),
+                power_off_at_s=b.get("power_off_at_s"),
+                radio_hang_at_s=b.get("radio_hang_at_s"),
+            )
+        )
     tags_file = d / "tags.txt"
     if not tags_file.exists():
         raise ConfigError(f"{tags_file}: does not exist (the simulator writes it next to truth.json)")
-    return Venue(directory=d, start_wall=float(need(truth, "start_wall", "")),
-                 duration_s=float(need(truth, "duration_s", "")), boards=tuple(boards), tags_file=tags_file,
-                 decode_rules=tuple(truth.get("decode_rules") or ()), truth=truth)
+    return Venue(
+        directory=d,
+        start_wall=float(need(truth, "start_wall", "")),
+        duration_s=float(need(truth, "duration_s", "")),
+        boards=tuple(boards),
+        tags_file=tags_file,
+        decode_rules=tuple(truth.get("decode_rules") or ()),
+        truth=truth,
+    )
 
 
 # ---------------------------------------------------------------- clock and I/O bookkeeping
+
 
 class TrackingClock:
     """
@@ -236,6 +254,7 @@ class InFlight:
 
 # ---------------------------------------------------------------- replay paced by the board's own clock
 
+
 class BoardTimeReplay:
     """
     A board's recording delivered when the board's clock reaches each advert's recorded time.
@@ -275,6 +294,7 @@ class BoardTimeReplay:
 
 # ---------------------------------------------------------------- the collector
 
+
 @dataclass(slots=True)
 class RunningCollector:
     """A collector app served on loopback by an `aiohttp.web.AppRunner`."""
@@ -301,15 +321,18 @@ def write_collector_yaml(state_dir: Path, venue: Venue, liveness: dict[str, Any]
         data["liveness"] = dict(liveness)
     path = state_dir / "collector.yaml"
     try:
-        path.write_text("# Written by the listenpost fleet runner for the simulated venue.\n"
-                        + yaml.safe_dump(data, sort_keys=False))
+        path.write_text(
+            "# Written by the listenpost fleet runner for the simulated venue.\n"
+            + yaml.safe_dump(data, sort_keys=False)
+        )
     except OSError as e:
         raise ConfigError(f"{path}: cannot write: {e.strerror or e}") from e
     return path
 
 
-async def start_collector(state_dir: Path, clock: Clock, *, config: Path | None = None, port: int = 0,
-                          store: Any = None) -> RunningCollector:
+async def start_collector(
+    state_dir: Path, clock: Clock, *, config: Path | None = None, port: int = 0, store: Any = None
+) -> RunningCollector:
     """
     Serve the collector on 127.0.0.1 (``port`` 0: a free port) with its SQLite store in ``state_dir``.
 
@@ -337,13 +360,15 @@ async def start_collector(state_dir: Path, clock: Clock, *, config: Path | None 
     return RunningCollector(app, runner, f"http://{host}:{bound}", state_dir, read_admin_token(state_dir))
 
 
-async def admin_call(session: aiohttp.ClientSession, url: str, token: str, method: str, path: str,
-                     body: Any = None) -> Any:
+async def admin_call(
+    session: aiohttp.ClientSession, url: str, token: str, method: str, path: str, body: Any = None
+) -> Any:
     """One admin API call with a timeout; the JSON answer, or `FleetError` naming the status and message."""
     timeout = aiohttp.ClientTimeout(total=REQUEST_TIMEOUT_S)
     try:
-        async with session.request(method, url + path, json=body, timeout=timeout,
-                                   headers={"Authorization": f"Bearer {token}"}) as resp:
+        async with session.request(
+            method, url + path, json=body, timeout=timeout, headers={"Authorization": f"Bearer {token}"}
+        ) as resp:
             text = await resp.text()
             if resp.status >= 300:
                 raise FleetError(f"{method} {path}: collector answered {resp.status}: {text[:200]}")
@@ -354,17 +379,24 @@ async def admin_call(session: aiohttp.ClientSession, url: str, token: str, metho
 
 # ---------------------------------------------------------------- one virtual board
 
+
 class VirtualBoard:
     """One board: its derived clock, state directory, enrollment and agent task."""
 
-    def __init__(self, truth: BoardTruth, base: Clock, recording_start: float, state_dir: Path,
-                 pace_s: float = PACE_S) -> None:
+    def __init__(
+        self, truth: BoardTruth, base: Clock, recording_start: float, state_dir: Path, pace_s: float = PACE_S
+    ) -> None:
         self.truth = truth
         self.state_dir = state_dir
         self.pace_s = pace_s
         # boot_at is where the board's monotonic clock read zero: uptime before the recording start.
-        self.clock = DerivedClock(base, skew_ppm=truth.skew_ppm, boot_at=recording_start - truth.uptime_at_start_s,
-                                  wall_error_s=truth.wall_error_s, boot_id=truth.boot)
+        self.clock = DerivedClock(
+            base,
+            skew_ppm=truth.skew_ppm,
+            boot_at=recording_start - truth.uptime_at_start_s,
+            wall_error_s=truth.wall_error_s,
+            boot_id=truth.boot,
+        )
         self.cfg: Any = None
         self.service: Any = None
         self.source: BoardTimeReplay | None = None
@@ -380,9 +412,16 @@ class VirtualBoard:
         from listenpost.agent.client.enroll import EnrollStatus, enroll
         from listenpost.agent.config import load_agent_config
 
-        result = await enroll(url, code, self.state_dir, clock=self.clock, session=session, attempts=2,
-                              backoff_s=1.0, fingerprint_data={"machine_id": f"virtual-{self.name}",
-                                                               "model": "listenpost virtual board"})
+        result = await enroll(
+            url,
+            code,
+            self.state_dir,
+            clock=self.clock,
+            session=session,
+            attempts=2,
+            backoff_s=1.0,
+            fingerprint_data={"machine_id": f"virtual-{self.name}", "model": "listenpost virtual board"},
+        )
         if result.status is not EnrollStatus.ENROLLED or result.config_path is None:
             raise FleetError(f"{self.name}: enrollment failed: {result.message}")
         self.cfg = load_agent_config(result.config_path)
@@ -395,8 +434,10 @@ class VirtualBoard:
             self.service = service
 
         self.source = BoardTimeReplay([self.truth.recording], self.clock, self.pace_s)
-        self.task = asyncio.create_task(run_agent(self.cfg, clock=self.clock, source=self.source, session=session,
-                                                  on_start=keep), name=f"agent:{self.name}")
+        self.task = asyncio.create_task(
+            run_agent(self.cfg, clock=self.clock, source=self.source, session=session, on_start=keep),
+            name=f"agent:{self.name}",
+        )
 
     async def power_off(self) -> None:
         """
@@ -428,6 +469,7 @@ class VirtualBoard:
 
 # ---------------------------------------------------------------- the fleet
 
+
 @dataclass(frozen=True, slots=True)
 class BoardSummary:
     """One board at the end of a run: what the collector concluded, beside the truth."""
@@ -456,13 +498,23 @@ class BoardSummary:
         return None if self.skew_est_ppm is None else self.skew_est_ppm - self.skew_true_ppm
 
     def to_json(self) -> dict[str, Any]:
-        return {"name": self.name, "room": self.room, "state": self.state, "expected_state": self.expected_state,
-                "readings_stored": self.readings_stored, "skew_est_ppm": self.skew_est_ppm,
-                "skew_true_ppm": self.skew_true_ppm, "skew_error_ppm": self.skew_error_ppm,
-                "offset_est_s": self.offset_est_s, "offset_true_s": self.offset_true_s,
-                "offset_error_ms": self.offset_error_ms, "offset_at_board_s": self.offset_at_board_s,
-                "wall_error_est_s": self.wall_error_est_s, "wall_error_true_s": self.wall_error_true_s,
-                "state_reason": self.state_reason}
+        return {
+            "name": self.name,
+            "room": self.room,
+            "state": self.state,
+            "expected_state": self.expected_state,
+            "readings_stored": self.readings_stored,
+            "skew_est_ppm": self.skew_est_ppm,
+            "skew_true_ppm": self.skew_true_ppm,
+            "skew_error_ppm": self.skew_error_ppm,
+            "offset_est_s": self.offset_est_s,
+            "offset_true_s": self.offset_true_s,
+            "offset_error_ms": self.offset_error_ms,
+            "offset_at_board_s": self.offset_at_board_s,
+            "wall_error_est_s": self.wall_error_est_s,
+            "wall_error_true_s": self.wall_error_true_s,
+            "state_reason": self.state_reason,
+        }
 
 
 def expected_state(truth: BoardTruth, skew_tolerance_ppm: float) -> str:
@@ -489,9 +541,16 @@ class Fleet:
         await fleet.close()
     """
 
-    def __init__(self, venue: Venue, state_dir: Path, base: VirtualClock | ScaledClock, *,
-                 liveness: dict[str, Any] | None = None, pace_s: float = PACE_S,
-                 boards: list[str] | None = None) -> None:
+    def __init__(
+        self,
+        venue: Venue,
+        state_dir: Path,
+        base: VirtualClock | ScaledClock,
+        *,
+        liveness: dict[str, Any] | None = None,
+        pace_s: float = PACE_S,
+        boards: list[str] | None = None,
+    ) -> None:
         self.venue = venue
         self.state_dir = Path(state_dir)
         self.virtual = base if isinstance(base, VirtualClock) else None
@@ -500,13 +559,20 @@ class Fleet:
         self.recording_start = base.monotonic()
         """Base monotonic time of the recording's start (t_true = 0)."""
         chosen = [b for b in venue.boards if boards is None or b.name in boards]
-        self.boards = {b.name: VirtualBoard(b, self.clock, self.recording_start, self.state_dir / "boards" / b.name,
-                                            pace_s) for b in chosen}
+        self.boards = {
+            b.name: VirtualBoard(
+                b, self.clock, self.recording_start, self.state_dir / "boards" / b.name, pace_s
+            )
+            for b in chosen
+        }
         self.inflight = InFlight()
         self.session: aiohttp.ClientSession | None = None
         self.collector: RunningCollector | None = None
-        self._pending_power_offs = sorted((b.truth.power_off_at_s, name) for name, b in self.boards.items()
-                                          if b.truth.power_off_at_s is not None)
+        self._pending_power_offs = sorted(
+            (b.truth.power_off_at_s, name)
+            for name, b in self.boards.items()
+            if b.truth.power_off_at_s is not None
+        )
         self.power_off_log: dict[str, float] = {}
         """Board → true time its power was cut."""
 
@@ -544,8 +610,14 @@ class Fleet:
         await admin_call(self.session, url, token, "POST", "/v1/admin/tags", {"ids": tags})
         codes = {}
         for name, board in self.boards.items():
-            answer = await admin_call(self.session, url, token, "POST", "/v1/admin/boards",
-                                      {"name": name, "room": board.truth.room_label, "floor": board.truth.floor})
+            answer = await admin_call(
+                self.session,
+                url,
+                token,
+                "POST",
+                "/v1/admin/boards",
+                {"name": name, "room": board.truth.room_label, "floor": board.truth.floor},
+            )
             codes[name] = answer["code"]
         # Enroll and start one board at a time, so no enrolled board waits long for its first heartbeat.
         for name, board in self.boards.items():
@@ -579,12 +651,19 @@ class Fleet:
                 continue
             calm = 0
             if _real_time.monotonic() > deadline:
-                raise FleetError(f"fleet still busy after {QUIESCE_TIMEOUT_S:.0f} s: {self.inflight.count} requests "
-                                 f"in flight, busy tasks {sorted(self.clock.busy())[:8]}")
+                raise FleetError(
+                    f"fleet still busy after {QUIESCE_TIMEOUT_S:.0f} s: {self.inflight.count} requests "
+                    f"in flight, busy tasks {sorted(self.clock.busy())[:8]}"
+                )
             await asyncio.sleep(QUIESCE_POLL_S)
 
-    async def run_until(self, t_true_end: float, *, step_s: float = 0.5,
-                        on_step: Callable[[Fleet], Awaitable[None]] | None = None) -> None:
+    async def run_until(
+        self,
+        t_true_end: float,
+        *,
+        step_s: float = 0.5,
+        on_step: Callable[[Fleet], Awaitable[None]] | None = None,
+    ) -> None:
         """
         Let the venue run until ``t_true_end`` seconds after the recording's start, cutting power of
         the boards the truth says lose it, at their moment.
@@ -642,7 +721,9 @@ class Fleet:
         doc = await self.status()
         rows = {r["name"]: r for r in doc["boards"]}
         app = self.collector.app
-        tolerance = float((self.liveness or {}).get("skew_tolerance_ppm", LivenessSettings().skew_tolerance_ppm))
+        tolerance = float(
+            (self.liveness or {}).get("skew_tolerance_ppm", LivenessSettings().skew_tolerance_ppm)
+        )
         base = self.clock
         wall_minus_mono = base.time() - base.monotonic()
         out = []
@@ -659,13 +740,24 @@ class Fleet:
                 true = wall_minus_mono + board.clock.boot_at + at_b / board.clock.rate - at_b
                 err = (est - true) * 1000.0
             wall_ms = r.get("wall_error_ms")
-            out.append(BoardSummary(
-                name=name, room=truth.room_label, state=r.get("state") or "unknown",
-                expected_state=expected_state(truth, tolerance), readings_stored=int(r.get("readings_total") or 0),
-                skew_est_ppm=fit.skew_ppm if fit is not None and fit.skew_estimated else None,
-                skew_true_ppm=truth.skew_ppm, offset_est_s=est, offset_true_s=true, offset_error_ms=err,
-                offset_at_board_s=at_b, wall_error_est_s=None if wall_ms is None else wall_ms / 1000.0,
-                wall_error_true_s=truth.wall_error_s, state_reason=r.get("state_reason")))
+            out.append(
+                BoardSummary(
+                    name=name,
+                    room=truth.room_label,
+                    state=r.get("state") or "unknown",
+                    expected_state=expected_state(truth, tolerance),
+                    readings_stored=int(r.get("readings_total") or 0),
+                    skew_est_ppm=fit.skew_ppm if fit is not None and fit.skew_estimated else None,
+                    skew_true_ppm=truth.skew_ppm,
+                    offset_est_s=est,
+                    offset_true_s=true,
+                    offset_error_ms=err,
+                    offset_at_board_s=at_b,
+                    wall_error_est_s=None if wall_ms is None else wall_ms / 1000.0,
+                    wall_error_true_s=truth.wall_error_s,
+                    state_reason=r.get("state_reason"),
+                )
+            )
         await self.quiesce()
         return out
 
@@ -693,6 +785,20 @@ class Fleet:
             self.collector = None
 
 
-__all__ = ["BoardSummary", "BoardTimeReplay", "BoardTruth", "Fleet", "FleetError", "InFlight", "RunningCollector",
-           "TrackingClock", "Venue", "VirtualBoard", "admin_call", "expected_state", "load_venue", "start_collector",
-           "write_collector_yaml"]
+__all__ = [
+    "BoardSummary",
+    "BoardTimeReplay",
+    "BoardTruth",
+    "Fleet",
+    "FleetError",
+    "InFlight",
+    "RunningCollector",
+    "TrackingClock",
+    "Venue",
+    "VirtualBoard",
+    "admin_call",
+    "expected_state",
+    "load_venue",
+    "start_collector",
+    "write_collector_yaml",
+]

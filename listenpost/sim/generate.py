@@ -138,22 +138,39 @@ class Simulation:
 
 # ---------------------------------------------------------------- payloads
 
+
 def ibeacon_payload(uuid_text: str, major: int, minor: int, power_dbm: int) -> bytes:
     """iBeacon-format manufacturer payload after the company ID: ``02 15`` uuid major minor power."""
-    return (b"\x02\x15" + uuid.UUID(uuid_text).bytes + major.to_bytes(2, "big") + minor.to_bytes(2, "big")
-            + power_dbm.to_bytes(1, "big", signed=True))
+    return (
+        b"\x02\x15"
+        + uuid.UUID(uuid_text).bytes
+        + major.to_bytes(2, "big")
+        + minor.to_bytes(2, "big")
+        + power_dbm.to_bytes(1, "big", signed=True)
+    )
 
 
 def eddystone_uid_frame(namespace: bytes, instance: int, ranging_dbm: int) -> bytes:
     """Eddystone-UID service data after the UUID: frame 0x00, TX power at 0 m, namespace, instance, RFU."""
-    return b"\x00" + ranging_dbm.to_bytes(1, "big", signed=True) + namespace + instance.to_bytes(6, "big") + b"\x00\x00"
+    return (
+        b"\x00"
+        + ranging_dbm.to_bytes(1, "big", signed=True)
+        + namespace
+        + instance.to_bytes(6, "big")
+        + b"\x00\x00"
+    )
 
 
 def eddystone_tlm_frame(battery_mv: int, temperature_c: float, adv_count: int, uptime_s: float) -> bytes:
     """Unencrypted Eddystone-TLM v0: battery mV, temperature 8.8 fixed point, advert count, 0.1 s count."""
     temp = round(temperature_c * 256) & 0xFFFF
-    return (b"\x20\x00" + battery_mv.to_bytes(2, "big") + temp.to_bytes(2, "big")
-            + (adv_count & 0xFFFFFFFF).to_bytes(4, "big") + (int(uptime_s * 10) & 0xFFFFFFFF).to_bytes(4, "big"))
+    return (
+        b"\x20\x00"
+        + battery_mv.to_bytes(2, "big")
+        + temp.to_bytes(2, "big")
+        + (adv_count & 0xFFFFFFFF).to_bytes(4, "big")
+        + (int(uptime_s * 10) & 0xFFFFFFFF).to_bytes(4, "big")
+    )
 
 
 def _random_address(rng: np.random.Generator, top_bits: int) -> str:
@@ -169,40 +186,95 @@ def _pos(scenario: Scenario, p: Placed) -> tuple[float, float, float]:
 
 # ---------------------------------------------------------------- the run
 
-def _devices(scenario: Scenario, venue: Venue, duration_s: float, rng: np.random.Generator,
-             addr_rng: np.random.Generator) -> tuple[list[Device], int, int]:
+
+def _devices(
+    scenario: Scenario,
+    venue: Venue,
+    duration_s: float,
+    rng: np.random.Generator,
+    addr_rng: np.random.Generator,
+) -> tuple[list[Device], int, int]:
     t = scenario.tags
     visitor_ids: list[tuple[DeviceKind, str, dict[str, Any]]] = []
     for minor in range(t.ibeacon_minors[0], t.ibeacon_minors[1] + 1):
-        visitor_ids.append((DeviceKind.IBEACON_TAG, f"ibeacon:{t.venue_uuid}:{t.ibeacon_major}:{minor}",
-                            {"manufacturer": {APPLE_COMPANY_ID: ibeacon_payload(t.venue_uuid, t.ibeacon_major, minor,
-                                                                                t.measured_power_dbm)}}))
-    ranging = t.measured_power_dbm + 41   # Eddystone: TX power at 0 m ≈ RSSI at 1 m + 41 dB (spec's advice)
+        visitor_ids.append(
+            (
+                DeviceKind.IBEACON_TAG,
+                f"ibeacon:{t.venue_uuid}:{t.ibeacon_major}:{minor}",
+                {
+                    "manufacturer": {
+                        APPLE_COMPANY_ID: ibeacon_payload(
+                            t.venue_uuid, t.ibeacon_major, minor, t.measured_power_dbm
+                        )
+                    }
+                },
+            )
+        )
+    ranging = t.measured_power_dbm + 41  # Eddystone: TX power at 0 m ≈ RSSI at 1 m + 41 dB (spec's advice)
     for inst in range(t.eddystone_instances[0], t.eddystone_instances[1] + 1):
-        visitor_ids.append((DeviceKind.EDDYSTONE_TAG, f"eddystone:{t.eddystone_namespace.hex()}:{inst:012x}",
-                            {"service_data": {EDDYSTONE_UUID: eddystone_uid_frame(t.eddystone_namespace, inst, ranging)},
-                             "service_uuids": (EDDYSTONE_UUID,)}))
+        visitor_ids.append(
+            (
+                DeviceKind.EDDYSTONE_TAG,
+                f"eddystone:{t.eddystone_namespace.hex()}:{inst:012x}",
+                {
+                    "service_data": {
+                        EDDYSTONE_UUID: eddystone_uid_frame(t.eddystone_namespace, inst, ranging)
+                    },
+                    "service_uuids": (EDDYSTONE_UUID,),
+                },
+            )
+        )
     rule = t.custom_rule
     for num in range(t.custom_numbers[0], t.custom_numbers[1] + 1):
         ident = num.to_bytes(rule.length, "big")
         payload = rule.prefix + bytes(max(0, rule.offset - len(rule.prefix))) + ident
-        visitor_ids.append((DeviceKind.CUSTOM_TAG, f"{rule.name}:{ident.hex()}", {"manufacturer": {rule.company_id: payload}}))
+        visitor_ids.append(
+            (
+                DeviceKind.CUSTOM_TAG,
+                f"{rule.name}:{ident.hex()}",
+                {"manufacturer": {rule.company_id: payload}},
+            )
+        )
 
     run = simulate_visitors(scenario, venue, len(visitor_ids), duration_s, rng)
     devices: list[Device] = []
     for (kind, ident, payload), track in zip(visitor_ids, run.tags, strict=True):
         extra: dict[str, Any] = {}
         if kind is DeviceKind.EDDYSTONE_TAG:
-            extra["eddystone"] = (float(addr_rng.uniform(*t.battery_mv)), t.temperature_c + float(addr_rng.normal(0, 1.0)),
-                                  int(addr_rng.integers(0, t.tlm_every)))
-        devices.append(Device(kind, ident, (_random_address(addr_rng, 0b11),), t.interval_s, t.measured_power_dbm,
-                              track, **payload, **extra))
+            extra["eddystone"] = (
+                float(addr_rng.uniform(*t.battery_mv)),
+                t.temperature_c + float(addr_rng.normal(0, 1.0)),
+                int(addr_rng.integers(0, t.tlm_every)),
+            )
+        devices.append(
+            Device(
+                kind,
+                ident,
+                (_random_address(addr_rng, 0b11),),
+                t.interval_s,
+                t.measured_power_dbm,
+                track,
+                **payload,
+                **extra,
+            )
+        )
     for ref in t.reference:
         ident = f"ibeacon:{t.venue_uuid}:{t.reference_major}:{ref.minor}"
-        devices.append(Device(DeviceKind.REFERENCE_TAG, ident, (_random_address(addr_rng, 0b11),), t.interval_s,
-                              t.measured_power_dbm, Track.fixed(_pos(scenario, ref.place), venue.index[ref.place.room], duration_s),
-                              manufacturer={APPLE_COMPANY_ID: ibeacon_payload(t.venue_uuid, t.reference_major, ref.minor,
-                                                                              t.measured_power_dbm)}))
+        devices.append(
+            Device(
+                DeviceKind.REFERENCE_TAG,
+                ident,
+                (_random_address(addr_rng, 0b11),),
+                t.interval_s,
+                t.measured_power_dbm,
+                Track.fixed(_pos(scenario, ref.place), venue.index[ref.place.room], duration_s),
+                manufacturer={
+                    APPLE_COMPANY_ID: ibeacon_payload(
+                        t.venue_uuid, t.reference_major, ref.minor, t.measured_power_dbm
+                    )
+                },
+            )
+        )
     n = scenario.noise
     for fx in n.fixed:
         devices.append(_fixed_noise(scenario, venue, fx, duration_s, addr_rng))
@@ -211,22 +283,39 @@ def _devices(scenario: Scenario, venue: Venue, duration_s: float, rng: np.random
         addrs = tuple(_random_address(addr_rng, 0b01) for _ in range(epochs))
         junk = bytes(addr_rng.integers(0, 256, 8, dtype=np.uint8))
         company = APPLE_COMPANY_ID if addr_rng.random() < 0.6 else 0x0075
-        devices.append(Device(DeviceKind.PHONE, None, addrs, n.phone_interval_s, n.phone_power_dbm, track,
-                              manufacturer={company: b"\x10\x05" + junk[:5] if company == APPLE_COMPANY_ID else junk},
-                              rotation_s=n.phone_rotation_s))
+        devices.append(
+            Device(
+                DeviceKind.PHONE,
+                None,
+                addrs,
+                n.phone_interval_s,
+                n.phone_power_dbm,
+                track,
+                manufacturer={company: b"\x10\x05" + junk[:5] if company == APPLE_COMPANY_ID else junk},
+                rotation_s=n.phone_rotation_s,
+            )
+        )
     return devices, run.visitors, run.without_tag
 
 
-def _fixed_noise(scenario: Scenario, venue: Venue, fx: FixedNoise, duration_s: float,
-                 addr_rng: np.random.Generator) -> Device:
+def _fixed_noise(
+    scenario: Scenario, venue: Venue, fx: FixedNoise, duration_s: float, addr_rng: np.random.Generator
+) -> Device:
     track = Track.fixed(_pos(scenario, fx.place), venue.index[fx.place.room], duration_s)
     if fx.kind is NoiseKind.IBEACON:
         assert fx.uuid is not None
         mfg = {APPLE_COMPANY_ID: ibeacon_payload(fx.uuid, fx.major, fx.minor, fx.measured_power_dbm)}
     else:
         mfg = {fx.company_id: fx.payload}
-    return Device(DeviceKind.NOISE, None, (_random_address(addr_rng, 0b11),), fx.interval_s, fx.measured_power_dbm,
-                  track, manufacturer=mfg)
+    return Device(
+        DeviceKind.NOISE,
+        None,
+        (_random_address(addr_rng, 0b11),),
+        fx.interval_s,
+        fx.measured_power_dbm,
+        track,
+        manufacturer=mfg,
+    )
 
 
 def _boards(scenario: Scenario, rng: np.random.Generator) -> tuple[BoardTruth, ...]:
@@ -239,17 +328,26 @@ def _boards(scenario: Scenario, rng: np.random.Generator) -> tuple[BoardTruth, .
         uptime = float(rng.uniform(*c.uptime_s))
         wall = float(rng.uniform(-c.wall_error_s_max, c.wall_error_s_max))
         boot = str(uuid.UUID(bytes=bytes(rng.integers(0, 256, 16, dtype=np.uint8)), version=4))
-        out.append(BoardTruth(
-            name=b.name, room=b.room, pos=_pos(scenario, Placed(b.room, b.at)),
-            offset_db=round(b.offset_db if b.offset_db is not None else offset, 2),
-            skew_ppm=round(b.skew_ppm if b.skew_ppm is not None else skew, 3),
-            uptime_at_start_s=round(uptime, 3), boot=boot,
-            wall_error_s=round(b.wall_error_s if b.wall_error_s is not None else wall, 4),
-            power_off_at_s=b.power_off_at_s, radio_hang_at_s=b.radio_hang_at_s))
+        out.append(
+            BoardTruth(
+                name=b.name,
+                room=b.room,
+                pos=_pos(scenario, Placed(b.room, b.at)),
+                offset_db=round(b.offset_db if b.offset_db is not None else offset, 2),
+                skew_ppm=round(b.skew_ppm if b.skew_ppm is not None else skew, 3),
+                uptime_at_start_s=round(uptime, 3),
+                boot=boot,
+                wall_error_s=round(b.wall_error_s if b.wall_error_s is not None else wall, 4),
+                power_off_at_s=b.power_off_at_s,
+                radio_hang_at_s=b.radio_hang_at_s,
+            )
+        )
     return tuple(out)
 
 
-def _advert_times(dev: Device, duration_s: float, adv_delay_max_s: float, rng: np.random.Generator) -> np.ndarray:
+def _advert_times(
+    dev: Device, duration_s: float, adv_delay_max_s: float, rng: np.random.Generator
+) -> np.ndarray:
     n = int(math.ceil(duration_s / dev.interval_s)) + 2
     gaps = dev.interval_s + rng.uniform(0.0, adv_delay_max_s, n)
     t = rng.uniform(0.0, dev.interval_s) + np.concatenate([[0.0], np.cumsum(gaps[:-1])])
@@ -270,8 +368,9 @@ def simulate(scenario: Scenario, minutes: float, seed: int | None = None) -> Sim
     ss = np.random.SeedSequence(seed)
     visit_ss, addr_ss, board_ss, radio_ss = ss.spawn(4)
     venue = Venue(scenario)
-    devices, visitors, without_tag = _devices(scenario, venue, duration, np.random.default_rng(visit_ss),
-                                              np.random.default_rng(addr_ss))
+    devices, visitors, without_tag = _devices(
+        scenario, venue, duration, np.random.default_rng(visit_ss), np.random.default_rng(addr_ss)
+    )
     boards = _boards(scenario, np.random.default_rng(board_ss))
     bpos = np.array([b.pos for b in boards])
     offsets = np.array([b.offset_db for b in boards], dtype=np.float32)
@@ -310,10 +409,13 @@ def simulate(scenario: Scenario, minutes: float, seed: int | None = None) -> Sim
             t, d, kk, r = np.zeros(0), np.zeros(0, np.int32), np.zeros(0, np.int64), np.zeros(0, np.int16)
         order = np.lexsort((d, t))
         heard_all.append(Heard(t[order], d[order], kk[order], r[order]))
-    return Simulation(scenario, duration, tuple(devices), boards, tuple(heard_all), visitors, without_tag, sent)
+    return Simulation(
+        scenario, duration, tuple(devices), boards, tuple(heard_all), visitors, without_tag, sent
+    )
 
 
 # ---------------------------------------------------------------- adverts as a board sees them
+
 
 def board_adverts(sim: Simulation, board_index: int) -> Iterator[Advert]:
     """The `Advert` values of one board's recording, in time order (board monotonic time, ms resolution)."""
@@ -324,8 +426,9 @@ def board_adverts(sim: Simulation, board_index: int) -> Iterator[Advert]:
     devices = sim.devices
     tlm_every = tags.tlm_every
     drop_per_s = tags.battery_drop_mv_per_hour / 3600.0
-    for tms, di, k, r, tt in zip(t_ms.tolist(), h.device.tolist(), h.k.tolist(), h.rssi.tolist(), h.t_true.tolist(),
-                                 strict=True):
+    for tms, di, k, r, tt in zip(
+        t_ms.tolist(), h.device.tolist(), h.k.tolist(), h.rssi.tolist(), h.t_true.tolist(), strict=True
+    ):
         dev = devices[di]
         addr = dev.addresses[0]
         service_data = dev.service_data
@@ -334,17 +437,24 @@ def board_adverts(sim: Simulation, board_index: int) -> Iterator[Advert]:
         elif dev.eddystone is not None and (k + dev.eddystone[2]) % tlm_every == 0:
             battery0, temp, _ = dev.eddystone
             # Tags were switched on a day before the recording; the count keeps running from there.
-            service_data = {EDDYSTONE_UUID: eddystone_tlm_frame(int(battery0 - drop_per_s * tt),
-                                                                round(temp * 4) / 4, 172_800 + k, 86_400.0 + tt)}
+            service_data = {
+                EDDYSTONE_UUID: eddystone_tlm_frame(
+                    int(battery0 - drop_per_s * tt), round(temp * 4) / 4, 172_800 + k, 86_400.0 + tt
+                )
+            }
         yield Advert(tms * 1_000_000, addr, 1, r, None, dev.manufacturer, service_data, dev.service_uuids)
 
 
 # ---------------------------------------------------------------- files
 
+
 def _gzip_deterministic(src: Path, dst: Path) -> None:
     """gzip ``src`` to ``dst`` with mtime 0 and no file name in the header, so reruns are byte-identical."""
-    with open(src, "rb") as fi, open(dst, "wb") as fo, \
-            gzip.GzipFile(filename="", mode="wb", fileobj=fo, compresslevel=9, mtime=0) as gz:
+    with (
+        open(src, "rb") as fi,
+        open(dst, "wb") as fo,
+        gzip.GzipFile(filename="", mode="wb", fileobj=fo, compresslevel=9, mtime=0) as gz,
+    ):
         shutil.copyfileobj(fi, gz, 1 << 20)
 
 
@@ -356,8 +466,13 @@ def write_recordings(sim: Simulation, out_dir: Path) -> dict[str, int]:
     for i, b in enumerate(sim.boards):
         plain = out_dir / f".{b.name}.jsonl.tmp"
         try:
-            counts[b.name] = write_recording(plain, board_adverts(sim, i), board=b.name, boot=b.boot,
-                                             wall_at_start=round(sim.scenario.start_wall + b.wall_error_s, 3))
+            counts[b.name] = write_recording(
+                plain,
+                board_adverts(sim, i),
+                board=b.name,
+                boot=b.boot,
+                wall_at_start=round(sim.scenario.start_wall + b.wall_error_s, 3),
+            )
             _gzip_deterministic(plain, out_dir / f"{b.name}.jsonl.gz")
         finally:
             plain.unlink(missing_ok=True)
@@ -367,10 +482,16 @@ def write_recordings(sim: Simulation, out_dir: Path) -> dict[str, int]:
 def _merge_segments(track: Track, names: tuple[str, ...]) -> list[list[Any]]:
     """Run-length room segments ``[t0, t1, room, holder]``, seconds to 0.1 s; moves inside a room merge."""
     out: list[list[Any]] = []
-    for t0, t1, room, holder in zip(track.t0.tolist(), track.t1.tolist(), track.room.tolist(), track.holder.tolist(),
-                                    strict=True):
+    for t0, t1, room, holder in zip(
+        track.t0.tolist(), track.t1.tolist(), track.room.tolist(), track.holder.tolist(), strict=True
+    ):
         label = Holder(holder).name.lower()
-        if out and out[-1][2] == names[room] and out[-1][3] == label and abs(out[-1][1] - round(t0, 1)) < 0.11:
+        if (
+            out
+            and out[-1][2] == names[room]
+            and out[-1][3] == label
+            and abs(out[-1][1] - round(t0, 1)) < 0.11
+        ):
             out[-1][1] = round(t1, 1)
         else:
             out.append([round(t0, 1), round(t1, 1), names[room], label])
@@ -384,10 +505,15 @@ def truth_document(sim: Simulation, counts: dict[str, int] | None = None) -> dic
     boards = {}
     for b, h in zip(sim.boards, sim.heard, strict=True):
         boards[b.name] = {
-            "room": b.room, "pos_m": [round(v, 3) for v in b.pos],
-            "true_offset_db": b.offset_db, "skew_ppm": b.skew_ppm, "boot": b.boot,
-            "uptime_at_start_s": b.uptime_at_start_s, "wall_error_s": b.wall_error_s,
-            "power_off_at_s": b.power_off_at_s, "radio_hang_at_s": b.radio_hang_at_s,
+            "room": b.room,
+            "pos_m": [round(v, 3) for v in b.pos],
+            "true_offset_db": b.offset_db,
+            "skew_ppm": b.skew_ppm,
+            "boot": b.boot,
+            "uptime_at_start_s": b.uptime_at_start_s,
+            "wall_error_s": b.wall_error_s,
+            "power_off_at_s": b.power_off_at_s,
+            "radio_hang_at_s": b.radio_hang_at_s,
             "adverts": int(len(h.t_true)) if counts is None else counts[b.name],
             "last_advert_true_s": round(float(h.t_true[-1]), 3) if len(h.t_true) else None,
             "file": f"{b.name}.jsonl.gz",
@@ -395,36 +521,72 @@ def truth_document(sim: Simulation, counts: dict[str, int] | None = None) -> dic
     tags = {}
     for d in sim.devices:
         if d.tag_id is not None:
-            tags[d.tag_id] = {"kind": d.kind.value, "address": d.addresses[0],
-                              "segments": _merge_segments(d.track, names)}
+            tags[d.tag_id] = {
+                "kind": d.kind.value,
+                "address": d.addresses[0],
+                "segments": _merge_segments(d.track, names),
+            }
     return {
-        "format": TRUTH_FORMAT, "version": 1,
-        "scenario": s.name, "seed": s.seed, "duration_s": sim.duration_s, "start_wall": s.start_wall,
-        "notes": ("Times are true seconds from recording start. Board time t_board = (t_true + uptime_at_start_s)"
-                  " * (1 + skew_ppm*1e-6). true_offset_db is what the board's adapter adds to every report;"
-                  " the calibrated correction is its negative. Segments are [t0, t1, room, holder]."),
-        "venue": {"ibeacon_uuid": s.tags.venue_uuid, "ibeacon_major": s.tags.ibeacon_major,
-                  "reference_major": s.tags.reference_major,
-                  "eddystone_namespace": s.tags.eddystone_namespace.hex(),
-                  "floor_height_m": s.floor_height_m, "floors": list(s.floors),
-                  "rooms": {r.name: {"title": r.title, "floor": r.floor, "x": list(r.x), "y": list(r.y),
-                                     "doors": list(r.doors)} for r in s.rooms}},
+        "format": TRUTH_FORMAT,
+        "version": 1,
+        "scenario": s.name,
+        "seed": s.seed,
+        "duration_s": sim.duration_s,
+        "start_wall": s.start_wall,
+        "notes": (
+            "Times are true seconds from recording start. Board time t_board = (t_true + uptime_at_start_s)"
+            " * (1 + skew_ppm*1e-6). true_offset_db is what the board's adapter adds to every report;"
+            " the calibrated correction is its negative. Segments are [t0, t1, room, holder]."
+        ),
+        "venue": {
+            "ibeacon_uuid": s.tags.venue_uuid,
+            "ibeacon_major": s.tags.ibeacon_major,
+            "reference_major": s.tags.reference_major,
+            "eddystone_namespace": s.tags.eddystone_namespace.hex(),
+            "floor_height_m": s.floor_height_m,
+            "floors": list(s.floors),
+            "rooms": {
+                r.name: {
+                    "title": r.title,
+                    "floor": r.floor,
+                    "x": list(r.x),
+                    "y": list(r.y),
+                    "doors": list(r.doors),
+                }
+                for r in s.rooms
+            },
+        },
         "decode_rules": [s.tags.custom_rule.as_dict()],
-        "radio": {"exponent": s.radio.exponent, "wall_db": s.radio.wall_db, "floor_db": s.radio.floor_db,
-                  "shadowing_sigma_db": s.radio.shadowing_sigma_db, "sensitivity_dbm": s.radio.sensitivity_dbm,
-                  "hear_probability": s.radio.hear_probability, "p1_dbm": s.tags.measured_power_dbm},
-        "faults": {b.name: {k: v for k, v in (("power_off_at_s", b.power_off_at_s),
-                                              ("radio_hang_at_s", b.radio_hang_at_s)) if v is not None}
-                   | ({"wall_error_s": b.wall_error_s} if abs(b.wall_error_s) > 1 else {})
-                   | ({"skew_ppm": b.skew_ppm} if abs(b.skew_ppm) > s.clocks.skew_ppm_max else {})
-                   for b in sim.boards
-                   if b.power_off_at_s is not None or b.radio_hang_at_s is not None or abs(b.wall_error_s) > 1
-                   or abs(b.skew_ppm) > s.clocks.skew_ppm_max},
+        "radio": {
+            "exponent": s.radio.exponent,
+            "wall_db": s.radio.wall_db,
+            "floor_db": s.radio.floor_db,
+            "shadowing_sigma_db": s.radio.shadowing_sigma_db,
+            "sensitivity_dbm": s.radio.sensitivity_dbm,
+            "hear_probability": s.radio.hear_probability,
+            "p1_dbm": s.tags.measured_power_dbm,
+        },
+        "faults": {
+            b.name: {
+                k: v
+                for k, v in (("power_off_at_s", b.power_off_at_s), ("radio_hang_at_s", b.radio_hang_at_s))
+                if v is not None
+            }
+            | ({"wall_error_s": b.wall_error_s} if abs(b.wall_error_s) > 1 else {})
+            | ({"skew_ppm": b.skew_ppm} if abs(b.skew_ppm) > s.clocks.skew_ppm_max else {})
+            for b in sim.boards
+            if b.power_off_at_s is not None
+            or b.radio_hang_at_s is not None
+            or abs(b.wall_error_s) > 1
+            or abs(b.skew_ppm) > s.clocks.skew_ppm_max
+        },
         "boards": boards,
         "tags": tags,
         "visitors": {"arrived": sim.visitors, "without_tag": sim.without_tag},
-        "noise": {"phones": sum(d.kind is DeviceKind.PHONE for d in sim.devices),
-                  "fixed": sum(d.kind is DeviceKind.NOISE for d in sim.devices)},
+        "noise": {
+            "phones": sum(d.kind is DeviceKind.PHONE for d in sim.devices),
+            "fixed": sum(d.kind is DeviceKind.NOISE for d in sim.devices),
+        },
         "adverts_sent": sim.adverts_sent,
     }
 
@@ -446,8 +608,14 @@ class Result:
     """Wall-clock seconds per phase (``simulate``, ``recordings``, ``btsnoop``, ``truth``)."""
 
 
-def generate(scenario: Scenario, minutes: float, out_dir: str | Path, *, seed: int | None = None,
-             btsnoop_board: str | None = "g0-a") -> Result:
+def generate(
+    scenario: Scenario,
+    minutes: float,
+    out_dir: str | Path,
+    *,
+    seed: int | None = None,
+    btsnoop_board: str | None = "g0-a",
+) -> Result:
     """
     Simulate and write everything into ``out_dir`` (created if missing).
 
@@ -478,12 +646,22 @@ def generate(scenario: Scenario, minutes: float, out_dir: str | Path, *, seed: i
     truth = truth_document(sim, counts)
     truth["btsnoop"] = f"{btsnoop_board}.btsnoop.gz" if btsnoop_board else None
     _write_atomic(out / "truth.json", json.dumps(truth, sort_keys=True, separators=(",", ":")) + "\n")
-    _write_atomic(out / "tags.txt", f"# registered tags of scenario {scenario.name} (seed {scenario.seed})\n"
-                  + "".join(t + "\n" for t in tag_lines(sim)))
+    _write_atomic(
+        out / "tags.txt",
+        f"# registered tags of scenario {scenario.name} (seed {scenario.seed})\n"
+        + "".join(t + "\n" for t in tag_lines(sim)),
+    )
     files += [out / "truth.json", out / "tags.txt"]
     timing["truth"] = time.perf_counter() - t0
-    log.info("sim_written", scenario=scenario.name, minutes=minutes, seed=scenario.seed, out=str(out),
-             lines=sum(counts.values()), **{f"{k}_s": round(v, 2) for k, v in timing.items()})
+    log.info(
+        "sim_written",
+        scenario=scenario.name,
+        minutes=minutes,
+        seed=scenario.seed,
+        out=str(out),
+        lines=sum(counts.values()),
+        **{f"{k}_s": round(v, 2) for k, v in timing.items()},
+    )
     return Result(out, tuple(files), counts, timing)
 
 

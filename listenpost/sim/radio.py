@@ -21,8 +21,13 @@ from listenpost.sim.scenario import RadioSpec
 REFERENCE_DISTANCE_M = 1.0
 
 
-def mean_rssi_dbm(p1_dbm: np.ndarray | float, distance_m: np.ndarray, walls: np.ndarray, floors: np.ndarray,
-                  radio: RadioSpec) -> np.ndarray:
+def mean_rssi_dbm(
+    p1_dbm: np.ndarray | float,
+    distance_m: np.ndarray,
+    walls: np.ndarray,
+    floors: np.ndarray,
+    radio: RadioSpec,
+) -> np.ndarray:
     """
     Mean RSSI before shadowing and board offset, dBm.
 
@@ -33,12 +38,17 @@ def mean_rssi_dbm(p1_dbm: np.ndarray | float, distance_m: np.ndarray, walls: np.
         floors: floor slabs crossed.
     """
     d = np.maximum(np.asarray(distance_m, dtype=float), REFERENCE_DISTANCE_M)
-    return (np.asarray(p1_dbm, dtype=float) - 10.0 * radio.exponent * np.log10(d)
-            - radio.wall_db * np.asarray(walls) - radio.floor_db * np.asarray(floors))
+    return (
+        np.asarray(p1_dbm, dtype=float)
+        - 10.0 * radio.exponent * np.log10(d)
+        - radio.wall_db * np.asarray(walls)
+        - radio.floor_db * np.asarray(floors)
+    )
 
 
-def sample_reports(mean_dbm: np.ndarray, offset_db: np.ndarray | float, radio: RadioSpec,
-                   rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
+def sample_reports(
+    mean_dbm: np.ndarray, offset_db: np.ndarray | float, radio: RadioSpec, rng: np.random.Generator
+) -> tuple[np.ndarray, np.ndarray]:
     """
     Draw what boards report for advertisements with the given mean RSSI.
 

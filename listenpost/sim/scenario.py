@@ -49,7 +49,11 @@ def _span(s: Section, name: str) -> tuple[float, float]:
 
 def _int_span(s: Section, name: str) -> tuple[int, int]:
     raw = s.get(name, list)
-    if len(raw) != 2 or not all(isinstance(v, int) and not isinstance(v, bool) for v in raw) or raw[0] > raw[1]:
+    if (
+        len(raw) != 2
+        or not all(isinstance(v, int) and not isinstance(v, bool) for v in raw)
+        or raw[0] > raw[1]
+    ):
         raise s.fail(name, f"must be [first, last] integers with first <= last, got {raw!r}")
     return int(raw[0]), int(raw[1])
 
@@ -148,8 +152,13 @@ class DecodeRuleSpec:
 
     def as_dict(self) -> dict[str, Any]:
         """The rule in the form config files and the collector take."""
-        return {"name": self.name, "company_id": self.company_id, "prefix": self.prefix.hex(),
-                "offset": self.offset, "length": self.length}
+        return {
+            "name": self.name,
+            "company_id": self.company_id,
+            "prefix": self.prefix.hex(),
+            "offset": self.offset,
+            "length": self.length,
+        }
 
 
 @dataclass(frozen=True, slots=True)
@@ -308,14 +317,21 @@ def _parse_rooms(top: Section, floors: tuple[str, ...]) -> tuple[Room, ...]:
         raise top.fail("rooms", "needs at least one room")
     for s in items:
         name = s.get("name", str, check=lambda v: None if _NAME.fullmatch(v) else "must be a short name")
-        floor = s.get("floor", str, check=lambda v: None if v in floors else f"must be one of {', '.join(floors)}")
-        rooms.append(Room(
-            name=name, title=s.get("title", str, name), floor=floors.index(floor),
-            x=_span(s, "x"), y=_span(s, "y"),
-            doors=tuple(s.get("doors", list)),
-            dwell_factor=s.get("dwell_factor", float, 1.0, positive),
-            weight=s.get("weight", float, 1.0, non_negative),
-        ))
+        floor = s.get(
+            "floor", str, check=lambda v: None if v in floors else f"must be one of {', '.join(floors)}"
+        )
+        rooms.append(
+            Room(
+                name=name,
+                title=s.get("title", str, name),
+                floor=floors.index(floor),
+                x=_span(s, "x"),
+                y=_span(s, "y"),
+                doors=tuple(s.get("doors", list)),
+                dwell_factor=s.get("dwell_factor", float, 1.0, positive),
+                weight=s.get("weight", float, 1.0, non_negative),
+            )
+        )
         s.done()
     names = [r.name for r in rooms]
     for i, (s, r) in enumerate(zip(items, rooms, strict=True)):
@@ -328,8 +344,14 @@ def _parse_rooms(top: Section, floors: tuple[str, ...]) -> tuple[Room, ...]:
                 raise s.fail("doors", f"door to {d!r} must be listed on both sides")
     # Overlapping rectangles on one floor would make "which room is this point in" ambiguous.
     for i, a in enumerate(rooms):
-        for b in rooms[i + 1:]:
-            if a.floor == b.floor and a.x[0] < b.x[1] and b.x[0] < a.x[1] and a.y[0] < b.y[1] and b.y[0] < a.y[1]:
+        for b in rooms[i + 1 :]:
+            if (
+                a.floor == b.floor
+                and a.x[0] < b.x[1]
+                and b.x[0] < a.x[1]
+                and a.y[0] < b.y[1]
+                and b.y[0] < a.y[1]
+            ):
                 raise items[i].fail("x", f"room {a.name} overlaps room {b.name}")
     return tuple(rooms)
 
@@ -343,7 +365,9 @@ def parse_scenario(data: Any, origin: str = "scenario") -> Scenario:
     floor_height = top.get("floor_height_m", float, check=positive)
     floors = tuple(top.get("floors", list))
     if not floors or not all(isinstance(f, str) for f in floors) or len(set(floors)) != len(floors):
-        raise top.fail("floors", f"must be a list of distinct floor names, ground first, got {list(floors)!r}")
+        raise top.fail(
+            "floors", f"must be a list of distinct floor names, ground first, got {list(floors)!r}"
+        )
     rooms = _parse_rooms(top, floors)
     by_name = {r.name: r for r in rooms}
 
@@ -361,16 +385,32 @@ def parse_scenario(data: Any, origin: str = "scenario") -> Scenario:
     if not items:
         raise top.fail("boards", "needs at least one board")
     for s in items:
-        bname = s.get("name", str, check=lambda v: None if _BOARD.fullmatch(v) else "must be a lower-case board name")
+        bname = s.get(
+            "name", str, check=lambda v: None if _BOARD.fullmatch(v) else "must be a lower-case board name"
+        )
         place = _placed(s, by_name)
-        boards.append(BoardSpec(
-            name=bname, room=place.room, at=place.at,
-            offset_db=s.get("offset_db", float, None, check=lambda v: None if -40 <= v <= 40 else "must be within ±40 dB"),
-            skew_ppm=s.get("skew_ppm", float, None, check=lambda v: None if -1000 <= v <= 1000 else "must be within ±1000 ppm"),
-            wall_error_s=s.get("wall_error_s", float, None),
-            power_off_at_s=s.get("power_off_at_s", float, None, non_negative),
-            radio_hang_at_s=s.get("radio_hang_at_s", float, None, non_negative),
-        ))
+        boards.append(
+            BoardSpec(
+                name=bname,
+                room=place.room,
+                at=place.at,
+                offset_db=s.get(
+                    "offset_db",
+                    float,
+                    None,
+                    check=lambda v: None if -40 <= v <= 40 else "must be within ±40 dB",
+                ),
+                skew_ppm=s.get(
+                    "skew_ppm",
+                    float,
+                    None,
+                    check=lambda v: None if -1000 <= v <= 1000 else "must be within ±1000 ppm",
+                ),
+                wall_error_s=s.get("wall_error_s", float, None),
+                power_off_at_s=s.get("power_off_at_s", float, None, non_negative),
+                radio_hang_at_s=s.get("radio_hang_at_s", float, None, non_negative),
+            )
+        )
         s.done()
     if len({b.name for b in boards}) != len(boards):
         raise top.fail("boards", "board names must be unique")
@@ -397,7 +437,9 @@ def parse_scenario(data: Any, origin: str = "scenario") -> Scenario:
     rs = cu.section("rule")
     rule = DecodeRuleSpec(
         name=rs.get("name", str),
-        company_id=rs.get("company_id", int, check=lambda v: None if 0 <= v <= 0xFFFF else "must be 0..65535"),
+        company_id=rs.get(
+            "company_id", int, check=lambda v: None if 0 <= v <= 0xFFFF else "must be 0..65535"
+        ),
         prefix=_hex(rs, "prefix"),
         offset=rs.get("offset", int, check=lambda v: None if v >= 0 else "must be >= 0"),
         length=rs.get("length", int, check=lambda v: None if 1 <= v <= 8 else "must be 1..8"),
@@ -409,8 +451,12 @@ def parse_scenario(data: Any, origin: str = "scenario") -> Scenario:
     ref_major = rf.get("major", int, check=lambda v: None if 0 <= v <= 0xFFFF else "must be 0..65535")
     refs = []
     for s in rf.items("tags"):
-        refs.append(ReferenceTag(s.get("minor", int, check=lambda v: None if 0 <= v <= 0xFFFF else "must be 0..65535"),
-                                 _placed(s, by_name)))
+        refs.append(
+            ReferenceTag(
+                s.get("minor", int, check=lambda v: None if 0 <= v <= 0xFFFF else "must be 0..65535"),
+                _placed(s, by_name),
+            )
+        )
         s.done()
     rf.done()
     bx = t.section("boxes")
@@ -424,13 +470,27 @@ def parse_scenario(data: Any, origin: str = "scenario") -> Scenario:
     tags = TagSpec(
         interval_s=t.get("interval_s", float, 0.5, positive),
         adv_delay_max_s=t.get("adv_delay_max_s", float, 0.01, non_negative),
-        measured_power_dbm=t.get("measured_power_dbm", int, -59, check=lambda v: None if -127 <= v <= 20 else "must be -127..20"),
+        measured_power_dbm=t.get(
+            "measured_power_dbm", int, -59, check=lambda v: None if -127 <= v <= 20 else "must be -127..20"
+        ),
         carry_height_m=t.get("carry_height_m", float, 1.2, positive),
-        venue_uuid=venue_uuid, ibeacon_major=ibeacon_major, ibeacon_minors=ibeacon_minors,
-        eddystone_namespace=namespace, eddystone_instances=instances, tlm_every=tlm_every,
-        battery_mv=battery, battery_drop_mv_per_hour=drop, temperature_c=temperature,
-        custom_rule=rule, custom_numbers=numbers, reference_major=ref_major, reference=tuple(refs),
-        handout_box=handout, return_box=ret, handout_advertising=handout_adv, restock_minutes=restock,
+        venue_uuid=venue_uuid,
+        ibeacon_major=ibeacon_major,
+        ibeacon_minors=ibeacon_minors,
+        eddystone_namespace=namespace,
+        eddystone_instances=instances,
+        tlm_every=tlm_every,
+        battery_mv=battery,
+        battery_drop_mv_per_hour=drop,
+        temperature_c=temperature,
+        custom_rule=rule,
+        custom_numbers=numbers,
+        reference_major=ref_major,
+        reference=tuple(refs),
+        handout_box=handout,
+        return_box=ret,
+        handout_advertising=handout_adv,
+        restock_minutes=restock,
     )
     t.done()
     if ibeacon_major == ref_major:
@@ -445,8 +505,15 @@ def parse_scenario(data: Any, origin: str = "scenario") -> Scenario:
     ph.done()
     fixed: list[FixedNoise] = []
     for s in n.items("fixed"):
-        kind_text = s.get("kind", str, check=lambda v: None if v in [k.value for k in NoiseKind] else
-                          f"must be one of {', '.join(k.value for k in NoiseKind)}")
+        kind_text = s.get(
+            "kind",
+            str,
+            check=lambda v: (
+                None
+                if v in [k.value for k in NoiseKind]
+                else f"must be one of {', '.join(k.value for k in NoiseKind)}"
+            ),
+        )
         kind = NoiseKind(kind_text)
         place = _placed(s, by_name)
         interval = s.get("interval_s", float, 1.0, positive)
@@ -459,8 +526,17 @@ def parse_scenario(data: Any, origin: str = "scenario") -> Scenario:
                 raise s.fail("uuid", f"must be a UUID, got {u!r}") from None
             if u == venue_uuid:
                 raise s.fail("uuid", "noise must not use the venue UUID")
-            fixed.append(FixedNoise(kind, place, interval, power, uuid=u,
-                                    major=s.get("major", int, 1), minor=s.get("minor", int, 1)))
+            fixed.append(
+                FixedNoise(
+                    kind,
+                    place,
+                    interval,
+                    power,
+                    uuid=u,
+                    major=s.get("major", int, 1),
+                    minor=s.get("minor", int, 1),
+                )
+            )
         else:
             cid = s.get("company_id", int, check=lambda v: None if 0 <= v <= 0xFFFF else "must be 0..65535")
             if cid == rule.company_id:
@@ -497,8 +573,21 @@ def parse_scenario(data: Any, origin: str = "scenario") -> Scenario:
     )
     v.done()
     top.done()
-    return Scenario(name, seed, start_wall, floor_height, floors, rooms, tuple(boards), clocks, tags, noise,
-                    radio, visitors, origin)
+    return Scenario(
+        name,
+        seed,
+        start_wall,
+        floor_height,
+        floors,
+        rooms,
+        tuple(boards),
+        clocks,
+        tags,
+        noise,
+        radio,
+        visitors,
+        origin,
+    )
 
 
 def builtin_path(name: str) -> Path:

@@ -48,8 +48,9 @@ class Venue:
     def room_at(self, x: np.ndarray, y: np.ndarray, z: np.ndarray) -> np.ndarray:
         """Room index of each point, or -1 outside every room."""
         x, y, z = (np.asarray(a, dtype=float)[..., None] for a in (x, y, z))
-        inside = ((self.x0 <= x) & (x < self.x1) & (self.y0 <= y) & (y < self.y1)
-                  & (self.floor == self.floor_of(z)))
+        inside = (
+            (self.x0 <= x) & (x < self.x1) & (self.y0 <= y) & (y < self.y1) & (self.floor == self.floor_of(z))
+        )
         return np.where(inside.any(axis=-1), inside.argmax(axis=-1), -1)
 
     def floors_crossed(self, za: np.ndarray, zb: np.ndarray) -> np.ndarray:
@@ -115,9 +116,11 @@ class Venue:
         length = np.hypot(d[:, 0], d[:, 1])[:, None]
         eps = _SAME_WALL_M / np.maximum(length, 1e-9)
         # Entering at the segment's start or leaving at its end is no wall: the point is in that room.
-        cross = np.concatenate([np.where(ok & (t_in > eps), t_in, np.nan),
-                                np.where(ok & (t_out < 1 - eps), t_out, np.nan)], axis=1)
-        cross.sort(axis=1)                                   # NaN sorts last
+        cross = np.concatenate(
+            [np.where(ok & (t_in > eps), t_in, np.nan), np.where(ok & (t_out < 1 - eps), t_out, np.nan)],
+            axis=1,
+        )
+        cross.sort(axis=1)  # NaN sorts last
         valid = ~np.isnan(cross)
         gaps = np.diff(cross, axis=1) > eps
         distinct = valid[:, :1].astype(np.int64).sum(axis=1) + (gaps & valid[:, 1:]).sum(axis=1)

@@ -58,8 +58,14 @@ class Track:
     @staticmethod
     def fixed(pos: tuple[float, float, float], room: int, duration_s: float) -> Track:
         """A device that never moves."""
-        return Track(np.array([0.0]), np.array([duration_s]), np.array([pos], dtype=float),
-                     np.array([room]), np.array([Holder.FIXED]), np.array([True]))
+        return Track(
+            np.array([0.0]),
+            np.array([duration_s]),
+            np.array([pos], dtype=float),
+            np.array([room]),
+            np.array([Holder.FIXED]),
+            np.array([True]),
+        )
 
 
 @dataclass(slots=True)
@@ -71,8 +77,15 @@ class _TrackBuilder:
     holder: list[int] = field(default_factory=list)
     advertising: list[bool] = field(default_factory=list)
 
-    def add(self, t0: float, t1: float, pos: tuple[float, float, float], room: int, holder: Holder,
-            advertising: bool) -> None:
+    def add(
+        self,
+        t0: float,
+        t1: float,
+        pos: tuple[float, float, float],
+        room: int,
+        holder: Holder,
+        advertising: bool,
+    ) -> None:
         if t1 > t0:
             self.t0.append(t0)
             self.t1.append(t1)
@@ -84,9 +97,14 @@ class _TrackBuilder:
     def build(self, duration_s: float) -> Track:
         t0, t1 = np.array(self.t0, dtype=float), np.array(self.t1, dtype=float)
         keep = (t1 > 0) & (t0 < duration_s)
-        return Track(np.clip(t0[keep], 0, duration_s), np.clip(t1[keep], 0, duration_s),
-                     np.array(self.pos, dtype=float).reshape(-1, 3)[keep], np.array(self.room, dtype=np.int64)[keep],
-                     np.array(self.holder, dtype=np.int64)[keep], np.array(self.advertising, dtype=bool)[keep])
+        return Track(
+            np.clip(t0[keep], 0, duration_s),
+            np.clip(t1[keep], 0, duration_s),
+            np.array(self.pos, dtype=float).reshape(-1, 3)[keep],
+            np.array(self.room, dtype=np.int64)[keep],
+            np.array(self.holder, dtype=np.int64)[keep],
+            np.array(self.advertising, dtype=bool)[keep],
+        )
 
 
 @dataclass(frozen=True, slots=True)
@@ -108,8 +126,9 @@ def _placed_pos(scenario: Scenario, p: Placed) -> tuple[float, float, float]:
     return (p.at[0], p.at[1], floor * scenario.floor_height_m + p.at[2])
 
 
-def simulate_visitors(scenario: Scenario, venue: Venue, n_tags: int, duration_s: float,
-                      rng: np.random.Generator) -> VisitorRun:
+def simulate_visitors(
+    scenario: Scenario, venue: Venue, n_tags: int, duration_s: float, rng: np.random.Generator
+) -> VisitorRun:
     """
     Run the visitor flow for ``duration_s`` seconds of recording (after the warm-up).
 
@@ -141,7 +160,9 @@ def simulate_visitors(scenario: Scenario, venue: Venue, n_tags: int, duration_s:
         return (float(x), float(y), float(venue.floor[room] * venue.floor_height + tags.carry_height_m))
 
     def dwell(room: int, factor: float = 1.0) -> float:
-        return float(v.dwell_median_s * dwell_factor[room] * factor * math.exp(v.dwell_sigma * rng.standard_normal()))
+        return float(
+            v.dwell_median_s * dwell_factor[room] * factor * math.exp(v.dwell_sigma * rng.standard_normal())
+        )
 
     visitors = without_tag = 0
     t = start
@@ -158,7 +179,7 @@ def simulate_visitors(scenario: Scenario, venue: Venue, n_tags: int, duration_s:
         for _ in range(1 + rng.poisson(max(v.rooms_per_visit_mean - 1, 0))):
             cand = np.array(venue.doors[here])
             w = weights[cand].copy()
-            w[cand == prev] *= 0.15          # people rarely turn straight back
+            w[cand == prev] *= 0.15  # people rarely turn straight back
             w[cand == entrance] *= 0.5
             if cafe >= 0:
                 w[cand == cafe] = 1.0 if wants_cafe else 0.0
@@ -189,7 +210,14 @@ def simulate_visitors(scenario: Scenario, venue: Venue, n_tags: int, duration_s:
         for room, stay in stops:
             pieces = max(1, math.ceil(stay / v.move_every_s))
             for k in range(pieces):
-                seg.add(now + stay * k / pieces, now + stay * (k + 1) / pieces, spot(room), room, Holder.VISITOR, True)
+                seg.add(
+                    now + stay * k / pieces,
+                    now + stay * (k + 1) / pieces,
+                    spot(room),
+                    room,
+                    Holder.VISITOR,
+                    True,
+                )
             now += stay
         if tag >= 0:
             b = builders[tag]
@@ -204,6 +232,12 @@ def simulate_visitors(scenario: Scenario, venue: Venue, n_tags: int, duration_s:
             phones.append(seg.build(duration_s))
     for b in builders:
         last = b.t1[-1] if b.t1 else start
-        b.add(last, max(duration_s, last), handout_pos, entrance, Holder.HANDOUT_BOX, tags.handout_advertising)
-    return VisitorRun(tuple(b.build(duration_s) for b in builders),
-                      tuple(p for p in phones if len(p.t0)), visitors, without_tag)
+        b.add(
+            last, max(duration_s, last), handout_pos, entrance, Holder.HANDOUT_BOX, tags.handout_advertising
+        )
+    return VisitorRun(
+        tuple(b.build(duration_s) for b in builders),
+        tuple(p for p in phones if len(p.t0)),
+        visitors,
+        without_tag,
+    )

@@ -44,8 +44,9 @@ def say(*parts: object) -> None:
 async def main(path: Path, first_id: int, flush: float, max_bytes: int) -> None:
     crash = os.environ.get("LISTENPOST_SPOOL_CHILD_CRASH", "")
     clock = SystemClock()
-    spool = await Spool.open(path, clock=clock, max_bytes=max_bytes, flush_seconds=flush,
-                             max_batch_readings=1_000_000)
+    spool = await Spool.open(
+        path, clock=clock, max_bytes=max_bytes, flush_seconds=flush, max_batch_readings=1_000_000
+    )
     st = spool.stats()
     say("ready", st.epoch, st.next_seq)
     stop = asyncio.Event()
@@ -114,7 +115,7 @@ async def main(path: Path, first_id: int, flush: float, max_bytes: int) -> None:
     tasks = [asyncio.create_task(adder()), asyncio.create_task(sealer())]
     if crash == "disk_full":
         await disk_full_driver()
-        await asyncio.gather(*tasks)   # both loops end at their next turn; no step is cut short
+        await asyncio.gather(*tasks)  # both loops end at their next turn; no step is cut short
         await spool.close()
         say("closed", spool.stats().dropped_readings)
         return

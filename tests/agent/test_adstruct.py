@@ -38,19 +38,32 @@ def test_scapy_vector_from_references():
     )
     from scapy.packet import Raw
 
-    elems = [EIR_Hdr() / EIR_Flags(flags=0x06),
-             EIR_Hdr() / EIR_CompleteList16BitServiceUUIDs(svc_uuids=[0x180F, 0xFEAA]),
-             EIR_Hdr() / EIR_TX_Power_Level(level=-4),
-             EIR_Hdr() / EIR_ServiceData16BitUUID(svc_uuid=0x180F) / Raw(b"\x64"),
-             EIR_Hdr() / EIR_Manufacturer_Specific_Data(company_identifier=0xFFFF) / Raw(b"\x01\x02\x03"),
-             EIR_Hdr() / EIR_CompleteLocalName(local_name=b"tag-01")]
+    elems = [
+        EIR_Hdr() / EIR_Flags(flags=0x06),
+        EIR_Hdr() / EIR_CompleteList16BitServiceUUIDs(svc_uuids=[0x180F, 0xFEAA]),
+        EIR_Hdr() / EIR_TX_Power_Level(level=-4),
+        EIR_Hdr() / EIR_ServiceData16BitUUID(svc_uuid=0x180F) / Raw(b"\x64"),
+        EIR_Hdr() / EIR_Manufacturer_Specific_Data(company_identifier=0xFFFF) / Raw(b"\x01\x02\x03"),
+        EIR_Hdr() / EIR_CompleteLocalName(local_name=b"tag-01"),
+    ]
     ad = b"".join(bytes(e) for e in elems)
     # hex from docs/references.md §1 [RUN with scapy 2.8.0]
     assert ad.hex() == "02010605030f18aafe020afc04160f186406ffffff01020307097461672d3031"
-    assert parse_ad(ad) == AdFields({0xFFFF: b"\x01\x02\x03"}, {U180F: b"d"}, (U180F, UFEAA), -4, "tag-01", 0x06, 0)
+    assert parse_ad(ad) == AdFields(
+        {0xFFFF: b"\x01\x02\x03"}, {U180F: b"d"}, (U180F, UFEAA), -4, "tag-01", 0x06, 0
+    )
     # our writer produces the same bytes as scapy's builder
-    assert build_ad(flags=6, service_uuids=[U180F, UFEAA], tx_power_dbm=-4, service_data={U180F: b"d"},
-                    manufacturer_data={0xFFFF: b"\x01\x02\x03"}, local_name="tag-01") == ad
+    assert (
+        build_ad(
+            flags=6,
+            service_uuids=[U180F, UFEAA],
+            tx_power_dbm=-4,
+            service_data={U180F: b"d"},
+            manufacturer_data={0xFFFF: b"\x01\x02\x03"},
+            local_name="tag-01",
+        )
+        == ad
+    )
     # and bluetooth-data-tools 1.29 agrees on its five fields (docs/references.md §1)
     assert _ours(ad) == _bdt(ad)
 
@@ -58,10 +71,13 @@ def test_scapy_vector_from_references():
 def test_uuid32_and_uuid128_expansion_matches_scapy_bytes():
     """32-bit and 128-bit UUIDs: little-endian on air, expanded on the Bluetooth Base UUID (common practice)."""
     from scapy.layers.bluetooth import EIR_CompleteList128BitServiceUUIDs, EIR_Hdr
+
     u128 = "4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10"
     raw = bytes(EIR_Hdr() / EIR_CompleteList128BitServiceUUIDs(svc_uuids=[u128]))
     assert parse_ad(raw).service_uuids == (u128,)
-    ad = ad_structure(0x05, bytes.fromhex("78563412")) + ad_structure(0x20, bytes.fromhex("78563412") + b"\x01")
+    ad = ad_structure(0x05, bytes.fromhex("78563412")) + ad_structure(
+        0x20, bytes.fromhex("78563412") + b"\x01"
+    )
     f = parse_ad(ad)
     assert f.service_uuids == ("12345678-0000-1000-8000-00805f9b34fb",)
     assert f.service_data == {"12345678-0000-1000-8000-00805f9b34fb": b"\x01"}
@@ -73,7 +89,9 @@ def test_uuid32_and_uuid128_expansion_matches_scapy_bytes():
 EDGE_CASES = [
     pytest.param(b"", {}, 0, True, id="empty"),
     pytest.param(b"\x00" * 31, {}, 0, True, id="all-padding"),
-    pytest.param(b"\x02\x01\x06\x00\x00\x03\x09ab", {"flags": 6, "local_name": "ab"}, 0, True, id="padding-then-more"),
+    pytest.param(
+        b"\x02\x01\x06\x00\x00\x03\x09ab", {"flags": 6, "local_name": "ab"}, 0, True, id="padding-then-more"
+    ),
     pytest.param(b"\x05\x09ab", {}, 1, True, id="overlong"),
     pytest.param(b"\x02\x01\x06\x05\xff\x4c", {"flags": 6}, 1, True, id="overlong-after-good"),
     pytest.param(b"\x01\xff\x03\x09ab", {"local_name": "ab"}, 1, True, id="type-only-mfg"),
@@ -84,8 +102,13 @@ EDGE_CASES = [
     pytest.param(b"\x02\x0a\x7f", {"tx_power_dbm": 127}, 0, True, id="tx-power-int8-max"),
     pytest.param(b"\x02\xff\x4c", {}, 1, True, id="mfg-one-byte"),
     pytest.param(b"\x03\xff\x4c\x00", {"manufacturer_data": {0x004C: b""}}, 0, True, id="mfg-id-only"),
-    pytest.param(b"\x04\xff\x4c\x00\x01\x04\xff\x4c\x00\x02", {"manufacturer_data": {0x004C: b"\x02"}}, 0, True,
-                 id="same-company-last-wins"),
+    pytest.param(
+        b"\x04\xff\x4c\x00\x01\x04\xff\x4c\x00\x02",
+        {"manufacturer_data": {0x004C: b"\x02"}},
+        0,
+        True,
+        id="same-company-last-wins",
+    ),
     pytest.param(b"\x02\x16\x0f", {}, 1, True, id="svc-data-short"),
     pytest.param(b"\x04\x03\x0f\x18\xaa", {"service_uuids": (U180F,)}, 1, True, id="uuid-list-partial"),
     pytest.param(b"\x03\x08ab\x03\x09cd", {"local_name": "cd"}, 0, True, id="short-then-complete"),
@@ -103,13 +126,22 @@ def test_edge_cases_are_deliberate(data, expected, errors, bdt_agrees):
     f = parse_ad(data)
     for key, value in expected.items():
         assert getattr(f, key) == value, key
-    for key in {"manufacturer_data", "service_data", "service_uuids", "tx_power_dbm", "local_name", "flags"} - set(expected):
+    for key in {
+        "manufacturer_data",
+        "service_data",
+        "service_uuids",
+        "tx_power_dbm",
+        "local_name",
+        "flags",
+    } - set(expected):
         assert getattr(f, key) in (None, {}, ()), key
     assert f.errors == errors
     assert (_ours(data) == _bdt(data)) is bdt_agrees
 
 
-AD_TYPES = st.sampled_from([0x00, 0x01, 0x02, 0x03, 0x04, 0x05, 0x06, 0x07, 0x08, 0x09, 0x0A, 0x16, 0x20, 0x21, 0xFF, 0x19])
+AD_TYPES = st.sampled_from(
+    [0x00, 0x01, 0x02, 0x03, 0x04, 0x05, 0x06, 0x07, 0x08, 0x09, 0x0A, 0x16, 0x20, 0x21, 0xFF, 0x19]
+)
 
 
 @st.composite
@@ -153,16 +185,24 @@ uuid16s = st.integers(0, 0xFFFF).map(uuid16_to_128)
 
 
 @settings(max_examples=200, deadline=None)
-@given(flags=st.none() | st.integers(0, 255),
-       mfg=st.dictionaries(st.integers(0, 0xFFFF), st.binary(max_size=8), max_size=2),
-       svc=st.dictionaries(uuid16s, st.binary(max_size=8), max_size=2),
-       uuids=st.lists(uuid16s, max_size=3),
-       tx=st.none() | st.integers(-128, 127),
-       name=st.none() | names)
+@given(
+    flags=st.none() | st.integers(0, 255),
+    mfg=st.dictionaries(st.integers(0, 0xFFFF), st.binary(max_size=8), max_size=2),
+    svc=st.dictionaries(uuid16s, st.binary(max_size=8), max_size=2),
+    uuids=st.lists(uuid16s, max_size=3),
+    tx=st.none() | st.integers(-128, 127),
+    name=st.none() | names,
+)
 def test_build_then_parse_round_trips(flags, mfg, svc, uuids, tx, name):
     """`build_ad` output parses back to the same fields with no errors."""
-    ad = build_ad(flags=flags, manufacturer_data=mfg, service_data=svc, service_uuids=uuids,
-                  tx_power_dbm=tx, local_name=name)
+    ad = build_ad(
+        flags=flags,
+        manufacturer_data=mfg,
+        service_data=svc,
+        service_uuids=uuids,
+        tx_power_dbm=tx,
+        local_name=name,
+    )
     assert parse_ad(ad) == AdFields(mfg, svc, tuple(uuids), tx, name, flags, 0)
 
 

@@ -48,11 +48,14 @@ class FakeScanner(BaseBleakScanner):
     async def stop(self) -> None:
         self.stopped = True
 
-    def emit(self, address: str, rssi: int, *, public: bool = False, mfg: dict[int, bytes] | None = None) -> None:
+    def emit(
+        self, address: str, rssi: int, *, public: bool = False, mfg: dict[int, bytes] | None = None
+    ) -> None:
         props = {"Address": address, "AddressType": "public" if public else "random", "RSSI": rssi}
         self.call_detection_callbacks(
             BLEDevice(address, None, {"path": "/org/bluez/hci0/dev_x", "props": props}),
-            AdvertisementData(None, mfg or {}, {}, [], None, rssi, ("/org/bluez/hci0/dev_x", props)))
+            AdvertisementData(None, mfg or {}, {}, [], None, rssi, ("/org/bluez/hci0/dev_x", props)),
+        )
 
 
 @pytest.fixture
@@ -92,7 +95,9 @@ async def test_adverts_flow_with_the_recommended_filter(clock, fake):
         sc.emit("C4:7A:10:00:2B:93", -127)  # "no RSSI property", not a measurement
         await settle()
         assert [(a.address, a.address_type, a.rssi_dbm, a.t_mono_ns) for a in got] == [
-            ("C4:7A:10:00:2B:91", 1, -67, 1000 * 10**9), ("C4:7A:10:00:2B:92", 0, -70, 1000_500_000_000)]
+            ("C4:7A:10:00:2B:91", 1, -67, 1000 * 10**9),
+            ("C4:7A:10:00:2B:92", 0, -70, 1000_500_000_000),
+        ]
         assert got[0].manufacturer_data == {0x004C: b"\x02\x15"}
         assert (src.callbacks, src.adverts_seen, src.dropped_no_rssi) == (3, 2, 1)
     assert sc.stopped  # cancelling the consumer stops the scanner
@@ -125,21 +130,39 @@ async def test_stall_rebuilds_the_scanner(clock, fake):
         assert len(fake.instances) == 3 and src.restarts == 2
 
 
-@pytest.mark.parametrize(("error", "reason"), [
-    (FileNotFoundError(2, "No such file or directory"), SourceReason.NO_BLUETOOTH),
-    (PermissionError(13, "Permission denied"), SourceReason.DENIED),
-    (BleakDBusError("org.freedesktop.DBus.Error.ServiceUnknown", ["The name org.bluez was not provided"]),
-     SourceReason.BLUEZ_DOWN),
-    (BleakDBusError("org.freedesktop.DBus.Error.AccessDenied", []), SourceReason.DENIED),
-    (BleakDBusError("org.bluez.Error.NotReady", ["Resource Not Ready"]), SourceReason.POWERED_OFF),
-    (BleakBluetoothNotAvailableError("No Bluetooth adapters found.", BleakBluetoothNotAvailableReason.NO_BLUETOOTH),
-     SourceReason.NO_BLUETOOTH),
-    (BleakBluetoothNotAvailableError("No powered Bluetooth adapters found.", BleakBluetoothNotAvailableReason.POWERED_OFF),
-     SourceReason.POWERED_OFF),
-    (BleakBluetoothNotAvailableError("denied", BleakBluetoothNotAvailableReason.DENIED_BY_SYSTEM), SourceReason.DENIED),
-    (BleakError("adapter 'hci1' not found"), SourceReason.ADAPTER_MISSING),
-    (BleakError("passive scanning mode requires bluez or_patterns"), SourceReason.OTHER),
-])
+@pytest.mark.parametrize(
+    ("error", "reason"),
+    [
+        (FileNotFoundError(2, "No such file or directory"), SourceReason.NO_BLUETOOTH),
+        (PermissionError(13, "Permission denied"), SourceReason.DENIED),
+        (
+            BleakDBusError(
+                "org.freedesktop.DBus.Error.ServiceUnknown", ["The name org.bluez was not provided"]
+            ),
+            SourceReason.BLUEZ_DOWN,
+        ),
+        (BleakDBusError("org.freedesktop.DBus.Error.AccessDenied", []), SourceReason.DENIED),
+        (BleakDBusError("org.bluez.Error.NotReady", ["Resource Not Ready"]), SourceReason.POWERED_OFF),
+        (
+            BleakBluetoothNotAvailableError(
+                "No Bluetooth adapters found.", BleakBluetoothNotAvailableReason.NO_BLUETOOTH
+            ),
+            SourceReason.NO_BLUETOOTH,
+        ),
+        (
+            BleakBluetoothNotAvailableError(
+                "No powered Bluetooth adapters found.", BleakBluetoothNotAvailableReason.POWERED_OFF
+            ),
+            SourceReason.POWERED_OFF,
+        ),
+        (
+            BleakBluetoothNotAvailableError("denied", BleakBluetoothNotAvailableReason.DENIED_BY_SYSTEM),
+            SourceReason.DENIED,
+        ),
+        (BleakError("adapter 'hci1' not found"), SourceReason.ADAPTER_MISSING),
+        (BleakError("passive scanning mode requires bluez or_patterns"), SourceReason.OTHER),
+    ],
+)
 def test_classify(error, reason):
     """What start() raises (docs/radio.md §3 table) maps to a SourceReason, keeping the original text."""
     e = classify(error)
@@ -147,16 +170,25 @@ def test_classify(error, reason):
     assert str(error.args[0] if not isinstance(error, OSError) else error.strerror) in str(e)
 
 
-@pytest.mark.parametrize(("error", "reason"), [
-    (FileNotFoundError(2, "No such file or directory"), SourceReason.NO_BLUETOOTH),
-    (BleakDBusError("org.freedesktop.DBus.Error.ServiceUnknown", []), SourceReason.BLUEZ_DOWN),
-    (BleakBluetoothNotAvailableError("No powered Bluetooth adapters found.", BleakBluetoothNotAvailableReason.POWERED_OFF),
-     SourceReason.POWERED_OFF),
-])
+@pytest.mark.parametrize(
+    ("error", "reason"),
+    [
+        (FileNotFoundError(2, "No such file or directory"), SourceReason.NO_BLUETOOTH),
+        (BleakDBusError("org.freedesktop.DBus.Error.ServiceUnknown", []), SourceReason.BLUEZ_DOWN),
+        (
+            BleakBluetoothNotAvailableError(
+                "No powered Bluetooth adapters found.", BleakBluetoothNotAvailableReason.POWERED_OFF
+            ),
+            SourceReason.POWERED_OFF,
+        ),
+    ],
+)
 async def test_start_failure_backs_off_then_recovers(clock, fake, error, reason):
     """A failing start sets the reason, retries on a capped jittered backoff, and recovers when start works."""
     fake.script = [error] * 7
-    src = BleakSource("hci0", clock, 1000, backend=fake, backoff_initial=1, backoff_max=8, rng=random.Random(7))
+    src = BleakSource(
+        "hci0", clock, 1000, backend=fake, backoff_initial=1, backoff_max=8, rng=random.Random(7)
+    )
     async with running(src):
         assert src.state is ScanState.UNAVAILABLE and src.reason is reason
         await clock.advance(200)
@@ -183,8 +215,16 @@ async def test_gives_up_after_max_failures(clock, fake):
 async def test_hanging_start_times_out_on_the_clock(clock, fake):
     """A start() that never returns is abandoned after call_timeout of clock time and retried."""
     fake.script = ["hang"]
-    src = BleakSource("hci0", clock, 30, backend=fake, call_timeout=5, backoff_initial=1, backoff_max=1,
-                      rng=random.Random(1))
+    src = BleakSource(
+        "hci0",
+        clock,
+        30,
+        backend=fake,
+        call_timeout=5,
+        backoff_initial=1,
+        backoff_max=1,
+        rng=random.Random(1),
+    )
     async with running(src):
         await clock.advance(4.9)
         assert src.state is ScanState.STARTING

@@ -27,11 +27,15 @@ from listenpost.core.records import Advert
 from tests.conftest import require_tool
 
 T0 = 1_700_000_000_123_456  # Unix µs of the docs/references.md §3 vector
-EVENT = bytes.fromhex("3e13020103015544332211c00702010603097431c4")  # docs/references.md §2 legacy vector, no H4 byte
+EVENT = bytes.fromhex(
+    "3e13020103015544332211c00702010603097431c4"
+)  # docs/references.md §2 legacy vector, no H4 byte
 
 
 def _advert(i: int, rssi: int = -60) -> Advert:
-    return Advert(0, f"C0:11:22:33:44:{i:02X}", 1, rssi, None, {0xFFFF: b"LP" + i.to_bytes(4, "big")}, {}, (), None)
+    return Advert(
+        0, f"C0:11:22:33:44:{i:02X}", 1, rssi, None, {0xFFFF: b"LP" + i.to_bytes(4, "big")}, {}, (), None
+    )
 
 
 def test_epoch_constant_is_bluez_form():
@@ -58,12 +62,17 @@ def test_btsnoop_parser_reads_our_files(tmp_path, datalink):
         for i in range(3):
             w.write_advert(T0 + i * 250_000, _advert(i), index=2)
     # reference_time just after the capture: the parser's epoch is 378 days off otherwise (docs/references.md §3)
-    recs = [r for r in btsnoop_parser.iter_records(str(p), reference_time=dt.datetime(2023, 11, 15, tzinfo=dt.UTC))
-            if r["packet_type"] == 4]
+    recs = [
+        r
+        for r in btsnoop_parser.iter_records(str(p), reference_time=dt.datetime(2023, 11, 15, tzinfo=dt.UTC))
+        if r["packet_type"] == 4
+    ]
     assert [r["payload"] for r in recs] == [advert_to_event(_advert(i)) for i in range(3)]
     assert {r["direction"] for r in recs} == {"RX"}
     assert recs[0]["timestamp"] == dt.datetime(2023, 11, 14, 22, 13, 20, 123456, tzinfo=dt.UTC)
-    assert [r["timestamp"] - recs[0]["timestamp"] for r in recs] == [dt.timedelta(seconds=0.25 * i) for i in range(3)]
+    assert [r["timestamp"] - recs[0]["timestamp"] for r in recs] == [
+        dt.timedelta(seconds=0.25 * i) for i in range(3)
+    ]
     if datalink == DATALINK_MONITOR:
         assert {r["adapter"] for r in recs} == {2}
     # and ours reads them back
@@ -82,8 +91,13 @@ def test_btmon_reads_our_files(tmp_path, datalink):
     with BtsnoopWriter(p, datalink) as w:
         w.write_event(T0, EVENT)
         w.write_advert(T0 + 1_000_000, _advert(0x2B, rssi=-77))
-    out = subprocess.run([btmon, "-T", "-r", str(p)], capture_output=True, text=True, timeout=30,
-                         env={**os.environ, "TZ": "UTC"}).stdout
+    out = subprocess.run(
+        [btmon, "-T", "-r", str(p)],
+        capture_output=True,
+        text=True,
+        timeout=30,
+        env={**os.environ, "TZ": "UTC"},
+    ).stdout
     assert "2023-11-14 22:13:20.123456" in out
     assert "Address: C0:11:22:33:44:55" in out and "RSSI: -60 dBm (0xc4)" in out
     assert "Address: C0:11:22:33:44:2B" in out and "RSSI: -77 dBm (0xb3)" in out
@@ -99,7 +113,9 @@ def test_h1_datalink_reads_events_only(tmp_path):
         for flags, pkt in ((0x2, b"\x0c\x20\x02\x01\x00"), (0x3, EVENT), (0x1, b"\x00" * 5)):
             f.write(rec.pack(len(pkt), len(pkt), flags, 0, T0 + EPOCH_DELTA_US) + pkt)
     got = list(read_btsnoop(p))
-    assert [(g.advert.address, g.advert.rssi_dbm, g.advert.local_name) for g in got] == [("C0:11:22:33:44:55", -60, "t1")]
+    assert [(g.advert.address, g.advert.rssi_dbm, g.advert.local_name) for g in got] == [
+        ("C0:11:22:33:44:55", -60, "t1")
+    ]
 
 
 def _capture(tmp_path, n=4):
@@ -138,7 +154,7 @@ def test_impossible_record_length_names_the_record(tmp_path):
     p = _capture(tmp_path, 2)
     raw = bytearray(p.read_bytes())
     second = 16 + 24 + raw[16 + 7]  # after the first record
-    raw[second + 4:second + 8] = struct.pack(">I", 0xFFFF)
+    raw[second + 4 : second + 8] = struct.pack(">I", 0xFFFF)
     p.write_bytes(bytes(raw))
     with pytest.raises(CaptureFormatError, match="record 2: included length 65535"):
         list(read_btsnoop(p))
@@ -173,7 +189,9 @@ def test_gzipped_capture_reads(tmp_path):
 
 
 @settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
-@given(edits=st.lists(st.tuples(st.integers(0, 300), st.integers(0, 255)), max_size=6), cut=st.integers(0, 400))
+@given(
+    edits=st.lists(st.tuples(st.integers(0, 300), st.integers(0, 255)), max_size=6), cut=st.integers(0, 400)
+)
 def test_mutated_captures_raise_only_format_errors(tmp_path, edits, cut):
     """Corrupted or cut captures either read or raise DecodeError/CaptureFormatError, nothing else."""
     good = _capture(tmp_path, 5).read_bytes()

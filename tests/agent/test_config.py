@@ -41,16 +41,23 @@ def test_good_config_loads_with_paths_resolved(tmp_path: Path) -> None:
     ("patch", "message"),
     [
         ({"uplink": {"backoff_max_seconds": -1}}, "uplink.backoff_max_seconds: must be > 0, got -1"),
-        ({"source": {"kind": "radio"}}, "source.kind: must be one of bleak, hci, replay, btsnoop, got 'radio'"),
+        (
+            {"source": {"kind": "radio"}},
+            "source.kind: must be one of bleak, hci, replay, btsnoop, got 'radio'",
+        ),
         ({"source": {"kind": "replay"}}, "source.files: source.kind 'replay' needs at least one file"),
         ({"spool": {"flush_secs": 5}}, "spool.flush_secs: unknown key"),
         ({"board": "G0 A"}, "board: must be 1-63 lower-case"),
         ({"collector": {"url": "ftp://x"}}, "collector.url: must be an http(s) URL"),
         ({"calibration": {"offset_db": "high"}}, "calibration.offset_db: must be float, got 'high'"),
-        ({"decode": {"rules": [{"name": "x", "company_id": 1, "service_uuid16": 2}]}},
-         "decode.rules[0].company_id: give exactly one of company_id or service_uuid16"),
-        ({"decode": {"rules": [{"name": "x", "company_id": 1, "prefix": "zz"}]}},
-         "decode.rules[0].prefix: must be hex bytes, got 'zz'"),
+        (
+            {"decode": {"rules": [{"name": "x", "company_id": 1, "service_uuid16": 2}]}},
+            "decode.rules[0].company_id: give exactly one of company_id or service_uuid16",
+        ),
+        (
+            {"decode": {"rules": [{"name": "x", "company_id": 1, "prefix": "zz"}]}},
+            "decode.rules[0].prefix: must be hex bytes, got 'zz'",
+        ),
     ],
 )
 def test_bad_values_name_the_key_path(patch: dict, message: str) -> None:

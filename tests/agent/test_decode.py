@@ -44,6 +44,7 @@ def counters(d: Decoder) -> tuple[int, int, int, int, int]:
 
 # --------------------------------------------------------------- published vectors (docs/references.md §4)
 
+
 class TestPublishedVectors:
     def test_ibeacon_vector(self):
         """docs/references.md §4 iBeacon vector (UUID e2c56db5-…, major 1, minor 258, power -59; [RUN] with scapy)."""
@@ -62,7 +63,9 @@ class TestPublishedVectors:
         assert r is not None
         assert "altbeacon:0102030405060708090a0b0c0d0e0f1011121314" == r.tag
         a = EIR_Hdr(ad)[s_alt.AltBeacon]
-        assert a.id1.bytes + a.id2.to_bytes(2, "big") + a.id3.to_bytes(2, "big") == bytes.fromhex(r.tag.split(":")[1])
+        assert a.id1.bytes + a.id2.to_bytes(2, "big") + a.id3.to_bytes(2, "big") == bytes.fromhex(
+            r.tag.split(":")[1]
+        )
 
     def test_eddystone_uid_vector(self):
         """google/eddystone eddystone-uid/README.md layout; docs/references.md §4 vector (ranging -20)."""
@@ -79,13 +82,16 @@ class TestPublishedVectors:
         r = Decoder()(advert_from_ad(ad))
         assert r is not None and "eddystone:8b0ca750095477cb3e77:0000000000a1" == r.tag
 
-    @pytest.mark.parametrize(("hex_ad", "expected"), [
-        # google/eddystone eddystone-tlm/tlm-plain.md field layout; docs/references.md §4 vectors [RUN].
-        ("1116aafe20000bb817c0000004d200008ca0", Telemetry(3000, 23.75, 1234, 3600.0)),
-        ("1116aafe20000bb8fa80000004d200008ca0", Telemetry(3000, -5.5, 1234, 3600.0)),
-        # 0x8000 = temperature not supported, VBATT 0 = not supported (tlm-plain.md).
-        ("1116aafe200000008000000004d200008ca0", Telemetry(None, None, 1234, 3600.0)),
-    ])
+    @pytest.mark.parametrize(
+        ("hex_ad", "expected"),
+        [
+            # google/eddystone eddystone-tlm/tlm-plain.md field layout; docs/references.md §4 vectors [RUN].
+            ("1116aafe20000bb817c0000004d200008ca0", Telemetry(3000, 23.75, 1234, 3600.0)),
+            ("1116aafe20000bb8fa80000004d200008ca0", Telemetry(3000, -5.5, 1234, 3600.0)),
+            # 0x8000 = temperature not supported, VBATT 0 = not supported (tlm-plain.md).
+            ("1116aafe200000008000000004d200008ca0", Telemetry(None, None, 1234, 3600.0)),
+        ],
+    )
     def test_eddystone_tlm_vectors(self, hex_ad, expected):
         """TLM after a UID from the same address becomes a reading of that Eddystone tag with telemetry."""
         dec = Decoder()
@@ -118,8 +124,9 @@ class TestAgainstScapy:
     @given(st.uuids(), u16, u16, s8)
     def test_ibeacon(self, u, major, minor, power):
         """scapy.contrib.ibeacon builds the frame and dissects it; our identity uses the same uuid/major/minor."""
-        frame = s_ib.Apple_BLE_Submessage(subtype=0x02) / s_ib.IBeacon_Data(uuid=str(u), major=major, minor=minor,
-                                                                             tx_power=power)
+        frame = s_ib.Apple_BLE_Submessage(subtype=0x02) / s_ib.IBeacon_Data(
+            uuid=str(u), major=major, minor=minor, tx_power=power
+        )
         ad = ad_of(frame)
         d = EIR_Hdr(ad[3:])[s_ib.IBeacon_Data]
         r = Decoder()(advert_from_ad(ad))
@@ -132,20 +139,26 @@ class TestAgainstScapy:
         """scapy.contrib.altbeacon under any company ID (the spec allows any manufacturer)."""
         if company == 0x004C:
             company = 0x0118
-        pkt = EIR_Hdr() / EIR_Manufacturer_Specific_Data(company_identifier=company) / s_alt.AltBeacon(
-            id1=str(u), id2=id2, id3=id3, tx_power=power, mfg_reserved=0)
+        pkt = (
+            EIR_Hdr()
+            / EIR_Manufacturer_Specific_Data(company_identifier=company)
+            / s_alt.AltBeacon(id1=str(u), id2=id2, id3=id3, tx_power=power, mfg_reserved=0)
+        )
         ad = bytes(pkt)
         a = EIR_Hdr(ad)[s_alt.AltBeacon]
         r = Decoder()(advert_from_ad(ad))
         assert r is not None
-        assert "altbeacon:" + (a.id1.bytes + a.id2.to_bytes(2, "big") + a.id3.to_bytes(2, "big")).hex() == r.tag
+        assert (
+            "altbeacon:" + (a.id1.bytes + a.id2.to_bytes(2, "big") + a.id3.to_bytes(2, "big")).hex() == r.tag
+        )
 
     @settings(max_examples=150, deadline=None)
     @given(st.binary(min_size=10, max_size=10), st.binary(min_size=6, max_size=6), s8)
     def test_eddystone_uid(self, ns, inst, power):
         """scapy.contrib.eddystone UID frames."""
-        frame = s_eddy.Eddystone_Frame() / s_eddy.Eddystone_UID(tx_power=power, namespace=ns, instance=inst,
-                                                                 reserved=b"\0\0")
+        frame = s_eddy.Eddystone_Frame() / s_eddy.Eddystone_UID(
+            tx_power=power, namespace=ns, instance=inst, reserved=b"\0\0"
+        )
         ad = ad_of(frame)
         r = Decoder()(advert_from_ad(ad))
         assert r is not None
@@ -157,15 +170,20 @@ class TestAgainstScapy:
         """scapy builds TLM frames from raw 8.8 values; temperature compared with scapy's unsigned reading
         corrected by 256 (scapy bug, docs/references.md §4)."""
         temp_unsigned = (temp_raw & 0xFFFF) / 256
-        frame = s_eddy.Eddystone_Frame() / s_eddy.Eddystone_TLM(version=0) / s_eddy.Eddystone_TLM_Unencrypted(
-            batt_mv=batt, temperature=temp_unsigned, adv_cnt=adv, sec_cnt=sec)
+        frame = (
+            s_eddy.Eddystone_Frame()
+            / s_eddy.Eddystone_TLM(version=0)
+            / s_eddy.Eddystone_TLM_Unencrypted(
+                batt_mv=batt, temperature=temp_unsigned, adv_cnt=adv, sec_cnt=sec
+            )
+        )
         ad = ad_of(frame)
         t = EIR_Hdr(ad[-18:])[s_eddy.Eddystone_TLM_Unencrypted]
         dec = Decoder()
         dec(advert_from_ad(bytes.fromhex("1716aafe00ec8b0ca750095477cb3e770000000000a10000")))
         r = dec(advert_from_ad(ad))
         assert r is not None and r.telemetry is not None
-        raw = t.getfieldval("temperature")       # scapy's unsigned 8.8 integer, before its Decimal rounding
+        raw = t.getfieldval("temperature")  # scapy's unsigned 8.8 integer, before its Decimal rounding
         assert temp_raw & 0xFFFF == raw
         want_temp = None if raw == 0x8000 else (raw - 0x10000 if raw >= 0x8000 else raw) / 256
         assert Telemetry(t.batt_mv or None, want_temp, t.adv_cnt, t.sec_cnt / 10) == r.telemetry
@@ -174,8 +192,11 @@ class TestAgainstScapy:
 # --------------------------------------------------------------- bytes off the air never raise
 
 company_ids = st.one_of(st.sampled_from([0x004C, 0x0118, 0xFFFF, 0x0006]), u16)
-service_keys = st.one_of(st.just(EDDYSTONE_UUID), st.sampled_from([uuid16_to_128(0x180F), uuid16_to_128(0xFD6F)]),
-                         st.uuids().map(str))
+service_keys = st.one_of(
+    st.just(EDDYSTONE_UUID),
+    st.sampled_from([uuid16_to_128(0x180F), uuid16_to_128(0xFD6F)]),
+    st.uuids().map(str),
+)
 payload = st.one_of(
     st.binary(max_size=40),
     st.builds(lambda b: b"\x02\x15" + b, st.binary(max_size=30)),
@@ -184,14 +205,19 @@ payload = st.one_of(
     st.builds(lambda b: b"\x20\x00" + b, st.binary(max_size=16)),
     st.builds(lambda b: b"\x4c\x50" + b, st.binary(max_size=8)),
 )
-RULES = (DecodeRule("lpx", company_id=0xFFFF, prefix=b"\x4c\x50", offset=2, length=4),
-         DecodeRule("batt", service_uuid16=0x180F, offset=0, length=1))
+RULES = (
+    DecodeRule("lpx", company_id=0xFFFF, prefix=b"\x4c\x50", offset=2, length=4),
+    DecodeRule("batt", service_uuid16=0x180F, offset=0, length=1),
+)
 
 
 class TestNeverRaises:
     @settings(max_examples=400, deadline=None)
-    @given(st.dictionaries(company_ids, payload, max_size=3), st.dictionaries(service_keys, payload, max_size=3),
-           st.booleans())
+    @given(
+        st.dictionaries(company_ids, payload, max_size=3),
+        st.dictionaries(service_keys, payload, max_size=3),
+        st.booleans(),
+    )
     def test_arbitrary_payloads(self, md, sd, with_registry):
         """Any manufacturer/service data: the decoder returns a reading or None, and counts exactly one outcome."""
         reg = TagFilter([f"mac:{ADDR}"]) if with_registry else None
@@ -200,19 +226,22 @@ class TestNeverRaises:
         dec(Advert(1, "D0:00:00:00:00:01", 1, -80, None, md, sd))
         assert before + 1 == sum(counters(dec))
 
-    @pytest.mark.parametrize(("md", "sd"), [
-        ({0x004C: b"\x02\x15" + bytes(20)}, {}),                 # iBeacon truncated by one byte
-        ({0x004C: b"\x02\x15" + bytes(22)}, {}),                 # iBeacon overlong
-        ({0x004C: b"\x02\x15"}, {}),                             # marker only
-        ({0x0118: b"\xbe\xac" + bytes(21)}, {}),                 # AltBeacon truncated
-        ({0x0118: b"\xbe\xac" + bytes(23)}, {}),                 # AltBeacon overlong
-        ({}, {EDDYSTONE_UUID: b""}),                             # zero-length Eddystone service data
-        ({}, {EDDYSTONE_UUID: b"\x00\xec" + bytes(15)}),         # UID truncated
-        ({}, {EDDYSTONE_UUID: b"\x00\xec" + bytes(19)}),         # UID overlong
-        ({}, {EDDYSTONE_UUID: b"\x20"}),                         # TLM without version
-        ({}, {EDDYSTONE_UUID: b"\x20\x00" + bytes(11)}),         # TLM truncated
-        ({0xFFFF: b"\x4c\x50\x00\x00\x07"}, {}),                 # configured rule: id cut short
-    ])
+    @pytest.mark.parametrize(
+        ("md", "sd"),
+        [
+            ({0x004C: b"\x02\x15" + bytes(20)}, {}),  # iBeacon truncated by one byte
+            ({0x004C: b"\x02\x15" + bytes(22)}, {}),  # iBeacon overlong
+            ({0x004C: b"\x02\x15"}, {}),  # marker only
+            ({0x0118: b"\xbe\xac" + bytes(21)}, {}),  # AltBeacon truncated
+            ({0x0118: b"\xbe\xac" + bytes(23)}, {}),  # AltBeacon overlong
+            ({}, {EDDYSTONE_UUID: b""}),  # zero-length Eddystone service data
+            ({}, {EDDYSTONE_UUID: b"\x00\xec" + bytes(15)}),  # UID truncated
+            ({}, {EDDYSTONE_UUID: b"\x00\xec" + bytes(19)}),  # UID overlong
+            ({}, {EDDYSTONE_UUID: b"\x20"}),  # TLM without version
+            ({}, {EDDYSTONE_UUID: b"\x20\x00" + bytes(11)}),  # TLM truncated
+            ({0xFFFF: b"\x4c\x50\x00\x00\x07"}, {}),  # configured rule: id cut short
+        ],
+    )
     def test_malformed_frames_are_counted(self, md, sd):
         """A frame whose marker matches but whose length does not is a decode error, not an identity."""
         dec = Decoder(RULES)
@@ -221,6 +250,7 @@ class TestNeverRaises:
 
 
 # --------------------------------------------------------------- rules, precedence, registry, TLM memory
+
 
 class TestBehaviour:
     def test_configured_company_rule(self):
@@ -276,7 +306,7 @@ class TestBehaviour:
         assert 1 == dec.tlm_unmatched
         for a in ("D0:00:00:00:00:01", "D0:00:00:00:00:02", "D0:00:00:00:00:03"):
             dec(advert_from_ad(uid, address=a))
-        assert dec(advert_from_ad(tlm, address="D0:00:00:00:00:01")) is None   # forgotten (least recent)
+        assert dec(advert_from_ad(tlm, address="D0:00:00:00:00:01")) is None  # forgotten (least recent)
         assert dec(advert_from_ad(tlm, address="D0:00:00:00:00:03")) is not None
         assert 2 == dec.tlm_unmatched
 
@@ -285,7 +315,7 @@ class TestBehaviour:
         uid = bytes.fromhex("1716aafe00ec8b0ca750095477cb3e770000000000a10000")
         tlm = bytes.fromhex("1116aafe20000bb817c0000004d200008ca0")
         dec = Decoder(registry=TagFilter(["eddystone:00000000000000000000:000000000001"]))
-        assert dec(advert_from_ad(uid)) is None           # recognised, not registered: dropped on its bytes
+        assert dec(advert_from_ad(uid)) is None  # recognised, not registered: dropped on its bytes
         assert dec(advert_from_ad(tlm)) is None
         assert (0, 1, 0, 0, 1) == counters(dec)
         assert 0 == len(dec._eddy_by_addr)
@@ -314,17 +344,25 @@ class TestBehaviour:
 
 REG_UUID = bytes.fromhex("4d2a0c1e7f3b4c559e612b8f0a7d3c10")
 REG_NS = bytes.fromhex("8b0ca750e7a74e14bd99")
-REGISTERED = ([f"ibeacon:{uuid.UUID(bytes=REG_UUID)}:7:{m}" for m in range(1, 4)]
-              + [f"eddystone:{REG_NS.hex()}:{i:012x}" for i in range(1, 4)]
-              + ["altbeacon:" + bytes(range(20)).hex(), "lpx:00000002", "batt:05", "mac:D0:00:00:00:00:02"])
+REGISTERED = (
+    [f"ibeacon:{uuid.UUID(bytes=REG_UUID)}:7:{m}" for m in range(1, 4)]
+    + [f"eddystone:{REG_NS.hex()}:{i:012x}" for i in range(1, 4)]
+    + ["altbeacon:" + bytes(range(20)).hex(), "lpx:00000002", "batt:05", "mac:D0:00:00:00:00:02"]
+)
 small = st.integers(0, 4)
 tagged_advert = st.one_of(
-    st.builds(lambda u, m: {0x004C: b"\x02\x15" + u + b"\x00\x07" + m.to_bytes(2, "big") + b"\xc5"},
-              st.sampled_from([REG_UUID, bytes(16)]), small),
+    st.builds(
+        lambda u, m: {0x004C: b"\x02\x15" + u + b"\x00\x07" + m.to_bytes(2, "big") + b"\xc5"},
+        st.sampled_from([REG_UUID, bytes(16)]),
+        small,
+    ),
     st.builds(lambda i: {0x0118: b"\xbe\xac" + bytes(range(i, i + 20)) + b"\xc5\x00"}, st.integers(0, 1)),
     st.builds(lambda n: {0xFFFF: b"\x4c\x50" + n.to_bytes(4, "big")}, small),
-    st.builds(lambda ns, i: {"eddy": b"\x00\xec" + ns + i.to_bytes(6, "big") + b"\0\0"},
-              st.sampled_from([REG_NS, bytes(10)]), small),
+    st.builds(
+        lambda ns, i: {"eddy": b"\x00\xec" + ns + i.to_bytes(6, "big") + b"\0\0"},
+        st.sampled_from([REG_NS, bytes(10)]),
+        small,
+    ),
     st.just({"eddy": bytes.fromhex("20000bb817c0000004d200008ca0")}),
     st.builds(lambda b: {"batt": bytes([b])}, st.integers(4, 6)),
     st.dictionaries(company_ids, payload, max_size=2),
@@ -349,7 +387,7 @@ def test_attached_decoder_equals_standalone_then_filter(items):
     got = [r for a in adverts if (r := attached(a)) is not None and f_attached(r) is not None]
     want = []
     for a in adverts:
-        mac_first = f"mac:{a.address}" in f_after      # the attached decoder checks a registered address first
+        mac_first = f"mac:{a.address}" in f_after  # the attached decoder checks a registered address first
         r = Reading(f"mac:{a.address}", a.t_mono_ns, a.rssi_dbm) if mac_first else standalone(a)
         if r is not None and f_after(r) is not None:
             want.append(r)
@@ -361,6 +399,7 @@ def test_make_reading_builds_the_same_frozen_reading():
     import dataclasses
 
     from listenpost.agent.pipeline.decode import make_reading
+
     tel = Telemetry(3000, -5.5, 1, 0.1)
     fast, slow = make_reading("lpx:00000007", 5, -61.5, tel), Reading("lpx:00000007", 5, -61.5, tel)
     assert (slow, hash(slow), repr(slow)) == (fast, hash(fast), repr(fast))

@@ -20,9 +20,14 @@ from listenpost.core.clock import VirtualClock
 from listenpost.core.errors import ConfigError
 
 TOKEN = "9f3c2b1a0d8e7f6a5b4c3d2e1f0a9b8c"
-CONFIG = {"board": "g3-b", "tags": ["ibeacon:4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10:9:3"],
-          "rules": [{"name": "lpx", "company_id": 65535, "prefix": "4c50", "length": 4}],
-          "offset_db": -3.5, "flush_seconds": 4, "heartbeat_seconds": 15}
+CONFIG = {
+    "board": "g3-b",
+    "tags": ["ibeacon:4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10:9:3"],
+    "rules": [{"name": "lpx", "company_id": 65535, "prefix": "4c50", "length": 4}],
+    "offset_db": -3.5,
+    "flush_seconds": 4,
+    "heartbeat_seconds": 15,
+}
 
 
 class EnrollServer:
@@ -58,15 +63,21 @@ async def srv(aiohttp_server):
     return server
 
 
-FP = {"machine_id": "0123456789abcdef0123456789abcdef", "hostname": "g3-b", "adapters": {"hci0": None},
-      "model": None}
+FP = {
+    "machine_id": "0123456789abcdef0123456789abcdef",
+    "hostname": "g3-b",
+    "adapters": {"hci0": None},
+    "model": None,
+}
 
 
 async def test_enrolled_board_gets_a_0600_credential_and_a_valid_agent_yaml(srv, tmp_path):
     state = tmp_path / "state"
     old = os.umask(0)  # the mode must come from os.open itself, not from a friendly umask
     try:
-        result = await enroll(str(srv.make_url("")), "GOOD-1234", state, clock=VirtualClock(), fingerprint_data=FP)
+        result = await enroll(
+            str(srv.make_url("")), "GOOD-1234", state, clock=VirtualClock(), fingerprint_data=FP
+        )
     finally:
         os.umask(old)
     assert result.status is EnrollStatus.ENROLLED and EXIT_CODES[result.status] == 0
@@ -87,11 +98,14 @@ async def test_enrolled_board_gets_a_0600_credential_and_a_valid_agent_yaml(srv,
     assert listenpost_main(["agent", "check-config", str(state / "agent.yaml")]) == 0
 
 
-@pytest.mark.parametrize(("code", "status", "words"), [
-    ("NOPE-1234", EnrollStatus.UNKNOWN_CODE, "does not know"),
-    ("USED-1234", EnrollStatus.CODE_USED, "already used"),
-    ("OLD-12345", EnrollStatus.CODE_EXPIRED, "expired"),
-])
+@pytest.mark.parametrize(
+    ("code", "status", "words"),
+    [
+        ("NOPE-1234", EnrollStatus.UNKNOWN_CODE, "does not know"),
+        ("USED-1234", EnrollStatus.CODE_USED, "already used"),
+        ("OLD-12345", EnrollStatus.CODE_EXPIRED, "expired"),
+    ],
+)
 async def test_refused_codes_write_nothing(srv, tmp_path, code, status, words):
     result = await enroll(str(srv.make_url("")), code, tmp_path, clock=VirtualClock(), fingerprint_data=FP)
     assert result.status is status and words in result.message
@@ -103,8 +117,17 @@ async def test_refused_codes_write_nothing(srv, tmp_path, code, status, words):
 async def test_a_busy_collector_is_retried_with_bounded_attempts(srv, tmp_path):
     srv.es.flaky = 2
     clock = VirtualClock()
-    task = asyncio.create_task(enroll(str(srv.make_url("")), "GOOD-1234", tmp_path, clock=clock,
-                                      attempts=3, backoff_s=2.0, fingerprint_data=FP))
+    task = asyncio.create_task(
+        enroll(
+            str(srv.make_url("")),
+            "GOOD-1234",
+            tmp_path,
+            clock=clock,
+            attempts=3,
+            backoff_s=2.0,
+            fingerprint_data=FP,
+        )
+    )
     while not task.done():
         await asyncio.wait({task}, timeout=0.05)  # loopback I/O of the attempt
         await clock.advance(4.0)
@@ -122,8 +145,17 @@ def _closed_port() -> int:
 
 async def test_unreachable_collector_gives_up_after_the_attempts(tmp_path):
     clock = VirtualClock()
-    task = asyncio.create_task(enroll(f"http://127.0.0.1:{_closed_port()}", "GOOD-1234", tmp_path, clock=clock,
-                                      attempts=3, timeout_s=2, fingerprint_data=FP))
+    task = asyncio.create_task(
+        enroll(
+            f"http://127.0.0.1:{_closed_port()}",
+            "GOOD-1234",
+            tmp_path,
+            clock=clock,
+            attempts=3,
+            timeout_s=2,
+            fingerprint_data=FP,
+        )
+    )
     slept = 0.0
     while not task.done():
         await asyncio.wait({task}, timeout=0.05)
@@ -165,6 +197,12 @@ def test_enroll_command_exit_codes(tmp_path, capsys):
 
 async def test_a_shared_session_is_left_open(srv, tmp_path):
     async with aiohttp.ClientSession() as session:
-        await enroll(str(srv.make_url("")), "GOOD-1234", tmp_path, clock=VirtualClock(), session=session,
-                     fingerprint_data=FP)
+        await enroll(
+            str(srv.make_url("")),
+            "GOOD-1234",
+            tmp_path,
+            clock=VirtualClock(),
+            session=session,
+            fingerprint_data=FP,
+        )
         assert not session.closed

@@ -53,8 +53,16 @@ def test_legacy_rssi_127_means_unavailable():
 def test_extended_vector():
     """Extended report with the legacy bit, TX power n/a, RSSI -72 (docs/references.md §2)."""
     (r,) = parse_h4(EXTENDED)
-    assert (r.event_type, r.address_type, r.address, r.rssi, r.tx_power, r.data_status, r.sid, r.extended) == (
-        0x0010, 1, "C0:11:22:33:44:55", -72, None, DataStatus.COMPLETE, 0xFF, True)
+    assert (
+        r.event_type,
+        r.address_type,
+        r.address,
+        r.rssi,
+        r.tx_power,
+        r.data_status,
+        r.sid,
+        r.extended,
+    ) == (0x0010, 1, "C0:11:22:33:44:55", -72, None, DataStatus.COMPLETE, 0xFF, True)
     assert r.data == bytes.fromhex("02010603097431")
 
 
@@ -72,18 +80,21 @@ def test_other_events_give_nothing():
     assert parse_h4(b"\x01\x0c\x20\x02\x01\x00") == []  # a command
 
 
-@pytest.mark.parametrize(("params", "match"), [
-    (b"", "subevent"),
-    (b"\x02", "Num_Reports missing"),
-    (b"\x02\x00", "Num_Reports is 0"),
-    (b"\x02\x01\x03\x01\x55\x44", "header needs 9 bytes"),
-    (b"\x02\x01\x03\x01" + bytes(6) + b"\x20" + bytes(33), "Data_Length 32 > 31"),
-    (b"\x02\x01\x03\x01" + bytes(6) + b"\x05\x02\x01", "run past the end"),
-    (LEGACY[3:] + b"\x00", "1 bytes left"),
-    (b"\x0d\x01" + bytes(10), "header needs 24 bytes"),
-    (EXTENDED[3:-1], "data runs past the end"),
-    (b"\x0d\x01\x60\x00" + EXTENDED[6:], "data status 3 is reserved"),
-])
+@pytest.mark.parametrize(
+    ("params", "match"),
+    [
+        (b"", "subevent"),
+        (b"\x02", "Num_Reports missing"),
+        (b"\x02\x00", "Num_Reports is 0"),
+        (b"\x02\x01\x03\x01\x55\x44", "header needs 9 bytes"),
+        (b"\x02\x01\x03\x01" + bytes(6) + b"\x20" + bytes(33), "Data_Length 32 > 31"),
+        (b"\x02\x01\x03\x01" + bytes(6) + b"\x05\x02\x01", "run past the end"),
+        (LEGACY[3:] + b"\x00", "1 bytes left"),
+        (b"\x0d\x01" + bytes(10), "header needs 24 bytes"),
+        (EXTENDED[3:-1], "data runs past the end"),
+        (b"\x0d\x01\x60\x00" + EXTENDED[6:], "data status 3 is reserved"),
+    ],
+)
 def test_malformed_events_raise_decode_error(params, match):
     """Each malformation gives DecodeError saying what is wrong."""
     with pytest.raises(DecodeError, match=match):
@@ -98,7 +109,9 @@ def test_length_byte_must_match():
         parse_event_packet(b"\x3e")
 
 
-addresses = st.lists(st.integers(0, 255), min_size=6, max_size=6).map(lambda b: ":".join(f"{x:02x}" for x in b))
+addresses = st.lists(st.integers(0, 255), min_size=6, max_size=6).map(
+    lambda b: ":".join(f"{x:02x}" for x in b)
+)
 ad_structs = st.lists(st.tuples(st.integers(1, 255), st.binary(max_size=5)), max_size=4)
 
 
@@ -107,13 +120,22 @@ def _eirs(structs):
 
 
 @settings(max_examples=150, deadline=None)
-@given(st.lists(st.tuples(st.integers(0, 4), st.integers(0, 3), addresses, ad_structs, st.integers(-127, 127)),
-                min_size=1, max_size=3))
+@given(
+    st.lists(
+        st.tuples(st.integers(0, 4), st.integers(0, 3), addresses, ad_structs, st.integers(-127, 127)),
+        min_size=1,
+        max_size=3,
+    )
+)
 def test_legacy_reports_built_by_scapy(reports):
     """Reports built by scapy decode field by field as scapy decodes them."""
-    pkts = [HCI_LE_Meta_Advertising_Report(type=t, addr_type=at, addr=a, data=_eirs(s), rssi=r)
-            for t, at, a, s, r in reports]
-    raw = bytes(HCI_Hdr() / HCI_Event_Hdr() / HCI_Event_LE_Meta() / HCI_LE_Meta_Advertising_Reports(reports=pkts))
+    pkts = [
+        HCI_LE_Meta_Advertising_Report(type=t, addr_type=at, addr=a, data=_eirs(s), rssi=r)
+        for t, at, a, s, r in reports
+    ]
+    raw = bytes(
+        HCI_Hdr() / HCI_Event_Hdr() / HCI_Event_LE_Meta() / HCI_LE_Meta_Advertising_Reports(reports=pkts)
+    )
     if any(sum(len(d) + 2 for _, d in s) > 31 for *_, s, _r in reports):
         with pytest.raises(DecodeError):
             parse_h4(raw)
@@ -129,17 +151,47 @@ def test_legacy_reports_built_by_scapy(reports):
 
 
 @settings(max_examples=150, deadline=None)
-@given(st.lists(st.tuples(st.integers(0, 2), st.booleans(), st.integers(0, 3), addresses, ad_structs,
-                          st.integers(-127, 127), st.integers(-127, 127), st.integers(0, 15)),
-                min_size=1, max_size=3))
+@given(
+    st.lists(
+        st.tuples(
+            st.integers(0, 2),
+            st.booleans(),
+            st.integers(0, 3),
+            addresses,
+            ad_structs,
+            st.integers(-127, 127),
+            st.integers(-127, 127),
+            st.integers(0, 15),
+        ),
+        min_size=1,
+        max_size=3,
+    )
+)
 def test_extended_reports_built_by_scapy(reports):
     """Extended reports built by scapy decode field by field as scapy decodes them."""
-    pkts = [HCI_LE_Meta_Extended_Advertising_Report(
-        data_status=ds, legacy=int(leg), connectable=1, addr_type=at, addr=a, primary_phy=1, secondary_phy=2,
-        advertising_sid=sid, tx_power=tx & 0xFF, rssi=r, direct_addr="00:00:00:00:00:00", data=_eirs(s))
-        for ds, leg, at, a, s, r, tx, sid in reports]
-    raw = bytes(HCI_Hdr() / HCI_Event_Hdr() / HCI_Event_LE_Meta()
-                / HCI_LE_Meta_Extended_Advertising_Reports(reports=pkts))
+    pkts = [
+        HCI_LE_Meta_Extended_Advertising_Report(
+            data_status=ds,
+            legacy=int(leg),
+            connectable=1,
+            addr_type=at,
+            addr=a,
+            primary_phy=1,
+            secondary_phy=2,
+            advertising_sid=sid,
+            tx_power=tx & 0xFF,
+            rssi=r,
+            direct_addr="00:00:00:00:00:00",
+            data=_eirs(s),
+        )
+        for ds, leg, at, a, s, r, tx, sid in reports
+    ]
+    raw = bytes(
+        HCI_Hdr()
+        / HCI_Event_Hdr()
+        / HCI_Event_LE_Meta()
+        / HCI_LE_Meta_Extended_Advertising_Reports(reports=pkts)
+    )
     if len(raw) - 3 > 255:
         return  # does not fit one event
     ours = parse_h4(raw)
@@ -158,8 +210,11 @@ def test_extended_reports_built_by_scapy(reports):
 
 
 @settings(max_examples=500, deadline=None)
-@given(st.sampled_from([LEGACY, EXTENDED]), st.lists(st.tuples(st.integers(0, 60), st.integers(0, 255)), max_size=4),
-       st.integers(0, 70))
+@given(
+    st.sampled_from([LEGACY, EXTENDED]),
+    st.lists(st.tuples(st.integers(0, 60), st.integers(0, 255)), max_size=4),
+    st.integers(0, 70),
+)
 def test_mutated_events_raise_only_decode_error(base, edits, cut):
     """Corrupted or cut events either decode or raise DecodeError, nothing else."""
     b = bytearray(base)
@@ -196,7 +251,12 @@ def test_reassembler_joins_fragments():
     assert f1.data_status is DataStatus.INCOMPLETE
     assert r.feed(f1) is None
     whole = r.feed(parse_event_packet(ev2)[0])
-    assert whole is not None and whole.data == big and whole.rssi == -70 and whole.data_status is DataStatus.COMPLETE
+    assert (
+        whole is not None
+        and whole.data == big
+        and whole.rssi == -70
+        and whole.data_status is DataStatus.COMPLETE
+    )
     adv = report_to_advert(whole, 5)
     assert adv is not None and adv.manufacturer_data == {0xFFFF: bytes(range(200))}
     # truncated ends the advertisement too, marked
@@ -210,14 +270,18 @@ def test_reassembler_is_bounded():
     """A controller that never finishes cannot grow the pending set past its limit."""
     r = ExtendedReassembler(max_pending=4)
     for i in range(10):
-        (rep,) = parse_event_packet(build_ext_adv_report_event([(0x20, 1, f"C0:11:22:33:44:{i:02X}", b"\x02\x01\x06", -70, 127)]))
+        (rep,) = parse_event_packet(
+            build_ext_adv_report_event([(0x20, 1, f"C0:11:22:33:44:{i:02X}", b"\x02\x01\x06", -70, 127)])
+        )
         assert r.feed(rep) is None
     assert len(r._pending) == 4 and r.dropped == 6
 
 
 def test_advert_to_event_round_trip():
     """An Advert written as an event reads back as the same Advert; long data uses the extended report."""
-    a = Advert(7, "C4:7A:10:00:2B:91", 1, -67, None, {0x004C: bytes.fromhex("0215") + bytes(21)}, {}, (), None)
+    a = Advert(
+        7, "C4:7A:10:00:2B:91", 1, -67, None, {0x004C: bytes.fromhex("0215") + bytes(21)}, {}, (), None
+    )
     ev = advert_to_event(a)
     assert ev[2] == 0x02
     assert report_to_advert(parse_event_packet(ev)[0], 7) == a
@@ -240,6 +304,7 @@ async def test_hci_source_reads_h4_packets_from_a_socket(clock):
     import socket
 
     from listenpost.agent.sources.hci import HciSource
+
     ours, theirs = socket.socketpair(socket.AF_UNIX, socket.SOCK_SEQPACKET)
     for pkt in (LEGACY, b"\x04\x0e\x04\x01\x0c\x20\x00", LEGACY[:-3], LEGACY[:-1] + b"\x7f", EXTENDED):
         theirs.send(pkt)
@@ -247,8 +312,16 @@ async def test_hci_source_reads_h4_packets_from_a_socket(clock):
     src = HciSource(0, clock, sock=ours)
     got = await asyncio.wait_for(_drain(src), 5)
     assert [(a.address, a.rssi_dbm, a.local_name, a.t_mono_ns) for a in got] == [
-        ("C0:11:22:33:44:55", -60, "t1", 1000 * 10**9), ("C0:11:22:33:44:55", -72, "t1", 1000 * 10**9)]
-    assert src.stats() == {"packets": 5, "adverts": 2, "bad_packets": 1, "dropped_no_rssi": 1, "fragments_dropped": 0}
+        ("C0:11:22:33:44:55", -60, "t1", 1000 * 10**9),
+        ("C0:11:22:33:44:55", -72, "t1", 1000 * 10**9),
+    ]
+    assert src.stats() == {
+        "packets": 5,
+        "adverts": 2,
+        "bad_packets": 1,
+        "dropped_no_rssi": 1,
+        "fragments_dropped": 0,
+    }
     assert ours.fileno() == -1  # closed when the stream ended
 
 
@@ -258,6 +331,7 @@ async def test_hci_source_without_af_bluetooth(clock, monkeypatch):
 
     from listenpost.agent.sources.hci import HciSource, dev_id_of
     from listenpost.core.errors import SourceReason, SourceUnavailable
+
     monkeypatch.delattr(socket, "AF_BLUETOOTH", raising=False)
     with pytest.raises(SourceUnavailable, match="no AF_BLUETOOTH") as e:
         await _drain(HciSource(0, clock))
@@ -272,5 +346,8 @@ def test_hci_filter_layout():
     import struct
 
     from listenpost.agent.sources.hci import HCI_FILTER_EVENTS
+
     type_mask, ev0, ev1, opcode = struct.unpack("<IIIH", HCI_FILTER_EVENTS)
-    assert type_mask == 1 << 4 and ev0 == (1 << 0x0E) | (1 << 0x0F) and ev1 == 1 << (0x3E - 32) and opcode == 0
+    assert (
+        type_mask == 1 << 4 and ev0 == (1 << 0x0E) | (1 << 0x0F) and ev1 == 1 << (0x3E - 32) and opcode == 0
+    )

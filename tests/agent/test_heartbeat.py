@@ -25,8 +25,14 @@ from listenpost.agent.client.uplink import ExchangeLog
 from listenpost.core.clock import VirtualClock
 
 TOKEN = "tok-g0-a-0123456789abcdef"
-CONFIG = {"board": "g0-a", "tags": ["mac:C4:7A:10:00:2B:91"], "rules": [], "offset_db": 1.5,
-          "flush_seconds": 5, "heartbeat_seconds": 10}
+CONFIG = {
+    "board": "g0-a",
+    "tags": ["mac:C4:7A:10:00:2B:91"],
+    "rules": [],
+    "offset_db": 1.5,
+    "flush_seconds": 5,
+    "heartbeat_seconds": 10,
+}
 
 
 class HeartbeatServer:
@@ -66,12 +72,23 @@ async def test_periodic_beats_carry_stats_and_exchanges_and_fetch_a_changed_conf
     url = str(server.make_url(""))
     seen: list = []
     async with aiohttp.ClientSession() as session:
-        fetcher = ConfigFetcher(base_url=url, token=TOKEN, board="g0-a", cache=ConfigCache(tmp_path),
-                                session=session)
-        hb = Heartbeat(base_url=url, token=TOKEN, board="g0-a", clock=clock, session=session,
-                       stats_fn=lambda: {"adverts_seen": 120, "spool": {"batches": 3}}, exchanges=ExchangeLog(),
-                       period_s=10.0, config=fetcher, on_config=seen.append, state_dir=tmp_path,
-                       board_info_fn=lambda: {"cpu_temperature_c": 48.5, "disk_free_bytes": 10})
+        fetcher = ConfigFetcher(
+            base_url=url, token=TOKEN, board="g0-a", cache=ConfigCache(tmp_path), session=session
+        )
+        hb = Heartbeat(
+            base_url=url,
+            token=TOKEN,
+            board="g0-a",
+            clock=clock,
+            session=session,
+            stats_fn=lambda: {"adverts_seen": 120, "spool": {"batches": 3}},
+            exchanges=ExchangeLog(),
+            period_s=10.0,
+            config=fetcher,
+            on_config=seen.append,
+            state_dir=tmp_path,
+            board_info_fn=lambda: {"cpu_temperature_c": 48.5, "disk_free_bytes": 10},
+        )
         hs.fail_next = 0
         task = asyncio.create_task(hb.run())
         for _ in range(4):
@@ -101,8 +118,16 @@ async def test_a_failed_beat_is_counted_and_the_next_one_goes_out(aiohttp_server
     hs.fail_next = 1
     server = await aiohttp_server(hs.app())
     async with aiohttp.ClientSession() as session:
-        hb = Heartbeat(base_url=str(server.make_url("")), token=TOKEN, board="g0-a", clock=clock, session=session,
-                       stats_fn=dict, exchanges=ExchangeLog(), state_dir=tmp_path)
+        hb = Heartbeat(
+            base_url=str(server.make_url("")),
+            token=TOKEN,
+            board="g0-a",
+            clock=clock,
+            session=session,
+            stats_fn=dict,
+            exchanges=ExchangeLog(),
+            state_dir=tmp_path,
+        )
         assert await hb.beat() is BeatResult.FAILED
         assert await hb.beat() is BeatResult.OK
         assert (hb.failed, hb.ok) == (1, 1) and hb.last_error is None
@@ -114,6 +139,7 @@ async def test_a_failed_beat_is_counted_and_the_next_one_goes_out(aiohttp_server
 
 # ------------------------------------------------------------------------------ boardinfo
 
+
 def _tree(root: Path, files: dict[str, str]) -> Path:
     for rel, text in files.items():
         p = root / rel
@@ -124,19 +150,32 @@ def _tree(root: Path, files: dict[str, str]) -> Path:
 
 def test_cpu_temperature_prefers_the_cpu_zone_and_reads_millidegrees(tmp_path):
     """Linux thermal sysfs reports millidegrees Celsius (kernel thermal sysfs ABI; common practice)."""
-    root = _tree(tmp_path, {
-        "sys/class/thermal/thermal_zone0/type": "acpitz\n", "sys/class/thermal/thermal_zone0/temp": "61000\n",
-        "sys/class/thermal/thermal_zone1/type": "cpu-thermal\n", "sys/class/thermal/thermal_zone1/temp": "48312\n",
-        "sys/class/thermal/thermal_zone2/type": "bogus\n", "sys/class/thermal/thermal_zone2/temp": "-273000\n",
-    })
+    root = _tree(
+        tmp_path,
+        {
+            "sys/class/thermal/thermal_zone0/type": "acpitz\n",
+            "sys/class/thermal/thermal_zone0/temp": "61000\n",
+            "sys/class/thermal/thermal_zone1/type": "cpu-thermal\n",
+            "sys/class/thermal/thermal_zone1/temp": "48312\n",
+            "sys/class/thermal/thermal_zone2/type": "bogus\n",
+            "sys/class/thermal/thermal_zone2/temp": "-273000\n",
+        },
+    )
     assert cpu_temperature_c(root) == pytest.approx(48.312)
     assert cpu_temperature_c(tmp_path / "nothing-here") is None
 
 
 def test_uptime_model_adapters_and_missing_figures(tmp_path):
-    root = _tree(tmp_path, {"proc/uptime": "3600.52 7000.10\n", "proc/device-tree/model": "Demo Board Rev 1.2\0",
-                            "sys/class/bluetooth/hci0/address": "c4:7a:10:00:2b:91\n",
-                            "sys/class/bluetooth/hci1/type": "Primary\n", "etc/machine-id": "abc123\n"})
+    root = _tree(
+        tmp_path,
+        {
+            "proc/uptime": "3600.52 7000.10\n",
+            "proc/device-tree/model": "Demo Board Rev 1.2\0",
+            "sys/class/bluetooth/hci0/address": "c4:7a:10:00:2b:91\n",
+            "sys/class/bluetooth/hci1/type": "Primary\n",
+            "etc/machine-id": "abc123\n",
+        },
+    )
     (tmp_path / "sys/class/bluetooth/hci0:64").mkdir()  # a connection entry, not an adapter
     assert uptime_s(root) == 3600.52
     assert device_model(root) == "Demo Board Rev 1.2"

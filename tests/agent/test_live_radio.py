@@ -45,7 +45,9 @@ async def test_bleak_scanning_delivers_adverts_and_reports_rates(ble_adapter: st
         assert re.fullmatch(r"[0-9A-F]{2}(:[0-9A-F]{2}){5}", a.address)
         assert -127 < a.rssi_dbm <= 20  # Core Spec Vol 4 Part E §7.7.65.2 range; -127 is dropped as "no RSSI"
     rates = source.effective_rates()
-    print(f"\n{ble_adapter}: {len(heard)} adverts from {len({a.address for a in heard})} addresses in {SCAN_S} s; "
-          f"median per-address rate {statistics.median(rates.values()) if rates else 0:.2f} Hz "
-          "(BlueZ may deliver far fewer than the devices send: see docs/radio.md §2 on DuplicateData)")
+    print(
+        f"\n{ble_adapter}: {len(heard)} adverts from {len({a.address for a in heard})} addresses in {SCAN_S} s; "
+        f"median per-address rate {statistics.median(rates.values()) if rates else 0:.2f} Hz "
+        "(BlueZ may deliver far fewer than the devices send: see docs/radio.md §2 on DuplicateData)"
+    )
     assert source.stats()["state"] in ("scanning", "restarting")

@@ -29,7 +29,9 @@ async def test_record_copies_adverts_until_the_time_is_up(tmp_path, clock, fake)
     task = asyncio.create_task(record(out, src, clock, board="g3-b", seconds=10))
     await settle()
     for i in range(4):
-        fake.instances[0].emit(f"C4:7A:10:00:2B:{i:02X}", -60 - i, mfg={0xFFFF: b"LP\x00\x00\x00" + bytes([i])})
+        fake.instances[0].emit(
+            f"C4:7A:10:00:2B:{i:02X}", -60 - i, mfg={0xFFFF: b"LP\x00\x00\x00" + bytes([i])}
+        )
         await clock.advance(2)
     await clock.advance(2)  # t = 10 s: done
     result = await asyncio.wait_for(task, 5)
@@ -44,7 +46,9 @@ async def test_record_copies_adverts_until_the_time_is_up(tmp_path, clock, fake)
 async def test_nothing_heard_writes_no_file(tmp_path, clock, fake):
     """A quiet run leaves no empty recording behind."""
     out = tmp_path / "rec.jsonl"
-    task = asyncio.create_task(record(out, BleakSource("hci0", clock, 60, backend=fake), clock, board="g0-a", seconds=5))
+    task = asyncio.create_task(
+        record(out, BleakSource("hci0", clock, 60, backend=fake), clock, board="g0-a", seconds=5)
+    )
     await settle()
     await clock.advance(5)
     assert (await asyncio.wait_for(task, 5)).adverts == 0
@@ -72,8 +76,10 @@ def test_command_without_af_bluetooth_exits_1(tmp_path, capsys, monkeypatch):
     assert not out.exists()
 
 
-@pytest.mark.skipif(os.path.exists("/run/dbus/system_bus_socket") or os.path.exists("/var/run/dbus/system_bus_socket"),
-                    reason="a system D-Bus is present, so bleak's start() gets further than on a machine without one")
+@pytest.mark.skipif(
+    os.path.exists("/run/dbus/system_bus_socket") or os.path.exists("/var/run/dbus/system_bus_socket"),
+    reason="a system D-Bus is present, so bleak's start() gets further than on a machine without one",
+)
 def test_bleak_command_without_system_bus_exits_1(tmp_path, capsys):
     """With no system D-Bus (as in this container), bleak's start() fails and record says why (real bleak)."""
     out = tmp_path / "r.jsonl"

@@ -23,10 +23,14 @@ UUID = "4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10"
 
 
 def good_config(offset: float = 2.5, minor: int = 1) -> dict:
-    return {"board": "u2-a",
-            "tags": [f"ibeacon:{UUID.upper()}:7:{minor}", "eddystone:8b0ca750e7a74e14bd99:00000000001e"],
-            "rules": [{"name": "lpx", "company_id": 0xFFFF, "prefix": "4c50", "length": 4}],
-            "offset_db": offset, "flush_seconds": 5, "heartbeat_seconds": 10}
+    return {
+        "board": "u2-a",
+        "tags": [f"ibeacon:{UUID.upper()}:7:{minor}", "eddystone:8b0ca750e7a74e14bd99:00000000001e"],
+        "rules": [{"name": "lpx", "company_id": 0xFFFF, "prefix": "4c50", "length": 4}],
+        "offset_db": offset,
+        "flush_seconds": 5,
+        "heartbeat_seconds": 10,
+    }
 
 
 class ConfigServer:
@@ -49,8 +53,9 @@ class ConfigServer:
         self.requests.append(inm)
         if inm == self.etag:
             return web.Response(status=304, headers={"ETag": self.etag})
-        return web.Response(text=json.dumps(self.body), content_type="application/json",
-                            headers={"ETag": self.etag})
+        return web.Response(
+            text=json.dumps(self.body), content_type="application/json", headers={"ETag": self.etag}
+        )
 
 
 @pytest.fixture
@@ -68,8 +73,14 @@ async def session():
 
 
 def fetcher(server, session, state_dir, token=TOKEN) -> ConfigFetcher:
-    return ConfigFetcher(base_url=str(server.make_url("")), token=token, board="u2-a",
-                         cache=ConfigCache(state_dir), session=session, timeout_s=5)
+    return ConfigFetcher(
+        base_url=str(server.make_url("")),
+        token=token,
+        board="u2-a",
+        cache=ConfigCache(state_dir),
+        session=session,
+        timeout_s=5,
+    )
 
 
 async def test_etag_then_304_and_update(server, session, tmp_path):
@@ -93,8 +104,9 @@ async def test_cache_survives_a_restart_with_the_collector_gone(server, session,
     url = str(server.make_url(""))
     await server.close()
     # A new process: the cache alone gives tags and offset; the collector is unreachable.
-    again = ConfigFetcher(base_url=url, token=TOKEN, board="u2-a", cache=ConfigCache(tmp_path),
-                          session=session, timeout_s=2)
+    again = ConfigFetcher(
+        base_url=url, token=TOKEN, board="u2-a", cache=ConfigCache(tmp_path), session=session, timeout_s=2
+    )
     assert again.current == f.current
     assert await again.fetch() is FetchResult.FAILED
     assert again.current == f.current
@@ -103,15 +115,20 @@ async def test_cache_survives_a_restart_with_the_collector_gone(server, session,
     assert not [p for p in tmp_path.iterdir() if p.name.endswith(".tmp")]
 
 
-@pytest.mark.parametrize(("mutate", "field"), [
-    (lambda c: c["tags"].append("ibeacon:not-a-uuid:1:2"), "tags[2]"),
-    (lambda c: c.update(offset_db=99), "offset_db"),
-    (lambda c: c["rules"].append({"name": "mac", "company_id": 1}), "rules[1].name"),
-    (lambda c: c.update(flush_seconds=0), "flush_seconds"),
-    (lambda c: c.update(tags="ibeacon"), "tags"),
-    (lambda c: c.update(board="g0-a"), "board"),
-])
-async def test_bad_config_is_rejected_whole_and_the_last_good_one_stays(server, session, tmp_path, mutate, field):
+@pytest.mark.parametrize(
+    ("mutate", "field"),
+    [
+        (lambda c: c["tags"].append("ibeacon:not-a-uuid:1:2"), "tags[2]"),
+        (lambda c: c.update(offset_db=99), "offset_db"),
+        (lambda c: c["rules"].append({"name": "mac", "company_id": 1}), "rules[1].name"),
+        (lambda c: c.update(flush_seconds=0), "flush_seconds"),
+        (lambda c: c.update(tags="ibeacon"), "tags"),
+        (lambda c: c.update(board="g0-a"), "board"),
+    ],
+)
+async def test_bad_config_is_rejected_whole_and_the_last_good_one_stays(
+    server, session, tmp_path, mutate, field
+):
     from structlog.testing import capture_logs
 
     f = fetcher(server, session, tmp_path)
@@ -126,15 +143,26 @@ async def test_bad_config_is_rejected_whole_and_the_last_good_one_stays(server, 
     assert (tmp_path / CACHE_FILE).read_bytes() == before
     rejected = [e for e in logs if e["event"] == "config_rejected"]
     assert rejected and field in rejected[0]["error"]
-    assert ConfigFetcher(base_url="http://127.0.0.1:9", token=TOKEN, board="u2-a", cache=ConfigCache(tmp_path),
-                         session=session).current.offset_db == 2.5
+    assert (
+        ConfigFetcher(
+            base_url="http://127.0.0.1:9",
+            token=TOKEN,
+            board="u2-a",
+            cache=ConfigCache(tmp_path),
+            session=session,
+        ).current.offset_db
+        == 2.5
+    )
 
 
 async def test_not_json_and_unauthorized(server, session, tmp_path):
     server.cs.body = "not an object"
     f = fetcher(server, session, tmp_path)
     assert await f.fetch() is FetchResult.REJECTED
-    assert await fetcher(server, session, tmp_path, token="wrong-token-000000").fetch() is FetchResult.UNAUTHORIZED
+    assert (
+        await fetcher(server, session, tmp_path, token="wrong-token-000000").fetch()
+        is FetchResult.UNAUTHORIZED
+    )
 
 
 def test_a_corrupt_cache_file_is_ignored_not_fatal(tmp_path):

@@ -16,23 +16,28 @@ VENUE_HEX = VENUE.replace("-", "")
 NS = "8b0ca750e7a74e14bd99"
 
 # Written by hand per DEVELOPERS.md "Recorded-log format": header, then one advert per line.
-RECORDING = "\n".join([
-    '{"format": "listenpost-recording", "version": 1, "board": "g0-a", "boot": "b-1", "wall_at_start": 1800000000.0}',
-    # visitor tag 7:1 (registered)
-    f'{{"t": 100.5, "a": "C0:00:00:00:00:01", "at": 1, "r": -67, "m": {{"004c": "0215{VENUE_HEX}00070001c5"}}}}',
-    # visitor tag 7:2 (not registered)
-    f'{{"t": 100.75, "a": "C0:00:00:00:00:02", "at": 1, "r": -70, "m": {{"004c": "0215{VENUE_HEX}00070002c5"}}}}',
-    # a phone
-    '{"t": 101.0, "a": "5E:11:22:33:44:55", "at": 1, "r": -80, "m": {"0006": "0109200211"}}',
-    # Eddystone tag instance 1e: UID then TLM (3000 mV, -5.5 degC, 1234 advs, 3600 s)
-    f'{{"t": 101.25, "a": "C0:00:00:00:00:03", "at": 1, "r": -71, "s": {{"feaa": "00ec{NS}00000000001e0000"}}, "u": ["feaa"]}}',
-    '{"t": 101.5, "a": "C0:00:00:00:00:03", "at": 1, "r": -72, "s": {"feaa": "20000bb8fa80000004d200008ca0"}}',
-    # custom firmware tag 7 (needs the lpx rule), then an iBeacon frame cut short
-    '{"t": 102.0, "a": "C0:00:00:00:00:04", "at": 1, "r": -60, "m": {"ffff": "4c5000000007"}}',
-    f'{{"t": 102.25, "a": "C0:00:00:00:00:05", "at": 1, "r": -61, "m": {{"004c": "0215{VENUE_HEX}0007"}}}}',
-    # registered by address, no payload
-    '{"t": 103.0, "a": "C4:7A:10:00:2B:91", "at": 0, "r": -55}',
-]) + "\n"
+RECORDING = (
+    "\n".join(
+        [
+            '{"format": "listenpost-recording", "version": 1, "board": "g0-a", "boot": "b-1", "wall_at_start": 1800000000.0}',
+            # visitor tag 7:1 (registered)
+            f'{{"t": 100.5, "a": "C0:00:00:00:00:01", "at": 1, "r": -67, "m": {{"004c": "0215{VENUE_HEX}00070001c5"}}}}',
+            # visitor tag 7:2 (not registered)
+            f'{{"t": 100.75, "a": "C0:00:00:00:00:02", "at": 1, "r": -70, "m": {{"004c": "0215{VENUE_HEX}00070002c5"}}}}',
+            # a phone
+            '{"t": 101.0, "a": "5E:11:22:33:44:55", "at": 1, "r": -80, "m": {"0006": "0109200211"}}',
+            # Eddystone tag instance 1e: UID then TLM (3000 mV, -5.5 degC, 1234 advs, 3600 s)
+            f'{{"t": 101.25, "a": "C0:00:00:00:00:03", "at": 1, "r": -71, "s": {{"feaa": "00ec{NS}00000000001e0000"}}, "u": ["feaa"]}}',
+            '{"t": 101.5, "a": "C0:00:00:00:00:03", "at": 1, "r": -72, "s": {"feaa": "20000bb8fa80000004d200008ca0"}}',
+            # custom firmware tag 7 (needs the lpx rule), then an iBeacon frame cut short
+            '{"t": 102.0, "a": "C0:00:00:00:00:04", "at": 1, "r": -60, "m": {"ffff": "4c5000000007"}}',
+            f'{{"t": 102.25, "a": "C0:00:00:00:00:05", "at": 1, "r": -61, "m": {{"004c": "0215{VENUE_HEX}0007"}}}}',
+            # registered by address, no payload
+            '{"t": 103.0, "a": "C4:7A:10:00:2B:91", "at": 0, "r": -55}',
+        ]
+    )
+    + "\n"
+)
 
 TAGS = f"""# Brackenford test tags
 ibeacon:{VENUE.upper()}:7:1
@@ -43,8 +48,13 @@ mac:c4:7a:10:00:2b:91
 
 
 def run(*args: str | Path, cwd: Path) -> subprocess.CompletedProcess[str]:
-    return subprocess.run([str(LISTENPOST), "agent", "replay", *map(str, args)], cwd=cwd, capture_output=True,
-                          text=True, timeout=60)
+    return subprocess.run(
+        [str(LISTENPOST), "agent", "replay", *map(str, args)],
+        cwd=cwd,
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
 
 
 @pytest.fixture
@@ -64,8 +74,12 @@ def test_dry_run_prints_each_reading(files, tmp_path):
     assert [
         {"tag": f"ibeacon:{VENUE}:7:1", "rssi": -67, "t": 100.5},
         {"tag": f"eddystone:{NS}:00000000001e", "rssi": -71, "t": 101.25},
-        {"tag": f"eddystone:{NS}:00000000001e", "rssi": -72, "t": 101.5,
-         "telemetry": {"battery_mv": 3000, "temperature_c": -5.5, "adv_count": 1234, "uptime_s": 3600.0}},
+        {
+            "tag": f"eddystone:{NS}:00000000001e",
+            "rssi": -72,
+            "t": 101.5,
+            "telemetry": {"battery_mv": 3000, "temperature_c": -5.5, "adv_count": 1234, "uptime_s": 3600.0},
+        },
         {"tag": "mac:C4:7A:10:00:2B:91", "rssi": -55, "t": 103.0},
     ] == [json.loads(line) for line in p.stdout.splitlines()]
     assert "adverts read        8" in p.stderr
@@ -80,17 +94,21 @@ def test_config_rules_and_offset_override(files, tmp_path):
     """Decode rules come from the config; --offset-db overrides calibration.offset_db."""
     rec, tags = files
     cfg = tmp_path / "agent.yaml"
-    cfg.write_text("board: g0-a\n"
-                   f"tags:\n  file: {tags.name}\n"
-                   "decode:\n  rules:\n    - {name: lpx, company_id: 0xFFFF, prefix: '4c50', offset: 2, length: 4}\n"
-                   "calibration:\n  offset_db: 10\n")
+    cfg.write_text(
+        "board: g0-a\n"
+        f"tags:\n  file: {tags.name}\n"
+        "decode:\n  rules:\n    - {name: lpx, company_id: 0xFFFF, prefix: '4c50', offset: 2, length: 4}\n"
+        "calibration:\n  offset_db: 10\n"
+    )
     p = run(rec, "--dry-run", "--config", cfg, "--offset-db", "2.5", "--fast", cwd=tmp_path)
     assert 0 == p.returncode, p.stderr
     lines = [json.loads(line) for line in p.stdout.splitlines()]
     assert {"tag": "lpx:00000007", "rssi": -57.5, "t": 102.0} in lines
     assert [-64.5, -68.5, -69.5, -57.5, -52.5] == [x["rssi"] for x in lines]
 
-    p = run(rec, "--dry-run", "--config", cfg, "--fast", cwd=tmp_path)   # the config's own offset and tags file
+    p = run(
+        rec, "--dry-run", "--config", cfg, "--fast", cwd=tmp_path
+    )  # the config's own offset and tags file
     assert [-57, -61, -62, -50, -45] == [json.loads(x)["rssi"] for x in p.stdout.splitlines()]
 
 
@@ -155,13 +173,18 @@ def test_btsnoop_capture_is_detected_by_content(tmp_path):
         HCI_LE_Meta_Advertising_Report,
         HCI_LE_Meta_Advertising_Reports,
     )
+
     ad = bytes.fromhex("0201061aff4c000215e2c56db5dffb48d2b060d0f5a71096e000010102c5")
 
     def event(rssi: int) -> bytes:
-        rep = HCI_LE_Meta_Advertising_Report(type=3, addr_type=1, addr="c0:11:22:33:44:55", data=ad, rssi=rssi)
-        return bytes(HCI_Hdr() / HCI_Event_Hdr() / HCI_Event_LE_Meta() / HCI_LE_Meta_Advertising_Reports(reports=[rep]))
+        rep = HCI_LE_Meta_Advertising_Report(
+            type=3, addr_type=1, addr="c0:11:22:33:44:55", data=ad, rssi=rssi
+        )
+        return bytes(
+            HCI_Hdr() / HCI_Event_Hdr() / HCI_Event_LE_Meta() / HCI_LE_Meta_Advertising_Reports(reports=[rep])
+        )
 
-    epoch_us = 0x00DCDDB30F2F8000          # btsnoop time zero, docs/references.md §3
+    epoch_us = 0x00DCDDB30F2F8000  # btsnoop time zero, docs/references.md §3
     t0 = 1_700_000_000_000_000
     cap = b"btsnoop\0" + struct.pack(">II", 1, 1002)
     for dt_us, rssi in ((0, -60), (250_000, -63)):
@@ -174,12 +197,15 @@ def test_btsnoop_capture_is_detected_by_content(tmp_path):
     p = run(f, "--dry-run", "--tags", tags, "--fast", cwd=tmp_path)
     assert 0 == p.returncode, p.stderr
     lines = [json.loads(x) for x in p.stdout.splitlines()]
-    assert [("ibeacon:e2c56db5-dffb-48d2-b060-d0f5a71096e0:1:258", -60), ("ibeacon:e2c56db5-dffb-48d2-b060-d0f5a71096e0:1:258", -63)] \
-        == [(x["tag"], x["rssi"]) for x in lines]
+    assert [
+        ("ibeacon:e2c56db5-dffb-48d2-b060-d0f5a71096e0:1:258", -60),
+        ("ibeacon:e2c56db5-dffb-48d2-b060-d0f5a71096e0:1:258", -63),
+    ] == [(x["tag"], x["rssi"]) for x in lines]
     assert 0.25 == pytest.approx(lines[1]["t"] - lines[0]["t"], abs=1e-6)
 
 
 # ---------------------------------------------------------------- the board settings a dry run uses
+
 
 def test_dry_run_of_an_enrolled_board_uses_the_collectors_cached_config(files, tmp_path):
     """An agent.yaml written by 'agent enroll' has no tags file: the dry run takes tags, rules and offset
@@ -189,15 +215,26 @@ def test_dry_run_of_an_enrolled_board_uses_the_collectors_cached_config(files, t
     rec, _ = files
     state = tmp_path / "board"
     state.mkdir()
-    (state / "agent.yaml").write_text(f"board: g0-a\nstate_dir: {state}\ncollector:\n  url: http://10.20.0.2:8470\n")
-    ConfigCache(state).save({"board": "g0-a", "tags": [f"ibeacon:{VENUE}:7:1", "lpx:00000007"],
-                             "rules": [{"name": "lpx", "company_id": 0xFFFF, "prefix": "4c50", "offset": 2,
-                                        "length": 4}],
-                             "offset_db": -3.0, "flush_seconds": 5, "heartbeat_seconds": 10}, None)
+    (state / "agent.yaml").write_text(
+        f"board: g0-a\nstate_dir: {state}\ncollector:\n  url: http://10.20.0.2:8470\n"
+    )
+    ConfigCache(state).save(
+        {
+            "board": "g0-a",
+            "tags": [f"ibeacon:{VENUE}:7:1", "lpx:00000007"],
+            "rules": [{"name": "lpx", "company_id": 0xFFFF, "prefix": "4c50", "offset": 2, "length": 4}],
+            "offset_db": -3.0,
+            "flush_seconds": 5,
+            "heartbeat_seconds": 10,
+        },
+        None,
+    )
     p = run(rec, "--dry-run", "--config", state / "agent.yaml", "--fast", cwd=tmp_path)
     assert 0 == p.returncode, p.stderr
-    assert [{"tag": f"ibeacon:{VENUE}:7:1", "rssi": -70, "t": 100.5},
-            {"tag": "lpx:00000007", "rssi": -63, "t": 102.0}] == [json.loads(x) for x in p.stdout.splitlines()]
+    assert [
+        {"tag": f"ibeacon:{VENUE}:7:1", "rssi": -70, "t": 100.5},
+        {"tag": "lpx:00000007", "rssi": -63, "t": 102.0},
+    ] == [json.loads(x) for x in p.stdout.splitlines()]
     assert "no decode rule" not in p.stderr
     # --offset-db still wins over the cached offset.
     p = run(rec, "--dry-run", "--config", state / "agent.yaml", "--offset-db", "0", "--fast", cwd=tmp_path)
@@ -214,6 +251,7 @@ def test_dry_run_names_registered_tags_no_rule_can_decode(files, tmp_path):
 
 # ---------------------------------------------------------------- uploading: where the collector puts a replay
 
+
 async def _clock_start(rec: Path, speed: float, clock) -> tuple[float, str]:
     from listenpost.agent.sources import replay_board_clock
 
@@ -221,10 +259,16 @@ async def _clock_start(rec: Path, speed: float, clock) -> tuple[float, str]:
     return board.monotonic(), board.boot_id
 
 
-@pytest.mark.parametrize(("speed", "start"), [
-    # Adverts at board 100.5 .. 103.0 s. At speed 2 advert i is due (t_i - 100.5) / 2 after the start, so
-    # the clock must start at max(t_i - (t_i - 100.5) / 2) = 103.0 - 1.25; as fast as possible, at 103.0.
-    (2.0, 101.75), (1.0, 100.5), (0.0, 103.0)])
+@pytest.mark.parametrize(
+    ("speed", "start"),
+    [
+        # Adverts at board 100.5 .. 103.0 s. At speed 2 advert i is due (t_i - 100.5) / 2 after the start, so
+        # the clock must start at max(t_i - (t_i - 100.5) / 2) = 103.0 - 1.25; as fast as possible, at 103.0.
+        (2.0, 101.75),
+        (1.0, 100.5),
+        (0.0, 103.0),
+    ],
+)
 async def test_replay_board_clock_starts_where_no_advert_is_ahead_of_it(files, speed, start):
     from listenpost.core.clock import VirtualClock
 
@@ -281,13 +325,19 @@ async def test_uploaded_replay_ends_at_the_collector_when_its_replay_ends(aiohtt
     app = create_app(CollectorSettings(state_dir=str(tmp_path / "collector")), clock=clock, run_monitor=False)
     server = await aiohttp_server(app)
     store = app[STORE]
-    await store.add_board(Board("g0-a", "G0 Foyer", "ground", clock.time()),
-                          Enrollment("g0-a", code_hash("BRK-G0A-1001"), clock.time() + 3600))
-    await store.add_tags([f"ibeacon:{VENUE}:7:1", f"eddystone:{NS}:00000000001e", "mac:C4:7A:10:00:2B:91"],
-                         clock.time())
-    result = await enroll(str(server.make_url("")).rstrip("/"), "BRK-G0A-1001", tmp_path / "board", clock=clock)
+    await store.add_board(
+        Board("g0-a", "G0 Foyer", "ground", clock.time()),
+        Enrollment("g0-a", code_hash("BRK-G0A-1001"), clock.time() + 3600),
+    )
+    await store.add_tags(
+        [f"ibeacon:{VENUE}:7:1", f"eddystone:{NS}:00000000001e", "mac:C4:7A:10:00:2B:91"], clock.time()
+    )
+    result = await enroll(
+        str(server.make_url("")).rstrip("/"), "BRK-G0A-1001", tmp_path / "board", clock=clock
+    )
     assert result.status is EnrollStatus.ENROLLED, result.message
     from listenpost.agent.config import load_agent_config
+
     cfg = load_agent_config(result.config_path)
 
     started = clock.time()

@@ -23,11 +23,15 @@ EDDY = uuid16_to_128(0xFEAA)
 
 
 def _adv(t_s: float, i: int = 1, rssi: int = -70) -> Advert:
-    return Advert(round(t_s * 1e9), f"C4:7A:10:00:2B:{i:02X}", 1, rssi, None, {0xFFFF: b"LP" + i.to_bytes(4, "big")})
+    return Advert(
+        round(t_s * 1e9), f"C4:7A:10:00:2B:{i:02X}", 1, rssi, None, {0xFFFF: b"LP" + i.to_bytes(4, "big")}
+    )
 
 
 def _write(path, adverts, **kw):
-    return write_recording(path, adverts, board=kw.get("board", "g0-a"), boot="boot-1", wall_at_start=1_800_000_000.0)
+    return write_recording(
+        path, adverts, board=kw.get("board", "g0-a"), boot="boot-1", wall_at_start=1_800_000_000.0
+    )
 
 
 # ---------------------------------------------------------------- format
@@ -36,9 +40,17 @@ def _write(path, adverts, **kw):
 def test_round_trip_plain_and_gzip(tmp_path):
     """Every Advert field survives a write and a read, plain and gzip'd; gzip is detected by content."""
     adverts = [
-        Advert(51_234_000_000, "C4:7A:10:00:2B:91", 1, -67, -4, {0x004C: bytes.fromhex("0215aa")},
-               {EDDY: b"\x00\xee", "4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10": b"\x01"},
-               (EDDY, "12345678-0000-1000-8000-00805f9b34fb"), "tag-01"),
+        Advert(
+            51_234_000_000,
+            "C4:7A:10:00:2B:91",
+            1,
+            -67,
+            -4,
+            {0x004C: bytes.fromhex("0215aa")},
+            {EDDY: b"\x00\xee", "4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10": b"\x01"},
+            (EDDY, "12345678-0000-1000-8000-00805f9b34fb"),
+            "tag-01",
+        ),
         Advert(51_234_500_001, "C4:7A:10:00:2B:92", 0, -127, None),
         Advert(51_235_000_000, "C4:7A:10:00:2B:93", 3, 20, 127, {}, {}, (), ""),
     ]
@@ -48,7 +60,12 @@ def test_round_trip_plain_and_gzip(tmp_path):
         if name == "gz-without-suffix":
             p.write_bytes(gzip.compress((tmp_path / "r.jsonl").read_bytes()))
         header, it = read_recording(p)
-        assert (header.board, header.boot, header.wall_at_start, header.version) == ("g0-a", "boot-1", 1.8e9, 1)
+        assert (header.board, header.boot, header.wall_at_start, header.version) == (
+            "g0-a",
+            "boot-1",
+            1.8e9,
+            1,
+        )
         assert list(it) == adverts
     assert (tmp_path / "r.jsonl.gz").read_bytes()[:2] == b"\x1f\x8b"
 
@@ -56,12 +73,38 @@ def test_round_trip_plain_and_gzip(tmp_path):
 def test_line_layout_matches_developers_md(tmp_path):
     """Lines use the documented keys: 4-hex company ids and 16-bit UUIDs, hex payloads, optional keys left out."""
     p = tmp_path / "r.jsonl"
-    _write(p, [Advert(1_500_000_000, "C4:7A:10:00:2B:91", 1, -67, None, {0x004C: b"\x02\x15"}, {EDDY: b"\x10"}, (EDDY,))])
+    _write(
+        p,
+        [
+            Advert(
+                1_500_000_000,
+                "C4:7A:10:00:2B:91",
+                1,
+                -67,
+                None,
+                {0x004C: b"\x02\x15"},
+                {EDDY: b"\x10"},
+                (EDDY,),
+            )
+        ],
+    )
     lines = p.read_text().splitlines()
-    assert json.loads(lines[0]) == {"format": "listenpost-recording", "version": 1, "board": "g0-a",
-                                    "boot": "boot-1", "wall_at_start": 1_800_000_000.0}
-    assert json.loads(lines[1]) == {"t": 1.5, "a": "C4:7A:10:00:2B:91", "at": 1, "r": -67,
-                                    "m": {"004c": "0215"}, "s": {"feaa": "10"}, "u": ["feaa"]}
+    assert json.loads(lines[0]) == {
+        "format": "listenpost-recording",
+        "version": 1,
+        "board": "g0-a",
+        "boot": "boot-1",
+        "wall_at_start": 1_800_000_000.0,
+    }
+    assert json.loads(lines[1]) == {
+        "t": 1.5,
+        "a": "C4:7A:10:00:2B:91",
+        "at": 1,
+        "r": -67,
+        "m": {"004c": "0215"},
+        "s": {"feaa": "10"},
+        "u": ["feaa"],
+    }
 
 
 @settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
@@ -74,24 +117,48 @@ def test_board_time_round_trips_to_the_nanosecond(tmp_path, ts):
 
 
 def _lines(p, *extra):
-    p.write_text("\n".join([json.dumps({"format": "listenpost-recording", "version": 1, "board": "g0-a",
-                                        "boot": "b", "wall_at_start": 1.0}), *extra]) + "\n")
+    p.write_text(
+        "\n".join(
+            [
+                json.dumps(
+                    {
+                        "format": "listenpost-recording",
+                        "version": 1,
+                        "board": "g0-a",
+                        "boot": "b",
+                        "wall_at_start": 1.0,
+                    }
+                ),
+                *extra,
+            ]
+        )
+        + "\n"
+    )
 
 
-@pytest.mark.parametrize(("line", "match"), [
-    ('{"t": 1, "a": "c4:7a:10:00:2b:91", "at": 1, "r": -60}', "a: must be an upper-case colon address"),
-    ('{"t": -1, "a": "C4:7A:10:00:2B:91", "at": 1, "r": -60}', "t: must be board seconds"),
-    ('{"t": 1, "a": "C4:7A:10:00:2B:91", "at": 4, "r": -60}', r"at: must be an integer in 0\.\.3"),
-    ('{"t": 1, "a": "C4:7A:10:00:2B:91", "at": 1, "r": 127}', r"r: must be an integer in -127\.\.20"),
-    ('{"t": 1, "a": "C4:7A:10:00:2B:91", "at": 1}', "r: must be an integer"),
-    ('{"t": 1, "a": "C4:7A:10:00:2B:91", "at": 1, "r": -60, "m": {"4c": "00"}}', "m: company id must be 4 hex"),
-    ('{"t": 1, "a": "C4:7A:10:00:2B:91", "at": 1, "r": -60, "m": {"004c": "0g"}}', "m.004c: not hex"),
-    ('{"t": 1, "a": "C4:7A:10:00:2B:91", "at": 1, "r": -60, "s": {"xyz": "00"}}', "s: must be a 4-hex or 128-bit UUID"),
-    ('{"t": 1, "a": "C4:7A:10:00:2B:91", "at": 1, "r": -60, "u": "feaa"}', "u: must be a list"),
-    ('{"t": 1, "a": "C4:7A:10:00:2B:91", "at": 1, "r": -60, "n": 5}', "n: must be a string"),
-    ('{"t": 1, "a": "C4:7A:10:00:2B:91", "at": 1, "r": -60', "not JSON"),
-    ("[1, 2]", "must be a JSON object"),
-])
+@pytest.mark.parametrize(
+    ("line", "match"),
+    [
+        ('{"t": 1, "a": "c4:7a:10:00:2b:91", "at": 1, "r": -60}', "a: must be an upper-case colon address"),
+        ('{"t": -1, "a": "C4:7A:10:00:2B:91", "at": 1, "r": -60}', "t: must be board seconds"),
+        ('{"t": 1, "a": "C4:7A:10:00:2B:91", "at": 4, "r": -60}', r"at: must be an integer in 0\.\.3"),
+        ('{"t": 1, "a": "C4:7A:10:00:2B:91", "at": 1, "r": 127}', r"r: must be an integer in -127\.\.20"),
+        ('{"t": 1, "a": "C4:7A:10:00:2B:91", "at": 1}', "r: must be an integer"),
+        (
+            '{"t": 1, "a": "C4:7A:10:00:2B:91", "at": 1, "r": -60, "m": {"4c": "00"}}',
+            "m: company id must be 4 hex",
+        ),
+        ('{"t": 1, "a": "C4:7A:10:00:2B:91", "at": 1, "r": -60, "m": {"004c": "0g"}}', "m.004c: not hex"),
+        (
+            '{"t": 1, "a": "C4:7A:10:00:2B:91", "at": 1, "r": -60, "s": {"xyz": "00"}}',
+            "s: must be a 4-hex or 128-bit UUID",
+        ),
+        ('{"t": 1, "a": "C4:7A:10:00:2B:91", "at": 1, "r": -60, "u": "feaa"}', "u: must be a list"),
+        ('{"t": 1, "a": "C4:7A:10:00:2B:91", "at": 1, "r": -60, "n": 5}', "n: must be a string"),
+        ('{"t": 1, "a": "C4:7A:10:00:2B:91", "at": 1, "r": -60', "not JSON"),
+        ("[1, 2]", "must be a JSON object"),
+    ],
+)
 def test_bad_lines_name_file_line_and_field(tmp_path, line, match):
     """A bad advertisement line raises CaptureFormatError with file:line and the field."""
     p = tmp_path / "bad.jsonl"
@@ -102,14 +169,23 @@ def test_bad_lines_name_file_line_and_field(tmp_path, line, match):
         next(it)
 
 
-@pytest.mark.parametrize(("text", "match"), [
-    ("", "empty file"),
-    ("nope\n", "header is not JSON"),
-    ('{"format": "other", "version": 1}\n', "format: expected 'listenpost-recording'"),
-    ('{"format": "listenpost-recording", "version": 2}\n', "version: expected 1, got 2"),
-    ('{"format": "listenpost-recording", "version": 1, "board": "", "boot": "b", "wall_at_start": 1}\n', "board"),
-    ('{"format": "listenpost-recording", "version": 1, "board": "a", "boot": "b", "wall_at_start": "x"}\n', "wall_at_start"),
-])
+@pytest.mark.parametrize(
+    ("text", "match"),
+    [
+        ("", "empty file"),
+        ("nope\n", "header is not JSON"),
+        ('{"format": "other", "version": 1}\n', "format: expected 'listenpost-recording'"),
+        ('{"format": "listenpost-recording", "version": 2}\n', "version: expected 1, got 2"),
+        (
+            '{"format": "listenpost-recording", "version": 1, "board": "", "boot": "b", "wall_at_start": 1}\n',
+            "board",
+        ),
+        (
+            '{"format": "listenpost-recording", "version": 1, "board": "a", "boot": "b", "wall_at_start": "x"}\n',
+            "wall_at_start",
+        ),
+    ],
+)
 def test_bad_header_raises_at_open(tmp_path, text, match):
     """Header problems raise when the recording is opened, naming file:1."""
     p = tmp_path / "h.jsonl"
@@ -149,7 +225,9 @@ def test_truncated_gzip_yields_what_it_has_then_names_the_line(tmp_path):
     p.write_bytes(raw[: len(raw) // 2])
     _, it = read_recording(p)
     got = []
-    with pytest.raises(CaptureFormatError, match=r"cut\.jsonl\.gz:\d+: (compressed data ends early|not JSON)"):
+    with pytest.raises(
+        CaptureFormatError, match=r"cut\.jsonl\.gz:\d+: (compressed data ends early|not JSON)"
+    ):
         for a in it:
             got.append(a)
     assert 0 < len(got) < 2000
@@ -168,8 +246,11 @@ def test_incremental_writer_counts(tmp_path):
 
 
 @settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
-@given(edits=st.lists(st.tuples(st.integers(0, 400), st.integers(0, 255)), max_size=5), cut=st.integers(0, 500),
-       gz=st.booleans())
+@given(
+    edits=st.lists(st.tuples(st.integers(0, 400), st.integers(0, 255)), max_size=5),
+    cut=st.integers(0, 500),
+    gz=st.booleans(),
+)
 def test_mutated_recordings_raise_only_capture_format_error(tmp_path, edits, cut, gz):
     """Corrupted or cut recordings (plain or gzip'd) either read or raise CaptureFormatError."""
     p = tmp_path / "m.jsonl"
@@ -204,7 +285,9 @@ def test_detect_kind_by_content(tmp_path):
     assert detect_kind(rec) is FileKind.RECORDING
     assert detect_kind(gz) is FileKind.RECORDING
     assert detect_kind(cap) is FileKind.BTSNOOP
-    with pytest.raises(CaptureFormatError, match="d.jsonl: neither a listenpost recording nor a btsnoop capture"):
+    with pytest.raises(
+        CaptureFormatError, match="d.jsonl: neither a listenpost recording nor a btsnoop capture"
+    ):
         detect_kind(junk)
     with pytest.raises(CaptureFormatError, match="cannot read"):
         open_replay([tmp_path / "missing"], VirtualClock(), 1)
@@ -242,11 +325,14 @@ async def _run_paced(src: ReplaySource, clock: VirtualClock, total: float) -> li
 TIMES = [10.0, 10.5, 12.0, 12.0, 15.0]
 
 
-@pytest.mark.parametrize(("speed", "offsets"), [
-    (1.0, [0.0, 0.5, 2.0, 2.0, 5.0]),
-    (10.0, [0.0, 0.05, 0.2, 0.2, 0.5]),
-    (0.0, [0.0, 0.0, 0.0, 0.0, 0.0]),
-])
+@pytest.mark.parametrize(
+    ("speed", "offsets"),
+    [
+        (1.0, [0.0, 0.5, 2.0, 2.0, 5.0]),
+        (10.0, [0.0, 0.05, 0.2, 0.2, 0.5]),
+        (0.0, [0.0, 0.0, 0.0, 0.0, 0.0]),
+    ],
+)
 async def test_pacing_on_virtual_clock(tmp_path, speed, offsets):
     """At speed S each advert comes (t_i - t_0)/S of clock time after the first; speed 0 does not wait."""
     p = tmp_path / "r.jsonl"
@@ -270,7 +356,9 @@ async def test_slow_consumer_is_not_slowed_further(tmp_path):
         nonlocal n
         async for _ in src.adverts():
             n += 1
-            await VirtualClock.sleep(src_clock, 0.02)  # the consumer's own work, slower than the 10 ms schedule
+            await VirtualClock.sleep(
+                src_clock, 0.02
+            )  # the consumer's own work, slower than the 10 ms schedule
 
     task = asyncio.create_task(consume())
     await settle()
@@ -321,11 +409,14 @@ def test_open_source_kinds(tmp_path):
     rec = tmp_path / "a.jsonl"
     _write(rec, [_adv(1)])
     clock = VirtualClock()
-    assert isinstance(open_source(SourceConfig(kind="replay", files=(str(rec),), speed=2.0), clock), ReplaySource)
+    assert isinstance(
+        open_source(SourceConfig(kind="replay", files=(str(rec),), speed=2.0), clock), ReplaySource
+    )
     with pytest.raises(CaptureFormatError, match="source.kind is 'btsnoop' but this is a recording"):
         open_source(SourceConfig(kind="btsnoop", files=(str(rec),)), clock)
     from listenpost.agent.sources.bleak_scan import BleakSource
     from listenpost.agent.sources.hci import HciSource
+
     b = open_source(SourceConfig(kind="bleak", adapter="hci1", stall_seconds=30), clock)
     assert isinstance(b, BleakSource) and b.adapter == "hci1" and b.stall_seconds == 30
     h = open_source(SourceConfig(kind="hci", adapter="hci2"), clock)

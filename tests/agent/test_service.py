@@ -115,8 +115,13 @@ class Collector:
     async def heartbeat(self, request: web.Request) -> web.Response:
         body = await request.json()
         self.heartbeats.append(body)
-        return web.json_response({"t2": self.clock.time(), "t3": self.clock.time(),
-                                  "config_etag": self.etag if self.config else None})
+        return web.json_response(
+            {
+                "t2": self.clock.time(),
+                "t3": self.clock.time(),
+                "config_etag": self.etag if self.config else None,
+            }
+        )
 
     async def get_config(self, request: web.Request) -> web.Response:
         self.config_gets += 1
@@ -132,16 +137,23 @@ def board_config(tmp_path: Path, url: str | None, tags: list[int], **extra: Any)
     state.mkdir(exist_ok=True)
     (state / "tags.txt").write_text("# registered\n" + "".join(tag(m) + "\n" for m in tags))
     (state / "credential").write_text(TOKEN + "\n")
-    data: dict[str, Any] = {"board": "g1-a", "state_dir": str(state), "tags": {"file": "tags.txt"},
-                            "spool": {"flush_seconds": 2.0}, "heartbeat": {"period_seconds": 5.0},
-                            "uplink": {"backoff_initial_seconds": 1.0, "backoff_max_seconds": 8.0}, **extra}
+    data: dict[str, Any] = {
+        "board": "g1-a",
+        "state_dir": str(state),
+        "tags": {"file": "tags.txt"},
+        "spool": {"flush_seconds": 2.0},
+        "heartbeat": {"period_seconds": 5.0},
+        "uplink": {"backoff_initial_seconds": 1.0, "backoff_max_seconds": 8.0},
+        **extra,
+    }
     if url:
         data["collector"] = {"url": url, "timeout_seconds": 5.0}
     return parse_agent_config(data, origin=str(state / "agent.yaml"))
 
 
-async def run_on_virtual_time(clock: VirtualClock, task: asyncio.Task[Any], step: float = 0.25,
-                              limit_s: float = 2000.0) -> Any:
+async def run_on_virtual_time(
+    clock: VirtualClock, task: asyncio.Task[Any], step: float = 0.25, limit_s: float = 2000.0
+) -> Any:
     """Advance virtual time in small steps, letting loopback I/O and the spool's thread finish between them."""
     start = clock.monotonic()
     while not task.done():
@@ -165,6 +177,7 @@ async def spooled_readings(path: Path, clock: VirtualClock) -> Counter:
 
 # ------------------------------------------------------------------------------------------ tests
 
+
 async def test_replay_upload_stores_every_registered_reading_once_and_nothing_else(aiohttp_server, tmp_path):
     clock = VirtualClock()
     collector = Collector(clock)
@@ -172,8 +185,15 @@ async def test_replay_upload_stores_every_registered_reading_once_and_nothing_el
     cfg = board_config(tmp_path, str(server.make_url("")).rstrip("/"), tags=[1, 2, 3])
     adverts, expected = traffic(clock, 30.0, [1, 2, 3])
     async with aiohttp.ClientSession() as session:
-        task = asyncio.create_task(run_agent(cfg, clock=clock, source=ListSource(clock, adverts),
-                                             exit_when_source_ends=True, session=session))
+        task = asyncio.create_task(
+            run_agent(
+                cfg,
+                clock=clock,
+                source=ListSource(clock, adverts),
+                exit_when_source_ends=True,
+                session=session,
+            )
+        )
         rc = await run_on_virtual_time(clock, task)
         assert not session.closed  # a shared session stays the caller's
     assert rc == 0
@@ -218,11 +238,27 @@ async def test_boots_from_the_cached_config_when_the_collector_is_unreachable(tm
     s.close()
     clock = VirtualClock()
     cfg = board_config(tmp_path, dead_url, tags=[3])
-    ConfigCache(cfg.state_dir).save({"board": "g1-a", "tags": [tag(1), tag(2)], "rules": [], "offset_db": 3.0,
-                                     "flush_seconds": 2, "heartbeat_seconds": 5}, '"cached"')
+    ConfigCache(cfg.state_dir).save(
+        {
+            "board": "g1-a",
+            "tags": [tag(1), tag(2)],
+            "rules": [],
+            "offset_db": 3.0,
+            "flush_seconds": 2,
+            "heartbeat_seconds": 5,
+        },
+        '"cached"',
+    )
     adverts, _ = traffic(clock, 6.0, [1, 2, 3])
-    task = asyncio.create_task(run_agent(cfg, clock=clock, source=ListSource(clock, adverts),
-                                         exit_when_source_ends=True, drain_timeout_s=20.0))
+    task = asyncio.create_task(
+        run_agent(
+            cfg,
+            clock=clock,
+            source=ListSource(clock, adverts),
+            exit_when_source_ends=True,
+            drain_timeout_s=20.0,
+        )
+    )
     assert await run_on_virtual_time(clock, task, step=0.5) == 1  # not drained: the collector is gone
     kept = await spooled_readings(cfg.state_path("spool.sqlite"), clock)
     tags = {k[0] for k in kept}
@@ -233,8 +269,17 @@ async def test_boots_from_the_cached_config_when_the_collector_is_unreachable(tm
 
 async def test_a_changed_collector_config_is_applied_without_a_restart(aiohttp_server, tmp_path):
     clock = VirtualClock()
-    collector = Collector(clock, config={"board": "g1-a", "tags": [tag(1)], "rules": [], "offset_db": 4.5,
-                                         "flush_seconds": 3, "heartbeat_seconds": 7})
+    collector = Collector(
+        clock,
+        config={
+            "board": "g1-a",
+            "tags": [tag(1)],
+            "rules": [],
+            "offset_db": 4.5,
+            "flush_seconds": 3,
+            "heartbeat_seconds": 7,
+        },
+    )
     server = await aiohttp_server(collector.app())
     cfg = board_config(tmp_path, str(server.make_url("")).rstrip("/"), tags=[1, 2])
     source = ListSource(clock, [], hang=True)
@@ -260,23 +305,39 @@ def test_run_command_under_a_notify_socket_signals_ready_and_stops_on_sigterm(tm
     state = tmp_path / "state"
     state.mkdir()
     rec = state / "walk.jsonl"
-    lines = [json.dumps({"format": "listenpost-recording", "version": 1, "board": "g1-a", "boot": "b",
-                         "wall_at_start": 1_800_000_000.0})]
+    lines = [
+        json.dumps(
+            {
+                "format": "listenpost-recording",
+                "version": 1,
+                "board": "g1-a",
+                "boot": "b",
+                "wall_at_start": 1_800_000_000.0,
+            }
+        )
+    ]
     payload = (b"\x02\x15" + UUID + (7).to_bytes(2, "big") + (1).to_bytes(2, "big") + b"\xc5").hex()
-    lines += [json.dumps({"t": 0.01 * i, "a": "D0:00:00:00:00:01", "at": 1, "r": -60, "m": {"004c": payload}})
-              for i in range(50)]
+    lines += [
+        json.dumps({"t": 0.01 * i, "a": "D0:00:00:00:00:01", "at": 1, "r": -60, "m": {"004c": payload}})
+        for i in range(50)
+    ]
     rec.write_text("\n".join(lines) + "\n")
     (state / "tags.txt").write_text(tag(1) + "\n")
     (state / "agent.yaml").write_text(
         f"board: g1-a\nstate_dir: {state}\ntags: {{file: tags.txt}}\n"
-        f"source: {{kind: replay, files: [{rec}], speed: 0}}\nlog: {{format: json}}\n")
+        f"source: {{kind: replay, files: [{rec}], speed: 0}}\nlog: {{format: json}}\n"
+    )
     name = f"lp-svc-test-{os.getpid()}"
     rx = socket.socket(socket.AF_UNIX, socket.SOCK_DGRAM)
     rx.bind("\0" + name)
     rx.settimeout(30)
     env = {**os.environ, "NOTIFY_SOCKET": "@" + name}
-    proc = subprocess.Popen([sys.executable, "-m", "listenpost", "agent", "run", "--config", str(state / "agent.yaml")],
-                            env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "listenpost", "agent", "run", "--config", str(state / "agent.yaml")],
+        env=env,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+    )
     try:
         ready = rx.recv(4096)
         assert ready.startswith(b"READY=1\nSTATUS=g1-a: ")
@@ -304,7 +365,9 @@ async def test_no_process_global_state_two_boards_in_one_loop(tmp_path):
         sub.mkdir()
         cfg = board_config(sub, None, tags=minors).replace(board=name)
         adverts, _ = traffic(clock, 3.0, minors)
-        services.append(AgentService(cfg, clock=clock, source=ListSource(clock, adverts), exit_when_source_ends=True))
+        services.append(
+            AgentService(cfg, clock=clock, source=ListSource(clock, adverts), exit_when_source_ends=True)
+        )
     tasks = [asyncio.create_task(s.run()) for s in services]
     while not all(t.done() for t in tasks):
         await asyncio.wait(tasks, timeout=0.002)
@@ -330,8 +393,10 @@ async def test_contract_with_the_real_collector_enroll_then_upload(aiohttp_serve
     (tmp_path / "collector").mkdir()
     server = await aiohttp_server(app)
     store = app[STORE]
-    await store.add_board(Board("g1-a", "G1", "ground", clock.time()),
-                          Enrollment("g1-a", code_hash("BRK-G1A-7731"), clock.time() + 3600))
+    await store.add_board(
+        Board("g1-a", "G1", "ground", clock.time()),
+        Enrollment("g1-a", code_hash("BRK-G1A-7731"), clock.time() + 3600),
+    )
     await store.add_tags([tag(1), tag(2)], clock.time())
     url = str(server.make_url("")).rstrip("/")
     result = await enroll(url, "BRK-G1A-7731", tmp_path / "board", clock=clock)
@@ -340,8 +405,15 @@ async def test_contract_with_the_real_collector_enroll_then_upload(aiohttp_serve
     adverts, expected = traffic(clock, 20.0, [1, 2, 3])
     expected = {k for k in expected if k[0] != tag(3)}  # minor 3 is not registered at the collector
     async with aiohttp.ClientSession() as session:
-        task = asyncio.create_task(run_agent(cfg, clock=clock, source=ListSource(clock, adverts),
-                                             exit_when_source_ends=True, session=session))
+        task = asyncio.create_task(
+            run_agent(
+                cfg,
+                clock=clock,
+                source=ListSource(clock, adverts),
+                exit_when_source_ends=True,
+                session=session,
+            )
+        )
         assert await run_on_virtual_time(clock, task) == 0
     counts = {c.board: c for c in await store.board_counts()}
     assert counts["g1-a"].readings_total == len(expected)

@@ -31,7 +31,9 @@ FLUSH = 5.0
 def reading(i: int, *, tag: str | None = None, rng: random.Random | None = None) -> Reading:
     """A reading whose board time (whole ms) and RSSI (0.1 dB) survive the wire's columnar form."""
     r = rng or random.Random(i)
-    return Reading(tag or f"lpx:{r.getrandbits(32):08x}", (50_000 + i) * 1_000_000, round(r.uniform(-95, -40), 1))
+    return Reading(
+        tag or f"lpx:{r.getrandbits(32):08x}", (50_000 + i) * 1_000_000, round(r.uniform(-95, -40), 1)
+    )
 
 
 async def open_spool(path: Path, clock: VirtualClock, max_bytes: int = 1 << 20, **kw) -> Spool:
@@ -51,7 +53,9 @@ async def drain(spool: Spool) -> list[SealedBatch]:
 def rows(path: Path) -> list[tuple]:
     """The batches table as an independent connection sees it."""
     with contextlib.closing(sqlite3.connect(path)) as c:
-        return c.execute("SELECT epoch, seq, digest, body, n_readings, gap FROM batches ORDER BY id").fetchall()
+        return c.execute(
+            "SELECT epoch, seq, digest, body, n_readings, gap FROM batches ORDER BY id"
+        ).fetchall()
 
 
 class TestRoundTrip:
@@ -64,7 +68,9 @@ class TestRoundTrip:
         sent: list[list[Reading]] = []
         for k in range(3):
             batch = [reading(100 * k + i) for i in range(40)]
-            batch[0] = Reading(batch[0].tag, batch[0].t_mono_ns, batch[0].rssi_dbm, Telemetry(2980, 21.5, 7, 120.0))
+            batch[0] = Reading(
+                batch[0].tag, batch[0].t_mono_ns, batch[0].rssi_dbm, Telemetry(2980, 21.5, 7, 120.0)
+            )
             for r in batch:
                 spool.add(r)
             assert not spool.due()
@@ -90,11 +96,13 @@ class TestRoundTrip:
         spool.add(reading(999))
         await clock.advance(FLUSH)
         b = await spool.seal(boot=clock.boot_id, offset_db=0.0)
-        assert b is not None and b.seq == 3          # seq continues across reopen and acks
+        assert b is not None and b.seq == 3  # seq continues across reopen and acks
         await spool.close()
-        assert [(r[0], r[1]) for r in rows(path)] == [(epoch, 3)]   # the acks were committed with that seal
+        assert [(r[0], r[1]) for r in rows(path)] == [(epoch, 3)]  # the acks were committed with that seal
 
-    async def test_stored_form_is_sqlite_wal_with_gzip_bodies(self, tmp_path: Path, clock: VirtualClock) -> None:
+    async def test_stored_form_is_sqlite_wal_with_gzip_bodies(
+        self, tmp_path: Path, clock: VirtualClock
+    ) -> None:
         """The file is an SQLite database in WAL mode; each body is a gzip member of the canonical JSON."""
         path = tmp_path / "spool.sqlite"
         spool = await open_spool(path, clock)
@@ -109,7 +117,7 @@ class TestRoundTrip:
         with contextlib.closing(sqlite3.connect(path)) as c:
             assert c.execute("PRAGMA journal_mode").fetchone() == ("wal",)
             assert c.execute("PRAGMA integrity_check").fetchone() == ("ok",)
-        (epoch, seq, digest, body, n, gap), = rows(path)
+        ((epoch, seq, digest, body, n, gap),) = rows(path)
         # RFC 1952 §2.3.1: ID1 ID2 = 1f 8b, CM = 8 (deflate); read back with zlib's own gzip decoder.
         assert body[:3] == b"\x1f\x8b\x08"
         raw = zlib.decompress(body, wbits=31)
@@ -127,10 +135,10 @@ class TestRoundTrip:
         await spool.ack(first.epoch, first.seq)
         nxt = await spool.peek_oldest()
         assert nxt is not None and nxt.seq == 1
-        assert spool.stats().batches == 1                  # the acked one is no backlog, though still on disk
-        await spool.ack("0000000000000000", 99)            # unknown keys are harmless
+        assert spool.stats().batches == 1  # the acked one is no backlog, though still on disk
+        await spool.ack("0000000000000000", 99)  # unknown keys are harmless
         await spool.ack(nxt.epoch, nxt.seq)
-        assert spool.stats().batches == 0                  # a drained spool reports no backlog to the heartbeat
+        assert spool.stats().batches == 0  # a drained spool reports no backlog to the heartbeat
         await spool.close()
 
     async def test_close_seals_pending(self, tmp_path: Path, clock: VirtualClock) -> None:
@@ -142,10 +150,12 @@ class TestRoundTrip:
         await spool.close()
         with pytest.raises(SpoolError, match="closed"):
             spool.add(reading(8)) or await spool.seal(boot="b", offset_db=0)
-        (_, seq, _, _, n, _), = rows(path)
+        ((_, seq, _, _, n, _),) = rows(path)
         assert (seq, n) == (0, 7)
 
-    async def test_large_intake_splits_into_batches_in_one_seal(self, tmp_path: Path, clock: VirtualClock) -> None:
+    async def test_large_intake_splits_into_batches_in_one_seal(
+        self, tmp_path: Path, clock: VirtualClock
+    ) -> None:
         """More than max_batch_readings pending readings become consecutive batches of bounded size."""
         spool = await open_spool(tmp_path / "s.sqlite", clock, max_batch_readings=100)
         for i in range(250):
@@ -187,7 +197,9 @@ class TestSealer:
         assert [wire.decode_content(json.loads(b.content)).offset_db for b in got] == [1.5, 1.5]
         await spool.close()
 
-    async def test_cancelled_seal_still_commits_exactly_once(self, tmp_path: Path, clock: VirtualClock) -> None:
+    async def test_cancelled_seal_still_commits_exactly_once(
+        self, tmp_path: Path, clock: VirtualClock
+    ) -> None:
         """Cancelling a seal mid-commit neither loses its readings nor seals them twice."""
         path = tmp_path / "s.sqlite"
         spool = await open_spool(path, clock)
@@ -230,7 +242,7 @@ def check_accounting(batches: list[SealedBatch], added: dict[int, int], next_seq
         if gap is None:
             continue
         assert gap["epoch"] == epoch and gap["reason"] == "spool_full"
-        assert gap["last_seq"] < b.seq             # a gap only ever names older seqs
+        assert gap["last_seq"] < b.seq  # a gap only ever names older seqs
         gap_readings += gap["readings"]
         covered.update(range(gap["first_seq"], gap["last_seq"] + 1))
     assert present | covered >= set(range(next_seq)), "a seq vanished without a gap record"
@@ -268,7 +280,7 @@ class TestOverflow:
         # The first overflow drops a prefix 0..k-1 of data batches; its gap record takes seq k + 1 or later.
         assert g["first_seq"] == 0 and first_gap.seq > g["last_seq"]
         assert g["readings"] == sum(added[s] for s in range(g["first_seq"], g["last_seq"] + 1))
-        assert wire.decode_content(json.loads(first_gap.content)).gap == g   # a valid wire gap record
+        assert wire.decode_content(json.loads(first_gap.content)).gap == g  # a valid wire gap record
         await spool.close()
 
     async def test_long_outage_folds_gap_records(self, tmp_path: Path, clock: VirtualClock) -> None:
@@ -303,18 +315,25 @@ class TestDeadLettersAndEpochs:
             await spool.seal(boot="b", offset_db=0)
         epoch = spool.stats().epoch
         await spool.dead_letter(epoch, 1, 400, "content.readings: bad")
-        await spool.dead_letter(epoch, 1, 400, "again")          # already gone: no second count
+        await spool.dead_letter(epoch, 1, 400, "again")  # already gone: no second count
         assert spool.stats().dead_letters == 1
         got = await drain(spool)
         assert [b.seq for b in got] == [0, 2, 3]
         gap = json.loads(got[-1].content)["gap"]
-        assert gap == {"epoch": epoch, "first_seq": 1, "last_seq": 1, "readings": 11, "reason": "dead_letter",
-                       "status": 400}
+        assert gap == {
+            "epoch": epoch,
+            "first_seq": 1,
+            "last_seq": 1,
+            "readings": 11,
+            "reason": "dead_letter",
+            "status": 400,
+        }
         assert wire.decode_content(json.loads(got[-1].content)).gap == gap
         await spool.close()
         with contextlib.closing(sqlite3.connect(path)) as c:
-            assert c.execute("SELECT epoch, seq, status, reason, n_readings FROM dead_letters").fetchall() == [
-                (epoch, 1, 400, "content.readings: bad", 11)]
+            assert c.execute(
+                "SELECT epoch, seq, status, reason, n_readings FROM dead_letters"
+            ).fetchall() == [(epoch, 1, 400, "content.readings: bad", 11)]
 
     async def test_refused_gap_record_makes_no_new_gap(self, tmp_path: Path, clock: VirtualClock) -> None:
         """Dead-lettering a gap record does not start a loop of gap records."""
@@ -374,7 +393,7 @@ class TestDegraded:
         # Not due yet: no new attempt on the same commit.
         assert await spool.seal(boot="b", offset_db=0) is None and spool.stats().degraded
         await clock.advance(FLUSH)
-        b = await spool.seal(boot="b", offset_db=0)            # reopened: the page cap is gone
+        b = await spool.seal(boot="b", offset_db=0)  # reopened: the page cap is gone
         assert b is not None and not spool.stats().degraded
         got = await drain(spool)
         assert sum(x.n_readings for x in got) == 3010
@@ -418,10 +437,10 @@ class SpoolMachine(RuleBasedStateMachine):
         self.next_id = 0
         self.digests: dict[tuple[str, int], str] = {}
         self.readings: dict[tuple[str, int], int] = {}
-        self.done: set[tuple[str, int]] = set()           # acked or dead-lettered
-        self.covered: set[tuple[str, int]] = set()        # named by a gap record that was acked
+        self.done: set[tuple[str, int]] = set()  # acked or dead-lettered
+        self.covered: set[tuple[str, int]] = set()  # named by a gap record that was acked
         self.biggest = 0
-        self.finished_readings = 0                        # in acked/dead-lettered batches and acked gaps
+        self.finished_readings = 0  # in acked/dead-lettered batches and acked gaps
 
     def run(self, coro):
         return self.loop.run_until_complete(coro)
@@ -470,7 +489,7 @@ class SpoolMachine(RuleBasedStateMachine):
         if b is not None:
             self.run(self.spool.dead_letter(b.epoch, b.seq, 400, "refused"))
             self.done.add((b.epoch, b.seq))
-            self.finished_readings += b.n_readings   # its dead_letter gap record repeats, not adds, this count
+            self.finished_readings += b.n_readings  # its dead_letter gap record repeats, not adds, this count
 
     @rule()
     def new_epoch(self) -> None:
@@ -489,7 +508,9 @@ class SpoolMachine(RuleBasedStateMachine):
         """Keys and digests in the file, seqs its gap records name, readings it accounts for."""
         present, covered, readings = {}, set(), 0
         with contextlib.closing(sqlite3.connect(self.path)) as c:
-            for epoch, seq, digest, gap, n in c.execute("SELECT epoch, seq, digest, gap, n_readings FROM batches"):
+            for epoch, seq, digest, gap, n in c.execute(
+                "SELECT epoch, seq, digest, gap, n_readings FROM batches"
+            ):
                 present[(epoch, seq)] = digest
                 readings += n
                 if gap is not None:
@@ -504,8 +525,9 @@ class SpoolMachine(RuleBasedStateMachine):
         for key, digest in present.items():
             assert self.digests.get(key, digest) == digest
         for key in self.readings:
-            assert key in present or key in self.done or key in self.covered or key in covered, \
+            assert key in present or key in self.done or key in self.covered or key in covered, (
                 f"{key} vanished without a gap record"
+            )
 
     def _acked_but_on_disk(self) -> int:
         """Readings of finished batches whose lazy delete had not been committed (none after close)."""
@@ -525,5 +547,6 @@ class SpoolMachine(RuleBasedStateMachine):
 
 
 TestSpoolMachine = SpoolMachine.TestCase
-TestSpoolMachine.settings = settings(max_examples=25, stateful_step_count=30, deadline=None,
-                                     suppress_health_check=[HealthCheck.too_slow])
+TestSpoolMachine.settings = settings(
+    max_examples=25, stateful_step_count=30, deadline=None, suppress_health_check=[HealthCheck.too_slow]
+)

@@ -63,14 +63,23 @@ class ChildRun:
     killed_at: float = 0.0
 
 
-async def run_child(path: Path, first_id: int, *, kill_after_lines: int | None, crash: str = "",
-                    stderr: Path) -> ChildRun:
+async def run_child(
+    path: Path, first_id: int, *, kill_after_lines: int | None, crash: str = "", stderr: Path
+) -> ChildRun:
     env = {**os.environ, "PYTHONPATH": str(ROOT), "LISTENPOST_SPOOL_CHILD_CRASH": crash}
     err = await asyncio.to_thread(open, stderr, "ab")
     try:
         proc = await asyncio.create_subprocess_exec(
-            sys.executable, str(CHILD), str(path), str(first_id), str(FLUSH), str(64 << 20),
-            stdout=asyncio.subprocess.PIPE, stderr=err, env=env)
+            sys.executable,
+            str(CHILD),
+            str(path),
+            str(first_id),
+            str(FLUSH),
+            str(64 << 20),
+            stdout=asyncio.subprocess.PIPE,
+            stderr=err,
+            env=env,
+        )
     finally:
         err.close()
     run = ChildRun()
@@ -122,8 +131,8 @@ class TestSigkill:
         master = random.Random(int(os.environ.get("LISTENPOST_TEST_SEED", "20261202")))
         seeds = [master.randrange(2**32) for _ in range(12)]
         print("kill seeds:", seeds)
-        history: dict[tuple[str, int], str] = {}      # every key ever seen -> its digest (never re-cut)
-        owner: dict[int, tuple[str, int]] = {}         # reading id -> the one key that holds it
+        history: dict[tuple[str, int], str] = {}  # every key ever seen -> its digest (never re-cut)
+        owner: dict[int, tuple[str, int]] = {}  # reading id -> the one key that holds it
         acked: set[tuple[str, int]] = set()
         worst_loss_s = 0.0
         worst_loss_n = 0
@@ -131,9 +140,12 @@ class TestSigkill:
         for run_no, seed in enumerate(seeds):
             rng = random.Random(seed)
             first_id = run_no * 10_000_000
-            run = await run_child(path, first_id, kill_after_lines=rng.randint(3, 45),
-                                  stderr=tmp_path / "child.err")
-            assert run.ready_epoch, f"seed {seed}: child never got ready: {(tmp_path / 'child.err').read_text()}"
+            run = await run_child(
+                path, first_id, kill_after_lines=rng.randint(3, 45), stderr=tmp_path / "child.err"
+            )
+            assert run.ready_epoch, (
+                f"seed {seed}: child never got ready: {(tmp_path / 'child.err').read_text()}"
+            )
             epoch = epoch or run.ready_epoch
             assert run.ready_epoch == epoch, "a kill must not start a new epoch"
             spool, _ = await reopen(path)
@@ -150,12 +162,16 @@ class TestSigkill:
                 if key in now:
                     assert history.setdefault(key, now[key][0]) == now[key][0], f"seed {seed}: {key} re-cut"
                 for i in ids:
-                    assert owner.setdefault(i, key) == key, f"seed {seed}: reading {i} in {owner[i]} and {key}"
+                    assert owner.setdefault(i, key) == key, (
+                        f"seed {seed}: reading {i} in {owner[i]} and {key}"
+                    )
             for key, (digest, _n) in run.sealed.items():
                 assert history.setdefault(key, digest) == digest, f"seed {seed}: {key} re-cut"
             # Contiguous: every seq below next_seq is spooled or was acked.
             seqs = {s for (e, s) in now if e == epoch} | {s for (e, s) in acked if e == epoch}
-            assert seqs >= set(range(st.next_seq)), f"seed {seed}: hole in {sorted(set(range(st.next_seq)) - seqs)}"
+            assert seqs >= set(range(st.next_seq)), (
+                f"seed {seed}: hole in {sorted(set(range(st.next_seq)) - seqs)}"
+            )
             assert st.next_seq >= max([s + 1 for (_, s) in run.sealed] or [run.ready_next_seq])
             # Loss: this run's sealed readings are a prefix of what it added; the rest is the unsealed window.
             mine = sorted(i for i, k in owner.items() if first_id <= i < first_id + 10_000_000)
@@ -168,16 +184,18 @@ class TestSigkill:
                 # A reading waits at most flush_seconds plus one commit; 1 s of slack for a loaded machine.
                 assert age <= FLUSH + 1.0, f"seed {seed}: lost a reading {age:.3f} s old"
         total = len(owner)
-        print(f"kills: {len(seeds)}, readings stored: {total}, keys: {len(history)}, "
-              f"worst loss per kill: >= {worst_loss_n} readings, {worst_loss_s * 1000:.0f} ms "
-              f"(flush {FLUSH * 1000:.0f} ms)")
+        print(
+            f"kills: {len(seeds)}, readings stored: {total}, keys: {len(history)}, "
+            f"worst loss per kill: >= {worst_loss_n} readings, {worst_loss_s * 1000:.0f} ms "
+            f"(flush {FLUSH * 1000:.0f} ms)"
+        )
         assert total > 0 and len(history) >= len(seeds)
 
     async def test_crash_right_after_seal_commit_keeps_the_batch(self, tmp_path: Path) -> None:
         """Named crash point: exit right after the seal commit; the batch is there, same digest and readings."""
         path = tmp_path / "spool.sqlite"
         run = await run_child(path, 0, kill_after_lines=None, crash="after_seal", stderr=tmp_path / "err")
-        (key, (digest, n)), = run.sealed.items()
+        ((key, (digest, n)),) = run.sealed.items()
         spool, _ = await reopen(path)
         head = await spool.peek_oldest()
         assert head is not None and (head.epoch, head.seq, head.digest, head.n_readings) == (*key, digest, n)
@@ -210,12 +228,14 @@ class TestWriteFailure:
         assert 1 in flags, f"the fault never fired: {run.other[:5]}"
         assert flags[-1] == 0 and ["uncap"] in run.other, run.other
         closed = next(p for p in run.other if p[0] == "closed")
-        assert closed == ["closed", "0"]                   # nothing dropped from RAM
+        assert closed == ["closed", "0"]  # nothing dropped from RAM
         now = spooled(path)
-        ids = sorted([i for _, ids, _ in now.values() for i in ids]
-                     + [i for key, ids in run.acked.items() if key not in now for i in ids])
-        assert ids == list(range(len(ids)))                # nothing lost, nothing twice
-        assert len(ids) > run.added[-1][0]                 # clean close sealed everything added
+        ids = sorted(
+            [i for _, ids, _ in now.values() for i in ids]
+            + [i for key, ids in run.acked.items() if key not in now for i in ids]
+        )
+        assert ids == list(range(len(ids)))  # nothing lost, nothing twice
+        assert len(ids) > run.added[-1][0]  # clean close sealed everything added
 
 
 # ---------------------------------------------------------------------------- damaged files
@@ -248,6 +268,7 @@ def _copy_files(path: Path, dest: Path) -> None:
 
 def wire_reading(i: int, rng: random.Random):
     from listenpost.core.records import Reading
+
     return Reading(f"lpx:{i:08x}", (1000 + i) * 1_000_000, round(rng.uniform(-90, -40), 1))
 
 
@@ -293,7 +314,7 @@ CASES = [
     Case("wal_bytes_flipped", "prefix"),
     Case("shm_deleted", "all"),
     Case("db_zero_length", "aside"),
-    Case("db_truncated_half", "aside"),        # the schema names pages past the end: nothing readable
+    Case("db_truncated_half", "aside"),  # the schema names pages past the end: nothing readable
     Case("db_header_flipped", "aside"),
     Case("db_leaf_page_garbage", "aside_partial"),
     Case("db_body_bytes_flipped", "row"),
@@ -338,7 +359,7 @@ def _mutate(case: str, path: Path) -> None:
         case "db_leaf_page_garbage":
             off = leaf_page_offset(path)
             data = bytearray(path.read_bytes())
-            data[off:off + 4096] = random.Random(1).randbytes(4096)
+            data[off : off + 4096] = random.Random(1).randbytes(4096)
             path.write_bytes(bytes(data))
         case "db_body_bytes_flipped":
             flip(path, body_offset(path, 7), 4)
@@ -385,8 +406,13 @@ async def test_damaged_spool(case: Case, tmp_path: Path) -> None:
         else:
             assert old_seqs == [s for s in range(N_BATCHES) if s != 7]
             (g,) = gaps
-            assert json.loads(g.content)["gap"] == {"epoch": old_epoch, "first_seq": 7, "last_seq": 7, "readings": 30,
-                                        "reason": "spool_corrupt"}
+            assert json.loads(g.content)["gap"] == {
+                "epoch": old_epoch,
+                "first_seq": 7,
+                "last_seq": 7,
+                "readings": 30,
+                "reason": "spool_corrupt",
+            }
             assert spool.stats().dropped_batches == 1
     else:
         assert st.epoch != old_epoch and st.corrupt_set_aside == 1 and aside.exists()
@@ -397,7 +423,13 @@ async def test_damaged_spool(case: Case, tmp_path: Path) -> None:
         assert all(b.epoch == old_epoch for b in data)
         if case.expect == "aside_partial":
             assert salvaged, "nothing salvaged"
-            covered = {s for g in gaps for s in range(json.loads(g.content)["gap"]["first_seq"], json.loads(g.content)["gap"]["last_seq"] + 1)}
+            covered = {
+                s
+                for g in gaps
+                for s in range(
+                    json.loads(g.content)["gap"]["first_seq"], json.loads(g.content)["gap"]["last_seq"] + 1
+                )
+            }
             assert salvaged | covered == set(range(N_BATCHES)) and not salvaged & covered
         else:
             assert not data
@@ -409,8 +441,10 @@ async def test_damaged_spool(case: Case, tmp_path: Path) -> None:
     spool = await Spool.open(path, clock=clock, max_bytes=64 << 20, flush_seconds=5.0)
     assert spool.stats().corrupt_set_aside == st.corrupt_set_aside and (await spool.peek_oldest()) == b
     await spool.close()
-    print(f"{case.name}: epoch {'kept' if st.epoch == old_epoch else 'new'}, batches {len(data)}, "
-          f"gap records {len(gaps)}, set aside {st.corrupt_set_aside}")
+    print(
+        f"{case.name}: epoch {'kept' if st.epoch == old_epoch else 'new'}, batches {len(data)}, "
+        f"gap records {len(gaps)}, set aside {st.corrupt_set_aside}"
+    )
 
 
 def _plant_garbage(path: Path) -> None:

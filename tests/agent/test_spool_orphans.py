@@ -46,8 +46,9 @@ async def seal_some(spool: Spool, clock: VirtualClock, batches: int, first: int 
         assert await spool.seal(boot=clock.boot_id, offset_db=0.0) is not None
 
 
-async def leave_orphans(path: Path, clock: VirtualClock, *, checkpointed_first: bool,
-                        suffixes: tuple[str, ...] = ("-wal", "-shm")) -> tuple[str, dict[str, bytes]]:
+async def leave_orphans(
+    path: Path, clock: VirtualClock, *, checkpointed_first: bool, suffixes: tuple[str, ...] = ("-wal", "-shm")
+) -> tuple[str, dict[str, bytes]]:
     """
     Make a spool with batches in its WAL, keep its journal files as an unclean stop leaves them,
     then delete only the database file. Returns the old epoch and the left-behind bytes.
@@ -81,14 +82,23 @@ async def test_a_stale_wal_is_not_replayed_onto_the_fresh_spool(tmp_path: Path, 
         assert "spool.sqlite.orphan-shm" not in names(tmp_path)  # an index, not data: removed
         events = [e for e in logs if e["event"] == "spool_orphans_set_aside"]
         assert len(events) == 1 and events[0]["log_level"] == "error"
-        assert events[0]["files"] == {"spool.sqlite-wal": len(kept["-wal"]), "spool.sqlite-shm": len(kept["-shm"])}
+        assert events[0]["files"] == {
+            "spool.sqlite-wal": len(kept["-wal"]),
+            "spool.sqlite-shm": len(kept["-shm"]),
+        }
         new_epoch = st.epoch
         # The fresh spool works and reopens sound, the count survives the reopen.
         await seal_some(spool, clock, 2)
         await spool.close()
         spool = await open_spool(path, clock)
         st = spool.stats()
-        assert (st.epoch, st.next_seq, st.batches, st.corrupt_set_aside, st.degraded) == (new_epoch, 2, 2, 1, False)
+        assert (st.epoch, st.next_seq, st.batches, st.corrupt_set_aside, st.degraded) == (
+            new_epoch,
+            2,
+            2,
+            1,
+            False,
+        )
         await spool.close()
         put_back_and_delete_db(path, {})  # next round starts from nothing (the clean close removed the WAL)
     # One set of orphans is kept: the second round replaced the first.
@@ -109,7 +119,9 @@ async def test_a_lone_shm_is_removed_without_counting_a_loss(tmp_path: Path, clo
     await spool.close()
 
 
-async def test_an_empty_wal_and_a_directory_in_the_way_are_cleared(tmp_path: Path, clock: VirtualClock) -> None:
+async def test_an_empty_wal_and_a_directory_in_the_way_are_cleared(
+    tmp_path: Path, clock: VirtualClock
+) -> None:
     """Nothing to keep in an empty WAL; a directory named like the -shm does not stop the open."""
     path = tmp_path / "spool.sqlite"
     put_back_and_delete_db(path, {"": b"", "-wal": b""})

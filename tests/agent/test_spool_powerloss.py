@@ -99,13 +99,19 @@ def batch_keys(content: dict[str, Any]) -> set[Key]:
 def collector_rows(db: Path) -> tuple[Counter[Key], dict[tuple[str, int], set[str]], list[tuple]]:
     """What the collector stored, read from its file by an independent connection."""
     with contextlib.closing(sqlite3.connect(db)) as c:
-        stored = Counter((boot, t) for boot, t in c.execute(
-            "SELECT b.boot, r.t_board_ms FROM readings r JOIN batches b ON b.id = r.batch_id"))
+        stored = Counter(
+            (boot, t)
+            for boot, t in c.execute(
+                "SELECT b.boot, r.t_board_ms FROM readings r JOIN batches b ON b.id = r.batch_id"
+            )
+        )
         digests: dict[tuple[str, int], set[str]] = {}
         for epoch, seq, dig in c.execute("SELECT epoch, seq, digest FROM batches"):
             digests.setdefault((epoch, seq), set()).add(dig)
-        gaps = c.execute("SELECT epoch, seq, gap_first, gap_last, gap_readings, gap_reason FROM batches"
-                         " WHERE gap_reason IS NOT NULL").fetchall()
+        gaps = c.execute(
+            "SELECT epoch, seq, gap_first, gap_last, gap_readings, gap_reason FROM batches"
+            " WHERE gap_reason IS NOT NULL"
+        ).fetchall()
     return stored, digests, gaps
 
 
@@ -156,9 +162,19 @@ class Life:
         for name in ("seal", "dead_letter", "start_epoch"):
             setattr(disk, name, self._hooked(name, getattr(disk, name)))
         self.session = aiohttp.ClientSession()
-        self.uplink = Uplink(base_url=self.h.url, token=TOKEN, board=BOARD, clock=self.clock, spool=self.spool,
-                             session=self.session, timeout_s=5.0, backoff_initial_s=0.5, backoff_max_s=2.0,
-                             idle_poll_s=0.25, rng=random.Random(self.h.seed + self.h.lives))
+        self.uplink = Uplink(
+            base_url=self.h.url,
+            token=TOKEN,
+            board=BOARD,
+            clock=self.clock,
+            spool=self.spool,
+            session=self.session,
+            timeout_s=5.0,
+            backoff_initial_s=0.5,
+            backoff_max_s=2.0,
+            idle_poll_s=0.25,
+            rng=random.Random(self.h.seed + self.h.lives),
+        )
         send = self.uplink.send
 
         async def observed_send(batch: Any) -> tuple[Outcome, float | None]:
@@ -167,9 +183,11 @@ class Life:
             return outcome, retry_after
 
         self.uplink.send = observed_send  # type: ignore[method-assign]
-        self.tasks = [asyncio.create_task(self._produce()),
-                      asyncio.create_task(self.spool.run_sealer(lambda: self.clock.boot_id, lambda: 0.0)),
-                      asyncio.create_task(self.uplink.run())]
+        self.tasks = [
+            asyncio.create_task(self._produce()),
+            asyncio.create_task(self.spool.run_sealer(lambda: self.clock.boot_id, lambda: 0.0)),
+            asyncio.create_task(self.uplink.run()),
+        ]
 
     def _hooked(self, name: str, fn: Any) -> Any:
         def after_commit(*args: Any) -> Any:
@@ -184,6 +202,7 @@ class Life:
                     self.h.ever_sealed |= self.sealed
                     self.snapshots.append(Snapshot(copy_files(self.path), frozenset(self.sealed), name, keys))
             return result
+
         return after_commit
 
     async def _produce(self) -> None:
@@ -264,16 +283,20 @@ async def collector(aiohttp_server, tmp_path: Path) -> tuple[str, Path, VirtualC
     app = create_app(settings, clock=base, run_monitor=False)
     server = await aiohttp_server(app)
     store = app[STORE]
-    await store.add_board(Board(BOARD, "G3", "ground", base.time()),
-                          Enrollment(BOARD, code_hash(CODE), base.time() + 3600))
-    await store.complete_enrollment(code_hash(CODE), hash_secret(TOKEN), {"machine_id": "powerloss"}, base.time())
+    await store.add_board(
+        Board(BOARD, "G3", "ground", base.time()), Enrollment(BOARD, code_hash(CODE), base.time() + 3600)
+    )
+    await store.complete_enrollment(
+        code_hash(CODE), hash_secret(TOKEN), {"machine_id": "powerloss"}, base.time()
+    )
     await store.add_tags(TAGS, base.time())
     db = Path(settings.resolved_db_url().removeprefix("sqlite:///"))
     return str(server.make_url("")).rstrip("/"), db, base
 
 
-async def run_with_cuts(tmp_path: Path, collector: tuple[str, Path, VirtualClock], *, seed: int, cuts: int,
-                        seal_lost: bool) -> tuple[Harness, Life]:
+async def run_with_cuts(
+    tmp_path: Path, collector: tuple[str, Path, VirtualClock], *, seed: int, cuts: int, seal_lost: bool
+) -> tuple[Harness, Life]:
     url, _, base = collector
     rng = random.Random(seed)
     h = Harness(tmp_path / "board", base, url, seed)
@@ -293,8 +316,13 @@ async def run_with_cuts(tmp_path: Path, collector: tuple[str, Path, VirtualClock
         await life.pull_plug()
         back = life.snapshots[-2] if seal_lost else life.snapshots[-1]
         lost = life.snapshots[-1].sealed - back.sealed if seal_lost else frozenset()
-        h.cuts.append({"restored": back.what, "lost_seal_readings": lost,
-                       "unsealed": len({k for k in h.generated if k[0] == life.clock.boot_id} - life.sealed)})
+        h.cuts.append(
+            {
+                "restored": back.what,
+                "lost_seal_readings": lost,
+                "unsealed": len({k for k in h.generated if k[0] == life.clock.boot_id} - life.sealed),
+            }
+        )
         life = Life(h, back.sealed)
         await life.start(back.files)
     await advance(h, life, 5.0)
@@ -330,17 +358,27 @@ def check(h: Harness, life: Life, db: Path) -> dict[str, int]:
     assert h.generated - set(stored) <= never_sealed | refused
     worst = max((c["unsealed"] for c in h.cuts), default=0)
     assert worst <= (FLUSH_S + 1.0) / PERIOD_S, h.cuts  # a flush period, plus a seal still committing
-    return {"generated": len(h.generated), "stored": sum(stored.values()), "duplicates_absorbed": h.duplicates,
-            "conflicts_409": h.conflicts, "recut_keys": len(recut), "epochs": len({e for e, *_ in h.sends}),
-            "lost_unsealed": len(never_sealed), "max_unsealed_per_cut": worst,
-            "refused_counted": len(refused), "cuts": len(h.cuts)}
+    return {
+        "generated": len(h.generated),
+        "stored": sum(stored.values()),
+        "duplicates_absorbed": h.duplicates,
+        "conflicts_409": h.conflicts,
+        "recut_keys": len(recut),
+        "epochs": len({e for e, *_ in h.sends}),
+        "lost_unsealed": len(never_sealed),
+        "max_unsealed_per_cut": worst,
+        "refused_counted": len(refused),
+        "cuts": len(h.cuts),
+    }
 
 
 # ------------------------------------------------------------------------------------------ tests
 
 
 @pytest.mark.parametrize("seed", [11, 29])
-async def test_copies_after_each_durable_commit_never_reuse_a_seq(collector, tmp_path: Path, seed: int) -> None:
+async def test_copies_after_each_durable_commit_never_reuse_a_seq(
+    collector, tmp_path: Path, seed: int
+) -> None:
     """The design: seals are FULL-durable, so a restored spool never re-cuts a key; forgotten acks are absorbed."""
     h, life = await run_with_cuts(tmp_path, collector, seed=seed, cuts=4, seal_lost=False)
     await life.stop_clean()
@@ -359,7 +397,9 @@ async def test_a_lost_seal_is_caught_by_its_digest_and_a_new_epoch(collector, tm
     await life.stop_clean()
     figures = check(h, life, collector[1])
     print(f"\npower loss losing an uploaded seal: {figures}")
-    assert figures["recut_keys"] == figures["conflicts_409"] == figures["cuts"]  # one re-cut seq per lost seal
+    assert (
+        figures["recut_keys"] == figures["conflicts_409"] == figures["cuts"]
+    )  # one re-cut seq per lost seal
     assert figures["epochs"] == 1 + figures["cuts"]  # each epoch with a re-cut seq was left for a new one
     # Not stored, but not silent either: those readings are in the board's dead-letter table and the
     # collector's gap records count them (check() matched the two sets exactly).

@@ -26,20 +26,29 @@ PHASE = 0.0137
 """Offset of every advert from the 5 s bucket edges, so the counts per window are exact."""
 
 
-def at_rates(t0: float, seconds: float, rates: dict[int, float], noise_hz: float = 0.0,
-             keep_every: int = 1) -> list[Advert]:
+def at_rates(
+    t0: float, seconds: float, rates: dict[int, float], noise_hz: float = 0.0, keep_every: int = 1
+) -> list[Advert]:
     """
     iBeacon adverts of each minor at its rate (Hz) for ``seconds``, of which the radio passes one in
     ``keep_every`` per tag; noise at ``noise_hz``: an unregistered minor (900) and a phone.
     """
     out = []
     for minor, hz in rates.items():
-        out += [ibeacon(t0 + PHASE + k / hz, minor, -60, address=f"D0:00:00:00:{minor:02X}:01")
-                for k in range(int(seconds * hz)) if k % keep_every == 0]
+        out += [
+            ibeacon(t0 + PHASE + k / hz, minor, -60, address=f"D0:00:00:00:{minor:02X}:01")
+            for k in range(int(seconds * hz))
+            if k % keep_every == 0
+        ]
     if noise_hz:
         n = int(seconds * noise_hz)
-        out += [ibeacon(t0 + PHASE / 2 + k / noise_hz, 900, -50, address="D0:00:00:00:99:99") for k in range(n)]
-        out += [Advert(round((t0 + PHASE / 3 + k / noise_hz) * 1e9), "5A:11:22:33:44:55", 1, -40) for k in range(n)]
+        out += [
+            ibeacon(t0 + PHASE / 2 + k / noise_hz, 900, -50, address="D0:00:00:00:99:99") for k in range(n)
+        ]
+        out += [
+            Advert(round((t0 + PHASE / 3 + k / noise_hz) * 1e9), "5A:11:22:33:44:55", 1, -40)
+            for k in range(n)
+        ]
     return sorted(out, key=lambda a: a.t_mono_ns)
 
 
@@ -51,7 +60,9 @@ def at_rates(t0: float, seconds: float, rates: dict[int, float], noise_hz: float
 def test_percentile_is_numpys_linear_method(values: list[float], q: float) -> None:
     """Cross-check with numpy.percentile (method="linear", its default: Hyndman and Fan definition 7)."""
     s = sorted(values)
-    assert percentile(s, q) == pytest.approx(float(np.percentile(s, q, method="linear")), rel=1e-12, abs=1e-12)
+    assert percentile(s, q) == pytest.approx(
+        float(np.percentile(s, q, method="linear")), rel=1e-12, abs=1e-12
+    )
     assert percentile(s, 50) == pytest.approx(statistics.median(s), rel=1e-12, abs=1e-12)  # stdlib median
 
 
@@ -93,7 +104,11 @@ async def test_right_after_start_the_span_is_what_was_covered() -> None:
     assert clock.monotonic() == pytest.approx(1012.5137)
     assert (s.tags_heard, s.median_hz, s.p10_hz, s.window_s) == (1, 2.0, 2.0, 10.0)
     assert TagRates(VirtualClock()).summary().as_stats() == {
-        "tags_heard": 0, "tag_rate_hz_median": None, "tag_rate_hz_p10": None, "tag_rate_window_s": 0.0}
+        "tags_heard": 0,
+        "tag_rate_hz_median": None,
+        "tag_rate_hz_p10": None,
+        "tag_rate_window_s": 0.0,
+    }
 
 
 # ------------------------------------------------------------------ a running board
@@ -106,9 +121,15 @@ class SupervisedListSource(ListSource):
         return {"state": "scanning", "reason": None, "restarts": 2, "last_restart_reason": "stalled"}
 
 
-async def run_board(tmp_path, clock: VirtualClock, adverts: list[Advert], until: float, url: str | None = None,
-                    session: aiohttp.ClientSession | None = None,
-                    source_type: type[ListSource] = ListSource) -> tuple[AgentService, asyncio.Task[int]]:
+async def run_board(
+    tmp_path,
+    clock: VirtualClock,
+    adverts: list[Advert],
+    until: float,
+    url: str | None = None,
+    session: aiohttp.ClientSession | None = None,
+    source_type: type[ListSource] = ListSource,
+) -> tuple[AgentService, asyncio.Task[int]]:
     """Start a board on the fake radio and move virtual time to ``until``; the board keeps running."""
     cfg = board_config(tmp_path, url, tags=[1, 2, 3, 4, 5])
     service = AgentService(cfg, clock=clock, source=source_type(clock, adverts, hang=True), session=session)
@@ -153,9 +174,15 @@ async def test_a_thinned_radio_shows_up_in_the_heartbeat(aiohttp_server, tmp_pat
     server = await aiohttp_server(collector.app())
     thinned = at_rates(clock.monotonic(), 100.0, {m: 2.0 for m in range(1, 6)}, keep_every=10)
     async with aiohttp.ClientSession() as session:
-        service, task = await run_board(tmp_path, clock, thinned, until=1072.5,
-                                        url=str(server.make_url("")).rstrip("/"), session=session,
-                                        source_type=SupervisedListSource)
+        service, task = await run_board(
+            tmp_path,
+            clock,
+            thinned,
+            until=1072.5,
+            url=str(server.make_url("")).rstrip("/"),
+            session=session,
+            source_type=SupervisedListSource,
+        )
         assert service.heartbeat is not None
         await service.heartbeat.beat()
         await stop(service, task)
@@ -163,5 +190,9 @@ async def test_a_thinned_radio_shows_up_in_the_heartbeat(aiohttp_server, tmp_pat
     assert last["tags_heard"] == 5
     assert last["tag_rate_hz_median"] == pytest.approx(0.2) and last["tag_rate_hz_p10"] == pytest.approx(0.2)
     assert last["source"]["state"] == "running"
-    assert last["source"]["radio"] == {"state": "scanning", "reason": None, "restarts": 2,
-                                       "last_restart_reason": "stalled"}
+    assert last["source"]["radio"] == {
+        "state": "scanning",
+        "reason": None,
+        "restarts": 2,
+        "last_restart_reason": "stalled",
+    }

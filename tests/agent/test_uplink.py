@@ -37,11 +37,16 @@ from listenpost.core.clock import VirtualClock
 from listenpost.core.records import Reading
 
 TOKEN = "tok-g3-a-0123456789abcdef"
-TAGS = ["ibeacon:4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10:7:1", "ibeacon:4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10:7:2",
-        "eddystone:8b0ca750e7a74e14bd99:00000000001e", "lpx:00000007"]
+TAGS = [
+    "ibeacon:4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10:7:1",
+    "ibeacon:4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10:7:2",
+    "eddystone:8b0ca750e7a74e14bd99:00000000001e",
+    "lpx:00000007",
+]
 
 
 # --------------------------------------------------------------------------- the test collector
+
 
 def _rst(request: web.Request) -> None:
     """Close the connection with a TCP reset (SO_LINGER 0), as a crashing proxy would."""
@@ -109,8 +114,9 @@ class Collector:
             return web.json_response({"error": {"code": "busy"}}, status=fault, headers=headers)
         if seq in self.reject:
             self.log.append((self.clock.monotonic(), seq, self.reject[seq]))
-            return web.json_response({"error": {"code": "bad", "field": "content", "message": "no"}},
-                                     status=self.reject[seq])
+            return web.json_response(
+                {"error": {"code": "bad", "field": "content", "message": "no"}}, status=self.reject[seq]
+            )
         content = body["content"]
         if wire.digest(content) != body["digest"]:
             return web.json_response({"error": {"code": "bad_digest", "field": "digest"}}, status=400)
@@ -137,6 +143,7 @@ class Collector:
 
 # --------------------------------------------------------------------------- helpers
 
+
 async def fill(spool: Spool, clock: VirtualClock, batches: int, per_batch: int) -> set[tuple[str, int, int]]:
     """Seal ``batches`` batches of distinct readings; return the oracle set (tag, t_ms, rssi_dd)."""
     expected = set()
@@ -157,12 +164,24 @@ async def open_spool(tmp_path, clock: VirtualClock) -> Spool:
 
 def make_uplink(server, clock, spool, **kw) -> Uplink:
     kw.setdefault("timeout_s", 5.0)
-    return Uplink(base_url=str(server.make_url("")), token=TOKEN, board="g3-a", clock=clock, spool=spool,
-                  rng=random.Random(7), **kw)
+    return Uplink(
+        base_url=str(server.make_url("")),
+        token=TOKEN,
+        board="g3-a",
+        clock=clock,
+        spool=spool,
+        rng=random.Random(7),
+        **kw,
+    )
 
 
-async def drive(clock: VirtualClock, uplink: Uplink, task: asyncio.Task[Any],
-                until: Callable[[], bool] | None = None, rounds: int = 400) -> None:
+async def drive(
+    clock: VirtualClock,
+    uplink: Uplink,
+    task: asyncio.Task[Any],
+    until: Callable[[], bool] | None = None,
+    rounds: int = 400,
+) -> None:
     """
     Step virtual time to each of the uplink's wake-ups until the task ends (or ``until`` holds).
 
@@ -188,6 +207,7 @@ async def drive(clock: VirtualClock, uplink: Uplink, task: asyncio.Task[Any],
 
 
 # --------------------------------------------------------------------------- tests
+
 
 async def test_faults_and_lost_ack_store_every_reading_exactly_once(aiohttp_server, tmp_path):
     """500, 503/429 + Retry-After, a reset and a lost ack: all readings stored once, duplicates absorbed."""
@@ -237,7 +257,9 @@ async def test_the_spooled_content_bytes_are_sent_as_they_are(aiohttp_server, tm
     for b, raw in zip(spooled, collector.raw_bodies, strict=True):
         assert b'"content":' + b.content + b"}" in raw
         assert wire.digest(b.content) == b.digest
-        env = wire.parse_batch(json.loads(raw), max_readings=10_000)  # the collector's reading of the envelope
+        env = wire.parse_batch(
+            json.loads(raw), max_readings=10_000
+        )  # the collector's reading of the envelope
         assert (env.epoch, env.seq, env.digest, env.board) == (b.epoch, b.seq, b.digest, "g3-a")
     assert [x for _, _, x in collector.log] == ["stored"] * 3
     await uplink.close()
@@ -281,8 +303,12 @@ async def test_400_and_413_are_dead_lettered_without_blocking_later_batches(aioh
     assert uplink.counters.dead_letters == 2
     assert spool.stats().dead_letters == 2
     # The spool's gap records name the refused seqs, so the collector can explain the hole.
-    covered = {s for g in collector.gaps if g["reason"] == "dead_letter"
-               for s in range(g["first_seq"], g["last_seq"] + 1)}
+    covered = {
+        s
+        for g in collector.gaps
+        if g["reason"] == "dead_letter"
+        for s in range(g["first_seq"], g["last_seq"] + 1)
+    }
     assert {first.seq + 1, first.seq + 3} <= covered
     await uplink.close()
     await spool.close()
@@ -365,6 +391,7 @@ async def test_clock_exchange_is_carried_on_the_next_request(aiohttp_server, tmp
 
 # --------------------------------------------------------------------------- pure parts
 
+
 def test_exchange_offset_and_delay_match_ntplib():
     """RFC 5905 §8 worked example (docs/references.md §5), checked with PyPI ntplib 0.4.0's NTPStats."""
     ex = Exchange(t1=10.000, t2=10.060, t3=10.061, t4=10.023)
@@ -383,7 +410,10 @@ def test_exchange_log_keeps_an_exchange_until_it_was_delivered():
     assert log.take() == carried  # the carrying request failed: send it again
     log.delivered()
     assert log.take() is None
-    assert log.record(1.0, 1.2, {"t2": "x"}) is None and log.record(1.0, 1.2, {"t2": float("nan"), "t3": 1}) is None
+    assert (
+        log.record(1.0, 1.2, {"t2": "x"}) is None
+        and log.record(1.0, 1.2, {"t2": float("nan"), "t3": 1}) is None
+    )
 
 
 def test_retry_after_seconds_and_http_date():

@@ -29,6 +29,7 @@ async def pg_unreachable() -> str:
     """Empty string if the test server answers, else why not."""
     if not _pg_problem:
         import asyncpg
+
         try:
             con = await asyncpg.connect(PG_URL, timeout=3)
             await con.close()
@@ -69,9 +70,11 @@ class StoreFactory:
     async def open(self, **opts: Any) -> Store:
         if self.backend == "sqlite":
             from listenpost.collector.store.sqlite import SqliteStore
+
             store: Store = await SqliteStore.open(self.path, **self.options(**opts))
         else:
             from listenpost.collector.store.postgres import PostgresStore
+
             store = await PostgresStore.open(PG_URL, **self.options(**opts))
         self.opened.append(store)
         return store
@@ -81,6 +84,7 @@ class StoreFactory:
             await s.close()
         if self.backend == "postgres":
             import asyncpg
+
             con = await asyncpg.connect(PG_URL, timeout=5)
             try:
                 await con.execute(f'DROP SCHEMA IF EXISTS "{self.schema}" CASCADE')

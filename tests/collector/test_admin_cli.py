@@ -37,7 +37,12 @@ async def cli(server, tmp_path: Path, *args: str, state: bool = True) -> int:
 
 
 async def test_board_add_json_list_show_and_reissue(server, tmp_path, capsys):
-    assert await cli(server, tmp_path, "board", "add", "g0-a", "--room", "G0 Foyer", "--floor", "ground", "--json") == 0
+    assert (
+        await cli(
+            server, tmp_path, "board", "add", "g0-a", "--room", "G0 Foyer", "--floor", "ground", "--json"
+        )
+        == 0
+    )
     added = json.loads(capsys.readouterr().out)
     assert added["name"] == "g0-a" and len(added["code"].replace("-", "")) == 16
     assert await cli(server, tmp_path, "board", "add", "g3-a", "--room", "G3 Weather Hall") == 0
@@ -49,7 +54,7 @@ async def test_board_add_json_list_show_and_reissue(server, tmp_path, capsys):
     assert [ln.split()[0] for ln in lines[2:]] == ["g0-a", "g3-a"]
     # Columns line up: every row starts its ROOM column where the header does.
     col = lines[0].index("ROOM")
-    assert all(ln[col - 2:col] == "  " and ln[col] != " " for ln in lines[2:])
+    assert all(ln[col - 2 : col] == "  " and ln[col] != " " for ln in lines[2:])
     assert await cli(server, tmp_path, "board", "add", "g0-a", "--room", "G0 Foyer") == 1  # exists: 409
     assert "already exists" in capsys.readouterr().err
     assert await cli(server, tmp_path, "board", "add", "Bad Name", "--room", "x") == 2  # 400: bad input
@@ -66,8 +71,21 @@ async def test_board_add_json_list_show_and_reissue(server, tmp_path, capsys):
 
 async def test_board_add_with_bundle_writes_cloud_init_files(server, tmp_path, capsys):
     bundle = tmp_path / "card"
-    assert await cli(server, tmp_path, "board", "add", "u1-a", "--room", "U1 Space Gallery", "--bundle", str(bundle),
-                     "--json") == 0
+    assert (
+        await cli(
+            server,
+            tmp_path,
+            "board",
+            "add",
+            "u1-a",
+            "--room",
+            "U1 Space Gallery",
+            "--bundle",
+            str(bundle),
+            "--json",
+        )
+        == 0
+    )
     code = json.loads(capsys.readouterr().out)["code"]
     user_data = (bundle / "user-data").read_text()
     assert user_data.startswith("#cloud-config\n") and code in user_data
@@ -76,7 +94,13 @@ async def test_board_add_with_bundle_writes_cloud_init_files(server, tmp_path, c
 
 async def test_tags_import_plain_and_csv_all_or_nothing(server, tmp_path, capsys):
     plain = tmp_path / "tags.txt"
-    plain.write_text("# visitor tags\n" + "\n".join(TAGS[:3]) + "\n\n" + TAGS[0].upper().replace("IBEACON", "ibeacon") + "  # again\n")
+    plain.write_text(
+        "# visitor tags\n"
+        + "\n".join(TAGS[:3])
+        + "\n\n"
+        + TAGS[0].upper().replace("IBEACON", "ibeacon")
+        + "  # again\n"
+    )
     assert await cli(server, tmp_path, "tags", "import", str(plain)) == 0
     assert "3 tags read, 3 new" in capsys.readouterr().out
     table = tmp_path / "tags.csv"
@@ -105,11 +129,15 @@ async def test_status_json_and_table(server, tmp_path, capsys):
     assert await cli(server, tmp_path, "board", "add", "g1-a", "--room", "G1 Light & Optics", "--json") == 0
     code = json.loads(capsys.readouterr().out)["code"]
     import aiohttp
+
     async with aiohttp.ClientSession(timeout=aiohttp.ClientTimeout(total=10)) as s:
         async with s.post(server.make_url("/v1/enroll"), json={"code": code, "fingerprint": {}}) as r:
             token = (await r.json())["token"]
-        async with s.post(server.make_url("/v1/batches"), json=batch_body("g1-a", 0, readings(25)),
-                          headers={"Authorization": f"Bearer {token}"}) as r:
+        async with s.post(
+            server.make_url("/v1/batches"),
+            json=batch_body("g1-a", 0, readings(25)),
+            headers={"Authorization": f"Bearer {token}"},
+        ) as r:
             assert r.status == 200
     assert await cli(server, tmp_path, "status", "--json") == 0
     doc = json.loads(capsys.readouterr().out)
@@ -130,28 +158,80 @@ async def test_export_csv_and_npz(server, tmp_path, clock, capsys):
     assert await cli(server, tmp_path, "board", "add", "g2-a", "--room", "G2 Sound Lab", "--json") == 0
     code = json.loads(capsys.readouterr().out)["code"]
     import aiohttp
+
     t_start = clock.time()
     async with aiohttp.ClientSession(timeout=aiohttp.ClientTimeout(total=10)) as s:
         async with s.post(server.make_url("/v1/enroll"), json={"code": code, "fingerprint": {}}) as r:
             token = (await r.json())["token"]
         # 20 readings 0.25 s apart, sent at board time 100 s: they span [t2 - 50, t2 - 45.25].
-        async with s.post(server.make_url("/v1/batches"), json=batch_body("g2-a", 0, readings(20), t1=100.0),
-                          headers={"Authorization": f"Bearer {token}"}) as r:
+        async with s.post(
+            server.make_url("/v1/batches"),
+            json=batch_body("g2-a", 0, readings(20), t1=100.0),
+            headers={"Authorization": f"Bearer {token}"},
+        ) as r:
             assert r.status == 200
     out_csv = tmp_path / "x.csv"
-    assert await cli(server, tmp_path, "export", "--from", str(t_start - 60), "--to", str(t_start),
-                     "--bin", "10", "--format", "csv", "--out", str(out_csv)) == 0
+    assert (
+        await cli(
+            server,
+            tmp_path,
+            "export",
+            "--from",
+            str(t_start - 60),
+            "--to",
+            str(t_start),
+            "--bin",
+            "10",
+            "--format",
+            "csv",
+            "--out",
+            str(out_csv),
+        )
+        == 0
+    )
     rows = list(csv.DictReader(io.StringIO(out_csv.read_text())))
     assert rows and sum(int(r["n"]) for r in rows) == 20
     assert {r["board"] for r in rows} == {"g2-a"}
     out_npz = tmp_path / "x.npz"
-    iso_from = __import__("datetime").datetime.fromtimestamp(t_start - 60, __import__("datetime").UTC).isoformat()
-    assert await cli(server, tmp_path, "export", "--from", iso_from, "--to", str(t_start), "--bin", "10",
-                     "--format", "npz", "--out", str(out_npz)) == 0
+    iso_from = (
+        __import__("datetime").datetime.fromtimestamp(t_start - 60, __import__("datetime").UTC).isoformat()
+    )
+    assert (
+        await cli(
+            server,
+            tmp_path,
+            "export",
+            "--from",
+            iso_from,
+            "--to",
+            str(t_start),
+            "--bin",
+            "10",
+            "--format",
+            "npz",
+            "--out",
+            str(out_npz),
+        )
+        == 0
+    )
     with np.load(out_npz, allow_pickle=False) as z:
         assert int(np.sum(z["counts"])) == 20
-    assert await cli(server, tmp_path, "export", "--from", "yesterday", "--to", "1", "--bin", "1",
-                     "--out", str(out_csv)) == 2
+    assert (
+        await cli(
+            server,
+            tmp_path,
+            "export",
+            "--from",
+            "yesterday",
+            "--to",
+            "1",
+            "--bin",
+            "1",
+            "--out",
+            str(out_csv),
+        )
+        == 2
+    )
 
 
 async def test_unreachable_collector_and_bad_token(server, tmp_path, capsys, monkeypatch):
@@ -159,8 +239,20 @@ async def test_unreachable_collector_and_bad_token(server, tmp_path, capsys, mon
         s.bind(("127.0.0.1", 0))
         port = s.getsockname()[1]  # closed again: nothing listens there
     state = tmp_path / "state"
-    rc = await asyncio.to_thread(main, ["collector", "board", "list", "--collector", f"http://127.0.0.1:{port}",
-                                        "--state-dir", str(state), "--timeout", "5"])
+    rc = await asyncio.to_thread(
+        main,
+        [
+            "collector",
+            "board",
+            "list",
+            "--collector",
+            f"http://127.0.0.1:{port}",
+            "--state-dir",
+            str(state),
+            "--timeout",
+            "5",
+        ],
+    )
     assert rc == 1
     assert "cannot reach the collector" in capsys.readouterr().err
     monkeypatch.setenv("LISTENPOST_ADMIN_TOKEN", "wrong-token")
@@ -184,11 +276,16 @@ async def test_events_listing(server, tmp_path, capsys):
 
 async def _enroll_and_send(server, body_for, code: str) -> str:
     import aiohttp
+
     async with aiohttp.ClientSession(timeout=aiohttp.ClientTimeout(total=10)) as s:
-        async with s.post(server.make_url("/v1/enroll"), json={"code": code, "fingerprint": {"machine_id": "a"}}) as r:
+        async with s.post(
+            server.make_url("/v1/enroll"), json={"code": code, "fingerprint": {"machine_id": "a"}}
+        ) as r:
             token = (await r.json())["token"]
         for body in body_for:
-            async with s.post(server.make_url("/v1/batches"), json=body, headers={"Authorization": f"Bearer {token}"}) as r:
+            async with s.post(
+                server.make_url("/v1/batches"), json=body, headers={"Authorization": f"Bearer {token}"}
+            ) as r:
                 assert r.status == 200, await r.text()
     return token
 
@@ -202,8 +299,24 @@ async def test_calibrate_from_a_reference_tag(server, tmp_path, capsys):
     # 40 readings at -74.0 dBm, 0.5 s apart, just before the send time.
     rs = [Reading(ref, round((60 + i * 0.5) * 1e9), -74.0) for i in range(40)]
     await _enroll_and_send(server, [batch_body("g0-b", 0, rs, t1=81.0)], code)
-    assert await cli(server, tmp_path, "calibrate", "g0-b", "--tag", ref, "--distance", "4", "--power-1m", "-59",
-                     "--exponent", "2", "--json") == 0
+    assert (
+        await cli(
+            server,
+            tmp_path,
+            "calibrate",
+            "g0-b",
+            "--tag",
+            ref,
+            "--distance",
+            "4",
+            "--power-1m",
+            "-59",
+            "--exponent",
+            "2",
+            "--json",
+        )
+        == 0
+    )
     cal = json.loads(capsys.readouterr().out)
     # docs/references.md §7 worked example (Rappaport log-distance model): P1 = -59 dBm, n = 2, d = 4 m gives
     # RSSI(4 m) = -71.0412 dBm; a board that hears -74.0 there needs +2.9588 dB added.
@@ -213,7 +326,9 @@ async def test_calibrate_from_a_reference_tag(server, tmp_path, capsys):
     shown = json.loads(capsys.readouterr().out)
     assert shown["offset_db"] == pytest.approx(2.9588, abs=1e-3) and len(shown["calibrations"]) == 1
     assert shown["recalibrate"] is False
-    assert await cli(server, tmp_path, "calibrate", "g0-b", "--tag", TAGS[1], "--distance", "4") == 1  # no readings
+    assert (
+        await cli(server, tmp_path, "calibrate", "g0-b", "--tag", TAGS[1], "--distance", "4") == 1
+    )  # no readings
 
 
 async def test_walktest_report_per_room(server, tmp_path, clock, capsys):
@@ -232,11 +347,15 @@ async def test_walktest_report_per_room(server, tmp_path, clock, capsys):
     await _enroll_and_send(server, [batch_body("g1-a", 0, strong_first, t1=200.0)], codes["g1-a"])
     await _enroll_and_send(server, [batch_body("g2-a", 0, strong_second, t1=200.0)], codes["g2-a"])
     marks = tmp_path / "marks.csv"
-    marks.write_text(f"room,from,to\nG1 Light & Optics,{t2 - 100},{t2 - 70}\nG2 Sound Lab,{t2 - 70},{t2 - 40}\n")
+    marks.write_text(
+        f"room,from,to\nG1 Light & Optics,{t2 - 100},{t2 - 70}\nG2 Sound Lab,{t2 - 70},{t2 - 40}\n"
+    )
     assert await cli(server, tmp_path, "walktest", "--tag", ref, "--marks", str(marks), "--json") == 0
     report = json.loads(capsys.readouterr().out)["rooms"]
     assert [(r["room"], r["strongest"]["board"], r["margin_db"]) for r in report] == [
-        ("G1 Light & Optics", "g1-a", 27.0), ("G2 Sound Lab", "g2-a", 22.0)]
+        ("G1 Light & Optics", "g1-a", 27.0),
+        ("G2 Sound Lab", "g2-a", 22.0),
+    ]
     assert await cli(server, tmp_path, "walktest", "--tag", ref, "--marks", str(marks)) == 0
     assert "G2 Sound Lab" in capsys.readouterr().out
     marks.write_text("room,from\nG1,1\n")
@@ -244,10 +363,14 @@ async def test_walktest_report_per_room(server, tmp_path, clock, capsys):
     assert f"{marks}:1:" in capsys.readouterr().err
 
 
-@pytest.mark.parametrize("url", ["htp://127.0.0.1:8470", "127.0.0.1:8470", "http://", "http://127.0.0.1:99999"])
+@pytest.mark.parametrize(
+    "url", ["htp://127.0.0.1:8470", "127.0.0.1:8470", "http://", "http://127.0.0.1:99999"]
+)
 async def test_a_malformed_collector_url_is_a_usage_error_naming_the_option(tmp_path, capsys, url):
     """A mistyped --collector gets exit 2 and a message naming the option and the value, never a traceback."""
-    rc = await asyncio.to_thread(main, ["collector", "status", "--collector", url, "--state-dir", str(tmp_path)])
+    rc = await asyncio.to_thread(
+        main, ["collector", "status", "--collector", url, "--state-dir", str(tmp_path)]
+    )
     err = capsys.readouterr().err
     assert rc == 2, err
     assert "--collector" in err and "Traceback" not in err
@@ -257,8 +380,10 @@ async def test_a_missing_admin_token_says_where_to_find_it(server, tmp_path, cap
     """Pointing --state-dir at the wrong place names the file and both ways to give the token."""
     empty = tmp_path / "elsewhere"
     empty.mkdir()
-    rc = await asyncio.to_thread(main, ["collector", "board", "list", "--collector", str(server.make_url("")),
-                                        "--state-dir", str(empty)])
+    rc = await asyncio.to_thread(
+        main,
+        ["collector", "board", "list", "--collector", str(server.make_url("")), "--state-dir", str(empty)],
+    )
     err = capsys.readouterr().err
     assert rc == 2
     assert f"{empty}/admin-token" in err and "--state-dir" in err and "LISTENPOST_ADMIN_TOKEN" in err
@@ -276,7 +401,9 @@ async def test_a_url_that_is_not_a_collector_says_so(aiohttp_server, tmp_path, c
     other = await aiohttp_server(app)
     (tmp_path / "admin-token").write_text("x" * 32 + "\n")
     base = str(other.make_url("")).rstrip("/")
-    rc = await asyncio.to_thread(main, ["collector", "board", "list", "--collector", base, "--state-dir", str(tmp_path)])
+    rc = await asyncio.to_thread(
+        main, ["collector", "board", "list", "--collector", base, "--state-dir", str(tmp_path)]
+    )
     err = capsys.readouterr().err
     assert rc == 1
     assert "answered 404" in err and f"is {base} a listenpost collector" in err
@@ -285,7 +412,9 @@ async def test_a_url_that_is_not_a_collector_says_so(aiohttp_server, tmp_path, c
 async def test_a_path_after_the_port_is_named(server, tmp_path, capsys):
     """The collector's own 404 for an unknown route gets the same explanation, not a bare 'Not Found'."""
     base = str(server.make_url("")).rstrip("/") + "/v1"
-    rc = await asyncio.to_thread(main, ["collector", "status", "--collector", base, "--state-dir", str(tmp_path / "state")])
+    rc = await asyncio.to_thread(
+        main, ["collector", "status", "--collector", base, "--state-dir", str(tmp_path / "state")]
+    )
     err = capsys.readouterr().err
     assert rc == 1 and "no path after the port" in err
 
@@ -297,8 +426,19 @@ async def test_tags_without_a_configured_rule_are_flagged_at_import(aiohttp_serv
     servers = {"bare": await aiohttp_server(bare)}
     tags = tmp_path / "tags.txt"
     tags.write_text(f"{TAGS[0]}\nlpx:00000001\nlpx:00000002\n")
-    rc = await asyncio.to_thread(main, ["collector", "tags", "import", str(tags), "--collector",
-                                        str(servers["bare"].make_url("")), "--state-dir", str(tmp_path / "bare")])
+    rc = await asyncio.to_thread(
+        main,
+        [
+            "collector",
+            "tags",
+            "import",
+            str(tags),
+            "--collector",
+            str(servers["bare"].make_url("")),
+            "--state-dir",
+            str(tmp_path / "bare"),
+        ],
+    )
     out = capsys.readouterr().out
     assert rc == 0
     assert "3 tags read" in out and "2 tags use the decode rule 'lpx'" in out and "decode.rules" in out
@@ -311,7 +451,9 @@ async def test_tags_with_their_rule_configured_import_quietly(server, tmp_path, 
     assert "decode rule" not in capsys.readouterr().out
 
 
-async def test_board_add_warns_when_boards_would_be_sent_to_loopback(server, aiohttp_server, tmp_path, clock, capsys):
+async def test_board_add_warns_when_boards_would_be_sent_to_loopback(
+    server, aiohttp_server, tmp_path, clock, capsys
+):
     """A code or bundle pointing boards at 127.0.0.1 cannot work on a board: say so, and say what to set."""
     assert await cli(server, tmp_path, "board", "add", "g0-a", "--room", "G0 Foyer") == 0
     captured = capsys.readouterr()
@@ -319,13 +461,28 @@ async def test_board_add_warns_when_boards_would_be_sent_to_loopback(server, aio
     assert "enrollment code:" in captured.out
 
     configure("json", stream=io.StringIO())
-    public = create_app(settings_for(tmp_path / "pub", public_url="http://10.20.0.2:8470"), clock=clock,
-                        run_monitor=False)
+    public = create_app(
+        settings_for(tmp_path / "pub", public_url="http://10.20.0.2:8470"), clock=clock, run_monitor=False
+    )
     srv = await aiohttp_server(public)
     bundle = tmp_path / "card"
-    rc = await asyncio.to_thread(main, ["collector", "board", "add", "g0-b", "--room", "G0 Foyer", "--bundle",
-                                        str(bundle), "--collector", str(srv.make_url("")),
-                                        "--state-dir", str(tmp_path / "pub")])
+    rc = await asyncio.to_thread(
+        main,
+        [
+            "collector",
+            "board",
+            "add",
+            "g0-b",
+            "--room",
+            "G0 Foyer",
+            "--bundle",
+            str(bundle),
+            "--collector",
+            str(srv.make_url("")),
+            "--state-dir",
+            str(tmp_path / "pub"),
+        ],
+    )
     captured = capsys.readouterr()
     assert rc == 0 and "loopback" not in captured.err
     assert "--collector http://10.20.0.2:8470 --code" in captured.out
@@ -333,8 +490,19 @@ async def test_board_add_warns_when_boards_would_be_sent_to_loopback(server, aio
 
 
 async def test_a_spaced_package_is_refused_before_a_code_is_issued(server, tmp_path, capsys):
-    rc = await cli(server, tmp_path, "board", "add", "g0-a", "--room", "G0 Foyer", "--bundle", str(tmp_path / "card"),
-                   "--package", "listenpost --pre")
+    rc = await cli(
+        server,
+        tmp_path,
+        "board",
+        "add",
+        "g0-a",
+        "--room",
+        "G0 Foyer",
+        "--bundle",
+        str(tmp_path / "card"),
+        "--package",
+        "listenpost --pre",
+    )
     assert rc == 2 and "--package" in capsys.readouterr().err
     assert await cli(server, tmp_path, "board", "list", "--json") == 0
     assert json.loads(capsys.readouterr().out)["boards"] == []
@@ -343,10 +511,14 @@ async def test_a_spaced_package_is_refused_before_a_code_is_issued(server, tmp_p
 async def test_events_read_as_sentences_and_an_unknown_board_is_named(server, tmp_path, capsys):
     from listenpost.collector.cli import event_detail
 
-    assert event_detail("state_changed", {"old": "live", "new": "late", "reason": "no contact for 32 s"}) == \
-        "live → late: no contact for 32 s"
-    assert event_detail("state_changed", {"old": None, "new": "silent", "reason": "no contact yet"}) == \
-        "– → silent: no contact yet"
+    assert (
+        event_detail("state_changed", {"old": "live", "new": "late", "reason": "no contact for 32 s"})
+        == "live → late: no contact for 32 s"
+    )
+    assert (
+        event_detail("state_changed", {"old": None, "new": "silent", "reason": "no contact yet"})
+        == "– → silent: no contact yet"
+    )
     assert event_detail("calibrated", {"offset_db": 2.5, "warnings": []}) == "offset_db=2.5 warnings=[]"
     assert await cli(server, tmp_path, "events", "--board", "nope") == 2
     assert "no board named 'nope'" in capsys.readouterr().err

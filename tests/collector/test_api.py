@@ -27,14 +27,24 @@ LPX_RULE = {"name": "lpx", "company_id": 0xFFFF, "prefix": "4c50", "offset": 2, 
 
 # ------------------------------------------------------------------ helpers shared by the collector tests
 
+
 def settings_for(state_dir: Path, **yaml_overrides: Any):
     data = {"decode": {"rules": [LPX_RULE]}, **yaml_overrides}
     return parse_settings(data, "test.yaml", state_dir=str(state_dir))
 
 
-async def make_client(aiohttp_client, tmp_path: Path, clock: VirtualClock, *, store: Store | None = None,
-                      run_monitor: bool = False, **yaml_overrides: Any) -> TestClient:
-    app = create_app(settings_for(tmp_path, **yaml_overrides), clock=clock, store=store, run_monitor=run_monitor)
+async def make_client(
+    aiohttp_client,
+    tmp_path: Path,
+    clock: VirtualClock,
+    *,
+    store: Store | None = None,
+    run_monitor: bool = False,
+    **yaml_overrides: Any,
+) -> TestClient:
+    app = create_app(
+        settings_for(tmp_path, **yaml_overrides), clock=clock, store=store, run_monitor=run_monitor
+    )
     return await aiohttp_client(app)
 
 
@@ -42,18 +52,28 @@ def admin_headers(tmp_path: Path) -> dict[str, str]:
     return {"Authorization": "Bearer " + (tmp_path / ADMIN_TOKEN_FILE).read_text().strip()}
 
 
-async def add_board(client: TestClient, tmp_path: Path, name: str, room: str = "G0 Foyer", floor: str | None = "ground") -> str:
-    r = await client.post("/v1/admin/boards", json={"name": name, "room": room, "floor": floor},
-                          headers=admin_headers(tmp_path))
+async def add_board(
+    client: TestClient, tmp_path: Path, name: str, room: str = "G0 Foyer", floor: str | None = "ground"
+) -> str:
+    r = await client.post(
+        "/v1/admin/boards", json={"name": name, "room": room, "floor": floor}, headers=admin_headers(tmp_path)
+    )
     assert r.status == 201, await r.text()
     return (await r.json())["code"]
 
 
-async def enrolled(client: TestClient, tmp_path: Path, name: str, room: str = "G0 Foyer",
-                   fingerprint: dict[str, Any] | None = None) -> dict[str, str]:
+async def enrolled(
+    client: TestClient,
+    tmp_path: Path,
+    name: str,
+    room: str = "G0 Foyer",
+    fingerprint: dict[str, Any] | None = None,
+) -> dict[str, str]:
     """Add and enroll a board (floor from the room's letter, as in docs/demo-venue.md); returns its auth header."""
     code = await add_board(client, tmp_path, name, room, "upper" if room.startswith("U") else "ground")
-    r = await client.post("/v1/enroll", json={"code": code, "fingerprint": fingerprint or {"machine_id": name}})
+    r = await client.post(
+        "/v1/enroll", json={"code": code, "fingerprint": fingerprint or {"machine_id": name}}
+    )
     assert r.status == 200, await r.text()
     return {"Authorization": "Bearer " + (await r.json())["token"]}
 
@@ -63,16 +83,36 @@ async def import_tags(client: TestClient, tmp_path: Path, tags: list[str] = TAGS
     assert r.status == 200, await r.text()
 
 
-def batch_body(board: str, seq: int, readings: list[Reading], *, epoch: str = "00112233aabbccdd",
-               boot: str = "boot-1", t1: float = 100.0, clock: dict[str, float] | None = None,
-               offset_db: float = 0.0, gap: dict[str, Any] | None = None) -> dict[str, Any]:
+def batch_body(
+    board: str,
+    seq: int,
+    readings: list[Reading],
+    *,
+    epoch: str = "00112233aabbccdd",
+    boot: str = "boot-1",
+    t1: float = 100.0,
+    clock: dict[str, float] | None = None,
+    offset_db: float = 0.0,
+    gap: dict[str, Any] | None = None,
+) -> dict[str, Any]:
     content = wire.encode_content(readings, boot=boot, offset_db=offset_db, gap=gap)
-    return {"v": 1, "board": board, "boot": boot, "epoch": epoch, "seq": seq, "digest": wire.digest(content),
-            "clock": clock, "t1": t1, "content": content}
+    return {
+        "v": 1,
+        "board": board,
+        "boot": boot,
+        "epoch": epoch,
+        "seq": seq,
+        "digest": wire.digest(content),
+        "clock": clock,
+        "t1": t1,
+        "content": content,
+    }
 
 
 def readings(n: int, t0_s: float = 50.0, tags: list[str] = TAGS) -> list[Reading]:
-    return [Reading(tags[i % len(tags)], round((t0_s + i * 0.25) * 1e9), -60.0 - (i % 30) / 2) for i in range(n)]
+    return [
+        Reading(tags[i % len(tags)], round((t0_s + i * 0.25) * 1e9), -60.0 - (i % 30) / 2) for i in range(n)
+    ]
 
 
 def gz(obj: Any) -> bytes:
@@ -86,10 +126,13 @@ async def client(aiohttp_client, tmp_path: Path, clock: VirtualClock) -> TestCli
 
 # ------------------------------------------------------------------ enroll
 
+
 async def test_enroll_gives_a_token_and_config_once(client, tmp_path, clock):
     await import_tags(client, tmp_path)
     code = await add_board(client, tmp_path, "g0-a")
-    r = await client.post("/v1/enroll", json={"code": code.lower().replace("-", " "), "fingerprint": {"machine_id": "m1"}})
+    r = await client.post(
+        "/v1/enroll", json={"code": code.lower().replace("-", " "), "fingerprint": {"machine_id": "m1"}}
+    )
     assert r.status == 200
     doc = await r.json()
     assert doc["board"] == "g0-a"
@@ -137,6 +180,7 @@ async def test_reissue_replaces_the_code_and_a_new_fingerprint_is_flagged(client
 
 # ------------------------------------------------------------------ config
 
+
 async def test_config_etag_and_304(client, tmp_path, clock):
     auth = await enrolled(client, tmp_path, "g3-a")
     r = await client.get("/v1/config", headers=auth)
@@ -163,13 +207,17 @@ async def test_board_calls_need_a_valid_token(client, tmp_path):
 
 # ------------------------------------------------------------------ batches
 
+
 async def test_batch_stored_then_duplicate_then_conflict(client, tmp_path, clock):
     await import_tags(client, tmp_path)
     auth = await enrolled(client, tmp_path, "g0-a")
     body = batch_body("g0-a", 0, readings(40))
     t_before = clock.time()
-    r = await client.post("/v1/batches", data=gz(body), headers={**auth, "Content-Encoding": "gzip",
-                                                                   "Content-Type": "application/json"})
+    r = await client.post(
+        "/v1/batches",
+        data=gz(body),
+        headers={**auth, "Content-Encoding": "gzip", "Content-Type": "application/json"},
+    )
     assert r.status == 200, await r.text()
     doc = await r.json()
     assert doc["status"] == "stored" and doc["t2"] == t_before and doc["t3"] >= doc["t2"]
@@ -190,7 +238,9 @@ async def test_corrected_times_use_the_send_time_then_the_clock_model(client, tm
     store = client.app[STORE]
     # First batch of a boot: no exchange yet, so collector ≈ board + (t2 − t1).
     t2 = clock.time()
-    r = await client.post("/v1/batches", json=batch_body("g1-a", 0, readings(4, t0_s=90.0), t1=100.0), headers=auth)
+    r = await client.post(
+        "/v1/batches", json=batch_body("g1-a", 0, readings(4, t0_s=90.0), t1=100.0), headers=auth
+    )
     assert r.status == 200
     rows = await store.readings(0, 4e9, boards=["g1-a"])
     assert rows.t_collector[0] == pytest.approx(90.0 + (t2 - 100.0), abs=1e-6)
@@ -199,25 +249,31 @@ async def test_corrected_times_use_the_send_time_then_the_clock_model(client, tm
     for k in range(5):
         b = 200.0 + 10 * k
         ex = {"t1": b, "t2": w + b + 0.004, "t3": w + b + 0.005, "t4": b + 0.009}
-        r = await client.post("/v1/batches", json=batch_body("g1-a", 1 + k, readings(2, t0_s=b), t1=b, clock=ex),
-                              headers=auth)
+        r = await client.post(
+            "/v1/batches", json=batch_body("g1-a", 1 + k, readings(2, t0_s=b), t1=b, clock=ex), headers=auth
+        )
         assert r.status == 200
-    r = await client.post("/v1/batches", json=batch_body("g1-a", 9, readings(1, t0_s=260.0), t1=261.0), headers=auth)
+    r = await client.post(
+        "/v1/batches", json=batch_body("g1-a", 9, readings(1, t0_s=260.0), t1=261.0), headers=auth
+    )
     rows = await store.readings(0, 4e9, boards=["g1-a"])
     assert rows.t_collector[-1] == pytest.approx(w + 260.0, abs=1e-3)
 
 
-@pytest.mark.parametrize("mutate, field", [
-    (lambda b: b.update(seq=-1), "seq"),
-    (lambda b: b.update(v=2), "v"),
-    (lambda b: b.update(epoch="XYZ"), "epoch"),
-    (lambda b: b.update(digest="0" * 64), "digest"),
-    (lambda b: b.pop("t1"), "t1"),
-    (lambda b: b.update(clock={"t1": 1, "t2": 5, "t3": 4, "t4": 2}), "clock.t3"),
-    (lambda b: b["content"]["readings"]["rssi_dd"].__setitem__(1, 9000), "content.readings.rssi_dd[1]"),
-    (lambda b: b["content"]["readings"]["tag"].append(0), "content.readings"),
-    (lambda b: b["content"].update(offset_db="x"), "content.offset_db"),
-])
+@pytest.mark.parametrize(
+    "mutate, field",
+    [
+        (lambda b: b.update(seq=-1), "seq"),
+        (lambda b: b.update(v=2), "v"),
+        (lambda b: b.update(epoch="XYZ"), "epoch"),
+        (lambda b: b.update(digest="0" * 64), "digest"),
+        (lambda b: b.pop("t1"), "t1"),
+        (lambda b: b.update(clock={"t1": 1, "t2": 5, "t3": 4, "t4": 2}), "clock.t3"),
+        (lambda b: b["content"]["readings"]["rssi_dd"].__setitem__(1, 9000), "content.readings.rssi_dd[1]"),
+        (lambda b: b["content"]["readings"]["tag"].append(0), "content.readings"),
+        (lambda b: b["content"].update(offset_db="x"), "content.offset_db"),
+    ],
+)
 async def test_bad_batches_get_400_naming_the_field(client, tmp_path, mutate, field):
     auth = await enrolled(client, tmp_path, "g2-a")
     body = batch_body("g2-a", 3, readings(5))
@@ -258,8 +314,11 @@ async def test_oversized_bodies_get_413(aiohttp_client, tmp_path, clock):
     r = await client.post("/v1/batches", data=b"x" * 30_000, headers=auth)
     assert r.status == 413
     # Within limits still works.
-    r = await client.post("/v1/batches", data=gz(batch_body("g6-a", 0, readings(10))),
-                          headers={**auth, "Content-Encoding": "gzip"})
+    r = await client.post(
+        "/v1/batches",
+        data=gz(batch_body("g6-a", 0, readings(10))),
+        headers={**auth, "Content-Encoding": "gzip"},
+    )
     assert r.status == 200
 
 
@@ -299,17 +358,24 @@ async def test_store_outage_answers_503_with_retry_after(aiohttp_client, tmp_pat
 
 # ------------------------------------------------------------------ heartbeat
 
+
 async def test_heartbeat_stores_stats_and_clock_and_reports_wall_error(client, tmp_path, clock):
     auth = await enrolled(client, tmp_path, "g4-a")
     r = await client.get("/v1/config", headers=auth)
     etag = r.headers["ETag"]
-    w = clock.time() - 500.0   # collector = board + w
+    w = clock.time() - 500.0  # collector = board + w
     for k in range(4):
         b = 500.0 + 10 * k
         ex = {"t1": b, "t2": w + b + 0.003, "t3": w + b + 0.004, "t4": b + 0.007}
-        body = {"board": "g4-a", "boot": "boot-1", "t1": b + 0.01, "clock": ex,
-                # This board's wall clock runs 3 h 12 min behind (g4-a of docs/demo-venue.md).
-                "wall": w + b + 0.01 - 11520.0, "stats": {"adverts_total": 1000 + k, "spool": {"batches": 2}}}
+        body = {
+            "board": "g4-a",
+            "boot": "boot-1",
+            "t1": b + 0.01,
+            "clock": ex,
+            # This board's wall clock runs 3 h 12 min behind (g4-a of docs/demo-venue.md).
+            "wall": w + b + 0.01 - 11520.0,
+            "stats": {"adverts_total": 1000 + k, "spool": {"batches": 2}},
+        }
         t2 = clock.time()
         r = await client.post("/v1/heartbeat", json=body, headers=auth)
         assert r.status == 200, await r.text()

@@ -36,11 +36,13 @@ def test_log_distance_worked_numbers():
 
 def test_free_space_loss_matches_reference_figures():
     """FSPL 40.05 dB at 1 m / 2.4 GHz and 60.20 dB at 10 m / 2.44 GHz (docs/references.md §7, scipy.constants.c)."""
-    assert SPEED_OF_LIGHT_M_S == SCIPY_C          # scipy.constants.c: the SI-exact value
+    assert SPEED_OF_LIGHT_M_S == SCIPY_C  # scipy.constants.c: the SI-exact value
     assert round(fspl_db(1.0, 2.4e9), 3) == 40.052
     assert round(fspl_db(10.0, 2.44e9), 3) == 60.196
     # Self-consistency: Friis is the n = 2 case of the log-distance model, so 1 m → 10 m costs 20 dB.
-    assert_allclose(fspl_db(10.0, 2.4e9) - fspl_db(1.0, 2.4e9), -(rssi_at_distance(0.0, 2.0, 10.0)), atol=1e-12)
+    assert_allclose(
+        fspl_db(10.0, 2.4e9) - fspl_db(1.0, 2.4e9), -(rssi_at_distance(0.0, 2.0, 10.0)), atol=1e-12
+    )
     # ITU-R P.1238 site-general form at 1 m and 2440 MHz (editions -7 to -9, from memory): 20·log10(f) − 28
     # = 39.75 dB, within 0.5 dB of free space (docs/references.md §7).
     assert abs((20 * math.log10(2440) - 28) - fspl_db(1.0, 2.44e9)) < 0.5
@@ -56,7 +58,7 @@ def test_offset_from_reference_tag_at_4_m():
     """A board hearing −74 dBm median at 4 m from a −59 dBm tag (n = 2) needs +2.9588 dB."""
     rng = np.random.default_rng(5)
     spread = np.round(rng.normal(0, 1.5, 100))
-    samples = np.concatenate([-74.0 + spread, -74.0 - spread, [-74.0]])   # median exactly −74
+    samples = np.concatenate([-74.0 + spread, -74.0 - spread, [-74.0]])  # median exactly −74
     r = calibrate_offset(samples, distance_m=4.0, p1_dbm=-59.0, exponent=2.0)
     # Expected: −59 − (−74 + 20·log10 4) = 15 − 12.0412 = 2.9588 (model numbers as in docs/references.md §7).
     assert_allclose(r.offset_db, 2.9588, atol=5e-5)
@@ -86,12 +88,15 @@ def test_warnings_for_few_samples_wide_spread_and_large_offset():
     assert far.warnings[0] == "offset_large"
 
 
-@pytest.mark.parametrize(("kwargs", "field"), [
-    ({"samples_dbm": []}, "samples_dbm"),
-    ({"samples_dbm": [-60.0, float("nan")]}, r"samples_dbm\[1\]"),
-    ({"distance_m": 0.0}, "distance_m"),
-    ({"exponent": -2.0}, "exponent"),
-])
+@pytest.mark.parametrize(
+    ("kwargs", "field"),
+    [
+        ({"samples_dbm": []}, "samples_dbm"),
+        ({"samples_dbm": [-60.0, float("nan")]}, r"samples_dbm\[1\]"),
+        ({"distance_m": 0.0}, "distance_m"),
+        ({"exponent": -2.0}, "exponent"),
+    ],
+)
 def test_bad_input_names_the_argument(kwargs, field):
     args = {"samples_dbm": [-60.0] * 40, "distance_m": 2.0, "p1_dbm": -59.0, "exponent": 2.0} | kwargs
     samples = args.pop("samples_dbm")
@@ -101,23 +106,34 @@ def test_bad_input_names_the_argument(kwargs, field):
 
 # -- walk test ---------------------------------------------------------------------------------------------
 
-FLOORS = {"G0 Foyer": "ground", "G1 Light & Optics": "ground", "G6 Stair lobby": "ground", "U0 Landing": "upper"}
+FLOORS = {
+    "G0 Foyer": "ground",
+    "G1 Light & Optics": "ground",
+    "G6 Stair lobby": "ground",
+    "U0 Landing": "upper",
+}
 
 
 def walk_rows():
     """A technician in G0 for 60 s, then G6 for 60 s; readings from four boards, one gap in G6."""
     rows = []
-    for k in range(60):                             # G0, one reading a second per board
+    for k in range(60):  # G0, one reading a second per board
         t = T0 + k + 0.2
-        rows += [("g0-a", "G0 Foyer", t, -58.0), ("g0-b", "G0 Foyer", t, -63.0),
-                 ("g1-a", "G1 Light & Optics", t, -80.0)]
-    for k in range(60):                             # G6: 45 seconds heard, 15 missing
+        rows += [
+            ("g0-a", "G0 Foyer", t, -58.0),
+            ("g0-b", "G0 Foyer", t, -63.0),
+            ("g1-a", "G1 Light & Optics", t, -80.0),
+        ]
+    for k in range(60):  # G6: 45 seconds heard, 15 missing
         if 20 <= k < 35:
             continue
         t = T0 + 60 + k + 0.5
-        rows += [("g6-a", "G6 Stair lobby", t, -61.0), ("u0-a", "U0 Landing", t, -64.0),
-                 ("g0-a", "G0 Foyer", t, -79.0)]
-    rows.append(("g1-a", "G1 Light & Optics", T0 + 200.0, -50.0))   # outside every mark: ignored
+        rows += [
+            ("g6-a", "G6 Stair lobby", t, -61.0),
+            ("u0-a", "U0 Landing", t, -64.0),
+            ("g0-a", "G0 Foyer", t, -79.0),
+        ]
+    rows.append(("g1-a", "G1 Light & Optics", T0 + 200.0, -50.0))  # outside every mark: ignored
     return rows
 
 
@@ -133,8 +149,8 @@ def test_walk_report_per_room():
     assert g0.heard[0].readings == 60
 
     assert g6.strongest.board == "g6-a" and g6.margin_db == pytest.approx(3.0)
-    assert [h.board for h in g6.overlap] == ["u0-a"]            # within 6 dB, another room
-    assert [h.board for h in g6.other_floor] == ["u0-a"]        # ... and another floor
+    assert [h.board for h in g6.overlap] == ["u0-a"]  # within 6 dB, another room
+    assert [h.board for h in g6.other_floor] == ["u0-a"]  # ... and another floor
     assert g6.seconds_share == pytest.approx(45 / 60)
 
 

@@ -25,8 +25,15 @@ from listenpost.core.timesync import offset_delay
 BOOT_WALL = 1_800_000_123.456  # collector Unix time when the simulated board booted
 
 
-def synth(seed: int | list[int], skew_ppm: float, minutes: float = 30.0, period_s: float = 10.0, b0: float = 500.0,
-          step_at_b: float | None = None, step_s: float = 0.0):
+def synth(
+    seed: int | list[int],
+    skew_ppm: float,
+    minutes: float = 30.0,
+    period_s: float = 10.0,
+    b0: float = 500.0,
+    step_at_b: float | None = None,
+    step_s: float = 0.0,
+):
     """
     Four-timestamp exchanges of a board whose clock runs ``skew_ppm`` fast.
 
@@ -54,10 +61,13 @@ def true_offset(board_s: float | np.ndarray, skew_ppm: float) -> float | np.ndar
 
 
 def feed(model: ClockModel, b1, t2, t3, t4) -> list:
-    return [model.add(float(a), float(b), float(c), float(d)) for a, b, c, d in zip(b1, t2, t3, t4, strict=True)]
+    return [
+        model.add(float(a), float(b), float(c), float(d)) for a, b, c, d in zip(b1, t2, t3, t4, strict=True)
+    ]
 
 
 # -- RFC 5905 on-wire calculation -------------------------------------------------------------------------
+
 
 def test_exchange_matches_rfc5905_worked_example_and_ntplib():
     """θ = 0.049 s and δ = 0.022 s for the docs/references.md §5 example, as ntplib computes them."""
@@ -98,11 +108,17 @@ def test_clock_filter_picks_minimum_delay_sample():
 
 # -- the two line solvers against scipy's LP solver -------------------------------------------------------
 
+
 def mst_linprog(t, d):
     """Moon, Skelly & Towsley (INFOCOM 1999) LP exactly as docs/references.md §5 states it, solved by HiGHS."""
     t, d = np.asarray(t, float), np.asarray(d, float)
-    r = linprog(c=[-t.sum(), -len(t)], A_ub=np.column_stack([t, np.ones_like(t)]), b_ub=d,
-                bounds=[(None, None), (None, None)], method="highs")
+    r = linprog(
+        c=[-t.sum(), -len(t)],
+        A_ub=np.column_stack([t, np.ones_like(t)]),
+        b_ub=d,
+        bounds=[(None, None), (None, None)],
+        method="highs",
+    )
     assert r.status == 0
     return r.x
 
@@ -119,13 +135,13 @@ def test_lower_envelope_equals_linprog(seed):
     """Hull solution = scipy.optimize.linprog (HiGHS) optimum of the MST LP on skewed, queued delays."""
     rng = np.random.default_rng(seed)
     t = np.sort(rng.uniform(0, 3600, 400))
-    d = 50e-6 * t + 0.020 + rng.exponential(0.004, 400)   # docs/references.md §5: 50 ppm, 20 ms floor
+    d = 50e-6 * t + 0.020 + rng.exponential(0.004, 400)  # docs/references.md §5: 50 ppm, 20 ms floor
     a, b = lower_envelope(t, d)
     ra, rb = mst_linprog(t, d)
     # Tolerances: HiGHS' default feasibility tolerance is ~1e-7 on these O(1e-2) ordinates.
     assert_allclose(a, ra, atol=1e-9)
     assert_allclose(b, rb, atol=1e-7)
-    assert abs(a * 1e6 - 50.0) < 0.5 and abs(b - 0.020) < 1e-3   # docs/references.md §5 [RUN] figures
+    assert abs(a * 1e6 - 50.0) < 0.5 and abs(b - 0.020) < 1e-3  # docs/references.md §5 [RUN] figures
     assert np.all(a * t + b <= d + 1e-12)
 
 
@@ -146,16 +162,23 @@ def test_band_fit_equals_linprog(seed):
     lo = -40e-6 * tl - 0.001 - np.minimum(rng.exponential(0.012, 150), 0.05)
     a, b, m = band_fit(tu, u, tl, lo)
     # Variables (alpha, beta, m); maximise m:  alpha·tu + beta + m <= u,  -alpha·tl - beta + m <= -lo.
-    A = np.vstack([np.column_stack([tu, np.ones_like(tu), np.ones_like(tu)]),
-                   np.column_stack([-tl, -np.ones_like(tl), np.ones_like(tl)])])
-    r = linprog(c=[0, 0, -1], A_ub=A, b_ub=np.concatenate([u, -lo]), bounds=[(None, None)] * 3, method="highs")
+    A = np.vstack(
+        [
+            np.column_stack([tu, np.ones_like(tu), np.ones_like(tu)]),
+            np.column_stack([-tl, -np.ones_like(tl), np.ones_like(tl)]),
+        ]
+    )
+    r = linprog(
+        c=[0, 0, -1], A_ub=A, b_ub=np.concatenate([u, -lo]), bounds=[(None, None)] * 3, method="highs"
+    )
     assert r.status == 0
-    assert_allclose(m, r.x[2], atol=1e-9)      # same optimum value
-    assert_allclose(a, r.x[0], atol=1e-9)      # and the same line (unique here: active set is 3 points)
+    assert_allclose(m, r.x[2], atol=1e-9)  # same optimum value
+    assert_allclose(a, r.x[0], atol=1e-9)  # and the same line (unique here: active set is 3 points)
     assert_allclose(b, r.x[1], atol=1e-8)
 
 
 # -- the model on synthetic boards -----------------------------------------------------------------------
+
 
 @pytest.mark.parametrize("method", list(FitMethod))
 @pytest.mark.parametrize("skew_ppm", [-28.0, 0.0, 12.5, 85.0])
@@ -173,12 +196,14 @@ def test_thirty_minutes_of_heartbeats_reach_two_ppm_and_five_ms(method, skew_ppm
         errors.append((skew_err, off_err_ms))
     errors = np.array(errors)
     with capsys.disabled():
-        print(f"\n  {method.value:8s} skew {skew_ppm:+6.1f} ppm: max |skew err| {np.abs(errors[:, 0]).max():.3f} ppm, "
-              f"max |offset err| {np.abs(errors[:, 1]).max():.3f} ms over 6 seeds")
+        print(
+            f"\n  {method.value:8s} skew {skew_ppm:+6.1f} ppm: max |skew err| {np.abs(errors[:, 0]).max():.3f} ppm, "
+            f"max |offset err| {np.abs(errors[:, 1]).max():.3f} ms over 6 seeds"
+        )
     # The 2 ppm / 5 ms target holds for the default BAND fit; the MST envelope average reached 3.0 ppm
     # worst case over 200 seeds (module docstring), so it gets a looser bound.
-    assert_allclose(errors[:, 0], 0.0, atol=2.0 if method is FitMethod.BAND else 4.0)    # ppm
-    assert_allclose(errors[:, 1], 0.0, atol=5.0)    # ms
+    assert_allclose(errors[:, 0], 0.0, atol=2.0 if method is FitMethod.BAND else 4.0)  # ppm
+    assert_allclose(errors[:, 1], 0.0, atol=5.0)  # ms
 
 
 async def test_plus_85_ppm_board_on_derived_clock_reports_plus_85():
@@ -203,7 +228,7 @@ async def test_plus_85_ppm_board_on_derived_clock_reports_plus_85():
     assert_allclose(fit.skew_ppm, 85.0, atol=2.0)
     board_ms = np.array([b for b, _ in truth]) * 1000.0
     want = np.array([c for _, c in truth])
-    assert_allclose(model.to_collector_time(board_ms) - want, 0.0, atol=5e-3)   # seconds
+    assert_allclose(model.to_collector_time(board_ms) - want, 0.0, atol=5e-3)  # seconds
 
 
 def test_fit_before_skew_span_uses_min_delay_offset_and_zero_skew():
@@ -218,14 +243,14 @@ def test_fit_before_skew_span_uses_min_delay_offset_and_zero_skew():
     fit = model.fit()
     assert fit is not None and not fit.skew_estimated and fit.skew_ppm == 0.0
     assert fit.n_samples == 3
-    assert_allclose(fit.offset_s - BOOT_WALL, -0.002, atol=1e-6)   # the 8 ms exchange's θ
+    assert_allclose(fit.offset_s - BOOT_WALL, -0.002, atol=1e-6)  # the 8 ms exchange's θ
 
 
 def test_selection_keeps_lowest_delay_exchanges_per_window():
     """Per window only ``keep_per_window`` lowest-delay exchanges survive (bounded memory)."""
     model = ClockModel(ClockSettings(window_s=60.0, keep_per_window=2))
     rng = np.random.default_rng(3)
-    for i in range(60):                      # one exchange a second: 60 in one window
+    for i in range(60):  # one exchange a second: 60 in one window
         d = rng.uniform(0.001, 0.05)
         t1 = 1000.0 + i
         model.add(t1, BOOT_WALL + t1 + d / 2, BOOT_WALL + t1 + d / 2, t1 + d)
@@ -248,8 +273,8 @@ def test_step_of_two_seconds_detected_at_the_right_time_and_not_before():
     assert i_confirm == first_after + model.settings.step_confirm - 1
     assert all(r is None for r in results[:i_confirm])
     assert_allclose(step.at_board_s, (b1[first_after] + t4[first_after]) / 2, atol=1e-9)
-    assert step_at <= step.at_board_s <= step_at + 11.0          # within one heartbeat of the jump
-    assert_allclose(step.size_s, 2.0, atol=0.03)                 # seconds; θ error ≤ δ/2 ≤ 50 ms
+    assert step_at <= step.at_board_s <= step_at + 11.0  # within one heartbeat of the jump
+    assert_allclose(step.size_s, 2.0, atol=0.03)  # seconds; θ error ≤ δ/2 ≤ 50 ms
     assert_allclose(step.at_collector_s, t2[first_after])
     fit = model.fit()
     assert fit is not None and fit.steps == (step,)
@@ -258,7 +283,9 @@ def test_step_of_two_seconds_detected_at_the_right_time_and_not_before():
     before = np.array([800.0, 1300.0]) * 1000
     after = np.array([1500.0, 2200.0]) * 1000
     assert_allclose(model.to_collector_time(before) - (BOOT_WALL + before / 1000 / (1 + 20e-6)), 0, atol=5e-3)
-    assert_allclose(model.to_collector_time(after) - (BOOT_WALL + after / 1000 / (1 + 20e-6) + 2.0), 0, atol=5e-3)
+    assert_allclose(
+        model.to_collector_time(after) - (BOOT_WALL + after / 1000 / (1 + 20e-6) + 2.0), 0, atol=5e-3
+    )
 
 
 def test_steps_are_not_reported_while_only_partly_confirmed():
@@ -266,7 +293,7 @@ def test_steps_are_not_reported_while_only_partly_confirmed():
     b1, t2, t3, t4 = synth(12, 0.0, minutes=10, step_at_b=900.0, step_s=2.0)
     first_after = int(np.argmax(b1 >= 900.0))
     model = ClockModel()
-    feed(model, b1[:first_after + 2], t2[:first_after + 2], t3[:first_after + 2], t4[:first_after + 2])
+    feed(model, b1[: first_after + 2], t2[: first_after + 2], t3[: first_after + 2], t4[: first_after + 2])
     fit = model.fit()
     assert fit is not None and fit.steps == ()
     assert_allclose(fit.offset_s - true_offset(fit.ref_board_s, 0.0), 0.0, atol=5e-3)
@@ -287,13 +314,16 @@ def test_single_outlier_is_not_a_step():
     assert_allclose(fit.skew_ppm, -10.0, atol=2.0)
 
 
-@pytest.mark.parametrize(("args", "field"), [
-    ((math.nan, 1.0, 1.0, 2.0), "t1"),
-    ((1.0, "x", 1.0, 2.0), "t2"),
-    ((1.0, 1.0, math.inf, 2.0), "t3"),
-    ((5.0, 10.0, 10.0, 4.0), "t4"),
-    ((1.0, 10.0, 9.0, 2.0), "t3"),
-])
+@pytest.mark.parametrize(
+    ("args", "field"),
+    [
+        ((math.nan, 1.0, 1.0, 2.0), "t1"),
+        ((1.0, "x", 1.0, 2.0), "t2"),
+        ((1.0, 1.0, math.inf, 2.0), "t3"),
+        ((5.0, 10.0, 10.0, 4.0), "t4"),
+        ((1.0, 10.0, 9.0, 2.0), "t3"),
+    ],
+)
 def test_bad_exchange_names_the_field(args, field):
     with pytest.raises(ValueError, match=field):
         ClockModel().add(*args)

@@ -25,9 +25,13 @@ TAG_B = "ibeacon:4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10:7:2"
 def rows_of(entries) -> ReadingRows:
     """entries: (board, tag, t_collector, rssi_dd)."""
     b, g, t, r = zip(*entries, strict=True) if entries else ((), (), (), ())
-    return ReadingRows(board=np.array(b, dtype=object), tag=np.array(g, dtype=object),
-                       t_collector=np.array(t, dtype=np.float64), rssi_dd=np.array(r, dtype=np.int32),
-                       offset_dd=np.zeros(len(t), dtype=np.int32))
+    return ReadingRows(
+        board=np.array(b, dtype=object),
+        tag=np.array(g, dtype=object),
+        t_collector=np.array(t, dtype=np.float64),
+        rssi_dd=np.array(r, dtype=np.int32),
+        offset_dd=np.zeros(len(t), dtype=np.int32),
+    )
 
 
 SMALL = [
@@ -35,10 +39,10 @@ SMALL = [
     ("g0-a", TAG_A, T0 + 0.9, -640),
     ("g0-b", TAG_A, T0 + 1.5, -705),
     ("g0-a", TAG_B, T0 + 1.99, -812),
-    ("g0-a", TAG_B, T0 + 2.0, -820),     # exactly at a bin edge: belongs to the later bin
+    ("g0-a", TAG_B, T0 + 2.0, -820),  # exactly at a bin edge: belongs to the later bin
     ("g0-b", TAG_B, T0 + 2.5, -700),
-    ("g0-b", TAG_B, T0 + 3.0, -700),     # t_to is exclusive: dropped
-    ("g0-b", TAG_B, T0 - 0.01, -700),    # before t_from: dropped
+    ("g0-b", TAG_B, T0 + 3.0, -700),  # t_to is exclusive: dropped
+    ("g0-b", TAG_B, T0 - 0.01, -700),  # before t_from: dropped
 ]
 
 
@@ -48,8 +52,9 @@ def test_small_case_by_hand_max_and_mean():
     assert mx.tags == (TAG_A, TAG_B) and mx.boards == ("g0-a", "g0-b")
     assert_array_equal(mx.bin_starts, [T0, T0 + 1, T0 + 2])
     nan = math.nan
-    assert_array_equal(mx.rssi, [[[-60.0, nan], [nan, -70.5], [nan, nan]],
-                                 [[nan, nan], [-81.2, nan], [-82.0, -70.0]]])
+    assert_array_equal(
+        mx.rssi, [[[-60.0, nan], [nan, -70.5], [nan, nan]], [[nan, nan], [-81.2, nan], [-82.0, -70.0]]]
+    )
     assert_array_equal(mx.counts, [[[2, 0], [0, 1], [0, 0]], [[0, 0], [1, 0], [1, 1]]])
     mean = bin_readings(rows_of(SMALL), T0, T0 + 3.0, 1.0, agg=Aggregate.MEAN)
     assert_allclose(mean.rssi[0, 0, 0], -62.0)
@@ -60,8 +65,8 @@ def test_explicit_boards_and_tags_choose_order_and_filter():
     table = bin_readings(rows_of(SMALL), T0, T0 + 3.0, 1.5, boards=["g0-b", "u4-a"], tags=[TAG_B])
     assert table.boards == ("g0-b", "u4-a") and table.tags == (TAG_B,)
     assert table.rssi.shape == (1, 2, 2)
-    assert_array_equal(table.counts[0, :, 0], [0, 1])            # g0-b heard TAG_B at +2.5 only
-    assert np.all(np.isnan(table.rssi[0, :, 1]))                 # u4-a heard nothing
+    assert_array_equal(table.counts[0, :, 0], [0, 1])  # g0-b heard TAG_B at +2.5 only
+    assert np.all(np.isnan(table.rssi[0, :, 1]))  # u4-a heard nothing
     # Last bin is cut at t_to: 3 s in bins of 2 s gives 2 bins.
     assert bin_readings(rows_of(SMALL), T0, T0 + 3.0, 2.0).bin_starts.tolist() == [T0, T0 + 2]
 
@@ -76,16 +81,26 @@ def slow_reference(entries, t_from, t_to, bin_s, agg):
 
 
 @settings(max_examples=40, deadline=None)
-@given(seed=st.integers(0, 2**32 - 1), agg=st.sampled_from(["max", "mean"]),
-       bin_s=st.sampled_from([0.5, 1.0, 2.5, 10.0]))
+@given(
+    seed=st.integers(0, 2**32 - 1),
+    agg=st.sampled_from(["max", "mean"]),
+    bin_s=st.sampled_from([0.5, 1.0, 2.5, 10.0]),
+)
 def test_random_tables_match_slow_reference(seed, agg, bin_s):
     """Vectorised binning equals the pure-Python reference on random readings."""
     rng = np.random.default_rng(seed)
     n = int(rng.integers(0, 400))
     boards = [f"g{i}-a" for i in range(5)]
     tags = [f"lpx:{i:08x}" for i in range(7)]
-    entries = [(boards[rng.integers(5)], tags[rng.integers(7)], T0 + float(rng.uniform(-5, 65)),
-                int(rng.integers(-1000, -300))) for _ in range(n)]
+    entries = [
+        (
+            boards[rng.integers(5)],
+            tags[rng.integers(7)],
+            T0 + float(rng.uniform(-5, 65)),
+            int(rng.integers(-1000, -300)),
+        )
+        for _ in range(n)
+    ]
     table = bin_readings(rows_of(entries), T0, T0 + 60.0, bin_s, boards=boards, tags=tags, agg=agg)
     ref = slow_reference(entries, T0, T0 + 60.0, bin_s, agg)
     assert int(table.counts.sum()) == sum(c for _, c in ref.values())
@@ -100,7 +115,7 @@ def test_csv_round_trip(tmp_path):
     """The long CSV reads back with the csv module to the same cells, ordered by bin, tag, board."""
     table = bin_readings(rows_of(SMALL), T0, T0 + 3.0, 1.0, agg="mean")
     path = tmp_path / "export.csv"
-    assert write_csv(table, path) == 5          # heard cells: 2 for TAG_A, 3 for TAG_B
+    assert write_csv(table, path) == 5  # heard cells: 2 for TAG_A, 3 for TAG_B
     with path.open(newline="", encoding="utf-8") as f:
         rows = list(csv.DictReader(f))
     assert tuple(rows[0].keys()) == CSV_COLUMNS
@@ -121,13 +136,13 @@ def test_npz_round_trip_without_pickle(tmp_path):
     path = tmp_path / "export.npz"
     write_npz(table, path)
     with np.load(path, allow_pickle=False) as z:
-        assert_array_equal(z["rssi"], table.rssi)       # NaNs compare equal in assert_array_equal
+        assert_array_equal(z["rssi"], table.rssi)  # NaNs compare equal in assert_array_equal
         assert_array_equal(z["counts"], table.counts)
         assert z["tags"].tolist() == list(table.tags) and z["boards"].tolist() == list(table.boards)
         assert_array_equal(z["bin_starts"], table.bin_starts)
         meta = json.loads(str(z["metadata"]))
     assert meta["format"] == "listenpost-export" and meta["agg"] == "max" and meta["bin_s"] == 1.0
-    assert [p.name for p in tmp_path.iterdir()] == ["export.npz"]       # no temporary left behind
+    assert [p.name for p in tmp_path.iterdir()] == ["export.npz"]  # no temporary left behind
 
 
 def test_failed_write_keeps_the_previous_file(tmp_path):
@@ -143,7 +158,7 @@ def test_failed_write_keeps_the_previous_file(tmp_path):
         rssi = None  # indexing this fails during the write
 
     with pytest.raises(TypeError):
-        write_csv(Broken(), path)   # type: ignore[arg-type]
+        write_csv(Broken(), path)  # type: ignore[arg-type]
     assert path.read_text() == "previous\n"
     assert [p.name for p in tmp_path.iterdir()] == ["export.csv"]
 
@@ -153,14 +168,17 @@ def test_empty_rows_give_an_empty_table():
     assert table.rssi.shape == (0, 2, 0) and table.tags == () and table.boards == ()
 
 
-@pytest.mark.parametrize(("kwargs", "field"), [
-    ({"bin_s": 0.0}, "bin_s"),
-    ({"t_to": T0}, "t_to"),
-    ({"agg": "median"}, "agg"),
-    ({"boards": ["g0-a", "g0-a"]}, "boards"),
-    ({"max_cells": 5}, "max_cells"),
-    ({"t_from": math.nan}, "t_from"),
-])
+@pytest.mark.parametrize(
+    ("kwargs", "field"),
+    [
+        ({"bin_s": 0.0}, "bin_s"),
+        ({"t_to": T0}, "t_to"),
+        ({"agg": "median"}, "agg"),
+        ({"boards": ["g0-a", "g0-a"]}, "boards"),
+        ({"max_cells": 5}, "max_cells"),
+        ({"t_from": math.nan}, "t_from"),
+    ],
+)
 def test_bad_arguments_name_the_field(kwargs, field):
     args = {"t_from": T0, "t_to": T0 + 3.0, "bin_s": 1.0} | kwargs
     with pytest.raises(ValueError, match=field):
@@ -169,7 +187,12 @@ def test_bad_arguments_name_the_field(kwargs, field):
 
 def test_mismatched_columns_are_rejected():
     rows = rows_of(SMALL)
-    bad = ReadingRows(board=rows.board[:-1], tag=rows.tag, t_collector=rows.t_collector, rssi_dd=rows.rssi_dd,
-                      offset_dd=rows.offset_dd)
+    bad = ReadingRows(
+        board=rows.board[:-1],
+        tag=rows.tag,
+        t_collector=rows.t_collector,
+        rssi_dd=rows.rssi_dd,
+        offset_dd=rows.offset_dd,
+    )
     with pytest.raises(ValueError, match="rows.board"):
         bin_readings(bad, T0, T0 + 3.0, 1.0)

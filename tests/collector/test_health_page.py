@@ -18,8 +18,15 @@ from listenpost.core.clock import DerivedClock, VirtualClock
 from tests.collector.test_api import batch_body, enrolled, import_tags, make_client, readings
 
 CHROMIUM = "/usr/bin/chromium"
-CHROMIUM_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
-                 "--disable-component-update", "--disable-sync", "--no-first-run"]
+CHROMIUM_ARGS = [
+    "--headless",
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
+    "--no-first-run",
+]
 
 
 class VirtualBoard:
@@ -27,7 +34,9 @@ class VirtualBoard:
 
     def __init__(self, name: str, room: str, clock: VirtualClock, *, skew_ppm: float = 0.0) -> None:
         self.name, self.room = name, room
-        self.clock = DerivedClock(clock, skew_ppm=skew_ppm, boot_at=clock.monotonic() - 100.0, boot_id=f"boot-{name}")
+        self.clock = DerivedClock(
+            clock, skew_ppm=skew_ppm, boot_at=clock.monotonic() - 100.0, boot_id=f"boot-{name}"
+        )
         self.auth: dict[str, str] = {}
         self.prev: dict[str, float] | None = None
         self.seq = 0
@@ -42,8 +51,14 @@ class VirtualBoard:
     async def beat(self, client: TestClient, *, hear: int = 50) -> None:
         self.adverts += hear
         t1 = self.clock.monotonic()
-        body = {"board": self.name, "boot": self.clock.boot_id, "t1": t1, "clock": self.prev, "wall": self.clock.time(),
-                "stats": {"pipeline": {"adverts_total": self.adverts}, "spool": {"batches": self.spool}}}
+        body = {
+            "board": self.name,
+            "boot": self.clock.boot_id,
+            "t1": t1,
+            "clock": self.prev,
+            "wall": self.clock.time(),
+            "stats": {"pipeline": {"adverts_total": self.adverts}, "spool": {"batches": self.spool}},
+        }
         if self.tag_rate_hz is not None:
             body["stats"].update(tag_rate_hz_median=self.tag_rate_hz, tags_heard=5)
         r = await client.post("/v1/heartbeat", json=body, headers=self.auth)
@@ -60,7 +75,9 @@ class VirtualBoard:
         self.seq += 1
 
 
-async def build_fleet(aiohttp_client, tmp_path: Path, clock: VirtualClock) -> tuple[TestClient, dict[str, Any]]:
+async def build_fleet(
+    aiohttp_client, tmp_path: Path, clock: VirtualClock
+) -> tuple[TestClient, dict[str, Any]]:
     """
     Five boards, 36 rounds of 10 s with a monitor round each, ending in:
     g0-a live · u3-a silent (stopped at round 5) · g2-a deaf (radio hears nothing from round 8) ·
@@ -79,8 +96,11 @@ async def build_fleet(aiohttp_client, tmp_path: Path, clock: VirtualClock) -> tu
     boards["g0-a"].tag_rate_hz, boards["g2-a"].tag_rate_hz = 1.95, 0.35
     for b in boards.values():
         await b.enroll(client, tmp_path)
-    r = await client.post("/v1/admin/boards", json={"name": "u5-a", "room": "U5 Workshop", "floor": "upper"},
-                          headers={"Authorization": "Bearer " + (tmp_path / "admin-token").read_text().strip()})
+    r = await client.post(
+        "/v1/admin/boards",
+        json={"name": "u5-a", "room": "U5 Workshop", "floor": "upper"},
+        headers={"Authorization": "Bearer " + (tmp_path / "admin-token").read_text().strip()},
+    )
     assert r.status == 201
     monitor = client.app[MONITOR]
     for k in range(36):
@@ -106,15 +126,23 @@ async def test_fleet_states_in_status_json(fleet):
     client, _ = fleet
     doc = await (await client.get("/v1/status")).json()
     states = {r["name"]: r["state"] for r in doc["boards"]}
-    assert states == {"g0-a": "live", "u3-a": "silent", "g2-a": "deaf", "u2-a": "drifting", "g3-b": "backlogged",
-                      "u5-a": "unknown"}
+    assert states == {
+        "g0-a": "live",
+        "u3-a": "silent",
+        "g2-a": "deaf",
+        "u2-a": "drifting",
+        "g3-b": "backlogged",
+        "u5-a": "unknown",
+    }
     rows = {r["name"]: r for r in doc["boards"]}
     assert rows["u2-a"]["clock_skew_ppm"] == pytest.approx(85, abs=2)
     assert rows["g0-a"]["clock_skew_ppm"] == pytest.approx(0, abs=2)
     assert rows["g0-a"]["readings_total"] == 36 * 12
     assert rows["u3-a"]["last_contact_age_s"] == pytest.approx(320, abs=1)  # last beat at round 4 of 36
     # 12 readings per 10 s round, sampled by the monitor every round: 1.2 readings/s (hand computation).
-    assert rows["g0-a"]["readings_per_s"] == pytest.approx(1.2) and rows["u2-a"]["readings_per_s"] == pytest.approx(1.2)
+    assert rows["g0-a"]["readings_per_s"] == pytest.approx(1.2) and rows["u2-a"][
+        "readings_per_s"
+    ] == pytest.approx(1.2)
     assert rows["g2-a"]["readings_per_s"] == 0.0 and rows["u3-a"]["readings_per_s"] == 0.0
     assert (rows["g0-a"]["tag_rate_hz_median"], rows["g2-a"]["tag_rate_hz_median"]) == (1.95, 0.35)
     assert rows["u3-a"]["tag_rate_hz_median"] is None and rows["u5-a"]["readings_per_s"] is None
@@ -128,10 +156,12 @@ async def test_page_renders_without_javascript(fleet):
     html = await r.text()
     assert r.status == 200 and r.content_type == "text/html"
     assert 'data-board="g2-a" data-state="deaf"' in html
-    row = html[html.index('data-board="g0-a"'):]
-    row = row[:row.index("</tr>")]
+    row = html[html.index('data-board="g0-a"') :]
+    row = row[: row.index("</tr>")]
     assert '<td class="num rate">1.2/s</td>' in row and ">1.95 Hz</td>" in row
-    assert "http://" not in html.replace(str(client.make_url("/")), "") and "https://" not in html  # no external assets
+    assert (
+        "http://" not in html.replace(str(client.make_url("/")), "") and "https://" not in html
+    )  # no external assets
 
 
 def _browser_or_skip() -> None:
@@ -158,13 +188,19 @@ async def test_health_page_in_a_real_browser(aiohttp_client, tmp_path, clock):
             seen = {}
             for i in range(6):
                 row = rows.nth(i)
-                seen[await row.get_attribute("data-board")] = (await row.locator("td.st").inner_text()).strip()
+                seen[await row.get_attribute("data-board")] = (
+                    await row.locator("td.st").inner_text()
+                ).strip()
             assert seen["g0-a"].endswith("live") and seen["u3-a"].endswith("silent")
             assert seen["g2-a"].endswith("deaf") and seen["u2-a"].endswith("drifting")
             assert seen["g3-b"].endswith("backlogged") and seen["u5-a"].endswith("not yet seen")
             # Colour is not the only signal, but it is there: silent and live badges differ.
-            live_bg = await page.locator('tr[data-board="g0-a"] .state').evaluate("e => getComputedStyle(e).backgroundColor")
-            silent_bg = await page.locator('tr[data-board="u3-a"] .state').evaluate("e => getComputedStyle(e).backgroundColor")
+            live_bg = await page.locator('tr[data-board="g0-a"] .state').evaluate(
+                "e => getComputedStyle(e).backgroundColor"
+            )
+            silent_bg = await page.locator('tr[data-board="u3-a"] .state').evaluate(
+                "e => getComputedStyle(e).backgroundColor"
+            )
             assert live_bg != silent_bg
             cell = page.locator('tr[data-board="g0-a"] td.readings')
             before = await cell.inner_text()
@@ -173,7 +209,8 @@ async def test_health_page_in_a_real_browser(aiohttp_client, tmp_path, clock):
             await boards["g0-a"].send(client, n=30)
             await page.wait_for_function(
                 "() => document.querySelector('tr[data-board=\"g0-a\"] td.readings').textContent === '462'",
-                timeout=10_000)
+                timeout=10_000,
+            )
             assert await page.locator("#refresh-state").inner_text() == ""
             # The redrawn rows carry the rates too (the script's formatting, not the server's).
             assert await page.locator('tr[data-board="g0-a"] td.rate').inner_text() == "1.2/s"
@@ -188,10 +225,18 @@ async def test_health_page_in_a_real_browser(aiohttp_client, tmp_path, clock):
             await browser.close()
 
 
-@pytest.mark.parametrize(("seconds", "text"), [
-    (None, "–"), (0.04, "0.0 s"), (-0.3, "−0.3 s"), (59.94, "59.9 s"), (-250, "−4 min 10 s"),
-    (-11520, "−3 h 12 min"), (7260, "2 h 1 min"),
-])
+@pytest.mark.parametrize(
+    ("seconds", "text"),
+    [
+        (None, "–"),
+        (0.04, "0.0 s"),
+        (-0.3, "−0.3 s"),
+        (59.94, "59.9 s"),
+        (-250, "−4 min 10 s"),
+        (-11520, "−3 h 12 min"),
+        (7260, "2 h 1 min"),
+    ],
+)
 def test_wall_clock_error_reads_in_hours_and_minutes(seconds, text):
     """A board hours off (no network time) shows "−3 h 12 min", not "-11,520.0 s"."""
     from listenpost.collector.status import fmt_clock_error

@@ -36,12 +36,16 @@ def scipy_phi(delta, mu, sigma):
 
 # -- phi numerics ------------------------------------------------------------------------------------------
 
-@pytest.mark.parametrize(("delta", "expected", "tol"), [
-    (1.0, 0.301030, 1e-6),     # at the mean: −log10(0.5)
-    (1.3, 2.869699, 1e-6),
-    (2.0, 23.118053, 1e-5),    # the naive 1 − cdf form already loses digits here
-    (5.0, 349.437006, 1e-4),   # z = 40: the survival function (~1e-350) is below the double range
-])
+
+@pytest.mark.parametrize(
+    ("delta", "expected", "tol"),
+    [
+        (1.0, 0.301030, 1e-6),  # at the mean: −log10(0.5)
+        (1.3, 2.869699, 1e-6),
+        (2.0, 23.118053, 1e-5),  # the naive 1 − cdf form already loses digits here
+        (5.0, 349.437006, 1e-4),  # z = 40: the survival function (~1e-350) is below the double range
+    ],
+)
 def test_phi_matches_reference_values(delta, expected, tol):
     """φ(Δ, μ=1.0, σ=0.1) against docs/references.md §6 values computed with scipy.stats.norm.logsf."""
     # Hayashibara et al., SRDS 2004: φ(Δ) = −log10(1 − F(Δ)); values [RUN] in docs/references.md §6.
@@ -97,8 +101,17 @@ def test_contacts_close_together_count_once():
 
 # -- silent within a minute, no flapping: on virtual time ---------------------------------------------------
 
-async def run_board(clock: VirtualClock, contacts: list[float], rng: np.random.Generator, *, jitter_s: float,
-                    loss: float, stop_at: float, batches: bool = True) -> None:
+
+async def run_board(
+    clock: VirtualClock,
+    contacts: list[float],
+    rng: np.random.Generator,
+    *,
+    jitter_s: float,
+    loss: float,
+    stop_at: float,
+    batches: bool = True,
+) -> None:
     """A board that sends a heartbeat every 10 s (and a batch every 5 s), each delayed up to ``jitter_s``."""
 
     async def sender(period: float, phase: float) -> None:
@@ -120,8 +133,14 @@ async def run_board(clock: VirtualClock, contacts: list[float], rng: np.random.G
     await asyncio.gather(sender(10.0, 0.0), *([sender(5.0, 2.5)] if batches else []))
 
 
-async def watch(clock: VirtualClock, tracker: LivenessTracker, contacts: list[float], changes: list[StateChange],
-                period: float, phis: list[float] | None = None) -> None:
+async def watch(
+    clock: VirtualClock,
+    tracker: LivenessTracker,
+    contacts: list[float],
+    changes: list[StateChange],
+    period: float,
+    phis: list[float] | None = None,
+) -> None:
     """The collector's liveness task: evaluate every ``period`` seconds (contacts arrive in time order)."""
     while True:
         await clock.sleep(period)
@@ -153,13 +172,17 @@ async def test_dead_board_is_silent_within_60_s_of_last_contact(seed, capsys):
     silent = [c for c in changes if c.new is BoardState.SILENT]
     assert len(silent) == 1
     with capsys.disabled():
-        print(f"\n  seed {seed}: silent {silent[0].at - last:.1f} s after the last contact ({silent[0].reason})")
+        print(
+            f"\n  seed {seed}: silent {silent[0].at - last:.1f} s after the last contact ({silent[0].reason})"
+        )
     assert LivenessSettings().min_silent_s <= silent[0].at - last <= 60.0
     # Before the death: live all along (the only earlier change is the first evaluation).
     assert [c.new for c in changes if c.at <= last] == [BoardState.LIVE]
 
 
-@pytest.mark.parametrize(("batches", "loss"), [(True, 0.03), (False, 0.02)], ids=["batches", "heartbeats-only"])
+@pytest.mark.parametrize(
+    ("batches", "loss"), [(True, 0.03), (False, 0.02)], ids=["batches", "heartbeats-only"]
+)
 @pytest.mark.parametrize("seed", range(3))
 async def test_healthy_board_on_loaded_network_does_not_flap(seed, batches, loss, capsys):
     """Two hours of contacts delayed up to 5 s with some lost: the board stays live, no state changes."""
@@ -168,8 +191,9 @@ async def test_healthy_board_on_loaded_network_does_not_flap(seed, batches, loss
     contacts: list[float] = []
     changes: list[StateChange] = []
     tracker = LivenessTracker()
-    board = asyncio.create_task(run_board(clock, contacts, rng, jitter_s=5.0, loss=loss, stop_at=T0 + 1e9,
-                                          batches=batches))
+    board = asyncio.create_task(
+        run_board(clock, contacts, rng, jitter_s=5.0, loss=loss, stop_at=T0 + 1e9, batches=batches)
+    )
     phis: list[float] = []
     watcher = asyncio.create_task(watch(clock, tracker, contacts, changes, period=2.0, phis=phis))
     await clock.advance(7200.0)
@@ -178,12 +202,15 @@ async def test_healthy_board_on_loaded_network_does_not_flap(seed, batches, loss
     await asyncio.gather(board, watcher, return_exceptions=True)
     gaps = np.diff(sorted(contacts))
     with capsys.disabled():
-        print(f"\n  seed {seed}: {len(contacts)} contacts, longest gap {gaps.max():.1f} s, "
-              f"max phi {max(phis):.2f} (late at {LivenessSettings().late_phi})")
+        print(
+            f"\n  seed {seed}: {len(contacts)} contacts, longest gap {gaps.max():.1f} s, "
+            f"max phi {max(phis):.2f} (late at {LivenessSettings().late_phi})"
+        )
     assert [(c.old, c.new) for c in changes] == [(None, BoardState.LIVE)]
 
 
 # -- the other rules -------------------------------------------------------------------------------------
+
 
 def contacts_until(now: float, every: float = 10.0, n: int = 60) -> list[float]:
     return [now - every * k for k in range(n)][::-1]
@@ -192,13 +219,24 @@ def contacts_until(now: float, every: float = 10.0, n: int = 60) -> list[float]:
 def heartbeats(now: float, adverts: list[int], spool: list[int] | None = None, every: float = 10.0):
     n = len(adverts)
     spool = spool or [0] * n
-    return [HeartbeatSample(at=now - every * (n - 1 - i), adverts_seen=a, spool_batches=q)
-            for i, (a, q) in enumerate(zip(adverts, spool, strict=True))]
+    return [
+        HeartbeatSample(at=now - every * (n - 1 - i), adverts_seen=a, spool_batches=q)
+        for i, (a, q) in enumerate(zip(adverts, spool, strict=True))
+    ]
 
 
 def healthy_fit(**kw) -> ClockFit:
-    base = dict(offset_s=T0, ref_board_s=5000.0, skew_ppm=12.0, residual_ms=3.0, n_samples=60, span_s=1800.0,
-                skew_estimated=True, segment_start_board_s=100.0, steps=())
+    base = dict(
+        offset_s=T0,
+        ref_board_s=5000.0,
+        skew_ppm=12.0,
+        residual_ms=3.0,
+        n_samples=60,
+        span_s=1800.0,
+        skew_estimated=True,
+        segment_start_board_s=100.0,
+        steps=(),
+    )
     base.update(kw)
     return ClockFit(**base)
 
@@ -220,19 +258,29 @@ def test_deaf_when_counter_flat_while_others_hear_tags():
 def test_not_deaf_when_the_venue_is_quiet_or_window_not_covered():
     now = T0
     flat = heartbeats(now, [1300] * 17)
-    assert evaluate(BoardInputs("g2-a", contacts_until(now), flat, others_readings=0), now).state is BoardState.LIVE
-    short = heartbeats(now, [1300] * 4)    # 30 s of flat counter < deaf_window_s (40 s)
-    assert evaluate(BoardInputs("g2-a", contacts_until(now), short, others_readings=400), now).state is BoardState.LIVE
+    assert (
+        evaluate(BoardInputs("g2-a", contacts_until(now), flat, others_readings=0), now).state
+        is BoardState.LIVE
+    )
+    short = heartbeats(now, [1300] * 4)  # 30 s of flat counter < deaf_window_s (40 s)
+    assert (
+        evaluate(BoardInputs("g2-a", contacts_until(now), short, others_readings=400), now).state
+        is BoardState.LIVE
+    )
     # The agent restarted 20 s ago (counter went back to 0): the flat stretch is too short to judge.
     restarted = heartbeats(now, [100 * i for i in range(14)] + [0] * 3)
-    assert evaluate(BoardInputs("g2-a", contacts_until(now), restarted, others_readings=400), now).state \
+    assert (
+        evaluate(BoardInputs("g2-a", contacts_until(now), restarted, others_readings=400), now).state
         is BoardState.LIVE
+    )
 
 
 def test_drifting_on_skew_step_or_residual():
     now = T0
     c = contacts_until(now)
-    assert evaluate(BoardInputs("u2-a", c, clock=healthy_fit(skew_ppm=85.0)), now).state is BoardState.DRIFTING
+    assert (
+        evaluate(BoardInputs("u2-a", c, clock=healthy_fit(skew_ppm=85.0)), now).state is BoardState.DRIFTING
+    )
     assert evaluate(BoardInputs("u2-a", c, clock=healthy_fit(skew_ppm=-49.0)), now).state is BoardState.LIVE
     # A short fit is not trusted for skew yet.
     young = healthy_fit(skew_ppm=85.0, span_s=200.0)
@@ -243,8 +291,10 @@ def test_drifting_on_skew_step_or_residual():
     v = evaluate(BoardInputs("g1-a", c, clock=healthy_fit(steps=(step,))), now)
     assert v.state is BoardState.DRIFTING and "+2.000 s" in v.reason
     later = now + LivenessSettings().step_recent_s
-    assert evaluate(BoardInputs("g1-a", contacts_until(later), clock=healthy_fit(steps=(step,))), later).state \
+    assert (
+        evaluate(BoardInputs("g1-a", contacts_until(later), clock=healthy_fit(steps=(step,))), later).state
         is BoardState.LIVE
+    )
 
 
 def test_real_clock_model_of_a_plus_85_ppm_board_is_drifting():
@@ -278,7 +328,7 @@ def test_precedence_retired_silent_deaf_drifting_backlogged_late_live():
     now = T0
     hb = heartbeats(now - 20.0, [1300] * 30, [3 * i for i in range(30)])
     drift = healthy_fit(skew_ppm=120.0)
-    late_contacts = contacts_until(now - 26.0)            # 26 s overdue on 10 s contacts: late, not silent
+    late_contacts = contacts_until(now - 26.0)  # 26 s overdue on 10 s contacts: late, not silent
     dead_contacts = contacts_until(now - 50.0)
     full = BoardInputs("g0-a", dead_contacts, hb, drift, retired=True, others_readings=500)
     order = []
@@ -292,14 +342,21 @@ def test_precedence_retired_silent_deaf_drifting_backlogged_late_live():
         BoardInputs("g0-a", contacts_until(now), (), None),
     ]:
         order.append(evaluate(inputs, now).state)
-    assert order == [BoardState.RETIRED, BoardState.SILENT, BoardState.DEAF, BoardState.DRIFTING,
-                     BoardState.BACKLOGGED, BoardState.LATE, BoardState.LIVE]
+    assert order == [
+        BoardState.RETIRED,
+        BoardState.SILENT,
+        BoardState.DEAF,
+        BoardState.DRIFTING,
+        BoardState.BACKLOGGED,
+        BoardState.LATE,
+        BoardState.LIVE,
+    ]
 
 
 def test_tracker_reports_changes_only_and_can_be_seeded():
     tracker = LivenessTracker(initial={"g0-b": BoardState.LIVE})
     now = T0
-    assert tracker.update(BoardInputs("g0-b", contacts_until(now)), now) is None      # seeded: no news
+    assert tracker.update(BoardInputs("g0-b", contacts_until(now)), now) is None  # seeded: no news
     first = tracker.update(BoardInputs("g1-a", contacts_until(now)), now)
     assert first == StateChange("g1-a", None, BoardState.LIVE, now, first.reason)
     assert tracker.update(BoardInputs("g1-a", contacts_until(now)), now + 1) is None
@@ -312,13 +369,16 @@ def test_tracker_reports_changes_only_and_can_be_seeded():
     assert tracker.state("g1-a") is None
 
 
-@pytest.mark.parametrize(("kwargs", "field"), [
-    ({"silent_after_s": 0}, "silent_after_s"),
-    ({"late_phi": 9.0}, "late_phi"),
-    ({"min_silent_s": 100.0}, "min_silent_s"),
-    ({"phi_window": 0}, "phi_window"),
-    ({"backlog_rising_share": 1.5}, "backlog_rising_share"),
-])
+@pytest.mark.parametrize(
+    ("kwargs", "field"),
+    [
+        ({"silent_after_s": 0}, "silent_after_s"),
+        ({"late_phi": 9.0}, "late_phi"),
+        ({"min_silent_s": 100.0}, "min_silent_s"),
+        ({"phi_window": 0}, "phi_window"),
+        ({"backlog_rising_share": 1.5}, "backlog_rising_share"),
+    ],
+)
 def test_settings_validation_names_the_field(kwargs, field):
     with pytest.raises(ValueError, match=field):
         LivenessSettings(**kwargs)

@@ -25,8 +25,16 @@ async def test_metrics_parse_and_match_the_fleet(aiohttp_client, tmp_path, clock
     batches = {s.labels["status"]: s.value for s in families["listenpost_batches"].samples}
     assert batches["stored"] == 72 and batches["duplicate"] == 0 and batches["conflict"] == 0
     by_state = {s.labels["state"]: s.value for s in families["listenpost_boards"].samples}
-    assert (by_state["live"], by_state["silent"], by_state["deaf"], by_state["drifting"], by_state["backlogged"]) == (1, 1, 1, 1, 1)
-    one_hot = {(s.labels["board"], s.labels["state"]): s.value for s in families["listenpost_board_state"].samples}
+    assert (
+        by_state["live"],
+        by_state["silent"],
+        by_state["deaf"],
+        by_state["drifting"],
+        by_state["backlogged"],
+    ) == (1, 1, 1, 1, 1)
+    one_hot = {
+        (s.labels["board"], s.labels["state"]): s.value for s in families["listenpost_board_state"].samples
+    }
     assert one_hot[("u3-a", "silent")] == 1 and one_hot[("u3-a", "live")] == 0
     skew = {s.labels["board"]: s.value for s in families["listenpost_clock_skew_ppm"].samples}
     assert skew["u2-a"] == pytest.approx(85, abs=2) and skew["g3-b"] == pytest.approx(-20, abs=2)

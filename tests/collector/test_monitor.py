@@ -40,6 +40,7 @@ async def until(cond: Callable[[], bool], what: str, seconds: float = 5.0) -> No
 
 # ------------------------------------------------------------------ webhook
 
+
 class Receiver:
     """A webhook receiver that answers successive attempts by ``plan`` (then 200), on a real server."""
 
@@ -89,9 +90,15 @@ async def receiver_factory(aiohttp_server, clock):
         rec.release.set()
 
 
-async def hooked_collector(aiohttp_client, tmp_path: Path, clock: VirtualClock, url: str, **webhook: Any) -> TestClient:
-    client = await make_client(aiohttp_client, tmp_path, clock,
-                               webhook={"url": url, "timeout_seconds": 3, "backoff_seconds": 1, **webhook})
+async def hooked_collector(
+    aiohttp_client, tmp_path: Path, clock: VirtualClock, url: str, **webhook: Any
+) -> TestClient:
+    client = await make_client(
+        aiohttp_client,
+        tmp_path,
+        clock,
+        webhook={"url": url, "timeout_seconds": 3, "backoff_seconds": 1, **webhook},
+    )
     client.app[MONITOR].start_webhook()
     return client
 
@@ -100,7 +107,9 @@ def count(logs: list[dict[str, Any]], event: str) -> int:
     return sum(1 for e in logs if e["event"] == event)
 
 
-async def test_webhook_retries_500_stall_and_reset_then_delivers_once(aiohttp_client, receiver_factory, tmp_path, clock):
+async def test_webhook_retries_500_stall_and_reset_then_delivers_once(
+    aiohttp_client, receiver_factory, tmp_path, clock
+):
     """Backoff 1, 2, 4 s on the injected clock; the stalled attempt ends at the 3 s timeout; one delivery."""
     rec, url = await receiver_factory(["500", "stall", "reset"])
     client = await hooked_collector(aiohttp_client, tmp_path, clock, url, attempts=5)
@@ -109,22 +118,29 @@ async def test_webhook_retries_500_stall_and_reset_then_delivers_once(aiohttp_cl
     with capture_logs() as logs:
         t0 = clock.time()
         report = await monitor.run_once()
-        assert [(e.board, e.detail["new"]) for e in report.changes] == [("g0-a", "silent")]  # enrolled, never heard
+        assert [(e.board, e.detail["new"]) for e in report.changes] == [
+            ("g0-a", "silent")
+        ]  # enrolled, never heard
         await until(lambda: count(logs, "webhook_retry") == 1, "the 500 to be retried")
-        await clock.advance(1)                      # backoff 1 s → attempt 2 stalls
+        await clock.advance(1)  # backoff 1 s → attempt 2 stalls
         await until(lambda: len(rec.arrivals) == 2, "the second attempt")
         # The stall holds up nothing else: another round runs and stores its events meanwhile.
         await asyncio.wait_for(monitor.run_once(), 5)
-        await clock.advance(3)                      # the per-attempt timeout passes on the clock
+        await clock.advance(3)  # the per-attempt timeout passes on the clock
         await until(lambda: count(logs, "webhook_retry") == 2, "the timed-out attempt to be retried")
-        await clock.advance(2)                      # backoff 2 s → attempt 3 is reset
+        await clock.advance(2)  # backoff 2 s → attempt 3 is reset
         await until(lambda: count(logs, "webhook_retry") == 3, "the reset attempt to be retried")
-        await clock.advance(4)                      # backoff 4 s → attempt 4 is accepted
+        await clock.advance(4)  # backoff 4 s → attempt 4 is accepted
         await until(lambda: monitor.webhook_sent == 1, "the delivery")
     assert [round(t - t0, 6) for t, _, _ in rec.arrivals] == [0, 1, 1 + 3 + 2, 1 + 3 + 2 + 4]
     event = report.changes[0]
-    expected = {"id": event.id, "at": event.at, "board": "g0-a", "kind": "state_changed",
-                "detail": {"old": None, "new": "silent", "reason": "no contact yet"}}
+    expected = {
+        "id": event.id,
+        "at": event.at,
+        "board": "g0-a",
+        "kind": "state_changed",
+        "detail": {"old": None, "new": "silent", "reason": "no contact yet"},
+    }
     assert rec.accepted == [expected]
     assert {key for _, _, key in rec.arrivals} == {f"listenpost-event-{event.id}"}
     retries = [e for e in logs if e["event"] == "webhook_retry"]
@@ -134,7 +150,9 @@ async def test_webhook_retries_500_stall_and_reset_then_delivers_once(aiohttp_cl
     assert monitor.webhook_failed == 0 and count(logs, "webhook_failed") == 0
 
 
-async def test_webhook_gives_up_after_the_bound_and_logs_it(aiohttp_client, receiver_factory, tmp_path, clock):
+async def test_webhook_gives_up_after_the_bound_and_logs_it(
+    aiohttp_client, receiver_factory, tmp_path, clock
+):
     """A receiver that never accepts gets exactly ``attempts`` POSTs; the event stays in the store."""
     rec, url = await receiver_factory(["500"] * 10)
     client = await hooked_collector(aiohttp_client, tmp_path, clock, url, attempts=3)
@@ -155,7 +173,9 @@ async def test_webhook_gives_up_after_the_bound_and_logs_it(aiohttp_client, rece
     assert [e.kind for e in await client.app[STORE].events()] == ["state_changed"]
 
 
-async def test_webhook_4xx_is_not_retried_and_the_next_event_still_goes(aiohttp_client, receiver_factory, tmp_path, clock):
+async def test_webhook_4xx_is_not_retried_and_the_next_event_still_goes(
+    aiohttp_client, receiver_factory, tmp_path, clock
+):
     """400 means the receiver will never take this body: give it up at once and go on with the next."""
     rec, url = await receiver_factory(["400"])
     client = await hooked_collector(aiohttp_client, tmp_path, clock, url, attempts=4)
@@ -171,13 +191,17 @@ async def test_webhook_4xx_is_not_retried_and_the_next_event_still_goes(aiohttp_
 
 # ------------------------------------------------------------------ loss events
 
+
 async def _send(client: TestClient, auth: dict[str, str], board: str, seq: int, **kw: Any) -> None:
-    r = await client.post("/v1/batches", json=batch_body(board, seq, readings(0 if kw.get("gap") else 4), **kw),
-                          headers=auth)
+    r = await client.post(
+        "/v1/batches", json=batch_body(board, seq, readings(0 if kw.get("gap") else 4), **kw), headers=auth
+    )
     assert r.status == 200, await r.text()
 
 
-async def test_seq_holes_become_loss_events_once_and_show_in_cli_and_page(aiohttp_client, tmp_path, clock, capsys):
+async def test_seq_holes_become_loss_events_once_and_show_in_cli_and_page(
+    aiohttp_client, tmp_path, clock, capsys
+):
     """A hole not covered by a gap record or a dead letter is a loss after the grace period, once."""
     from listenpost.collector.monitor import LOSS_GRACE_SECONDS
 
@@ -188,8 +212,12 @@ async def test_seq_holes_become_loss_events_once_and_show_in_cli_and_page(aiohtt
     # 9 a dead letter reported the same way; 10 stored; 11 missing; 12 stored.
     for seq in (0, 1, 5, 10, 12):
         await _send(client, auth, "g2-a", seq)
-    await _send(client, auth, "g2-a", 6, gap={"first_seq": 7, "last_seq": 8, "readings": 90, "reason": "spool_full"})
-    await _send(client, auth, "g2-a", 13, gap={"first_seq": 9, "last_seq": 9, "readings": 4, "reason": "dead_letter"})
+    await _send(
+        client, auth, "g2-a", 6, gap={"first_seq": 7, "last_seq": 8, "readings": 90, "reason": "spool_full"}
+    )
+    await _send(
+        client, auth, "g2-a", 13, gap={"first_seq": 9, "last_seq": 9, "readings": 4, "reason": "dead_letter"}
+    )
     monitor = client.app[MONITOR]
     first = await monitor.run_once()
     assert first.losses == []  # inside the grace period: a batch may be just arriving
@@ -198,7 +226,8 @@ async def test_seq_holes_become_loss_events_once_and_show_in_cli_and_page(aiohtt
     await clock.advance(LOSS_GRACE_SECONDS / 2)
     second = await monitor.run_once()
     assert [(e.board, e.detail) for e in second.losses] == [
-        ("g2-a", {"epoch": "00112233aabbccdd", "first_seq": 2, "last_seq": 4, "batches": 3})]
+        ("g2-a", {"epoch": "00112233aabbccdd", "first_seq": 2, "last_seq": 4, "batches": 3})
+    ]
     for _ in range(3):
         await clock.advance(10)
         assert (await monitor.run_once()).losses == []  # once per hole, not every round
@@ -219,7 +248,9 @@ async def test_seq_holes_become_loss_events_once_and_show_in_cli_and_page(aiohtt
     args = ["collector", "events", "--json", "--collector", url, "--state-dir", str(tmp_path)]
     assert await asyncio.to_thread(main, args) == 0
     listed = [e for e in json.loads(capsys.readouterr().out)["events"] if e["kind"] == "loss"]
-    assert [(e["board"], e["detail"]["first_seq"], e["detail"]["last_seq"]) for e in listed] == [("g2-a", 2, 4)]
+    assert [(e["board"], e["detail"]["first_seq"], e["detail"]["last_seq"]) for e in listed] == [
+        ("g2-a", 2, 4)
+    ]
     assert await asyncio.to_thread(main, args[:2] + args[3:]) == 0
     assert any(" loss " in ln and "g2-a" in ln for ln in capsys.readouterr().out.splitlines())
     # ... and so does the health page, with the seqs.
@@ -228,6 +259,7 @@ async def test_seq_holes_become_loss_events_once_and_show_in_cli_and_page(aiohtt
 
 
 # ------------------------------------------------------------------ retention
+
 
 async def _old_and_new(client: TestClient, tmp_path: Path, clock: VirtualClock, old: int, new: int) -> None:
     """``old`` readings stamped 100 days ago and ``new`` ones from now, in batches of 50."""
@@ -269,8 +301,9 @@ async def test_retention_runs_in_bounded_chunks_across_rounds(any_store, aiohttp
     """1000 old readings, 150 per chunk, 2 chunks per round: 300, 300, 300, 100 — and the new ones stay."""
     from listenpost.collector.monitor import RETENTION_CHUNKS_PER_ROUND
 
-    client = await make_client(aiohttp_client, tmp_path, clock, store=any_store,
-                               retention={"days": 90, "chunk": 150})
+    client = await make_client(
+        aiohttp_client, tmp_path, clock, store=any_store, retention={"days": 90, "chunk": 150}
+    )
     await _old_and_new(client, tmp_path, clock, old=1000, new=200)
     assert await _stored(client) == 1200
     monitor = client.app[MONITOR]
@@ -295,5 +328,9 @@ async def test_retention_only_by_the_lock_holder(aiohttp_client, tmp_path, clock
         report = await monitor.run_once()
         assert not report.held_lock and report.deleted == 0
     assert await _stored(client) == 350
-    assert [(await monitor.run_once()).deleted for _ in range(3)] == [200, 100, 0]  # 2 chunks of 100 per round
+    assert [(await monitor.run_once()).deleted for _ in range(3)] == [
+        200,
+        100,
+        0,
+    ]  # 2 chunks of 100 per round
     assert await _stored(client) == 50

@@ -36,11 +36,21 @@ async def filled_spool(path: Path, clock: VirtualClock, batches: int, per_batch:
     return spool
 
 
-def uplink_for(client: TestClient, auth: dict[str, str], board: str, clock: VirtualClock, spool: Spool,
-               seed: int) -> Uplink:
-    return Uplink(base_url=str(client.make_url("")), token=auth["Authorization"].removeprefix("Bearer "),
-                  board=board, clock=clock, spool=spool, session=client.session, timeout_s=5.0,
-                  backoff_initial_s=0.5, backoff_max_s=8.0, rng=random.Random(seed))
+def uplink_for(
+    client: TestClient, auth: dict[str, str], board: str, clock: VirtualClock, spool: Spool, seed: int
+) -> Uplink:
+    return Uplink(
+        base_url=str(client.make_url("")),
+        token=auth["Authorization"].removeprefix("Bearer "),
+        board=board,
+        clock=clock,
+        spool=spool,
+        session=client.session,
+        timeout_s=5.0,
+        backoff_initial_s=0.5,
+        backoff_max_s=8.0,
+        rng=random.Random(seed),
+    )
 
 
 class SlowPost:
@@ -53,8 +63,10 @@ class SlowPost:
     async def start(self) -> None:
         host, port = self.client.server.host, self.client.server.port
         self.reader, self.writer = await asyncio.open_connection(host, port)
-        head = (f"POST /v1/batches HTTP/1.1\r\nHost: {host}:{port}\r\nAuthorization: {self.auth['Authorization']}\r\n"
-                f"Content-Type: application/json\r\nContent-Length: {len(self.data)}\r\nConnection: close\r\n\r\n")
+        head = (
+            f"POST /v1/batches HTTP/1.1\r\nHost: {host}:{port}\r\nAuthorization: {self.auth['Authorization']}\r\n"
+            f"Content-Type: application/json\r\nContent-Length: {len(self.data)}\r\nConnection: close\r\n\r\n"
+        )
         self.writer.write(head.encode() + self.data[:10])
         await self.writer.drain()
 
@@ -67,9 +79,12 @@ class SlowPost:
         return int(answer.split(b" ", 2)[1])
 
 
-async def test_busy_collector_answers_429_and_the_uplink_backs_off_then_stores_once(aiohttp_client, tmp_path, clock):
-    client = await make_client(aiohttp_client, tmp_path, clock, limits={"max_inflight_batches": 1,
-                                                                        "busy_retry_after_seconds": 7})
+async def test_busy_collector_answers_429_and_the_uplink_backs_off_then_stores_once(
+    aiohttp_client, tmp_path, clock
+):
+    client = await make_client(
+        aiohttp_client, tmp_path, clock, limits={"max_inflight_batches": 1, "busy_retry_after_seconds": 7}
+    )
     await import_tags(client, tmp_path)
     slow_auth = await enrolled(client, tmp_path, "g0-a")
     auth = await enrolled(client, tmp_path, "g1-a", "G1 Light and Colour")
@@ -84,7 +99,11 @@ async def test_busy_collector_answers_429_and_the_uplink_backs_off_then_stores_o
     try:
         await asyncio.wait_for(uplink.wait_parked(), 5)
         # Refused before its body was read, told to come back in 7 s; it waits at least that long.
-        assert (uplink.state, uplink.counters.last_status, uplink.counters.acked) == (UplinkState.BACKOFF, 429, 0)
+        assert (uplink.state, uplink.counters.last_status, uplink.counters.acked) == (
+            UplinkState.BACKOFF,
+            429,
+            0,
+        )
         assert uplink.parked_until - clock.monotonic() >= 7.0
         assert runtime.counters.overloaded == 1 and runtime.batches_inflight == 1
         r = await client.get("/metrics")
@@ -109,8 +128,9 @@ async def test_busy_collector_answers_429_and_the_uplink_backs_off_then_stores_o
 
 async def test_a_fleet_burst_is_stored_once_through_429s(aiohttp_client, tmp_path, clock):
     """Eight boards drain their spools at once against two slots: all stored once, every 429 retried."""
-    client = await make_client(aiohttp_client, tmp_path, clock, limits={"max_inflight_batches": 2,
-                                                                        "busy_retry_after_seconds": 1})
+    client = await make_client(
+        aiohttp_client, tmp_path, clock, limits={"max_inflight_batches": 2, "busy_retry_after_seconds": 1}
+    )
     await import_tags(client, tmp_path)
     uplinks, spools = [], []
     for k in range(8):

@@ -24,8 +24,15 @@ def _cloud_init() -> None:
 
 def _bundle(tmp_path: Path) -> Path:
     out = tmp_path / "card"
-    write_bundle(out, board="u4-b", room="U4 Changing Hall", floor="upper", code="7KQ2-M9XD-4TPA-WZ3R",
-                 collector_url="http://10.20.0.2:8470/", expires_at=1_800_259_200.0)
+    write_bundle(
+        out,
+        board="u4-b",
+        room="U4 Changing Hall",
+        floor="upper",
+        code="7KQ2-M9XD-4TPA-WZ3R",
+        collector_url="http://10.20.0.2:8470/",
+        expires_at=1_800_259_200.0,
+    )
     return out
 
 
@@ -63,7 +70,14 @@ def test_bundle_contents(tmp_path):
     assert doc["hostname"] == "u4-b"
     enroll = next(c for c in doc["runcmd"] if "enroll" in c)
     i = enroll.index("agent")
-    assert enroll[i:i + 6] == ["agent", "enroll", "--collector", "http://10.20.0.2:8470", "--code", "7KQ2-M9XD-4TPA-WZ3R"]
+    assert enroll[i : i + 6] == [
+        "agent",
+        "enroll",
+        "--collector",
+        "http://10.20.0.2:8470",
+        "--code",
+        "7KQ2-M9XD-4TPA-WZ3R",
+    ]
     assert doc["runcmd"][-1] == ["systemctl", "enable", "--now", "listenpost-agent.service"]
     unit = doc["write_files"][0]["content"]
     assert "ExecStart=/opt/listenpost/bin/listenpost agent run" in unit
@@ -74,8 +88,12 @@ def test_bundle_contents(tmp_path):
 
 
 def test_two_bundles_for_one_board_get_distinct_instance_ids():
-    a = build_bundle(board="g0-a", room="G0 Foyer", floor=None, code="A", collector_url="http://c:8470", expires_at=0)
-    b = build_bundle(board="g0-a", room="G0 Foyer", floor=None, code="B", collector_url="http://c:8470", expires_at=0)
+    a = build_bundle(
+        board="g0-a", room="G0 Foyer", floor=None, code="A", collector_url="http://c:8470", expires_at=0
+    )
+    b = build_bundle(
+        board="g0-a", room="G0 Foyer", floor=None, code="B", collector_url="http://c:8470", expires_at=0
+    )
     # A re-flashed card must look new to cloud-init, or it skips the first-boot modules.
     assert yaml.safe_load(a["meta-data"])["instance-id"] != yaml.safe_load(b["meta-data"])["instance-id"]
 
@@ -85,14 +103,25 @@ def test_package_spec_reaches_pip_and_the_user_data_stays_valid(tmp_path):
     """--package goes to pip as one argument; the bundle says which and when the code expires, in UTC."""
     out = tmp_path / "card"
     wheel = "https://files.brackenford.example/listenpost-0.1.0-py3-none-any.whl"
-    write_bundle(out, board="g0-a", room="G0 Foyer", floor=None, code="7KQ2-M9XD-4TPA-WZ3R",
-                 collector_url="http://10.20.0.2:8470", expires_at=1_800_259_200.0, package=wheel)
+    write_bundle(
+        out,
+        board="g0-a",
+        room="G0 Foyer",
+        floor=None,
+        code="7KQ2-M9XD-4TPA-WZ3R",
+        collector_url="http://10.20.0.2:8470",
+        expires_at=1_800_259_200.0,
+        package=wheel,
+    )
     doc = yaml.safe_load((out / "user-data").read_text())
     assert ["/opt/listenpost/bin/pip", "install", "--upgrade", wheel] in doc["runcmd"]
     # 1 800 259 200 s after the Unix epoch = 20 836 days + 8 h = 2027-01-18 08:00 UTC (checked with GNU
     # `date -u -d @1800259200`, independent of the code under test).
     assert "expires 2027-01-18 08:00 UTC" in (out / "user-data").read_text()
-    assert wheel in (out / "README.txt").read_text() and "2027-01-18 08:00 UTC" in (out / "README.txt").read_text()
+    assert (
+        wheel in (out / "README.txt").read_text()
+        and "2027-01-18 08:00 UTC" in (out / "README.txt").read_text()
+    )
     assert _schema(out / "user-data").returncode == 0
 
 

@@ -17,7 +17,9 @@ from tests.collector.conftest import StoreFactory
 from tests.collector.test_api import admin_headers, batch_body, readings, settings_for
 
 
-async def _pair(aiohttp_client, pg_factory: StoreFactory, tmp_path: Path, clock: VirtualClock, *, monitors: bool):
+async def _pair(
+    aiohttp_client, pg_factory: StoreFactory, tmp_path: Path, clock: VirtualClock, *, monitors: bool
+):
     clients = []
     for name in ("a", "b"):
         store = await pg_factory.open()
@@ -27,16 +29,23 @@ async def _pair(aiohttp_client, pg_factory: StoreFactory, tmp_path: Path, clock:
 
 
 # pg_factory comes first so the apps (and their monitors) stop before the factory closes the stores.
-async def test_a_batch_posted_to_both_collectors_at_once_is_stored_once(pg_factory, aiohttp_client, tmp_path, clock):
+async def test_a_batch_posted_to_both_collectors_at_once_is_stored_once(
+    pg_factory, aiohttp_client, tmp_path, clock
+):
     a, b = await _pair(aiohttp_client, pg_factory, tmp_path, clock, monitors=False)
-    r = await a.post("/v1/admin/boards", json={"name": "g3-a", "room": "G3 Weather Hall"}, headers=admin_headers(tmp_path / "a"))
+    r = await a.post(
+        "/v1/admin/boards",
+        json={"name": "g3-a", "room": "G3 Weather Hall"},
+        headers=admin_headers(tmp_path / "a"),
+    )
     code = (await r.json())["code"]
     r = await b.post("/v1/enroll", json={"code": code, "fingerprint": {}})  # enrolled through the other one
     auth = {"Authorization": "Bearer " + (await r.json())["token"]}
     for seq in range(20):
         body = batch_body("g3-a", seq, readings(50, t0_s=10.0 * seq))
-        ra, rb = await asyncio.gather(a.post("/v1/batches", json=body, headers=auth),
-                                      b.post("/v1/batches", json=body, headers=auth))
+        ra, rb = await asyncio.gather(
+            a.post("/v1/batches", json=body, headers=auth), b.post("/v1/batches", json=body, headers=auth)
+        )
         assert (ra.status, rb.status) == (200, 200)
         outcomes = sorted([(await ra.json())["status"], (await rb.json())["status"]])
         assert outcomes == ["duplicate", "stored"], outcomes
@@ -46,10 +55,14 @@ async def test_a_batch_posted_to_both_collectors_at_once_is_stored_once(pg_facto
     assert len(rows.tag) == 1000
 
 
-async def test_one_collector_leads_the_monitor_and_the_other_takes_over(pg_factory, aiohttp_client, tmp_path, clock):
+async def test_one_collector_leads_the_monitor_and_the_other_takes_over(
+    pg_factory, aiohttp_client, tmp_path, clock
+):
     a, b = await _pair(aiohttp_client, pg_factory, tmp_path, clock, monitors=True)
     for name in ("g0-a", "u0-a"):
-        r = await a.post("/v1/admin/boards", json={"name": name, "room": "G0 Foyer"}, headers=admin_headers(tmp_path / "a"))
+        r = await a.post(
+            "/v1/admin/boards", json={"name": name, "room": "G0 Foyer"}, headers=admin_headers(tmp_path / "a")
+        )
         r = await a.post("/v1/enroll", json={"code": (await r.json())["code"], "fingerprint": {}})
         assert r.status == 200
     ma, mb = a.app[MONITOR], b.app[MONITOR]

@@ -51,8 +51,22 @@ async def _serve(tmp_path: Path, name: str, db: str) -> tuple[asyncio.subprocess
     config.write_text(yaml.safe_dump({"listen": {"host": "127.0.0.1", "port": port}}))
     with (tmp_path / f"{name}.log").open("wb") as log:  # the child keeps its own copy of the descriptor
         proc = await asyncio.create_subprocess_exec(
-            sys.executable, "-m", "listenpost", "collector", "serve", "--state-dir", str(tmp_path / name),
-            "--db", db, "--config", str(config), "--log-format", "json", stdout=log, stderr=asyncio.subprocess.STDOUT)
+            sys.executable,
+            "-m",
+            "listenpost",
+            "collector",
+            "serve",
+            "--state-dir",
+            str(tmp_path / name),
+            "--db",
+            db,
+            "--config",
+            str(config),
+            "--log-format",
+            "json",
+            stdout=log,
+            stderr=asyncio.subprocess.STDOUT,
+        )
     return proc, f"http://127.0.0.1:{port}"
 
 
@@ -72,7 +86,9 @@ async def _wait_listening(session: aiohttp.ClientSession, proc, url: str, log: P
         await asyncio.sleep(0.05)
 
 
-async def test_two_collector_processes_store_a_batch_posted_to_both_once(tmp_path: Path, fresh_database: str) -> None:
+async def test_two_collector_processes_store_a_batch_posted_to_both_once(
+    tmp_path: Path, fresh_database: str
+) -> None:
     """Both processes get the same batch at once: exactly one `stored`, one `duplicate`, n readings in the database."""
     procs = [await _serve(tmp_path, name, fresh_database) for name in ("a", "b")]
     try:
@@ -84,15 +100,23 @@ async def test_two_collector_processes_store_a_batch_posted_to_both_once(tmp_pat
             admin_b = {"Authorization": "Bearer " + (tmp_path / "b" / ADMIN_TOKEN_FILE).read_text().strip()}
             async with session.post(url_a + "/v1/admin/tags", json={"ids": TAGS}, headers=admin_a) as r:
                 assert r.status == 200, await r.text()
-            async with session.post(url_a + "/v1/admin/boards", headers=admin_a,
-                                    json={"name": "g3-a", "room": "G3 Weather Hall", "floor": "ground"}) as r:
+            async with session.post(
+                url_a + "/v1/admin/boards",
+                headers=admin_a,
+                json={"name": "g3-a", "room": "G3 Weather Hall", "floor": "ground"},
+            ) as r:
                 assert r.status == 201, await r.text()
                 code = (await r.json())["code"]
             # enrolled through the other process: the board and its code live in the shared database
-            async with session.post(url_b + "/v1/enroll", json={"code": code, "fingerprint": {"machine_id": "g3-a"}}) as r:
+            async with session.post(
+                url_b + "/v1/enroll", json={"code": code, "fingerprint": {"machine_id": "g3-a"}}
+            ) as r:
                 assert r.status == 200, await r.text()
-                board = {"Authorization": "Bearer " + (await r.json())["token"], "Content-Encoding": "gzip",
-                         "Content-Type": "application/json"}
+                board = {
+                    "Authorization": "Bearer " + (await r.json())["token"],
+                    "Content-Encoding": "gzip",
+                    "Content-Type": "application/json",
+                }
 
             async def post(url: str, body: bytes) -> str:
                 async with session.post(url + "/v1/batches", data=body, headers=board) as r:
@@ -100,7 +124,9 @@ async def test_two_collector_processes_store_a_batch_posted_to_both_once(tmp_pat
                     return (await r.json())["status"]
 
             for seq in range(5):  # several rounds, so both orders of arrival get their chance
-                body = gzip.compress(json.dumps(batch_body("g3-a", seq, readings(300, t0_s=50 + 100 * seq))).encode())
+                body = gzip.compress(
+                    json.dumps(batch_body("g3-a", seq, readings(300, t0_s=50 + 100 * seq))).encode()
+                )
                 answers = sorted(await asyncio.gather(post(url_a, body), post(url_b, body)))
                 assert answers == ["duplicate", "stored"], answers
 

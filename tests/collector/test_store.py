@@ -31,37 +31,80 @@ from listenpost.core import wire
 from tests.collector.conftest import PG_URL, StoreFactory, require_pg
 
 # Demo venue (docs/demo-venue.md): Brackenford Science Centre.
-TAGS = ["ibeacon:4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10:7:42", "eddystone:8b0ca750e7a74e14bd99:00000000001e",
-        "lpx:00000007", "mac:C4:7A:10:00:2B:91"]
+TAGS = [
+    "ibeacon:4d2a0c1e-7f3b-4c55-9e61-2b8f0a7d3c10:7:42",
+    "eddystone:8b0ca750e7a74e14bd99:00000000001e",
+    "lpx:00000007",
+    "mac:C4:7A:10:00:2B:91",
+]
 
 
-def make_batch(board: str, seq: int, *, epoch: str = "a1b2c3d4e5f60718", n: int = 10, t0: float = 1_800_000_000.0,
-               tags: list[str] = TAGS, boot: str = "boot-1", received_at: float | None = None,
-               offset_db: float = 2.5, rssi: np.ndarray | None = None, gap: dict | None = None,
-               telemetry: tuple = (), salt: str = "") -> IngestBatch:
+def make_batch(
+    board: str,
+    seq: int,
+    *,
+    epoch: str = "a1b2c3d4e5f60718",
+    n: int = 10,
+    t0: float = 1_800_000_000.0,
+    tags: list[str] = TAGS,
+    boot: str = "boot-1",
+    received_at: float | None = None,
+    offset_db: float = 2.5,
+    rssi: np.ndarray | None = None,
+    gap: dict | None = None,
+    telemetry: tuple = (),
+    salt: str = "",
+) -> IngestBatch:
     """A batch whose readings are 1 s apart from ``t0 + seq * n``; the digest is the wire digest of its content."""
     start = t0 + seq * n
     t_col = start + np.arange(n, dtype=np.float64)
     tag_col = np.array([tags[(seq + i) % len(tags)] for i in range(n)], dtype=object)
     rssi_col = (np.arange(n, dtype=np.int32) % 300 - 900) if rssi is None else rssi
     t_board = (np.arange(n, dtype=np.int64) + seq * n) * 1000
-    content = {"boot": boot, "offset_db": offset_db, "gap": gap, "salt": salt,
-               "readings": {"t": t_board.tolist(), "tag": tag_col.tolist(), "rssi_dd": np.asarray(rssi_col).tolist()},
-               "telemetry": list(telemetry)}
-    return IngestBatch(board=board, boot=boot, epoch=epoch, seq=seq, digest=wire.digest(content),
-                       received_at=start + n if received_at is None else received_at, offset_db=offset_db,
-                       tags=tag_col, t_board_ms=t_board, t_collector=t_col, rssi_dd=rssi_col,
-                       telemetry=telemetry, gap=gap)
+    content = {
+        "boot": boot,
+        "offset_db": offset_db,
+        "gap": gap,
+        "salt": salt,
+        "readings": {
+            "t": t_board.tolist(),
+            "tag": tag_col.tolist(),
+            "rssi_dd": np.asarray(rssi_col).tolist(),
+        },
+        "telemetry": list(telemetry),
+    }
+    return IngestBatch(
+        board=board,
+        boot=boot,
+        epoch=epoch,
+        seq=seq,
+        digest=wire.digest(content),
+        received_at=start + n if received_at is None else received_at,
+        offset_db=offset_db,
+        tags=tag_col,
+        t_board_ms=t_board,
+        t_collector=t_col,
+        rssi_dd=rssi_col,
+        telemetry=telemetry,
+        gap=gap,
+    )
 
 
 def gap_record(board: str, seq: int, first: int, last: int, readings: int, **kw) -> IngestBatch:
-    return make_batch(board, seq, n=0, gap={"first_seq": first, "last_seq": last, "readings": readings,
-                                           "reason": "spool_full"}, **kw)
+    return make_batch(
+        board,
+        seq,
+        n=0,
+        gap={"first_seq": first, "last_seq": last, "readings": readings, "reason": "spool_full"},
+        **kw,
+    )
 
 
 async def add_boards(store, *names: str, at: float = 1_799_999_000.0) -> None:
     for name in names:
-        await store.add_board(Board(name, "G0 Foyer", "ground", at), Enrollment(name, f"code-{name}", at + 3600))
+        await store.add_board(
+            Board(name, "G0 Foyer", "ground", at), Enrollment(name, f"code-{name}", at + 3600)
+        )
 
 
 async def total_readings(store) -> int:
@@ -70,11 +113,14 @@ async def total_readings(store) -> int:
 
 # -- boards, enrollment, calibration -----------------------------------------------------------------------
 
+
 async def test_board_and_enrollment_lifecycle_survives_reopen(store_factory: StoreFactory):
     """Boards, one-time codes, tokens, retirement and calibration history are kept and survive a reopen."""
     store = await store_factory.open()
     t = 1_800_000_000.0
-    await store.add_board(Board("g3-a", "G3 Light and Colour", "ground", t), Enrollment("g3-a", "h-code-1", t + 3600))
+    await store.add_board(
+        Board("g3-a", "G3 Light and Colour", "ground", t), Enrollment("g3-a", "h-code-1", t + 3600)
+    )
     with pytest.raises(ValueError, match="g3-a"):
         await store.add_board(Board("g3-a", "elsewhere", None, t), Enrollment("g3-a", "h-code-x", t + 3600))
     assert await store.get_enrollment("h-code-x") is None
@@ -113,7 +159,9 @@ async def test_board_and_enrollment_lifecycle_survives_reopen(store_factory: Sto
     assert (g3.offset_db, g3.room, g3.floor) == (-1.5, "G3 Light and Colour", "ground")
     assert (await store.get_board("u3-a")).retired_at == t + 300
     assert [(c.at, c.offset_db, c.fingerprint) for c in await store.calibrations("g3-a")] == [
-        (t + 100, 2.5, {"machine_id": "m1"}), (t + 200, -1.5, None)]
+        (t + 100, 2.5, {"machine_id": "m1"}),
+        (t + 200, -1.5, None),
+    ]
     assert (await store.get_enrollment("h-code-2")).used_at == t + 20
     assert await store.get_board("nope") is None
 
@@ -121,13 +169,16 @@ async def test_board_and_enrollment_lifecycle_survives_reopen(store_factory: Sto
 async def test_concurrent_enrollments_with_one_code_succeed_once(store):
     """Two racing enrollments with the same code: exactly one wins, the other is told the code was used."""
     await add_boards(store, "g1-a")
-    results = await asyncio.gather(*[store.complete_enrollment("code-g1-a", f"tok-{i}", {"i": i}, 1_799_999_100.0)
-                                     for i in range(5)], return_exceptions=True)
+    results = await asyncio.gather(
+        *[store.complete_enrollment("code-g1-a", f"tok-{i}", {"i": i}, 1_799_999_100.0) for i in range(5)],
+        return_exceptions=True,
+    )
     assert sum(not isinstance(r, Exception) for r in results) == 1
     assert all(r.reason is EnrollmentReason.USED for r in results if isinstance(r, Exception))
 
 
 # -- tags ---------------------------------------------------------------------------------------------------
+
 
 async def test_tags_import_is_idempotent_and_retire_reactivates(store):
     """Importing twice adds nothing; retired tags leave the list and come back when imported again."""
@@ -148,6 +199,7 @@ async def test_tags_import_is_idempotent_and_retire_reactivates(store):
 
 
 # -- ingest -------------------------------------------------------------------------------------------------
+
 
 async def test_ingest_stored_duplicate_conflict_across_reopen(store_factory: StoreFactory):
     """Same key + same digest is a duplicate that stores nothing; other digest is a conflict; keys survive reopen."""
@@ -173,14 +225,21 @@ async def test_ingest_stored_duplicate_conflict_across_reopen(store_factory: Sto
     assert await store.latest_boot("g0-a") == "boot-1"
 
 
-async def test_batch_failing_midway_stores_nothing_but_its_group_neighbours_are_kept(store_factory: StoreFactory):
+async def test_batch_failing_midway_stores_nothing_but_its_group_neighbours_are_kept(
+    store_factory: StoreFactory,
+):
     """A bad row in the middle rolls its batch back whole; batches committed with it are stored."""
     store = await store_factory.open()
     await add_boards(store, "g0-a", "g1-a", "g2-a")
     bad_rssi = np.full(10, -700, dtype=np.int32)
     bad_rssi[6] = 9_999  # past the schema's range: the insert fails after six rows went in
-    batches = [make_batch("g0-a", 0), make_batch("g1-a", 0), make_batch("g2-a", 0, rssi=bad_rssi),
-               make_batch("g0-a", 1), make_batch("g1-a", 1)]
+    batches = [
+        make_batch("g0-a", 0),
+        make_batch("g1-a", 0),
+        make_batch("g2-a", 0, rssi=bad_rssi),
+        make_batch("g0-a", 1),
+        make_batch("g1-a", 1),
+    ]
     results = await asyncio.gather(*[store.ingest(b) for b in batches], return_exceptions=True)
     assert isinstance(results[2], BadBatch) and results[2].field == "rssi_dd"
     assert [r.status for i, r in enumerate(results) if i != 2] == [IngestStatus.STORED] * 4
@@ -195,13 +254,16 @@ async def test_batch_failing_midway_stores_nothing_but_its_group_neighbours_are_
     assert await total_readings(store) == 50
 
 
-@pytest.mark.parametrize(("change", "field"), [
-    ({"rssi_dd": np.zeros(3, dtype=np.int32)}, "rssi_dd"),
-    ({"t_collector": np.full(10, np.nan)}, "t_collector"),
-    ({"epoch": ""}, "epoch"),
-    ({"telemetry": ({"t_ms": 5},)}, "telemetry[0].tag"),
-    ({"gap": {"first_seq": 4, "last_seq": 2, "readings": 1, "reason": "spool_full"}}, "gap"),
-])
+@pytest.mark.parametrize(
+    ("change", "field"),
+    [
+        ({"rssi_dd": np.zeros(3, dtype=np.int32)}, "rssi_dd"),
+        ({"t_collector": np.full(10, np.nan)}, "t_collector"),
+        ({"epoch": ""}, "epoch"),
+        ({"telemetry": ({"t_ms": 5},)}, "telemetry[0].tag"),
+        ({"gap": {"first_seq": 4, "last_seq": 2, "readings": 1, "reason": "spool_full"}}, "gap"),
+    ],
+)
 async def test_malformed_batches_name_the_field(store, change, field):
     """Shape errors are refused before the database with the field named, and nothing is stored."""
     await add_boards(store, "g0-a")
@@ -217,7 +279,9 @@ async def test_open_store_picks_the_backend_from_the_url(store_factory: StoreFac
     """``open_store`` opens SQLite for sqlite:/// URLs and PostgreSQL for postgresql:// ones, migrated."""
     store = await open_store(store_factory.url, **store_factory.options())
     store_factory.opened.append(store)
-    assert type(store).__name__ == {"sqlite": "SqliteStore", "postgres": "PostgresStore"}[store_factory.backend]
+    assert (
+        type(store).__name__ == {"sqlite": "SqliteStore", "postgres": "PostgresStore"}[store_factory.backend]
+    )
     await add_boards(store, "g0-a")
     assert (await store.ingest(make_batch("g0-a", 0))).status is IngestStatus.STORED
 
@@ -255,6 +319,7 @@ async def test_hundreds_of_concurrent_batches_are_stored_exactly_once(store_fact
 
 # -- gaps, holes ------------------------------------------------------------------------------------------
 
+
 async def test_gap_records_cover_seqs_and_the_rest_are_holes(store):
     """Seqs neither stored nor covered by a gap record are holes, per (board, epoch)."""
     await add_boards(store, "u2-a", "u4-b")
@@ -266,11 +331,18 @@ async def test_gap_records_cover_seqs_and_the_rest_are_holes(store):
     await store.ingest(make_batch("u4-b", 0))
     await store.ingest(make_batch("u4-b", 2))
     ep = "a1b2c3d4e5f60718"
-    assert await store.seq_holes("u2-a") == [SeqHole("u2-a", ep, 5, 5), SeqHole("u2-a", ep, 8, 9),
-                                            SeqHole("u2-a", "ffff000011112222", 4, 5)]
+    assert await store.seq_holes("u2-a") == [
+        SeqHole("u2-a", ep, 5, 5),
+        SeqHole("u2-a", ep, 8, 9),
+        SeqHole("u2-a", "ffff000011112222", 4, 5),
+    ]
     assert await store.seq_holes() == [*await store.seq_holes("u2-a"), SeqHole("u4-b", ep, 1, 1)]
     counts = {c.board: c for c in await store.board_counts()}
-    assert (counts["u2-a"].gap_readings, counts["u2-a"].readings_total, counts["u2-a"].batches_total) == (420, 70, 8)
+    assert (counts["u2-a"].gap_readings, counts["u2-a"].readings_total, counts["u2-a"].batches_total) == (
+        420,
+        70,
+        8,
+    )
     # A late batch fills a hole.
     await store.ingest(make_batch("u2-a", 5))
     assert SeqHole("u2-a", ep, 5, 5) not in await store.seq_holes("u2-a")
@@ -309,16 +381,20 @@ async def test_seq_holes_match_a_plain_model(store):
 
 # -- clock samples, heartbeats, events, telemetry ------------------------------------------------------------
 
+
 async def test_clock_samples_and_latest_boot(store):
     """Samples are kept per (board, boot) in collector-time order; the latest boot follows contact time."""
     await add_boards(store, "u2-a")
     for i in range(5):
-        await store.add_clock_sample(ClockSample("u2-a", "boot-1", 10.0 + i, 1_800_000_000.0 + i, 1_800_000_000.1 + i,
-                                                 10.2 + i))
+        await store.add_clock_sample(
+            ClockSample("u2-a", "boot-1", 10.0 + i, 1_800_000_000.0 + i, 1_800_000_000.1 + i, 10.2 + i)
+        )
     await store.add_clock_sample(ClockSample("u2-a", "boot-2", 1.0, 1_800_000_100.0, 1_800_000_100.1, 1.2))
     assert [s.t1 for s in await store.clock_samples("u2-a", "boot-1")] == [10.0, 11.0, 12.0, 13.0, 14.0]
     assert [s.t2 for s in await store.clock_samples("u2-a", "boot-1", since=1_800_000_003.0)] == [
-        1_800_000_003.0, 1_800_000_004.0]
+        1_800_000_003.0,
+        1_800_000_004.0,
+    ]
     assert await store.latest_boot("u2-a") == "boot-2"
     # An older contact (a backlog batch sealed in the earlier boot) does not move it back.
     await store.ingest(make_batch("u2-a", 0, boot="boot-1", received_at=1_800_000_050.0))
@@ -346,12 +422,18 @@ async def test_heartbeat_history_is_bounded(store_factory: StoreFactory):
 async def test_events_are_a_cursor(store):
     """Event ids increase; ``since_id``, ``limit`` and ``board`` page and filter."""
     await add_boards(store, "g0-a", "u3-a")
-    ids = [await store.add_event(Event(1.0 + i, b, "state_changed", {"to": s}))
-           for i, (b, s) in enumerate([("g0-a", "live"), ("u3-a", "late"), (None, "x"), ("u3-a", "silent")])]
+    ids = [
+        await store.add_event(Event(1.0 + i, b, "state_changed", {"to": s}))
+        for i, (b, s) in enumerate([("g0-a", "live"), ("u3-a", "late"), (None, "x"), ("u3-a", "silent")])
+    ]
     assert ids == sorted(ids) and len(set(ids)) == 4
     evs = await store.events()
     assert [(e.board, e.detail["to"], e.id) for e in evs] == [
-        ("g0-a", "live", ids[0]), ("u3-a", "late", ids[1]), (None, "x", ids[2]), ("u3-a", "silent", ids[3])]
+        ("g0-a", "live", ids[0]),
+        ("u3-a", "late", ids[1]),
+        (None, "x", ids[2]),
+        ("u3-a", "silent", ids[3]),
+    ]
     assert [e.id for e in await store.events(since_id=ids[1])] == ids[2:]
     assert [e.id for e in await store.events(limit=2)] == ids[:2]
     assert [e.detail["to"] for e in await store.events(board="u3-a")] == ["late", "silent"]
@@ -362,25 +444,45 @@ async def test_events_are_a_cursor(store):
 async def test_latest_telemetry_per_tag(store):
     """The newest telemetry row per tag, with the board that heard it."""
     await add_boards(store, "g0-a", "g3-a")
-    await store.ingest(make_batch("g0-a", 0, received_at=100.0, telemetry=(
-        {"tag": TAGS[1], "t_ms": 5, "battery_mv": 2980, "temperature_c": 21.5},)))
-    await store.ingest(make_batch("g3-a", 0, received_at=200.0, telemetry=(
-        {"tag": TAGS[1], "t_ms": 9, "battery_mv": 2970},
-        {"tag": "eddystone:8b0ca750e7a74e14bd99:000000000002", "t_ms": 9, "uptime_s": 3600})))
+    await store.ingest(
+        make_batch(
+            "g0-a",
+            0,
+            received_at=100.0,
+            telemetry=({"tag": TAGS[1], "t_ms": 5, "battery_mv": 2980, "temperature_c": 21.5},),
+        )
+    )
+    await store.ingest(
+        make_batch(
+            "g3-a",
+            0,
+            received_at=200.0,
+            telemetry=(
+                {"tag": TAGS[1], "t_ms": 9, "battery_mv": 2970},
+                {"tag": "eddystone:8b0ca750e7a74e14bd99:000000000002", "t_ms": 9, "uptime_s": 3600},
+            ),
+        )
+    )
     tel = await store.latest_telemetry()
     assert (tel[TAGS[1]].board, tel[TAGS[1]].battery_mv, tel[TAGS[1]].temperature_c, tel[TAGS[1]].at) == (
-        "g3-a", 2970, None, 200.0)
+        "g3-a",
+        2970,
+        None,
+        200.0,
+    )
     assert list(await store.latest_telemetry([TAGS[1]])) == [TAGS[1]]
 
 
 # -- export and retention -----------------------------------------------------------------------------------
 
+
 async def test_readings_export_ranges_and_filters(store_factory: StoreFactory):
     """Half-open time ranges, board and tag filters, calibrated RSSI and offsets as numpy columns."""
     store = await store_factory.open()
     await add_boards(store, "g0-a", "g3-b")
-    sent = [make_batch("g0-a", s, offset_db=2.5) for s in range(4)] + [make_batch("g3-b", s, offset_db=-1.2)
-                                                                        for s in range(4)]
+    sent = [make_batch("g0-a", s, offset_db=2.5) for s in range(4)] + [
+        make_batch("g3-b", s, offset_db=-1.2) for s in range(4)
+    ]
     for b in sent:
         await store.ingest(b)
     await store.close()
@@ -392,9 +494,14 @@ async def test_readings_export_ranges_and_filters(store_factory: StoreFactory):
     rssi = np.concatenate([b.rssi_dd for b in sent])
     off = np.concatenate([np.full(b.n, round(b.offset_db * 10)) for b in sent])
     t0 = 1_800_000_000.0
-    for lo, hi, boards, tags in [(t0 + 5, t0 + 25, None, None), (-np.inf, np.inf, ["g3-b"], None),
-                                 (t0, t0 + 40, None, TAGS[1:3]), (t0 + 10, t0 + 30, ["g0-a"], [TAGS[0]]),
-                                 (t0, t0 + 40, ["nobody"], None), (t0 + 50, t0 + 60, None, None)]:
+    for lo, hi, boards, tags in [
+        (t0 + 5, t0 + 25, None, None),
+        (-np.inf, np.inf, ["g3-b"], None),
+        (t0, t0 + 40, None, TAGS[1:3]),
+        (t0 + 10, t0 + 30, ["g0-a"], [TAGS[0]]),
+        (t0, t0 + 40, ["nobody"], None),
+        (t0 + 50, t0 + 60, None, None),
+    ]:
         keep = (t >= lo) & (t < hi)
         if boards is not None:
             keep &= np.isin(board, boards)
@@ -430,6 +537,7 @@ async def test_retention_deletes_in_chunks_and_keeps_dedup_keys(store):
 
 # -- exclusion -----------------------------------------------------------------------------------------------
 
+
 async def test_exclusive_lets_one_holder_at_a_time(store_factory: StoreFactory):
     """One holder per lock name; released at the end of the block (PostgreSQL: two collectors, two pools)."""
     a = await store_factory.open()
@@ -453,12 +561,15 @@ async def test_advisory_lock_shows_in_pg_locks(pg_factory: StoreFactory):
     import asyncpg
 
     from listenpost.collector.store.postgres import lock_key
+
     store = await pg_factory.open()
     key = lock_key("retention") & 0xFFFF_FFFF_FFFF_FFFF
     # PostgreSQL docs, "pg_locks": a bigint advisory key shows its high half in classid, its low half
     # in objid, and objsubid = 1.
-    q = ("SELECT count(*) FROM pg_locks WHERE locktype = 'advisory' AND classid::bigint = $1 "
-         "AND objid::bigint = $2 AND objsubid = 1 AND granted")
+    q = (
+        "SELECT count(*) FROM pg_locks WHERE locktype = 'advisory' AND classid::bigint = $1 "
+        "AND objid::bigint = $2 AND objsubid = 1 AND granted"
+    )
     con = await asyncpg.connect(PG_URL, timeout=5)
     try:
         async with store.exclusive("retention") as got:
@@ -471,9 +582,13 @@ async def test_advisory_lock_shows_in_pg_locks(pg_factory: StoreFactory):
 
 # -- migrations ----------------------------------------------------------------------------------------------
 
-async def _raw_migrate(factory: StoreFactory, upto: int | None = None, migrations=None, sql: str | None = None):
+
+async def _raw_migrate(
+    factory: StoreFactory, upto: int | None = None, migrations=None, sql: str | None = None
+):
     """Run migrations (and optionally one SQL statement) on the test database without a store."""
     if factory.backend == "sqlite":
+
         def job() -> int:
             con = sqlite3.connect(factory.path, isolation_level=None)
             try:
@@ -483,8 +598,10 @@ async def _raw_migrate(factory: StoreFactory, upto: int | None = None, migration
                 return v
             finally:
                 con.close()
+
         return await asyncio.to_thread(job)
     import asyncpg
+
     con = await asyncpg.connect(PG_URL, timeout=5)
     try:
         await con.execute(f'CREATE SCHEMA IF NOT EXISTS "{factory.schema}"')
@@ -504,7 +621,9 @@ def _versions(factory: StoreFactory) -> tuple[mig.Migration, ...]:
 async def test_migrations_from_empty_and_from_an_older_version(store_factory: StoreFactory):
     """An older database is upgraded in place with its data; an empty one gets every version."""
     assert await _raw_migrate(store_factory, upto=1) == 1
-    await _raw_migrate(store_factory, upto=1, sql="INSERT INTO boards (name, room, created_at) VALUES ('u0-a', 'U0', 5)")
+    await _raw_migrate(
+        store_factory, upto=1, sql="INSERT INTO boards (name, room, created_at) VALUES ('u0-a', 'U0', 5)"
+    )
     store = await store_factory.open()
     assert (await store.get_board("u0-a")).room == "U0"
     await add_boards(store, "g0-a")
@@ -515,7 +634,9 @@ async def test_migrations_from_empty_and_from_an_older_version(store_factory: St
 
 async def test_newer_schema_is_refused(store_factory: StoreFactory):
     """A database from a newer listenpost is refused with a message that says so, and left untouched."""
-    await _raw_migrate(store_factory, sql="INSERT INTO schema_version (version, name, applied_at) VALUES (9, 'future', 'x')")
+    await _raw_migrate(
+        store_factory, sql="INSERT INTO schema_version (version, name, applied_at) VALUES (9, 'future', 'x')"
+    )
     with pytest.raises(SchemaTooNew, match="version 9 is newer than this listenpost supports \\(2\\)"):
         await store_factory.open()
 
@@ -523,7 +644,10 @@ async def test_newer_schema_is_refused(store_factory: StoreFactory):
 async def test_a_failing_migration_leaves_the_previous_version(store_factory: StoreFactory):
     """Each migration is one transaction: a failing step leaves no half-made tables behind."""
     base = _versions(store_factory)
-    broken = (*base, mig.Migration(3, "broken", ("CREATE TABLE half_made (x integer)", "CREATE TABLE boards (x integer)")))
+    broken = (
+        *base,
+        mig.Migration(3, "broken", ("CREATE TABLE half_made (x integer)", "CREATE TABLE boards (x integer)")),
+    )
     with pytest.raises(Exception, match="boards"):
         await _raw_migrate(store_factory, migrations=broken)
     with pytest.raises(Exception, match="half_made"):
@@ -534,11 +658,16 @@ async def test_a_failing_migration_leaves_the_previous_version(store_factory: St
 
 # -- durability settings and unavailability --------------------------------------------------------------------
 
+
 async def test_sqlite_writer_is_wal_and_synchronous_full(sqlite_factory: StoreFactory):
     """The writer commits with journal_mode=wal and synchronous=FULL (sqlite.org/pragma.html: FULL is 2)."""
     store = await sqlite_factory.open()
-    mode, sync = await store._write(lambda: (store._wcon.execute("PRAGMA journal_mode").fetchone()[0],
-                                             store._wcon.execute("PRAGMA synchronous").fetchone()[0]))
+    mode, sync = await store._write(
+        lambda: (
+            store._wcon.execute("PRAGMA journal_mode").fetchone()[0],
+            store._wcon.execute("PRAGMA synchronous").fetchone()[0],
+        )
+    )
     assert (mode, sync) == ("wal", 2)
     # A second plain connection sees WAL mode persisted in the file header.
     with sqlite3.connect(sqlite_factory.path) as con:
@@ -565,8 +694,10 @@ async def test_sqlite_locked_past_the_busy_timeout_is_unavailable_then_recovers(
 async def test_postgres_keeps_synchronous_commit_on_even_if_the_url_turns_it_off(pg_factory: StoreFactory):
     """A connection default of synchronous_commit=off (here from the URL) is overridden on every pooled connection."""
     from listenpost.collector.store.postgres import PostgresStore
+
     url = PG_URL + ("&" if "?" in PG_URL else "?") + "synchronous_commit=off"
     import asyncpg
+
     con = await asyncpg.connect(url, timeout=5)
     try:
         assert await con.fetchval("SHOW synchronous_commit") == "off"  # the URL alone does turn it off
@@ -581,6 +712,7 @@ async def test_postgres_keeps_synchronous_commit_on_even_if_the_url_turns_it_off
 async def test_postgres_connection_loss_is_unavailable_then_the_pool_recovers(pg_factory: StoreFactory):
     """Backends killed mid-statement → StoreUnavailable; the next call reconnects and works."""
     import asyncpg
+
     store = await pg_factory.open(min_size=2, max_size=2, lock_timeout_s=10.0)
     await add_boards(store, "u1-a")
     admin = await asyncpg.connect(PG_URL, timeout=5)
@@ -596,8 +728,10 @@ async def test_postgres_connection_loss_is_unavailable_then_the_pool_recovers(pg
                 break
             await asyncio.sleep(0.01)
         assert await admin.fetchval(waiting) == 1
-        killed = await admin.fetchval("SELECT count(pg_terminate_backend(pid)) FROM pg_stat_activity "
-                                      "WHERE application_name = 'listenpost-collector' AND pid <> pg_backend_pid()")
+        killed = await admin.fetchval(
+            "SELECT count(pg_terminate_backend(pid)) FROM pg_stat_activity "
+            "WHERE application_name = 'listenpost-collector' AND pid <> pg_backend_pid()"
+        )
         assert killed >= 1
         with pytest.raises(StoreUnavailable):
             await asyncio.wait_for(pending, 10)
@@ -612,6 +746,7 @@ async def test_postgres_connection_loss_is_unavailable_then_the_pool_recovers(pg
 async def test_postgres_lock_held_past_lock_timeout_is_unavailable(pg_factory: StoreFactory):
     """A lock held elsewhere past lock_timeout_s → StoreUnavailable, not a hang."""
     import asyncpg
+
     store = await pg_factory.open(lock_timeout_s=0.2)
     await add_boards(store, "u1-a")
     admin = await asyncpg.connect(PG_URL, timeout=5)
@@ -635,14 +770,21 @@ async def test_unreachable_postgres_is_unavailable():
 
 # -- PostgreSQL binary COPY export --------------------------------------------------------------------------
 
+
 def test_copy_binary_parser_reads_the_documented_layout():
     """A stream built by hand from the PostgreSQL docs ("COPY", Binary Format) parses to the values put in."""
     import struct
 
     from listenpost.collector.store.postgres import parse_copy_binary
+
     header = b"PGCOPY\n\xff\r\n\x00" + struct.pack(">ii", 0, 4) + b"abcd"  # 4-byte header extension, skipped
-    row = lambda b, t, tc, r, o: struct.pack(">h" + "i" * 4 + "id" + "ii" * 2, 5, 4, b, 4, t, 8, tc, 4, r, 4, o)  # noqa: E731
-    stream = header + row(1, 7, 1_800_000_000.25, -705, 25) + row(2, 9, 1_800_000_001.5, -1000, -12) + b"\xff\xff"
+
+    def row(b, t, tc, r, o):
+        return struct.pack(">h" + "i" * 4 + "id" + "ii" * 2, 5, 4, b, 4, t, 8, tc, 4, r, 4, o)
+
+    stream = (
+        header + row(1, 7, 1_800_000_000.25, -705, 25) + row(2, 9, 1_800_000_001.5, -1000, -12) + b"\xff\xff"
+    )
     arr = parse_copy_binary(stream)
     assert arr["board_id"].tolist() == [1, 2] and arr["tag_id"].tolist() == [7, 9]
     assert arr["t_collector"].tolist() == [1_800_000_000.25, 1_800_000_001.5]
@@ -650,7 +792,11 @@ def test_copy_binary_parser_reads_the_documented_layout():
     with pytest.raises(ValueError, match="signature"):
         parse_copy_binary(b"PGCOPY\n\xff\r\n\x01" + stream[11:])
     with pytest.raises(ValueError, match="fields"):
-        parse_copy_binary(stream.replace(struct.pack(">h", 5) + struct.pack(">i", 4), struct.pack(">h", 4) + struct.pack(">i", 4), 1))
+        parse_copy_binary(
+            stream.replace(
+                struct.pack(">h", 5) + struct.pack(">i", 4), struct.pack(">h", 4) + struct.pack(">i", 4), 1
+            )
+        )
 
 
 async def test_binary_export_agrees_with_asyncpg_row_decoding(pg_factory: StoreFactory):
@@ -663,7 +809,9 @@ async def test_binary_export_agrees_with_asyncpg_row_decoding(pg_factory: StoreF
     got = await store.readings(-np.inf, np.inf)
     rows = await store._pool.fetch(
         "SELECT bo.name, tg.tag, r.t_collector, r.rssi_dd, b.offset_dd FROM readings r JOIN batches b ON b.id = r.batch_id "
-        "JOIN boards bo ON bo.id = r.board_id JOIN tags tg ON tg.id = r.tag_id")
-    assert sorted(map(tuple, rows)) == sorted(zip(got.board, got.tag, got.t_collector, got.rssi_dd, got.offset_dd,
-                                                  strict=True))
+        "JOIN boards bo ON bo.id = r.board_id JOIN tags tg ON tg.id = r.tag_id"
+    )
+    assert sorted(map(tuple, rows)) == sorted(
+        zip(got.board, got.tag, got.t_collector, got.rssi_dd, got.offset_dd, strict=True)
+    )
     assert len(rows) == 300

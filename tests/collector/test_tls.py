@@ -41,31 +41,62 @@ def make_certs(folder: Path) -> tuple[Path, Path, Path]:
     now = datetime.datetime.now(datetime.UTC)
     ca_key = ec.generate_private_key(ec.SECP256R1())
     ca_name = x509.Name([x509.NameAttribute(NameOID.COMMON_NAME, "Brackenford test CA")])
-    ca = (x509.CertificateBuilder().subject_name(ca_name).issuer_name(ca_name).public_key(ca_key.public_key())
-          .serial_number(x509.random_serial_number()).not_valid_before(now - datetime.timedelta(minutes=5))
-          .not_valid_after(now + datetime.timedelta(days=1))
-          .add_extension(x509.BasicConstraints(ca=True, path_length=0), critical=True)
-          .add_extension(x509.KeyUsage(digital_signature=True, content_commitment=False, key_encipherment=False,
-                                       data_encipherment=False, key_agreement=False, key_cert_sign=True,
-                                       crl_sign=True, encipher_only=False, decipher_only=False), critical=True)
-          .add_extension(x509.SubjectKeyIdentifier.from_public_key(ca_key.public_key()), critical=False)
-          .sign(ca_key, hashes.SHA256()))
+    ca = (
+        x509.CertificateBuilder()
+        .subject_name(ca_name)
+        .issuer_name(ca_name)
+        .public_key(ca_key.public_key())
+        .serial_number(x509.random_serial_number())
+        .not_valid_before(now - datetime.timedelta(minutes=5))
+        .not_valid_after(now + datetime.timedelta(days=1))
+        .add_extension(x509.BasicConstraints(ca=True, path_length=0), critical=True)
+        .add_extension(
+            x509.KeyUsage(
+                digital_signature=True,
+                content_commitment=False,
+                key_encipherment=False,
+                data_encipherment=False,
+                key_agreement=False,
+                key_cert_sign=True,
+                crl_sign=True,
+                encipher_only=False,
+                decipher_only=False,
+            ),
+            critical=True,
+        )
+        .add_extension(x509.SubjectKeyIdentifier.from_public_key(ca_key.public_key()), critical=False)
+        .sign(ca_key, hashes.SHA256())
+    )
     key = ec.generate_private_key(ec.SECP256R1())
-    cert = (x509.CertificateBuilder()
-            .subject_name(x509.Name([x509.NameAttribute(NameOID.COMMON_NAME, "collector.brackenford.test")]))
-            .issuer_name(ca_name).public_key(key.public_key()).serial_number(x509.random_serial_number())
-            .not_valid_before(now - datetime.timedelta(minutes=5)).not_valid_after(now + datetime.timedelta(days=1))
-            .add_extension(x509.SubjectAlternativeName([x509.IPAddress(ipaddress.ip_address("127.0.0.1")),
-                                                        x509.DNSName("localhost")]), critical=False)
-            .add_extension(x509.BasicConstraints(ca=False, path_length=None), critical=True)
-            .add_extension(x509.ExtendedKeyUsage([x509.oid.ExtendedKeyUsageOID.SERVER_AUTH]), critical=False)
-            .add_extension(x509.AuthorityKeyIdentifier.from_issuer_public_key(ca_key.public_key()), critical=False)
-            .sign(ca_key, hashes.SHA256()))
+    cert = (
+        x509.CertificateBuilder()
+        .subject_name(x509.Name([x509.NameAttribute(NameOID.COMMON_NAME, "collector.brackenford.test")]))
+        .issuer_name(ca_name)
+        .public_key(key.public_key())
+        .serial_number(x509.random_serial_number())
+        .not_valid_before(now - datetime.timedelta(minutes=5))
+        .not_valid_after(now + datetime.timedelta(days=1))
+        .add_extension(
+            x509.SubjectAlternativeName(
+                [x509.IPAddress(ipaddress.ip_address("127.0.0.1")), x509.DNSName("localhost")]
+            ),
+            critical=False,
+        )
+        .add_extension(x509.BasicConstraints(ca=False, path_length=None), critical=True)
+        .add_extension(x509.ExtendedKeyUsage([x509.oid.ExtendedKeyUsageOID.SERVER_AUTH]), critical=False)
+        .add_extension(
+            x509.AuthorityKeyIdentifier.from_issuer_public_key(ca_key.public_key()), critical=False
+        )
+        .sign(ca_key, hashes.SHA256())
+    )
     ca_pem, cert_pem, key_pem = folder / "ca.pem", folder / "cert.pem", folder / "key.pem"
     ca_pem.write_bytes(ca.public_bytes(serialization.Encoding.PEM))
     cert_pem.write_bytes(cert.public_bytes(serialization.Encoding.PEM))
-    key_pem.write_bytes(key.private_bytes(serialization.Encoding.PEM, serialization.PrivateFormat.PKCS8,
-                                          serialization.NoEncryption()))
+    key_pem.write_bytes(
+        key.private_bytes(
+            serialization.Encoding.PEM, serialization.PrivateFormat.PKCS8, serialization.NoEncryption()
+        )
+    )
     key_pem.chmod(0o600)
     return ca_pem, cert_pem, key_pem
 
@@ -81,12 +112,27 @@ async def test_serve_answers_https_with_the_configured_certificate_and_refuses_p
     ca, cert, key = make_certs(tmp_path / "pki")
     port = free_port()
     config = tmp_path / "collector.yaml"
-    config.write_text(yaml.safe_dump({"listen": {"host": "127.0.0.1", "port": port},
-                                      "tls": {"cert": str(cert), "key": str(key)}}))
+    config.write_text(
+        yaml.safe_dump(
+            {"listen": {"host": "127.0.0.1", "port": port}, "tls": {"cert": str(cert), "key": str(key)}}
+        )
+    )
     log = (tmp_path / "serve.log").open("wb")
     proc = await asyncio.create_subprocess_exec(
-        sys.executable, "-m", "listenpost", "collector", "serve", "--state-dir", str(tmp_path / "state"),
-        "--config", str(config), "--log-format", "json", stdout=log, stderr=asyncio.subprocess.STDOUT)
+        sys.executable,
+        "-m",
+        "listenpost",
+        "collector",
+        "serve",
+        "--state-dir",
+        str(tmp_path / "state"),
+        "--config",
+        str(config),
+        "--log-format",
+        "json",
+        stdout=log,
+        stderr=asyncio.subprocess.STDOUT,
+    )
     trust = ssl.create_default_context(cafile=str(ca))
     try:
         async with aiohttp.ClientSession(timeout=aiohttp.ClientTimeout(total=5)) as session:
@@ -101,8 +147,10 @@ async def test_serve_answers_https_with_the_configured_certificate_and_refuses_p
                         doc = await r.json()
                 except aiohttp.ClientConnectorError:
                     if loop.time() > end:
-                        pytest.fail("collector serve did not listen within 30 s:\n"
-                                    + (tmp_path / "serve.log").read_text())
+                        pytest.fail(
+                            "collector serve did not listen within 30 s:\n"
+                            + (tmp_path / "serve.log").read_text()
+                        )
                     await asyncio.sleep(0.05)
             assert doc["fleet"]["boards"] == 0
             # Without the CA the certificate is not trusted ...
@@ -136,11 +184,15 @@ def test_tls_context_errors_name_the_files(tmp_path):
     assert tls_context(settings_for(tmp_path)) is None
 
 
-async def test_agent_uplink_reaches_a_tls_collector(aiohttp_server, aiohttp_client, tmp_path, clock: VirtualClock):
+async def test_agent_uplink_reaches_a_tls_collector(
+    aiohttp_server, aiohttp_client, tmp_path, clock: VirtualClock
+):
     """The agent's uplink, with a session trusting the CA, stores its spool over HTTPS."""
     ca, cert, key = make_certs(tmp_path / "pki")
     settings = settings_for(tmp_path, tls={"cert": str(cert), "key": str(key)})
-    server = await aiohttp_server(create_app(settings, clock=clock, run_monitor=False), ssl=tls_context(settings))
+    server = await aiohttp_server(
+        create_app(settings, clock=clock, run_monitor=False), ssl=tls_context(settings)
+    )
     trust = ssl.create_default_context(cafile=str(ca))
     client = await aiohttp_client(server, connector=aiohttp.TCPConnector(ssl=trust))
     assert str(client.make_url("")).startswith("https://127.0.0.1:")
@@ -153,8 +205,15 @@ async def test_agent_uplink_reaches_a_tls_collector(aiohttp_server, aiohttp_clie
                 spool.add(Reading(TAGS[i % len(TAGS)], clock.monotonic_ns() + i * 5_000_000, -61.0 - i % 20))
             await spool.seal(boot=clock.boot_id, offset_db=0.0)
             await clock.advance(1.0)
-        uplink = Uplink(base_url=str(client.make_url("")), token=auth["Authorization"].removeprefix("Bearer "),
-                        board="g1-a", clock=clock, spool=spool, session=client.session, timeout_s=5.0)
+        uplink = Uplink(
+            base_url=str(client.make_url("")),
+            token=auth["Authorization"].removeprefix("Bearer "),
+            board="g1-a",
+            clock=clock,
+            spool=spool,
+            session=client.session,
+            timeout_s=5.0,
+        )
         await asyncio.wait_for(uplink.run(until_empty=True), 10)
     finally:
         await spool.close()
@@ -162,8 +221,9 @@ async def test_agent_uplink_reaches_a_tls_collector(aiohttp_server, aiohttp_clie
     assert (await server.app[STORE].board_counts())[0].readings_total == 120
 
 
-async def test_agent_enrolls_and_fetches_config_over_tls_with_its_ca_file(aiohttp_server, aiohttp_client, tmp_path,
-                                                                          clock: VirtualClock):
+async def test_agent_enrolls_and_fetches_config_over_tls_with_its_ca_file(
+    aiohttp_server, aiohttp_client, tmp_path, clock: VirtualClock
+):
     """`agent enroll --ca-file` trusts a private CA, records it in agent.yaml, and every later call uses it."""
     from listenpost.agent.client.enroll import EnrollStatus, enroll
     from listenpost.agent.client.net import client_session
@@ -172,8 +232,12 @@ async def test_agent_enrolls_and_fetches_config_over_tls_with_its_ca_file(aiohtt
 
     ca, cert, key = make_certs(tmp_path / "pki")
     settings = settings_for(tmp_path, tls={"cert": str(cert), "key": str(key)})
-    server = await aiohttp_server(create_app(settings, clock=clock, run_monitor=False), ssl=tls_context(settings))
-    admin = await aiohttp_client(server, connector=aiohttp.TCPConnector(ssl=ssl.create_default_context(cafile=str(ca))))
+    server = await aiohttp_server(
+        create_app(settings, clock=clock, run_monitor=False), ssl=tls_context(settings)
+    )
+    admin = await aiohttp_client(
+        server, connector=aiohttp.TCPConnector(ssl=ssl.create_default_context(cafile=str(ca)))
+    )
     url = str(admin.make_url("")).rstrip("/")
     code = await add_board(admin, tmp_path, "g1-a", "G1 Light & Optics", "ground")
 
@@ -187,8 +251,11 @@ async def test_agent_enrolls_and_fetches_config_over_tls_with_its_ca_file(aiohtt
     assert cfg.collector.ca_file == str(ca.resolve())
     token = (tmp_path / "board" / cfg.collector.credential_file).read_text().strip()
     async with client_session(cfg.collector.ca_file) as session:
-        async with session.get(url + "/v1/config", headers={"Authorization": f"Bearer {token}"},
-                               timeout=aiohttp.ClientTimeout(total=5)) as r:
+        async with session.get(
+            url + "/v1/config",
+            headers={"Authorization": f"Bearer {token}"},
+            timeout=aiohttp.ClientTimeout(total=5),
+        ) as r:
             assert r.status == 200
             assert (await r.json())["board"] == "g1-a"
 

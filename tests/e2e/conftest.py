@@ -60,14 +60,33 @@ def dry_run_config(path: Path, board: str, rules: Sequence[dict[str, Any]]) -> P
 
 
 def dry_run_command(recording: Path, tags: Path, config: Path, offset_db: float = 0.0) -> list[str]:
-    return [sys.executable, "-m", "listenpost", "agent", "replay", str(recording), "--dry-run", "--fast",
-            "--tags", str(tags), "--config", str(config), "--offset-db", repr(offset_db)]
+    return [
+        sys.executable,
+        "-m",
+        "listenpost",
+        "agent",
+        "replay",
+        str(recording),
+        "--dry-run",
+        "--fast",
+        "--tags",
+        str(tags),
+        "--config",
+        str(config),
+        "--offset-db",
+        repr(offset_db),
+    ]
 
 
 def dry_run(recording: Path, tags: Path, config: Path, offset_db: float = 0.0) -> list[tuple[str, int, int]]:
     """``agent replay --dry-run`` as a subprocess: every reading as (tag, board ms, RSSI in 0.1 dB)."""
-    proc = subprocess.run(dry_run_command(recording, tags, config, offset_db), capture_output=True, text=True,
-                          timeout=240, check=False)
+    proc = subprocess.run(
+        dry_run_command(recording, tags, config, offset_db),
+        capture_output=True,
+        text=True,
+        timeout=240,
+        check=False,
+    )
     assert proc.returncode == 0, proc.stderr[-2000:]
     return parse_dry_run(proc.stdout)
 
@@ -83,8 +102,13 @@ def parse_dry_run(text: str) -> list[tuple[str, int, int]]:
 def dry_run_to_file(recording: Path, tags: Path, config: Path, out: Path) -> None:
     """The same with stdout to ``out`` (the hour's outputs are large); run it in a thread from async code."""
     with open(out, "wb") as fh:
-        proc = subprocess.run(dry_run_command(recording, tags, config), stdout=fh, stderr=subprocess.PIPE,
-                              timeout=600, check=False)
+        proc = subprocess.run(
+            dry_run_command(recording, tags, config),
+            stdout=fh,
+            stderr=subprocess.PIPE,
+            timeout=600,
+            check=False,
+        )
     assert proc.returncode == 0, proc.stderr.decode()[-2000:]
 
 
@@ -108,13 +132,20 @@ def stored_readings(db: Path, board: str) -> list[tuple[str, int, int]]:
     with contextlib.closing(sqlite3.connect(f"file:{db}?mode=ro", uri=True)) as con:
         return con.execute(
             "SELECT t.tag, r.t_board_ms, r.rssi_dd FROM readings r JOIN tags t ON t.id = r.tag_id "
-            "JOIN boards b ON b.id = r.board_id WHERE b.name = ?", (board,)).fetchall()
+            "JOIN boards b ON b.id = r.board_id WHERE b.name = ?",
+            (board,),
+        ).fetchall()
 
 
 def stored_counts(db: Path) -> Counter[str]:
     with contextlib.closing(sqlite3.connect(f"file:{db}?mode=ro", uri=True)) as con:
-        return Counter(dict(con.execute(
-            "SELECT b.name, count(*) FROM readings r JOIN boards b ON b.id = r.board_id GROUP BY b.name").fetchall()))
+        return Counter(
+            dict(
+                con.execute(
+                    "SELECT b.name, count(*) FROM readings r JOIN boards b ON b.id = r.board_id GROUP BY b.name"
+                ).fetchall()
+            )
+        )
 
 
 def all_text(db: Path) -> str:
@@ -125,13 +156,18 @@ def all_text(db: Path) -> str:
         for table in tables:
             cols = [r[1] for r in con.execute(f'PRAGMA table_info("{table}")')]
             for col in cols:
-                parts += [v for (v,) in con.execute(f'SELECT "{col}" FROM "{table}" WHERE typeof("{col}") = \'text\'')]
+                parts += [
+                    v
+                    for (v,) in con.execute(f'SELECT "{col}" FROM "{table}" WHERE typeof("{col}") = \'text\'')
+                ]
     return "\n".join(parts)
 
 
 def state_changes(db: Path) -> list[tuple[float, str, str | None, str]]:
     """(collector time, board, old, new) of every stored state change, in order."""
     with contextlib.closing(sqlite3.connect(f"file:{db}?mode=ro", uri=True)) as con:
-        rows = con.execute("SELECT e.at, b.name, e.detail FROM events e JOIN boards b ON b.id = e.board_id "
-                           "WHERE e.kind = 'state_changed' ORDER BY e.id").fetchall()
+        rows = con.execute(
+            "SELECT e.at, b.name, e.detail FROM events e JOIN boards b ON b.id = e.board_id "
+            "WHERE e.kind = 'state_changed' ORDER BY e.id"
+        ).fetchall()
     return [(at, board, json.loads(d).get("old"), json.loads(d)["new"]) for at, board, d in rows]

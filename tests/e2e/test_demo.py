@@ -15,7 +15,9 @@ from pathlib import Path
 
 from tests.e2e.conftest import REPLAY_LOGS
 
-SPEED = 8.0  # the demo's own default; faster runs let a busy machine's scheduling jitter into the skew estimates
+SPEED = (
+    8.0  # the demo's own default; faster runs let a busy machine's scheduling jitter into the skew estimates
+)
 SKEW_TOLERANCE_PPM = 10.0
 """On a sped-up clock every real delay (loopback, scheduling, SQLite commits) is multiplied by the speed,
 and the clock exchanges see it: at 20x we measured skew errors up to 3.1 ppm, at 8x up to 3.3 ppm with a
@@ -26,25 +28,48 @@ browser running beside it. 10 ppm still keeps every healthy board (|skew| <= 30 
 def test_demo_subprocess_ends_in_the_scenario_states(tmp_path: Path):
     out = tmp_path / "summary.json"
     state = tmp_path / "state"
-    proc = subprocess.run([sys.executable, "-m", "listenpost", "demo", "--summary-json", str(out),
-                           "--speed", str(SPEED), "--state-dir", str(state)],
-                          capture_output=True, text=True, timeout=240, check=False)
+    proc = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "listenpost",
+            "demo",
+            "--summary-json",
+            str(out),
+            "--speed",
+            str(SPEED),
+            "--state-dir",
+            str(state),
+        ],
+        capture_output=True,
+        text=True,
+        timeout=240,
+        check=False,
+    )
     assert proc.returncode == 0, proc.stdout[-3000:] + proc.stderr[-3000:]
     assert "health page:     http://127.0.0.1:" in proc.stdout
     assert "outcome as expected" in proc.stdout
-    assert proc.stderr == ""  # agent and collector logs go to the state directory's demo.log, not the terminal
+    assert (
+        proc.stderr == ""
+    )  # agent and collector logs go to the state directory's demo.log, not the terminal
     assert (state / "demo.log").stat().st_size > 0 and (state / "collector.sqlite").exists()
 
     doc = json.loads(out.read_text())
     truth = json.loads((REPLAY_LOGS / "truth.json").read_text())
     boards = {b["name"]: b for b in doc["boards"]}
     assert set(boards) == set(truth["boards"])
-    expected = {name: "live" for name in truth["boards"]} | {"u3-a": "silent", "g2-a": "deaf", "u2-a": "drifting"}
+    expected = {name: "live" for name in truth["boards"]} | {
+        "u3-a": "silent",
+        "g2-a": "deaf",
+        "u2-a": "drifting",
+    }
     assert {n: b["state"] for n, b in boards.items()} == expected
     assert doc["outcome_as_expected"] is True
     for name, b in boards.items():
         assert b["skew_true_ppm"] == truth["boards"][name]["skew_ppm"]
-        assert b["skew_est_ppm"] is not None and abs(b["skew_est_ppm"] - b["skew_true_ppm"]) < SKEW_TOLERANCE_PPM, b
+        assert (
+            b["skew_est_ppm"] is not None and abs(b["skew_est_ppm"] - b["skew_true_ppm"]) < SKEW_TOLERANCE_PPM
+        ), b
         assert b["readings_stored"] > 1000, b
         assert abs(b["offset_error_ms"]) < 50.0, b  # measured: below 4 ms at 20x
     g4 = boards["g4-a"]

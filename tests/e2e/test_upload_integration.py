@@ -23,17 +23,24 @@ BOARD = "g3-a"
 
 
 async def _state(fleet: Fleet) -> dict:
-    code, out = await cli_async(["collector", "status", "--json", "--collector", fleet.url,
-                                 "--state-dir", str(fleet.state_dir)])
+    code, out = await cli_async(
+        ["collector", "status", "--json", "--collector", fleet.url, "--state-dir", str(fleet.state_dir)]
+    )
     assert code == 0, out
     return {b["name"]: b for b in json.loads(out)["boards"]}[BOARD]
 
 
-async def test_uploaded_readings_equal_the_dry_run_and_status_follows_the_board(tmp_path: Path, e2e_logs: Path):
+async def test_uploaded_readings_equal_the_dry_run_and_status_follows_the_board(
+    tmp_path: Path, e2e_logs: Path
+):
     venue = load_venue(REPLAY_LOGS)
     truth = venue.board(BOARD)
-    expected = dry_run(truth.recording, venue.tags_file, dry_run_config(tmp_path / "dry.yaml", BOARD,
-                                                                        venue.decode_rules), offset_db=0.0)
+    expected = dry_run(
+        truth.recording,
+        venue.tags_file,
+        dry_run_config(tmp_path / "dry.yaml", BOARD, venue.decode_rules),
+        offset_db=0.0,
+    )
     assert len(expected) > 20_000  # the committed recording: g3-a hears ~24 600 registered adverts in 10 min
 
     fleet = Fleet(venue, tmp_path / "run", VirtualClock(start=1000.0, wall=venue.start_wall), boards=[BOARD])

@@ -78,13 +78,16 @@ class HourRun:
 
 # ---------------------------------------------------------------- the run
 
+
 def scan_noise(directory: str, registered_addresses: list[str], venue_uuid: str) -> dict[str, set[str]]:
     """
     Identities of unregistered devices in the recordings: their addresses, the UUIDs of
     iBeacon-format frames with another UUID, and manufacturer payloads of 12+ hex digits.
     (Module level so a separate process can run it while the fleet runs.)
     """
-    line = re.compile(rb'"a":"([0-9A-F:]{17})","at":\d,"r":-?\d+(?:,"tx":-?\d+)?(?:,"m":\{"([0-9a-f]{4})":"([0-9a-f]*)")?')
+    line = re.compile(
+        rb'"a":"([0-9A-F:]{17})","at":\d,"r":-?\d+(?:,"tx":-?\d+)?(?:,"m":\{"([0-9a-f]{4})":"([0-9a-f]*)")?'
+    )
     reg = set(registered_addresses)
     addresses: set[str] = set()
     uuids: set[str] = set()
@@ -107,8 +110,20 @@ def scan_noise(directory: str, registered_addresses: list[str], venue_uuid: str)
 
 async def _simulate(out: Path) -> None:
     proc = await asyncio.create_subprocess_exec(
-        sys.executable, "-m", "listenpost", "sim", "brackenford", "--minutes", str(MINUTES), "--out", str(out),
-        "--btsnoop-board", "none", stdout=asyncio.subprocess.DEVNULL, stderr=asyncio.subprocess.PIPE)
+        sys.executable,
+        "-m",
+        "listenpost",
+        "sim",
+        "brackenford",
+        "--minutes",
+        str(MINUTES),
+        "--out",
+        str(out),
+        "--btsnoop-board",
+        "none",
+        stdout=asyncio.subprocess.DEVNULL,
+        stderr=asyncio.subprocess.PIPE,
+    )
     _, err = await asyncio.wait_for(proc.communicate(), timeout=300)
     assert proc.returncode == 0, err.decode()[-2000:]
 
@@ -135,11 +150,17 @@ async def _run_hour(base: Path) -> HourRun:
     dry_task = asyncio.create_task(asyncio.to_thread(_dry_runs, venue, dry_dir))
     pool = concurrent.futures.ProcessPoolExecutor(1, mp_context=multiprocessing.get_context("spawn"))
     noise_fut = asyncio.get_running_loop().run_in_executor(
-        pool, scan_noise, str(sim_dir), [t["address"] for t in venue.truth["tags"].values()],
-        venue.truth["venue"]["ibeacon_uuid"])
+        pool,
+        scan_noise,
+        str(sim_dir),
+        [t["address"] for t in venue.truth["tags"].values()],
+        venue.truth["venue"]["ibeacon_uuid"],
+    )
 
     t1 = time.perf_counter()
-    fleet = Fleet(venue, base / "run", VirtualClock(start=1000.0, wall=venue.start_wall), liveness=DEMO_LIVENESS)
+    fleet = Fleet(
+        venue, base / "run", VirtualClock(start=1000.0, wall=venue.start_wall), liveness=DEMO_LIVENESS
+    )
     try:
         await fleet.start()
         await fleet.run_until(venue.duration_s + AFTER_S, step_s=STEP_S)
@@ -147,10 +168,28 @@ async def _run_hour(base: Path) -> HourRun:
         summary = {s.name: s for s in await fleet.summary()}
         t2 = time.perf_counter()
         export = base / "hour.npz"
-        code, out = await cli_async(["collector", "export", "--from", repr(venue.start_wall),
-                                     "--to", repr(venue.start_wall + venue.duration_s), "--bin", "1",
-                                     "--format", "npz", "--out", str(export), "--collector", fleet.url,
-                                     "--state-dir", str(fleet.state_dir), "--timeout", "240"])
+        code, out = await cli_async(
+            [
+                "collector",
+                "export",
+                "--from",
+                repr(venue.start_wall),
+                "--to",
+                repr(venue.start_wall + venue.duration_s),
+                "--bin",
+                "1",
+                "--format",
+                "npz",
+                "--out",
+                str(export),
+                "--collector",
+                fleet.url,
+                "--state-dir",
+                str(fleet.state_dir),
+                "--timeout",
+                "240",
+            ]
+        )
         assert code == 0, out
         timings["export_s"] = time.perf_counter() - t2
         power_off_at = dict(fleet.power_off_log)
@@ -158,17 +197,30 @@ async def _run_hour(base: Path) -> HourRun:
         await fleet.close()
     db = fleet.state_dir / "collector.sqlite"
     with contextlib.closing(sqlite3.connect(f"file:{db}?mode=ro", uri=True)) as con:
-        first = dict(con.execute("SELECT b.name, min(c.t2) FROM clock_samples c JOIN boards b ON b.id = c.board_id "
-                                 "GROUP BY b.name").fetchall())
+        first = dict(
+            con.execute(
+                "SELECT b.name, min(c.t2) FROM clock_samples c JOIN boards b ON b.id = c.board_id "
+                "GROUP BY b.name"
+            ).fetchall()
+        )
     t3 = time.perf_counter()
     dry_runs = await dry_task
     noise = await noise_fut
     pool.shutdown()
     timings["waited_for_references_s"] = time.perf_counter() - t3
     timings["total_s"] = time.perf_counter() - t0
-    return HourRun(venue=venue, db=db, summary=summary, changes=state_changes(db), export=export, dry_runs=dry_runs,
-                   noise=noise, power_off_at=power_off_at,
-                   first_exchange_t={b: t - venue.start_wall for b, t in first.items()}, timings=timings)
+    return HourRun(
+        venue=venue,
+        db=db,
+        summary=summary,
+        changes=state_changes(db),
+        export=export,
+        dry_runs=dry_runs,
+        noise=noise,
+        power_off_at=power_off_at,
+        first_exchange_t={b: t - venue.start_wall for b, t in first.items()},
+        timings=timings,
+    )
 
 
 @pytest.fixture(scope="module")
@@ -185,6 +237,7 @@ def hour(tmp_path_factory: pytest.TempPathFactory) -> HourRun:
 
 
 # ---------------------------------------------------------------- checks
+
 
 def _t(run: HourRun, at: float) -> float:
     # The collector's virtual wall clock reads start_wall at the recording's start.
@@ -212,7 +265,11 @@ def _first(run: HourRun, board: str, state: str) -> float | None:
 
 
 def _left_live_before(run: HourRun, board: str, t: float) -> list[tuple[float, str]]:
-    return [(_t(run, at), new) for at, b, _, new in run.changes if b == board and new != "live" and _t(run, at) < t]
+    return [
+        (_t(run, at), new)
+        for at, b, _, new in run.changes
+        if b == board and new != "live" and _t(run, at) < t
+    ]
 
 
 def test_faults_flagged_within_a_minute_and_never_before(hour: HourRun):
@@ -240,13 +297,19 @@ def test_faults_flagged_within_a_minute_and_never_before(hour: HourRun):
     detectable = hour.first_exchange_t["u2-a"] + span / (1 + u2.skew_ppm * 1e-6)
     drifting = _first(hour, "u2-a", "drifting")
     # (1 ms of slack: float64 resolution near 1.8e9 s is a few tenths of a microsecond.)
-    assert drifting is not None and detectable - 1e-3 <= drifting <= detectable + LIMIT_S, (detectable, drifting)
+    assert drifting is not None and detectable - 1e-3 <= drifting <= detectable + LIMIT_S, (
+        detectable,
+        drifting,
+    )
     assert not _left_live_before(hour, "u2-a", detectable - 1e-3)
     delays["u2-a drifting"] = drifting - detectable
 
     # The faults stay flagged to the end, and nobody else is ever anything but live.
-    assert {n: hour.summary[n].state for n in ("u3-a", "g2-a", "u2-a")} == \
-        {"u3-a": "silent", "g2-a": "deaf", "u2-a": "drifting"}
+    assert {n: hour.summary[n].state for n in ("u3-a", "g2-a", "u2-a")} == {
+        "u3-a": "silent",
+        "g2-a": "deaf",
+        "u2-a": "drifting",
+    }
     for name, s in hour.summary.items():
         if name not in ("u3-a", "g2-a", "u2-a"):
             assert s.state == "live", (name, s)

@@ -60,9 +60,14 @@ def test_the_wheel_holds_one_namespace_and_its_package_data(wheel):
     names = zipfile.ZipFile(wheel).namelist()
     tops = {n.split("/")[0] for n in names}
     assert tops == {"listenpost", f"{wheel.name.split('-')[0]}-{wheel.name.split('-')[1]}.dist-info"}
-    for data in ("listenpost/systemd/listenpost-agent.service", "listenpost/systemd/listenpost-collector.service",
-                 "listenpost/replay_logs/truth.json", "listenpost/replay_logs/g0-a.btsnoop.gz",
-                 "listenpost/scenarios/brackenford.yaml", "listenpost/collector/web/templates/health.html"):
+    for data in (
+        "listenpost/systemd/listenpost-agent.service",
+        "listenpost/systemd/listenpost-collector.service",
+        "listenpost/replay_logs/truth.json",
+        "listenpost/replay_logs/g0-a.btsnoop.gz",
+        "listenpost/scenarios/brackenford.yaml",
+        "listenpost/collector/web/templates/health.html",
+    ):
         assert data in names
     assert any(n.endswith("licenses/LICENSE") for n in names)
 
@@ -82,8 +87,16 @@ def test_agent_only_environment_runs_the_agent_and_holds_no_collector_dependency
     for recording in ("g0-a.jsonl.gz", "g0-a.btsnoop.gz"):
         argv = ["agent", "replay", "--dry-run", "--fast", "--config", cfg, "--tags"]
         installed = run([lp, *argv, logs / "tags.txt", logs / recording])
-        checkout = run([sys.executable, "-m", "listenpost", *argv, ROOT / "replay_logs" / "tags.txt",
-                        ROOT / "replay_logs" / recording])
+        checkout = run(
+            [
+                sys.executable,
+                "-m",
+                "listenpost",
+                *argv,
+                ROOT / "replay_logs" / "tags.txt",
+                ROOT / "replay_logs" / recording,
+            ]
+        )
         assert installed.returncode == 0, installed.stderr[-2000:]
         assert installed.stdout.count("\n") > 1000
         assert installed.stdout == checkout.stdout
@@ -106,8 +119,23 @@ def serving(lp: Path, state: Path, config: Path) -> Iterator[str]:
     port = free_port()
     url = f"http://127.0.0.1:{port}"
     log = open(state.parent / "serve.log", "w")  # noqa: SIM115 - closed below
-    proc = subprocess.Popen([str(lp), "collector", "serve", "--state-dir", str(state), "--config", str(config),
-                             "--port", str(port), "--log-format", "json"], stdout=log, stderr=subprocess.STDOUT)
+    proc = subprocess.Popen(
+        [
+            str(lp),
+            "collector",
+            "serve",
+            "--state-dir",
+            str(state),
+            "--config",
+            str(config),
+            "--port",
+            str(port),
+            "--log-format",
+            "json",
+        ],
+        stdout=log,
+        stderr=subprocess.STDOUT,
+    )
     try:
         deadline = time.monotonic() + 60  # bounded wait for the port, not a speed assertion
         while True:
@@ -136,8 +164,23 @@ def test_collector_extra_serves_enrolls_stores_a_replay_and_runs_the_demo(collec
         assert tags.returncode == 0, tags.stderr
 
         bundle = tmp_path / "bundle"
-        added = run([lp, "collector", "board", "add", "g0-a", "--room", "G0 Foyer", "--floor", "ground",
-                     "--bundle", bundle, "--json", *admin])
+        added = run(
+            [
+                lp,
+                "collector",
+                "board",
+                "add",
+                "g0-a",
+                "--room",
+                "G0 Foyer",
+                "--floor",
+                "ground",
+                "--bundle",
+                bundle,
+                "--json",
+                *admin,
+            ]
+        )
         assert added.returncode == 0, added.stderr
         code = json.loads(added.stdout)["code"]
         user_data = bundle / "user-data"
@@ -149,16 +192,31 @@ def test_collector_extra_serves_enrolls_stores_a_replay_and_runs_the_demo(collec
             pytest.fail("cloud-init is required (LISTENPOST_REQUIRE_TOOLS=1) but not installed")
 
         board_state = tmp_path / "board"
-        enrolled = run([lp, "agent", "enroll", "--collector", url, "--code", code, "--state-dir", board_state])
+        enrolled = run(
+            [lp, "agent", "enroll", "--collector", url, "--code", code, "--state-dir", board_state]
+        )
         assert enrolled.returncode == 0, enrolled.stderr
         board_cfg = board_state / "agent.yaml"
         uploaded = run([lp, "agent", "replay", "--config", board_cfg, "--fast", logs / "g0-a.jsonl.gz"])
         assert uploaded.returncode == 0, uploaded.stderr[-3000:]
-        expected = run([lp, "agent", "replay", "--dry-run", "--fast", "--config", board_cfg,
-                        "--tags", logs / "tags.txt", logs / "g0-a.jsonl.gz"]).stdout.count("\n")
+        expected = run(
+            [
+                lp,
+                "agent",
+                "replay",
+                "--dry-run",
+                "--fast",
+                "--config",
+                board_cfg,
+                "--tags",
+                logs / "tags.txt",
+                logs / "g0-a.jsonl.gz",
+            ]
+        ).stdout.count("\n")
     with contextlib.closing(sqlite3.connect(f"file:{state / 'collector.sqlite'}?mode=ro", uri=True)) as db:
-        (stored,) = db.execute("SELECT count(*) FROM readings r JOIN boards b ON b.id = r.board_id "
-                               "WHERE b.name = 'g0-a'").fetchone()
+        (stored,) = db.execute(
+            "SELECT count(*) FROM readings r JOIN boards b ON b.id = r.board_id WHERE b.name = 'g0-a'"
+        ).fetchone()
     assert expected > 1000 and stored == expected
 
     summary = tmp_path / "demo.json"
