@@ -316,13 +316,11 @@ def tls_context(settings: Any) -> ssl.SSLContext | None:
 
 def _serve(args: argparse.Namespace) -> int:
     import structlog
-    from aiohttp import web
 
     from listenpost.collector.app import create_app
     from listenpost.collector.config import load_settings
     from listenpost.core.clock import SystemClock
     from listenpost.core.logs import configure
-    from listenpost.core.notify import Notifier
 
     settings = load_settings(
         args.config, state_dir=str(args.state_dir), db_url=args.db, host=args.host, port=args.port
@@ -330,23 +328,46 @@ def _serve(args: argparse.Namespace) -> int:
     configure(args.log_format)
     ssl_ctx = tls_context(settings)
     app = create_app(settings, clock=SystemClock())
-    notifier = Notifier()
-
-    async def notify_ctx(app: web.Application) -> Any:
-        url = f"{'https' if ssl_ctx else 'http'}://{settings.host}:{settings.port}"
-        structlog.get_logger("listenpost.collector.cli").info(
-            "collector_listening", url=url, health_page=url + "/", public_url=settings.public_url
-        )
-        notifier.ready(f"listening on {url}")
-        task = asyncio.create_task(_watchdog(notifier)) if notifier.watchdog_interval else None
-        yield
-        notifier.stopping()
-        if task is not None:
-            task.cancel()
-
-    app.cleanup_ctx.append(notify_ctx)
-    web.run_app(app, host=settings.host, port=settings.port, ssl_context=ssl_ctx, print=None, access_log=None)
+    log = structlog.get_logger("listenpost.collector.cli")
+    try:
+        asyncio.run(_serve_until_signal(app, settings, ssl_ctx, log))
+    except OSError as e:
+        # the port is taken or the address is not ours: say so once, before READY was ever sent
+        why = os.strerror(e.errno) if e.errno else str(e)
+        print(f"listenpost: cannot listen on {settings.host}:{settings.port}: {why}", file=sys.stderr)
+        return 2
     return 0
+
+
+async def _serve_until_signal(app: Any, settings: Any, ssl_ctx: Any, log: Any) -> None:
+    """Bind, then say READY and log ``collector_listening``; serve until SIGTERM or SIGINT."""
+    import signal
+
+    from aiohttp import web
+
+    from listenpost.core.notify import Notifier
+
+    runner = web.AppRunner(app, access_log=None)
+    await runner.setup()
+    try:
+        site = web.TCPSite(runner, settings.host, settings.port, ssl_context=ssl_ctx)
+        await site.start()  # raises OSError if the port cannot be bound
+        url = f"{'https' if ssl_ctx else 'http'}://{settings.host}:{settings.port}"
+        log.info("collector_listening", url=url, health_page=url + "/", public_url=settings.public_url)
+        notifier = Notifier()
+        notifier.ready(f"listening on {url}")
+        watchdog = asyncio.create_task(_watchdog(notifier)) if notifier.watchdog_interval else None
+        stop = asyncio.Event()
+        loop = asyncio.get_running_loop()
+        for sig in (signal.SIGTERM, signal.SIGINT):
+            loop.add_signal_handler(sig, stop.set)
+        await stop.wait()
+        log.info("collector_stopping")
+        notifier.stopping()
+        if watchdog is not None:
+            watchdog.cancel()
+    finally:
+        await runner.cleanup()
 
 
 async def _watchdog(notifier: Any) -> None:

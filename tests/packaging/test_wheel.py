@@ -18,7 +18,7 @@ import socket
 import sqlite3
 import subprocess
 import sys
-import time
+import threading
 import urllib.request
 from collections.abc import Iterator
 from pathlib import Path
@@ -116,40 +116,28 @@ def free_port() -> int:
 
 @contextlib.contextmanager
 def serving(lp: Path, state: Path, config: Path) -> Iterator[str]:
+    """A real `collector serve`, yielded once it logs ``collector_listening`` (logged after the bind)."""
     port = free_port()
     url = f"http://127.0.0.1:{port}"
-    log = open(state.parent / "serve.log", "w")  # noqa: SIM115 - closed below
-    proc = subprocess.Popen(
-        [
-            str(lp),
-            "collector",
-            "serve",
-            "--state-dir",
-            str(state),
-            "--config",
-            str(config),
-            "--port",
-            str(port),
-            "--log-format",
-            "json",
-        ],
-        stdout=log,
-        stderr=subprocess.STDOUT,
-    )
+    argv = [str(lp), "collector", "serve", "--state-dir", str(state), "--config", str(config)]
+    argv += ["--port", str(port), "--log-format", "json"]
+    proc = subprocess.Popen(argv, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+    seen: list[str] = []
     try:
-        deadline = time.monotonic() + 60  # bounded wait for the port, not a speed assertion
-        while True:
-            assert proc.poll() is None, (state.parent / "serve.log").read_text()[-3000:]
-            with contextlib.suppress(OSError):
-                urllib.request.urlopen(url + "/v1/status", timeout=5).read()
+        assert proc.stdout is not None
+        for line in proc.stdout:  # bounded by pytest-timeout; EOF if serve dies
+            seen.append(line)
+            if '"collector_listening"' in line:
                 break
-            assert time.monotonic() < deadline, "collector never answered"
-            time.sleep(0.2)
+        else:
+            raise AssertionError("collector serve exited before listening:\n" + "".join(seen)[-3000:])
+        drain = threading.Thread(target=seen.extend, args=(proc.stdout,), daemon=True)
+        drain.start()  # keeps the pipe from filling while the test runs
+        urllib.request.urlopen(url + "/v1/status", timeout=10).read()  # listening means answering
         yield url
     finally:
         proc.terminate()
         proc.wait(timeout=60)
-        log.close()
 
 
 def test_collector_extra_serves_enrolls_stores_a_replay_and_runs_the_demo(collector_env, tmp_path):
