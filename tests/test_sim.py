@@ -28,6 +28,7 @@ from listenpost.core.settings import parse_rule
 from listenpost.sim.generate import generate, simulate
 from listenpost.sim.radio import mean_rssi_dbm
 from listenpost.sim.scenario import builtin_path, load_scenario, parse_scenario
+from listenpost.sim.truth import read_truth
 from listenpost.sim.venue import Venue
 
 REPO = Path(__file__).resolve().parents[1]
@@ -339,6 +340,28 @@ def test_faults_as_specified(venue_run):
         b = boards[name]
         assert name == "u2-a" or abs(b["skew_ppm"]) <= 30
         assert abs(b["true_offset_db"]) <= 4
+
+
+def test_truth_reader_and_writer_share_one_schema(venue_run, tmp_path):
+    """Every board entry the simulator wrote reads back into `BoardTruth` and writes out unchanged."""
+    out, _, doc = venue_run
+    truth = read_truth(out)
+    assert [b.name for b in truth.boards] == sorted(doc["boards"])
+    for b in truth.boards:
+        assert b.entry() == doc["boards"][b.name]
+        assert b.recording == out / b.file and b.recording.exists()
+        assert b.floor in doc["venue"]["floors"] and b.room_label.startswith(b.room + " ")
+    assert truth.document == doc and truth.start_wall == doc["start_wall"]
+    (tmp_path / "tags.txt").write_text("")
+    (tmp_path / "g0-a.jsonl.gz").symlink_to(out / "g0-a.jsonl.gz")
+    bad = {**doc, "version": doc["version"] + 1}
+    (tmp_path / "truth.json").write_text(json.dumps(bad))
+    with pytest.raises(ConfigError, match="format/version"):
+        read_truth(tmp_path)
+    broken = {**doc, "boards": {"g0-a": {k: v for k, v in doc["boards"]["g0-a"].items() if k != "boot"}}}
+    (tmp_path / "truth.json").write_text(json.dumps(broken))
+    with pytest.raises(ConfigError, match=r"boards\.g0-a\.boot: is required"):
+        read_truth(tmp_path)
 
 
 def test_recordings_decode_to_registered_tags_and_noise(venue_run):

@@ -127,13 +127,13 @@ def _configure_logs(path: Path) -> tuple[Any, _LevelCounter]:
 
 def run_command(args: argparse.Namespace) -> int:
     """``listenpost demo``."""
-    from listenpost.demo.fleet import load_venue
+    from listenpost.sim.truth import read_truth
 
     if not args.speed > 0:
         raise ConfigError(f"--speed: must be > 0, got {args.speed}")
     if not 0 <= args.port <= 65535:
         raise ConfigError(f"--port: must be 0..65535, got {args.port}")
-    venue = load_venue(args.replay_dir)
+    venue = read_truth(args.replay_dir)
     state_dir = _state_dir(args.state_dir).resolve()
     fh, counter = _configure_logs(state_dir / "demo.log")
     try:

@@ -12,7 +12,7 @@ Outputs in ``out_dir``:
   the board's own monotonic clock: ``t_board = (t_true − boot_true)·(1 + skew)``, rounded to the ms.
 - ``<board>.btsnoop.gz`` — the same adverts of ``btsnoop_board`` as a btsnoop capture (datalink 2001,
   gzip'd like the recordings; the project's reader takes it as is, ``btmon -r`` after ``gunzip``).
-- ``truth.json`` — what really happened (see `write_truth`).
+- ``truth.json`` — what really happened (`truth_document`; its schema is `listenpost.sim.truth`).
 - ``tags.txt`` — registered tag identities, one canonical ID per line.
 
 Same scenario, seed and duration → byte-identical files (gzip mtime 0, sorted JSON keys).
@@ -22,7 +22,6 @@ from __future__ import annotations
 
 import enum
 import gzip
-import json
 import math
 import os
 import shutil
@@ -39,6 +38,7 @@ import structlog
 from listenpost.core.records import Advert, uuid16_to_128
 from listenpost.sim.radio import mean_rssi_dbm, sample_reports
 from listenpost.sim.scenario import FixedNoise, NoiseKind, Placed, Scenario
+from listenpost.sim.truth import TRUTH_FORMAT, TRUTH_NOTES, TRUTH_VERSION, BoardTruth, write_truth
 from listenpost.sim.venue import Venue
 from listenpost.sim.visitors import Holder, Track, simulate_visitors
 
@@ -47,7 +47,6 @@ log = structlog.get_logger(__name__)
 APPLE_COMPANY_ID = 0x004C
 """Company ID under which iBeacon-format frames travel (Bluetooth SIG assigned numbers)."""
 EDDYSTONE_UUID = uuid16_to_128(0xFEAA)
-TRUTH_FORMAT = "listenpost-sim-truth"
 
 
 class DeviceKind(enum.Enum):
@@ -82,7 +81,7 @@ class Device:
 
 
 @dataclass(frozen=True, slots=True)
-class BoardTruth:
+class DrawnBoard:
     """A board's hidden parameters, as drawn for this run."""
 
     name: str
@@ -128,7 +127,7 @@ class Simulation:
     scenario: Scenario
     duration_s: float
     devices: tuple[Device, ...]
-    boards: tuple[BoardTruth, ...]
+    boards: tuple[DrawnBoard, ...]
     heard: tuple[Heard, ...]
     """Per board, in `boards` order."""
     visitors: int
@@ -318,7 +317,7 @@ def _fixed_noise(
     )
 
 
-def _boards(scenario: Scenario, rng: np.random.Generator) -> tuple[BoardTruth, ...]:
+def _boards(scenario: Scenario, rng: np.random.Generator) -> tuple[DrawnBoard, ...]:
     c = scenario.clocks
     out = []
     for b in scenario.boards:
@@ -329,7 +328,7 @@ def _boards(scenario: Scenario, rng: np.random.Generator) -> tuple[BoardTruth, .
         wall = float(rng.uniform(-c.wall_error_s_max, c.wall_error_s_max))
         boot = str(uuid.UUID(bytes=bytes(rng.integers(0, 256, 16, dtype=np.uint8)), version=4))
         out.append(
-            BoardTruth(
+            DrawnBoard(
                 name=b.name,
                 room=b.room,
                 pos=_pos(scenario, Placed(b.room, b.at)),
@@ -502,22 +501,24 @@ def truth_document(sim: Simulation, counts: dict[str, int] | None = None) -> dic
     """What really happened, as one JSON-ready mapping."""
     s = sim.scenario
     names = tuple(r.name for r in s.rooms)
-    boards = {}
-    for b, h in zip(sim.boards, sim.heard, strict=True):
-        boards[b.name] = {
-            "room": b.room,
-            "pos_m": [round(v, 3) for v in b.pos],
-            "true_offset_db": b.offset_db,
-            "skew_ppm": b.skew_ppm,
-            "boot": b.boot,
-            "uptime_at_start_s": b.uptime_at_start_s,
-            "wall_error_s": b.wall_error_s,
-            "power_off_at_s": b.power_off_at_s,
-            "radio_hang_at_s": b.radio_hang_at_s,
-            "adverts": int(len(h.t_true)) if counts is None else counts[b.name],
-            "last_advert_true_s": round(float(h.t_true[-1]), 3) if len(h.t_true) else None,
-            "file": f"{b.name}.jsonl.gz",
-        }
+    boards = {
+        b.name: BoardTruth(
+            name=b.name,
+            room=b.room,
+            pos_m=b.pos,
+            file=f"{b.name}.jsonl.gz",
+            boot=b.boot,
+            skew_ppm=b.skew_ppm,
+            uptime_at_start_s=b.uptime_at_start_s,
+            wall_error_s=b.wall_error_s,
+            true_offset_db=b.offset_db,
+            adverts=int(len(h.t_true)) if counts is None else counts[b.name],
+            last_advert_true_s=round(float(h.t_true[-1]), 3) if len(h.t_true) else None,
+            power_off_at_s=b.power_off_at_s,
+            radio_hang_at_s=b.radio_hang_at_s,
+        ).entry()
+        for b, h in zip(sim.boards, sim.heard, strict=True)
+    }
     tags = {}
     for d in sim.devices:
         if d.tag_id is not None:
@@ -528,16 +529,12 @@ def truth_document(sim: Simulation, counts: dict[str, int] | None = None) -> dic
             }
     return {
         "format": TRUTH_FORMAT,
-        "version": 1,
+        "version": TRUTH_VERSION,
         "scenario": s.name,
         "seed": s.seed,
         "duration_s": sim.duration_s,
         "start_wall": s.start_wall,
-        "notes": (
-            "Times are true seconds from recording start. Board time t_board = (t_true + uptime_at_start_s)"
-            " * (1 + skew_ppm*1e-6). true_offset_db is what the board's adapter adds to every report;"
-            " the calibrated correction is its negative. Segments are [t0, t1, room, holder]."
-        ),
+        "notes": TRUTH_NOTES,
         "venue": {
             "ibeacon_uuid": s.tags.venue_uuid,
             "ibeacon_major": s.tags.ibeacon_major,
@@ -645,7 +642,7 @@ def generate(
     t0 = time.perf_counter()
     truth = truth_document(sim, counts)
     truth["btsnoop"] = f"{btsnoop_board}.btsnoop.gz" if btsnoop_board else None
-    _write_atomic(out / "truth.json", json.dumps(truth, sort_keys=True, separators=(",", ":")) + "\n")
+    write_truth(out / "truth.json", truth)
     _write_atomic(
         out / "tags.txt",
         f"# registered tags of scenario {scenario.name} (seed {scenario.seed})\n"

@@ -16,7 +16,8 @@ from pathlib import Path
 
 from listenpost.collector.models.liveness import LivenessSettings
 from listenpost.core.clock import VirtualClock
-from listenpost.demo.fleet import Fleet, load_venue
+from listenpost.demo.fleet import Fleet
+from listenpost.sim.truth import read_truth
 from tests.e2e.conftest import REPLAY_LOGS, cli_async, dry_run, dry_run_config, stored_readings
 
 BOARD = "g3-a"
@@ -33,7 +34,7 @@ async def _state(fleet: Fleet) -> dict:
 async def test_uploaded_readings_equal_the_dry_run_and_status_follows_the_board(
     tmp_path: Path, e2e_logs: Path
 ):
-    venue = load_venue(REPLAY_LOGS)
+    venue = read_truth(REPLAY_LOGS)
     truth = venue.board(BOARD)
     expected = dry_run(
         truth.recording,

@@ -38,7 +38,9 @@ import structlog
 from listenpost.collector.models.liveness import LivenessSettings
 from listenpost.core.clock import VirtualClock
 from listenpost.demo import DEMO_LIVENESS
-from listenpost.demo.fleet import BoardSummary, Fleet, Venue, load_venue
+from listenpost.demo.fleet import Fleet
+from listenpost.demo.outcome import BoardSummary
+from listenpost.sim.truth import Truth, read_truth
 from tests.e2e.conftest import (
     all_text,
     cli_async,
@@ -63,7 +65,7 @@ LIMIT_S = 60.0
 
 @dataclass
 class HourRun:
-    venue: Venue
+    venue: Truth
     db: Path
     summary: dict[str, BoardSummary]
     changes: list[tuple[float, str, str | None, str]]
@@ -128,7 +130,7 @@ async def _simulate(out: Path) -> None:
     assert proc.returncode == 0, err.decode()[-2000:]
 
 
-def _dry_runs(venue: Venue, out: Path) -> dict[str, Path]:
+def _dry_runs(venue: Truth, out: Path) -> dict[str, Path]:
     files = {}
     for b in venue.boards:
         cfg = dry_run_config(out / f"{b.name}.yaml", b.name, venue.decode_rules)
@@ -143,7 +145,7 @@ async def _run_hour(base: Path) -> HourRun:
     sim_dir, dry_dir = base / "sim", base / "dry"
     dry_dir.mkdir()
     await _simulate(sim_dir)
-    venue = load_venue(sim_dir)
+    venue = read_truth(sim_dir)
     timings["simulate_s"] = time.perf_counter() - t0
 
     # The references run beside the fleet, in other processes (the fleet itself is one event loop).
@@ -153,8 +155,8 @@ async def _run_hour(base: Path) -> HourRun:
         pool,
         scan_noise,
         str(sim_dir),
-        [t["address"] for t in venue.truth["tags"].values()],
-        venue.truth["venue"]["ibeacon_uuid"],
+        [t["address"] for t in venue.document["tags"].values()],
+        venue.document["venue"]["ibeacon_uuid"],
     )
 
     t1 = time.perf_counter()
@@ -325,7 +327,7 @@ def test_no_unregistered_identity_anywhere_in_the_store(hour: HourRun):
     text = all_text(hour.db)
     low = text.lower()
     # Positive control: the same scan sees registered identities where they belong (tags table).
-    venue_uuid = hour.venue.truth["venue"]["ibeacon_uuid"]
+    venue_uuid = hour.venue.document["venue"]["ibeacon_uuid"]
     assert venue_uuid in low and "lpx:00000001" in low
     found = [a for a in noise["addresses"] if a.lower() in low or a.replace(":", "").lower() in low]
     found += [u for u in noise["uuids"] if u in low or u.replace("-", "") in low]
@@ -377,7 +379,7 @@ def test_export_strongest_board_is_in_the_true_room(hour: HourRun):
     mid = starts - hour.venue.start_wall + 0.5
     agree = heard = 0
     for i, tag in enumerate(tags):
-        segs = hour.venue.truth["tags"].get(tag, {}).get("segments")
+        segs = hour.venue.document["tags"].get(tag, {}).get("segments")
         assert segs, f"{tag}: exported but not in truth.json"
         t0 = np.array([s[0] for s in segs])
         rooms = np.array([s[2] for s in segs])
