@@ -44,6 +44,9 @@ def create_app(
         middlewares=[request_context_middleware(clock=clock), error_middleware()],
         # The board API reads bodies as streams with its own limits; this bounds everything else.
         client_max_size=1024 * 1024,
+        # Bodies arrive undecoded: read_json inflates gzip within its limits and answers any other
+        # Content-Encoding with a JSON 415 (aiohttp's own decoder would answer a plain-text 400).
+        handler_args={"auto_decompress": False},
     )
     app[SETTINGS] = settings
     app[CLOCK] = clock

@@ -18,6 +18,7 @@ from __future__ import annotations
 import os
 import re
 import secrets
+import unicodedata
 from importlib import resources
 from pathlib import Path
 from typing import Any
@@ -25,11 +26,64 @@ from typing import Any
 import yaml
 
 from listenpost.core.errors import ConfigError
+from listenpost.core.settings import BOARD_NAME
 
 AGENT_PREFIX = "/opt/listenpost"
 AGENT_STATE_DIR = "/var/lib/listenpost/agent"
 UNIT_NAME = "listenpost-agent.service"
 UNIT_SOURCE = Path(str(resources.files("listenpost.systemd") / UNIT_NAME))  # package data of the wheel
+
+
+# Control characters (C0, DEL, C1: newlines, escapes), format characters (bidi overrides, zero-width),
+# lone surrogates and the Unicode line/paragraph separators: none belongs in a name, and each can
+# break the line structure of a file or a terminal that shows the name.
+_UNSAFE_CATEGORIES = frozenset({"Cc", "Cf", "Cs", "Zl", "Zp"})
+
+
+USER_DATA_HEADER = (
+    "#cloud-config\n# listenpost board provisioning: README.txt beside this file says what it does.\n"
+)
+
+
+class BadLabel(ConfigError):
+    """An admin-entered value that is refused; ``field`` names it (``room``, ``--room``, ...)."""
+
+    def __init__(self, field: str, reason: str) -> None:
+        super().__init__(f"{field}: {reason}")
+        self.field = field
+        self.reason = reason
+
+
+def check_label(field: str, value: object, *, max_len: int = 100, required: bool = True) -> str | None:
+    """
+    A free-text name an admin entered (room, floor, walk-test room), stripped; the one check the
+    admin API and the CLI both use.
+
+    Raises:
+        BadLabel: not a string, empty, longer than ``max_len``, or holding a control character.
+    """
+    if value is None and not required:
+        return None
+    if not isinstance(value, str) or not value.strip() or len(value) > max_len:
+        raise BadLabel(field, f"must be a non-empty string of at most {max_len} characters")
+    for c in value:
+        if unicodedata.category(c) in _UNSAFE_CATEGORIES:
+            raise BadLabel(field, f"must not contain control characters (found U+{ord(c):04X})")
+    return value.strip()
+
+
+def check_board_name(field: str, value: object) -> str:
+    """
+    A board name (`listenpost.core.settings.BOARD_NAME`): it becomes the board's hostname.
+
+    Raises:
+        BadLabel: anything else.
+    """
+    if not isinstance(value, str) or not BOARD_NAME.fullmatch(value):
+        raise BadLabel(
+            field, "must be 1-63 lower-case letters, digits, '.', '_' or '-', starting with a letter or digit"
+        )
+    return value
 
 
 class _Literal(str):
@@ -91,6 +145,7 @@ def package_spec(package: str | None) -> str:
         ConfigError: more than one word (user-data passes it to pip as a single argument).
     """
     spec = package.strip() if package and package.strip() else default_package()
+    check_label("--package", spec, max_len=4096)
     if any(c.isspace() for c in spec):
         raise ConfigError(f"--package: one pip requirement, URL or path without spaces, got {package!r}")
     return spec
@@ -169,15 +224,14 @@ def build_bundle(
             ["systemctl", "enable", "--now", UNIT_NAME],
         ],
     }
-    user_data = (
-        f"#cloud-config\n# listenpost board {board} ({room}{', floor ' + floor if floor else ''}).\n"
-        f"# The enrollment code works once and expires {expires}.\n"
-        f"# The agent is installed with: pip install {spec}\n"
-        + yaml.dump(cloud, Dumper=_Dumper, sort_keys=False, default_flow_style=None, width=120)
+    # Every value reaches the file through the YAML emitter, which quotes and escapes as needed; the
+    # header is constant, because a name interpolated into it could start a line of its own.
+    user_data = USER_DATA_HEADER + yaml.dump(
+        cloud, Dumper=_Dumper, sort_keys=False, default_flow_style=None, width=120
     )
     meta = {"instance-id": f"listenpost-{board}-{secrets.token_hex(4)}", "local-hostname": board}
     readme = (
-        f"Provisioning bundle for board {board} (room {room}).\n\n"
+        f"Provisioning bundle for board {board} (room {room}{', floor ' + floor if floor else ''}).\n\n"
         "1. Flash the board's OS image to the card.\n"
         "2. Copy user-data and meta-data to the card's boot partition (cloud-init NoCloud).\n"
         "3. Mount the board, power it on; on first boot it installs the agent, enrolls and starts scanning.\n"

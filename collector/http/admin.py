@@ -9,6 +9,7 @@ from __future__ import annotations
 import asyncio
 import dataclasses
 import math
+import re
 import tempfile
 from pathlib import Path
 from typing import Any
@@ -17,7 +18,7 @@ import numpy as np
 import structlog
 from aiohttp import web
 
-from listenpost.collector.http.api import read_json
+from listenpost.collector.http.api import forget_tokens, read_json
 from listenpost.collector.http.auth import (
     bearer_token,
     code_hash,
@@ -26,6 +27,7 @@ from listenpost.collector.http.auth import (
     same_secret,
 )
 from listenpost.collector.http.middlewares import ApiError, bad_field
+from listenpost.collector.provision import BadLabel, check_board_name, check_label
 from listenpost.collector.state import CLOCK, RUNTIME, SETTINGS, STORE
 from listenpost.collector.store import Board, Calibration, Enrollment, Event
 from listenpost.core.errors import DecodeError
@@ -36,6 +38,14 @@ log = structlog.get_logger("listenpost.collector.http.admin")
 
 MAX_TAGS_PER_REQUEST = 100_000
 MAX_EXPORT_SECONDS = 31 * 86400
+MAX_EVENTS = 10_000
+"""Most events one ``GET /v1/admin/events`` returns."""
+MAX_EVENT_ID = 2**63 - 1
+"""Event ids are 64-bit signed integers in both stores."""
+MAX_UNIX_S = 1e11
+"""Upper bound of a time an admin gives (year 5138): past it, no reading can exist."""
+ROOM_MAX = 100
+FLOOR_MAX = 40
 
 
 def require_admin(request: web.Request) -> None:
@@ -54,13 +64,40 @@ async def _json_object(request: web.Request) -> dict[str, Any]:
     return body
 
 
-def _str_field(body: dict[str, Any], name: str, *, required: bool = True, max_len: int = 100) -> str | None:
-    v = body.get(name)
-    if v is None and not required:
-        return None
-    if not isinstance(v, str) or not v.strip() or len(v) > max_len:
-        raise bad_field(name, f"must be a non-empty string of at most {max_len} characters")
-    return v.strip()
+def _str_field(
+    body: dict[str, Any], name: str, *, required: bool = True, max_len: int = 100, field: str | None = None
+) -> str | None:
+    """``body[name]`` through `check_label` (the CLI's check too); ``field`` names it in the error."""
+    try:
+        return check_label(field or name, body.get(name), max_len=max_len, required=required)
+    except BadLabel as e:
+        raise bad_field(e.field, e.reason) from e
+
+
+def _query_int(request: web.Request, name: str, default: int, lo: int, hi: int) -> int:
+    """An integer query parameter in ``lo..hi``: plain decimal digits only, so no 500 from a store overflow."""
+    raw = request.query.get(name)
+    if raw is None:
+        return default
+    if not re.fullmatch(r"-?[0-9]{1,20}", raw) or not lo <= int(raw) <= hi:
+        raise bad_field(name, f"must be an integer in {lo}..{hi}, got {raw[:40]!r}")
+    return int(raw)
+
+
+def _query_flag(request: web.Request, name: str, default: bool) -> bool:
+    raw = request.query.get(name)
+    if raw is None:
+        return default
+    if raw not in ("0", "1"):
+        raise bad_field(name, f"must be 0 or 1, got {raw[:40]!r}")
+    return raw == "1"
+
+
+def _query_board(request: web.Request, raw: str, name: str = "board") -> str:
+    try:
+        return check_board_name(name, raw)
+    except BadLabel as e:
+        raise bad_field(e.field, e.reason) from e
 
 
 def _number_field(
@@ -87,7 +124,8 @@ def board_json(b: Board) -> dict[str, Any]:
 
 async def _board_or_404(request: web.Request) -> Board:
     name = request.match_info["name"]
-    board = await request.app[STORE].get_board(name)
+    # A name outside the grammar cannot exist; it never reaches the store (NUL is not valid SQL text).
+    board = await request.app[STORE].get_board(name) if BOARD_NAME.fullmatch(name) else None
     if board is None:
         raise ApiError(404, "unknown_board", f"no board named {name!r}", field="name")
     return board
@@ -103,14 +141,12 @@ async def add_board(request: web.Request) -> web.Response:
     """``POST /v1/admin/boards`` ``{name, room, floor?}`` → 201 with the one-time enrollment code."""
     require_admin(request)
     body = await _json_object(request)
-    name = body.get("name")
-    if not isinstance(name, str) or not BOARD_NAME.fullmatch(name):
-        raise bad_field(
-            "name",
-            "must be 1-63 lower-case letters, digits, '.', '_' or '-', starting with a letter or digit",
-        )
-    room = _str_field(body, "room")
-    floor = _str_field(body, "floor", required=False, max_len=40)
+    try:
+        name = check_board_name("name", body.get("name"))
+    except BadLabel as e:
+        raise bad_field(e.field, e.reason) from e
+    room = _str_field(body, "room", max_len=ROOM_MAX)
+    floor = _str_field(body, "floor", required=False, max_len=FLOOR_MAX)
     store, now = request.app[STORE], request.app[CLOCK].time()
     if await store.get_board(name) is not None:
         raise ApiError(
@@ -125,6 +161,7 @@ async def add_board(request: web.Request) -> web.Response:
         await store.add_board(board, Enrollment(name, code_hash(code), expires))
     except ValueError as e:
         raise ApiError(409, "board_exists", str(e), field="name") from e
+    forget_tokens(request.app)
     log.info("board_added", board=name, room=room, floor=floor)
     return web.json_response(
         {
@@ -139,7 +176,7 @@ async def add_board(request: web.Request) -> web.Response:
 
 async def list_boards(request: web.Request) -> web.Response:
     require_admin(request)
-    boards = await request.app[STORE].list_boards(include_retired=request.query.get("retired", "1") != "0")
+    boards = await request.app[STORE].list_boards(include_retired=_query_flag(request, "retired", True))
     return web.json_response({"boards": [board_json(b) for b in boards]})
 
 
@@ -174,7 +211,7 @@ async def retire_board(request: web.Request) -> web.Response:
     board = await _board_or_404(request)
     now = request.app[CLOCK].time()
     await request.app[STORE].retire_board(board.name, now)
-    request.app[RUNTIME].token_cache.clear()  # the token must stop working here at once
+    forget_tokens(request.app)  # the token must stop working here at once
     await request.app[STORE].add_event(Event(now, board.name, "retired", {}))
     log.info("board_retired", board=board.name)
     return web.json_response({"name": board.name, "retired_at": now})
@@ -188,6 +225,7 @@ async def reissue_board(request: web.Request) -> web.Response:
         raise ApiError(409, "board_retired", f"board {board.name!r} is retired", field="name")
     code, expires = await _issue_code(request, board.name)
     await request.app[STORE].new_enrollment(Enrollment(board.name, code_hash(code), expires))
+    forget_tokens(request.app)
     log.info("enrollment_reissued", board=board.name)
     return web.json_response(
         {
@@ -248,7 +286,7 @@ def _without_rule(ids: list[str], rules: Any) -> dict[str, int]:
 
 async def list_tags(request: web.Request) -> web.Response:
     require_admin(request)
-    tags = await request.app[STORE].list_tags(include_retired=request.query.get("retired") == "1")
+    tags = await request.app[STORE].list_tags(include_retired=_query_flag(request, "retired", False))
     return web.json_response({"tags": sorted(tags)})
 
 
@@ -262,13 +300,10 @@ async def retire_tags(request: web.Request) -> web.Response:
 async def events(request: web.Request) -> web.Response:
     """``GET /v1/admin/events?since=ID&limit=N&board=NAME``: events after ``since``, oldest first."""
     require_admin(request)
-    try:
-        since = int(request.query.get("since", "0"))
-        limit = min(int(request.query.get("limit", "1000")), 10_000)
-    except ValueError as e:
-        raise bad_field("since", "since and limit must be integers") from e
+    since = _query_int(request, "since", 0, 0, MAX_EVENT_ID)
+    limit = _query_int(request, "limit", 1000, 1, MAX_EVENTS)
     board = request.query.get("board")
-    if board is not None and await request.app[STORE].get_board(board) is None:
+    if board is not None and await request.app[STORE].get_board(_query_board(request, board)) is None:
         raise ApiError(404, "unknown_board", f"no board named {board!r}", field="board")
     evs = await request.app[STORE].events(since_id=since, limit=limit, board=board)
     return web.json_response({"events": [event_json(e) for e in evs]})
@@ -285,9 +320,9 @@ def _query_time(request: web.Request, name: str) -> float:
     try:
         v = float(raw)
     except ValueError as e:
-        raise bad_field(name, f"must be Unix seconds, got {raw!r}") from e
-    if not math.isfinite(v):
-        raise bad_field(name, f"must be finite, got {raw!r}")
+        raise bad_field(name, f"must be Unix seconds, got {raw[:40]!r}") from e
+    if not 0 <= v <= MAX_UNIX_S:  # also refuses nan and inf
+        raise bad_field(name, f"must be Unix seconds in 0..{MAX_UNIX_S:.0f}, got {raw[:40]!r}")
     return v
 
 
@@ -310,10 +345,15 @@ async def export(request: web.Request) -> web.StreamResponse:
     fmt = request.query.get("format", "csv")
     if fmt not in ("csv", "npz"):
         raise bad_field("format", f"must be csv or npz, got {fmt!r}")
-    boards = request.query.getall("board", []) or None
-    tags = request.query.getall("tag", []) or None
+    boards = [_query_board(request, b) for b in request.query.getall("board", [])] or None
+    tags = []
+    for text in request.query.getall("tag", []):
+        try:
+            tags.append(parse_tag_id(text))
+        except DecodeError as e:
+            raise bad_field("tag", str(e)) from e
     store = request.app[STORE]
-    rows = await store.readings(t_from, t_to, boards=boards, tags=tags)
+    rows = await store.readings(t_from, t_to, boards=boards, tags=tags or None)
     all_boards = boards or sorted(b.name for b in await store.list_boards())
     all_tags = tags or sorted(set(rows.tag.tolist()) | set(await store.list_tags()))
 
@@ -400,7 +440,7 @@ async def calibrate(request: web.Request) -> web.Response:
         board.fingerprint,
     )
     await store.set_offset(cal)
-    request.app[RUNTIME].token_cache.clear()  # cached Board records carry the old offset
+    forget_tokens(request.app)  # cached Board records carry the old offset
     await store.add_event(
         Event(
             now,
@@ -447,9 +487,9 @@ async def walktest(request: web.Request) -> web.Response:
     for i, m in enumerate(raw_marks):
         if not isinstance(m, dict):
             raise bad_field(f"marks[{i}]", "must be an object")
-        room = _str_field(m, "room")
-        t0 = _number_field(m, "from", 0, 1e11)
-        t1 = _number_field(m, "to", 0, 1e11)
+        room = _str_field(m, "room", max_len=ROOM_MAX, field=f"marks[{i}].room")
+        t0 = _number_field(m, "from", 0, MAX_UNIX_S)
+        t1 = _number_field(m, "to", 0, MAX_UNIX_S)
         if t1 <= t0:
             raise bad_field(f"marks[{i}].to", "must be after from")
         marks.append((room, t0, t1))

@@ -2,8 +2,8 @@
 Board API v1 (DEVELOPERS.md "Wire protocol v1"): enroll, config, batches, heartbeat.
 
 Every board call but enroll carries ``Authorization: Bearer <board token>``. Bodies are JSON, optionally
-gzip'd; the body as sent and the body after gunzip are both bounded (413), and aiohttp inflates the
-stream in bounded chunks, so a gzip bomb stops at the limit instead of filling memory.
+gzip'd; the body as sent and the body after gunzip are both bounded (413), and `read_json` inflates the
+stream in bounded steps, so a gzip bomb stops at the limit instead of filling memory.
 """
 
 from __future__ import annotations
@@ -11,6 +11,7 @@ from __future__ import annotations
 import hashlib
 import json
 import math
+import zlib
 from typing import Any
 
 import structlog
@@ -57,10 +58,23 @@ async def read_json(request: web.Request, limits: Limits) -> Any:
             413, "too_large", f"body of {sent} bytes is over the {limits.max_body_bytes}-byte limit"
         )
     cap = limits.max_decompressed_bytes if encoding == "gzip" else limits.max_body_bytes
+    # aiohttp hands the body over undecoded (create_app turns its auto_decompress off, so an encoding it
+    # cannot decode reaches this 415 instead of its plain-text 400); gzip is inflated here, never more
+    # than the limit + 1 bytes at a time.
+    inflate = zlib.decompressobj(wbits=16 + zlib.MAX_WBITS) if encoding == "gzip" else None
     parts: list[bytes] = []
-    total = 0
+    total = received = 0
     try:
         while chunk := await request.content.read(_READ_CHUNK):
+            received += len(chunk)
+            if received > limits.max_body_bytes:
+                raise ApiError(413, "too_large", f"body is over the {limits.max_body_bytes}-byte limit")
+            if inflate is not None:
+                if inflate.eof:
+                    raise zlib.error("data after the end of the gzip stream")
+                chunk = inflate.decompress(chunk, cap + 1 - total)
+                if inflate.unconsumed_tail:
+                    total = cap  # more output than the limit allows is waiting
             total += len(chunk)
             if total > cap:
                 raise ApiError(
@@ -70,13 +84,15 @@ async def read_json(request: web.Request, limits: Limits) -> Any:
                     + (" after decompression" if encoding == "gzip" else ""),
                 )
             parts.append(chunk)
+        if inflate is not None and not inflate.eof:
+            raise zlib.error("the gzip stream is truncated")
     except ApiError:
         raise
-    except Exception as e:  # aiohttp's ContentEncodingError and friends: a corrupt gzip stream
+    except Exception as e:  # zlib.error for a corrupt gzip stream; a connection lost mid-body
         raise ApiError(
             400, "bad_encoding", f"body could not be decoded as {encoding}: {e}", field="body"
         ) from e
-    request[BYTES_SENT] = sent if sent is not None else total
+    request[BYTES_SENT] = sent if sent is not None else received
     try:
         return json.loads(b"".join(parts))
     except (ValueError, UnicodeDecodeError) as e:
@@ -84,9 +100,14 @@ async def read_json(request: web.Request, limits: Limits) -> Any:
 
 
 TOKEN_CACHE_SECONDS = 10.0
-"""How long a token lookup is reused. Retiring a board here drops the cache at once; another collector
-on the same database notices within this time."""
+"""How long a token lookup is reused. Retiring, re-enrolling or reissuing a board here drops the cache at
+once (`forget_tokens`); another collector on the same database notices within this time."""
 TOKEN_CACHE_MAX = 10_000
+
+
+def forget_tokens(app: web.Application) -> None:
+    """Drop every cached token lookup: after any credential or board change, the next request asks the store."""
+    app[RUNTIME].token_cache.clear()
 
 
 async def _board_for_token(app: web.Application, token_hash: str) -> Board | None:
@@ -181,6 +202,7 @@ async def enroll(request: web.Request) -> web.Response:
             e.reason
         ]
         raise ApiError(status, f"code_{e.reason.value}", str(e), field="code") from e
+    forget_tokens(app)  # the board's previous token stops working with this very request
     await _flag_fingerprint_change(app, board, before.fingerprint, fingerprint, now)
     log.info("board_enrolled", board=board.name, room=board.room)
     doc, _ = await board_config(app, board)

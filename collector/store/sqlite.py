@@ -22,6 +22,7 @@ import asyncio
 import contextlib
 import json
 import math
+import os
 import sqlite3
 from collections import deque
 from collections.abc import AsyncIterator, Callable, Iterator, Sequence
@@ -200,6 +201,10 @@ class SqliteStore:
         return con
 
     def _open_writer(self) -> None:
+        # Create the file owner-only before SQLite does (it would apply the umask, often 0644); SQLite
+        # gives the -wal and -shm files the mode of the database file.
+        with contextlib.suppress(OSError):  # unopenable: sqlite3 below reports it as before
+            os.close(os.open(self.path, os.O_RDWR | os.O_CREAT, 0o600))
         con = self._connect()
         try:
             mode = con.execute("PRAGMA journal_mode = WAL").fetchone()[0]

