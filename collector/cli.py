@@ -604,10 +604,16 @@ def _check_bundle_possible(args: argparse.Namespace) -> None:
 
 
 def _board_add(args: argparse.Namespace) -> int:
+    from listenpost.collector.provision import FLOOR_MAX, ROOM_MAX, check_board_name, check_label
+
+    # The collector checks the same way; checking here first names the option as typed.
+    body = {
+        "name": check_board_name("name", args.name),
+        "room": check_label("--room", args.room, max_len=ROOM_MAX),
+        "floor": check_label("--floor", args.floor, max_len=FLOOR_MAX, required=False),
+    }
     _check_bundle_possible(args)
-    answer = request(
-        args, "POST", "/v1/admin/boards", body={"name": args.name, "room": args.room, "floor": args.floor}
-    )
+    answer = request(args, "POST", "/v1/admin/boards", body=body)
     return _print_code(args, answer, "added")
 
 
@@ -901,6 +907,8 @@ _CALIBRATION_WARNINGS = {
 
 def read_marks(path: Path) -> list[dict[str, Any]]:
     """Walk-test marks: CSV ``room,from,to``; errors name ``file:line``."""
+    from listenpost.collector.provision import ROOM_MAX, check_label
+
     try:
         text = path.read_text(encoding="utf-8")
     except OSError as e:
@@ -921,7 +929,7 @@ def read_marks(path: Path) -> list[dict[str, Any]]:
             raise ConfigError(f"{where}: room is empty")
         marks.append(
             {
-                "room": row["room"],
+                "room": check_label(f"{where}: room", row["room"], max_len=ROOM_MAX),
                 "from": parse_time(row["from"], f"{where}: from"),
                 "to": parse_time(row["to"], f"{where}: to"),
             }

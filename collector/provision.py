@@ -45,6 +45,12 @@ USER_DATA_HEADER = (
 )
 
 
+ROOM_MAX = 100
+"""Longest room name (characters), in the admin API and the CLI alike."""
+FLOOR_MAX = 40
+"""Longest floor label (characters)."""
+
+
 class BadLabel(ConfigError):
     """An admin-entered value that is refused; ``field`` names it (``room``, ``--room``, ...)."""
 

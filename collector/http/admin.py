@@ -27,7 +27,7 @@ from listenpost.collector.http.auth import (
     same_secret,
 )
 from listenpost.collector.http.middlewares import ApiError, bad_field
-from listenpost.collector.provision import BadLabel, check_board_name, check_label
+from listenpost.collector.provision import FLOOR_MAX, ROOM_MAX, BadLabel, check_board_name, check_label
 from listenpost.collector.state import CLOCK, RUNTIME, SETTINGS, STORE
 from listenpost.collector.store import Board, Calibration, Enrollment, Event
 from listenpost.core.errors import DecodeError
@@ -44,8 +44,6 @@ MAX_EVENT_ID = 2**63 - 1
 """Event ids are 64-bit signed integers in both stores."""
 MAX_UNIX_S = 1e11
 """Upper bound of a time an admin gives (year 5138): past it, no reading can exist."""
-ROOM_MAX = 100
-FLOOR_MAX = 40
 
 
 def require_admin(request: web.Request) -> None:

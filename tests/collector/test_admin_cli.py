@@ -549,3 +549,27 @@ async def test_walktest_room_nobody_heard_is_not_called_wrong(server, tmp_path, 
     assert await cli(server, tmp_path, "walktest", "--tag", TAGS[1], "--marks", str(marks)) == 0
     row = capsys.readouterr().out.splitlines()[2]
     assert "nobody" in row and "NO" not in row.split()
+
+
+@pytest.mark.parametrize(
+    ("option", "value"),
+    [("--room", "G0 Foyer\nbootcmd: [[touch, /pwned]]\n#"), ("--room", "G0\x1b[2J"), ("--floor", "up\rper")],
+)
+async def test_a_control_character_in_a_name_is_refused_naming_the_option(
+    server, tmp_path, capsys, option, value
+):
+    args = ["board", "add", "g0-a", "--room", "G0 Foyer", "--bundle", str(tmp_path / "card")]
+    rc = await cli(server, tmp_path, *args, option, value)
+    err = capsys.readouterr().err
+    assert rc == 2 and f"{option}: must not contain control characters" in err and "Traceback" not in err
+    assert not (tmp_path / "card").exists()
+    assert await cli(server, tmp_path, "board", "list", "--json") == 0
+    assert json.loads(capsys.readouterr().out)["boards"] == []  # the collector was never asked
+
+
+async def test_a_walk_test_room_with_a_control_character_names_the_line(server, tmp_path, capsys):
+    marks = tmp_path / "marks.csv"
+    marks.write_text('room,from,to\n"G0\nbootcmd",1700000000,1700000060\n')
+    rc = await cli(server, tmp_path, "walktest", "--tag", "lpx:00000007", "--marks", str(marks))
+    err = capsys.readouterr().err
+    assert rc == 2 and f"{marks}:3: room: must not contain control characters" in err
