@@ -14,6 +14,20 @@ database, so each board is evaluated once per round fleet-wide):
 A collector that does not hold the lock follows the stored ``state_changed`` events instead, so every
 collector's page and ``/metrics`` show the same states.
 
+Leadership cannot split. Before each round the leader proves it still holds the lock (`Store.holds`
+asks the lock's own database session), and every event it stores is fenced: the store checks, inside
+the insert's transaction, that the lock's term is still the one this collector took (a takeover bumps
+it). The round check makes a leader whose lock session died stand down before its next round; the fence
+covers the gap between that check and the writes, so a leader deposed in the middle of a round stores
+nothing more (`LeadershipLost`) and stands down. Events carry an idempotency key (state changes: board,
+transition and time; losses: the seq range), unique in the store, and only an event that was actually
+inserted is logged and queued for the webhook. Retention is left unfenced: deleting old rows twice
+deletes nothing more.
+
+Stopping never waits on the database for long: releasing the lock is bounded (a session that cannot
+release it is closed, which frees the lock on the server), and a cancellation is never caught as a
+store error.
+
 Webhook (``webhook.url`` in collector.yaml): every ``state_changed`` and ``loss`` event this process
 stores is POSTed as JSON::
 
@@ -31,7 +45,6 @@ round; an event given up on is logged (``webhook_failed``) and stays in the stor
 from __future__ import annotations
 
 import asyncio
-import contextlib
 from collections import deque
 from dataclasses import dataclass, field
 from typing import Any
@@ -43,7 +56,7 @@ from listenpost.collector.config import CollectorSettings
 from listenpost.collector.ingest import clock_model
 from listenpost.collector.state import Runtime
 from listenpost.collector.status import note_total, stat
-from listenpost.collector.store import Event, Store, StoreError
+from listenpost.collector.store import Event, LeadershipLost, Store, StoreError
 from listenpost.core.clock import Clock, with_timeout
 
 log = structlog.get_logger("listenpost.collector.monitor")
@@ -55,6 +68,8 @@ RETENTION_EVERY_SECONDS = 600.0
 RETENTION_CHUNKS_PER_ROUND = 2
 """Chunks of ``retention.chunk`` rows deleted per round, so a large backlog never makes one round long."""
 WEBHOOK_QUEUE_MAX = 1000
+LOCK = "monitor"
+"""The run-once lock the leader holds (`Store.exclusive`)."""
 HISTORY_SECONDS = 900.0
 """Heartbeat history handed to the liveness evaluator."""
 
@@ -95,6 +110,8 @@ class Monitor:
         self.webhook_sent = 0
         self.rounds_led = 0
         """Rounds this process ran as the lock holder."""
+        self.leading = False
+        """This process proved it held the lock at its latest round and has not stood down since."""
         self.webhook_failed = 0
 
     # ------------------------------------------------------------ life cycle
@@ -110,40 +127,58 @@ class Monitor:
             self._webhook_task = asyncio.create_task(self._webhook_loop(), name="collector-webhook")
 
     async def stop(self) -> None:
-        for task in (self._task, self._webhook_task):
-            if task is not None:
-                task.cancel()
-                with contextlib.suppress(asyncio.CancelledError):
-                    await task
+        """Cancel the rounds and the webhook sender and wait for both to end (they never ignore it)."""
+        tasks = [t for t in (self._task, self._webhook_task) if t is not None]
+        for task in tasks:
+            task.cancel()
+        if tasks:
+            # asyncio.wait, not `await task` under suppress(CancelledError): a cancellation of stop()
+            # itself must reach its caller, not be taken for the task's.
+            await asyncio.wait(tasks)
 
     async def _loop(self) -> None:
         """
-        Leader or follower. The collector that gets the lock keeps it and runs every round while it lives
-        (so rounds never run twice fleet-wide, even when they do not overlap in time); the others follow
-        the stored states and try again each interval. A failed round gives the lock up.
+        Leader or follower. The collector that gets the lock keeps it and runs every round while it still
+        holds it (so rounds never run twice fleet-wide, even when they do not overlap in time); the others
+        follow the stored states and try again each interval. A failed round gives the lock up.
         """
         interval = self.settings.monitor_interval_seconds
         while True:
             try:
-                async with self.store.exclusive("monitor") as held:
+                async with self.store.exclusive(LOCK) as held:
                     if held:
-                        self._seeded = False  # states may have moved on while another collector led
-                        log.info("monitor_leading")
-                        while True:
-                            await self._round(RoundReport(held_lock=True))
-                            await self.clock.sleep(interval)
-                    await self._round(RoundReport(held_lock=False))
+                        await self._lead(interval)
+                    else:
+                        await self._round(RoundReport(held_lock=False))
+            except LeadershipLost as e:
+                log.warning("monitor_standing_down", reason=str(e))
             except (StoreError, OSError) as e:
                 log.warning("monitor_round_failed", error=str(e))
             except Exception:
                 log.exception("monitor_round_failed")
+            self.leading = False
+            # A store error raised while a cancellation unwound the block (releasing the lock on a dead
+            # session, say) replaces the CancelledError; the task still knows it is being cancelled.
+            task = asyncio.current_task()
+            if task is not None and task.cancelling():
+                raise asyncio.CancelledError
             await self.clock.sleep(interval)
+
+    async def _lead(self, interval: float) -> None:
+        """Rounds as leader while the lock is provably still ours; return (stand down) once it is not."""
+        self._seeded = False  # states may have moved on while another collector led
+        log.info("monitor_leading")
+        while await self.store.holds(LOCK):
+            self.leading = True
+            await self._round(RoundReport(held_lock=True))
+            await self.clock.sleep(interval)
+        log.warning("monitor_standing_down", reason="the lock is no longer held")
 
     # ------------------------------------------------------------ one round
 
     async def run_once(self) -> RoundReport:
         """One round now, taking the lock just for it (tests and tools; the service runs `start`)."""
-        async with self.store.exclusive("monitor") as held:
+        async with self.store.exclusive(LOCK) as held:
             return await self._round(RoundReport(held_lock=held))
 
     async def _round(self, report: RoundReport) -> RoundReport:
@@ -274,8 +309,10 @@ class Monitor:
             if change is None:
                 continue
             detail = {"old": _value(change.old), "new": _value(change.new), "reason": change.reason}
-            event = Event(change.at, change.board, "state_changed", detail)
-            event = Event(event.at, event.board, event.kind, event.detail, await self.store.add_event(event))
+            key = f"state_changed/{change.board}/{detail['old']}>{detail['new']}@{change.at!r}"
+            event = await self._store_event(Event(change.at, change.board, "state_changed", detail, key=key))
+            if event is None:
+                continue  # stored already by another writer, which also sent it
             report.changes.append(event)
             log.info(
                 "board_state_changed",
@@ -301,12 +338,21 @@ class Monitor:
                 continue
             board, epoch, lo, hi = key
             detail = {"epoch": epoch, "first_seq": lo, "last_seq": hi, "batches": hi - lo + 1}
-            event = Event(now, board, "loss", detail)
-            event = Event(now, board, "loss", detail, await self.store.add_event(event))
+            event = await self._store_event(
+                Event(now, board, "loss", detail, key=f"loss/{board}/{epoch}/{lo}-{hi}")
+            )
             self._reported_holes.add(key)
+            if event is None:
+                continue
             report.losses.append(event)
             log.warning("batches_lost", board=board, **detail)
             self._queue_webhook(event)
+
+    async def _store_event(self, event: Event) -> Event | None:
+        """Store a leader's event, fenced by the lock; the stored event with its id, or None if its key was
+        stored already. Raises `LeadershipLost` when another collector leads now."""
+        id_ = await self.store.add_event(event, lead=LOCK)
+        return None if id_ is None else Event(event.at, event.board, event.kind, event.detail, id_, event.key)
 
     def _inside_reported(self, key: tuple[str, str, int, int]) -> bool:
         board, epoch, lo, hi = key

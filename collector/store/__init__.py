@@ -28,6 +28,10 @@ class StoreUnavailable(StoreError):
     """The database cannot be reached or written now (the API answers 503 + Retry-After)."""
 
 
+class LeadershipLost(StoreError):
+    """A write made under a lock (``lead=``) that this process no longer holds: another collector leads now."""
+
+
 class SchemaTooNew(StoreError):
     """The database was migrated by a newer listenpost than this one; refusing to touch it."""
 
@@ -167,6 +171,9 @@ class Event:
     """``state_changed``, ``loss``, ``digest_conflict``, ``fingerprint_changed``, ..."""
     detail: dict[str, Any] = field(default_factory=dict)
     id: int | None = None
+    key: str | None = None
+    """Idempotency key (unique in the store): a second event with the same key is not stored. The
+    monitor keys state changes by (board, transition, time) and losses by their seq range."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -275,7 +282,13 @@ class Store(Protocol):
 
     async def heartbeats(self, board: str, since: float) -> list[Heartbeat]: ...
     async def latest_heartbeats(self) -> dict[str, Heartbeat]: ...
-    async def add_event(self, event: Event) -> int: ...
+    async def add_event(self, event: Event, *, lead: str | None = None) -> int | None:
+        """Store an event; its id, or ``None`` if an event with its ``key`` is stored already.
+
+        With ``lead``, the write is fenced: it commits only if this process still holds the lock ``lead``
+        (taken with `exclusive`) and nobody took it since, checked inside the write's own transaction;
+        otherwise `LeadershipLost` and nothing is stored."""
+
     async def events(self, since_id: int = 0, limit: int = 1000, board: str | None = None) -> list[Event]: ...
 
     # export and retention
@@ -297,7 +310,14 @@ class Store(Protocol):
         go too (not counted); batch headers stay, because dedup keys never expire while the board exists."""
 
     def exclusive(self, name: str) -> AbstractAsyncContextManager[bool]:
-        """Run-once work across collectors: yields True if this process holds the lock ``name``."""
+        """Run-once work across collectors: yields True if this process holds the lock ``name``.
+
+        Leaving the block releases the lock within a bound, even on a dead connection, and never turns a
+        cancellation into another error."""
+        ...
+
+    async def holds(self, name: str) -> bool:
+        """Whether the lock ``name`` taken with `exclusive` is still this process's (asks the database)."""
         ...
 
 
@@ -328,6 +348,7 @@ __all__ = [
     "IngestBatch",
     "IngestResult",
     "IngestStatus",
+    "LeadershipLost",
     "ReadingRows",
     "SchemaTooNew",
     "SeqHole",

@@ -147,6 +147,15 @@ SQLITE: tuple[Migration, ...] = (
             "CREATE INDEX telemetry_at ON telemetry(at)",
         ),
     ),
+    Migration(
+        3,
+        "event idempotency keys",
+        (
+            # NULL for events without a key (API and admin events); UNIQUE lets any number of NULLs in.
+            "ALTER TABLE events ADD COLUMN key TEXT",
+            "CREATE UNIQUE INDEX events_key ON events(key)",
+        ),
+    ),
 )
 
 
@@ -260,6 +269,21 @@ POSTGRES: tuple[Migration, ...] = (
             battery_mv float8, temperature_c float8, adv_count float8, uptime_s float8)""",
             "CREATE INDEX telemetry_tag ON telemetry(tag_id, at)",
             "CREATE INDEX telemetry_at ON telemetry(at)",
+        ),
+    ),
+    Migration(
+        3,
+        "event idempotency keys, lock terms",
+        (
+            "ALTER TABLE events ADD COLUMN key text",
+            "CREATE UNIQUE INDEX events_key ON events(key)",
+            # The fencing term of each run-once lock: bumped by every collector that takes the lock, and
+            # checked inside the transaction of every write made under it (postgres.py, `exclusive`).
+            """CREATE TABLE leases (
+            name text PRIMARY KEY,
+            term bigint NOT NULL,
+            holder text NOT NULL,
+            taken_at timestamptz NOT NULL DEFAULT now())""",
         ),
     ),
 )

@@ -10,7 +10,12 @@ The multi-collector store: PostgreSQL through an asyncpg pool.
   connection the pool's other connections are expired, so the next call reconnects instead of tripping
   over every stale one in turn.
 - `exclusive` takes a session advisory lock (``pg_try_advisory_lock``) on one pooled connection for the
-  length of the block: liveness evaluation and retention run in one collector at a time.
+  length of the block: liveness evaluation and retention run in one collector at a time. The key comes
+  from the schema and the name (advisory locks are per database, and schemas share one). Taking the lock
+  bumps its term in ``leases``; `holds` asks the lock's own session for that term, and a write with
+  ``lead=`` checks it in its own transaction, so a collector whose lock session died (and the lock with
+  it) cannot write as leader after another took over. Releasing is bounded by ``lock_timeout_s``; a
+  session that cannot be released is closed, which frees its locks on the server.
 """
 
 from __future__ import annotations
@@ -20,7 +25,9 @@ import contextlib
 import hashlib
 import json
 import math
+import os
 import re
+import socket
 from collections.abc import AsyncIterator, Sequence
 from itertools import repeat
 from typing import Any
@@ -43,6 +50,7 @@ from listenpost.collector.store import (
     IngestBatch,
     IngestResult,
     IngestStatus,
+    LeadershipLost,
     ReadingRows,
     SeqHole,
     StoreUnavailable,
@@ -113,9 +121,12 @@ _EXPORT_ROW = np.dtype(
 _EXPORT_LENGTHS = {"l0": 4, "l1": 4, "l2": 8, "l3": 4, "l4": 4}
 
 
-def lock_key(name: str) -> int:
-    """The signed 64-bit advisory-lock key for ``name`` (sha256, so every collector computes the same)."""
-    return int.from_bytes(hashlib.sha256(b"listenpost:" + name.encode()).digest()[:8], "big", signed=True)
+def lock_key(name: str, scope: str) -> int:
+    """The signed 64-bit advisory-lock key for lock ``name`` of schema ``scope`` (sha256, so every
+    collector on that schema computes the same, and collectors on other schemas of the database others)."""
+    return int.from_bytes(
+        hashlib.sha256(f"listenpost:{scope}:{name}".encode()).digest()[:8], "big", signed=True
+    )
 
 
 def parse_copy_binary(buf: bytes | bytearray | memoryview) -> np.ndarray:
@@ -160,12 +171,19 @@ class PostgresStore:
         heartbeat_history: int,
         acquire_timeout_s: float,
         command_timeout_s: float,
+        lock_timeout_s: float,
     ) -> None:
         self.url = url
         self.schema = schema
+        self.lock_scope = ""
+        """The schema the tables live in (``current_schema()`` at open): part of every lock key."""
         self._heartbeat_history = heartbeat_history
         self._acquire_timeout_s = acquire_timeout_s
         self._command_timeout_s = command_timeout_s
+        self._lock_timeout_s = lock_timeout_s
+        self._held: dict[str, tuple[asyncpg.Connection, int]] = {}
+        """Locks held now: name -> (the session holding it, the term it took)."""
+        self._holder = f"{socket.gethostname()}:{os.getpid()}"
         self._pool: asyncpg.Pool | None = None
         self._closed = False
         self._board_ids: dict[str, int] = {}
@@ -195,7 +213,8 @@ class PostgresStore:
             connect_timeout_s: per connection attempt, seconds.
             command_timeout_s: per statement, seconds.
             acquire_timeout_s: longest wait for a free pooled connection, seconds.
-            lock_timeout_s: longest wait for a row or table lock inside the server, seconds.
+            lock_timeout_s: longest wait for a row or table lock inside the server, seconds; also the
+                bound on releasing a run-once lock and on proving it is still held (`holds`).
             heartbeat_history: heartbeats kept per board.
 
         Raises:
@@ -206,7 +225,7 @@ class PostgresStore:
             raise ValueError(f"schema must match {_SCHEMA_RE.pattern}, got {schema!r}")
         if not 1 <= min_size <= max_size or heartbeat_history < 1:
             raise ValueError("need 1 <= min_size <= max_size and heartbeat_history >= 1")
-        store = cls(url, schema, heartbeat_history, acquire_timeout_s, command_timeout_s)
+        store = cls(url, schema, heartbeat_history, acquire_timeout_s, command_timeout_s, lock_timeout_s)
         settings = {
             "synchronous_commit": "on",
             "lock_timeout": str(round(lock_timeout_s * 1000)),
@@ -234,6 +253,7 @@ class PostgresStore:
         try:
             async with store._acquire() as con:
                 await migrate_postgres(con)
+                store.lock_scope = await con.fetchval("SELECT current_schema()")
         except BaseException:
             await store._pool.close()
             raise
@@ -633,16 +653,32 @@ class PostgresStore:
         )
         return {r["name"]: Heartbeat(r["name"], r["at"], r["boot"], json.loads(r["stats"])) for r in rows}
 
-    async def add_event(self, event: Event) -> int:
-        async with self._acquire() as con:
+    async def add_event(self, event: Event, *, lead: str | None = None) -> int | None:
+        async with self._acquire() as con, con.transaction():
+            if lead is not None:
+                await self._fence(con, lead)
             bid = None if event.board is None else await self._board_id(con, event.board)
             return await con.fetchval(
-                "INSERT INTO events (at, board_id, kind, detail) VALUES ($1, $2, $3, $4) RETURNING id",
+                "INSERT INTO events (at, board_id, kind, detail, key) VALUES ($1, $2, $3, $4, $5) "
+                "ON CONFLICT (key) DO NOTHING RETURNING id",
                 event.at,
                 bid,
                 event.kind,
                 json.dumps(event.detail, sort_keys=True),
+                event.key,
             )
+
+    async def _fence(self, con: asyncpg.Connection, name: str) -> None:
+        """Inside a write transaction: refuse unless lock ``name``'s term is still the one this process took.
+
+        FOR SHARE makes a concurrent takeover (its term UPDATE) wait for this transaction, or this read
+        wait for the takeover and see the new term: the write lands before the new leader starts, or not
+        at all."""
+        held = self._held.get(name)
+        term = await con.fetchval("SELECT term FROM leases WHERE name = $1 FOR SHARE", name)
+        if held is None or term != held[1]:
+            mine = None if held is None else held[1]
+            raise LeadershipLost(f"lock {name!r} is at term {term}, this collector's is {mine}")
 
     async def events(self, since_id: int = 0, limit: int = 1000, board: str | None = None) -> list[Event]:
         cond, args = "e.id > $1", [since_id, limit]
@@ -732,18 +768,57 @@ class PostgresStore:
     @contextlib.asynccontextmanager
     async def exclusive(self, name: str) -> AsyncIterator[bool]:
         """Session advisory lock ``name`` on one pooled connection, held for the block, released after."""
-        key = lock_key(name)
+        key = lock_key(name, self.lock_scope)
         async with self._acquire() as con:
-            got = bool(await con.fetchval("SELECT pg_try_advisory_lock($1)", key))
+            if not await con.fetchval("SELECT pg_try_advisory_lock($1)", key):
+                yield False
+                return
             try:
-                yield got
+                term = await con.fetchval(
+                    "INSERT INTO leases (name, term, holder) VALUES ($1, 1, $2) ON CONFLICT (name) "
+                    "DO UPDATE SET term = leases.term + 1, holder = $2, taken_at = now() RETURNING term",
+                    name,
+                    self._holder,
+                )
+                self._held[name] = (con, term)
+                log.info("lock_taken", name=name, term=term, schema=self.lock_scope)
+                yield True
             finally:
-                if got:
-                    try:
-                        await con.fetchval("SELECT pg_advisory_unlock($1)", key)
-                    except Exception:
-                        # Never hand a connection that may still hold the lock back to the pool.
-                        con.terminate()
+                self._held.pop(name, None)
+                await self._unlock(con, key, name)
+
+    async def _unlock(self, con: asyncpg.Connection, key: int, name: str) -> None:
+        """Release within ``lock_timeout_s``; otherwise close the session (the server then frees its locks)."""
+        try:
+            await asyncio.wait_for(con.fetchval("SELECT pg_advisory_unlock($1)", key), self._lock_timeout_s)
+        except BaseException as e:
+            # Dead session, no answer in time, or cancelled meanwhile: never hand a connection that may
+            # still hold the lock back to the pool. terminate() itself refuses on a session asyncpg already
+            # dropped, which is just as released.
+            with contextlib.suppress(Exception):
+                con.terminate()
+            if not isinstance(e, Exception):
+                raise  # a cancellation stays a cancellation
+            log.warning("lock_release_failed", name=name, error=f"{type(e).__name__}: {e}")
+
+    async def holds(self, name: str) -> bool:
+        held = self._held.get(name)
+        if held is None:
+            return False
+        con, term = held
+        try:
+            # An answer from the lock's own session proves the session (and so its lock) is alive; the
+            # term proves nobody took the lock since.
+            now = await asyncio.wait_for(
+                con.fetchval("SELECT term FROM leases WHERE name = $1", name), self._lock_timeout_s
+            )
+        except (*_UNAVAILABLE, asyncpg.PostgresError) as e:
+            log.warning("lock_lost", name=name, term=term, error=f"{type(e).__name__}: {e}")
+            return False
+        if now != term:
+            log.warning("lock_lost", name=name, term=term, current_term=now)
+            return False
+        return True
 
 
 async def _note_boot(con: asyncpg.Connection, board_id: int, boot: str, at: float) -> None:

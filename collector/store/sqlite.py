@@ -48,6 +48,7 @@ from listenpost.collector.store import (
     IngestBatch,
     IngestResult,
     IngestStatus,
+    LeadershipLost,
     ReadingRows,
     SeqHole,
     StoreError,
@@ -744,15 +745,19 @@ class SqliteStore:
         )
         return {name: Heartbeat(name, at, boot, json.loads(stats)) for name, at, boot, stats in rows}
 
-    async def add_event(self, event: Event) -> int:
-        def tx(con: sqlite3.Connection) -> int:
+    async def add_event(self, event: Event, *, lead: str | None = None) -> int | None:
+        # One collector per file and an in-process lock: the fence is that this process holds ``lead``.
+        if lead is not None and not await self.holds(lead):
+            raise LeadershipLost(f"lock {lead!r} is not held by this collector")
+
+        def tx(con: sqlite3.Connection) -> int | None:
             bid = None if event.board is None else self._board_id(con, event.board)
             cur = con.execute(
-                "INSERT INTO events (at, board_id, kind, detail) VALUES (?, ?, ?, ?)",
-                (event.at, bid, event.kind, json.dumps(event.detail, sort_keys=True)),
+                "INSERT INTO events (at, board_id, kind, detail, key) VALUES (?, ?, ?, ?, ?) "
+                "ON CONFLICT (key) DO NOTHING",
+                (event.at, bid, event.kind, json.dumps(event.detail, sort_keys=True), event.key),
             )
-            assert cur.lastrowid is not None
-            return cur.lastrowid
+            return cur.lastrowid if cur.rowcount == 1 else None  # 0: an event with this key is stored
 
         return await self._wtx(tx)
 
@@ -848,6 +853,10 @@ class SqliteStore:
             return
         async with lock:
             yield True
+
+    async def holds(self, name: str) -> bool:
+        lock = self._locks.get(name)
+        return lock is not None and lock.locked()
 
 
 def _refusal(b: IngestBatch, e: Exception) -> Exception:

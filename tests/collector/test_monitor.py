@@ -21,7 +21,7 @@ from structlog.testing import capture_logs
 from listenpost.cli import main
 from listenpost.collector.monitor import MONITOR
 from listenpost.collector.state import STORE
-from listenpost.collector.store import Store
+from listenpost.collector.store import Event, Store
 from listenpost.core.clock import VirtualClock
 from listenpost.core.logs import configure
 from tests.collector.conftest import StoreFactory, require_pg
@@ -187,6 +187,34 @@ async def test_webhook_4xx_is_not_retried_and_the_next_event_still_goes(
         await until(lambda: monitor.webhook_sent == 1, "the second event")
     assert len(rec.arrivals) == 2 and [a["board"] for a in rec.accepted] == ["g1-a"]
     assert count(logs, "webhook_retry") == 0 and count(logs, "webhook_failed") == 1
+
+
+async def test_a_transition_stored_already_is_neither_stored_again_nor_sent(
+    aiohttp_client, receiver_factory, tmp_path, clock
+):
+    """Another writer stored this very change (board, transition, time): one row, no POST from here."""
+    rec, url = await receiver_factory([])
+    client = await hooked_collector(aiohttp_client, tmp_path, clock, url)
+    await enrolled(client, tmp_path, "g0-a")
+    await enrolled(client, tmp_path, "g1-a", "G1 Light and Colour")
+    store, monitor = client.app[STORE], client.app[MONITOR]
+    at = clock.time()
+    # The key the monitor gives a state change (collector/monitor.py, `_liveness`).
+    theirs = Event(
+        at,
+        "g0-a",
+        "state_changed",
+        {"old": None, "new": "silent"},
+        key=f"state_changed/g0-a/None>silent@{at!r}",
+    )
+    first = await store.add_event(theirs)
+    report = await monitor.run_once()
+    assert [e.board for e in report.changes] == ["g1-a"]
+    await until(lambda: monitor.webhook_sent == 1, "the one new event to be sent")
+    # g0-a sorts first, so had its change been queued too it would have been the one sent.
+    assert [a["board"] for a in rec.accepted] == ["g1-a"] and len(rec.arrivals) == 1
+    changes = [(e.board, e.id) for e in await store.events() if e.kind == "state_changed"]
+    assert changes == [("g0-a", first), ("g1-a", report.changes[0].id)]
 
 
 # ------------------------------------------------------------------ loss events

@@ -563,7 +563,7 @@ async def test_advisory_lock_shows_in_pg_locks(pg_factory: StoreFactory):
     from listenpost.collector.store.postgres import lock_key
 
     store = await pg_factory.open()
-    key = lock_key("retention") & 0xFFFF_FFFF_FFFF_FFFF
+    key = lock_key("retention", store.lock_scope) & 0xFFFF_FFFF_FFFF_FFFF
     # PostgreSQL docs, "pg_locks": a bigint advisory key shows its high half in classid, its low half
     # in objid, and objsubid = 1.
     q = (
@@ -629,7 +629,7 @@ async def test_migrations_from_empty_and_from_an_older_version(store_factory: St
     await add_boards(store, "g0-a")
     assert (await store.ingest(make_batch("g0-a", 0))).status is IngestStatus.STORED  # v2 tables exist
     await store.close()
-    assert await _raw_migrate(store_factory) == mig.latest(_versions(store_factory)) == 2
+    assert await _raw_migrate(store_factory) == mig.latest(_versions(store_factory)) == 3
 
 
 async def test_newer_schema_is_refused(store_factory: StoreFactory):
@@ -637,7 +637,7 @@ async def test_newer_schema_is_refused(store_factory: StoreFactory):
     await _raw_migrate(
         store_factory, sql="INSERT INTO schema_version (version, name, applied_at) VALUES (9, 'future', 'x')"
     )
-    with pytest.raises(SchemaTooNew, match="version 9 is newer than this listenpost supports \\(2\\)"):
+    with pytest.raises(SchemaTooNew, match="version 9 is newer than this listenpost supports \\(3\\)"):
         await store_factory.open()
 
 
@@ -646,13 +646,13 @@ async def test_a_failing_migration_leaves_the_previous_version(store_factory: St
     base = _versions(store_factory)
     broken = (
         *base,
-        mig.Migration(3, "broken", ("CREATE TABLE half_made (x integer)", "CREATE TABLE boards (x integer)")),
+        mig.Migration(4, "broken", ("CREATE TABLE half_made (x integer)", "CREATE TABLE boards (x integer)")),
     )
     with pytest.raises(Exception, match="boards"):
         await _raw_migrate(store_factory, migrations=broken)
     with pytest.raises(Exception, match="half_made"):
         await _raw_migrate(store_factory, sql="SELECT * FROM half_made")
-    store = await store_factory.open()  # still version 2: the current code opens it
+    store = await store_factory.open()  # still the latest version: the current code opens it
     assert await store.list_boards() == []
 
 
