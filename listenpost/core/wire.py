@@ -37,10 +37,19 @@ from itertools import accumulate
 from typing import Any
 
 from listenpost.core.errors import DecodeError
+from listenpost.core.identity import parse_tag_id
 from listenpost.core.records import Reading, Telemetry
 
 VERSION = 1
 GAP_REASONS = ("spool_full", "spool_corrupt", "dead_letter")
+MAX_BOARD_S = 2**53 / 1000
+"""Largest board monotonic time in seconds (``t0_ms`` is below 2⁵³ ms); board times are never negative."""
+MAX_TELEMETRY_ABS = 2**53
+"""Telemetry numbers beyond this are not measurements (and would not fit a database integer)."""
+_MAX_COUNT = 2**62
+"""Bound of seqs and gap counts: a signed 64-bit database integer holds them."""
+_BOOT = re.compile(r"[!-~]{1,64}")
+"""A boot id: 1-64 printable ASCII characters without spaces (Linux gives a UUID)."""
 
 
 class WireError(DecodeError):
@@ -130,6 +139,33 @@ class DecodedContent:
             )
 
 
+def check_boot(v: Any, field: str) -> str:
+    """A boot id as `_BOOT` allows; raises `WireError` naming ``field``."""
+    if not isinstance(v, str) or not _BOOT.fullmatch(v):
+        raise WireError(field, f"must be 1-64 printable ASCII characters without spaces, got {v!r:.80}")
+    return v
+
+
+def check_tag(v: Any, field: str) -> str:
+    """A tag identity in canonical form (`listenpost.core.identity`), the only form a board sends."""
+    if not isinstance(v, str) or len(v) > 200:
+        raise WireError(field, "must be a tag identity string of at most 200 characters")
+    try:
+        canonical = parse_tag_id(v)
+    except DecodeError as e:
+        raise WireError(field, f"not a tag identity: {e}") from None
+    if canonical != v:
+        raise WireError(field, f"not in canonical form {canonical!r}")
+    return v
+
+
+def board_seconds(v: Any, field: str) -> float:
+    """Board monotonic seconds: a finite number in 0..`MAX_BOARD_S`."""
+    if not isinstance(v, int | float) or isinstance(v, bool) or not 0 <= v <= MAX_BOARD_S:
+        raise WireError(field, f"must be board monotonic seconds, 0..{MAX_BOARD_S:.0f}, got {v!r}")
+    return float(v)
+
+
 def _int_list(obj: Any, field: str, lo: int, hi: int) -> list[int]:
     if not isinstance(obj, list):
         raise WireError(field, "must be a list of integers")
@@ -148,9 +184,7 @@ def decode_content(content: Any, *, max_readings: int = 200_000) -> DecodedConte
     """Validate a batch content and unpack it; raises `WireError` naming the first bad field."""
     if not isinstance(content, dict):
         raise WireError("content", "must be an object")
-    boot = content.get("boot")
-    if not isinstance(boot, str) or not 1 <= len(boot) <= 64:
-        raise WireError("content.boot", "must be a string of 1-64 characters")
+    boot = check_boot(content.get("boot"), "content.boot")
     offset = content.get("offset_db")
     if (
         not isinstance(offset, int | float)
@@ -165,8 +199,8 @@ def decode_content(content: Any, *, max_readings: int = 200_000) -> DecodedConte
             raise WireError("content.gap", "must be an object or null")
         for k in ("first_seq", "last_seq", "readings"):
             v = gap.get(k)
-            if not isinstance(v, int) or isinstance(v, bool) or v < 0:
-                raise WireError(f"content.gap.{k}", f"must be a non-negative integer, got {v!r}")
+            if not isinstance(v, int) or isinstance(v, bool) or not 0 <= v < _MAX_COUNT:
+                raise WireError(f"content.gap.{k}", f"must be an integer in 0..2^62-1, got {v!r}")
         if gap["last_seq"] < gap["first_seq"]:
             raise WireError("content.gap.last_seq", "must be >= first_seq")
         if gap.get("reason") not in GAP_REASONS:
@@ -184,8 +218,10 @@ def decode_content(content: Any, *, max_readings: int = 200_000) -> DecodedConte
     if n > max_readings:
         raise WireError("content.readings", f"has {n} readings, more than {max_readings}")
     tags = cols.get("tags")
-    if not isinstance(tags, list) or not all(isinstance(x, str) and 0 < len(x) <= 200 for x in tags):
+    if not isinstance(tags, list):
         raise WireError("content.readings.tags", "must be a list of tag identity strings")
+    for i, x in enumerate(tags):
+        check_tag(x, f"content.readings.tags[{i}]")
     idx = _int_list(cols.get("tag"), "content.readings.tag", 0, max(len(tags) - 1, 0))
     rssi = _int_list(cols.get("rssi_dd"), "content.readings.rssi_dd", -2000, 500)
     if len(idx) != n or len(rssi) != n:
@@ -201,15 +237,24 @@ def decode_content(content: Any, *, max_readings: int = 200_000) -> DecodedConte
     telemetry = content.get("telemetry") or []
     if not isinstance(telemetry, list):
         raise WireError("content.telemetry", "must be a list")
+    known = set(tags)
     for i, x in enumerate(telemetry):
-        if not isinstance(x, dict) or not isinstance(x.get("tag"), str) or not isinstance(x.get("t_ms"), int):
+        if not isinstance(x, dict):
             raise WireError(f"content.telemetry[{i}]", "must be an object with tag and t_ms")
+        if x.get("tag") not in known:
+            raise WireError(f"content.telemetry[{i}].tag", "must be one of content.readings.tags")
+        t = x.get("t_ms")
+        if not isinstance(t, int) or isinstance(t, bool) or not 0 <= t < 2**53:
+            raise WireError(f"content.telemetry[{i}].t_ms", f"must be board milliseconds, got {t!r}")
         for k in ("battery_mv", "temperature_c", "adv_count", "uptime_s"):
             v = x.get(k)
             if v is not None and (
-                not isinstance(v, int | float) or isinstance(v, bool) or not math.isfinite(v)
+                not isinstance(v, int | float)
+                or isinstance(v, bool)
+                or not math.isfinite(v)
+                or abs(v) > MAX_TELEMETRY_ABS
             ):
-                raise WireError(f"content.telemetry[{i}].{k}", f"must be a number, got {v!r}")
+                raise WireError(f"content.telemetry[{i}].{k}", f"must be a number within ±2^53, got {v!r}")
     return DecodedContent(boot, float(offset), t_ms, list(map(tags.__getitem__, idx)), rssi, telemetry, gap)
 
 
@@ -278,7 +323,8 @@ def parse_clock(obj: Any, field: str = "clock") -> tuple[float, float, float, fl
         return None
     if not isinstance(obj, dict):
         raise WireError(field, "must be an object with t1..t4, or null")
-    t1, t2, t3, t4 = (_finite(obj, k, f"{field}.{k}") for k in ("t1", "t2", "t3", "t4"))
+    t1, t4 = (board_seconds(obj.get(k), f"{field}.{k}") for k in ("t1", "t4"))
+    t2, t3 = (_finite(obj, k, f"{field}.{k}") for k in ("t2", "t3"))
     if t4 < t1:
         raise WireError(f"{field}.t4", "must be >= t1 (board receive after board send)")
     if t3 < t2:
@@ -299,19 +345,17 @@ def parse_batch(body: Any, *, max_readings: int) -> BatchEnvelope:
     board = body.get("board")
     if not isinstance(board, str) or not board:
         raise WireError("board", "must be the board name")
-    boot = body.get("boot")
-    if not isinstance(boot, str) or not 1 <= len(boot) <= 64:
-        raise WireError("boot", "must be a string of 1-64 characters")
+    boot = check_boot(body.get("boot"), "boot")
     epoch = body.get("epoch")
     if not isinstance(epoch, str) or not _EPOCH.match(epoch):
         raise WireError("epoch", f"must be 8-32 lower-case hex characters, got {epoch!r}")
     seq = body.get("seq")
-    if not isinstance(seq, int) or isinstance(seq, bool) or not 0 <= seq < 2**62:
+    if not isinstance(seq, int) or isinstance(seq, bool) or not 0 <= seq < _MAX_COUNT:
         raise WireError("seq", f"must be a non-negative integer, got {seq!r}")
     dig = body.get("digest")
     if not isinstance(dig, str) or not _DIGEST.match(dig):
         raise WireError("digest", "must be 64 lower-case hex characters (sha256)")
-    t1 = _finite(body, "t1", "t1")
+    t1 = board_seconds(body.get("t1"), "t1")
     clock = parse_clock(body.get("clock"))
     raw = body.get("content")
     if not isinstance(raw, dict):

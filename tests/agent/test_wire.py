@@ -10,8 +10,18 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from listenpost.core import jsonload
+from listenpost.core.jsonload import JsonError
 from listenpost.core.records import Reading, Telemetry
-from listenpost.core.wire import WireError, canonical_json, decode_content, digest, encode_content
+from listenpost.core.wire import (
+    WireError,
+    canonical_json,
+    decode_content,
+    digest,
+    encode_content,
+    parse_batch,
+    parse_clock,
+)
 
 readings_st = st.lists(
     st.builds(
@@ -91,8 +101,37 @@ def _content() -> dict:
             "content.gap.reason",
         ),
         (
-            lambda c: c.__setitem__("telemetry", [{"tag": "x", "t_ms": 1, "battery_mv": "low"}]),
+            lambda c: c.__setitem__("telemetry", [{"tag": "lpx:00000007", "t_ms": 1, "battery_mv": "low"}]),
             "content.telemetry[0].battery_mv",
+        ),
+        # Identities must be canonical (listenpost.core.identity), the only form an agent produces.
+        (lambda c: c["readings"]["tags"].__setitem__(1, "phone-of-visitor-42"), "content.readings.tags[1]"),
+        (lambda c: c["readings"]["tags"].__setitem__(1, "lpx:00000007\x00"), "content.readings.tags[1]"),
+        (lambda c: c["readings"]["tags"].__setitem__(1, "lpx:\ud800"), "content.readings.tags[1]"),
+        (lambda c: c["readings"]["tags"].__setitem__(0, "mac:aa:aa:aa:aa:aa:aa"), "content.readings.tags[0]"),
+        (
+            lambda c: c["readings"]["tags"].__setitem__(0, " mac:AA:AA:AA:AA:AA:AA"),
+            "content.readings.tags[0]",
+        ),
+        (lambda c: c.__setitem__("boot", "boot\x00"), "content.boot"),
+        (lambda c: c.__setitem__("boot", "b" * 65), "content.boot"),
+        (
+            lambda c: c.__setitem__("telemetry", [{"tag": "mac:BB:BB:BB:BB:BB:BB", "t_ms": 1}]),
+            "content.telemetry[0].tag",
+        ),
+        (
+            lambda c: c.__setitem__("telemetry", [{"tag": "lpx:00000007", "t_ms": 2**70}]),
+            "content.telemetry[0].t_ms",
+        ),
+        (
+            lambda c: c.__setitem__("telemetry", [{"tag": "lpx:00000007", "t_ms": 3, "uptime_s": 10**30}]),
+            "content.telemetry[0].uptime_s",
+        ),
+        (
+            lambda c: c.__setitem__(
+                "gap", {"first_seq": 1, "last_seq": 2**80, "readings": 0, "reason": "spool_full"}
+            ),
+            "content.gap.last_seq",
         ),
     ],
 )
@@ -117,3 +156,75 @@ def test_gzip_body_is_small_per_reading() -> None:
     ]
     body = gzip.compress(canonical_json(encode_content(rs, boot="b", offset_db=0)))
     assert len(body) / len(rs) < 8
+
+
+def _envelope(**changes) -> dict:
+    c = _content()
+    body = {
+        "v": 1,
+        "board": "g0-a",
+        "boot": "b",
+        "epoch": "00112233aabbccdd",
+        "seq": 0,
+        "digest": digest(c),
+        "clock": None,
+        "t1": 10.0,
+        "content": c,
+    }
+    body.update(changes)
+    return body
+
+
+@pytest.mark.parametrize(
+    ("changes", "field"),
+    [
+        ({"t1": -1e15}, "t1"),
+        ({"t1": 1e300}, "t1"),
+        ({"boot": "two words"}, "boot"),
+        ({"clock": {"t1": -5.0, "t2": 1.8e9, "t3": 1.8e9, "t4": 1.0}}, "clock.t1"),
+        ({"clock": {"t1": 1.0, "t2": 1.8e9, "t3": 1.8e9, "t4": 1e300}}, "clock.t4"),
+    ],
+)
+def test_bad_envelope_names_the_field(changes: dict, field: str) -> None:
+    """Board times are never negative nor beyond 2^53 ms; boot ids are printable ASCII."""
+    with pytest.raises(WireError) as e:
+        parse_batch(_envelope(**changes), max_readings=10)
+    assert e.value.field == field
+
+
+def test_board_and_collector_times_of_an_exchange() -> None:
+    assert parse_clock({"t1": 1.0, "t2": 1.8e9, "t3": 1.8e9 + 0.001, "t4": 1.01}) == (
+        1.0,
+        1.8e9,
+        1.8e9 + 0.001,
+        1.01,
+    )
+
+
+@pytest.mark.parametrize(
+    ("text", "problem"),
+    [
+        ('{"a": NaN}', "NaN is not allowed"),
+        ('{"a": [Infinity]}', "Infinity is not allowed"),
+        ('{"a": -Infinity}', "-Infinity is not allowed"),
+        ("[1e999]", "not finite"),
+        ('{"a": {"b": "x\\u0000y"}}', "a.b: a string holds a NUL"),
+        ('{"a": ["ok", "\\ud800"]}', "a[1]: a string holds a lone surrogate"),
+        ('{"\\udfff": 1}', "a key in the top: a string holds a lone surrogate"),
+        ("[" * 17 + "]" * 17, "nested more than 16 levels deep"),
+        ("[" * 100_000 + "]" * 100_000, "nested more than 16 levels deep"),
+        ('{"a": 1', "not valid JSON"),
+    ],
+)
+def test_strict_json_refuses_what_json_loads_lets_through(text: str, problem: str) -> None:
+    with pytest.raises(JsonError) as e:
+        jsonload.loads(text.encode())
+    assert problem in str(e.value)
+
+
+def test_strict_json_keeps_what_is_fine() -> None:
+    """A surrogate pair is a real character; 16 levels are allowed; raw surrogates are not UTF-8."""
+    assert jsonload.loads(b'{"a": "\\ud83d\\ude00", "b": 1.5}') == {"a": "\U0001f600", "b": 1.5}
+    assert jsonload.loads("[" * 16 + "]" * 16) == [[[[[[[[[[[[[[[[]]]]]]]]]]]]]]]]
+    with pytest.raises(JsonError, match="not UTF-8"):
+        jsonload.loads(b'"\xed\xa0\x80"')
