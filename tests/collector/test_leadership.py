@@ -10,13 +10,17 @@ VirtualClock; the lock connection is killed from a third connection with ``pg_te
 from __future__ import annotations
 
 import asyncio
+import contextlib
+import json
 from collections import Counter
 from collections.abc import Callable
 from pathlib import Path
 
+import aiohttp
 import asyncpg
 import pytest
 
+from listenpost.collector.http.auth import ADMIN_TOKEN_FILE
 from listenpost.collector.monitor import Monitor
 from listenpost.collector.state import Runtime
 from listenpost.collector.store import Board, Enrollment, Event, LeadershipLost, Store
@@ -24,6 +28,7 @@ from listenpost.collector.store.postgres import PostgresStore, lock_key
 from listenpost.core.clock import VirtualClock
 from tests.collector.conftest import PG_URL, StoreFactory
 from tests.collector.test_api import settings_for
+from tests.collector.test_scaleout_processes import _serve, _wait_listening, fresh_database  # noqa: F401
 
 INTERVAL = 5.0  # monitor.interval_seconds default
 
@@ -202,3 +207,91 @@ async def test_a_forced_double_write_of_one_transition_stores_one_row(store_fact
     await a.add_event(Event(21.0, "g0-a", "retired"))
     await b.add_event(Event(21.0, "g0-a", "retired"))
     assert [e.kind for e in await a.events()] == ["state_changed", "retired", "retired"]
+
+
+# ------------------------------------------------------------------ two `collector serve` processes
+
+
+def _logged(log: Path, event: str) -> int:
+    """How many JSON log lines of a child's log are ``event``."""
+    n = 0
+    for line in log.read_text().splitlines():  # noqa: ASYNC240 - a small local file
+        with contextlib.suppress(ValueError):
+            n += json.loads(line).get("event") == event
+    return n
+
+
+async def _add_enrolled(session: aiohttp.ClientSession, url: str, admin: dict[str, str], name: str) -> None:
+    async with session.post(
+        url + "/v1/admin/boards", headers=admin, json={"name": name, "room": "G0 Foyer"}
+    ) as r:
+        assert r.status == 201, await r.text()
+        code = (await r.json())["code"]
+    async with session.post(url + "/v1/enroll", json={"code": code, "fingerprint": {}}) as r:
+        assert r.status == 200, await r.text()
+
+
+async def test_serve_pair_sigterm_stops_a_leader_whose_lock_connection_died_and_the_other_takes_over(
+    tmp_path: Path,
+    fresh_database: str,  # noqa: F811 - the fixture imported above
+) -> None:
+    """Real processes on real time (monitor rounds every 5 s), every wait bounded generously."""
+    procs = [await _serve(tmp_path, name, fresh_database) for name in ("a", "b")]
+    logs = [tmp_path / "a.log", tmp_path / "b.log"]
+    admin = await asyncpg.connect(fresh_database, timeout=5)
+    try:
+        async with aiohttp.ClientSession(timeout=aiohttp.ClientTimeout(total=10)) as session:
+            for (proc, url), log in zip(procs, logs, strict=True):
+                await _wait_listening(session, proc, url, log)
+            url_a = procs[0][1]
+            token = {"Authorization": "Bearer " + (tmp_path / "a" / ADMIN_TOKEN_FILE).read_text().strip()}
+            await until(lambda: sum(_logged(p, "monitor_leading") for p in logs) == 1, "one leader", 60)
+            old = next(i for i, p in enumerate(logs) if _logged(p, "monitor_leading"))
+            new = 1 - old
+            await _add_enrolled(session, url_a, token, "g0-a")
+            scope = await admin.fetchval("SELECT current_schema()")
+            key = lock_key("monitor", scope) & 0xFFFF_FFFF_FFFF_FFFF
+            q = (
+                "SELECT pid FROM pg_locks WHERE locktype = 'advisory' AND classid::bigint = $1 "
+                "AND objid::bigint = $2 AND objsubid = 1 AND granted"
+            )
+            (pid,) = [r["pid"] for r in await admin.fetch(q, key >> 32, key & 0xFFFF_FFFF)]
+            assert await admin.fetchval("SELECT pg_terminate_backend($1)", pid)
+            # SIGTERM to the leader whose lock session just died (most likely before its next round has
+            # noticed): it stops, cleanly, within a generous bound.
+            proc = procs[old][0]
+            proc.terminate()
+            assert await asyncio.wait_for(proc.wait(), 60) == 0, logs[old].read_text()  # noqa: ASYNC240
+            assert _logged(logs[old], "collector_stopping") == 1
+            await until(
+                lambda: _logged(logs[new], "monitor_leading") == 1, "the other process to take over", 60
+            )
+            url_new = procs[new][1]
+            token_new = {
+                "Authorization": "Bearer " + (tmp_path / "ab"[new] / ADMIN_TOKEN_FILE).read_text().strip()
+            }
+            await _add_enrolled(session, url_new, token_new, "g1-a")
+            rows = []
+            for _ in range(600):  # the new leader's next round stores g1-a's change (bounded: 60 s)
+                rows = await admin.fetch(
+                    "SELECT b.name FROM events e JOIN boards b ON b.id = e.board_id "
+                    "WHERE e.kind = 'state_changed'"
+                )
+                if len(rows) >= 2:
+                    break
+                await asyncio.sleep(0.1)
+        # Each board's change stored once, whichever process stored it.
+        rows = await admin.fetch("SELECT b.name FROM events e JOIN boards b ON b.id = e.board_id")
+        assert Counter(r["name"] for r in rows) == {"g0-a": 1, "g1-a": 1}
+        assert _logged(logs[new], "monitor_standing_down") == 0
+    finally:
+        await admin.close()
+        for proc, _ in procs:
+            if proc.returncode is None:
+                proc.terminate()
+        for proc, _ in procs:
+            try:
+                await asyncio.wait_for(proc.wait(), 20)
+            except TimeoutError:
+                proc.kill()
+                await proc.wait()
