@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test bench lint clean
+.PHONY: demo test bench lint clean soak
 
 $(STAMP): pyproject.toml
 	$(PY) -m venv $(VENV)
@@ -23,6 +23,9 @@ test: $(STAMP)
 
 bench: $(STAMP)
 	$(BIN)/python -m bench
+
+soak: $(STAMP)
+	$(BIN)/python -m tests.soak
 
 lint: $(STAMP)
 	$(BIN)/ruff check agent collector listenpost tests bench
