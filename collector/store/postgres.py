@@ -476,8 +476,9 @@ class PostgresStore:
         gap = b.gap or {}
         async with self._acquire() as con:
             bid = await self._board_id(con, b.board)
-            tag_ids = await self._intern_tags(con, batch_tag_names(b))
             try:
+                # Inside the try: a name the server or the driver cannot take refuses this batch (400).
+                tag_ids = await self._intern_tags(con, batch_tag_names(b))
                 async with con.transaction():
                     batch_id = await con.fetchval(
                         "INSERT INTO batches (board_id, epoch, seq, digest, boot, n, received_at, offset_dd, gap_first, "

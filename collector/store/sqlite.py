@@ -539,18 +539,22 @@ class SqliteStore:
         con.execute("BEGIN IMMEDIATE")
         new_tags: dict[str, int] = {}
         try:
-            names: set[str] = set()
-            for b in batches:
-                names |= batch_tag_names(b)
-            new_tags = self._intern_tags(con, names)
-            tag_ids = self._tag_ids | new_tags
             results: list[IngestResult | Exception] = []
             for b in batches:
+                # Everything one batch does, its new tags included, is inside its own savepoint: whatever
+                # goes wrong with one batch is answered to that batch and rolled back alone. Only the
+                # storage failing (disk full, I/O error, lock) fails the group.
                 con.execute("SAVEPOINT batch")
                 try:
-                    results.append(self._insert_batch(con, b, tag_ids))
+                    mine = self._intern_tags(con, batch_tag_names(b) - new_tags.keys())
+                    results.append(self._insert_batch(con, b, self._tag_ids | new_tags | mine))
                     con.execute("RELEASE batch")
-                except (sqlite3.IntegrityError, ValueError) as e:
+                    new_tags |= mine
+                except Exception as e:
+                    if isinstance(e, sqlite3.Error) and not isinstance(
+                        e, sqlite3.IntegrityError | sqlite3.DataError
+                    ):
+                        raise
                     con.execute("ROLLBACK TO batch")
                     con.execute("RELEASE batch")
                     results.append(_refusal(b, e))
@@ -573,12 +577,10 @@ class SqliteStore:
         con.executemany(
             "INSERT INTO tags (tag) VALUES (?) ON CONFLICT (tag) DO NOTHING", [(t,) for t in missing]
         )
-        return dict(
-            con.execute(
-                "SELECT tag, id FROM tags WHERE tag IN (SELECT value FROM json_each(?))",
-                (json.dumps(missing),),
-            ).fetchall()
-        )
+        # Each name bound as itself: a round trip through SQLite's JSON text does not give every string
+        # back unchanged (one with a NUL came back as another string, so its id was missing).
+        ids = {t: con.execute("SELECT id FROM tags WHERE tag = ?", (t,)).fetchone()[0] for t in missing}
+        return ids
 
     def _insert_batch(self, con: sqlite3.Connection, b: IngestBatch, tag_ids: dict[str, int]) -> IngestResult:
         offset_dd = check_batch(b)
@@ -860,8 +862,14 @@ class SqliteStore:
 
 
 def _refusal(b: IngestBatch, e: Exception) -> Exception:
-    if isinstance(e, BadBatch) or not isinstance(e, sqlite3.IntegrityError):
+    if isinstance(e, BadBatch):
         return e
+    if not isinstance(e, sqlite3.IntegrityError):
+        # A value the database or the driver cannot take (a string it cannot encode, an integer past 64
+        # bits): a property of this batch, refused whole like a CHECK violation.
+        return BadBatch(
+            "batch", f"refused by the database ({type(e).__name__}: {e}) in {b.board}/{b.epoch}/{b.seq}"
+        )
     # SQLite names the constraint: "CHECK constraint failed: rssi_dd_range".
     msg = str(e)
     field = constraint_field(msg.rsplit(":", 1)[-1].strip())

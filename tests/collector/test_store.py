@@ -255,6 +255,41 @@ async def test_batch_failing_midway_stores_nothing_but_its_group_neighbours_are_
 
 
 @pytest.mark.parametrize(
+    ("poison", "sqlite_keeps_it"),
+    [
+        # A NUL: SQLite's JSON text turned it into another string, so its tag id was missing (KeyError).
+        # SQLite binds it as it is and keeps that batch; PostgreSQL text refuses it.
+        ({"tags": ["ibeacon:\x00" + TAGS[0][8:]]}, True),
+        ({"tags": ["lpx:\ud800"]}, False),  # a lone surrogate: no driver can encode it
+        ({"telemetry": ({"tag": TAGS[0], "t_ms": 2**70},)}, False),  # past a 64-bit integer
+    ],
+    ids=["nul", "surrogate", "int-overflow"],
+)
+async def test_a_batch_the_database_cannot_take_fails_alone_in_its_group(
+    store_factory: StoreFactory, poison, sqlite_keeps_it
+):
+    """Values the API never lets through, given to the store directly: only their own batch is refused."""
+    store = await store_factory.open()
+    await add_boards(store, "g0-a", "g1-a")
+    bad = make_batch("g1-a", 0, tags=poison.get("tags", TAGS), telemetry=poison.get("telemetry", ()))
+    batches = [make_batch("g0-a", s) for s in range(20)]
+    results = await asyncio.gather(
+        *[store.ingest(b) for b in [*batches[:10], bad, *batches[10:]]], return_exceptions=True
+    )
+    if sqlite_keeps_it and store_factory.backend == "sqlite":
+        assert results[10].status is IngestStatus.STORED
+    else:
+        assert isinstance(results[10], BadBatch), results[10]
+    assert [r.status for i, r in enumerate(results) if i != 10] == [IngestStatus.STORED] * 20
+    counts = {c.board: c for c in await store.board_counts()}
+    assert counts["g0-a"].readings_total == 200
+    if isinstance(results[10], BadBatch):
+        assert (counts["g1-a"].readings_total, counts["g1-a"].batches_total) == (0, 0)
+        # Nothing half-written: the corrected batch goes in under the same key.
+        assert (await store.ingest(make_batch("g1-a", 0))).status is IngestStatus.STORED
+
+
+@pytest.mark.parametrize(
     ("change", "field"),
     [
         ({"rssi_dd": np.zeros(3, dtype=np.int32)}, "rssi_dd"),
