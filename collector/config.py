@@ -12,7 +12,8 @@ Every key is optional; an absent file means all defaults::
     liveness: {...}                            # any field of listenpost.collector.models.liveness.LivenessSettings
     enrollment: {code_lifetime_hours: 72}
     limits: {max_body_bytes: 4194304, max_decompressed_bytes: 33554432, max_readings: 200000,
-             max_inflight_batches: 128, busy_retry_after_seconds: 2}   # past the 128th batch at once: 429
+             max_inflight_batches: 128, busy_retry_after_seconds: 2,   # past the 128th batch at once: 429
+             max_reading_age_hours: 8760, max_reading_ahead_seconds: 600}
     agent: {flush_seconds: 5, heartbeat_seconds: 10}
     decode:
       rules:
@@ -51,6 +52,12 @@ class Limits:
     in flight, which group commit needs to batch well."""
     busy_retry_after_seconds: int = 2
     """``Retry-After`` of that 429, seconds (boards wait at least this, plus their own jitter)."""
+    max_reading_age_hours: float = 8760.0
+    """A batch with a reading (after the board's clock model) older than this before the collector's
+    clock is refused (400), and so is a clock exchange stamped earlier. A year: far past any outage a
+    spool bridges (retention deletes old readings anyway); what it stops is a time no clock could give."""
+    max_reading_ahead_seconds: float = 600.0
+    """...and one more than this ahead of the collector's clock (a clock exchange too)."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -190,6 +197,10 @@ def parse_settings(data: Any, origin: str = "collector.yaml", **overrides: Any) 
             int,
             d.busy_retry_after_seconds,
             check=lambda v: None if 1 <= v <= 3600 else "must be 1..3600",
+        ),
+        max_reading_age_hours=lim.get("max_reading_age_hours", float, d.max_reading_age_hours, positive),
+        max_reading_ahead_seconds=lim.get(
+            "max_reading_ahead_seconds", float, d.max_reading_ahead_seconds, positive
         ),
     )
     lim.done()

@@ -53,6 +53,11 @@ class Runtime:
     events_cursor: int = 0
     token_cache: dict[str, tuple[Any, float]] = field(default_factory=dict)
     """sha256(token) → (Board, cached at): saves a database round trip per board request."""
+    tag_registry: tuple[frozenset[str], float] | None = None
+    """(registered tags, read at): the registry a batch's identities are checked against, re-read
+    every ``REGISTRY_CACHE_SECONDS`` (collector/http/api.py)."""
+    unregistered: dict[str, int] = field(default_factory=dict)
+    """board → readings dropped as unregistered, summed from the stored ``unregistered_ids`` events."""
 
 
 SETTINGS = web.AppKey("settings", CollectorSettings)

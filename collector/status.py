@@ -80,6 +80,12 @@ async def recent_events(app: web.Application) -> list[Event]:
     while True:
         page = await store.events(since_id=runtime.events_cursor, limit=1000)
         runtime.recent_events.extend(page)
+        for e in page:  # every stored event passes here once: the per-board sum is exact and durable
+            if e.kind == "unregistered_ids" and e.board:
+                n = e.detail.get("readings")
+                runtime.unregistered[e.board] = runtime.unregistered.get(e.board, 0) + (
+                    n if isinstance(n, int) else 0
+                )
         if page:
             runtime.events_cursor = max(e.id or 0 for e in page)
         if len(page) < 1000:
@@ -133,6 +139,10 @@ async def status_doc(app: web.Application) -> dict[str, Any]:
                 "tag_rate_hz_median": _number(stats.get("tag_rate_hz_median")),
                 "tags_heard": _number(stats.get("tags_heard")),
                 "gap_readings": c.gap_readings if c else 0,
+                "unregistered_readings": runtime.unregistered.get(b.name, 0),
+                "clock_exchanges_refused": sum(
+                    m.n_refused for (name, _), m in runtime.clock_models.items() if name == b.name
+                ),
                 "clock_offset_ms": fit.offset_s * 1000.0 if fit else None,
                 "clock_skew_ppm": fit.skew_ppm if fit else None,
                 "clock_residual_ms": fit.residual_ms if fit else None,

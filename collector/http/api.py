@@ -9,7 +9,6 @@ stream in bounded steps, so a gzip bomb stops at the limit instead of filling me
 from __future__ import annotations
 
 import hashlib
-import json
 import math
 import zlib
 from typing import Any
@@ -20,7 +19,14 @@ from aiohttp import web
 from listenpost.collector.config import Limits, rule_to_json
 from listenpost.collector.http.auth import bearer_token, code_hash, hash_secret, new_token
 from listenpost.collector.http.middlewares import BOARD, BYTES_SENT, T2, ApiError, bad_field
-from listenpost.collector.ingest import clock_model, record_exchange, to_ingest_batch
+from listenpost.collector.ingest import (
+    TimeWindow,
+    check_times,
+    clock_model,
+    drop_unregistered,
+    record_exchange,
+    to_ingest_batch,
+)
 from listenpost.collector.models.clock import wall_error_s
 from listenpost.collector.state import CLOCK, RUNTIME, SETTINGS, STORE
 from listenpost.collector.store import (
@@ -33,7 +39,7 @@ from listenpost.collector.store import (
     IngestStatus,
     StoreUnavailable,
 )
-from listenpost.core import wire
+from listenpost.core import jsonload, wire
 from listenpost.core.wire import WireError, parse_batch, parse_clock
 
 log = structlog.get_logger("listenpost.collector.http.api")
@@ -45,7 +51,9 @@ async def read_json(request: web.Request, limits: Limits) -> Any:
     """
     Read a JSON body within the limits: ``max_body_bytes`` as sent, ``max_decompressed_bytes`` inflated.
 
-    Raises `ApiError` 413 past a limit, 415 for an encoding other than gzip, 400 for bad JSON.
+    Raises `ApiError` 413 past a limit, 415 for an encoding other than gzip, 400 for bad JSON: the
+    strict reader (`listenpost.core.jsonload`) also refuses NaN/Infinity, deep nesting, NUL and lone
+    surrogates, which nothing downstream could store.
     """
     encoding = request.headers.get("Content-Encoding", "identity").strip().lower()
     if encoding not in ("identity", "gzip", ""):
@@ -94,15 +102,31 @@ async def read_json(request: web.Request, limits: Limits) -> Any:
         ) from e
     request[BYTES_SENT] = sent if sent is not None else received
     try:
-        return json.loads(b"".join(parts))
-    except (ValueError, UnicodeDecodeError) as e:
-        raise ApiError(400, "bad_json", f"body is not valid JSON: {e}", field="body") from e
+        return jsonload.loads(b"".join(parts))
+    except jsonload.JsonError as e:
+        raise ApiError(400, "bad_json", f"body: {e}", field="body") from e
 
 
 TOKEN_CACHE_SECONDS = 10.0
 """How long a token lookup is reused. Retiring, re-enrolling or reissuing a board here drops the cache at
 once (`forget_tokens`); another collector on the same database notices within this time."""
 TOKEN_CACHE_MAX = 10_000
+REGISTRY_CACHE_SECONDS = 10.0
+"""How long the tag registry read for batch checks is reused: a tag imported or retired applies to
+batches within this time (on every collector sharing the database)."""
+
+
+def time_window(limits: Limits) -> TimeWindow:
+    return TimeWindow(limits.max_reading_age_hours * 3600.0, limits.max_reading_ahead_seconds)
+
+
+async def registered_tags(app: web.Application) -> frozenset[str]:
+    """The registered (active) tags, re-read from the store at most every ``REGISTRY_CACHE_SECONDS``."""
+    runtime, now = app[RUNTIME], app[CLOCK].time()
+    hit = runtime.tag_registry
+    if hit is None or not 0 <= now - hit[1] < REGISTRY_CACHE_SECONDS:
+        hit = runtime.tag_registry = (frozenset(await app[STORE].list_tags()), now)
+    return hit[0]
 
 
 def forget_tokens(app: web.Application) -> None:
@@ -280,9 +304,17 @@ async def _store_batch(request: web.Request, board: Board) -> web.Response:
             403, "wrong_board", f"token of board {board.name!r} cannot post for {env.board!r}", field="board"
         )
     if env.clock is not None:
-        await _exchange(request, board, env.boot, env.clock)
+        await _exchange(request, board, env.boot, env.clock, send_t1=env.t1)
     model = await clock_model(runtime.clock_models, store, board.name, env.content.boot)
     batch = to_ingest_batch(env, received_at=t2, model=model)
+    try:
+        check_times(batch.t_collector, now=t2, window=time_window(app[SETTINGS].limits))
+    except WireError as e:
+        runtime.counters.rejected += 1
+        raise bad_field(e.field, str(e).removeprefix(f"{e.field}: ")) from e
+    # The collector, not the board, decides which identities are kept: unregistered ones are dropped
+    # and counted (the batch itself is stored, so its seq is accounted for).
+    batch, unregistered, unregistered_ids = drop_unregistered(batch, await registered_tags(app))
     try:
         result = await store.ingest(batch)
     except BadBatch as e:
@@ -311,18 +343,44 @@ async def _store_batch(request: web.Request, board: Board) -> web.Response:
     if result.status is IngestStatus.STORED:
         runtime.counters.stored += 1
         runtime.counters.readings_stored += batch.n
+        if unregistered:
+            # Counts only: no identity of an unregistered device is stored or logged (docs/design.md §2).
+            detail = {"readings": unregistered, "ids": unregistered_ids, "epoch": env.epoch, "seq": env.seq}
+            await store.add_event(Event(t2, board.name, "unregistered_ids", detail))
+            log.warning("unregistered_ids", **detail)
     else:
         runtime.counters.duplicate += 1
-    return web.json_response({"status": result.status.value, "t2": t2, "t3": app[CLOCK].time()})
+    return web.json_response(
+        {
+            "status": result.status.value,
+            "t2": t2,
+            "t3": app[CLOCK].time(),
+            "unregistered_readings": unregistered,
+        }
+    )
 
 
 async def _exchange(
-    request: web.Request, board: Board, boot: str, exchange: tuple[float, float, float, float]
+    request: web.Request,
+    board: Board,
+    boot: str,
+    exchange: tuple[float, float, float, float],
+    *,
+    send_t1: float | None,
 ) -> None:
-    """Keep a clock sample; a confirmed step of the board's clock becomes an event."""
+    """Keep a clock sample (an implausible one is dropped and counted); a confirmed step becomes an event."""
     app = request.app
     try:
-        step = await record_exchange(app[RUNTIME].clock_models, app[STORE], board.name, boot, exchange)
+        step = await record_exchange(
+            app[RUNTIME].clock_models,
+            app[STORE],
+            board.name,
+            boot,
+            exchange,
+            now=request[T2],
+            window=time_window(app[SETTINGS].limits),
+            send_t1=send_t1,
+        )
     except WireError as e:
         raise bad_field(e.field, str(e).removeprefix(f"{e.field}: ")) from e
     if step is not None:
@@ -346,24 +404,25 @@ async def heartbeat(request: web.Request) -> web.Response:
             f"token of board {board.name!r} cannot speak for {body.get('board')!r}",
             field="board",
         )
-    boot = body.get("boot")
-    if not isinstance(boot, str) or not 1 <= len(boot) <= 64:
-        raise bad_field("boot", "must be a string of 1-64 characters")
     stats = body.get("stats", {})
     if not isinstance(stats, dict):
         raise bad_field("stats", "must be an object")
-    extra: dict[str, Any] = {}
-    for key in ("t1", "wall"):
-        v = body.get(key)
-        if v is not None and (not isinstance(v, int | float) or isinstance(v, bool) or not math.isfinite(v)):
-            raise bad_field(key, f"must be a finite number, got {v!r}")
-        extra[key] = v
+    extra: dict[str, Any] = {"t1": None}
+    wall = body.get("wall")
+    if wall is not None and (
+        not isinstance(wall, int | float) or isinstance(wall, bool) or not math.isfinite(wall)
+    ):
+        raise bad_field("wall", f"must be a finite number, got {wall!r}")
+    extra["wall"] = wall
     try:
+        boot = wire.check_boot(body.get("boot"), "boot")
+        if body.get("t1") is not None:
+            extra["t1"] = wire.board_seconds(body["t1"], "t1")
         exchange = parse_clock(body.get("clock"))
     except WireError as e:
         raise bad_field(e.field, str(e).removeprefix(f"{e.field}: ")) from e
     if exchange is not None:
-        await _exchange(request, board, boot, exchange)
+        await _exchange(request, board, boot, exchange, send_t1=extra["t1"])
     if extra["wall"] is not None:
         # The board read its wall clock at t1 (board monotonic); the model says what time that was here.
         model = await clock_model(runtime.clock_models, store, board.name, boot)

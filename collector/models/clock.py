@@ -219,9 +219,20 @@ class ClockSettings:
     """Assumed worst rate error while the skew is not yet estimated (widens the step test)."""
     method: FitMethod = FitMethod.BAND
     """Line fit; see the module docstring."""
+    max_step_s: float = 600.0
+    """An exchange whose offset misses the fitted line by more than this (plus δ/2) is refused as
+    implausible (`ClockModel.implausible`): never a sample, never a step candidate. A collector clock
+    corrected by more than this needs the boards' next boot to be followed."""
 
     def __post_init__(self) -> None:
-        for name in ("window_s", "horizon_s", "max_delay_s", "step_tolerance_s", "max_skew_ppm"):
+        for name in (
+            "window_s",
+            "horizon_s",
+            "max_delay_s",
+            "step_tolerance_s",
+            "max_skew_ppm",
+            "max_step_s",
+        ):
             value = getattr(self, name)
             if not (isinstance(value, int | float) and math.isfinite(value) and value > 0):
                 raise ValueError(f"ClockSettings.{name}: must be a positive number, got {value!r}")
@@ -231,6 +242,11 @@ class ClockSettings:
             value = getattr(self, name)
             if not isinstance(value, int) or value < 1:
                 raise ValueError(f"ClockSettings.{name}: must be an integer >= 1, got {value!r}")
+
+
+NEGATIVE_DELAY_SLACK_S = 0.001
+"""A round trip may come out this much below zero from float rounding of Unix seconds (about 2e-7 s
+at 1.8e9) and skew over a short exchange; more than this and one of the four stamps is false."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -359,6 +375,8 @@ class ClockModel:
         """Exchanges passed to `add` and accepted as valid input."""
         self.n_ignored = 0
         """Valid exchanges not used: delay above ``max_delay_s`` or discarded step candidates."""
+        self.n_refused = 0
+        """Exchanges refused as implausible before `add` (counted by the caller with `refuse`)."""
 
     @property
     def steps(self) -> tuple[ClockStep, ...]:
@@ -424,6 +442,29 @@ class ClockModel:
         self._pending.clear()
         self._segments.append(new)
         return step
+
+    def implausible(self, t1: float, t2: float, t3: float, t4: float) -> str | None:
+        """
+        Why an exchange cannot be a true one for this board, or None if it can.
+
+        Refused: a negative round trip (beyond float rounding), and an offset off the current line by
+        more than ``max_step_s`` plus δ/2. A refused exchange is neither a sample nor a step candidate:
+        without this, a few agreeing forged exchanges would confirm a "step" and move every later
+        reading of the boot.
+        """
+        offset, delay = offset_delay(t1, t2, t3, t4)
+        if delay < -NEGATIVE_DELAY_SLACK_S:
+            return f"round-trip delay {delay:.6f} s is negative"
+        f = self.fit()
+        if f is not None:
+            miss = float(offset - f.offset_at((t1 + t4) / 2))
+            if abs(miss) > self.settings.max_step_s + max(delay, 0.0) / 2:
+                return f"offset is {miss:+.3f} s off the board's fitted line (bound {self.settings.max_step_s} s)"
+        return None
+
+    def refuse(self) -> None:
+        """Count one exchange refused by the caller (`implausible`, or the collector's own clock)."""
+        self.n_refused += 1
 
     def fit(self) -> ClockFit | None:
         """The current segment's line with every confirmed step, or None before the first exchange."""

@@ -369,3 +369,43 @@ def test_a_slow_first_exchange_is_not_taken_for_a_step():
     fit = model.fit()
     assert fit is not None and fit.steps == ()
     assert_allclose(fit.offset_s - true_offset(fit.ref_board_s, 5.0), 0.0, atol=0.03)
+
+
+# ------------------------------------------------------------------ implausible exchanges
+
+
+def _honest(model: ClockModel, n: int = 6, w: float = BOOT_WALL) -> None:
+    for k in range(n):
+        b = 500.0 + 10 * k
+        model.add(b, w + b + 0.004, w + b + 0.005, b + 0.009)
+
+
+def test_a_negative_round_trip_is_implausible_and_rounding_is_not():
+    model = ClockModel()
+    assert model.implausible(500.0, BOOT_WALL + 0.1, BOOT_WALL + 0.2, 500.05) is not None  # δ = −0.05 s
+    assert model.implausible(500.0, BOOT_WALL + 0.1, BOOT_WALL + 0.1004, 500.0002) is None  # δ = −0.2 ms
+
+
+def test_an_offset_far_off_the_fitted_line_is_implausible_never_a_step():
+    """Formerly three agreeing exchanges two hours off confirmed a step and moved every later reading."""
+    model = ClockModel()
+    _honest(model)
+    before = model.fit()
+    for b in (600.0, 610.0, 620.0):
+        ex = (b, BOOT_WALL + b - 7200.0, BOOT_WALL + b - 7200.0 + 0.001, b + 0.01)
+        assert "off the board's fitted line" in (model.implausible(*ex) or "")
+        model.refuse()
+    assert model.n_refused == 3 and model.steps == () and model.fit() == before
+    # A real step of the collector's clock within the bound is still followed.
+    for b in (600.0, 610.0, 620.0):
+        assert model.implausible(b, BOOT_WALL + b + 30.0, BOOT_WALL + b + 30.001, b + 0.01) is None
+        model.add(b, BOOT_WALL + b + 30.0, BOOT_WALL + b + 30.001, b + 0.01)
+    assert len(model.steps) == 1 and model.steps[0].size_s == pytest.approx(30.0, abs=0.01)
+
+
+def test_the_step_bound_is_a_setting():
+    model = ClockModel(ClockSettings(max_step_s=10.0))
+    _honest(model)
+    assert model.implausible(600.0, BOOT_WALL + 630.0, BOOT_WALL + 630.001, 600.01) is not None
+    with pytest.raises(ValueError, match="max_step_s"):
+        ClockSettings(max_step_s=0)
