@@ -141,6 +141,7 @@ class AgentService:
         self._stats_base: Counter[str] = Counter()
         self._tasks: dict[str, asyncio.Task[Any]] = {}
         self._fatal: BaseException | None = None
+        self._dropped_at_start = 0
 
     # ------------------------------------------------------------------ control
 
@@ -196,6 +197,7 @@ class AgentService:
             flush_seconds=flush_s,
             max_batch_readings=cfg.uplink.max_batch_readings,
         )
+        self._dropped_at_start = self.spool.stats().dropped_readings
         try:
             token = (
                 read_credential(cfg.state_path(cfg.collector.credential_file)) if cfg.collector.url else None
@@ -229,10 +231,33 @@ class AgentService:
             code = await self._shutdown()
             if self._fatal is not None:
                 raise self._fatal
-            return code
         finally:
             await self._cancel_all()
             await self.spool.close()
+        return self._final_word(code)
+
+    def _final_word(self, code: int) -> int:
+        """
+        A run that ends with readings neither delivered nor in the spool file says how many, and fails.
+
+        Counted: readings still in memory at close (a failing disk) and readings dropped from memory or
+        from a full spool during this run (those were reported to the collector by a gap record, if it
+        could be reached and the record was not itself lost).
+        """
+        assert self.spool is not None
+        at_close = self.spool.lost_at_close
+        dropped = self.spool.stats().dropped_readings - self._dropped_at_start
+        if not at_close and not dropped:
+            return code
+        log.error(
+            "readings_lost",
+            readings=at_close + dropped,
+            lost_at_close=at_close,
+            dropped_during_run=dropped,
+            spool_degraded=self.spool.stats().degraded,
+            hint="see docs/reliability.md §1: a full or failing disk keeps readings in memory only",
+        )
+        return code or 1
 
     def _start_network(self, url: str, token: str, heartbeat_s: float) -> None:
         cfg, clock = self.cfg, self.clock
@@ -368,6 +393,7 @@ class AgentService:
                 log.error(
                     "drain_incomplete",
                     batches=left.batches,
+                    readings_in_memory=left.readings_pending,
                     uplink_state=self.uplink.state.value,
                     last_error=self.uplink.counters.last_error,
                     hint="the batches stay in the spool and go with the next run",
@@ -386,7 +412,10 @@ class AgentService:
             if self.spool.stats().readings_pending:
                 await self.spool.seal(boot=self.clock.boot_id, offset_db=self.offset_db)
             if await self.spool.peek_oldest() is None:
-                return True
+                st = self.spool.stats()
+                # A failing file may still hold batches it cannot read back now: not drained.
+                if not st.readings_pending and not (st.degraded and st.batches):
+                    return True
             if self.uplink.state is UplinkState.UNAUTHORIZED or self.clock.monotonic() >= deadline:
                 return False
             if self._tasks.get("uplink") is None or self._tasks["uplink"].done():
@@ -428,6 +457,7 @@ class AgentService:
             "readings_total": p["readings_total"],
             "pipeline": dict(p),
             "spool": sp,
+            "spool_degraded": sp["degraded"],
             "drops": {
                 "spool_readings": sp["dropped_readings"],
                 "spool_batches": sp["dropped_batches"],
@@ -457,6 +487,8 @@ class AgentService:
             "adverts": self._stats_base["adverts_total"] + self.pipeline.stats()["adverts_total"],
             "readings": self._stats_base["readings_total"] + self.pipeline.stats()["readings_total"],
             "spool_batches": s.batches,
+            "spool_degraded": s.degraded,
+            "readings_in_memory": s.readings_pending,
             "acked": u.acked if u else None,
             "duplicates": u.duplicates if u else None,
             "dead_letters": u.dead_letters if u else None,

@@ -43,6 +43,19 @@ def stat(stats: dict[str, Any], *names: str) -> Any:
     return None
 
 
+def _spool_degraded(stats: dict[str, Any]) -> bool:
+    """The board's spool cannot write (disk full, I/O error): its readings are in memory only."""
+    spool = stats.get("spool")
+    return stats.get("spool_degraded") is True or (isinstance(spool, dict) and spool.get("degraded") is True)
+
+
+def _with_spool_problem(reason: str | None, stats: dict[str, Any]) -> str | None:
+    if not _spool_degraded(stats):
+        return reason
+    problem = "spool cannot write (disk full?): readings held in memory only"
+    return f"{problem}; {reason}" if reason else problem
+
+
 def note_total(history: deque[tuple[float, int]], at: float, total: int) -> None:
     """
     Keep one (collector time, readings total) sample; drop samples no longer needed for the window.
@@ -124,7 +137,8 @@ async def status_doc(app: web.Application) -> dict[str, Any]:
                 "room": b.room,
                 "floor": b.floor,
                 "state": st,
-                "state_reason": state.get("reason"),
+                "state_reason": _with_spool_problem(state.get("reason"), stats),
+                "spool_degraded": _spool_degraded(stats),
                 "state_since": state.get("since"),
                 "enrolled": b.enrolled_at is not None,
                 "boot": boot,

@@ -32,6 +32,7 @@ from listenpost.agent.spool.values import (
     COUNTERS,
     DEAD_LETTER_KEEP,
     DROP_SLACK,
+    GZIP_LEVEL,
     QUICK_CHECK_BUDGET,
     ROW_OVERHEAD_BYTES,
     SCHEMA_VERSION,
@@ -102,7 +103,7 @@ class Disk:
                 counters = {"corrupt_set_aside": 1} if self._set_orphans_aside() else {}
                 self._create_fresh(self.path, new_epoch(), (), lambda: (counters, []), mono, wall)
                 self._open_existing()
-            self.degraded = False
+            # Opening proves reads, not writes (a full card opens fine): only a commit clears ``degraded``.
         except (sqlite3.Error, OSError) as e:
             self._drop_conn()
             self.degraded = True
@@ -365,7 +366,8 @@ class Disk:
         except Degraded:
             self._restore(before)
             raise
-        if refresh:
+        if refresh:  # a write committed: the storage works again
+            self.degraded = False
             self._refresh_oldest()
         return result
 
@@ -380,22 +382,48 @@ class Disk:
         extra_dropped_readings: int,
         mono: float,
         wall: float,
+        carried: Sequence[tuple[SealedBatch, dict[str, Any] | None]] = (),
+        extra_dropped_batches: int = 0,
     ) -> list[SealedBatch]:
-        """Seal each chunk as one batch, in one FULL commit; apply pending acks first."""
+        """
+        Seal each chunk as one batch, in one FULL commit; apply pending acks first.
+
+        ``carried`` are batches sealed in memory while the storage failed (with their gap object, if
+        any): they are written first, under their own keys, and keep them. ``extra_dropped_*`` are
+        drops from memory to add to the durable counters.
+        """
         sealed = [seal_content(encode_content(c, boot=boot, offset_db=offset_db)) for c in chunks]
+        kept = [(b, gzip.compress(b.content, compresslevel=GZIP_LEVEL, mtime=0), gap) for b, gap in carried]
 
         def op(conn: sqlite3.Connection) -> list[SealedBatch]:
             out = []
             with transaction(conn, durable=True):
                 self._delete_acked(conn, acks)
                 need = sum(len(body) + ROW_OVERHEAD_BYTES for _, body, _ in sealed)
+                need += sum(len(body) + ROW_OVERHEAD_BYTES for _, body, _ in kept)
                 self._make_room(conn, need, boot, offset_db, mono, wall)
+                for b, body, gap in kept:
+                    at_wall = wall - max(0.0, mono - b.sealed_at_mono)
+                    self._insert(
+                        conn,
+                        b.seq,
+                        b.digest,
+                        body,
+                        b.n_readings,
+                        json.dumps(gap) if gap is not None else None,
+                        boot,
+                        b.sealed_at_mono,
+                        at_wall,
+                        epoch=b.epoch,
+                    )
                 for (content, body, dig), chunk in zip(sealed, chunks, strict=True):
                     seq = self._next_seq(conn)  # assigned inside the seal transaction, never re-cut
                     self._insert(conn, seq, dig, body, len(chunk), None, boot, mono, wall)
                     out.append(SealedBatch(self.epoch, seq, dig, content, len(chunk), mono))
                 if extra_dropped_readings:
                     self._bump(conn, "dropped_readings", extra_dropped_readings)
+                if extra_dropped_batches:
+                    self._bump(conn, "dropped_batches", extra_dropped_batches)
             return out
 
         return self._apply(op, mono, wall, refresh=True)
@@ -490,7 +518,7 @@ class Disk:
                 conn.execute("UPDATE meta SET value='0' WHERE key='next_seq'")
             return epoch
 
-        self._apply(op, mono, wall, refresh=False)
+        self._apply(op, mono, wall, refresh=True)
         self.epoch, self.next_seq = epoch, 0
         return epoch
 
@@ -528,12 +556,14 @@ class Disk:
         boot: str,
         mono: float,
         wall: float,
+        *,
+        epoch: str | None = None,
     ) -> None:
         nbytes = len(body) + ROW_OVERHEAD_BYTES
         conn.execute(
             "INSERT INTO batches (epoch, seq, digest, body, nbytes, n_readings, gap, boot, sealed_at_mono,"
             " sealed_at_wall) VALUES (?,?,?,?,?,?,?,?,?,?)",
-            (self.epoch, seq, dig, body, nbytes, n, gap, boot, mono, wall),
+            (epoch or self.epoch, seq, dig, body, nbytes, n, gap, boot, mono, wall),
         )
         self.batches += 1
         self.bytes += nbytes

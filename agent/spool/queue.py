@@ -16,10 +16,19 @@ import structlog
 
 from listenpost.agent.spool.disk import Disk
 from listenpost.agent.spool.sqlfile import Degraded
-from listenpost.agent.spool.values import RETRY_MAX_SECONDS, SealedBatch, SpoolStats
+from listenpost.agent.spool.values import (
+    RETRY_MAX_SECONDS,
+    GapReason,
+    Interval,
+    SealedBatch,
+    SpoolStats,
+    new_epoch,
+    seal_content,
+)
 from listenpost.core.clock import Clock
 from listenpost.core.errors import SpoolError
 from listenpost.core.records import Reading
+from listenpost.core.wire import encode_content
 
 log = structlog.get_logger("listenpost.agent.spool")
 
@@ -60,10 +69,31 @@ class Spool:
         self._pending: deque[Reading] = deque()
         self._first_add_mono: float | None = None
         self._acks: set[tuple[str, int]] = set()
-        self._ram_dropped = 0
-        """Readings dropped from the full RAM buffer, not yet written to the spool's counter."""
-        self._ram_dropped_total = 0
+        # While the storage fails, pending readings are sealed into memory batches of their own epoch
+        # (random, so their keys never collide with the file's) that the uplink sends from RAM; once
+        # the storage works again they are written to the file under those keys.
+        self._mem: deque[SealedBatch] = deque()
+        self._mem_gaps: dict[tuple[str, int], dict[str, Any]] = {}
+        """Gap objects of the memory batches that are gap records."""
+        self._mem_readings = 0
+        self._mem_epoch: str | None = None
+        self._mem_next_seq = 0
+        self._handed_out: tuple[str, int] | None = None
+        """The memory batch `peek_oldest` gave last (maybe in flight: never dropped for space)."""
+        self._carrying: set[tuple[str, int]] = set()
+        """Memory batches a commit in flight is writing to the file (not dropped meanwhile)."""
+        # Drops from memory (oldest first, past max_pending_readings): exact counts, reported by the next
+        # gap record and added to the file's counters by the next successful seal.
+        self._lost_readings = 0
+        """Dropped readings no gap record names yet."""
+        self._lost_first_seq: int | None = None
+        """Lowest memory seq among the dropped memory batches no gap record names yet."""
+        self._uncounted_readings = 0
+        self._uncounted_batches = 0
         self._front_dropped = 0
+        self._ram_dropped_total = 0
+        self.lost_at_close = 0
+        """Readings neither in the file nor named by a gap record in it when `close` returned."""
         self._snap = self._disk.snapshot()
         self._seal_lock = asyncio.Lock()
         self._inflight: set[asyncio.Task[Any]] = set()
@@ -124,21 +154,49 @@ class Spool:
     # ---------------------------------------------------------------- intake
 
     def add(self, reading: Reading) -> None:
-        """Queue one reading in memory (O(1), no I/O). Past the RAM cap the oldest reading is dropped."""
+        """
+        Queue one reading in memory (O(1), no I/O). Past the memory bound the oldest readings go: a whole
+        memory batch if there is one, else the oldest pending reading; every drop is counted.
+        """
         if self._first_add_mono is None:
             self._first_add_mono = self._clock.monotonic()
         self._pending.append(reading)
-        if len(self._pending) > self.max_pending_readings:
+        while len(self._pending) + self._mem_readings > self.max_pending_readings:
+            self._drop_oldest()
+
+    def _drop_oldest(self) -> None:
+        victim = next(
+            (
+                b
+                for b in self._mem
+                if b.n_readings
+                and (b.epoch, b.seq) != self._handed_out
+                and (b.epoch, b.seq) not in self._carrying
+            ),
+            None,
+        )
+        if victim is not None:
+            self._mem.remove(victim)
+            self._mem_readings -= victim.n_readings
+            n = victim.n_readings
+            first = self._lost_first_seq
+            self._lost_first_seq = victim.seq if first is None else min(first, victim.seq)
+            self._uncounted_batches += 1
+        else:
             self._pending.popleft()
             self._front_dropped += 1
-            self._ram_dropped += 1
-            self._ram_dropped_total += 1
-            if self._ram_dropped_total == 1 or self._ram_dropped_total % 10_000 == 0:
-                log.error(
-                    "spool_ram_buffer_full",
-                    dropped_readings=self._ram_dropped_total,
-                    cap=self.max_pending_readings,
-                )
+            n = 1
+        self._lost_readings += n
+        self._uncounted_readings += n
+        before = self._ram_dropped_total
+        self._ram_dropped_total += n
+        if before == 0 or before // 10_000 != self._ram_dropped_total // 10_000:
+            log.error(
+                "spool_ram_buffer_full",
+                dropped_readings=self._ram_dropped_total,
+                cap=self.max_pending_readings,
+                degraded=self._snap.degraded,
+            )
 
     def due(self) -> bool:
         """True when pending readings have waited ``flush_seconds`` or more."""
@@ -151,8 +209,10 @@ class Spool:
         """
         Seal every pending reading (in batches of at most ``max_batch_readings``) in one durable commit.
 
-        Pending acks are applied in the same commit. Returns the last batch sealed, or ``None`` when
-        nothing was pending or the storage is failing (then the readings stay in RAM for the retry).
+        Pending acks are applied in the same commit, and batches sealed in memory while the storage
+        failed are written first, under their keys. Returns the last batch made durable, or ``None``
+        when nothing was pending or the storage is failing (then the readings are sealed into memory
+        batches, bounded by ``max_pending_readings``, that the uplink can send from RAM).
         """
         self._check_open()
         return await self._shielded(self._serial(self._seal, boot, offset_db))
@@ -161,9 +221,12 @@ class Spool:
         self._last_offset_db = offset_db
         self._last_boot = boot
         now = self._clock.monotonic()
+        if self._lost_readings:
+            self._seal_gap_in_memory(boot, offset_db, now)
         if self._snap.degraded and now < self._retry_at:
+            self._seal_in_memory(boot, offset_db, now)
             return None
-        if not self._pending and not self._acks and not self._ram_dropped and not self._snap.degraded:
+        if not self._pending and not self._acks and not self._mem and not self._snap.degraded:
             return None
         readings = list(self._pending)
         front_dropped = self._front_dropped
@@ -172,30 +235,106 @@ class Spool:
             for i in range(0, len(readings), self.max_batch_readings)
         ]
         acks = set(self._acks)
-        ram_dropped = self._ram_dropped
+        carried = [(b, self._mem_gaps.get((b.epoch, b.seq))) for b in self._mem]
+        self._carrying = {(b.epoch, b.seq) for b, _ in carried}
+        dropped_readings, dropped_batches = self._uncounted_readings, self._uncounted_batches
         try:
-            if chunks or ram_dropped:
+            if chunks or carried or dropped_readings:
                 sealed = await self._call(
-                    self._disk.seal, chunks, boot, offset_db, acks, ram_dropped, now, self._clock.time()
+                    self._disk.seal,
+                    chunks,
+                    boot,
+                    offset_db,
+                    acks,
+                    dropped_readings,
+                    now,
+                    self._clock.time(),
+                    carried,
+                    dropped_batches,
                 )
             else:
                 sealed = []
                 await self._call(self._disk.flush_acks, acks, now, self._clock.time())
         except Degraded:
+            for key in self._carrying & self._acks:  # acked while the failed commit ran
+                self._acks.discard(key)
+                self._forget_mem(key)
+            self._seal_in_memory(boot, offset_db, now)
             return None
+        finally:
+            self._carrying = set()
         # Readings added while the commit ran stay pending; only the sealed prefix leaves. Readings the
-        # RAM cap pushed out meanwhile were in the sealed snapshot, so they are not lost after all.
-        pushed_out = self._front_dropped - front_dropped
+        # memory bound pushed out meanwhile were in the sealed snapshot, so they are not lost after all.
+        pushed_out = min(self._front_dropped - front_dropped, len(readings))
         for _ in range(len(readings) - pushed_out):
             self._pending.popleft()
-        self._ram_dropped -= pushed_out
+        self._lost_readings -= pushed_out
         self._ram_dropped_total -= pushed_out
+        self._uncounted_readings -= dropped_readings + pushed_out
+        self._uncounted_batches -= dropped_batches
         self._first_add_mono = now if self._pending else None
         self._acks -= acks
-        self._ram_dropped -= ram_dropped
+        for b, _ in carried:  # now in the file (one acked meanwhile is in ``_acks``: deleted next time)
+            self._forget_mem((b.epoch, b.seq))
+        if not self._mem and not self._lost_readings:
+            self._mem_epoch = None  # the next failing spell starts a fresh memory epoch
+        if carried:
+            log.info("spool_memory_batches_written", batches=len(carried), path=str(self.path))
         for b in sealed:
             log.debug("spool_batch_sealed", epoch=b.epoch, seq=b.seq, readings=b.n_readings)
-        return sealed[-1] if sealed else None
+        if sealed:
+            return sealed[-1]
+        return carried[-1][0] if carried else None  # memory batches made durable count as sealed now
+
+    def _next_mem_key(self) -> tuple[str, int]:
+        if self._mem_epoch is None:
+            self._mem_epoch, self._mem_next_seq = new_epoch(), 0
+            log.warning("spool_memory_epoch", epoch=self._mem_epoch, path=str(self.path))
+        seq = self._mem_next_seq
+        self._mem_next_seq += 1
+        return self._mem_epoch, seq
+
+    def _seal_in_memory(self, boot: str, offset_db: float, now: float) -> None:
+        """The storage fails: cut the pending readings into memory batches the uplink can send."""
+        while self._pending:
+            chunk = [self._pending.popleft() for _ in range(min(self.max_batch_readings, len(self._pending)))]
+            raw, _, dig = seal_content(encode_content(chunk, boot=boot, offset_db=offset_db))
+            epoch, seq = self._next_mem_key()
+            self._mem.append(SealedBatch(epoch, seq, dig, raw, len(chunk), now))
+            self._mem_readings += len(chunk)
+        self._first_add_mono = None
+
+    def _seal_gap_in_memory(self, boot: str, offset_db: float, now: float) -> None:
+        """
+        One gap record (reason ``spool_full``) for the readings dropped from memory since the last one.
+
+        It is sealed in the memory epoch, whose seqs it names (the collector applies a gap's range to
+        the envelope's epoch); its range ends at its own seq, so readings dropped before they had a seq
+        are named too. An older gap record still waiting in memory is folded in, so they never pile up.
+        """
+        epoch, seq = self._next_mem_key()
+        first, readings = min(seq, self._lost_first_seq if self._lost_first_seq is not None else seq), 0
+        for key in [k for k in self._mem_gaps if k != self._handed_out and k not in self._carrying]:
+            old = self._forget_mem(key)
+            first, readings = min(first, old["first_seq"]), readings + old["readings"]
+        readings += self._lost_readings
+        gap = self._disk._gap_object(Interval(epoch, first, seq, readings), GapReason.SPOOL_FULL)
+        raw, _, dig = seal_content(encode_content([], boot=boot, offset_db=offset_db, gap=gap))
+        self._mem.append(SealedBatch(epoch, seq, dig, raw, 0, now))
+        self._mem_gaps[(epoch, seq)] = gap
+        log.warning("spool_memory_dropped", readings=self._lost_readings, gap_seq=seq, epoch=epoch)
+        self._lost_readings, self._lost_first_seq = 0, None
+
+    def _forget_mem(self, key: tuple[str, int]) -> dict[str, Any]:
+        """Take one batch out of the memory queue; returns its gap object ({} for readings)."""
+        for b in self._mem:
+            if (b.epoch, b.seq) == key:
+                self._mem.remove(b)
+                self._mem_readings -= b.n_readings
+                break
+        if self._handed_out == key:
+            self._handed_out = None
+        return self._mem_gaps.pop(key, {})
 
     async def run_sealer(self, boot_fn: Callable[[], str], offset_fn: Callable[[], float]) -> None:
         """Seal every ``flush_seconds`` until cancelled. A seal already committing finishes first."""
@@ -211,32 +350,55 @@ class Spool:
     # ---------------------------------------------------------------- uplink side
 
     async def peek_oldest(self) -> SealedBatch | None:
-        """The oldest sealed batch not yet acked or dead-lettered, read from disk (one at a time)."""
+        """
+        The oldest batch not yet acked or dead-lettered: from the file (one at a time), else from the
+        memory queue. While the storage fails, pending readings are sealed into memory at once, so
+        readings held in memory are never reported as "nothing to send".
+        """
         self._check_open()
-        if self._snap.degraded:
-            return None
-        try:
-            return await self._shielded(
-                self._call(
-                    self._disk.peek,
-                    set(self._acks),
-                    self._last_offset_db,
-                    self._clock.monotonic(),
-                    self._clock.time(),
+        if self._snap.degraded and not self._mem and self._pending:
+            await self._shielded(self._serial(self._seal_now_in_memory))
+        if not self._snap.degraded or (not self._mem and self._clock.monotonic() >= self._retry_at):
+            # Reading works on a full disk; a failing file is retried no sooner than its timer.
+            try:
+                found = await self._shielded(
+                    self._call(
+                        self._disk.peek,
+                        set(self._acks),
+                        self._last_offset_db,
+                        self._clock.monotonic(),
+                        self._clock.time(),
+                    )
                 )
-            )
-        except Degraded:
-            return None
+            except Degraded:
+                found = None
+            if found is not None:
+                return found
+        if self._mem:
+            head = self._mem[0]
+            self._handed_out = (head.epoch, head.seq)
+            return head
+        return None
+
+    async def _seal_now_in_memory(self) -> None:
+        if self._lost_readings:
+            self._seal_gap_in_memory(self._last_boot, self._last_offset_db, self._clock.monotonic())
+        self._seal_in_memory(self._last_boot, self._last_offset_db, self._clock.monotonic())
 
     async def ack(self, epoch: str, seq: int) -> None:
         """
         The collector holds this batch: it is never returned by `peek_oldest` again.
 
         The delete is committed with the next seal (or within ``flush_seconds``); after a crash before
-        that, the batch is sent once more and the collector answers ``duplicate``.
+        that, the batch is sent once more and the collector answers ``duplicate``. A memory batch just
+        leaves memory (and the file, if a commit in flight is writing it there).
         """
         self._check_open()
-        self._acks.add((epoch, seq))
+        key = (epoch, seq)
+        if epoch == self._mem_epoch and key not in self._carrying:
+            self._forget_mem(key)
+            return
+        self._acks.add(key)
         if len(self._acks) >= 1000:  # a fast drain with no new readings: do not let the set grow
             await self._shielded(self._serial(self._flush_acks))
 
@@ -254,6 +416,9 @@ class Spool:
         seal a gap record (reason ``dead_letter``) so the collector can explain the missing seq.
         """
         self._check_open()
+        if epoch == self._mem_epoch and (epoch, seq) not in self._carrying:
+            await self._shielded(self._serial(self._dead_letter_in_memory, epoch, seq, status, reason))
+            return
         try:
             found = await self._shielded(
                 self._serial(
@@ -274,6 +439,26 @@ class Spool:
             log.warning("spool_dead_letter", epoch=epoch, seq=seq, status=status, reason=reason)
         else:
             log.info("spool_dead_letter_missing", epoch=epoch, seq=seq, status=status)
+
+    async def _dead_letter_in_memory(self, epoch: str, seq: int, status: int, reason: str) -> None:
+        """A refused memory batch cannot be kept aside (no file): it goes, and a gap record says so."""
+        batch = next((b for b in self._mem if (b.epoch, b.seq) == (epoch, seq)), None)
+        if batch is None:
+            return
+        was_gap = bool(self._forget_mem((epoch, seq)))
+        log.error("spool_dead_letter_dropped", epoch=epoch, seq=seq, status=status, reason=reason)
+        if was_gap:
+            return  # a refused gap record gets no gap record of its own (no loop)
+        self._uncounted_readings += batch.n_readings
+        self._uncounted_batches += 1
+        gap_epoch, gap_seq = self._next_mem_key()
+        gap = self._disk._gap_object(
+            Interval(epoch, seq, seq, batch.n_readings), GapReason.DEAD_LETTER, status
+        )
+        content = encode_content([], boot=self._last_boot, offset_db=self._last_offset_db, gap=gap)
+        raw, _, dig = seal_content(content)
+        self._mem.append(SealedBatch(gap_epoch, gap_seq, dig, raw, 0, self._clock.monotonic()))
+        self._mem_gaps[(gap_epoch, gap_seq)] = gap
 
     async def new_epoch(self, reason: str) -> str:
         """
@@ -305,15 +490,16 @@ class Spool:
             # acked batches stay on disk until the next seal commits their removal: not a backlog
             batches=max(0, s.batches - len(self._acks)),
             bytes=s.bytes,
-            readings_pending=len(self._pending),
+            readings_pending=len(self._pending) + self._mem_readings,
             oldest_age_s=age,
             next_seq=s.next_seq,
             epoch=s.epoch,
-            dropped_batches=s.counters["dropped_batches"],
-            dropped_readings=s.counters["dropped_readings"] + self._ram_dropped,
+            dropped_batches=s.counters["dropped_batches"] + self._uncounted_batches,
+            dropped_readings=s.counters["dropped_readings"] + self._uncounted_readings,
             dead_letters=s.counters["dead_letters"],
             corrupt_set_aside=s.counters["corrupt_set_aside"],
             degraded=s.degraded,
+            memory_batches=len(self._mem),
         )
 
     async def idle(self) -> None:
@@ -338,8 +524,18 @@ class Spool:
             self._closed = True
             await self._run(self._disk.close)
         self._executor.shutdown(wait=True)
-        if self._pending:
-            log.error("spool_closed_with_pending", readings=len(self._pending))
+        # What is still in memory now is lost: readings, and drops whose gap record never reached the file.
+        held = len(self._pending) + self._mem_readings
+        unreported = self._lost_readings + sum(g["readings"] for g in self._mem_gaps.values())
+        self.lost_at_close = held + unreported
+        if self.lost_at_close:
+            log.error(
+                "spool_closed_with_readings_lost",
+                readings=self.lost_at_close,
+                in_memory=held,
+                dropped_unreported=unreported,
+                path=str(self.path),
+            )
 
     # ---------------------------------------------------------------- plumbing
 
@@ -367,7 +563,7 @@ class Spool:
                 path=str(self.path),
                 error=str(e),
                 retry_in_s=self._retry_interval,
-                readings_pending=len(self._pending),
+                readings_pending=len(self._pending) + self._mem_readings,
             )
             self._retry_interval = min(self._retry_interval * 2, RETRY_MAX_SECONDS)
             raise

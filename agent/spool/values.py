@@ -78,7 +78,7 @@ class SpoolStats:
     bytes: int
     """Compressed bodies plus `ROW_OVERHEAD_BYTES` per row, bytes."""
     readings_pending: int
-    """Readings in memory, not yet sealed."""
+    """Readings in memory, not in the file: pending, or in memory batches while the storage fails."""
     oldest_age_s: float | None
     """Age of the oldest un-acked sealed batch, seconds; ``None`` when there is none."""
     next_seq: int
@@ -95,6 +95,8 @@ class SpoolStats:
     """Spool files set aside as corrupt."""
     degraded: bool
     """The storage is failing; readings are buffered in RAM."""
+    memory_batches: int = 0
+    """Batches sealed in memory while the storage failed (sent from there, written to the file later)."""
 
 
 @dataclass(frozen=True, slots=True)

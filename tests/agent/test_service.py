@@ -418,3 +418,38 @@ async def test_contract_with_the_real_collector_enroll_then_upload(aiohttp_serve
     counts = {c.board: c for c in await store.board_counts()}
     assert counts["g1-a"].readings_total == len(expected)
     assert (await store.latest_heartbeats())["g1-a"].stats["adverts_seen"] == len(adverts)
+
+
+async def test_a_stop_with_the_disk_full_and_no_collector_exits_1_naming_the_lost_readings(
+    tmp_path, monkeypatch
+):
+    """``agent run`` stopped while its card is full: the readings held in memory are lost, and it says so."""
+    import contextlib
+    import errno
+
+    import structlog
+
+    from listenpost.agent.spool import disk as disk_mod
+
+    @contextlib.contextmanager
+    def no_space(conn, *, durable):  # the file layer refuses every write, as a full card does
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+        yield
+
+    clock = VirtualClock()
+    cfg = board_config(tmp_path, None, tags=[4, 5])
+    adverts, expected = traffic(clock, 9.0, [4, 5])
+    source = ListSource(clock, adverts, hang=True)
+    service = AgentService(cfg, clock=clock, source=source)
+    task = asyncio.create_task(service.run())
+    await asyncio.wait_for(service.started.wait(), 10)
+    monkeypatch.setattr(disk_mod, "transaction", no_space)
+    while source.yielded < len(adverts):
+        await asyncio.wait_for(service.spool.idle(), 10)
+        await clock.advance(0.5)
+    assert service.spool.stats().degraded
+    with structlog.testing.capture_logs() as logs:
+        service.request_stop()
+        assert await asyncio.wait_for(task, 10) == 1
+    lost = [e for e in logs if e["event"] == "readings_lost"]
+    assert lost and lost[-1]["readings"] == len(expected), logs[-5:]
