@@ -143,6 +143,7 @@ class Heartbeat:
             return self._fail(f"200 with a body that is not a JSON object: {text[:120]!r}")
         self.exchanges.record(t1, t4, answer)
         self.exchanges.delivered()
+        self.exchanges.note_contact()  # an uplink waiting out an unreachable collector goes now
         self.ok += 1
         self.last_error = None
         etag = answer.get("config_etag")

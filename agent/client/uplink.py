@@ -107,12 +107,29 @@ class ExchangeLog:
     when the request carrying it fails.
     """
 
-    __slots__ = ("_last", "_carried", "count")
+    __slots__ = ("_last", "_carried", "count", "contacts", "_contact")
 
     def __init__(self) -> None:
         self._last: Exchange | None = None
         self._carried: Exchange | None = None
         self.count = 0
+        self.contacts = 0
+        """2xx answers from the collector so far, to any request (heartbeat or batch)."""
+        self._contact: asyncio.Event | None = None
+
+    def note_contact(self) -> None:
+        """The collector answered 2xx: it is reachable (wakes an uplink waiting out a network failure)."""
+        self.contacts += 1
+        if self._contact is not None:
+            self._contact.set()
+            self._contact = None
+
+    async def wait_contact(self, since: int) -> None:
+        """Return once a 2xx answer came after ``since`` (a value of `contacts`)."""
+        while self.contacts == since:
+            if self._contact is None:
+                self._contact = asyncio.Event()
+            await self._contact.wait()
 
     def record(self, t1: float, t4: float, answer: Mapping[str, Any]) -> Exchange | None:
         """Note an exchange from an answer carrying ``t2``/``t3``; ignored if they are missing or odd."""
@@ -245,6 +262,7 @@ class Uplink:
         self.parked_until: float | None = None
         """Board monotonic time the current wait ends (while parked on the clock)."""
         self._parked = asyncio.Event()
+        self._contacts_at_send = 0
 
     # ------------------------------------------------------------------ session
 
@@ -292,6 +310,7 @@ class Uplink:
         self.counters.sent += 1
         self.counters.bytes_sent += len(payload)
         self.state = UplinkState.SENDING
+        self._contacts_at_send = self.exchanges.contacts
         try:
             async with self._get_session().post(
                 self.url, data=payload, headers=headers, timeout=self.timeout
@@ -311,6 +330,7 @@ class Uplink:
         if 200 <= status < 300:
             self.exchanges.record(t1, t4, answer)
             self.exchanges.delivered()
+            self.exchanges.note_contact()
             verdict = answer.get("status")
             if verdict not in ("stored", "duplicate"):
                 # A 200 we cannot read proves nothing; resending is safe (the collector dedups).
@@ -443,11 +463,40 @@ class Uplink:
             return delay
         return 0.0
 
-    async def _wait(self, seconds: float) -> None:
+    def _wakes_on_contact(self, outcome: Outcome | None) -> bool:
+        """
+        Whether a 2xx from the collector (a heartbeat) ends the wait after ``outcome`` early: after a
+        failure that got no HTTP answer (the collector was unreachable), or a 401/403 (a heartbeat 2xx
+        proves the credential works). Never against ``Retry-After`` or a 5xx: the collector is up and
+        asked for the pause.
+        """
+        if outcome is Outcome.UNAUTHORIZED:
+            return True
+        return outcome is Outcome.RETRY and self.counters.last_status is None and self._retry_after is None
+
+    async def _wait(self, seconds: float, *, wake_on_contact: bool = False) -> None:
         self.parked_until = self.clock.monotonic() + seconds
         self._parked.set()
         try:
-            await self.clock.sleep(seconds)
+            if not wake_on_contact:
+                await self.clock.sleep(seconds)
+                return
+            since = self._contacts_at_send
+            sleep = asyncio.ensure_future(self.clock.sleep(seconds))
+            contact = asyncio.ensure_future(self.exchanges.wait_contact(since))
+            try:
+                await asyncio.wait({sleep, contact}, return_when=asyncio.FIRST_COMPLETED)
+            finally:
+                sleep.cancel()
+                contact.cancel()
+            if contact.done() and not contact.cancelled():
+                # A 2xx (a heartbeat) came after our failed attempt: the collector is back. Start the
+                # backoff over and send now rather than a capped, jittered wait later.
+                log.info(
+                    "uplink_collector_reachable",
+                    waited_s=round(self.clock.monotonic() - (self.parked_until - seconds), 3),
+                )
+                self._attempt = 0
         finally:
             self._parked.clear()
 
@@ -469,7 +518,7 @@ class Uplink:
                     return
                 delay = self.next_delay(outcome)
                 if delay > 0:
-                    await self._wait(delay)
+                    await self._wait(delay, wake_on_contact=self._wakes_on_contact(outcome))
                 else:
                     await asyncio.sleep(0)  # let the scanner and sealer run between batches
         finally:

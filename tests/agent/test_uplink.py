@@ -19,10 +19,12 @@ from collections import Counter, deque
 from collections.abc import Callable
 from typing import Any
 
+import aiohttp
 import ntplib
 import pytest
 from aiohttp import web
 
+from listenpost.agent.client.heartbeat import Heartbeat
 from listenpost.agent.client.uplink import (
     Exchange,
     ExchangeLog,
@@ -426,3 +428,100 @@ def test_retry_after_seconds_and_http_date():
     assert parse_retry_after("Fri, 31 Dec 1999 23:59:59 GMT", now) == 0.0  # the RFC's own example, long past
     assert parse_retry_after("soon", now) is None and parse_retry_after(None, now) is None
     assert parse_retry_after("99999999", now) == 3600.0
+
+
+async def outage_then_return(tmp_path, seed: int) -> tuple[float, float | None, float, Uplink]:
+    """
+    A collector unreachable for 2 minutes (connection refused), then back on the same port. Returns
+    (when it came back, when the first heartbeat got through, when the first batch was stored, uplink).
+    """
+    clock = VirtualClock()
+    collector = Collector(clock)
+    beats: list[float] = []
+
+    async def heartbeat(request: web.Request) -> web.Response:
+        beats.append(clock.monotonic())
+        return web.json_response({"t2": clock.time(), "t3": clock.time(), "config_etag": None})
+
+    def app() -> web.Application:
+        a = collector.app()
+        a.router.add_post("/v1/heartbeat", heartbeat)
+        return a
+
+    with socket.socket() as s:  # a free port, serving nothing yet: connections are refused
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    url = f"http://127.0.0.1:{port}"
+    spool = await Spool.open(
+        tmp_path / f"spool-{seed}.sqlite", clock=clock, max_bytes=4 << 20, flush_seconds=5.0
+    )
+    expected = await fill(spool, clock, batches=3, per_batch=20)
+    exchanges = ExchangeLog()
+    uplink = Uplink(
+        base_url=url,
+        token=TOKEN,
+        board="g3-a",
+        clock=clock,
+        spool=spool,
+        timeout_s=5.0,
+        rng=random.Random(seed),
+        exchanges=exchanges,
+    )
+    runner = None
+    async with aiohttp.ClientSession() as session:
+        beat = Heartbeat(
+            base_url=url,
+            token=TOKEN,
+            board="g3-a",
+            clock=clock,
+            session=session,
+            stats_fn=dict,
+            exchanges=exchanges,
+            period_s=10.0,
+            timeout_s=5.0,
+            board_info_fn=dict,
+        )
+        tasks = [asyncio.create_task(uplink.run()), asyncio.create_task(beat.run())]
+        start = clock.monotonic()
+        back_at = start + 120.0
+        try:
+            while len(collector.batches) < 3:
+                assert clock.monotonic() - start < 400, "the backlog never went"
+                # Step virtual time only while both loops wait on the clock (loopback I/O is real time).
+                for t in (uplink, beat):
+                    await asyncio.wait_for(t.wait_parked(), 10)
+                if runner is None and clock.monotonic() >= back_at:
+                    runner = web.AppRunner(app())
+                    await runner.setup()
+                    await web.TCPSite(runner, "127.0.0.1", port).start()
+                    back_at = clock.monotonic()
+                    continue
+                wake = min(uplink.parked_until, beat.parked_until)
+                if runner is None:
+                    wake = min(wake, back_at)
+                await clock.advance(max(0.0, wake - clock.monotonic()))
+            assert set(collector.readings) == expected
+            assert uplink.counters.retries >= 5  # the outage really drove the backoff up
+        finally:
+            for t in tasks:
+                t.cancel()
+            await asyncio.gather(*tasks, return_exceptions=True)
+            await uplink.close()
+            await spool.close()
+            if runner is not None:
+                await runner.cleanup()
+    first_store = min(t for t, _, what in collector.log if what == "stored")
+    return back_at, (min(beats) if beats else None), first_store, uplink
+
+
+async def test_a_collector_back_after_an_outage_gets_the_backlog_within_one_heartbeat(tmp_path):
+    """
+    After 2 minutes away the uplink's backoff ceiling is near its 60 s cap. The first heartbeat that
+    gets through tells the uplink the collector is reachable again: the backlog goes at once, not a
+    jittered backoff later. Five boards (jitter seeds), so that no lucky draw hides a slow return.
+    """
+    for seed in range(5):
+        back_at, first_beat, first_store, uplink = await outage_then_return(tmp_path, seed)
+        if first_beat is not None and first_beat < first_store:
+            assert first_store - first_beat <= 1.0, (seed, first_beat, first_store)
+        assert first_store - back_at <= 10.0 + 1.0, (seed, back_at, first_store)  # one heartbeat period
