@@ -40,6 +40,31 @@ UNIT_SOURCE = Path(str(resources.files("listenpost.systemd") / UNIT_NAME))  # pa
 _UNSAFE_CATEGORIES = frozenset({"Cc", "Cf", "Cs", "Zl", "Zp"})
 
 
+def _unsafe_bmp_class() -> str:
+    """
+    The unsafe characters of the Basic Multilingual Plane as regex class ranges (``\\uXXXX-\\uYYYY``),
+    surrogates left out: a JSON body cannot carry a lone one (listenpost.core.jsonload refuses it), and
+    regex engines without UTF-16 strings refuse a pattern that names them.
+    """
+    ranges: list[tuple[int, int]] = []
+    for cp in range(0x10000):
+        if unicodedata.category(chr(cp)) in _UNSAFE_CATEGORIES - {"Cs"}:
+            if ranges and ranges[-1][1] == cp - 1:
+                ranges[-1] = (ranges[-1][0], cp)
+            else:
+                ranges.append((cp, cp))
+    return "".join(f"\\u{a:04x}" if a == b else f"\\u{a:04x}-\\u{b:04x}" for a, b in ranges)
+
+
+_NO_UNSAFE = _unsafe_bmp_class()
+LABEL_PATTERN = f"^[^{_NO_UNSAFE}]*[^{_NO_UNSAFE}\\s][^{_NO_UNSAFE}]*$"
+"""
+What `check_label` accepts, for the OpenAPI document: not blank, no unsafe character of the Basic
+Multilingual Plane (the few format characters above it are refused too, but \\u escapes cannot name
+them in both Python and ECMA-262 regular expressions).
+"""
+
+
 USER_DATA_HEADER = (
     "#cloud-config\n# listenpost board provisioning: README.txt beside this file says what it does.\n"
 )

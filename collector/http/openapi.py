@@ -1,8 +1,10 @@
 """
 OpenAPI 3.0 description of every route the collector serves, at ``GET /v1/openapi.json``.
 
-tests/collector/test_openapi.py checks that each registered (method, path) is described here and
-that nothing described is missing from the app.
+Each constraint the server enforces is stated here from the same constants the checks use (board
+name, labels, tag identities, bounds). tests/collector/test_openapi.py checks that each registered
+(method, path) is described and nothing more, and runs a bounded schemathesis pass against a real
+collector: no 5xx, and every answer in the documented shape and status codes.
 """
 
 from __future__ import annotations
@@ -10,6 +12,17 @@ from __future__ import annotations
 from typing import Any
 
 from aiohttp import web
+
+from listenpost.collector.http.admin import (
+    MAX_EVENT_ID,
+    MAX_EVENTS,
+    MAX_TAGS_PER_REQUEST,
+    MAX_UNIX_S,
+)
+from listenpost.collector.provision import FLOOR_MAX, LABEL_PATTERN, ROOM_MAX
+from listenpost.core import wire
+from listenpost.core.identity import TAG_ID_PATTERN
+from listenpost.core.settings import BOARD_NAME
 
 _ERR = {"$ref": "#/components/responses/Error"}
 
@@ -22,8 +35,24 @@ def _ref(name: str) -> dict[str, str]:
     return {"$ref": f"#/components/schemas/{name}"}
 
 
+def _closed(schema: Any) -> Any:
+    """
+    ``schema`` with ``additionalProperties: false`` on every object that lists its properties: the
+    collector ignores other keys, but a body may not carry a NUL in any key (listenpost.core.jsonload),
+    which OpenAPI 3.0 cannot say of keys it does not name.
+    """
+    if isinstance(schema, list):
+        return [_closed(s) for s in schema]
+    if not isinstance(schema, dict):
+        return schema
+    out = {k: _closed(v) for k, v in schema.items()}
+    if out.get("type") == "object" and "properties" in out:
+        out["additionalProperties"] = False
+    return out
+
+
 def _body(schema: dict[str, Any]) -> dict[str, Any]:
-    return {"required": True, "content": {"application/json": {"schema": schema}}}
+    return {"required": True, "content": {"application/json": {"schema": _closed(schema)}}}
 
 
 def _obj(required: list[str] | None = None, **props: Any) -> dict[str, Any]:
@@ -36,14 +65,42 @@ def _obj(required: list[str] | None = None, **props: Any) -> dict[str, Any]:
 NUM = {"type": "number"}
 INT = {"type": "integer"}
 STR = {"type": "string"}
-NAME_PARAM = {"name": "name", "in": "path", "required": True, "schema": STR, "description": "board name"}
+BOARD = {"type": "string", "pattern": BOARD_NAME.pattern, "maxLength": 63}
+TAG = {
+    "type": "string",
+    "pattern": TAG_ID_PATTERN,
+    "description": "canonical tag identity; the admin API also takes the lenient forms it normalises",
+}
+ROOM = {"type": "string", "minLength": 1, "maxLength": ROOM_MAX, "pattern": LABEL_PATTERN}
+FLOOR = {"type": "string", "minLength": 1, "maxLength": FLOOR_MAX, "pattern": LABEL_PATTERN, "nullable": True}
+UNIX_S = {"type": "number", "minimum": 0, "maximum": MAX_UNIX_S}
+FLAG = {"type": "string", "enum": ["0", "1"]}
+# As listenpost.core.wire checks them (its patterns, stated here rather than copied).
+BOOT = {"type": "string", "minLength": 1, "maxLength": 64, "pattern": f"^{wire._BOOT.pattern}$"}
+EPOCH = {"type": "string", "pattern": wire._EPOCH.pattern}
+DIGEST = {"type": "string", "pattern": wire._DIGEST.pattern}
+BOARD_S = {
+    "type": "number",
+    "minimum": 0,
+    "maximum": wire.MAX_BOARD_S,
+    "description": "board monotonic seconds",
+}
+# listenpost.core.jsonload refuses a NUL anywhere in a body (and lone surrogates, which no JSON
+# generator of text produces).
+NO_NUL = "^[^\\u0000]*$"
+ANY_OBJECT = {"type": "object", "description": "no string in it, key or value, may hold a NUL character"}
+NAME_PARAM = {"name": "name", "in": "path", "required": True, "schema": BOARD, "description": "board name"}
+# Every route with a JSON body: bad JSON (400), too large (413), an encoding other than gzip (415).
+BODY_ERRORS = (400, 413, 415)
 BOARD_AUTH = [{"board": []}]
 ADMIN_AUTH = [{"admin": []}]
 PUBLIC: list[Any] = []
+TAG_LIST = {"type": "array", "maxItems": MAX_TAGS_PER_REQUEST, "items": TAG}
 
 
 def _errors(*codes: int) -> dict[str, Any]:
-    return {str(c): _ERR for c in codes}
+    """Error answers; 503 (the database is unavailable) can come from every route that reads it."""
+    return {str(c): _ERR for c in sorted({*codes, 503})}
 
 
 def spec() -> dict[str, Any]:
@@ -55,12 +112,21 @@ def spec() -> dict[str, Any]:
                 "summary": "Exchange a one-time enrollment code and hardware fingerprint for a board token",
                 "security": PUBLIC,
                 "tags": ["board"],
-                "requestBody": _body(_obj(["code"], code=STR, fingerprint={"type": "object"})),
+                "requestBody": _body(
+                    _obj(
+                        ["code"],
+                        code={"type": "string", "minLength": 4, "maxLength": 64, "pattern": NO_NUL},
+                        fingerprint={
+                            **ANY_OBJECT,
+                            "description": "at most 8 KiB as canonical JSON; " + ANY_OBJECT["description"],
+                        },
+                    )
+                ),
                 "responses": {
                     "200": _json(
-                        _obj(["board", "token", "config"], board=STR, token=STR, config=_ref("BoardConfig"))
+                        _obj(["board", "token", "config"], board=BOARD, token=STR, config=_ref("BoardConfig"))
                     ),
-                    **_errors(400, 404, 409, 410, 413, 503),
+                    **_errors(*BODY_ERRORS, 404, 409, 410),
                 },
             }
         },
@@ -88,12 +154,12 @@ def spec() -> dict[str, Any]:
                     _obj(
                         ["v", "board", "boot", "epoch", "seq", "digest", "t1", "content"],
                         v={"type": "integer", "enum": [1]},
-                        board=STR,
-                        boot=STR,
-                        epoch=STR,
-                        seq=INT,
-                        digest=STR,
-                        t1=NUM,
+                        board=BOARD,
+                        boot=BOOT,
+                        epoch=EPOCH,
+                        seq={"type": "integer", "minimum": 0, "maximum": 2**62 - 1},
+                        digest=DIGEST,
+                        t1=BOARD_S,
                         clock={**clock, "nullable": True},
                         content={"type": "object"},
                     )
@@ -107,7 +173,7 @@ def spec() -> dict[str, Any]:
                             t3=NUM,
                         )
                     ),
-                    **_errors(400, 401, 403, 409, 413, 415, 429, 503),
+                    **_errors(*BODY_ERRORS, 401, 403, 409, 429),
                 },
             }
         },
@@ -119,17 +185,17 @@ def spec() -> dict[str, Any]:
                 "requestBody": _body(
                     _obj(
                         ["boot"],
-                        board=STR,
-                        boot=STR,
-                        t1=NUM,
+                        board=BOARD,
+                        boot=BOOT,
+                        t1=BOARD_S,
                         wall=NUM,
                         clock={**clock, "nullable": True},
-                        stats={"type": "object"},
+                        stats=ANY_OBJECT,
                     )
                 ),
                 "responses": {
                     "200": _json(_obj(["t2", "t3", "config_etag"], t2=NUM, t3=NUM, config_etag=STR)),
-                    **_errors(400, 401, 403, 413, 503),
+                    **_errors(*BODY_ERRORS, 401, 403),
                 },
             }
         },
@@ -138,7 +204,7 @@ def spec() -> dict[str, Any]:
                 "summary": "Fleet and per-board health (what the health page shows)",
                 "security": PUBLIC,
                 "tags": ["health"],
-                "responses": {"200": _json(_ref("Status"))},
+                "responses": {"200": _json(_ref("Status")), **_errors()},
             }
         },
         "/v1/openapi.json": {
@@ -172,16 +238,19 @@ def spec() -> dict[str, Any]:
                 "summary": "Register a board; returns its one-time enrollment code",
                 "security": ADMIN_AUTH,
                 "tags": ["admin"],
-                "requestBody": _body(_obj(["name", "room"], name=STR, room=STR, floor=STR)),
-                "responses": {"201": _json(_ref("BoardWithCode")), **_errors(400, 401, 409)},
+                "requestBody": _body(_obj(["name", "room"], name=BOARD, room=ROOM, floor=FLOOR)),
+                "responses": {"201": _json(_ref("BoardWithCode")), **_errors(*BODY_ERRORS, 401, 409)},
             },
             "get": {
                 "summary": "All boards",
                 "security": ADMIN_AUTH,
                 "tags": ["admin"],
+                "parameters": [
+                    {"name": "retired", "in": "query", "schema": FLAG, "description": "0: leave retired out"}
+                ],
                 "responses": {
                     "200": _json(_obj(["boards"], boards={"type": "array", "items": _ref("Board")})),
-                    **_errors(401),
+                    **_errors(400, 401),
                 },
             },
         },
@@ -200,7 +269,7 @@ def spec() -> dict[str, Any]:
                 "security": ADMIN_AUTH,
                 "tags": ["admin"],
                 "parameters": [NAME_PARAM],
-                "responses": {"200": _json(_obj(name=STR, retired_at=NUM)), **_errors(401, 404)},
+                "responses": {"200": _json(_obj(name=BOARD, retired_at=NUM)), **_errors(401, 404)},
             }
         },
         "/v1/admin/boards/{name}/reissue": {
@@ -221,11 +290,11 @@ def spec() -> dict[str, Any]:
                 "requestBody": _body(
                     _obj(
                         ["tag", "distance_m"],
-                        tag=STR,
-                        distance_m=NUM,
-                        minutes=NUM,
-                        power_1m_dbm=NUM,
-                        exponent=NUM,
+                        tag=TAG,
+                        distance_m={"type": "number", "minimum": 0.1, "maximum": 100.0},
+                        minutes={"type": "number", "minimum": 0.5, "maximum": 240.0, "default": 5.0},
+                        power_1m_dbm={"type": "number", "minimum": -120.0, "maximum": 20.0, "default": -59.0},
+                        exponent={"type": "number", "minimum": 1.0, "maximum": 6.0, "default": 2.0},
                     )
                 ),
                 "responses": {
@@ -241,7 +310,7 @@ def spec() -> dict[str, Any]:
                             warnings={"type": "array", "items": STR},
                         )
                     ),
-                    **_errors(400, 401, 404, 409),
+                    **_errors(*BODY_ERRORS, 401, 404, 409),
                 },
             }
         },
@@ -250,17 +319,30 @@ def spec() -> dict[str, Any]:
                 "summary": "Register tags (all valid or nothing stored)",
                 "security": ADMIN_AUTH,
                 "tags": ["admin"],
-                "requestBody": _body(_obj(["ids"], ids={"type": "array", "items": STR})),
-                "responses": {"200": _json(_obj(added=INT, given=INT, total=INT)), **_errors(400, 401)},
+                "requestBody": _body(_obj(["ids"], ids=TAG_LIST)),
+                "responses": {
+                    "200": _json(
+                        _obj(
+                            added=INT,
+                            given=INT,
+                            total=INT,
+                            without_rule={"type": "object", "additionalProperties": INT},
+                        )
+                    ),
+                    **_errors(*BODY_ERRORS, 401),
+                },
             },
             "get": {
                 "summary": "Registered tags",
                 "security": ADMIN_AUTH,
                 "tags": ["admin"],
                 "parameters": [
-                    {"name": "retired", "in": "query", "schema": {"type": "string", "enum": ["0", "1"]}}
+                    {"name": "retired", "in": "query", "schema": FLAG, "description": "1: retired tags too"}
                 ],
-                "responses": {"200": _json(_obj(tags={"type": "array", "items": STR})), **_errors(401)},
+                "responses": {
+                    "200": _json(_obj(tags={"type": "array", "items": TAG})),
+                    **_errors(400, 401),
+                },
             },
         },
         "/v1/admin/tags/retire": {
@@ -268,8 +350,8 @@ def spec() -> dict[str, Any]:
                 "summary": "Retire tags",
                 "security": ADMIN_AUTH,
                 "tags": ["admin"],
-                "requestBody": _body(_obj(["ids"], ids={"type": "array", "items": STR})),
-                "responses": {"200": _json(_obj(retired=INT, given=INT)), **_errors(400, 401)},
+                "requestBody": _body(_obj(["ids"], ids=TAG_LIST)),
+                "responses": {"200": _json(_obj(retired=INT, given=INT)), **_errors(*BODY_ERRORS, 401)},
             }
         },
         "/v1/admin/events": {
@@ -278,13 +360,21 @@ def spec() -> dict[str, Any]:
                 "security": ADMIN_AUTH,
                 "tags": ["admin"],
                 "parameters": [
-                    {"name": "since", "in": "query", "schema": INT},
-                    {"name": "limit", "in": "query", "schema": INT},
-                    {"name": "board", "in": "query", "schema": STR},
+                    {
+                        "name": "since",
+                        "in": "query",
+                        "schema": {"type": "integer", "minimum": 0, "maximum": MAX_EVENT_ID, "default": 0},
+                    },
+                    {
+                        "name": "limit",
+                        "in": "query",
+                        "schema": {"type": "integer", "minimum": 1, "maximum": MAX_EVENTS, "default": 1000},
+                    },
+                    {"name": "board", "in": "query", "schema": BOARD},
                 ],
                 "responses": {
                     "200": _json(_obj(events={"type": "array", "items": _ref("Event")})),
-                    **_errors(400, 401),
+                    **_errors(400, 401, 404),
                 },
             }
         },
@@ -293,15 +383,16 @@ def spec() -> dict[str, Any]:
                 "summary": "Binned calibrated RSSI (tag × time bin × board) as CSV or .npz",
                 "security": ADMIN_AUTH,
                 "tags": ["admin"],
+                "description": "to must be after from and at most 31 days later; at most 10 million bins.",
                 "parameters": [
                     {"name": n, "in": "query", "required": n in ("from", "to"), "schema": s}
                     for n, s in (
-                        ("from", NUM),
-                        ("to", NUM),
-                        ("bin", NUM),
-                        ("format", {"type": "string", "enum": ["csv", "npz"]}),
-                        ("board", STR),
-                        ("tag", STR),
+                        ("from", UNIX_S),
+                        ("to", UNIX_S),
+                        ("bin", {"type": "number", "exclusiveMinimum": True, "minimum": 0, "default": 1}),
+                        ("format", {"type": "string", "enum": ["csv", "npz"], "default": "csv"}),
+                        ("board", {"type": "array", "items": BOARD}),
+                        ("tag", {"type": "array", "items": TAG}),
                     )
                 ],
                 "responses": {
@@ -321,16 +412,23 @@ def spec() -> dict[str, Any]:
                 "requestBody": _body(
                     _obj(
                         ["tag", "marks"],
-                        tag=STR,
+                        tag=TAG,
                         marks={
                             "type": "array",
-                            "items": _obj(["room", "from", "to"], room=STR, **{"from": NUM, "to": NUM}),
+                            "minItems": 1,
+                            "maxItems": 1000,
+                            "description": "to must be after from in each mark",
+                            "items": _obj(
+                                ["room", "from", "to"], room=ROOM, **{"from": UNIX_S, "to": UNIX_S}
+                            ),
                         },
                     )
                 ),
                 "responses": {
-                    "200": _json(_obj(tag=STR, rooms={"type": "array", "items": {"type": "object"}})),
-                    **_errors(400, 401),
+                    "200": _json(
+                        _obj(tag=TAG, readings=INT, rooms={"type": "array", "items": {"type": "object"}})
+                    ),
+                    **_errors(*BODY_ERRORS, 401),
                 },
             }
         },
@@ -357,8 +455,8 @@ def spec() -> dict[str, Any]:
             "schemas": {
                 "BoardConfig": _obj(
                     ["board", "tags", "rules", "offset_db", "flush_seconds", "heartbeat_seconds"],
-                    board=STR,
-                    tags={"type": "array", "items": STR},
+                    board=BOARD,
+                    tags={"type": "array", "items": TAG},
                     rules={
                         "type": "array",
                         "items": _obj(
@@ -377,7 +475,7 @@ def spec() -> dict[str, Any]:
                 ),
                 "Board": _obj(
                     ["name", "room"],
-                    name=STR,
+                    name=BOARD,
                     room=STR,
                     floor={**STR, "nullable": True},
                     created_at=NUM,

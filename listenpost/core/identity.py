@@ -25,6 +25,18 @@ BUILTIN_KINDS = ("mac", "ibeacon", "altbeacon", "eddystone")
 """Identity kinds with a fixed layout; a configured rule may not take one of these names."""
 
 _RULE_NAME = re.compile(r"[a-z][a-z0-9_-]{0,31}")
+_U16 = r"(?:[0-9]|[1-9][0-9]{1,3}|[1-5][0-9]{4}|6[0-4][0-9]{3}|65[0-4][0-9]{2}|655[0-2][0-9]|6553[0-5])"
+TAG_ID_PATTERN = (
+    r"^(?:mac:[0-9A-F]{2}(?::[0-9A-F]{2}){5}"
+    rf"|ibeacon:[0-9a-f]{{8}}-[0-9a-f]{{4}}-[0-9a-f]{{4}}-[0-9a-f]{{4}}-[0-9a-f]{{12}}:{_U16}:{_U16}"
+    r"|altbeacon:[0-9a-f]{40}"
+    r"|eddystone:[0-9a-f]{20}:[0-9a-f]{12}"
+    r"|(?!(?:mac|ibeacon|altbeacon|eddystone):)[a-z][a-z0-9_-]{0,31}:(?:[0-9a-f]{2}){1,32})$"
+)
+"""
+A canonical tag identity (the table above), exactly what `parse_tag_id` returns; in the common subset of
+Python and ECMA-262 regular expressions, so the OpenAPI document states it as it is. Use ``re.fullmatch``.
+"""
 _HEX = "0-9a-fA-F"
 _MAC = re.compile(
     rf"([{_HEX}]{{2}})[:-]([{_HEX}]{{2}})[:-]([{_HEX}]{{2}})[:-]([{_HEX}]{{2}})[:-]([{_HEX}]{{2}})[:-]([{_HEX}]{{2}})"

@@ -56,7 +56,9 @@ async def test_board_add_refuses_control_characters_naming_the_field(
     r = await client.post("/v1/admin/boards", json=body, headers=admin_headers(tmp_path))
     assert r.status == 400
     err = await _error(r)
-    assert err["field"] == field and field in err["message"]
+    # NUL and lone surrogates are refused earlier, by the strict JSON reader, which names the key.
+    assert err["field"] == ("body" if value in ("G0\x00Foyer", "G0\ud800Foyer") else field)
+    assert field in err["message"]
     r = await client.get("/v1/admin/boards", headers=admin_headers(tmp_path))
     assert (await r.json())["boards"] == []  # nothing stored
 
