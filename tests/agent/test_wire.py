@@ -113,6 +113,7 @@ def _content() -> dict:
             lambda c: c["readings"]["tags"].__setitem__(0, " mac:AA:AA:AA:AA:AA:AA"),
             "content.readings.tags[0]",
         ),
+        (lambda c: c["readings"]["tags"].__setitem__(1, ["lpx:00000007"]), "content.readings.tags[1]"),
         (lambda c: c.__setitem__("boot", "boot\x00"), "content.boot"),
         (lambda c: c.__setitem__("boot", "b" * 65), "content.boot"),
         (
