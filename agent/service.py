@@ -238,18 +238,19 @@ class AgentService:
 
     def _final_word(self, code: int) -> int:
         """
-        A run that ends with readings neither delivered nor in the spool file says how many, and fails.
+        A run that ends with readings neither delivered nor in the spool file says how many.
 
-        Counted: readings still in memory at close (a failing disk) and readings dropped from memory or
-        from a full spool during this run (those were reported to the collector by a gap record, if it
-        could be reached and the record was not itself lost).
+        Readings still in memory at close (a failing disk) are lost without a trace at the collector:
+        the run fails. Readings dropped during the run (memory bound, full spool) were reported to the
+        collector by a gap record, so they are logged but do not fail an ordinary stop, which systemd
+        would otherwise show as a failed unit after every long outage.
         """
         assert self.spool is not None
         at_close = self.spool.lost_at_close
         dropped = self.spool.stats().dropped_readings - self._dropped_at_start
         if not at_close and not dropped:
             return code
-        log.error(
+        (log.error if at_close else log.warning)(
             "readings_lost",
             readings=at_close + dropped,
             lost_at_close=at_close,
@@ -257,7 +258,7 @@ class AgentService:
             spool_degraded=self.spool.stats().degraded,
             hint="see docs/reliability.md §1: a full or failing disk keeps readings in memory only",
         )
-        return code or 1
+        return (code or 1) if at_close else code
 
     def _start_network(self, url: str, token: str, heartbeat_s: float) -> None:
         cfg, clock = self.cfg, self.clock
