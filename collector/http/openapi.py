@@ -220,7 +220,18 @@ def spec() -> dict[str, Any]:
                 "summary": "Health page (HTML)",
                 "security": PUBLIC,
                 "tags": ["health"],
-                "responses": {"200": {"description": "HTML", "content": {"text/html": {"schema": STR}}}},
+                "parameters": [
+                    {
+                        "name": "refresh",
+                        "in": "query",
+                        "schema": NUM,
+                        "description": "seconds between updates, clamped to 0.2..300",
+                    }
+                ],
+                "responses": {
+                    "200": {"description": "HTML", "content": {"text/html": {"schema": STR}}},
+                    **_errors(400),
+                },
             }
         },
         "/metrics": {

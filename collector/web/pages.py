@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import html
 import json
+import math
 import time
 from pathlib import Path
 from string import Template
@@ -16,6 +17,7 @@ from typing import Any
 
 from aiohttp import web
 
+from listenpost.collector.http.middlewares import bad_field
 from listenpost.collector.state import SETTINGS
 from listenpost.collector.status import REFRESH_SECONDS, STATE_LABELS, fmt_age, fmt_clock_error, status_doc
 
@@ -131,11 +133,15 @@ def render_page(doc: dict[str, Any], title: str = "listenpost · receivers") -> 
 
 
 async def page(request: web.Request) -> web.Response:
-    doc = await status_doc(request.app)
-    try:  # ?refresh=S: a wall display may want it slower, a test faster
-        doc["refresh_seconds"] = min(max(float(request.query.get("refresh", REFRESH_SECONDS)), 0.2), 300.0)
+    raw = request.query.get("refresh")  # ?refresh=S: a wall display may want it slower, a test faster
+    try:
+        refresh = float(raw) if raw is not None else REFRESH_SECONDS
     except ValueError:
-        pass
+        refresh = math.nan
+    if not math.isfinite(refresh):
+        raise bad_field("refresh", f"must be seconds (clamped to 0.2..300), got {raw[:40]!r}")
+    doc = await status_doc(request.app)
+    doc["refresh_seconds"] = min(max(refresh, 0.2), 300.0)
     name = request.app[SETTINGS].public_url or request.host
     return web.Response(
         text=render_page(doc, f"listenpost · {name}"),

@@ -226,3 +226,13 @@ async def test_the_collector_creates_its_default_store_owner_only(aiohttp_client
     finally:
         os.umask(old)
     assert modes and set(modes.values()) == {0o600}, modes
+
+
+@pytest.mark.parametrize("value", ["nan", "inf", "-inf", "1e400", "abc", ""])
+async def test_the_health_page_refresh_parameter_is_checked(aiohttp_client, tmp_path, clock, value):
+    client = await make_client(aiohttp_client, tmp_path, clock)
+    r = await client.get("/", params={"refresh": value})
+    assert r.status == 400, await r.text()
+    assert (await _error(r))["field"] == "refresh"
+    for ok in ("0.3", "0.01", "1000"):  # finite values outside 0.2..300 s are clamped, as before
+        assert (await client.get("/", params={"refresh": ok})).status == 200
