@@ -99,11 +99,17 @@ def _query_board(request: web.Request, raw: str, name: str = "board") -> str:
 
 
 def _number_field(
-    body: dict[str, Any], name: str, lo: float, hi: float, default: float | None = None
+    body: dict[str, Any],
+    name: str,
+    lo: float,
+    hi: float,
+    default: float | None = None,
+    *,
+    field: str | None = None,
 ) -> float:
     v = body.get(name, default)
     if not isinstance(v, int | float) or isinstance(v, bool) or not math.isfinite(v) or not lo <= v <= hi:
-        raise bad_field(name, f"must be a number in {lo:g}..{hi:g}, got {v!r}")
+        raise bad_field(field or name, f"must be a number in {lo:g}..{hi:g}, got {v!r}")
     return float(v)
 
 
@@ -486,8 +492,8 @@ async def walktest(request: web.Request) -> web.Response:
         if not isinstance(m, dict):
             raise bad_field(f"marks[{i}]", "must be an object")
         room = _str_field(m, "room", max_len=ROOM_MAX, field=f"marks[{i}].room")
-        t0 = _number_field(m, "from", 0, MAX_UNIX_S)
-        t1 = _number_field(m, "to", 0, MAX_UNIX_S)
+        t0 = _number_field(m, "from", 0, MAX_UNIX_S, field=f"marks[{i}].from")
+        t1 = _number_field(m, "to", 0, MAX_UNIX_S, field=f"marks[{i}].to")
         if t1 <= t0:
             raise bad_field(f"marks[{i}].to", "must be after from")
         marks.append((room, t0, t1))

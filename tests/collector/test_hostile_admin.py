@@ -69,6 +69,13 @@ async def test_walktest_room_refuses_control_characters(aiohttp_client, tmp_path
     r = await client.post("/v1/admin/walktest", json=body, headers=admin_headers(tmp_path))
     assert r.status == 400
     assert (await _error(r))["field"] == "marks[0].room"
+    body = {
+        "tag": "lpx:00000007",
+        "marks": [{"room": "G0", "from": 1, "to": 2}, {"room": "G1", "from": 1e300, "to": 2}],
+    }
+    r = await client.post("/v1/admin/walktest", json=body, headers=admin_headers(tmp_path))
+    assert r.status == 400
+    assert (await _error(r))["field"] == "marks[1].from"
 
 
 # -------------------------------------------------------------------------------- query parameters
