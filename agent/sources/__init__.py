@@ -173,6 +173,10 @@ class ReplaySource:
     At ``speed`` S the clock time between two consecutive adverts is (t_i − t_{i−1}) / S; a
     negative step (the next file starts earlier) counts as 0. The source keeps a due time and
     sleeps only when it is ahead of it, so a slow consumer is never made slower by tiny sleeps.
+    Wake-ups are at least `PACING_GRAIN_S` apart: an advert due sooner than that after the last
+    one waits for the next wake-up, which hands over every advert then due. So a dense replay costs
+    one wake-up per grain rather than one per advert, and each advert comes no earlier than its due
+    time and at most one grain after it (board times are the recorded ones either way).
     ``speed`` 0 plays as fast as possible, yielding to the event loop every 256 adverts.
 
     Files are read with ordinary buffered reads on the event loop thread: a line at a time from
@@ -180,6 +184,8 @@ class ReplaySource:
     """
 
     YIELD_EVERY = 256
+    PACING_GRAIN_S = 0.05
+    """Shortest clock time between two wake-ups of a paced replay, seconds (the most an advert is late)."""
 
     def __init__(self, files: Sequence[ReplayFile], clock: Clock, speed: float = 1.0) -> None:
         if speed < 0 or not math.isfinite(speed):
@@ -215,8 +221,9 @@ class ReplaySource:
                     )
 
     async def adverts(self) -> AsyncIterator[Advert]:
-        clock, speed = self.clock, self.speed
+        clock, speed, grain = self.clock, self.speed, self.PACING_GRAIN_S
         due = clock.monotonic()
+        wake_floor = -math.inf  # no wake-up before this clock time (one grain after the last)
         prev_t: int | None = None
         since_yield = 0
         for adv in self._stream():
@@ -224,9 +231,10 @@ class ReplaySource:
                 if prev_t is not None and adv.t_mono_ns > prev_t:
                     due += (adv.t_mono_ns - prev_t) / 1e9 / speed
                 prev_t = adv.t_mono_ns
-                lag = due - clock.monotonic()
-                if lag > 0:
-                    await clock.sleep(lag)
+                now = clock.monotonic()
+                if due > now:
+                    await clock.sleep(max(due, wake_floor) - now)
+                    wake_floor = clock.monotonic() + grain
             else:
                 since_yield += 1
                 if since_yield >= self.YIELD_EVERY:

@@ -438,3 +438,23 @@ def test_overlong_line_is_refused_without_reading_it_all(tmp_path):
     _lines(p, "{" + "x" * 200_000)
     with pytest.raises(CaptureFormatError, match=r"long\.jsonl:2: line longer than 65536 bytes"):
         list(read_recording(p)[1])
+
+
+async def test_paced_replay_sleeps_per_grain_not_per_advert(tmp_path):
+    """
+    A dense replay wakes at most once per pacing grain, never once per advert, and no advert is handed
+    over before its time nor later than one grain after it.
+    """
+    n, span = 2000, 10.0  # 200 adverts/s over 10 s of board time, uneven gaps
+    times = sorted(10.0 + span * ((i * 7919) % n) / n for i in range(n))
+    p = tmp_path / "r.jsonl"
+    _write(p, [_adv(t, i % 200) for i, t in enumerate(times)])
+    clock = CountingClock()
+    got = await _run_paced(open_replay([p], clock, 1.0), clock, span + 1)
+    assert len(got) == n
+    grain = ReplaySource.PACING_GRAIN_S
+    assert len(clock.sleeps) <= span / grain + 2
+    for (at, t_ns), t in zip(got, times, strict=True):
+        due = 1000.0 + (t - times[0])
+        assert due - 1e-9 <= at <= due + grain + 1e-9, (at, due)
+        assert t_ns == round(t * 1e9)  # board time as recorded, however late the hand-over
