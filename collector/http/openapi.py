@@ -167,10 +167,11 @@ def spec() -> dict[str, Any]:
                 "responses": {
                     "200": _json(
                         _obj(
-                            ["status", "t2", "t3"],
+                            ["status", "t2", "t3", "unregistered_readings"],
                             status={"type": "string", "enum": ["stored", "duplicate"]},
                             t2=NUM,
                             t3=NUM,
+                            unregistered_readings={**INT, "minimum": 0},
                         )
                     ),
                     **_errors(*BODY_ERRORS, 401, 403, 409, 429),
