@@ -76,9 +76,9 @@ FLOOR = {"type": "string", "minLength": 1, "maxLength": FLOOR_MAX, "pattern": LA
 UNIX_S = {"type": "number", "minimum": 0, "maximum": MAX_UNIX_S}
 FLAG = {"type": "string", "enum": ["0", "1"]}
 # As listenpost.core.wire checks them (its patterns, stated here rather than copied).
-BOOT = {"type": "string", "minLength": 1, "maxLength": 64, "pattern": f"^{wire._BOOT.pattern}$"}
-EPOCH = {"type": "string", "pattern": wire._EPOCH.pattern}
-DIGEST = {"type": "string", "pattern": wire._DIGEST.pattern}
+BOOT = {"type": "string", "minLength": 1, "maxLength": 64, "pattern": f"^{wire.BOOT_ID.pattern}$"}
+EPOCH = {"type": "string", "pattern": f"^{wire.EPOCH.pattern}$"}
+DIGEST = {"type": "string", "pattern": f"^{wire.DIGEST.pattern}$"}
 BOARD_S = {
     "type": "number",
     "minimum": 0,

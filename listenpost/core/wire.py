@@ -48,7 +48,8 @@ MAX_TELEMETRY_ABS = 2**53
 """Telemetry numbers beyond this are not measurements (and would not fit a database integer)."""
 _MAX_COUNT = 2**62
 """Bound of seqs and gap counts: a signed 64-bit database integer holds them."""
-_BOOT = re.compile(r"[!-~]{1,64}")
+BOOT_ID = re.compile(r"[!-~]{1,64}")
+"""A boot id: 1 to 64 printable ASCII characters without space (whole-string match)."""
 """A boot id: 1-64 printable ASCII characters without spaces (Linux gives a UUID)."""
 
 
@@ -140,8 +141,8 @@ class DecodedContent:
 
 
 def check_boot(v: Any, field: str) -> str:
-    """A boot id as `_BOOT` allows; raises `WireError` naming ``field``."""
-    if not isinstance(v, str) or not _BOOT.fullmatch(v):
+    """A boot id as `BOOT_ID` allows; raises `WireError` naming ``field``."""
+    if not isinstance(v, str) or not BOOT_ID.fullmatch(v):
         raise WireError(field, f"must be 1-64 printable ASCII characters without spaces, got {v!r:.80}")
     return v
 
@@ -343,8 +344,10 @@ def parse_clock(obj: Any, field: str = "clock") -> tuple[float, float, float, fl
     return t1, t2, t3, t4
 
 
-_EPOCH = re.compile(r"^[0-9a-f]{8,32}$")
-_DIGEST = re.compile(r"^[0-9a-f]{64}$")
+EPOCH = re.compile(r"[0-9a-f]{8,32}")
+"""A spool epoch: 8 to 32 lower-case hex digits (whole-string match)."""
+DIGEST = re.compile(r"[0-9a-f]{64}")
+"""A SHA-256 digest in lower-case hex (whole-string match)."""
 
 
 def parse_batch(body: Any, *, max_readings: int) -> BatchEnvelope:
@@ -358,13 +361,13 @@ def parse_batch(body: Any, *, max_readings: int) -> BatchEnvelope:
         raise WireError("board", "must be the board name")
     boot = check_boot(body.get("boot"), "boot")
     epoch = body.get("epoch")
-    if not isinstance(epoch, str) or not _EPOCH.match(epoch):
+    if not isinstance(epoch, str) or not EPOCH.fullmatch(epoch):
         raise WireError("epoch", f"must be 8-32 lower-case hex characters, got {epoch!r}")
     seq = body.get("seq")
     if not isinstance(seq, int) or isinstance(seq, bool) or not 0 <= seq < _MAX_COUNT:
         raise WireError("seq", f"must be a non-negative integer, got {seq!r}")
     dig = body.get("digest")
-    if not isinstance(dig, str) or not _DIGEST.match(dig):
+    if not isinstance(dig, str) or not DIGEST.fullmatch(dig):
         raise WireError("digest", "must be 64 lower-case hex characters (sha256)")
     t1 = board_seconds(body.get("t1"), "t1")
     clock = parse_clock(body.get("clock"))

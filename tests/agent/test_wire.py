@@ -184,6 +184,8 @@ def _envelope(**changes) -> dict:
         ({"boot": "two words"}, "boot"),
         ({"clock": {"t1": -5.0, "t2": 1.8e9, "t3": 1.8e9, "t4": 1.0}}, "clock.t1"),
         ({"clock": {"t1": 1.0, "t2": 1.8e9, "t3": 1.8e9, "t4": 1e300}}, "clock.t4"),
+        ({"epoch": "00112233aabbccdd\n"}, "epoch"),  # a trailing newline is not a whole-string match
+        ({"boot": "b\n"}, "boot"),
     ],
 )
 def test_bad_envelope_names_the_field(changes: dict, field: str) -> None:
