@@ -112,7 +112,7 @@ async def main_async(args: argparse.Namespace) -> int:
     root = Path(tempfile.mkdtemp(prefix="lp-soak-"))
     print(f"soak: seed {seed}, work dir {root}, {'quick' if args.quick else 'full'} run", flush=True)
     started = time.monotonic()
-    minutes = 2.0 if args.quick else 6.0
+    minutes = 3.0 if args.quick else 6.0
     venue, truth_doc, truth = prepare(root, minutes, seed)
     tags = [
         line.strip()
@@ -169,7 +169,7 @@ async def main_async(args: argparse.Namespace) -> int:
     when = datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC")
     commit = await asyncio.to_thread(head_commit)
     text = (
-        f"Run {when} at commit `{commit or '?'}`, {'quick' if args.quick else 'full'} run, seed {seed}, "
+        f"Run {when} at commit {commit}, {'quick' if args.quick else 'full'} run, seed {seed}, "
         f"{took / 60:.1f} min.\n\nMachine: {machine()}.\n\n{table(rows)}"
     )
     print()

@@ -11,6 +11,8 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import gzip
+import json
 import random
 import time
 from collections import Counter
@@ -185,11 +187,15 @@ class Scene:
         self.ended[b.proc.pid] = time.time()
         b.kill9()
 
-    async def wait_count_above(self, n: int, bound_s: float) -> float | None:
-        """Seconds until more than ``n`` readings are stored, or None when the bound ran out."""
+    async def wait_count_above(self, n: int, bound_s: float, done_at: int | None = None) -> float | None:
+        """
+        Seconds until more than ``n`` readings are stored (or ``done_at``: nothing was left to send),
+        or None when the bound ran out.
+        """
         t0 = time.monotonic()
         while time.monotonic() - t0 < bound_s:
-            if await count_readings(self.db) > n:
+            now = await count_readings(self.db)
+            if now > n or (done_at is not None and now >= done_at):
                 return time.monotonic() - t0
             await asyncio.sleep(0.25)
         return None
@@ -288,8 +294,11 @@ def finish_row(row: Row, t: Tally, stops: list[bool], statuses: Counter[int], sc
         row.notes.insert(0, "fault seen: " + row.fired)
     else:
         row.notes.insert(0, "the fault left no trace (did it fire?)")
+    if row.recover_s.startswith(">"):
+        row.notes.append("did not recover within the bound")
     row.ok = (
-        t.duplicates == 0
+        not row.recover_s.startswith(">")
+        and t.duplicates == 0
         and t.invented == 0
         and t.holes == 0
         and t.lost_outside_window == 0
@@ -395,7 +404,7 @@ async def collector_kill_loop(ctx: Ctx, backend: str) -> Row:
             c.kill9()
             await asyncio.sleep(ctx.rng.uniform(0.5, 2.0))
             c.start()
-            recover.append(await scene.wait_count_above(before, 90))
+            recover.append(await scene.wait_count_above(before, 90, scene.expected_total()))
         row.recover_s = worst(recover, 90)
         row.fired = f"{sum(q.popen.returncode == -9 for q in c.procs)} collectors ended by SIGKILL"
         if await scene.wait_count(scene.expected_total(), p.drain_timeout_s) is None:
@@ -417,7 +426,7 @@ async def pg_restart(ctx: Ctx) -> Row:
         await asyncio.sleep(5)
         await asyncio.to_thread(ctx.pg.start)
         before = await count_readings(scene.db)
-        row.recover_s = fmt_s(await scene.wait_count_above(before, 90), 90)
+        row.recover_s = fmt_s(await scene.wait_count_above(before, 90, scene.expected_total()), 90)
         if await scene.wait_count(scene.expected_total(), p.drain_timeout_s) is None:
             row.notes.append(f"not drained within {p.drain_timeout_s:.0f} s")
         (c,) = scene.collectors
@@ -500,15 +509,13 @@ async def agent_disk_full(ctx: Ctx) -> Row:
         assert b.proc is not None
         b.proc.set_fsize_limit(4096)  # every write past the first page fails with EFBIG
         await asyncio.sleep(p.disk_full_s)
-        degraded = [
-            d for d in b.proc.events() if "degraded" in str(d.get("event", "")) or d.get("level") == "error"
-        ]
-        if not degraded:
-            row.notes.append("no degraded/error line from the agent while full")
+        degraded = [d for d in b.proc.events() if d.get("level") in ("error", "warning")]
+        if degraded:
+            row.fired = "agent logged " + ", ".join(sorted({str(d.get("event")) for d in degraded}))
         if b.proc.alive():
             b.proc.set_fsize_limit(None)
             before = await count_readings(scene.db)
-            row.recover_s = fmt_s(await scene.wait_count_above(before, 90), 90)
+            row.recover_s = fmt_s(await scene.wait_count_above(before, 90, scene.expected_total()), 90)
         else:
             row.notes.append("agent died while its disk was full; restarted")
             b.start()
@@ -538,7 +545,7 @@ async def collector_disk_full(ctx: Ctx) -> Row:
             c.start()
             await c.wait_listening()
         before = await count_readings(scene.db)
-        row.recover_s = fmt_s(await scene.wait_count_above(before, 90), 90)
+        row.recover_s = fmt_s(await scene.wait_count_above(before, 90, scene.expected_total()), 90)
         if await scene.wait_count(scene.expected_total(), p.drain_timeout_s) is None:
             row.notes.append(f"not drained within {p.drain_timeout_s:.0f} s")
         unavailable = c.statuses().get(503, 0)
@@ -662,6 +669,157 @@ async def many_boards(ctx: Ctx) -> Row:
     return row
 
 
+def hostile_bodies(tag: str) -> list[tuple[str, bytes, dict[str, str]]]:
+    """(what, body, extra headers): requests a board must never be able to turn into a 500 or a stored row."""
+    import uuid
+
+    from listenpost.core import wire
+    from listenpost.core.records import Reading
+
+    def content(tags: list[str]) -> dict[str, Any]:
+        c = wire.encode_content(
+            [Reading(tag, 50_000_000_000, -60.0), Reading(tag, 50_001_000_000, -61.0)],
+            boot="hostile",
+            offset_db=0.0,
+        )
+        c["readings"]["tags"] = tags
+        return c
+
+    def batch(c: Any, **env: Any) -> dict[str, Any]:
+        head = {"v": 1, "board": "x0", "boot": str(uuid.uuid4()), "epoch": "00112233aabbccdd", "seq": 0}
+        head |= {"clock": None, "t1": 60.0, "digest": "0" * 64, **env}
+        with contextlib.suppress(ValueError, TypeError):
+            head["digest"] = wire.digest(c)
+        return {**head, "content": c}
+
+    def js(obj: Any) -> bytes:
+        return json.dumps(obj, allow_nan=True).encode("utf-8", "surrogatepass")
+
+    nul = content([tag, tag[:8] + "\x00" + tag[9:]])
+    nan = content([tag, tag])
+    nan["readings"]["rssi_dd"] = [float("nan"), 1]
+    gz = {"Content-Encoding": "gzip"}
+    return [
+        ("NUL in a tag", js(batch(nul)), {}),
+        ("NaN RSSI", js(batch(nan)), {}),
+        ("deep nesting", b"[" * 100_000 + b"]" * 100_000, {}),
+        ("lone surrogate", js(batch(content([tag, "ibeacon:\ud800"]))), {}),
+        ("tag outside the grammar", js(batch(content([tag, "ibeacon:zz"]))), {}),
+        ("wrong digest", js({**batch(content([tag, tag])), "digest": "f" * 64}), {}),
+        ("seq 10**30", js(batch(content([tag, tag]), seq=10**30)), {}),
+        ("negative t1", js(batch(content([tag, tag]), t1=-5.0)), {}),
+        ("invalid UTF-8", b'{"v": 1, "board": "\xff\xfe"}', {}),
+        ("not gzip", b"garbage" * 10, gz),
+        ("gzip bomb", gzip.compress(b"0" * 40_000_000, 9), gz),
+        ("unknown encoding", b"{}", {"Content-Encoding": "br"}),
+        ("truncated JSON", js(batch(content([tag, tag])))[:-40], {}),
+    ]
+
+
+async def hostile_input(ctx: Ctx) -> Row:
+    """A poison batch and hostile bodies from one board while the agents and a burst of good batches are stored."""
+    import uuid
+
+    from listenpost.core import wire
+    from listenpost.core.records import Reading
+
+    p = ctx.params
+    row = Row("poison batch and hostile input (sqlite)", "none: each refused alone with a 4xx")
+    burst, per = 100, 20
+    tag = ctx.tags[0]
+    good_truth: list[Reading] = []
+    accepted: list[int] = []
+
+    async def body(scene: Scene, row: Row) -> None:
+        (c,) = scene.collectors
+        tokens = await register(c, ctx.tags, ["x0", "x1"])
+        if await scene.wait_count_above(0, 60) is None:
+            raise RuntimeError("nothing stored within 60 s")
+        boot = str(uuid.uuid4())
+        goods = []
+        for seq in range(burst):
+            rs = [
+                Reading(ctx.tags[i % len(ctx.tags)], (1000 + seq * per + i) * 1_000_000, -70.0)
+                for i in range(per)
+            ]
+            good_truth.extend((r.tag, r.t_mono_ns // 1_000_000, -700) for r in rs)
+            content = wire.encode_content(rs, boot=boot, offset_db=0.0)
+            head = {
+                "v": 1,
+                "board": "x1",
+                "boot": boot,
+                "epoch": "0123456789abcdef",
+                "seq": seq,
+                "clock": None,
+            }
+            goods.append(
+                gz_body(
+                    {
+                        **head,
+                        "t1": 1000.0 + (seq + 1) * per,
+                        "digest": wire.digest(content),
+                        "content": content,
+                    }
+                )
+            )
+        hostile = hostile_bodies(tag)
+        answers: Counter[str] = Counter()
+        async with aiohttp.ClientSession(timeout=aiohttp.ClientTimeout(total=30)) as s:
+
+            async def post(board: str, data: bytes, extra: dict[str, str], what: str) -> None:
+                headers = {
+                    "Authorization": "Bearer " + tokens[board],
+                    "Content-Type": "application/json",
+                    **extra,
+                }
+                async with s.post(c.url + "/v1/batches", data=data, headers=headers) as r:
+                    answers[f"{what}: {r.status}"] += 1
+
+            gz = {"Content-Encoding": "gzip"}
+            jobs = [post("x1", g, gz, "good") for g in goods]
+            for i, (what, data, extra) in enumerate(hostile * 3):
+                jobs.insert((i * 7) % len(jobs), post("x0", data, extra, what))
+            await asyncio.gather(*jobs)
+        bad = {
+            k: n
+            for k, n in answers.items()
+            if not k.startswith("good") and not k.split(": ")[1].startswith("4")
+        }
+        good_ok = answers.get("good: 200", 0)
+        row.fired = f"{sum(answers.values()) - good_ok} hostile posts among {burst} good ones"
+        row.notes.append(
+            "hostile answers: "
+            + ", ".join(sorted({k.split(": ")[1] for k in answers if not k.startswith("good")}))
+        )
+        if bad:
+            row.notes.append(
+                "not refused with a 4xx: " + ", ".join(f"{k}×{n}" for k, n in sorted(bad.items()))
+            )
+            accepted.append(sum(bad.values()))
+        if good_ok != burst:
+            row.notes.append(
+                f"good batches: {dict((k, n) for k, n in answers.items() if k.startswith('good'))}"
+            )
+        if await scene.wait_count(scene.expected_total() + len(good_truth), p.drain_timeout_s) is None:
+            row.notes.append(f"not drained within {p.drain_timeout_s:.0f} s")
+
+    scene = Scene(ctx, "hostile", "sqlite", ["g3-a", "g0-a"])
+    row = await run_scene(ctx, row, scene, body)
+    # the burst board and the hostile board, against what was sent
+    have = Counter((tag, t, r) for _, tag, t, r in await stored(scene.db, "x1"))
+    want = Counter(good_truth)
+    row.expected += sum(want.values())
+    row.stored += sum(have.values())
+    row.duplicates += sum(max(0, n - want[k]) for k, n in have.items() if k in want)
+    strays = len(await stored(scene.db, "x0")) + sum(n for k, n in have.items() if k not in want)
+    missing = sum(max(0, n - have[k]) for k, n in want.items())
+    if strays or missing:
+        row.notes.append(f"{strays} readings stored from hostile bodies, {missing} good ones missing")
+    if strays or missing or accepted:
+        row.ok = False
+    return row
+
+
 def all_faults(ctx: Ctx) -> list[tuple[str, Any]]:
     """(name, coroutine factory) in running order; names are what --only takes."""
     return [
@@ -675,6 +833,7 @@ def all_faults(ctx: Ctx) -> list[tuple[str, Any]]:
         ("collector-disk-full", lambda: collector_disk_full(ctx)),
         ("outage", lambda: collector_outage(ctx)),
         ("many-boards", lambda: many_boards(ctx)),
+        ("hostile", lambda: hostile_input(ctx)),
     ]
 
 

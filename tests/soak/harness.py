@@ -94,6 +94,7 @@ class Proc:
             stderr=subprocess.STDOUT,
             stdin=subprocess.DEVNULL,
             preexec_fn=limit,
+            cwd=str(log.parent),  # not the source tree: PYTHONPATH decides which listenpost the child runs
             env={**os.environ, "PYTHONUNBUFFERED": "1"},
         )
         self.pid = self.popen.pid
@@ -451,6 +452,7 @@ def dry_run(recording: Path, tags: Path, rules: list[dict[str, Any]], work: Path
         text=True,
         timeout=300,
         check=False,
+        cwd=str(work),
     )
     if proc.returncode != 0:
         raise RuntimeError(f"dry run of {recording} failed: {proc.stderr[-2000:]}")
