@@ -12,7 +12,14 @@ the bus goes away, callbacks just stop. So this source
   and tries again;
 * moves adverts from the callback to the consumer through a bounded queue, counting overflow;
 * counts what it could not use: RSSI -127 is bleak's stand-in for "no RSSI property", not a
-  measurement, so those callbacks are dropped and counted.
+  measurement, so those callbacks are dropped and counted;
+* watches the bus itself (`BusWatch`, one dbus-fast connection of its own): bleak does not notice
+  bluetoothd leaving and returning (it never sends ``StartDiscovery`` again), an adapter being removed,
+  or ``Discovering`` going false behind its back. Each of those, and the bus dropping, rebuilds the
+  scanner at once instead of after ``stall_seconds`` of silence, and BlueZ, the adapter or the bus
+  coming back cuts the backoff short;
+* records each outage as an `Episode` (cause, when, how long until an advert was heard again) for
+  the heartbeat, so the collector can tell "the radio stack restarted and recovered" from "deaf".
 
 Every wait, timeout and backoff runs on the injected clock.
 """
@@ -23,7 +30,9 @@ import asyncio
 import contextlib
 import enum
 import random
-from collections.abc import AsyncIterator
+from collections import deque
+from collections.abc import AsyncIterator, Sequence
+from dataclasses import dataclass
 from typing import Any
 
 import structlog
@@ -47,6 +56,69 @@ log = structlog.get_logger(__name__)
 
 NO_RSSI = -127
 """What bleak reports when BlueZ's Device1 has no RSSI property (``props.get("RSSI", -127)``)."""
+
+
+EPISODES_KEPT = 8
+"""Episodes the heartbeat carries (the newest; ``episodes_total`` counts them all)."""
+
+
+class Cause(enum.Enum):
+    """What opened an outage episode, when it was not a failed start (that gives a `SourceReason`)."""
+
+    BLUEZ_GONE = "bluez_gone"
+    """org.bluez lost its owner: bluetoothd exited or crashed."""
+    BLUEZ_RESTARTED = "bluez_restarted"
+    """org.bluez changed owner (or came back) while a scanner believed it was scanning."""
+    ADAPTER_REMOVED = "adapter_removed"
+    """The adapter's object went away (InterfacesRemoved): unplugged, or its driver reset."""
+    DISCOVERY_STOPPED = "discovery_stopped"
+    """The adapter's ``Discovering`` went false while this source held a discovery session."""
+    BUS_LOST = "bus_lost"
+    """The connection to the system bus dropped (dbus-daemon restarted or died)."""
+    STALLED = "stalled"
+    """No advert for ``stall_seconds`` (a quiet room looks the same)."""
+
+
+_CAUSE_REASONS = {
+    Cause.BLUEZ_GONE: SourceReason.BLUEZ_DOWN,
+    Cause.BLUEZ_RESTARTED: SourceReason.BLUEZ_DOWN,
+    Cause.ADAPTER_REMOVED: SourceReason.ADAPTER_MISSING,
+    Cause.DISCOVERY_STOPPED: SourceReason.STALLED,
+    Cause.BUS_LOST: SourceReason.BLUEZ_DOWN,
+    Cause.STALLED: SourceReason.STALLED,
+}
+
+
+@dataclass
+class Episode:
+    """
+    One outage, from the first sign of trouble to the first advert heard again (board seconds).
+
+    ``returned`` is the last time the bus watch saw what had gone come back (org.bluez owned again,
+    the adapter added, the bus reconnected), so ``heard - returned`` is the recovery the source
+    itself added on top of the outage.
+    """
+
+    reason: str
+    started: float
+    rebuilds: int = 0
+    returned: float | None = None
+    scanning: float | None = None
+    heard: float | None = None
+
+    def as_dict(self) -> dict[str, Any]:
+        def after(t: float | None, since: float | None) -> float | None:
+            return None if t is None or since is None else round(t - since, 3)
+
+        return {
+            "reason": self.reason,
+            "started_s": round(self.started, 3),
+            "open": self.heard is None,
+            "duration_s": after(self.heard, self.started),
+            "rebuilds": self.rebuilds,
+            "scanning_after_s": after(self.scanning, self.started),
+            "heard_after_return_s": after(self.heard, self.returned),
+        }
 
 
 class ScanState(enum.Enum):
@@ -74,6 +146,8 @@ _DBUS_REASONS = {
     "org.freedesktop.DBus.Error.NameHasNoOwner": SourceReason.BLUEZ_DOWN,
     "org.freedesktop.DBus.Error.NoReply": SourceReason.BLUEZ_DOWN,
     "org.freedesktop.DBus.Error.AccessDenied": SourceReason.DENIED,
+    # bluetoothd answers before its adapter object exists (just restarted) or after it went
+    "org.freedesktop.DBus.Error.UnknownObject": SourceReason.ADAPTER_MISSING,
     "org.bluez.Error.NotReady": SourceReason.POWERED_OFF,
     "org.bluez.Error.NotAuthorized": SourceReason.DENIED,
 }
@@ -129,6 +203,11 @@ class BleakSource:
             ``None`` retries for ever (the agent: the radio may come back).
         rate_window_seconds: window of `effective_rates`.
         rng: random source for the jitter (tests pass a seeded one).
+        watch_bus: run the `BusWatch` beside the scanner; ``None`` = only with bleak's own BlueZ
+            backend (a test backend has no bus to watch).
+        passive_patterns: scan passively through BlueZ's advertisement monitor with these
+            ``(start position, AD type, bytes)`` patterns (docs/radio.md §2: experimental in BlueZ,
+            RSSI in coarse steps); ``None`` = active discovery, what the agent uses.
     """
 
     def __init__(
@@ -145,6 +224,8 @@ class BleakSource:
         max_failures: int | None = None,
         rate_window_seconds: float = 60.0,
         rng: random.Random | None = None,
+        watch_bus: bool | None = None,
+        passive_patterns: Sequence[tuple[int, int, bytes]] | None = None,
     ) -> None:
         if stall_seconds <= 0:
             raise ValueError(f"stall_seconds must be > 0, got {stall_seconds!r}")
@@ -161,6 +242,21 @@ class BleakSource:
         self.call_timeout = call_timeout
         self.max_failures = max_failures
         self._rng = rng or random.Random()
+        if passive_patterns is not None and not passive_patterns:
+            raise ValueError("passive_patterns: passive scanning needs at least one pattern")
+        self.passive_patterns = tuple(passive_patterns) if passive_patterns is not None else None
+        self.watch_bus = backend is None if watch_bus is None else watch_bus
+        self._watch: BusWatch | None = None
+        self._trouble = asyncio.Event()
+        """Set by the bus watch: the running scanner cannot be hearing anything; rebuild now."""
+        self._trouble_cause = Cause.STALLED
+        self._wake = asyncio.Event()
+        """Set by the bus watch when what had gone came back: cut the backoff short."""
+        self.generation = 0
+        """Scanners started so far (the bus watch ties a ``Discovering`` change to one)."""
+        self._episode: Episode | None = None
+        self._episodes: deque[Episode] = deque(maxlen=EPISODES_KEPT)
+        self.episodes_total = 0
         self._queue: asyncio.Queue[Advert] = asyncio.Queue(maxsize=queue_size)
         self._meter = RateMeter(rate_window_seconds)
         self._last_advert = 0.0
@@ -210,6 +306,8 @@ class BleakSource:
         # Only real adverts keep the stall watchdog quiet: a callback without RSSI is a cached
         # property change (Connected, ServicesResolved…), not proof that the radio hears.
         self._last_advert = now
+        if self._episode is not None and self.state is ScanState.SCANNING:
+            self._close_episode(now)
         self._meter.note(advert.address, now)
         try:
             self._queue.put_nowait(advert)
@@ -224,7 +322,21 @@ class BleakSource:
         bluez: dict[str, Any] = {"filters": {"RSSI": -127, "DuplicateData": True}}
         if self.adapter:
             bluez["adapter"] = self.adapter
-        return BleakScanner(self._on_detect, bluez=bluez, backend=self.backend)  # type: ignore[arg-type]
+        if self.passive_patterns is None:
+            return BleakScanner(self._on_detect, bluez=bluez, backend=self.backend)  # type: ignore[arg-type]
+        from bleak.args.bluez import OrPattern
+        from bleak.assigned_numbers import AdvertisementDataType
+
+        bluez["or_patterns"] = [
+            OrPattern(pos, AdvertisementDataType(ad_type), data)
+            for pos, ad_type, data in self.passive_patterns
+        ]
+        return BleakScanner(
+            self._on_detect,
+            scanning_mode="passive",
+            bluez=bluez,  # type: ignore[arg-type]
+            backend=self.backend,
+        )
 
     async def _stop(self, scanner: BleakScanner) -> None:
         try:
@@ -232,11 +344,24 @@ class BleakSource:
         except Exception as e:  # the bus or bluetoothd may be gone; the next scanner starts clean
             log.info("scanner_stop_failed", adapter=self.adapter, error=str(e))
 
+    async def _wait_for(self, event: asyncio.Event, seconds: float) -> bool:
+        """Wait up to ``seconds`` of clock time for ``event``; True when it is set."""
+        try:
+            await with_timeout(self.clock, event.wait(), seconds, "wait")
+        except TimeoutError:
+            return False
+        return True
+
     async def _supervise(self) -> None:
         clock = self.clock
         in_row = 0
         while True:
             scanner = self._new_scanner()
+            # news older than this attempt is answered by it; news during it is acted on after
+            self._trouble.clear()
+            self._wake.clear()
+            if self._episode is not None:
+                self._episode.rebuilds += 1
             try:
                 await with_timeout(clock, scanner.start(), self.call_timeout, "scanner start()")
             except asyncio.CancelledError:
@@ -248,6 +373,8 @@ class BleakSource:
                 self.failures += 1
                 self.state, self.reason, self.last_error = ScanState.UNAVAILABLE, err.reason, str(err)
                 self.last_restart_reason = err.reason
+                if self._episode is None:
+                    self._open_episode(err.reason.value)
                 await self._stop(scanner)
                 if self.max_failures is not None and in_row >= self.max_failures:
                     log.error(
@@ -262,23 +389,73 @@ class BleakSource:
                     error=str(err),
                     retry_in_s=round(delay, 3),
                 )
-                await clock.sleep(delay)
+                # BlueZ, the adapter or the bus coming back (seen by the bus watch) ends the wait early
+                await self._wait_for(self._wake, delay)
                 self.restarts += 1
                 continue
             in_row = 0
+            self.generation += 1
             self.state, self.reason, self.last_error = ScanState.SCANNING, None, None
             self._last_advert = clock.monotonic()
+            if self._episode is not None:
+                self._episode.scanning = self._last_advert
             log.info("scanner_started", adapter=self.adapter)
+            cause = Cause.STALLED
             try:
                 while (left := self._last_advert + self.stall_seconds - clock.monotonic()) > 0:
-                    await clock.sleep(left)
+                    if await self._wait_for(self._trouble, left):
+                        cause = self._trouble_cause
+                        break
             finally:
                 if self.state is ScanState.SCANNING:
                     self.state = ScanState.RESTARTING
                 await self._stop(scanner)
             self.restarts += 1
-            self.reason = self.last_restart_reason = SourceReason.STALLED
-            log.warning("scanner_stalled", adapter=self.adapter, stall_seconds=self.stall_seconds)
+            self.reason = self.last_restart_reason = _CAUSE_REASONS[cause]
+            if self._episode is None:
+                self._open_episode(cause.value)
+            log.warning(
+                "scanner_stalled" if cause is Cause.STALLED else "scanner_rebuilding",
+                adapter=self.adapter,
+                cause=cause.value,
+                stall_seconds=self.stall_seconds,
+            )
+
+    # -- episodes (what the bus watch and the supervisor report)
+
+    def _open_episode(self, reason: str) -> None:
+        self._episode = Episode(reason, self.clock.monotonic())
+        self._episodes.append(self._episode)
+        self.episodes_total += 1
+
+    def _close_episode(self, now: float) -> None:
+        ep, self._episode = self._episode, None
+        assert ep is not None
+        ep.heard = now
+        log.info("radio_recovered", adapter=self.adapter, **ep.as_dict())
+
+    def trouble(self, cause: Cause) -> None:
+        """The bus watch saw something that leaves the running scanner deaf: rebuild it now."""
+        log.warning("radio_trouble", adapter=self.adapter, cause=cause.value, state=self.state.value)
+        if self._episode is None:
+            self._open_episode(cause.value)
+        if self.state is ScanState.SCANNING:
+            self.state = ScanState.RESTARTING  # adverts from now on do not prove recovery
+        self._trouble_cause = cause
+        self._trouble.set()
+
+    def returned(self, what: str) -> None:
+        """The bus watch saw BlueZ, the adapter or the bus come back: retry without waiting out the backoff."""
+        log.info("radio_returned", adapter=self.adapter, what=what)
+        if self._episode is not None:
+            self._episode.returned = self.clock.monotonic()
+        self._wake.set()
+
+    def owns_adapter_path(self, path: str) -> bool:
+        """Whether an adapter object path is the one this source scans on (any ``hciN`` when unpinned)."""
+        if self.adapter:
+            return path == f"/org/bluez/{self.adapter}"
+        return path.startswith("/org/bluez/hci") and path[len("/org/bluez/hci") :].isdigit()
 
     async def adverts(self) -> AsyncIterator[Advert]:
         """
@@ -291,6 +468,12 @@ class BleakSource:
             raise RuntimeError("BleakSource.adverts() is already being iterated")
         self._running = True
         sup = asyncio.create_task(self._supervise(), name=f"bleak-supervisor-{self.adapter or 'default'}")
+        watch: asyncio.Task[None] | None = None
+        if self.watch_bus:
+            self._watch = BusWatch(self)
+            watch = asyncio.create_task(
+                self._watch.run(), name=f"bleak-bus-watch-{self.adapter or 'default'}"
+            )
         q = self._queue
         try:
             while True:
@@ -311,8 +494,13 @@ class BleakSource:
         finally:
             self._running = False
             sup.cancel()
+            if watch is not None:
+                watch.cancel()
             with contextlib.suppress(asyncio.CancelledError):
                 await sup
+            if watch is not None:
+                with contextlib.suppress(asyncio.CancelledError):
+                    await watch
 
     # -- what the heartbeat reads
 
@@ -333,4 +521,171 @@ class BleakSource:
             "dropped_no_rssi": self.dropped_no_rssi,
             "dropped_overflow": self.dropped_overflow,
             "queue_depth": self._queue.qsize(),
+            "bus_watch": (
+                "off" if self._watch is None else "connected" if self._watch.connected else "disconnected"
+            ),
+            "episodes_total": self.episodes_total,
+            "episodes": [e.as_dict() for e in self._episodes],
         }
+
+
+_BLUEZ = "org.bluez"
+_ADAPTER_IFACE = "org.bluez.Adapter1"
+_MATCH_RULES = (
+    "type='signal',sender='org.freedesktop.DBus',interface='org.freedesktop.DBus',"
+    "member='NameOwnerChanged',arg0='org.bluez'",
+    "type='signal',sender='org.bluez',interface='org.freedesktop.DBus.ObjectManager',member='InterfacesAdded'",
+    "type='signal',sender='org.bluez',interface='org.freedesktop.DBus.ObjectManager',member='InterfacesRemoved'",
+    "type='signal',sender='org.bluez',interface='org.freedesktop.DBus.Properties',"
+    "member='PropertiesChanged',arg0='org.bluez.Adapter1'",
+)
+
+
+class BusWatch:
+    """
+    A system-bus connection of the source's own that tells it what bleak does not.
+
+    bleak keeps one connection and a cache of BlueZ's objects; when bluetoothd restarts the running
+    scanner's discovery session is gone and nothing says so (docs/radio.md §5). This watch follows
+
+    * ``NameOwnerChanged`` for org.bluez: no owner → `Cause.BLUEZ_GONE`; a new owner → BlueZ returned
+      (and `Cause.BLUEZ_RESTARTED` if a scanner still believed it was scanning);
+    * ``InterfacesRemoved``/``InterfacesAdded`` of the adapter: removed → `Cause.ADAPTER_REMOVED`,
+      added → returned;
+    * the adapter's ``Discovering`` going false: re-read with ``Get`` (a late signal from the
+      source's own stop must not count) → `Cause.DISCOVERY_STOPPED`;
+    * its own connection dropping → `Cause.BUS_LOST`; it reconnects with the source's capped,
+      jittered backoff, and a reconnect that finds org.bluez owned counts as returned.
+
+    Every call is bounded by the source's ``call_timeout`` on its clock. dbus-fast comes with bleak
+    on Linux; without it there is nothing to watch and the stall watchdog stays the only net.
+    """
+
+    def __init__(self, source: BleakSource) -> None:
+        self.src = source
+        self.connected = False
+        self.connects = 0
+        self._bus: Any = None
+        self._checks: set[asyncio.Task[None]] = set()
+
+    async def _call(self, bus: Any, what: str, **message: Any) -> Any:
+        from dbus_fast import Message, MessageType
+
+        reply = await with_timeout(self.src.clock, bus.call(Message(**message)), self.src.call_timeout, what)
+        if reply is None or reply.message_type is MessageType.ERROR:
+            raise OSError(f"{what}: {getattr(reply, 'error_name', 'no reply')}")
+        return reply.body
+
+    async def run(self) -> None:
+        try:
+            from dbus_fast import BusType
+            from dbus_fast.aio import MessageBus
+        except ImportError as e:
+            log.info("bus_watch_unavailable", error=str(e))
+            return
+        src = self.src
+        attempt = 0
+        while True:
+            bus: Any = None
+            try:
+                bus = MessageBus(bus_type=BusType.SYSTEM)  # connects its socket here: inside the try
+                await with_timeout(src.clock, bus.connect(), src.call_timeout, "D-Bus connect")
+                bus.add_message_handler(self._on_message)
+                for rule in _MATCH_RULES:
+                    await self._call(
+                        bus,
+                        "AddMatch",
+                        destination="org.freedesktop.DBus",
+                        path="/org/freedesktop/DBus",
+                        interface="org.freedesktop.DBus",
+                        member="AddMatch",
+                        signature="s",
+                        body=[rule],
+                    )
+                (owned,) = await self._call(
+                    bus,
+                    "NameHasOwner",
+                    destination="org.freedesktop.DBus",
+                    path="/org/freedesktop/DBus",
+                    interface="org.freedesktop.DBus",
+                    member="NameHasOwner",
+                    signature="s",
+                    body=[_BLUEZ],
+                )
+            except asyncio.CancelledError:
+                if bus is not None:
+                    bus.disconnect()
+                raise
+            except Exception as e:
+                if bus is not None:
+                    bus.disconnect()
+                delay = half_jitter(attempt, src.backoff_initial, src.backoff_max, src._rng)
+                attempt += 1
+                log.info(
+                    "bus_watch_connect_failed", error=f"{type(e).__name__}: {e}", retry_in_s=round(delay, 3)
+                )
+                await src.clock.sleep(delay)
+                continue
+            attempt = 0
+            self._bus, self.connected = bus, True
+            self.connects += 1
+            log.info("bus_watch_connected", bluez_owned=bool(owned))
+            if owned and self.connects > 1:
+                src.returned("bus")
+            try:
+                await bus.wait_for_disconnect()
+            except Exception as e:  # the reason the bus died; what matters is that it did
+                log.info("bus_watch_disconnected", error=f"{type(e).__name__}: {e}")
+            finally:
+                self._bus, self.connected = None, False
+                bus.disconnect()
+            src.trouble(Cause.BUS_LOST)
+
+    def _on_message(self, msg: Any) -> None:
+        from dbus_fast import MessageType
+
+        if msg.message_type is not MessageType.SIGNAL:
+            return
+        src = self.src
+        body = msg.body
+        if msg.member == "NameOwnerChanged" and body[0] == _BLUEZ:
+            if not body[2]:
+                src.trouble(Cause.BLUEZ_GONE)
+                return
+            if body[1] or src.state is ScanState.SCANNING:
+                src.trouble(Cause.BLUEZ_RESTARTED)
+            src.returned("bluez")
+        elif msg.member == "InterfacesRemoved":
+            if _ADAPTER_IFACE in body[1] and src.owns_adapter_path(body[0]):
+                src.trouble(Cause.ADAPTER_REMOVED)
+        elif msg.member == "InterfacesAdded":
+            if _ADAPTER_IFACE in body[1] and src.owns_adapter_path(body[0]):
+                src.returned("adapter")
+        elif msg.member == "PropertiesChanged" and body[0] == _ADAPTER_IFACE:
+            discovering = body[1].get("Discovering")
+            if discovering is not None and discovering.value is False and src.owns_adapter_path(msg.path):
+                task = asyncio.create_task(self._check_discovering(msg.path, src.generation))
+                self._checks.add(task)
+                task.add_done_callback(self._checks.discard)
+
+    async def _check_discovering(self, path: str, generation: int) -> None:
+        """``Discovering`` was signalled false: rebuild if it still is and the same scanner still runs."""
+        src, bus = self.src, self._bus
+        if bus is None or src.state is not ScanState.SCANNING or src.generation != generation:
+            return
+        try:
+            (value,) = await self._call(
+                bus,
+                "Get Discovering",
+                destination=_BLUEZ,
+                path=path,
+                interface="org.freedesktop.DBus.Properties",
+                member="Get",
+                signature="ss",
+                body=[_ADAPTER_IFACE, "Discovering"],
+            )
+        except Exception as e:  # adapter or BlueZ gone: their own signals say so
+            log.info("discovering_check_failed", error=str(e))
+            return
+        if value.value is False and src.state is ScanState.SCANNING and src.generation == generation:
+            src.trouble(Cause.DISCOVERY_STOPPED)

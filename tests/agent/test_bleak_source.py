@@ -16,7 +16,7 @@ from bleak.exc import (
     BleakError,
 )
 
-from listenpost.agent.sources.bleak_scan import BleakSource, ScanState, classify
+from listenpost.agent.sources.bleak_scan import EPISODES_KEPT, BleakSource, Cause, ScanState, classify
 from listenpost.core.clock import VirtualClock, settle
 from listenpost.core.errors import SourceReason, SourceUnavailable
 
@@ -142,6 +142,15 @@ async def test_stall_rebuilds_the_scanner(clock, fake):
             SourceReason.BLUEZ_DOWN,
         ),
         (BleakDBusError("org.freedesktop.DBus.Error.AccessDenied", []), SourceReason.DENIED),
+        (  # bluetoothd back before its adapter object (bleak's cache still lists the old one)
+            BleakDBusError(
+                "org.freedesktop.DBus.Error.UnknownObject",
+                [
+                    'Method "SetDiscoveryFilter" with signature "a{sv}" on interface "org.bluez.Adapter1" doesn\'t exist'
+                ],
+            ),
+            SourceReason.ADAPTER_MISSING,
+        ),
         (BleakDBusError("org.bluez.Error.NotReady", ["Resource Not Ready"]), SourceReason.POWERED_OFF),
         (
             BleakBluetoothNotAvailableError(
@@ -268,3 +277,71 @@ async def test_one_consumer_at_a_time(clock, fake):
     async with running(src):
         with pytest.raises(RuntimeError, match="already"):
             await src.adverts().__anext__()
+
+
+async def test_trouble_rebuilds_at_once_and_a_return_cuts_the_backoff_short(clock, fake):
+    """What the bus watch reports drives the supervisor; the episode records each step on the clock."""
+    src = BleakSource(
+        "hci0", clock, 1000, backend=fake, backoff_initial=4, backoff_max=60, rng=random.Random(5)
+    )
+    async with running(src) as (got, _):
+        fake.instances[0].emit("C4:7A:10:00:2B:91", -60)
+        await clock.advance(10)
+        gone = BleakDBusError("org.freedesktop.DBus.Error.ServiceUnknown", ["no org.bluez"])
+        fake.script = [gone]
+        src.trouble(Cause.BLUEZ_GONE)  # at t=1010: no waiting out stall_seconds
+        await settle()
+        assert fake.instances[0].stopped and len(fake.start_times) == 2
+        assert src.state is ScanState.UNAVAILABLE and src.reason is SourceReason.BLUEZ_DOWN
+        await clock.advance(1)  # the backoff is 2..4 s; BlueZ returns after 1
+        src.returned("bluez")
+        await settle()
+        assert fake.start_times[-1] == 1011 and src.state is ScanState.SCANNING
+        (ep,) = src.stats()["episodes"]
+        assert ep["open"] and ep["reason"] == "bluez_gone"
+        await clock.advance(0.5)
+        fake.instances[-1].emit("C4:7A:10:00:2B:91", -61)
+        assert src.stats()["episodes"] == [
+            {
+                "reason": "bluez_gone",
+                "started_s": 1010.0,
+                "open": False,
+                "duration_s": 1.5,
+                "rebuilds": 2,
+                "scanning_after_s": 1.0,
+                "heard_after_return_s": 0.5,
+            }
+        ]
+        assert src.stats()["episodes_total"] == 1 and src.stats()["bus_watch"] == "off"
+
+
+async def test_adverts_while_rebuilding_do_not_close_the_episode(clock, fake):
+    """A callback from a device orphaned by a removed adapter is no proof the scanner hears again."""
+    fake.script = [None, BleakError("adapter 'hci0' not found")]
+    src = BleakSource(
+        "hci0", clock, 1000, backend=fake, backoff_initial=1, backoff_max=1, rng=random.Random(1)
+    )
+    async with running(src) as (got, _):
+        src.trouble(Cause.ADAPTER_REMOVED)
+        await settle()
+        fake.instances[0].emit("C4:7A:10:00:2B:91", -60)  # the old scanner's orphan fires
+        await settle()
+        assert len(got) == 1 and src.stats()["episodes"][0]["open"]  # delivered, but not a recovery
+        assert src.reason is SourceReason.ADAPTER_MISSING
+        await clock.advance(1)
+        assert src.state is ScanState.SCANNING and src.stats()["episodes"][0]["open"]
+        fake.instances[-1].emit("C4:7A:10:00:2B:91", -60)
+        assert not src.stats()["episodes"][0]["open"]
+
+
+async def test_episodes_kept_are_bounded(clock, fake):
+    """The heartbeat carries the newest episodes only; the total counts them all."""
+    src = BleakSource("hci0", clock, 10, backend=fake)
+    async with running(src):
+        for _ in range(EPISODES_KEPT + 3):
+            await clock.advance(10)  # a stall: an episode
+            fake.instances[-1].emit("C4:7A:10:00:2B:91", -60)  # heard again: closed
+        stats = src.stats()
+        assert stats["episodes_total"] == EPISODES_KEPT + 3 and len(stats["episodes"]) == EPISODES_KEPT
+        assert {e["reason"] for e in stats["episodes"]} == {"stalled"}
+        assert not any(e["open"] for e in stats["episodes"])
