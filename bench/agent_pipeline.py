@@ -20,6 +20,7 @@ import asyncio
 import json
 import random
 import resource
+import statistics
 import subprocess
 import sys
 import tempfile
@@ -29,11 +30,13 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
+from bench import _repeat
 from listenpost.agent.pipeline.decode import EDDYSTONE_UUID
 from listenpost.core.records import Advert, Reading
 from listenpost.core.settings import DecodeRule
 
 N_ADVERTS = 300_000
+N_ADVERTS_QUICK = 5_000
 N_IBEACON, N_EDDYSTONE, N_CUSTOM = 700, 200, 100  # 1,000 registered tags
 VENUE = uuid.UUID("6f1d8a52-3c0e-4b7a-a9d1-5e2c7b40f913")  # invented for the bench
 NAMESPACE = bytes.fromhex("b7e4019c2d5a83f6e011")
@@ -283,16 +286,17 @@ def _timed(fn: Any, *args: Any) -> tuple[float, Any]:
     return time.perf_counter() - t0, result
 
 
-def main() -> None:
+def main(quick: bool = False) -> None:
     from listenpost.core.logs import configure
 
+    n_adverts = N_ADVERTS_QUICK if quick else N_ADVERTS
     configure("console", level="warning")  # the spool's per-batch debug lines would swamp the figures
     with tempfile.TemporaryDirectory() as d:
         tmp = Path(d)
         path = tmp / "synthetic.jsonl"
-        gen_s, _ = _timed(write_synthetic, path)
+        gen_s, _ = _timed(write_synthetic, path, n_adverts)
         print(
-            f"synthetic recording: {N_ADVERTS} adverts, {path.stat().st_size / 1e6:.1f} MB, "
+            f"synthetic recording: {n_adverts} adverts, {path.stat().st_size / 1e6:.1f} MB, "
             f"{len(registered_tags())} registered tags (written in {gen_s:.1f} s)"
         )
 
@@ -313,30 +317,40 @@ def main() -> None:
             f"numpy/scipy/collector imported: {info['heavy_modules'] or 'none'})"
         )
 
-        # Interleave and keep the best of each: the machine's noise hits both the same way.
-        best_a, best_b, best_src = float("inf"), float("inf"), float("inf")
-        kept_a, stats, what = 0, {}, ""
-        for _ in range(3):
-            s, (n, kept_a) = _timed(bare_loop, path)
-            best_a = min(best_a, s)
-            s, (stats, what) = _timed(agent_pipeline, path, tmp)
-            best_b = min(best_b, s)
-            s, _ = _timed(source_only, path)
-            best_src = min(best_src, s)
-        rate_a, rate_b = N_ADVERTS / best_a, N_ADVERTS / best_b
-        ratio = rate_b / rate_a
-        print(f"(a) bare loop:      {rate_a:>10,.0f} adverts/s  ({kept_a} registered)")
+        # Interleaved rounds; the ratio is taken within each round, so the machine's drift hits both sides.
+        got = _repeat.interleave(
+            [
+                ("a", lambda: _timed(bare_loop, path)),
+                ("b", lambda: _timed(agent_pipeline, path, tmp)),
+                ("src", lambda: _timed(source_only, path)),
+            ],
+            _repeat.repeats(3),
+        )
+        secs = {k: [s for s, _ in v] for k, v in got.items()}
+        kept_a = got["a"][-1][1][1]
+        stats, what = got["b"][-1][1]
+        med = {k: statistics.median(v) for k, v in secs.items()}
         print(
-            f"(b) agent pipeline: {rate_b:>10,.0f} adverts/s  ({stats['readings_total']} readings; sink: {what})"
+            f"(a) bare loop:      {_repeat.spread([n_adverts / s for s in secs['a']])} adverts/s  ({kept_a} registered)"
         )
         print(
-            f"    ratio b/a {ratio:.2f} (target >= {TARGET_RATIO}); "
-            f"rate {'meets' if rate_b >= TARGET_RATE else 'MISSES'} the {TARGET_RATE:,} adverts/s target"
+            f"(b) agent pipeline: {_repeat.spread([n_adverts / s for s in secs['b']])} adverts/s  "
+            f"({stats['readings_total']} readings; sink: {what})"
+        )
+        rate_b = n_adverts / med["b"]
+        print(
+            f"    rate {'meets' if rate_b >= TARGET_RATE else 'MISSES'} the {TARGET_RATE:,} adverts/s target"
+        )
+        _repeat.report(
+            "agent_pipeline",
+            "pipeline/bare-loop throughput (b/a)",
+            [a / b for a, b in zip(secs["a"], secs["b"], strict=True)],
+            f">= {TARGET_RATIO}",
         )
         print(
-            f"    of which the replay source alone: {N_ADVERTS / best_src:,.0f} adverts/s "
-            f"({best_src / N_ADVERTS * 1e6:.2f} us/advert); decode+filter+calibrate+spool "
-            f"{(best_b - best_src) / N_ADVERTS * 1e6:.2f} us/advert; bare loop {best_a / N_ADVERTS * 1e6:.2f} us/advert"
+            f"    of which the replay source alone: {n_adverts / med['src']:,.0f} adverts/s "
+            f"({med['src'] / n_adverts * 1e6:.2f} us/advert); decode+filter+calibrate+spool "
+            f"{(med['b'] - med['src']) / n_adverts * 1e6:.2f} us/advert; bare loop {med['a'] / n_adverts * 1e6:.2f} us/advert"
         )
         if stats["readings_total"] != kept_a:
             print(

@@ -33,12 +33,14 @@ def exchanges(seed: int, skew_ppm: float, minutes: float) -> tuple[np.ndarray, .
     return b1, t2, t3, t4
 
 
-def main(argv: list[str] | None = None) -> int:
+def main(argv: list[str] | None = None, quick: bool = False) -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[1])
     p.add_argument("--seeds", type=int, default=200)
     p.add_argument("--minutes", type=float, default=30.0)
     p.add_argument("--skew", type=float, default=85.0, help="true skew, ppm (positive: board fast)")
-    args = p.parse_args(argv)
+    args = p.parse_args([] if quick and argv is None else argv)
+    if quick:
+        args.seeds, args.minutes = 5, 5.0
     s = args.skew * 1e-6
     for method in FitMethod:
         skew_err, off_err = [], []

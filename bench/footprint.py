@@ -30,7 +30,8 @@ def peak_rss_kib(argv: list[str]) -> int:
     return usage.ru_maxrss
 
 
-def main() -> None:
+def main(quick: bool = False) -> None:
+    repeats = 1 if quick else REPEATS
     with tempfile.TemporaryDirectory(prefix="listenpost-footprint-") as tmp:
         root = Path(tmp)
         wheel = build_wheel(root / "dist")
@@ -40,7 +41,7 @@ def main() -> None:
         }
         logs = package_data(envs["agent only"], "listenpost.replay_logs")
         rss: dict[str, list[int]] = {name: [] for name in envs}
-        for _ in range(REPEATS):
+        for _ in range(repeats):
             for name, bin_dir in envs.items():
                 rss[name].append(
                     peak_rss_kib(
@@ -56,7 +57,7 @@ def main() -> None:
                         ]
                     )
                 )
-        print(f"{'environment':<18} {'on disk MB':>10} {'peak RSS MB (median of ' + str(REPEATS) + ')':>28}")
+        print(f"{'environment':<18} {'on disk MB':>10} {'peak RSS MB (median of ' + str(repeats) + ')':>28}")
         sizes = {}
         for name, bin_dir in envs.items():
             sizes[name] = size_on_disk(bin_dir.parent)

@@ -1,19 +1,24 @@
 """
-Collector ingest over HTTP, measured side by side with raw inserts of the same rows in one run.
+Collector ingest over HTTP, measured side by side with the raw floor of the same rows in one run.
 
-Workloads (``WORKLOADS``): boards posting concurrently, each one batch in flight (as the agent's uplink
-does), readings from about 40 tags in the room, RSSI in whole dBm plus a 2.5 dB offset,
-bodies gzip'd JSON exactly as agent/uplink.py sends them (``wire.canonical_json``, gzip level 6).
-The server is the real collector app on a loopback TCP socket, in this process (so the clients share
-its core: the figure is conservative).
+Workloads (``WORKLOADS``): boards posting concurrently, each one request in flight (as the agent's uplink
+does), readings from about 40 tags in the room, RSSI in whole dBm plus a 2.5 dB offset. Each board
+sends what an agent sends: every batch is built and gzip'd when it is sent (``wire.encode_batch``,
+gzip level 6, as agent/client/uplink.py does) with its ``t1`` and the previous clock exchange, on a
+board clock of its own; after every ``HEARTBEAT_EVERY`` batches a heartbeat (``agent.heartbeat_seconds``
+/ ``agent.flush_seconds`` of the defaults) with its own exchange. Tags are registered and boards
+enrolled through the admin API first. The server is the real collector app (``create_app`` with the
+monitor running, every ``MONITOR_S`` seconds) on a loopback TCP socket in this process, so the
+clients share its core: the figure is conservative.
 
-  (a) HTTP → collector → SQLite store (group commit, synchronous=FULL) vs
-  (b) raw ``executemany`` of the same rows into the same schema, one durable transaction per batch
-      (``bench._raw_baselines.raw_sqlite``);
-  (c) HTTP → collector → PostgreSQL store vs (d) raw COPY of the same rows, one transaction per batch
-      (``bench._raw_baselines.raw_pg_copy``);
-  (e) bytes on the wire per reading (request bodies as sent).
+  (a) HTTP → collector → SQLite store vs (b) the floor: the same rows, clock samples and heartbeats in
+      one transaction, readings in the store's statement shape (``bench._raw_baselines.raw_sqlite``);
+  (c) HTTP → collector → PostgreSQL store (pool of ``POOL``) vs (d) COPY of the same rows, one
+      transaction per batch from ``POOL`` connections (``bench._raw_baselines.raw_pg_copy``);
+  (e) bytes on the wire per reading (batch request bodies as sent).
 
+The sides run interleaved (``_repeat.repeats(5)`` rounds, each on a fresh file or schema); each ratio
+is taken within a round and reported as median and spread.
 Targets (docs/design.md §7): (a) ≥ 50 % of (b) and ≥ 150,000 readings/s; (c) ≥ 50 % of (d); (e) ≤ 6.
 """
 
@@ -21,7 +26,9 @@ from __future__ import annotations
 
 import asyncio
 import gzip
+import json
 import os
+import statistics
 import tempfile
 import time
 import uuid
@@ -30,11 +37,13 @@ from typing import Any
 
 import numpy as np
 
-from bench._raw_baselines import raw_pg_copy, raw_sqlite
+from bench import _repeat
+from bench._raw_baselines import POOL as ANCHOR_POOL
+from bench._raw_baselines import raw_pg_copy, raw_sqlite, schedule
 from bench.ingest_store import make_tags
 from listenpost.collector.store import IngestBatch
 from listenpost.core import wire
-from listenpost.core.clock import SystemClock
+from listenpost.core.clock import DerivedClock, SystemClock
 from listenpost.core.records import Reading
 
 WORKLOADS = (
@@ -42,7 +51,34 @@ WORKLOADS = (
     ("venue: 5 s batches of a busy room", 100, 8, 250),
     ("backlog drain: large batches after an outage", 16, 16, 2500),
 )
+QUICK_WORKLOADS = (("quick", 4, 4, 250),)
 OFFSET_DB = 2.5
+POOL = 10
+"""The PostgreSQL store's pool size here, and the COPY anchor's connections (bench._raw_baselines.POOL)."""
+MONITOR_S = 1.0
+"""Monitor interval (the default is 5 s): a round or more falls inside every measured run."""
+HEARTBEAT_EVERY = 2
+"""Batches per heartbeat: agent.heartbeat_seconds (10) / agent.flush_seconds (5), the defaults."""
+HEARTBEAT_STATS: dict[str, Any] = {
+    "adverts_seen": 120_000,
+    "adverts_registered": 61_000,
+    "decode_errors": 0,
+    "readings_total": 61_000,
+    "spool": {"bytes": 2_000_000, "pending_batches": 0, "dropped_readings": 0, "degraded": False},
+    "spool_degraded": False,
+    "drops": {"spool_readings": 0, "spool_batches": 0, "dead_letters": 0},
+    "source": {"kind": "hci", "state": "ok", "error": None},
+    "uplink": {"sent": 120, "acked": 120, "last_error": None},
+    "agent_uptime_s": 600.0,
+    "version": "0",
+    "config_etag": None,
+}
+"""A heartbeat's stats as an agent reports them (their shape; the values are invented)."""
+RAW_EXTRA: dict[str, Any] = {
+    "heartbeat_every": HEARTBEAT_EVERY,
+    "exchanges": True,
+    "stats_text": json.dumps(HEARTBEAT_STATS),
+}
 PG_URL = os.environ.get("LISTENPOST_TEST_PG", "postgresql://postgres@127.0.0.1:5432/test")
 
 
@@ -77,13 +113,16 @@ def make_workload(
                     "epoch": f"{b + 1:016x}",
                     "seq": seq,
                     "digest": wire.digest(content),
-                    "clock": None,
-                    "t1": t_ms / 1000.0,
                     "content": content,
+                    "content_json": wire.canonical_json(content),  # as the spool holds it
+                    "last_t_ms": t_ms,
                 }
             )
         out.append(bodies)
     return out
+
+
+assert POOL == ANCHOR_POOL, "the COPY anchor uses as many connections as the store's pool"
 
 
 def as_ingest_batches(per_board: list[list[dict[str, Any]]]) -> list[list[IngestBatch]]:
@@ -113,134 +152,223 @@ def as_ingest_batches(per_board: list[list[dict[str, Any]]]) -> list[list[Ingest
     return out
 
 
-async def http_ingest(
-    store: Any, per_board: list[list[bytes]], names: list[str], tmp: Path
-) -> tuple[float, int]:
-    """Seconds to post every batch through a real collector on loopback; also the bytes sent."""
+async def http_ingest(store: Any, per_board: list[list[dict[str, Any]]], tmp: Path) -> tuple[float, int, int]:
+    """Seconds to send every board's requests through a real collector on loopback; batch bytes sent; monitor rounds."""
     import aiohttp
     from aiohttp import web
 
+    from listenpost.agent.client.uplink import ExchangeLog
     from listenpost.collector.app import create_app
     from listenpost.collector.config import parse_settings
     from listenpost.collector.http.auth import ADMIN_TOKEN_FILE
 
-    settings = parse_settings({}, "bench", state_dir=str(tmp / "state"))
-    app = create_app(settings, clock=SystemClock(), store=store, run_monitor=False)
+    settings = parse_settings({"monitor": {"interval_seconds": MONITOR_S}}, "bench", state_dir=str(tmp))
+    base_clock = SystemClock()
+    app = create_app(settings, clock=base_clock, store=store, run_monitor=True)
     runner = web.AppRunner(app, access_log=None)
     await runner.setup()
     site = web.TCPSite(runner, "127.0.0.1", 0)
     await site.start()
     port = site._server.sockets[0].getsockname()[1]  # type: ignore[union-attr]
     base = f"http://127.0.0.1:{port}"
+    from listenpost.collector.state import RUNTIME
+
+    rounds_before = app[RUNTIME].monitor_rounds
     try:
-        admin = {"Authorization": "Bearer " + (tmp / "state" / ADMIN_TOKEN_FILE).read_text().strip()}
+        admin = {"Authorization": "Bearer " + (tmp / ADMIN_TOKEN_FILE).read_text().strip()}
         timeout = aiohttp.ClientTimeout(total=60)
         async with aiohttp.ClientSession(timeout=timeout) as s:
-            await s.post(f"{base}/v1/admin/tags", json={"ids": make_tags()}, headers=admin)
+            async with s.post(f"{base}/v1/admin/tags", json={"ids": make_tags()}, headers=admin) as r:
+                if r.status != 200:
+                    raise RuntimeError(f"tag registration refused: {r.status} {await r.text()}")
             tokens = []
-            for name in names:
+            for bodies in per_board:
                 async with s.post(
-                    f"{base}/v1/admin/boards", json={"name": name, "room": "bench"}, headers=admin
+                    f"{base}/v1/admin/boards",
+                    json={"name": bodies[0]["board"], "room": "bench"},
+                    headers=admin,
                 ) as r:
                     code = (await r.json())["code"]
                 async with s.post(f"{base}/v1/enroll", json={"code": code, "fingerprint": {}}) as r:
                     tokens.append((await r.json())["token"])
             sent = 0
 
-            async def board(token: str, bodies: list[bytes]) -> None:
+            async def post(url: str, data: bytes, headers: dict[str, str]) -> dict[str, Any]:
+                async with s.post(url, data=data, headers=headers) as r:
+                    answer = await r.json()
+                    if r.status != 200:
+                        raise RuntimeError(f"{url} refused: {r.status} {answer}")
+                    return answer  # type: ignore[no-any-return]
+
+            async def board(token: str, bodies: list[dict[str, Any]]) -> None:
                 nonlocal sent
-                headers = {
-                    "Authorization": f"Bearer {token}",
-                    "Content-Encoding": "gzip",
-                    "Content-Type": "application/json",
-                }
-                for body in bodies:
-                    async with s.post(f"{base}/v1/batches", data=body, headers=headers) as r:
-                        answer = await r.json()
-                        if r.status != 200 or answer.get("status") != "stored":
-                            raise RuntimeError(f"batch refused: {r.status} {answer}")
-                    sent += len(body)
+                last_s = bodies[-1]["last_t_ms"] / 1000
+                # A board clock on which every reading is already in the past when the first batch goes.
+                clock = DerivedClock(
+                    base_clock, boot_at=base_clock.monotonic() - last_s - 1, boot_id=bodies[0]["boot"]
+                )
+                exchanges = ExchangeLog()
+                auth = {"Authorization": f"Bearer {token}", "Content-Type": "application/json"}
+                gz = {**auth, "Content-Encoding": "gzip"}
+                for kind, j, _ in schedule(len(bodies), HEARTBEAT_EVERY, True):
+                    t1 = clock.monotonic()
+                    if kind == "batch":
+                        b = bodies[j]
+                        payload = gzip.compress(
+                            wire.encode_batch(
+                                board=b["board"],
+                                boot=clock.boot_id,
+                                epoch=b["epoch"],
+                                seq=b["seq"],
+                                digest=b["digest"],
+                                t1=t1,
+                                clock=exchanges.take(),
+                                content=b["content_json"],
+                            ),
+                            compresslevel=6,
+                        )
+                        answer = await post(f"{base}/v1/batches", payload, gz)
+                        if answer.get("status") != "stored":
+                            raise RuntimeError(f"batch not stored: {answer}")
+                        sent += len(payload)
+                    else:
+                        hb = {
+                            "board": bodies[0]["board"],
+                            "boot": clock.boot_id,
+                            "t1": t1,
+                            "clock": exchanges.take(),
+                            "wall": clock.time(),
+                            "stats": HEARTBEAT_STATS,
+                        }
+                        answer = await post(f"{base}/v1/heartbeat", wire.canonical_json(hb), auth)
+                    exchanges.record(t1, clock.monotonic(), answer)
+                    exchanges.delivered()
 
             t = time.perf_counter()
             await asyncio.gather(*[board(tok, bodies) for tok, bodies in zip(tokens, per_board, strict=True)])
-            return time.perf_counter() - t, sent
+            elapsed = time.perf_counter() - t
+            return elapsed, sent, app[RUNTIME].monitor_rounds - rounds_before
     finally:
         await runner.cleanup()
 
 
-async def pg_part(
-    bodies: list[list[bytes]], batches: list[list[IngestBatch]], names: list[str], n: int, tmp: Path
-) -> None:
-    import asyncpg
-
-    from listenpost.collector.store import StoreUnavailable
-    from listenpost.collector.store.postgres import PostgresStore
-
-    schema = f"lp_bench_{uuid.uuid4().hex[:10]}"
-    try:
-        store = await PostgresStore.open(PG_URL, schema=schema, max_size=10)
-    except (StoreUnavailable, OSError) as e:
-        print(f"postgres skipped: {e}")
-        return
-    try:
-        try:
-            t_http, _ = await http_ingest(store, bodies, names, tmp / "pg")
-        finally:
-            await store.close()
-        t_raw, _ = await raw_pg_copy(PG_URL, schema + "_raw", batches, make_tags())
-        print(f"postgres (c) HTTP ingest                 : {n / t_http:>10,.0f} readings/s")
-        print(f"postgres (d) raw COPY, txn per batch     : {n / t_raw:>10,.0f} readings/s")
-        print(f"postgres ratio c/d = {t_raw / t_http:.2f} (target >= 0.50)")
-    finally:
-        con = await asyncpg.connect(PG_URL, timeout=10)
-        await con.execute(f'DROP SCHEMA IF EXISTS "{schema}" CASCADE')
-        await con.execute(f'DROP SCHEMA IF EXISTS "{schema}_raw" CASCADE')
-        await con.close()
-
-
-async def sqlite_part(
-    bodies: list[list[bytes]], batches: list[list[IngestBatch]], names: list[str], n: int, tmp: Path
-) -> None:
+async def _sqlite_http(per_board: list[list[dict[str, Any]]], tmp: Path) -> tuple[float, int, int]:
     from listenpost.collector.store import open_store
 
     store = await open_store(f"sqlite:///{tmp / 'http.db'}")
     try:
-        t_http, sent = await http_ingest(store, bodies, names, tmp / "sqlite")
+        return await http_ingest(store, per_board, tmp)
     finally:
         await store.close()
-    t_raw = raw_sqlite(tmp / "raw.db", batches, make_tags(), per_batch_commit=True)
-    print(
-        f"sqlite  (a) HTTP ingest, {len(names)} clients     : {n / t_http:>10,.0f} readings/s (target >= 150,000)"
-    )
-    print(f"sqlite  (b) raw executemany, commit/batch: {n / t_raw:>10,.0f} readings/s")
-    print(f"sqlite  ratio a/b = {t_raw / t_http:.2f} (target >= 0.50)")
-    print(f"wire    (e) bytes per reading (gzip'd)   : {sent / n:>10.2f} (target <= 6)")
 
 
-def main() -> None:
-    import structlog
+async def _pg_round(
+    per_board: list[list[dict[str, Any]]], batches: list[list[IngestBatch]], which: str, tmp: Path
+) -> float:
+    import asyncpg
 
-    from listenpost.core.logs import configure
+    from listenpost.collector.store.postgres import PostgresStore
 
-    configure("json", level="warning")
+    schema = f"lp_bench_{uuid.uuid4().hex[:10]}"
     try:
-        for title, n_boards, per_board_batches, per_batch in WORKLOADS:
-            per_board = make_workload(n_boards, per_board_batches, per_batch)
-            names = [bodies[0]["board"] for bodies in per_board]
-            bodies = [
-                [gzip.compress(wire.canonical_json(b), compresslevel=6) for b in mine] for mine in per_board
-            ]
-            batches = as_ingest_batches(per_board)
-            n = n_boards * per_board_batches * per_batch
-            print(
-                f"-- {title}: {n_boards} boards x {per_board_batches} batches x {per_batch} readings = {n:,} readings"
-            )
-            with tempfile.TemporaryDirectory() as d:
-                asyncio.run(sqlite_part(bodies, batches, names, n, Path(d)))
-                asyncio.run(pg_part(bodies, batches, names, n, Path(d)))
+        if which == "http":
+            store = await PostgresStore.open(PG_URL, schema=schema, max_size=POOL)
+            try:
+                return (await http_ingest(store, per_board, tmp))[0]
+            finally:
+                await store.close()
+        return (await raw_pg_copy(PG_URL, schema, batches, make_tags(), **RAW_EXTRA))[0]
     finally:
-        structlog.reset_defaults()
+        con = await asyncpg.connect(PG_URL, timeout=10)
+        await con.execute(f'DROP SCHEMA IF EXISTS "{schema}" CASCADE')
+        await con.close()
+
+
+def sqlite_part(
+    per_board: list[list[dict[str, Any]]], batches: list[list[IngestBatch]], n: int, tmp: Path
+) -> None:
+    runs = iter(range(1_000_000))
+    sent: list[int] = []
+    rounds: list[int] = []
+
+    def http_side() -> float:
+        d = tmp / f"sqlite-{next(runs)}"
+        d.mkdir()
+        t, nbytes, monitor_rounds = asyncio.run(_sqlite_http(per_board, d))
+        sent.append(nbytes)
+        rounds.append(monitor_rounds)
+        return t
+
+    def floor_side() -> float:
+        return raw_sqlite(tmp / f"floor-{next(runs)}.db", batches, make_tags(), **RAW_EXTRA)
+
+    got = _repeat.interleave([("http", http_side), ("floor", floor_side)], _repeat.repeats(5))
+    print(
+        f"sqlite  (a) HTTP ingest                 : {_repeat.spread([n / t for t in got['http']])} readings/s"
+    )
+    print(
+        f"sqlite  (b) floor, one transaction      : {_repeat.spread([n / t for t in got['floor']])} readings/s"
+    )
+    _repeat.report(
+        "ingest_http",
+        "sqlite HTTP/floor throughput (a/b)",
+        [f / h for h, f in zip(got["http"], got["floor"], strict=True)],
+        ">= 0.50",
+    )
+    print(f"        monitor rounds during (a): {rounds} (every {MONITOR_S:g} s)")
+    print(f"wire    (e) bytes per reading (gzip'd)  : {statistics.median(sent) / n:.2f} (target <= 6)")
+
+
+def pg_part(
+    per_board: list[list[dict[str, Any]]], batches: list[list[IngestBatch]], n: int, tmp: Path
+) -> None:
+    from bench.ingest_store import pg_available
+
+    why = pg_available()
+    if why is not None:
+        print(f"postgres skipped: {why}")
+        return
+    runs = iter(range(1_000_000))
+
+    def http_side() -> float:
+        d = tmp / f"pg-{next(runs)}"
+        d.mkdir()
+        return asyncio.run(_pg_round(per_board, batches, "http", d))
+
+    got = _repeat.interleave(
+        [("http", http_side), ("copy", lambda: asyncio.run(_pg_round(per_board, batches, "copy", tmp)))],
+        _repeat.repeats(5),
+    )
+    print(
+        f"postgres (c) HTTP ingest, pool {POOL}      : {_repeat.spread([n / t for t in got['http']])} readings/s"
+    )
+    print(
+        f"postgres (d) COPY, {POOL} connections       : {_repeat.spread([n / t for t in got['copy']])} readings/s"
+    )
+    _repeat.report(
+        "ingest_http",
+        "postgres HTTP/COPY throughput (c/d)",
+        [c / h for h, c in zip(got["http"], got["copy"], strict=True)],
+        ">= 0.50",
+    )
+
+
+def main(quick: bool = False) -> None:
+    for title, n_boards, per_board_batches, per_batch in QUICK_WORKLOADS if quick else WORKLOADS:
+        per_board = make_workload(n_boards, per_board_batches, per_batch)
+        batches = as_ingest_batches(per_board)
+        n = n_boards * per_board_batches * per_batch
+        print(
+            f"-- {title}: {n_boards} boards x {per_board_batches} batches x {per_batch} readings = {n:,} "
+            f"readings, a heartbeat every {HEARTBEAT_EVERY} batches"
+        )
+        with tempfile.TemporaryDirectory() as d:
+            sqlite_part(per_board, batches, n, Path(d))
+            pg_part(per_board, batches, n, Path(d))
 
 
 if __name__ == "__main__":
+    from listenpost.core.logs import configure
+
+    configure("console", "warning")
     main()

@@ -6,12 +6,13 @@ per batch (5 s of a busy room), 500 tags in the Brackenford mix of identity form
 
 SQLite, each on a fresh file with the store's own schema:
   (a) ``SqliteStore.ingest`` from all boards at once: group commit, synchronous=FULL;
-  (b) raw ``executemany`` of the same rows, one durable transaction per batch (batch row + readings);
-  (c) raw ``executemany`` of the same rows in one single transaction (the floor: no per-batch commits).
-  (b), (c) and (e) are ``bench._raw_baselines``, shared with bench.ingest_http.
-PostgreSQL (LISTENPOST_TEST_PG, a throw-away schema):
-  (d) ``PostgresStore.ingest`` from all boards at once;
-  (e) raw ``copy_records_to_table`` of the same rows, one transaction per batch, one connection.
+  (c) the floor: the same rows in one single transaction, readings in the store's statement shape
+      (multi-row INSERTs of up to 2,048 rows).
+PostgreSQL (LISTENPOST_TEST_PG, a throw-away schema per run):
+  (d) ``PostgresStore.ingest`` from all boards at once, a pool of ``POOL`` connections;
+  (e) raw ``copy_records_to_table`` of the same rows, one transaction per batch, ``POOL`` connections.
+(c) and (e) are ``bench._raw_baselines``, shared with bench.ingest_http. The sides run interleaved,
+``_repeat.repeats(5)`` rounds, each on a fresh file or schema; each ratio is taken within a round.
 
 Then what interning buys: SQLite bytes per reading with integer ids (the store's schema) against a table
 that repeats board name, tag identity and boot id as text in every row (same time index).
@@ -30,6 +31,7 @@ from pathlib import Path
 
 import numpy as np
 
+from bench import _repeat
 from bench._raw_baselines import raw_pg_copy, raw_sqlite
 from listenpost.collector.store import Board, Enrollment, IngestBatch
 from listenpost.core import wire
@@ -37,6 +39,9 @@ from listenpost.core import wire
 N_BOARDS = 100
 BATCHES_PER_BOARD = 8
 PER_BATCH = 250
+QUICK_SHAPE = (10, 2)
+POOL = 10
+"""The store's pool size here, and the PostgreSQL anchor's connections (bench._raw_baselines.POOL)."""
 PG_URL = os.environ.get("LISTENPOST_TEST_PG", "postgresql://postgres@127.0.0.1:5432/test")
 VENUE = "6f1d8a52-3c0e-4b7a-a9d1-5e2c7b40f913"  # invented for the bench
 
@@ -47,15 +52,17 @@ def make_tags() -> list[str]:
     return tags + [f"lpx:{i:08x}" for i in range(50)]
 
 
-def make_batches(seed: int = 1) -> list[list[IngestBatch]]:
+def make_batches(
+    n_boards: int = N_BOARDS, batches_per_board: int = BATCHES_PER_BOARD, seed: int = 1
+) -> list[list[IngestBatch]]:
     """Per board, its batches in seq order."""
     rng = np.random.default_rng(seed)
     tags = np.array(make_tags(), dtype=object)
     out = []
-    for b in range(N_BOARDS):
+    for b in range(n_boards):
         board = f"b{b:03d}"
         mine = []
-        for seq in range(BATCHES_PER_BOARD):
+        for seq in range(batches_per_board):
             t_ms = np.sort(rng.integers(0, 5000, PER_BATCH)) + seq * 5000 + 60_000
             tag = tags[rng.integers(0, len(tags), PER_BATCH)]
             rssi = rng.integers(-1000, -400, PER_BATCH).astype(np.int32)
@@ -135,23 +142,47 @@ def _db_bytes(con: sqlite3.Connection, tables: tuple[str, ...] | None = None) ->
     return con.execute(q, (json.dumps(list(tables)),)).fetchone()[0]
 
 
-async def sqlite_part(per_board: list[list[IngestBatch]], n: int, tmp: Path) -> None:
+def _sqlite_store_once(per_board: list[list[IngestBatch]], path: Path) -> tuple[float, str]:
     from listenpost.collector.store.sqlite import SqliteStore
 
-    store = await SqliteStore.open(tmp / "store.db")
-    t_store = await run_store(store, per_board)
-    commits, batches = store.ingest_commits, store.ingest_batches
-    await store.close()
-    t_raw = raw_sqlite(tmp / "raw.db", per_board, make_tags(), per_batch_commit=True)
-    t_one = raw_sqlite(tmp / "one.db", per_board, make_tags(), per_batch_commit=False)
+    async def go() -> tuple[float, str]:
+        store = await SqliteStore.open(path)
+        try:
+            t = await run_store(store, per_board)
+            return t, f"{store.ingest_batches} batches in {store.ingest_commits} commits"
+        finally:
+            await store.close()
+
+    return asyncio.run(go())
+
+
+def sqlite_part(per_board: list[list[IngestBatch]], n: int, tmp: Path) -> None:
+    runs = iter(range(1_000_000))
+    commits: list[str] = []
+
+    def store_side() -> float:
+        t, what = _sqlite_store_once(per_board, tmp / f"store-{next(runs)}.db")
+        commits.append(what)
+        return t
+
+    def floor_side() -> float:
+        return raw_sqlite(tmp / f"floor-{next(runs)}.db", per_board, make_tags())
+
+    got = _repeat.interleave([("store", store_side), ("floor", floor_side)], _repeat.repeats(5))
     print(
-        f"sqlite  (a) store ingest, group commit : {n / t_store:>10,.0f} readings/s "
-        f"({batches} batches in {commits} commits, {batches / commits:.1f} per commit)"
+        f"sqlite  (a) store ingest, group commit : {_repeat.spread([n / t for t in got['store']])} readings/s"
     )
-    print(f"sqlite  (b) raw executemany, commit/batch: {n / t_raw:>10,.0f} readings/s")
-    print(f"sqlite  (c) raw executemany, one commit  : {n / t_one:>10,.0f} readings/s")
-    print(f"sqlite  ratio a/b = {t_raw / t_store:.2f}, a/c = {t_one / t_store:.2f}")
-    con = sqlite3.connect(tmp / "store.db")
+    print(f"        ({commits[-1]})")
+    print(
+        f"sqlite  (c) floor, one transaction     : {_repeat.spread([n / t for t in got['floor']])} readings/s"
+    )
+    _repeat.report(
+        "ingest_store",
+        "sqlite store/floor throughput (a/c)",
+        [f / s for s, f in zip(got["store"], got["floor"], strict=True)],
+    )
+    last_store = sorted(tmp.glob("store-*.db"), key=lambda p: p.stat().st_mtime)[-1]
+    con = sqlite3.connect(last_store)
     interned = _db_bytes(con, ("readings", "readings_t")) / n
     con.close()
     text = bytes_per_reading_text(tmp / "text.db", per_board)
@@ -161,39 +192,79 @@ async def sqlite_part(per_board: list[list[IngestBatch]], n: int, tmp: Path) -> 
     )
 
 
-async def pg_part(per_board: list[list[IngestBatch]], n: int) -> None:
+async def _pg_round(per_board: list[list[IngestBatch]], which: str) -> tuple[float, int]:
     import asyncpg
 
-    from listenpost.collector.store import StoreUnavailable
     from listenpost.collector.store.postgres import PostgresStore
 
     schema = f"lp_bench_{uuid.uuid4().hex[:10]}"
     try:
-        store = await PostgresStore.open(PG_URL, schema=schema, max_size=10)
-    except StoreUnavailable as e:
-        print(f"postgres skipped: {e}")
-        return
-    try:
-        t_store = await run_store(store, per_board)
-        await store.close()
-        t_raw, size = await raw_pg_copy(PG_URL, schema + "_raw", per_board, make_tags())
-        print(f"postgres (d) store ingest, 100 boards   : {n / t_store:>10,.0f} readings/s")
-        print(f"postgres (e) raw COPY, one connection   : {n / t_raw:>10,.0f} readings/s")
-        print(f"postgres ratio d/e = {t_raw / t_store:.2f}; bytes/reading incl. BRIN index {size / n:.1f}")
+        if which == "store":
+            store = await PostgresStore.open(PG_URL, schema=schema, max_size=POOL)
+            try:
+                return await run_store(store, per_board), 0
+            finally:
+                await store.close()
+        return await raw_pg_copy(PG_URL, schema, per_board, make_tags())
     finally:
-        con = await asyncpg.connect(PG_URL)
+        con = await asyncpg.connect(PG_URL, timeout=10)
         await con.execute(f'DROP SCHEMA IF EXISTS "{schema}" CASCADE')
-        await con.execute(f'DROP SCHEMA IF EXISTS "{schema}_raw" CASCADE')
         await con.close()
 
 
-def main() -> None:
-    per_board = make_batches()
-    n = N_BOARDS * BATCHES_PER_BOARD * PER_BATCH
-    print(f"{N_BOARDS} boards x {BATCHES_PER_BOARD} batches x {PER_BATCH} readings = {n:,} readings")
+def pg_available() -> str | None:
+    """Why PostgreSQL cannot be used here, or ``None`` when it can."""
+    import asyncpg
+
+    async def probe() -> None:
+        con = await asyncpg.connect(PG_URL, timeout=5)
+        await con.close()
+
+    try:
+        asyncio.run(probe())
+    except (OSError, asyncpg.PostgresError, TimeoutError) as e:
+        return f"{type(e).__name__}: {e}"
+    return None
+
+
+def pg_part(per_board: list[list[IngestBatch]], n: int) -> None:
+    why = pg_available()
+    if why is not None:
+        print(f"postgres skipped: {why}")
+        return
+    sizes: list[int] = []
+
+    def copy_side() -> float:
+        t, size = asyncio.run(_pg_round(per_board, "copy"))
+        sizes.append(size)
+        return t
+
+    got = _repeat.interleave(
+        [("store", lambda: asyncio.run(_pg_round(per_board, "store"))[0]), ("copy", copy_side)],
+        _repeat.repeats(5),
+    )
+    print(
+        f"postgres (d) store ingest, pool {POOL}     : {_repeat.spread([n / t for t in got['store']])} readings/s"
+    )
+    print(
+        f"postgres (e) COPY, {POOL} connections      : {_repeat.spread([n / t for t in got['copy']])} readings/s"
+    )
+    print(f"postgres bytes/reading incl. BRIN index: {sizes[-1] / n:.1f}")
+    _repeat.report(
+        "ingest_store",
+        "postgres store/COPY throughput (d/e)",
+        [c / s for s, c in zip(got["store"], got["copy"], strict=True)],
+    )
+
+
+def main(quick: bool = False) -> None:
+    shape = QUICK_SHAPE if quick else (N_BOARDS, BATCHES_PER_BOARD)
+    per_board = make_batches(*shape)
+    n = sum(b.n for mine in per_board for b in mine)
+    print(f"{shape[0]} boards x {shape[1]} batches x {PER_BATCH} readings = {n:,} readings")
     with tempfile.TemporaryDirectory() as d:
-        asyncio.run(sqlite_part(per_board, n, Path(d)))
-    asyncio.run(pg_part(per_board, n))
+        sqlite_part(per_board, n, Path(d))
+    pg_part(per_board, n)
 
 
 if __name__ == "__main__":

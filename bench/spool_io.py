@@ -21,6 +21,7 @@ import tempfile
 import time
 from pathlib import Path
 
+from bench import _repeat
 from listenpost.agent.spool import GZIP_LEVEL, Spool
 from listenpost.core.clock import VirtualClock
 from listenpost.core.records import Reading
@@ -97,10 +98,8 @@ def naive_side(directory: Path, periods: int) -> int:
     return n
 
 
-def main() -> None:
-    minutes = float(os.environ.get("LISTENPOST_BENCH_SPOOL_MINUTES", "60"))
+def _one_round(minutes: float) -> dict[str, float]:
     periods = int(minutes * 60 / FLUSH_S)
-    per_hour = 3600 / (periods * FLUSH_S)
     with tempfile.TemporaryDirectory(prefix="spool-io-", dir=os.environ.get("LISTENPOST_BENCH_DIR")) as d:
         directory = Path(d)
         io0, t0 = proc_io(), time.perf_counter()
@@ -108,30 +107,46 @@ def main() -> None:
         io1, t1 = proc_io(), time.perf_counter()
         n_naive = naive_side(directory, periods)
         io2, t2 = proc_io(), time.perf_counter()
-    spool_w, naive_w = io1["write_bytes"] - io0["write_bytes"], io2["write_bytes"] - io1["write_bytes"]
-    spool_c, naive_c = io1["wchar"] - io0["wchar"], io2["wchar"] - io1["wchar"]
+    return {
+        "spool_w": io1["write_bytes"] - io0["write_bytes"],
+        "naive_w": io2["write_bytes"] - io1["write_bytes"],
+        "spool_c": io1["wchar"] - io0["wchar"],
+        "naive_c": io2["wchar"] - io1["wchar"],
+        "payload": payload,
+        "n_spool": n_spool,
+        "n_naive": n_naive,
+        "spool_s": t1 - t0,
+        "naive_s": t2 - t1,
+    }
+
+
+def main(quick: bool = False) -> None:
+    minutes = 1.0 if quick else float(os.environ.get("LISTENPOST_BENCH_SPOOL_MINUTES", "60"))
+    per_hour = 3600 / (int(minutes * 60 / FLUSH_S) * FLUSH_S)
+    rounds = [_one_round(minutes) for _ in range(_repeat.repeats(3))]  # each round: spool, then naive
+    r = rounds[-1]
     print(
         f"{minutes:g} virtual minutes at {RATE_PER_S} readings/s, {FLUSH_S:g} s commits "
-        f"({n_spool} / {n_naive} readings)"
+        f"({r['n_spool']} / {r['n_naive']} readings), {len(rounds)} rounds; MB/h:"
     )
-    print(
-        f"  spool (one gzip'd row per batch): write_bytes {spool_w * per_hour / 1e6:8.1f} MB/h   "
-        f"wchar {spool_c * per_hour / 1e6:8.1f} MB/h   ({t1 - t0:.1f} s)"
-    )
-    print(
-        f"  naive (one row per reading):      write_bytes {naive_w * per_hour / 1e6:8.1f} MB/h   "
-        f"wchar {naive_c * per_hour / 1e6:8.1f} MB/h   ({t2 - t1:.1f} s)"
-    )
+    for side, label in (
+        ("spool", "spool (one gzip'd row per batch)"),
+        ("naive", "naive (one row per reading)     "),
+    ):
+        w = [x[f"{side}_w"] * per_hour / 1e6 for x in rounds]
+        c = [x[f"{side}_c"] * per_hour / 1e6 for x in rounds]
+        print(f"  {label}: write_bytes {_repeat.spread(w, '.1f')}   wchar {_repeat.spread(c, '.1f')}")
+    payload = r["payload"]
     print(
         f"  spool payload (compressed bodies): {payload * per_hour / 1e6:.1f} MB/h, "
-        f"{payload / max(n_spool, 1):.2f} B/reading; write amplification "
-        f"{spool_w / max(payload, 1):.1f}x (write_bytes / payload)"
+        f"{payload / max(r['n_spool'], 1):.2f} B/reading; write amplification "
+        f"{r['spool_w'] / max(payload, 1):.1f}x (write_bytes / payload)"
     )
-    if spool_w:
-        print(f"  naive / spool write_bytes ratio: {naive_w / spool_w:.1f}x")
+    if all(x["spool_w"] for x in rounds):
+        _repeat.report("spool_io", "naive/spool write_bytes", [x["naive_w"] / x["spool_w"] for x in rounds])
     else:
         print("  write_bytes is 0 here (no block device under this directory?): compare wchar")
-    print(f"  naive / spool wchar ratio:       {naive_c / max(spool_c, 1):.1f}x")
+    _repeat.report("spool_io", "naive/spool wchar", [x["naive_c"] / max(x["spool_c"], 1) for x in rounds])
 
 
 if __name__ == "__main__":

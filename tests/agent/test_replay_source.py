@@ -329,12 +329,17 @@ TIMES = [10.0, 10.5, 12.0, 12.0, 15.0]
     ("speed", "offsets"),
     [
         (1.0, [0.0, 0.5, 2.0, 2.0, 5.0]),
-        (10.0, [0.0, 0.05, 0.2, 0.2, 0.5]),
+        # due at 0.2 and 0.5, but the wake-up at 0.05 allows the next one only a grain (0.25 s) later
+        (10.0, [0.0, 0.05, 0.3, 0.3, 0.55]),
         (0.0, [0.0, 0.0, 0.0, 0.0, 0.0]),
     ],
 )
 async def test_pacing_on_virtual_clock(tmp_path, speed, offsets):
-    """At speed S each advert comes (t_i - t_0)/S of clock time after the first; speed 0 does not wait."""
+    """
+    At speed S each advert comes (t_i - t_0)/S of clock time after the first, or when due sooner than
+    a grain after the last wake-up, one grain after that wake-up; speed 0 does not wait.
+    """
+    assert ReplaySource.PACING_GRAIN_S == 0.25  # the offsets below are worked out for it
     p = tmp_path / "r.jsonl"
     _write(p, [_adv(t, i) for i, t in enumerate(TIMES)])
     clock = CountingClock()
