@@ -662,6 +662,8 @@ class BusWatch:
             if _ADAPTER_IFACE in body[1] and src.owns_adapter_path(body[0]):
                 src.returned("adapter")
         elif msg.member == "PropertiesChanged" and body[0] == _ADAPTER_IFACE:
+            if src.passive_patterns is not None:
+                return  # a passive scan holds no discovery session: Discovering is someone else's
             discovering = body[1].get("Discovering")
             if discovering is not None and discovering.value is False and src.owns_adapter_path(msg.path):
                 task = asyncio.create_task(self._check_discovering(msg.path, src.generation))

@@ -184,7 +184,7 @@ async def test_passive_mode_registers_a_monitor_instead_of_discovering(bluez):
     """Passive: RegisterMonitor on AdvertisementMonitorManager1, no discovery; adverts still arrive."""
     await bluez.add_monitor_manager()
     pattern = (0, 0xFF, b"\x4c\x00")  # manufacturer data starting with Apple's company ID
-    async with running(source(passive_patterns=[pattern])) as r:
+    async with running(src := source(passive_patterns=[pattern])) as r:
         calls = await bluez.all_calls()
         assert calls == ["RegisterMonitor"]
         ((monitor_path,),) = await bluez.method_calls("RegisterMonitor")
@@ -193,6 +193,11 @@ async def test_passive_mode_registers_a_monitor_instead_of_discovering(bluez):
         await bluez.advert(dev, -70, mfg={0x004C: b"\x02\x15"})
         await wait_until(lambda: len(r.got) == 1, "advert delivered in passive mode")
         assert r.got[0].manufacturer_data == {0x004C: b"\x02\x15"}
+        # another client's discovery ending is none of a passive scan's business; the wait can
+        # only let a slow machine miss a wrong rebuild, never invent one
+        await bluez.set_discovering(False)
+        await asyncio.sleep(0.5)
+        assert src.restarts == 0 and src.stats()["episodes"] == []
     assert await bluez.all_calls() == ["RegisterMonitor", "UnregisterMonitor"]
 
 
@@ -303,3 +308,76 @@ async def test_dbus_daemon_lost_and_restarted(bluez):
         ep = _closed_episode(src, "bus_lost")
         assert src.stats()["bus_watch"] == "connected"
     print(f"\nD-Bus restart: first advert {took:.3f} s after bus and bluetoothd were back; episode {ep}")
+
+
+# ---------------------------------------------------------------- the whole agent
+
+
+async def test_agent_run_reports_the_restart_in_its_heartbeat_and_keeps_uploading(
+    bluez, aiohttp_server, tmp_path
+):
+    """`agent run` on the mocked BlueZ: readings before and after a bluetoothd crash reach the collector,
+    and a heartbeat says the radio stack restarted and recovered (reason and duration)."""
+    import aiohttp
+
+    from listenpost.agent.service import AgentService, run_agent
+    from tests.agent.test_service import UUID, Collector, board_config, tag
+
+    clock = SystemClock()
+    collector = Collector(clock)
+    server = await aiohttp_server(collector.app())
+    cfg = board_config(
+        tmp_path,
+        str(server.make_url("")).rstrip("/"),
+        tags=[7],
+        source={"kind": "bleak", "adapter": "hci0", "stall_seconds": 600.0},
+        spool={"flush_seconds": 0.2},
+        heartbeat={"period_seconds": 0.2},
+    )
+    ibeacon = b"\x02\x15" + UUID + (7).to_bytes(2, "big") + (7).to_bytes(2, "big") + b"\xc5"
+    services: list[AgentService] = []
+
+    def radio() -> dict[str, Any]:
+        return services[0].stats()["source"]["radio"] if services and services[0].source else {}
+
+    def readings() -> int:
+        return sum(n for (t, _, _), n in collector.readings.items() if t == tag(7))
+
+    async def advertise_until(done: Callable[[], bool], what: str) -> None:
+        dev = await bluez.add_device(ADDR)
+        t0 = time.monotonic()
+        while not done():
+            if time.monotonic() - t0 > BOUND_S:
+                pytest.fail(f"{what}: not within {BOUND_S:g} s")
+            await bluez.advert(dev, -60, mfg={0x004C: ibeacon})
+            await asyncio.sleep(0.02)
+
+    async with aiohttp.ClientSession() as session:
+        task = asyncio.create_task(run_agent(cfg, clock=clock, session=session, on_start=services.append))
+        try:
+            await wait_until(lambda: radio().get("state") == "scanning", "agent scanning")
+            await advertise_until(lambda: readings() > 0, "a reading stored before the crash")
+            before = readings()
+            bluez.kill_bluez()
+            await wait_until(lambda: radio().get("state") != "scanning", "agent noticed bluetoothd leave")
+            await bluez.start_bluez()
+            await advertise_until(lambda: readings() > before, "a reading stored after the restart")
+
+            def reported() -> list[dict[str, Any]]:
+                return [
+                    e
+                    for h in collector.heartbeats
+                    for e in ((h["stats"]["source"]["radio"] or {}).get("episodes") or [])
+                    if not e["open"]
+                ]
+
+            await wait_until(lambda: bool(reported()), "a heartbeat with the closed episode")
+            (ep,) = {e["started_s"]: e for e in reported()}.values()
+            assert ep["reason"] == "bluez_gone" and ep["duration_s"] > 0
+            assert ep["heard_after_return_s"] is not None and ep["heard_after_return_s"] >= 0
+            assert (await bluez.all_calls())[:2] == ["SetDiscoveryFilter", "StartDiscovery"]
+        finally:
+            if services:
+                services[0].request_stop()
+            assert await asyncio.wait_for(task, BOUND_S) == 0
+    print(f"\nagent run: bluetoothd restart reported in a heartbeat: {ep}")
