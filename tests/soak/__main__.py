@@ -106,11 +106,43 @@ def prepare(root: Path, minutes: float, seed: int) -> tuple[Path, dict, dict]:
     return venue, truth_doc, truth
 
 
+PREFLIGHT = (
+    "import listenpost.agent.service, listenpost.collector.app, listenpost.collector.store.sqlite, "
+    "listenpost.collector.store.postgres"
+)
+
+
+async def preflight(root: Path, bound_s: float = 180.0) -> str:
+    """Empty when the tree the children will run imports; else the error after ``bound_s`` of retries."""
+    t0 = time.monotonic()
+    while True:
+        proc = await asyncio.to_thread(
+            subprocess.run,
+            [sys.executable, "-c", PREFLIGHT],
+            cwd=str(root),
+            capture_output=True,
+            text=True,
+            timeout=120,
+            check=False,
+        )
+        if proc.returncode == 0:
+            return ""
+        if time.monotonic() - t0 > bound_s:
+            return proc.stderr.strip().splitlines()[-1] if proc.stderr.strip() else f"exit {proc.returncode}"
+        print("soak: the tree does not import yet, retrying in 10 s", flush=True)
+        await asyncio.sleep(10)
+
+
 async def main_async(args: argparse.Namespace) -> int:
     params = QUICK if args.quick else FULL
     seed = args.seed if args.seed is not None else random.SystemRandom().randrange(1 << 30)
     root = Path(tempfile.mkdtemp(prefix="lp-soak-"))
     print(f"soak: seed {seed}, work dir {root}, {'quick' if args.quick else 'full'} run", flush=True)
+    problem = await preflight(root)
+    if problem:
+        print(f"soak: the collector and agent do not import: {problem}", flush=True)
+        shutil.rmtree(root, ignore_errors=True)
+        return 2
     started = time.monotonic()
     minutes = 3.0 if args.quick else 6.0
     venue, truth_doc, truth = prepare(root, minutes, seed)
@@ -154,7 +186,10 @@ async def main_async(args: argparse.Namespace) -> int:
                 )
             else:
                 print(f"soak: {name} ...", flush=True)
-                row = await factory()
+                try:
+                    row = await factory()
+                except Exception as e:  # noqa: BLE001 - one broken row must not cost the others
+                    row = Row(name, "-", ok=False, notes=[f"harness: {type(e).__name__}: {e}"])
             rows.append(row)
             print(
                 f"soak: {name}: {RESULT[row.ok]} in {time.monotonic() - t:.0f} s "

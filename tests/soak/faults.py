@@ -110,6 +110,8 @@ class Row:
     """None: not run."""
     fired: str = ""
     """Evidence that the fault took effect; empty when none was seen (the row then fails)."""
+    failures: list[str] = field(default_factory=list)
+    """Row-specific promises broken (each also a note)."""
     notes: list[str] = field(default_factory=list)
 
 
@@ -289,7 +291,7 @@ def finish_row(row: Row, t: Tally, stops: list[bool], statuses: Counter[int], sc
         row.notes.append(f"{t.lost_in_window} lost unsealed at kills (within the window)")
     if t.lost_outside_window:
         row.notes.append(f"{t.lost_outside_window} missing outside any lossy window")
-    row.notes += scene.deaths + scene.notes
+    row.notes += row.failures + scene.deaths + scene.notes
     if row.fired:
         row.notes.insert(0, "fault seen: " + row.fired)
     else:
@@ -306,6 +308,7 @@ def finish_row(row: Row, t: Tally, stops: list[bool], statuses: Counter[int], sc
         and row.leaders_max <= 1
         and all(stops)
         and not scene.deaths
+        and not row.failures
         and bool(row.fired)
     )
     return row
@@ -349,6 +352,7 @@ async def run_scene(ctx: Ctx, row: Row, scene: Scene, body: Any) -> Row:
         t = await scene.tally()
     except Exception as e:  # noqa: BLE001
         row.notes.append(f"tally failed: {type(e).__name__}: {e}")
+        row.ok = False
         return row
     failed_harness = row.ok is None
     finish_row(row, t, stops, statuses, scene)
@@ -508,7 +512,13 @@ async def agent_disk_full(ctx: Ctx) -> Row:
             raise RuntimeError("nothing stored within 60 s")
         assert b.proc is not None
         b.proc.set_fsize_limit(4096)  # every write past the first page fails with EFBIG
+        full_from = await count_readings(scene.db)
         await asyncio.sleep(p.disk_full_s)
+        # docs/reliability.md §1: while storage fails the uplink sends sealed memory batches from RAM
+        during = await count_readings(scene.db) - full_from
+        row.notes.append(f"{during:,} readings stored while the agent's disk was full")
+        if during <= 0:
+            row.failures.append("nothing delivered while the disk was full")
         degraded = [d for d in b.proc.events() if d.get("level") in ("error", "warning")]
         if degraded:
             row.fired = "agent logged " + ", ".join(sorted({str(d.get("event")) for d in degraded}))
