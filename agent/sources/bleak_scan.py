@@ -529,6 +529,10 @@ class BleakSource:
         }
 
 
+WATCH_RECONNECT_MAX_S = 5.0
+"""Cap of the bus watch's reconnect backoff: a local socket connect is cheap, and the bus coming back
+is what ends the scanner's (longer) backoff."""
+
 _BLUEZ = "org.bluez"
 _ADAPTER_IFACE = "org.bluez.Adapter1"
 _MATCH_RULES = (
@@ -554,8 +558,9 @@ class BusWatch:
       added → returned;
     * the adapter's ``Discovering`` going false: re-read with ``Get`` (a late signal from the
       source's own stop must not count) → `Cause.DISCOVERY_STOPPED`;
-    * its own connection dropping → `Cause.BUS_LOST`; it reconnects with the source's capped,
-      jittered backoff, and a reconnect that finds org.bluez owned counts as returned.
+    * its own connection dropping → `Cause.BUS_LOST`; it reconnects with a capped, jittered backoff
+      (at most `WATCH_RECONNECT_MAX_S`), and a connect that finds org.bluez owned while the source
+      is not scanning counts as returned.
 
     Every call is bounded by the source's ``call_timeout`` on its clock. dbus-fast comes with bleak
     on Linux; without it there is nothing to watch and the stall watchdog stays the only net.
@@ -619,7 +624,8 @@ class BusWatch:
             except Exception as e:
                 if bus is not None:
                     bus.disconnect()
-                delay = half_jitter(attempt, src.backoff_initial, src.backoff_max, src._rng)
+                cap = min(src.backoff_max, WATCH_RECONNECT_MAX_S)
+                delay = half_jitter(attempt, min(src.backoff_initial, cap), cap, src._rng)
                 attempt += 1
                 log.info(
                     "bus_watch_connect_failed", error=f"{type(e).__name__}: {e}", retry_in_s=round(delay, 3)
@@ -630,8 +636,8 @@ class BusWatch:
             self._bus, self.connected = bus, True
             self.connects += 1
             log.info("bus_watch_connected", bluez_owned=bool(owned))
-            if owned and self.connects > 1:
-                src.returned("bus")
+            if owned and src.state is not ScanState.SCANNING:
+                src.returned("bus")  # the bus (and BlueZ on it) is here: a waiting start may go now
             try:
                 await bus.wait_for_disconnect()
             except Exception as e:  # the reason the bus died; what matters is that it did

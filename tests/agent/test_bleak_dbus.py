@@ -310,6 +310,28 @@ async def test_dbus_daemon_lost_and_restarted(bluez):
     print(f"\nD-Bus restart: first advert {took:.3f} s after bus and bluetoothd were back; episode {ep}")
 
 
+@pytest.mark.parametrize("missing", ["bluetoothd", "bus"])
+async def test_started_before_the_stack_it_goes_as_soon_as_the_stack_is_there(bluez, missing):
+    """A board booting before bluetoothd (or the bus): the first start fails, the backoff is long
+    (30-60 s, past `BOUND_S`), yet the source scans as soon as the stack appears."""
+    bluez.kill_bluez() if missing == "bluetoothd" else bluez.kill_bus()
+    src = source(backoff_initial=60.0, backoff_max=60.0)
+    r = Running(src)
+    task = asyncio.create_task(r._collect())
+    try:
+        await wait_until(lambda: src.state is ScanState.UNAVAILABLE, "the first start failed")
+        if missing == "bus":
+            await bluez.start_bus()
+        await bluez.start_bluez()
+        took = await _hear_again(bluez, r, f"after {missing} appeared")
+        _closed_episode(src, "bluez_down" if missing == "bluetoothd" else "no_bluetooth")
+    finally:
+        task.cancel()
+        with contextlib.suppress(asyncio.CancelledError):
+            await task
+    print(f"\n{missing} late: first advert {took:.3f} s after it was there")
+
+
 # ---------------------------------------------------------------- the whole agent
 
 
