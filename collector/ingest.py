@@ -78,7 +78,7 @@ def exchange_refusal(
     return reason
 
 
-async def record_exchange(
+async def accept_exchange(
     models: dict[tuple[str, str], Any],
     store: Store,
     board: str,
@@ -88,25 +88,27 @@ async def record_exchange(
     now: float,
     window: TimeWindow,
     send_t1: float | None = None,
-) -> Any:
+) -> tuple[ClockSample | None, Any]:
     """
-    Store one four-timestamp exchange and feed it to the model; returns the `ClockStep` it confirmed, if any.
+    Check one four-timestamp exchange and feed it to the model, without storing it.
 
-    An implausible exchange (`exchange_refusal`) is dropped and counted on the model, not stored: the
-    request carrying it is still answered, since the exchange belongs to an earlier one.
+    Returns:
+        The sample to store (`Store.add_clock_sample`, or with its batch as `IngestBatch.clock`; None for
+        an implausible exchange, which is dropped and counted on the
+        model: the request carrying it is still answered, since the exchange belongs to an earlier one)
+        and the `ClockStep` it confirmed, if any.
     """
     model = await clock_model(models, store, board, boot)
     reason = exchange_refusal(model, exchange, now=now, window=window, send_t1=send_t1)
     if reason is not None:
         model.refuse()
         log.warning("clock_exchange_refused", board=board, boot=boot, reason=reason, refused=model.n_refused)
-        return None
+        return None, None
     try:
         step = model.add(*exchange)
     except ValueError as e:
         raise WireError("clock", str(e)) from e
-    await store.add_clock_sample(ClockSample(board, boot, *exchange))
-    return step
+    return ClockSample(board, boot, *exchange), step
 
 
 def collector_times(env: BatchEnvelope, model: Any, *, t2: float) -> np.ndarray:
@@ -173,8 +175,11 @@ def drop_unregistered(batch: IngestBatch, registered: frozenset[str]) -> tuple[I
     return kept, batch.n - kept.n, len(unknown)
 
 
-def to_ingest_batch(env: BatchEnvelope, *, received_at: float, model: Any) -> IngestBatch:
-    """Everything the store needs to keep this batch in one transaction."""
+def to_ingest_batch(
+    env: BatchEnvelope, *, received_at: float, model: Any, clock: ClockSample | None = None
+) -> IngestBatch:
+    """Everything the store needs to keep this batch in one transaction (with ``clock``, the exchange the
+    request carried)."""
     c = env.content
     offset_db = float(c.offset_db)
     return IngestBatch(
@@ -191,4 +196,5 @@ def to_ingest_batch(env: BatchEnvelope, *, received_at: float, model: Any) -> In
         rssi_dd=np.asarray(c.rssi_dd, dtype=np.int32),
         telemetry=tuple(c.telemetry),
         gap=dict(c.gap) if c.gap is not None else None,
+        clock=clock,
     )

@@ -21,10 +21,10 @@ from listenpost.collector.http.auth import bearer_token, code_hash, hash_secret,
 from listenpost.collector.http.middlewares import BOARD, BYTES_SENT, T2, ApiError, bad_field
 from listenpost.collector.ingest import (
     TimeWindow,
+    accept_exchange,
     check_times,
     clock_model,
     drop_unregistered,
-    record_exchange,
     to_ingest_batch,
 )
 from listenpost.collector.models.clock import wall_error_s
@@ -32,6 +32,7 @@ from listenpost.collector.state import CLOCK, RUNTIME, SETTINGS, STORE
 from listenpost.collector.store import (
     BadBatch,
     Board,
+    ClockSample,
     EnrollmentReason,
     EnrollmentRefused,
     Event,
@@ -303,10 +304,12 @@ async def _store_batch(request: web.Request, board: Board) -> web.Response:
         raise ApiError(
             403, "wrong_board", f"token of board {board.name!r} cannot post for {env.board!r}", field="board"
         )
+    sample = None
     if env.clock is not None:
-        await _exchange(request, board, env.boot, env.clock, send_t1=env.t1)
+        # Stored with the batch, in its transaction: one commit per batch, not two.
+        sample = await _exchange(request, board, env.boot, env.clock, send_t1=env.t1, keep=False)
     model = await clock_model(runtime.clock_models, store, board.name, env.content.boot)
-    batch = to_ingest_batch(env, received_at=t2, model=model)
+    batch = to_ingest_batch(env, received_at=t2, model=model, clock=sample)
     try:
         check_times(batch.t_collector, now=t2, window=time_window(app[SETTINGS].limits))
     except WireError as e:
@@ -367,11 +370,13 @@ async def _exchange(
     exchange: tuple[float, float, float, float],
     *,
     send_t1: float | None,
-) -> None:
-    """Keep a clock sample (an implausible one is dropped and counted); a confirmed step becomes an event."""
+    keep: bool = True,
+) -> ClockSample | None:
+    """Check a clock exchange (an implausible one is dropped and counted) and, with ``keep``, store it; a
+    confirmed step becomes an event. Returns the sample for the caller to store when not ``keep``."""
     app = request.app
     try:
-        step = await record_exchange(
+        sample, step = await accept_exchange(
             app[RUNTIME].clock_models,
             app[STORE],
             board.name,
@@ -383,10 +388,13 @@ async def _exchange(
         )
     except WireError as e:
         raise bad_field(e.field, str(e).removeprefix(f"{e.field}: ")) from e
+    if keep and sample is not None:
+        await app[STORE].add_clock_sample(sample)
     if step is not None:
         detail = {"boot": boot, "size_s": step.size_s, "at_board_s": step.at_board_s}
         await app[STORE].add_event(Event(step.at_collector_s, board.name, "clock_step", detail))
         log.warning("clock_step", board=board.name, **detail)
+    return None if keep else sample
 
 
 async def heartbeat(request: web.Request) -> web.Response:

@@ -132,7 +132,9 @@ class IngestBatch:
     rssi_dd: np.ndarray  # int16/int32, calibrated, tenths of dB
     telemetry: Sequence[dict[str, Any]] = ()
     gap: dict[str, Any] | None = None
-    """For a gap record: first_seq, last_seq, readings, reason."""
+    """For a gap record: first_seq, last_seq, readings, reason, and the epoch the range belongs to."""
+    clock: ClockSample | None = None
+    """The clock exchange the request carried, stored in the batch's own transaction."""
 
     @property
     def n(self) -> int:
@@ -271,7 +273,9 @@ class Store(Protocol):
     async def latest_telemetry(self, tags: Sequence[str] | None = None) -> dict[str, TagTelemetry]:
         """The newest telemetry row per tag (by board time within the newest batch)."""
 
-    async def seq_holes(self, board: str | None = None) -> list[SeqHole]: ...
+    async def seq_holes(self, board: str | None = None) -> list[SeqHole]:
+        """Seq holes now, by board, epoch and first seq. Kept up to date by ingest (one small table), so
+        this costs the same however many batches are stored."""
 
     # clock, heartbeats, events
     async def add_clock_sample(self, sample: ClockSample) -> None: ...
@@ -307,7 +311,23 @@ class Store(Protocol):
         With ``max_chunks`` at most that many chunks go per table in this call, so a caller can spread a
         large backlog over several calls (the monitor does, one call per round): a return value of
         ``chunk * max_chunks`` means there may be more. Telemetry rows and clock samples older than ``t``
-        go too (not counted); batch headers stay, because dedup keys never expire while the board exists."""
+        go too (not counted); batch headers and clock samples have their own cut (`delete_history_before`)."""
+
+    async def delete_history_before(
+        self,
+        *,
+        heartbeats: float | None = None,
+        clock_samples: float | None = None,
+        batches: float | None = None,
+        chunk: int = 10_000,
+        max_chunks: int | None = None,
+    ) -> dict[str, int]:
+        """Remove heartbeats, clock samples and batch headers (dedup keys) older than their cut (``None``:
+        keep), in chunks as `delete_readings_before`; returns rows deleted per table.
+
+        Kept whatever their age: each board's newest heartbeat, the newest clock sample of each (board,
+        boot), the newest batch of each (board, epoch) and batches that telemetry rows still point at.
+        A batch's readings point at it too: ``batches`` must be older than the readings' cut."""
 
     def exclusive(self, name: str) -> AbstractAsyncContextManager[bool]:
         """Run-once work across collectors: yields True if this process holds the lock ``name``.

@@ -16,16 +16,30 @@ from typing import Any
 import numpy as np
 
 from listenpost.collector.store import BadBatch, Board, Calibration, ClockSample, IngestBatch
+from listenpost.core.wire import EPOCH
 
 BOARD_COLS = "name, room, floor, created_at, enrolled_at, fingerprint, offset_db, retired_at"
 """The `Board` columns, in the order `board_from_row` reads them."""
 
-# Readings are what the caller counts; telemetry and clock samples age out on the same cut.
+# Readings are what the caller counts; telemetry ages out on the same cut.
 RETENTION_TABLES: tuple[tuple[str, str, bool], ...] = (
     ("readings", "t_collector", True),
     ("telemetry", "at", False),
-    ("clock_samples", "t2", False),
 )
+
+# History that ages out on its own cut (`Store.delete_history_before`): rows of table ``x`` older than
+# ``{cut}``, except what later work needs: a board's newest heartbeat (the status page), the newest
+# clock sample of each (board, boot) (a model rebuilt after a restart), the newest batch of each (board,
+# epoch) and any batch telemetry still points at. Each condition is driven by an index on the time
+# column and one index probe per row.
+HISTORY_TABLES: dict[str, str] = {
+    "heartbeats": "x.at < {cut} AND x.id <> (SELECT k.id FROM heartbeats k WHERE k.board_id = x.board_id "
+    "ORDER BY k.at DESC, k.id DESC LIMIT 1)",
+    "clock_samples": "x.t2 < {cut} AND x.id <> (SELECT k.id FROM clock_samples k WHERE k.board_id = x.board_id "
+    "AND k.boot = x.boot ORDER BY k.t2 DESC, k.id DESC LIMIT 1)",
+    "batches": "x.received_at < {cut} AND x.seq < (SELECT max(k.seq) FROM batches k WHERE k.board_id = x.board_id "
+    "AND k.epoch = x.epoch) AND NOT EXISTS (SELECT 1 FROM telemetry k WHERE k.batch_id = x.id)",
+}
 
 # The latest telemetry row per tag. ``{where}`` is a backend-specific tag filter (or empty).
 LATEST_TELEMETRY_SQL = (
@@ -102,6 +116,41 @@ async def delete_in_chunks(
     return total
 
 
+async def delete_history_in_chunks(
+    delete_chunk: Callable[[str, float], Awaitable[int]],
+    cuts: dict[str, float | None],
+    chunk: int,
+    max_chunks: int | None,
+) -> dict[str, int]:
+    """
+    Run ``delete_chunk(table, cut)`` over the `HISTORY_TABLES` that have a cut, until a chunk comes back short.
+
+    Returns:
+        Rows deleted per table.
+
+    Raises:
+        ValueError: ``chunk`` or ``max_chunks`` below 1, or a table that is not in `HISTORY_TABLES`.
+    """
+    if chunk < 1:
+        raise ValueError(f"chunk must be >= 1, got {chunk!r}")
+    if max_chunks is not None and max_chunks < 1:
+        raise ValueError(f"max_chunks must be >= 1 or None, got {max_chunks!r}")
+    unknown = set(cuts) - HISTORY_TABLES.keys()
+    if unknown:
+        raise ValueError(f"no history retention for {sorted(unknown)}")
+    done: dict[str, int] = {}
+    for table, cut in cuts.items():
+        if cut is None:
+            continue
+        done[table] = 0
+        for _ in itertools.count() if max_chunks is None else range(max_chunks):
+            n = await delete_chunk(table, cut)
+            done[table] += n
+            if n < chunk:
+                break
+    return done
+
+
 def check_batch(batch: IngestBatch) -> int:
     """
     Check a batch's shape before it reaches the database; returns its offset in tenths of a dB.
@@ -127,6 +176,9 @@ def check_batch(batch: IngestBatch) -> int:
     if batch.gap is not None:
         if n:
             raise BadBatch("gap", "a gap record carries no readings")
+        ep = batch.gap.get("epoch")
+        if ep is not None and (not isinstance(ep, str) or not EPOCH.fullmatch(ep)):
+            raise BadBatch("gap.epoch", f"must be an epoch (8-32 lower-case hex characters), got {ep!r}")
         for k in ("first_seq", "last_seq", "readings"):
             v = batch.gap.get(k)
             if not isinstance(v, int) or isinstance(v, bool) or v < 0:
@@ -138,6 +190,13 @@ def check_batch(batch: IngestBatch) -> int:
             raise BadBatch(f"telemetry[{i}].tag", "must be a tag identity string")
         if not isinstance(t.get("t_ms"), int) or isinstance(t.get("t_ms"), bool):
             raise BadBatch(f"telemetry[{i}].t_ms", f"must be an integer, got {t.get('t_ms')!r}")
+    if batch.clock is not None:
+        if batch.clock.board != batch.board:
+            raise BadBatch("clock", f"sample of board {batch.clock.board!r} in a batch of {batch.board!r}")
+        try:
+            check_clock_sample(batch.clock)
+        except ValueError as e:
+            raise BadBatch("clock", str(e)) from e
     if not np.isfinite(batch.offset_db):
         raise BadBatch("offset_db", f"must be finite, got {batch.offset_db!r}")
     return round(batch.offset_db * 10)
@@ -159,23 +218,39 @@ def reading_tag_ids(batch: IngestBatch, tag_ids: dict[str, int]) -> list[int]:
 
 TELEMETRY_FIELDS = ("battery_mv", "temperature_c", "adv_count", "uptime_s")
 
-# Seq holes per (board, epoch): every batch row covers its own seq, a gap record also covers
-# [gap_first, gap_last]. Sorted by start, an interval that begins past the furthest seq reached by
-# the intervals before it leaves a hole. Holes before the first seq ever received are not reported
-# (an epoch's first seq is the agent's business). ``{board}`` is a backend-specific filter.
-SEQ_HOLES_SQL = """
-WITH iv AS (
-    SELECT board_id, epoch, seq AS lo, seq AS hi FROM batches WHERE {board}
-    UNION ALL
-    SELECT board_id, epoch, gap_first, gap_last FROM batches WHERE gap_first IS NOT NULL AND {board}
-), w AS (
-    SELECT board_id, epoch, lo,
-           max(hi) OVER (PARTITION BY board_id, epoch ORDER BY lo, hi
-                         ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING) AS reach
-    FROM iv
-)
-SELECT b.name, w.epoch, w.reach + 1, w.lo - 1
-FROM w JOIN boards b ON b.id = w.board_id
-WHERE w.reach IS NOT NULL AND w.lo > w.reach + 1
-ORDER BY b.name, w.epoch, w.lo
-"""
+
+def gap_epoch(batch: IngestBatch) -> str:
+    """The epoch a gap record's seq range belongs to: its own ``epoch`` field, else the batch's."""
+    return (batch.gap or {}).get("epoch") or batch.epoch
+
+
+def seq_intervals(batch: IngestBatch) -> list[tuple[str, int, int]]:
+    """The (epoch, first, last) seq ranges a newly stored batch covers, sorted (the lock order on PostgreSQL)."""
+    out = [(batch.epoch, batch.seq, batch.seq)]
+    if batch.gap is not None:
+        out.append((gap_epoch(batch), batch.gap["first_seq"], batch.gap["last_seq"]))
+    return sorted(out)
+
+
+def cover_seqs(
+    first: int, reach: int, lo: int, hi: int, overlapping: Sequence[tuple[int, int]]
+) -> tuple[int, int, list[tuple[int, int]]]:
+    """
+    Account one covered range [lo, hi] of a (board, epoch) whose seqs so far span [first, reach].
+
+    ``overlapping`` are the stored holes that meet [lo, hi] (only needed when it meets [first, reach]).
+    Returns the new span and the holes to store in place of ``overlapping``: what is left of them, plus
+    a new hole between the span and a range beyond it. Same result as the full scan
+    (migrations.HOLES_SCAN): a hole is a maximal run of seqs inside the span that nothing covered.
+    """
+    holes: list[tuple[int, int]] = []
+    for a, b in overlapping:
+        if a < lo:
+            holes.append((a, lo - 1))
+        if b > hi:
+            holes.append((hi + 1, b))
+    if lo > reach + 1:
+        holes.append((reach + 1, lo - 1))
+    if hi < first - 1:
+        holes.append((hi + 1, first - 1))
+    return min(first, lo), max(reach, hi), holes

@@ -38,6 +38,55 @@ class Migration:
     statements: tuple[str, ...]
 
 
+# Seq holes, kept up to date by every ingest instead of recomputed from all batches each round.
+# ``seq_reach``: per (board, epoch), the lowest and highest seq any batch or gap record covered;
+# ``seq_holes``: the maximal runs in between that nothing covered. Existing databases get both from
+# the batches they hold (`HOLES_SCAN`). ``batches.gap_epoch`` is the
+# epoch a gap record's range belongs to (its own ``epoch`` field; NULL: the batch's epoch).
+def _SEQ_ACCOUNTING(integer: str, text: str) -> tuple[str, ...]:  # noqa: N802 - reads as a constant
+    return (
+        f"ALTER TABLE batches ADD COLUMN gap_epoch {text}",
+        f"""CREATE TABLE seq_reach (
+            board_id {integer} NOT NULL references boards(id),
+            epoch {text} NOT NULL,
+            first_seq {integer} NOT NULL,
+            reach {integer} NOT NULL,
+            PRIMARY KEY (board_id, epoch))""",
+        f"""CREATE TABLE seq_holes (
+            board_id {integer} NOT NULL references boards(id),
+            epoch {text} NOT NULL,
+            first_seq {integer} NOT NULL,
+            last_seq {integer} NOT NULL,
+            PRIMARY KEY (board_id, epoch, first_seq))""",
+        """INSERT INTO seq_reach (board_id, epoch, first_seq, reach)
+            SELECT board_id, epoch, min(lo), max(hi) FROM (
+                SELECT board_id, epoch, seq AS lo, seq AS hi FROM batches
+                UNION ALL
+                SELECT board_id, coalesce(gap_epoch, epoch), gap_first, gap_last FROM batches
+                WHERE gap_first IS NOT NULL) iv
+            GROUP BY board_id, epoch""",
+        f"INSERT INTO seq_holes (board_id, epoch, first_seq, last_seq) {HOLES_SCAN.format(board='1 = 1')}",
+    )
+
+
+HOLES_SCAN = """
+WITH iv AS (
+    SELECT board_id, epoch, seq AS lo, seq AS hi FROM batches WHERE {board}
+    UNION ALL
+    SELECT board_id, coalesce(gap_epoch, epoch), gap_first, gap_last FROM batches
+    WHERE gap_first IS NOT NULL AND {board}
+), w AS (
+    SELECT board_id, epoch, lo,
+           max(hi) OVER (PARTITION BY board_id, epoch ORDER BY lo, hi
+                         ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING) AS reach
+    FROM iv
+)
+SELECT w.board_id, w.epoch, w.reach + 1, w.lo - 1 FROM w WHERE w.reach IS NOT NULL AND w.lo > w.reach + 1
+"""
+"""Every seq hole of the batches table by a full scan (board id, epoch, first, last): what ``seq_holes``
+holds. Migration 4 fills that table with it; tests compare the kept table against it."""
+
+
 SQLITE: tuple[Migration, ...] = (
     Migration(
         1,
@@ -154,6 +203,15 @@ SQLITE: tuple[Migration, ...] = (
             # NULL for events without a key (API and admin events); UNIQUE lets any number of NULLs in.
             "ALTER TABLE events ADD COLUMN key TEXT",
             "CREATE UNIQUE INDEX events_key ON events(key)",
+        ),
+    ),
+    Migration(
+        4,
+        "seq accounting kept per (board, epoch), gap epochs, history retention indexes",
+        (
+            *_SEQ_ACCOUNTING("INTEGER", "TEXT"),
+            "CREATE INDEX heartbeats_at ON heartbeats(at)",
+            "CREATE INDEX batches_received ON batches(received_at)",
         ),
     ),
 )
@@ -284,6 +342,18 @@ POSTGRES: tuple[Migration, ...] = (
             term bigint NOT NULL,
             holder text NOT NULL,
             taken_at timestamptz NOT NULL DEFAULT now())""",
+        ),
+    ),
+    Migration(
+        4,
+        "seq accounting kept per (board, epoch), gap epochs, history retention indexes",
+        (
+            *_SEQ_ACCOUNTING("bigint", "text"),
+            "CREATE INDEX heartbeats_at ON heartbeats(at)",
+            # (board_id, at, id): the newest heartbeat of a board is one backward index step, ties included.
+            "CREATE INDEX heartbeats_board_at_id ON heartbeats(board_id, at, id)",
+            "DROP INDEX heartbeats_board_at",
+            "CREATE INDEX batches_received ON batches(received_at)",
         ),
     ),
 )

@@ -58,8 +58,8 @@ from listenpost.collector.store import (
 )
 from listenpost.collector.store.common import (
     BOARD_COLS,
+    HISTORY_TABLES,
     LATEST_TELEMETRY_SQL,
-    SEQ_HOLES_SQL,
     TELEMETRY_FIELDS,
     batch_tag_names,
     board_from_row,
@@ -67,9 +67,13 @@ from listenpost.collector.store.common import (
     check_batch,
     check_clock_sample,
     constraint_field,
+    cover_seqs,
+    delete_history_in_chunks,
     delete_in_chunks,
+    gap_epoch,
     json_text,
     reading_tag_ids,
+    seq_intervals,
 )
 from listenpost.collector.store.migrations import migrate_postgres
 
@@ -480,10 +484,13 @@ class PostgresStore:
                 # Inside the try: a name the server or the driver cannot take refuses this batch (400).
                 tag_ids = await self._intern_tags(con, batch_tag_names(b))
                 async with con.transaction():
+                    if b.clock is not None:
+                        # Kept whatever the batch turns out to be, in its transaction: one commit.
+                        await _insert_clock_sample(con, bid, b.clock)
                     batch_id = await con.fetchval(
                         "INSERT INTO batches (board_id, epoch, seq, digest, boot, n, received_at, offset_dd, gap_first, "
-                        "gap_last, gap_readings, gap_reason) VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12) "
-                        "ON CONFLICT (board_id, epoch, seq) DO NOTHING RETURNING id",
+                        "gap_last, gap_readings, gap_reason, gap_epoch) VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, "
+                        "$10, $11, $12, $13) ON CONFLICT (board_id, epoch, seq) DO NOTHING RETURNING id",
                         bid,
                         b.epoch,
                         b.seq,
@@ -496,6 +503,7 @@ class PostgresStore:
                         gap.get("last_seq"),
                         gap.get("readings"),
                         gap.get("reason"),
+                        gap_epoch(b) if b.gap is not None else None,
                     )
                     if batch_id is None:
                         stored = await con.fetchval(
@@ -506,6 +514,8 @@ class PostgresStore:
                         )
                         status = IngestStatus.DUPLICATE if stored == b.digest else IngestStatus.CONFLICT
                         return IngestResult(status, stored)
+                    for epoch, lo, hi in seq_intervals(b):
+                        await _account_seqs(con, bid, epoch, lo, hi)
                     if b.n:
                         await con.copy_records_to_table(
                             "readings",
@@ -580,12 +590,12 @@ class PostgresStore:
         return {r[0]: TagTelemetry(*r) for r in rows}
 
     async def seq_holes(self, board: str | None = None) -> list[SeqHole]:
-        if board is None:
-            rows = await self._fetch(SEQ_HOLES_SQL.format(board="true"))
-        else:
-            rows = await self._fetch(
-                SEQ_HOLES_SQL.format(board="board_id = (SELECT id FROM boards WHERE name = $1)"), board
-            )
+        cond, args = ("", ()) if board is None else ("WHERE b.name = $1", (board,))
+        rows = await self._fetch(
+            "SELECT b.name, h.epoch, h.first_seq, h.last_seq FROM seq_holes h JOIN boards b ON b.id = h.board_id "
+            f"{cond} ORDER BY b.name, h.epoch, h.first_seq",
+            *args,
+        )
         return [SeqHole(*r) for r in rows]
 
     # -- clock, heartbeats, events -----------------------------------------------------------------------
@@ -594,17 +604,7 @@ class PostgresStore:
         s = sample
         check_clock_sample(s)
         async with self._acquire() as con, con.transaction():
-            bid = await self._board_id(con, s.board)
-            await con.execute(
-                "INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES ($1, $2, $3, $4, $5, $6)",
-                bid,
-                s.boot,
-                s.t1,
-                s.t2,
-                s.t3,
-                s.t4,
-            )
-            await _note_boot(con, bid, s.boot, s.t2)
+            await _insert_clock_sample(con, await self._board_id(con, s.board), s)
 
     async def clock_samples(self, board: str, boot: str, since: float | None = None) -> list[ClockSample]:
         rows = await self._fetch(
@@ -648,9 +648,11 @@ class PostgresStore:
         return [Heartbeat(board, r["at"], r["boot"], json.loads(r["stats"])) for r in rows]
 
     async def latest_heartbeats(self) -> dict[str, Heartbeat]:
+        # One backward step on heartbeats_board_at_id per board: the cost follows the number of boards,
+        # not the history kept.
         rows = await self._fetch(
-            "SELECT DISTINCT ON (h.board_id) b.name, h.at, h.boot, h.stats FROM heartbeats h "
-            "JOIN boards b ON b.id = h.board_id ORDER BY h.board_id, h.at DESC, h.id DESC"
+            "SELECT b.name, h.at, h.boot, h.stats FROM boards b CROSS JOIN LATERAL (SELECT k.at, k.boot, k.stats "
+            "FROM heartbeats k WHERE k.board_id = b.id ORDER BY k.at DESC, k.id DESC LIMIT 1) h"
         )
         return {r["name"]: Heartbeat(r["name"], r["at"], r["boot"], json.loads(r["stats"])) for r in rows}
 
@@ -766,6 +768,30 @@ class PostgresStore:
         )
         return total
 
+    async def delete_history_before(
+        self,
+        *,
+        heartbeats: float | None = None,
+        clock_samples: float | None = None,
+        batches: float | None = None,
+        chunk: int = 10_000,
+        max_chunks: int | None = None,
+    ) -> dict[str, int]:
+        async def delete_chunk(table: str, cut: float) -> int:
+            async with self._acquire() as con:
+                st = await con.execute(
+                    f"DELETE FROM {table} WHERE ctid = ANY(ARRAY(SELECT x.ctid FROM {table} x "
+                    f"WHERE {HISTORY_TABLES[table].format(cut='$1')} LIMIT $2))",
+                    cut,
+                    chunk,
+                )
+            return _count(st)
+
+        cuts = {"heartbeats": heartbeats, "clock_samples": clock_samples, "batches": batches}
+        done = await delete_history_in_chunks(delete_chunk, cuts, chunk, max_chunks)
+        log.info("history_deleted", backend="postgres", chunk=chunk, max_chunks=max_chunks, **done)
+        return done
+
     @contextlib.asynccontextmanager
     async def exclusive(self, name: str) -> AsyncIterator[bool]:
         """Session advisory lock ``name`` on one pooled connection, held for the block, released after."""
@@ -820,6 +846,78 @@ class PostgresStore:
             log.warning("lock_lost", name=name, term=term, current_term=now)
             return False
         return True
+
+
+async def _insert_clock_sample(con: asyncpg.Connection, board_id: int, s: ClockSample) -> None:
+    await con.execute(
+        "INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES ($1, $2, $3, $4, $5, $6)",
+        board_id,
+        s.boot,
+        s.t1,
+        s.t2,
+        s.t3,
+        s.t4,
+    )
+    await _note_boot(con, board_id, s.boot, s.t2)
+
+
+async def _account_seqs(con: asyncpg.Connection, board_id: int, epoch: str, lo: int, hi: int) -> None:
+    """Fold the covered range [lo, hi] into the (board, epoch)'s span and holes (common.cover_seqs).
+
+    The span row is locked first (FOR UPDATE), so two collectors storing batches of one epoch at once
+    apply their ranges one after the other; ranges are taken in sorted order (common.seq_intervals)."""
+    if await con.fetchval(
+        "INSERT INTO seq_reach (board_id, epoch, first_seq, reach) VALUES ($1, $2, $3, $4) "
+        "ON CONFLICT (board_id, epoch) DO NOTHING RETURNING 1",
+        board_id,
+        epoch,
+        lo,
+        hi,
+    ):
+        return
+    first, reach = await con.fetchrow(
+        "SELECT first_seq, reach FROM seq_reach WHERE board_id = $1 AND epoch = $2 FOR UPDATE",
+        board_id,
+        epoch,
+    )
+    if lo == reach + 1:  # the common case: the next seq, right after the span
+        await con.execute(
+            "UPDATE seq_reach SET reach = $3 WHERE board_id = $1 AND epoch = $2", board_id, epoch, hi
+        )
+        return
+    old: list[tuple[int, int]] = []
+    if lo <= reach and hi >= first:  # a late batch or a gap record inside the span: it may fill holes
+        old = [
+            (r[0], r[1])
+            for r in await con.fetch(
+                "SELECT first_seq, last_seq FROM seq_holes WHERE board_id = $1 AND epoch = $2 "
+                "AND first_seq <= $3 AND last_seq >= $4",
+                board_id,
+                epoch,
+                hi,
+                lo,
+            )
+        ]
+    first, reach, new = cover_seqs(first, reach, lo, hi, old)
+    if old:
+        await con.execute(
+            "DELETE FROM seq_holes WHERE board_id = $1 AND epoch = $2 AND first_seq = ANY($3::bigint[])",
+            board_id,
+            epoch,
+            [a for a, _ in old],
+        )
+    if new:
+        await con.executemany(
+            "INSERT INTO seq_holes (board_id, epoch, first_seq, last_seq) VALUES ($1, $2, $3, $4)",
+            [(board_id, epoch, a, b) for a, b in new],
+        )
+    await con.execute(
+        "UPDATE seq_reach SET first_seq = $3, reach = $4 WHERE board_id = $1 AND epoch = $2",
+        board_id,
+        epoch,
+        first,
+        reach,
+    )
 
 
 async def _note_boot(con: asyncpg.Connection, board_id: int, boot: str, at: float) -> None:

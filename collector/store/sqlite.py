@@ -57,8 +57,8 @@ from listenpost.collector.store import (
 )
 from listenpost.collector.store.common import (
     BOARD_COLS,
+    HISTORY_TABLES,
     LATEST_TELEMETRY_SQL,
-    SEQ_HOLES_SQL,
     TELEMETRY_FIELDS,
     batch_tag_names,
     board_from_row,
@@ -66,9 +66,13 @@ from listenpost.collector.store.common import (
     check_batch,
     check_clock_sample,
     constraint_field,
+    cover_seqs,
+    delete_history_in_chunks,
     delete_in_chunks,
+    gap_epoch,
     json_text,
     reading_tag_ids,
+    seq_intervals,
 )
 from listenpost.collector.store.migrations import migrate_sqlite
 
@@ -585,6 +589,10 @@ class SqliteStore:
     def _insert_batch(self, con: sqlite3.Connection, b: IngestBatch, tag_ids: dict[str, int]) -> IngestResult:
         offset_dd = check_batch(b)
         bid = self._board_id(con, b.board)
+        if b.clock is not None:
+            # The exchange is a measurement of its own, kept whatever the batch turns out to be (stored,
+            # duplicate, conflict), in the batch's savepoint: one commit, and gone with a refused batch.
+            _insert_clock_sample(con, bid, b.clock)
         row = con.execute(
             "SELECT digest FROM batches WHERE board_id = ? AND epoch = ? AND seq = ?", (bid, b.epoch, b.seq)
         ).fetchone()
@@ -595,7 +603,7 @@ class SqliteStore:
         gap = b.gap or {}
         cur = con.execute(
             "INSERT INTO batches (board_id, epoch, seq, digest, boot, n, received_at, offset_dd, gap_first, "
-            "gap_last, gap_readings, gap_reason) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            "gap_last, gap_readings, gap_reason, gap_epoch) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
             (
                 bid,
                 b.epoch,
@@ -609,9 +617,12 @@ class SqliteStore:
                 gap.get("last_seq"),
                 gap.get("readings"),
                 gap.get("reason"),
+                gap_epoch(b) if b.gap is not None else None,
             ),
         )
         batch_id = cur.lastrowid
+        for epoch, lo, hi in seq_intervals(b):
+            _account_seqs(con, bid, epoch, lo, hi)
         if b.n:
             _insert_readings(
                 con,
@@ -678,11 +689,12 @@ class SqliteStore:
         return {r[0]: TagTelemetry(*r) for r in rows}
 
     async def seq_holes(self, board: str | None = None) -> list[SeqHole]:
-        if board is None:
-            rows = await self._query(SEQ_HOLES_SQL.format(board="1 = 1"))
-        else:
-            cond = "board_id = (SELECT id FROM boards WHERE name = ?)"
-            rows = await self._query(SEQ_HOLES_SQL.format(board=cond), (board, board))
+        cond, params = ("", ()) if board is None else ("WHERE b.name = ?", (board,))
+        rows = await self._query(
+            "SELECT b.name, h.epoch, h.first_seq, h.last_seq FROM seq_holes h JOIN boards b ON b.id = h.board_id "
+            f"{cond} ORDER BY b.name, h.epoch, h.first_seq",
+            params,
+        )
         return [SeqHole(*r) for r in rows]
 
     # -- clock, heartbeats, events -----------------------------------------------------------------------
@@ -692,12 +704,7 @@ class SqliteStore:
         check_clock_sample(s)
 
         def tx(con: sqlite3.Connection) -> None:
-            bid = self._board_id(con, s.board)
-            con.execute(
-                "INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES (?, ?, ?, ?, ?, ?)",
-                (bid, s.boot, s.t1, s.t2, s.t3, s.t4),
-            )
-            _note_boot(con, bid, s.boot, s.t2)
+            _insert_clock_sample(con, self._board_id(con, s.board), s)
 
         await self._wtx(tx)
 
@@ -740,10 +747,11 @@ class SqliteStore:
         return [Heartbeat(board, at, boot, json.loads(stats)) for at, boot, stats in rows]
 
     async def latest_heartbeats(self) -> dict[str, Heartbeat]:
+        # One index probe per board (heartbeats_board_at ends in the rowid, so "at DESC, id DESC" is its
+        # order): the cost follows the number of boards, not the history kept.
         rows = await self._query(
-            "SELECT b.name, h.at, h.boot, h.stats FROM (SELECT *, row_number() OVER "
-            "(PARTITION BY board_id ORDER BY at DESC, id DESC) AS k FROM heartbeats) h "
-            "JOIN boards b ON b.id = h.board_id WHERE h.k = 1"
+            "SELECT b.name, h.at, h.boot, h.stats FROM boards b JOIN heartbeats h ON h.id = "
+            "(SELECT k.id FROM heartbeats k WHERE k.board_id = b.id ORDER BY k.at DESC, k.id DESC LIMIT 1)"
         )
         return {name: Heartbeat(name, at, boot, json.loads(stats)) for name, at, boot, stats in rows}
 
@@ -846,6 +854,27 @@ class SqliteStore:
         )
         return total
 
+    async def delete_history_before(
+        self,
+        *,
+        heartbeats: float | None = None,
+        clock_samples: float | None = None,
+        batches: float | None = None,
+        chunk: int = 10_000,
+        max_chunks: int | None = None,
+    ) -> dict[str, int]:
+        async def delete_chunk(table: str, cut: float) -> int:
+            sql = (
+                f"DELETE FROM {table} WHERE rowid IN (SELECT x.rowid FROM {table} x "
+                f"WHERE {HISTORY_TABLES[table].format(cut='?')} LIMIT ?)"
+            )
+            return await self._wtx(lambda con: con.execute(sql, (cut, chunk)).rowcount)
+
+        cuts = {"heartbeats": heartbeats, "clock_samples": clock_samples, "batches": batches}
+        done = await delete_history_in_chunks(delete_chunk, cuts, chunk, max_chunks)
+        log.info("history_deleted", backend="sqlite", chunk=chunk, max_chunks=max_chunks, **done)
+        return done
+
     @contextlib.asynccontextmanager
     async def exclusive(self, name: str) -> AsyncIterator[bool]:
         """In-process lock: one collector per SQLite file, so that is all the exclusion needed."""
@@ -909,6 +938,51 @@ def _insert_readings(con: sqlite3.Connection, n: int, flat: Iterator[Any]) -> No
             )
         con.execute(_READINGS_SQL[k], params)
         left -= k
+
+
+def _insert_clock_sample(con: sqlite3.Connection, board_id: int, s: ClockSample) -> None:
+    con.execute(
+        "INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES (?, ?, ?, ?, ?, ?)",
+        (board_id, s.boot, s.t1, s.t2, s.t3, s.t4),
+    )
+    _note_boot(con, board_id, s.boot, s.t2)
+
+
+def _account_seqs(con: sqlite3.Connection, board_id: int, epoch: str, lo: int, hi: int) -> None:
+    """Fold the covered range [lo, hi] into the (board, epoch)'s span and holes (common.cover_seqs)."""
+    row = con.execute(
+        "SELECT first_seq, reach FROM seq_reach WHERE board_id = ? AND epoch = ?", (board_id, epoch)
+    ).fetchone()
+    if row is None:
+        con.execute(
+            "INSERT INTO seq_reach (board_id, epoch, first_seq, reach) VALUES (?, ?, ?, ?)",
+            (board_id, epoch, lo, hi),
+        )
+        return
+    first, reach = row
+    if lo == reach + 1:  # the common case: the next seq, right after the span
+        con.execute("UPDATE seq_reach SET reach = ? WHERE board_id = ? AND epoch = ?", (hi, board_id, epoch))
+        return
+    old: list[tuple[int, int]] = []
+    if lo <= reach and hi >= first:  # a late batch or a gap record inside the span: it may fill holes
+        old = con.execute(
+            "SELECT first_seq, last_seq FROM seq_holes WHERE board_id = ? AND epoch = ? AND first_seq <= ? "
+            "AND last_seq >= ?",
+            (board_id, epoch, hi, lo),
+        ).fetchall()
+    first, reach, new = cover_seqs(first, reach, lo, hi, old)
+    con.executemany(
+        "DELETE FROM seq_holes WHERE board_id = ? AND epoch = ? AND first_seq = ?",
+        [(board_id, epoch, a) for a, _ in old],
+    )
+    con.executemany(
+        "INSERT INTO seq_holes (board_id, epoch, first_seq, last_seq) VALUES (?, ?, ?, ?)",
+        [(board_id, epoch, a, b) for a, b in new],
+    )
+    con.execute(
+        "UPDATE seq_reach SET first_seq = ?, reach = ? WHERE board_id = ? AND epoch = ?",
+        (first, reach, board_id, epoch),
+    )
 
 
 def _note_boot(con: sqlite3.Connection, board_id: int, boot: str, at: float) -> None:
