@@ -91,6 +91,12 @@ class CollectorSettings:
     """Raw readings older than this are deleted by the monitor (0 keeps them forever)."""
     retention_chunk: int = 10_000
     """Rows deleted per statement, so retention never holds a long lock."""
+    retention_heartbeat_days: float = 7.0
+    """Heartbeats older than this go (each board's newest stays); 0 keeps them."""
+    retention_clock_sample_days: float = 7.0
+    """Clock samples older than this go (each boot's newest stays); 0 keeps them."""
+    retention_batch_key_days: float = 120.0
+    """Batch keys (dedup) older than this go, never before a day past the readings; 0 keeps them."""
     liveness: dict[str, Any] = field(default_factory=dict)
     """Overrides of `listenpost.collector.models.liveness.LivenessSettings` fields."""
     code_lifetime_seconds: float = 72 * 3600.0
@@ -177,6 +183,9 @@ def parse_settings(data: Any, origin: str = "collector.yaml", **overrides: Any) 
     ret = top.section("retention")
     retention_days = ret.get("days", float, 90.0, non_negative)
     retention_chunk = ret.get("chunk", int, 10_000, positive)
+    retention_heartbeat_days = ret.get("heartbeat_days", float, 7.0, non_negative)
+    retention_clock_sample_days = ret.get("clock_sample_days", float, 7.0, non_negative)
+    retention_batch_key_days = ret.get("batch_key_days", float, 120.0, non_negative)
     ret.done()
 
     liveness = _liveness_overrides(top.section("liveness"))
@@ -230,6 +239,9 @@ def parse_settings(data: Any, origin: str = "collector.yaml", **overrides: Any) 
         webhook=webhook,
         retention_days=retention_days,
         retention_chunk=retention_chunk,
+        retention_heartbeat_days=retention_heartbeat_days,
+        retention_clock_sample_days=retention_clock_sample_days,
+        retention_batch_key_days=retention_batch_key_days,
         liveness=liveness,
         code_lifetime_seconds=code_hours * 3600.0,
         limits=limits,

@@ -9,7 +9,8 @@ database, so each board is evaluated once per round fleet-wide):
    ``board_state_changed`` and queued for the webhook;
 2. loss: seq holes (not covered by a batch or a gap record) that persist past a grace period
    become ``loss`` events, once each;
-3. retention: raw readings older than ``retention.days`` go, in bounded chunks.
+3. retention: raw readings older than ``retention.days`` go, then heartbeats, clock samples and batch
+   keys past their own ages (`history_cuts`), all in bounded chunks.
 
 A collector that does not hold the lock follows the stored ``state_changed`` events instead, so every
 collector's page and ``/metrics`` show the same states.
@@ -83,6 +84,8 @@ class RoundReport:
     changes: list[Event] = field(default_factory=list)
     losses: list[Event] = field(default_factory=list)
     deleted: int = 0
+    history_deleted: dict[str, int] = field(default_factory=dict)
+    """Heartbeats, clock samples and batch keys deleted this round, by table."""
 
 
 class Monitor:
@@ -362,17 +365,26 @@ class Monitor:
 
     async def _retention(self, report: RoundReport) -> None:
         now = self.clock.time()
-        if self.settings.retention_days <= 0:
-            return
         if not self._retention_more and now - self._last_retention < RETENTION_EVERY_SECONDS:
             return
         if not self._retention_more:
             self._last_retention = now
-        chunk = self.settings.retention_chunk
-        report.deleted = await self.store.delete_readings_before(
-            now - self.settings.retention_days * 86400.0, chunk=chunk, max_chunks=RETENTION_CHUNKS_PER_ROUND
-        )
-        self._retention_more = report.deleted >= chunk * RETENTION_CHUNKS_PER_ROUND
+        s, chunk = self.settings, self.settings.retention_chunk
+        more = False
+        if s.retention_days > 0:
+            report.deleted = await self.store.delete_readings_before(
+                now - s.retention_days * 86400.0, chunk=chunk, max_chunks=RETENTION_CHUNKS_PER_ROUND
+            )
+            more = report.deleted >= chunk * RETENTION_CHUNKS_PER_ROUND
+        cuts = history_cuts(s, now, readings_backlog=more)
+        if any(c is not None for c in cuts.values()):
+            report.history_deleted = await self.store.delete_history_before(
+                **cuts, chunk=chunk, max_chunks=RETENTION_CHUNKS_PER_ROUND
+            )
+            more = more or any(
+                n >= chunk * RETENTION_CHUNKS_PER_ROUND for n in report.history_deleted.values()
+            )
+        self._retention_more = more
 
     # ------------------------------------------------------------ webhook
 
@@ -470,6 +482,32 @@ class Monitor:
             attempts=attempt,
         )
         return False
+
+
+def history_cuts(
+    settings: CollectorSettings, now: float, *, readings_backlog: bool
+) -> dict[str, float | None]:
+    """
+    The `Store.delete_history_before` cuts the retention settings give at ``now`` (``None``: keep).
+
+    Batch keys go only a day past their readings' cut, and not while old readings are still being
+    deleted: the export joins a reading to its batch, and telemetry rows point at theirs.
+    """
+
+    def cut(days: float) -> float | None:
+        return now - days * 86400.0 if days > 0 else None
+
+    batches = cut(settings.retention_batch_key_days)
+    if batches is not None:
+        if settings.retention_days <= 0 or readings_backlog:
+            batches = None
+        else:
+            batches = min(batches, now - (settings.retention_days + 1.0) * 86400.0)
+    return {
+        "heartbeats": cut(settings.retention_heartbeat_days),
+        "clock_samples": cut(settings.retention_clock_sample_days),
+        "batches": batches,
+    }
 
 
 def _value(state: Any) -> Any:

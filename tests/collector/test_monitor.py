@@ -362,3 +362,35 @@ async def test_retention_only_by_the_lock_holder(aiohttp_client, tmp_path, clock
         0,
     ]  # 2 chunks of 100 per round
     assert await _stored(client) == 50
+
+
+async def test_retention_ages_out_history_but_batch_keys_only_after_their_readings(
+    any_store, aiohttp_client, tmp_path, clock
+):
+    """Heartbeats and clock samples past their age go (the newest stays); batch keys go past theirs but
+    never before a day after their readings' cut, and not while old readings are still being deleted."""
+    from listenpost.collector.monitor import history_cuts
+    from listenpost.collector.store import ClockSample, Heartbeat
+    from tests.collector.test_store import add_boards, make_batch
+
+    retention = {"days": 90, "chunk": 100, "heartbeat_days": 7, "clock_sample_days": 7, "batch_key_days": 30}
+    client = await make_client(aiohttp_client, tmp_path, clock, store=any_store, retention=retention)
+    store, monitor = client.app[STORE], client.app[MONITOR]
+    now = clock.time()
+    await add_boards(store, "g3-a")
+    for days in (100, 40, 10, 1):
+        at = now - days * 86400
+        await store.add_heartbeat(Heartbeat("g3-a", at, "boot-1", {}))
+        await store.add_clock_sample(ClockSample("g3-a", "boot-1", 1.0, at, at, 1.1))
+        await store.ingest(make_batch("g3-a", days, n=1, t0=at - days, received_at=at))
+    await store.ingest(make_batch("g3-a", 200, n=1, t0=now - 1, received_at=now))
+    report = await monitor.run_once()
+    assert report.history_deleted == {"heartbeats": 3, "clock_samples": 3, "batches": 1}
+    assert [h.at for h in await store.heartbeats("g3-a", 0.0)] == [now - 86400]
+    assert len(await store.clock_samples("g3-a", "boot-1")) == 1
+    assert (await store.ingest(make_batch("g3-a", 40, n=1, t0=now - 40 * 86400 - 40))).status.value == (
+        "duplicate"  # 40 days old: past 30, but not past the readings' 90 (+1)
+    )
+    s = monitor.settings
+    assert history_cuts(s, now, readings_backlog=True)["batches"] is None
+    assert history_cuts(s, now, readings_backlog=False)["batches"] == now - 91 * 86400
