@@ -2,13 +2,15 @@
 ``listenpost collector ...``: ``serve`` runs the service; every other command is a thin client of the
 admin API over HTTP (``--collector URL``; admin token from ``--state-dir`` or ``$LISTENPOST_ADMIN_TOKEN``).
 
-Exit codes: 0 ok · 1 the collector is unreachable, refused the token, or failed · 2 bad usage or input.
+Exit codes: 0 ok · 1 the collector is unreachable, refused the token, or failed · 2 bad usage or input ·
+3 `export` matched no readings (nothing written).
 """
 
 from __future__ import annotations
 
 import argparse
 import asyncio
+import contextlib
 import csv
 import io
 import json
@@ -227,6 +229,11 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
     ex.add_argument("--out", type=Path, required=True, metavar="FILE", help="written whole or not at all")
     ex.add_argument("--board", action="append", metavar="NAME", help="only these boards (repeatable)")
     ex.add_argument("--tag", action="append", metavar="ID", help="only these tags (repeatable)")
+    ex.epilog = (
+        "The export runs as a job on the collector; this command waits for it as long as it runs "
+        "(--timeout bounds each request, not the whole export) and shows progress on a terminal. "
+        f"Exit status {EXIT_NO_READINGS}: no reading matched, nothing written."
+    )
     ex.set_defaults(func=_export)
 
     cal = client(
@@ -822,6 +829,12 @@ def _status(args: argparse.Namespace) -> int:
     return 0
 
 
+EXIT_NO_READINGS = 3
+"""``export``: no reading matched the range and filters; nothing was written."""
+EXPORT_POLL_S = 10.0
+"""Longest the collector holds one export poll (less when --timeout is shorter)."""
+
+
 def _export(args: argparse.Namespace) -> int:
     t_from, t_to = parse_time(args.t_from, "--from"), parse_time(args.t_to, "--to")
     if t_to <= t_from:
@@ -830,15 +843,74 @@ def _export(args: argparse.Namespace) -> int:
         raise ConfigError("--bin: must be > 0 seconds")
     params = [("from", repr(t_from)), ("to", repr(t_to)), ("bin", repr(args.bin)), ("format", args.format)]
     params += [("board", b) for b in args.board or []] + [("tag", t) for t in args.tag or []]
-    data = request(args, "GET", "/v1/admin/export", params=params, raw=True)
-    tmp = args.out.with_name(args.out.name + ".part")
-    try:
-        tmp.write_bytes(data)
-        os.replace(tmp, args.out)  # a half-written export never carries the final name
-    except OSError as e:
-        raise AdminError(f"{args.out}: cannot write: {e.strerror or e}") from e
-    _out(f"wrote {args.out} ({len(data):,} bytes, {args.format})")
+    return asyncio.run(_export_job(args, params))
+
+
+async def _export_job(args: argparse.Namespace, params: list[tuple[str, str]]) -> int:
+    """Start the export, poll it until it ends (each poll under --timeout), then download the file."""
+    job = await _request(args, "POST", "/v1/admin/exports", body=None, params=params, raw=False)
+    wait = f"{max(0.1, min(EXPORT_POLL_S, args.timeout / 2)):g}"  # answered well inside our timeout
+    tty = sys.stderr.isatty()
+    while job["state"] == "running":
+        job = await _request(
+            args, "GET", f"/v1/admin/exports/{job['job']}", body=None, params=[("wait", wait)], raw=False
+        )
+        if tty:
+            share = "" if job["progress"] is None else f"{job['progress']:4.0%} · "
+            sys.stderr.write(f"\rexport: {share}{job['rows_scanned']:,} rows scanned ")
+            sys.stderr.flush()
+    if tty:
+        sys.stderr.write("\n")
+    if job["state"] != "done":
+        err = job.get("error") or {}
+        text = err.get("message") or "the export failed"
+        if err.get("code") == "bad_field":
+            raise ConfigError(f"the collector rejected the request: {text}")
+        raise AdminError(f"the export failed: {text}")
+    if job["readings"] == 0:
+        sys.stderr.write(
+            f"listenpost: no readings matched {args.t_from} .. {args.t_to}"
+            + (f" for boards {', '.join(args.board)}" if args.board else "")
+            + (f" for tags {', '.join(args.tag)}" if args.tag else "")
+            + f"; nothing written to {args.out} (exit {EXIT_NO_READINGS})\n"
+        )
+        return EXIT_NO_READINGS
+    size = await _download(args, f"/v1/admin/exports/{job['job']}/file", args.out)
+    _out(f"wrote {args.out} ({size:,} bytes, {args.format}, {job['readings']:,} readings)")
     return 0
+
+
+async def _download(args: argparse.Namespace, path: str, out: Path) -> int:
+    """Stream a file to ``out`` (via ``out.part``, renamed when whole); --timeout bounds each read."""
+    import aiohttp
+
+    url = collector_url(args.collector) + path
+    timeout = aiohttp.ClientTimeout(total=None, connect=min(args.timeout, 10.0), sock_read=args.timeout)
+    tmp = out.with_name(out.name + ".part")
+    size = 0
+    try:
+        async with (
+            aiohttp.ClientSession(timeout=timeout) as session,
+            session.get(url, headers={"Authorization": f"Bearer {admin_token(args)}"}) as resp,
+        ):
+            if resp.status >= 400:
+                _raise_for(resp.status, await resp.read(), url, collector_url(args.collector))
+            try:
+                with tmp.open("wb") as f:
+                    async for piece in resp.content.iter_chunked(1 << 20):
+                        f.write(piece)
+                        size += len(piece)
+                os.replace(tmp, out)  # a half-written export never carries the final name
+            except OSError as e:
+                raise AdminError(f"{out}: cannot write: {e.strerror or e}") from e
+    except (aiohttp.ClientConnectionError, aiohttp.InvalidURL) as e:
+        raise AdminError(f"cannot reach the collector at {args.collector}: {e}") from e
+    except TimeoutError as e:
+        raise AdminError(f"the collector at {args.collector} sent nothing for {args.timeout:g} s") from e
+    finally:
+        with contextlib.suppress(OSError):
+            tmp.unlink()
+    return size
 
 
 def _events(args: argparse.Namespace) -> int:

@@ -7,9 +7,11 @@ The ``listenpost collector ...`` admin commands are thin clients of these routes
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import dataclasses
 import math
 import re
+import secrets
 import tempfile
 from pathlib import Path
 from typing import Any
@@ -29,7 +31,15 @@ from listenpost.collector.http.auth import (
 from listenpost.collector.http.middlewares import ApiError, bad_field
 from listenpost.collector.provision import FLOOR_MAX, ROOM_MAX, BadLabel, check_board_name, check_label
 from listenpost.collector.state import CLOCK, RUNTIME, SETTINGS, STORE
-from listenpost.collector.store import Board, Calibration, Enrollment, Event
+from listenpost.collector.store import (
+    SCAN_CHUNK_ROWS,
+    Board,
+    Calibration,
+    Enrollment,
+    Event,
+    ReadingChunk,
+    StoreUnavailable,
+)
 from listenpost.core.errors import DecodeError
 from listenpost.core.identity import BUILTIN_KINDS, parse_tag_id
 from listenpost.core.settings import BOARD_NAME
@@ -330,11 +340,19 @@ def _query_time(request: web.Request, name: str) -> float:
     return v
 
 
-async def export(request: web.Request) -> web.StreamResponse:
-    """``GET /v1/admin/export?from=&to=&bin=&format=csv|npz[&board=..][&tag=..]``: binned calibrated RSSI."""
-    require_admin(request)
-    from listenpost.collector.models.export import bin_readings, write_csv, write_npz
+@dataclasses.dataclass
+class ExportRequest:
+    """A checked export request."""
 
+    t_from: float
+    t_to: float
+    bin_s: float
+    fmt: str
+    boards: list[str] | None
+    tags: list[str] | None
+
+
+def _export_request(request: web.Request) -> ExportRequest:
     t_from, t_to = _query_time(request, "from"), _query_time(request, "to")
     if t_to <= t_from:
         raise bad_field("to", "must be after from")
@@ -356,33 +374,231 @@ async def export(request: web.Request) -> web.StreamResponse:
             tags.append(parse_tag_id(text))
         except DecodeError as e:
             raise bad_field("tag", str(e)) from e
-    store = request.app[STORE]
-    rows = await store.readings(t_from, t_to, boards=boards, tags=tags or None)
-    all_boards = boards or sorted(b.name for b in await store.list_boards())
-    all_tags = tags or sorted(set(rows.tag.tolist()) | set(await store.list_tags()))
+    return ExportRequest(t_from, t_to, bin_s, fmt, boards, tags or None)
 
-    try:  # size and name checks are cheap: do them here so a refusal is a 400, not a 500
-        table = bin_readings(rows, t_from, t_to, bin_s, all_boards, all_tags)
+
+MAX_RUNNING_EXPORTS = 2
+"""Exports binning at once; each holds its table (up to `max_cells`) in memory."""
+KEEP_FINISHED_EXPORTS = 8
+"""Finished exports whose files are kept for download; the oldest goes first."""
+MAX_EXPORT_WAIT_S = 30.0
+"""Longest one ``GET /v1/admin/exports/{job}?wait=`` holds its answer."""
+EXPORT_CHUNK_ROWS = SCAN_CHUNK_ROWS
+"""Rows binned per step: the export holds its table plus one chunk of this many rows."""
+_JOB_ID = re.compile(r"[A-Za-z0-9_-]{22}")
+
+
+@dataclasses.dataclass(eq=False)
+class ExportJob:
+    """One export binning in a worker thread; its file goes to ``folder`` when done."""
+
+    id: str
+    ask: ExportRequest
+    folder: tempfile.TemporaryDirectory[str]
+    state: str = "running"
+    """``running``, ``done`` or ``failed``."""
+    rows_seen: int = 0
+    readings: int = 0
+    progress: float | None = None
+    error: dict[str, Any] | None = None
+    path: Path | None = None
+    finished: asyncio.Event = dataclasses.field(default_factory=asyncio.Event)
+    task: asyncio.Task[None] | None = None
+
+    def as_json(self) -> dict[str, Any]:
+        return {
+            "job": self.id,
+            "state": self.state,
+            "format": self.ask.fmt,
+            "rows_scanned": self.rows_seen,
+            "readings": self.readings,
+            "progress": self.progress,
+            "error": self.error,
+        }
+
+
+class ExportJobs:
+    """The collector's export jobs: started by a request, run as tasks, kept until pruned or shutdown."""
+
+    def __init__(self) -> None:
+        self.jobs: dict[str, ExportJob] = {}
+
+    def running(self) -> int:
+        return sum(1 for j in self.jobs.values() if j.state == "running")
+
+    def prune(self) -> None:
+        done = [j for j in self.jobs.values() if j.state != "running"]
+        for job in done[: max(0, len(done) - KEEP_FINISHED_EXPORTS + 1)]:
+            del self.jobs[job.id]
+            job.folder.cleanup()
+
+    async def close(self) -> None:
+        tasks = [j.task for j in self.jobs.values() if j.task is not None and not j.task.done()]
+        for t in tasks:
+            t.cancel()
+        await asyncio.gather(*tasks, return_exceptions=True)
+        for job in self.jobs.values():
+            job.folder.cleanup()
+        self.jobs.clear()
+
+
+EXPORT_JOBS = web.AppKey("export_jobs", ExportJobs)
+
+
+async def _run_export(app: web.Application, job: ExportJob) -> None:
+    """Scan, bin and write in worker threads; the event loop only starts them and records progress."""
+    from listenpost.collector.models.export import TableBuilder, write_csv, write_npz
+
+    ask, store = job.ask, app[STORE]
+    try:
+        boards = ask.boards or sorted(b.name for b in await store.list_boards())
+        builder = TableBuilder(
+            ask.t_from,
+            ask.t_to,
+            ask.bin_s,
+            boards,
+            tags=ask.tags,
+            base_tags=() if ask.tags else await store.list_tags(),
+        )
+
+        def sink(chunk: ReadingChunk) -> None:
+            builder.add(chunk)  # in the store's worker thread, one chunk at a time
+            job.rows_seen, job.readings, job.progress = builder.rows_seen, builder.readings, chunk.progress
+
+        await store.scan_readings(
+            ask.t_from, ask.t_to, sink, boards=ask.boards, tags=ask.tags, chunk_rows=EXPORT_CHUNK_ROWS
+        )
+
+        def render() -> Path:
+            table = builder.table()
+            path = Path(job.folder.name) / f"listenpost-export.{ask.fmt}"
+            (write_csv if ask.fmt == "csv" else write_npz)(table, path)
+            return path
+
+        job.path = await asyncio.to_thread(render)
+        job.readings, job.progress, job.state = builder.readings, 1.0, "done"
+        log.info("export_done", job=job.id, readings=job.readings, rows_scanned=job.rows_seen, format=ask.fmt)
+    except asyncio.CancelledError:
+        job.state, job.error = "failed", {"code": "cancelled", "message": "the collector is shutting down"}
+        raise
+    except ValueError as e:  # the table grew past max_cells: a request to narrow, not a fault
+        job.state, job.error = "failed", {"code": "bad_field", "field": "bin", "message": f"bin: {e}"}
+    except StoreUnavailable as e:
+        log.warning("export_failed", job=job.id, error=str(e))
+        job.state = "failed"
+        job.error = {"code": "store_unavailable", "message": "the database is not available now; retry later"}
+    except Exception:
+        log.exception("export_failed", job=job.id)
+        job.state, job.error = (
+            "failed",
+            {"code": "internal", "message": "internal error; see the collector log"},
+        )
+    finally:
+        job.finished.set()
+
+
+async def _start_export(request: web.Request) -> ExportJob:
+    require_admin(request)
+    ask = _export_request(request)
+    from listenpost.collector.models.export import TableBuilder
+
+    jobs = request.app[EXPORT_JOBS]
+    if jobs.running() >= MAX_RUNNING_EXPORTS:
+        raise ApiError(
+            503,
+            "busy",
+            f"{MAX_RUNNING_EXPORTS} exports are running; retry later",
+            headers={"Retry-After": "10"},
+        )
+    store = request.app[STORE]
+    boards = ask.boards or sorted(b.name for b in await store.list_boards())
+    try:  # name and size checks are cheap: do them here so a refusal is a 400, not a failed job
+        TableBuilder(ask.t_from, ask.t_to, ask.bin_s, boards, tags=ask.tags or await store.list_tags())
     except ValueError as e:
         raise bad_field("bin", str(e)) from e
+    jobs.prune()
+    job = ExportJob(secrets.token_urlsafe(16), ask, tempfile.TemporaryDirectory(prefix="listenpost-export-"))
+    jobs.jobs[job.id] = job
+    job.task = asyncio.create_task(_run_export(request.app, job), name=f"export-{job.id}")
+    log.info("export_started", job=job.id, t_from=ask.t_from, t_to=ask.t_to, bin_s=ask.bin_s, format=ask.fmt)
+    return job
 
-    def render() -> bytes:
-        with tempfile.TemporaryDirectory() as d:
-            path = Path(d) / f"export.{fmt}"
-            (write_csv if fmt == "csv" else write_npz)(table, path)
-            return path.read_bytes()
 
-    # Binning and compression are CPU work: keep the event loop free for boards meanwhile.
-    data = await asyncio.get_running_loop().run_in_executor(None, render)
-    ctype = "text/csv" if fmt == "csv" else "application/octet-stream"
-    return web.Response(
-        body=data,
-        content_type=ctype,
+def _job(request: web.Request) -> ExportJob:
+    require_admin(request)
+    job_id = request.match_info["job"]
+    job = request.app[EXPORT_JOBS].jobs.get(job_id) if _JOB_ID.fullmatch(job_id) else None
+    if job is None:
+        raise ApiError(
+            404, "unknown_export", f"no export job {job_id[:40]!r} (finished ones are kept a while)"
+        )
+    return job
+
+
+def _export_file(job: ExportJob) -> web.StreamResponse:
+    assert job.path is not None
+    return web.FileResponse(
+        job.path,
         headers={
-            "Content-Disposition": f'attachment; filename="listenpost-export.{fmt}"',
-            "X-Readings": str(len(rows.tag)),
+            "Content-Type": "text/csv" if job.ask.fmt == "csv" else "application/octet-stream",
+            "Content-Disposition": f'attachment; filename="listenpost-export.{job.ask.fmt}"',
+            "X-Readings": str(job.readings),
         },
     )
+
+
+def _failed(job: ExportJob) -> ApiError:
+    err = job.error or {}
+    status = {"bad_field": 400, "store_unavailable": 503}.get(err.get("code", ""), 500)
+    return ApiError(
+        status, err.get("code", "internal"), err.get("message", "export failed"), field=err.get("field")
+    )
+
+
+async def export(request: web.Request) -> web.StreamResponse:
+    """``GET /v1/admin/export?from=&to=&bin=&format=csv|npz[&board=..][&tag=..]``: binned calibrated RSSI.
+
+    Runs as an export job and answers when it is done: a client with a total timeout shorter than the
+    export gives up; ``POST /v1/admin/exports`` plus polling does not."""
+    job = await _start_export(request)
+    await job.finished.wait()
+    if job.state != "done":
+        raise _failed(job)
+    return _export_file(job)
+
+
+async def start_export(request: web.Request) -> web.Response:
+    """``POST /v1/admin/exports?<the export's query>``: start an export job; 202 with its id and state."""
+    job = await _start_export(request)
+    return web.json_response(job.as_json(), status=202)
+
+
+async def export_status(request: web.Request) -> web.Response:
+    """``GET /v1/admin/exports/{job}[?wait=S]``: the job's state; with ``wait``, answers when the job ends or
+    after S seconds (at most `MAX_EXPORT_WAIT_S`), whichever comes first (a long poll)."""
+    job = _job(request)
+    raw = request.query.get("wait", "0")
+    try:
+        wait = float(raw)
+    except ValueError:
+        raise bad_field("wait", f"must be seconds, got {raw[:40]!r}") from None
+    if not 0 <= wait <= MAX_EXPORT_WAIT_S:  # also refuses nan
+        raise bad_field("wait", f"must be 0..{MAX_EXPORT_WAIT_S:g} seconds")
+    if wait and job.state == "running":
+        # A bound on holding a connection, like the client's own timeouts: loop time, not the service clock.
+        with contextlib.suppress(TimeoutError):
+            await asyncio.wait_for(job.finished.wait(), wait)
+    return web.json_response(job.as_json())
+
+
+async def export_result(request: web.Request) -> web.StreamResponse:
+    """``GET /v1/admin/exports/{job}/file``: the finished export's file (409 while it runs)."""
+    job = _job(request)
+    if job.state == "running":
+        raise ApiError(409, "export_running", "the export is still running; poll its state first")
+    if job.state != "done":
+        raise _failed(job)
+    return _export_file(job)
 
 
 def _calibration_json(c: Calibration) -> dict[str, Any]:
@@ -529,4 +745,13 @@ def add_routes(app: web.Application) -> None:
     r.add_post("/v1/admin/tags/retire", retire_tags)
     r.add_get("/v1/admin/events", events, allow_head=False)
     r.add_get("/v1/admin/export", export, allow_head=False)
+    r.add_post("/v1/admin/exports", start_export)
+    r.add_get("/v1/admin/exports/{job}", export_status, allow_head=False)
+    r.add_get("/v1/admin/exports/{job}/file", export_result, allow_head=False)
+    app[EXPORT_JOBS] = ExportJobs()
+
+    async def stop_exports(app: web.Application) -> None:
+        await app[EXPORT_JOBS].close()
+
+    app.on_shutdown.append(stop_exports)  # before the store closes (cleanup_ctx)
     r.add_post("/v1/admin/walktest", walktest)

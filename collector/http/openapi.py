@@ -105,6 +105,32 @@ def _errors(*codes: int) -> dict[str, Any]:
 
 def spec() -> dict[str, Any]:
     """The OpenAPI document."""
+    export_params = [
+        {"name": n, "in": "query", "required": n in ("from", "to"), "schema": s}
+        for n, s in (
+            ("from", UNIX_S),
+            ("to", UNIX_S),
+            ("bin", {"type": "number", "exclusiveMinimum": True, "minimum": 0, "default": 1}),
+            ("format", {"type": "string", "enum": ["csv", "npz"], "default": "csv"}),
+            ("board", {"type": "array", "items": BOARD}),
+            ("tag", {"type": "array", "items": TAG}),
+        )
+    ]
+    export_file = {
+        "description": "the table",
+        "content": {"text/csv": {"schema": STR}, "application/octet-stream": {"schema": STR}},
+    }
+    nullable_num = {"type": "number", "nullable": True}
+    export_job = _obj(
+        ["job", "state", "format", "rows_scanned", "readings", "progress", "error"],
+        job=STR,
+        state={"type": "string", "enum": ["running", "done", "failed"]},
+        format={"type": "string", "enum": ["csv", "npz"]},
+        rows_scanned=INT,
+        readings=INT,
+        progress=nullable_num,
+        error={"type": "object", "nullable": True},
+    )
     clock = _obj(["t1", "t2", "t3", "t4"], t1=NUM, t2=NUM, t3=NUM, t4=NUM)
     paths: dict[str, Any] = {
         "/v1/enroll": {
@@ -395,25 +421,46 @@ def spec() -> dict[str, Any]:
                 "summary": "Binned calibrated RSSI (tag × time bin × board) as CSV or .npz",
                 "security": ADMIN_AUTH,
                 "tags": ["admin"],
-                "description": "to must be after from and at most 31 days later; at most 10 million bins.",
+                "description": "to must be after from and at most 31 days later; at most 10 million bins. "
+                "Answers when the export is done; POST /v1/admin/exports runs it as a job to poll instead.",
+                "parameters": export_params,
+                "responses": {"200": export_file, **_errors(400, 401)},
+            }
+        },
+        "/v1/admin/exports": {
+            "post": {
+                "summary": "Start an export job (the query of GET /v1/admin/export)",
+                "security": ADMIN_AUTH,
+                "tags": ["admin"],
+                "description": "to must be after from and at most 31 days later; at most 10 million bins. "
+                "503 while the most exports allowed at once are running.",
+                "parameters": export_params,
+                "responses": {"202": _json(export_job, "started"), **_errors(400, 401)},
+            }
+        },
+        "/v1/admin/exports/{job}": {
+            "get": {
+                "summary": "An export job's state; with wait, a long poll until it ends",
+                "security": ADMIN_AUTH,
+                "tags": ["admin"],
                 "parameters": [
-                    {"name": n, "in": "query", "required": n in ("from", "to"), "schema": s}
-                    for n, s in (
-                        ("from", UNIX_S),
-                        ("to", UNIX_S),
-                        ("bin", {"type": "number", "exclusiveMinimum": True, "minimum": 0, "default": 1}),
-                        ("format", {"type": "string", "enum": ["csv", "npz"], "default": "csv"}),
-                        ("board", {"type": "array", "items": BOARD}),
-                        ("tag", {"type": "array", "items": TAG}),
-                    )
-                ],
-                "responses": {
-                    "200": {
-                        "description": "the table",
-                        "content": {"text/csv": {"schema": STR}, "application/octet-stream": {"schema": STR}},
+                    {"name": "job", "in": "path", "required": True, "schema": STR},
+                    {
+                        "name": "wait",
+                        "in": "query",
+                        "schema": {"type": "number", "minimum": 0, "maximum": 30},
                     },
-                    **_errors(400, 401),
-                },
+                ],
+                "responses": {"200": _json(export_job), **_errors(400, 401, 404)},
+            }
+        },
+        "/v1/admin/exports/{job}/file": {
+            "get": {
+                "summary": "A finished export job's file",
+                "security": ADMIN_AUTH,
+                "tags": ["admin"],
+                "parameters": [{"name": "job", "in": "path", "required": True, "schema": STR}],
+                "responses": {"200": export_file, **_errors(400, 401, 404, 409, 500)},
             }
         },
         "/v1/admin/walktest": {

@@ -6,6 +6,11 @@ time, ``rssi_dd`` already calibrated, tenths of a dB) and aggregates each (tag, 
 the maximum or the mean; a cell nobody heard is NaN with count 0. Bins are half-open,
 ``[t_from + k·bin_s, t_from + (k+1)·bin_s)``, and the last one is cut at ``t_to``.
 
+`TableBuilder` computes the same table from the store's `ReadingChunk` stream (`Store.scan_readings`),
+one chunk at a time and in any row order: each chunk is scattered into the output arrays by its
+(tag, bin, board) index, so memory is the output arrays (12 bytes per cell) plus one chunk, whatever the
+number of readings.
+
 The writers replace the target file atomically (temporary file in the same folder, then rename), so
 an export never leaves a half-written file where a previous one was.
 
@@ -36,7 +41,7 @@ from typing import IO, Any
 
 import numpy as np
 
-from listenpost.collector.store import ReadingRows
+from listenpost.collector.store import ReadingChunk, ReadingRows
 
 EXPORT_FORMAT = "listenpost-export"
 EXPORT_VERSION = 1
@@ -112,17 +117,7 @@ def bin_readings(
         ValueError: bad range, bin width, aggregate, column lengths, duplicate names or a table
             above ``max_cells`` (the message names the argument).
     """
-    try:
-        agg = Aggregate(agg)
-    except ValueError:
-        raise ValueError(f"agg: must be one of {[a.value for a in Aggregate]}, got {agg!r}") from None
-    for name, value in (("t_from", t_from), ("t_to", t_to), ("bin_s", bin_s)):
-        if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
-            raise ValueError(f"{name}: must be a finite number, got {value!r}")
-    if bin_s <= 0:
-        raise ValueError(f"bin_s: must be > 0, got {bin_s!r}")
-    if t_to <= t_from:
-        raise ValueError(f"t_to: must be after t_from ({t_from!r}), got {t_to!r}")
+    agg = _check_args(agg, t_from, t_to, bin_s)
     n = len(rows.t_collector)
     for name in ("board", "tag", "rssi_dd"):
         if len(getattr(rows, name)) != n:
@@ -179,6 +174,180 @@ def bin_readings(
         bin_s=float(bin_s),
         agg=agg,
     )
+
+
+def _check_args(agg: Aggregate | str, t_from: float, t_to: float, bin_s: float) -> Aggregate:
+    try:
+        agg = Aggregate(agg)
+    except ValueError:
+        raise ValueError(f"agg: must be one of {[a.value for a in Aggregate]}, got {agg!r}") from None
+    for name, value in (("t_from", t_from), ("t_to", t_to), ("bin_s", bin_s)):
+        if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
+            raise ValueError(f"{name}: must be a finite number, got {value!r}")
+    if bin_s <= 0:
+        raise ValueError(f"bin_s: must be > 0, got {bin_s!r}")
+    if t_to <= t_from:
+        raise ValueError(f"t_to: must be after t_from ({t_from!r}), got {t_to!r}")
+    return agg
+
+
+class TableBuilder:
+    """
+    The table of `bin_readings`, built from chunks of readings in any order with bounded memory.
+
+    Memory: the output arrays, float64 + int32 per (tag, bin, board) cell, plus the chunk being added.
+    With ``tags=None`` the rows grow as new tags turn up (capacity doubles, so at most twice the final
+    rows are allocated) and `table` reorders them by name, which copies the arrays once.
+
+    Not thread-safe: feed it from one thread at a time (the store calls its sink sequentially).
+
+    Args:
+        t_from, t_to, bin_s, agg, max_cells: as for `bin_readings`.
+        boards: the board columns, in this order (readings of other boards are left out).
+        tags: the tag rows, in this order (readings of other tags are left out); ``None``: every tag of
+            ``base_tags`` plus every tag heard in the range, sorted by name.
+        base_tags: with ``tags=None``, tags that get a row even if nobody heard them (the registered ones).
+
+    Raises:
+        ValueError: as `bin_readings` (the message names the argument), also from `add` when tags
+            turning up push the table past ``max_cells``.
+    """
+
+    def __init__(
+        self,
+        t_from: float,
+        t_to: float,
+        bin_s: float,
+        boards: Sequence[str],
+        tags: Sequence[str] | None = None,
+        base_tags: Sequence[str] = (),
+        agg: Aggregate | str = Aggregate.MAX,
+        max_cells: int = 50_000_000,
+    ) -> None:
+        self.agg = _check_args(agg, t_from, t_to, bin_s)
+        self.t_from, self.t_to, self.bin_s = float(t_from), float(t_to), float(bin_s)
+        self.boards = _names("boards", boards, np.empty(0, dtype=object))
+        self.fixed_tags = tags is not None
+        self.tags = _names(
+            "tags", tags if tags is not None else sorted(set(base_tags)), np.empty(0, dtype=object)
+        )
+        self.n_bins = max(1, math.ceil((t_to - t_from) / bin_s))
+        self.max_cells = max_cells
+        self.readings = 0
+        """Readings binned so far (inside the range, of a chosen board and tag)."""
+        self.rows_seen = 0
+        """Rows the store delivered so far."""
+        self._check_cells(len(self.tags))
+        self._row_cells = self.n_bins * len(self.boards)
+        self._cap = len(self.tags)
+        self._acc = np.full(self._cap * self._row_cells, -np.inf if self.agg is Aggregate.MAX else 0.0)
+        self._counts = np.zeros(self._cap * self._row_cells, dtype=np.int32)
+        self._maps: tuple[int, int, np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None = None
+
+    def _check_cells(self, n_tags: int) -> None:
+        cells = n_tags * self.n_bins * len(self.boards)
+        if cells > self.max_cells:
+            raise ValueError(
+                f"max_cells: table of {n_tags} tags x {self.n_bins} bins x {len(self.boards)} boards "
+                f"= {cells} cells exceeds {self.max_cells}; narrow the range or widen bin_s"
+            )
+
+    def _lookups(self, chunk: ReadingChunk) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """Sorted store ids and the row/column each maps to (-1: not in the table), per name map."""
+        key = (id(chunk.board_names), id(chunk.tag_names))
+        if self._maps is None or self._maps[:2] != key:
+            col = {name: i for i, name in enumerate(self.boards)}
+            row = {name: i for i, name in enumerate(self.tags)}
+            b_ids = np.fromiter(sorted(chunk.board_names), dtype=np.int64, count=len(chunk.board_names))
+            t_ids = np.fromiter(sorted(chunk.tag_names), dtype=np.int64, count=len(chunk.tag_names))
+            b_pos = np.array([col.get(chunk.board_names[i], -1) for i in b_ids.tolist()], dtype=np.int64)
+            t_pos = np.array([row.get(chunk.tag_names[i], -1) for i in t_ids.tolist()], dtype=np.int64)
+            self._maps = (*key, b_ids, b_pos, t_ids, t_pos)
+        return self._maps[2], self._maps[3], self._maps[4], self._maps[5]
+
+    def add(self, chunk: ReadingChunk) -> None:
+        """Bin one chunk of readings into the table."""
+        n = len(chunk.t_collector)
+        self.rows_seen += n
+        if not n or not self.boards:
+            return
+        b_ids, b_pos, t_ids, t_pos = self._lookups(chunk)
+        bi = _lookup(b_ids, b_pos, np.asarray(chunk.board_id, dtype=np.int64))
+        ti = _lookup(t_ids, t_pos, np.asarray(chunk.tag_id, dtype=np.int64))
+        t = np.asarray(chunk.t_collector, dtype=np.float64)
+        keep = (bi >= 0) & (t >= self.t_from) & (t < self.t_to)
+        if not self.fixed_tags:
+            fresh = keep & (ti < 0)
+            if fresh.any():
+                self._grow(chunk, np.unique(np.asarray(chunk.tag_id, dtype=np.int64)[fresh]), t_ids, t_pos)
+                ti = _lookup(t_ids, t_pos, np.asarray(chunk.tag_id, dtype=np.int64))
+        keep &= ti >= 0
+        values = np.asarray(chunk.rssi_dd)[keep].astype(np.float64)  # tenths of a dB; /10 at the end
+        # Bin from the offset to t_from: subtracting first keeps float64 exact at Unix magnitudes.
+        k = np.floor((t[keep] - self.t_from) / self.bin_s).astype(np.int64)
+        np.minimum(k, self.n_bins - 1, out=k)  # a reading a hair below t_to can round into bin n_bins
+        flat = (ti[keep] * self.n_bins + k) * len(self.boards) + bi[keep]
+        # ufunc.at with operands of the array's own dtype is numpy's fast path (no per-element cast).
+        np.add.at(self._counts, flat, np.ones(flat.size, dtype=np.int32))
+        if self.agg is Aggregate.MAX:
+            np.maximum.at(self._acc, flat, values)
+        else:
+            np.add.at(self._acc, flat, values)  # sums of integers: exact in float64 below 2**53
+        self.readings += int(flat.size)
+
+    def _grow(self, chunk: ReadingChunk, new_ids: np.ndarray, t_ids: np.ndarray, t_pos: np.ndarray) -> None:
+        """Give each tag id in ``new_ids`` a row (appended; `table` sorts the rows by name)."""
+        first = len(self.tags)
+        self._check_cells(first + len(new_ids))
+        self.tags.extend(chunk.tag_names[i] for i in new_ids.tolist())
+        t_pos[np.searchsorted(t_ids, new_ids)] = np.arange(first, len(self.tags))
+        if len(self.tags) > self._cap:
+            self._cap = max(len(self.tags), 2 * self._cap)
+            acc = np.full(self._cap * self._row_cells, self._fill())
+            counts = np.zeros(self._cap * self._row_cells, dtype=np.int32)
+            acc[: self._acc.size] = self._acc
+            counts[: self._counts.size] = self._counts
+            self._acc, self._counts = acc, counts
+
+    def _fill(self) -> float:
+        return -np.inf if self.agg is Aggregate.MAX else 0.0
+
+    def table(self) -> ExportTable:
+        """The finished table (call once, after the last `add`); the builder's arrays become its arrays."""
+        n = len(self.tags) * self._row_cells
+        out, counts = self._acc[:n], self._counts[:n]
+        if self.agg is Aggregate.MAX:
+            out /= 10.0
+        else:
+            with np.errstate(invalid="ignore", divide="ignore"):
+                out /= counts
+                out /= 10.0
+        out[counts == 0] = np.nan
+        shape = (len(self.tags), self.n_bins, len(self.boards))
+        rssi, cnt, tags = out.reshape(shape), counts.reshape(shape), tuple(self.tags)
+        if not self.fixed_tags and list(tags) != sorted(tags):
+            order = sorted(range(len(tags)), key=tags.__getitem__)
+            rssi, cnt, tags = rssi[order], cnt[order], tuple(tags[i] for i in order)
+        self._acc = self._counts = np.empty(0)
+        return ExportTable(
+            rssi=rssi,
+            counts=cnt,
+            tags=tags,
+            boards=tuple(self.boards),
+            bin_starts=self.t_from + np.arange(self.n_bins, dtype=np.float64) * self.bin_s,
+            t_from=self.t_from,
+            t_to=self.t_to,
+            bin_s=self.bin_s,
+            agg=self.agg,
+        )
+
+
+def _lookup(ids: np.ndarray, pos: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """``pos`` of each value's place in the sorted ``ids``; -1 for a value not there."""
+    if not ids.size:
+        return np.full(values.shape, -1, dtype=np.int64)
+    i = np.minimum(np.searchsorted(ids, values), ids.size - 1)
+    return np.where(ids[i] == values, pos[i], -1)
 
 
 def _names(arg: str, given: Sequence[str] | None, present: np.ndarray) -> list[str]:
@@ -273,6 +442,7 @@ __all__ = [
     "EXPORT_FORMAT",
     "EXPORT_VERSION",
     "ExportTable",
+    "TableBuilder",
     "bin_readings",
     "write_csv",
     "write_npz",

@@ -12,7 +12,7 @@ with the offset that was added (``offset_dd``), so the raw value is ``rssi_dd - 
 from __future__ import annotations
 
 import enum
-from collections.abc import AsyncIterator, Sequence
+from collections.abc import AsyncIterator, Callable, Mapping, Sequence
 from contextlib import AbstractAsyncContextManager
 from dataclasses import dataclass, field
 from typing import Any, Protocol
@@ -224,6 +224,26 @@ class ReadingRows:
     offset_dd: np.ndarray  # int32
 
 
+SCAN_CHUNK_ROWS = 262_144
+"""Rows per `ReadingChunk` of `Store.scan_readings` by default: about 7 MB of columns."""
+
+
+@dataclass(frozen=True, slots=True)
+class ReadingChunk:
+    """A slice of the readings `Store.scan_readings` delivers: store ids, and the names of one snapshot."""
+
+    board_id: np.ndarray  # int64 store ids
+    tag_id: np.ndarray  # int64 store ids
+    t_collector: np.ndarray  # float64
+    rssi_dd: np.ndarray  # int32, calibrated
+    board_names: Mapping[int, str]
+    """Every board id -> name of the scan's snapshot (the same object in every chunk of one scan)."""
+    tag_names: Mapping[int, str]
+    """Every tag id -> identity of the scan's snapshot (the same object in every chunk of one scan)."""
+    progress: float | None = None
+    """Share of the scan done once this chunk is handled (0..1), when the store can tell."""
+
+
 class Store(Protocol):
     """What the collector needs from a database. Every method is safe to call concurrently."""
 
@@ -303,6 +323,22 @@ class Store(Protocol):
         boards: Sequence[str] | None = None,
         tags: Sequence[str] | None = None,
     ) -> ReadingRows: ...
+    async def scan_readings(
+        self,
+        t_from: float,
+        t_to: float,
+        sink: Callable[[ReadingChunk], None],
+        boards: Sequence[str] | None = None,
+        tags: Sequence[str] | None = None,
+        chunk_rows: int = SCAN_CHUNK_ROWS,
+    ) -> int:
+        """Hand every reading with ``t_from <= t_collector < t_to`` to ``sink``, in chunks of at most
+        ``chunk_rows``, in no promised order, all from one snapshot; returns how many rows went.
+
+        ``sink`` is called one chunk at a time and never on the event loop, so it may do CPU work; only
+        one chunk is held at a time. An exception from ``sink`` ends the scan and is raised here;
+        cancelling the call stops the scan at the next chunk."""
+
     async def delete_readings_before(
         self, t: float, chunk: int = 10_000, max_chunks: int | None = None
     ) -> int:
@@ -369,7 +405,9 @@ __all__ = [
     "IngestResult",
     "IngestStatus",
     "LeadershipLost",
+    "ReadingChunk",
     "ReadingRows",
+    "SCAN_CHUNK_ROWS",
     "SchemaTooNew",
     "SeqHole",
     "Store",

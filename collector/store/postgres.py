@@ -28,7 +28,7 @@ import math
 import os
 import re
 import socket
-from collections.abc import AsyncIterator, Sequence
+from collections.abc import AsyncIterator, Callable, Sequence
 from itertools import repeat
 from typing import Any
 
@@ -37,6 +37,7 @@ import numpy as np
 import structlog
 
 from listenpost.collector.store import (
+    SCAN_CHUNK_ROWS,
     BadBatch,
     Board,
     BoardCounts,
@@ -51,6 +52,7 @@ from listenpost.collector.store import (
     IngestResult,
     IngestStatus,
     LeadershipLost,
+    ReadingChunk,
     ReadingRows,
     SeqHole,
     StoreUnavailable,
@@ -123,6 +125,69 @@ _EXPORT_ROW = np.dtype(
     ]
 )
 _EXPORT_LENGTHS = {"l0": 4, "l1": 4, "l2": 8, "l3": 4, "l4": 4}
+
+
+# `scan_readings`'s rows in the same binary COPY layout: four NOT NULL fixed-width fields.
+_SCAN_ROW = np.dtype(
+    [
+        ("nf", ">i2"),
+        ("l0", ">i4"),
+        ("board_id", ">i4"),
+        ("l1", ">i4"),
+        ("tag_id", ">i4"),
+        ("l2", ">i4"),
+        ("t_collector", ">f8"),
+        ("l3", ">i4"),
+        ("rssi_dd", ">i4"),
+    ]
+)
+_SCAN_LENGTHS = {"l0": 4, "l1": 4, "l2": 8, "l3": 4}
+SCAN_MAX_SECONDS = 6 * 3600.0
+"""Longest a `PostgresStore.scan_readings` COPY may run in all (it also fails after a stall)."""
+
+
+class _CopyChunks:
+    """Cuts a binary COPY stream, fed in pieces, into bodies of whole rows (at most ``rows`` each)."""
+
+    def __init__(self, rows: int) -> None:
+        self._size = rows * _SCAN_ROW.itemsize
+        self._buf = bytearray()
+        self._header = False
+
+    def feed(self, data: bytes) -> list[bytes]:
+        self._buf += data
+        if not self._header:
+            if len(self._buf) < 19:
+                return []
+            if bytes(self._buf[:11]) != _COPY_SIGNATURE:
+                raise ValueError("not a PostgreSQL binary COPY stream (bad signature)")
+            start = 19 + int.from_bytes(self._buf[15:19], "big")
+            if len(self._buf) < start:
+                return []
+            del self._buf[:start]
+            self._header = True
+        out = []
+        while len(self._buf) >= self._size:
+            out.append(bytes(self._buf[: self._size]))
+            del self._buf[: self._size]
+        return out
+
+    def finish(self) -> bytes:
+        """The rows left after the last full chunk; checks the trailer."""
+        if not self._header or bytes(self._buf[-2:]) != b"\xff\xff":
+            raise ValueError("binary COPY stream has no trailer")
+        body = bytes(self._buf[:-2])
+        self._buf.clear()
+        return body
+
+
+def _parse_scan_rows(body: bytes) -> np.ndarray:
+    if len(body) % _SCAN_ROW.itemsize:
+        raise ValueError(f"binary COPY body of {len(body)} bytes is not whole {_SCAN_ROW.itemsize}-byte rows")
+    rows = np.frombuffer(body, dtype=_SCAN_ROW)
+    if len(rows) and (np.any(rows["nf"] != 4) or any(np.any(rows[k] != v) for k, v in _SCAN_LENGTHS.items())):
+        raise ValueError("binary COPY rows do not have the expected four fixed-width fields")
+    return rows
 
 
 def lock_key(name: str, scope: str) -> int:
@@ -742,6 +807,98 @@ class PostgresStore:
             rssi_dd=arr["rssi_dd"].astype(np.int32),
             offset_dd=arr["offset_dd"].astype(np.int32),
         )
+
+    async def scan_readings(
+        self,
+        t_from: float,
+        t_to: float,
+        sink: Callable[[ReadingChunk], None],
+        boards: Sequence[str] | None = None,
+        tags: Sequence[str] | None = None,
+        chunk_rows: int = SCAN_CHUNK_ROWS,
+    ) -> int:
+        """
+        `Store.scan_readings` as one binary ``COPY (SELECT ...) TO STDOUT``, cut into chunks as it arrives.
+
+        No ``ORDER BY`` and no join, so the server streams rows as the scan finds them. Each chunk is
+        parsed and handed to ``sink`` in a worker thread while the COPY waits (asyncpg reads no further
+        until the sink returns), so at most one chunk is held. The COPY may run as long as it makes
+        progress: it fails with `StoreUnavailable` when ``command_timeout_s`` passes without a byte, and
+        is capped at `SCAN_MAX_SECONDS` in all. ``progress`` is rows so far over the planner's estimate.
+        """
+        if chunk_rows < 1:
+            raise ValueError(f"chunk_rows: must be >= 1, got {chunk_rows!r}")
+        loop = asyncio.get_running_loop()
+        async with self._acquire() as con, con.transaction(isolation="repeatable_read", readonly=True):
+            # One snapshot for the names and the rows.
+            board_names = {int(i): n for i, n in await con.fetch("SELECT id::int8, name FROM boards")}
+            tag_names = {int(i): n for i, n in await con.fetch("SELECT id::int8, tag FROM tags")}
+            cond, args = ["t_collector >= $1", "t_collector < $2"], [float(t_from), float(t_to)]
+            for col, names, wanted in (("board_id", board_names, boards), ("tag_id", tag_names, tags)):
+                if wanted is not None:
+                    keep = set(wanted)
+                    args.append([i for i, n in names.items() if n in keep])
+                    cond.append(f"{col} = ANY(${len(args)}::int8[])")
+            sql = (
+                f"SELECT board_id::int4, tag_id::int4, t_collector, rssi_dd::int4 FROM readings "
+                f"WHERE {' AND '.join(cond)}"
+            )
+            plan = await con.fetchval(f"EXPLAIN (FORMAT JSON) {sql}", *args)
+            estimate = float((json.loads(plan) if isinstance(plan, str) else plan)[0]["Plan"]["Plan Rows"])
+            chunks = _CopyChunks(chunk_rows)
+            total = 0
+            last_data = [loop.time()]  # when the server last sent bytes or the sink last returned
+            in_sink = [False]  # time in the sink (a slow consumer) is not a stalled server
+
+            def deliver(body: bytes) -> int:
+                rows = _parse_scan_rows(body)
+                done = total + len(rows)
+                sink(
+                    ReadingChunk(
+                        rows["board_id"].astype(np.int64),
+                        rows["tag_id"].astype(np.int64),
+                        rows["t_collector"].astype(np.float64),
+                        rows["rssi_dd"].astype(np.int32),
+                        board_names,
+                        tag_names,
+                        min(1.0, done / estimate) if estimate > 0 else None,
+                    )
+                )
+                return len(rows)
+
+            async def output(data: bytes) -> None:
+                nonlocal total
+                last_data[0] = loop.time()
+                for body in chunks.feed(data):
+                    in_sink[0] = True
+                    try:
+                        total += await asyncio.to_thread(deliver, body)
+                    finally:
+                        in_sink[0] = False
+                        last_data[0] = loop.time()
+
+            copy = asyncio.ensure_future(
+                con.copy_from_query(sql, *args, output=output, format="binary", timeout=SCAN_MAX_SECONDS)
+            )
+            try:
+                while not copy.done():
+                    idle = 0.0 if in_sink[0] else loop.time() - last_data[0]
+                    if idle >= self._command_timeout_s:
+                        copy.cancel()
+                        raise StoreUnavailable(
+                            f"PostgreSQL sent no export rows for {self._command_timeout_s:g} s"
+                        )
+                    await asyncio.wait({copy}, timeout=self._command_timeout_s - idle)
+                await copy
+            finally:
+                if not copy.done():
+                    copy.cancel()
+                    with contextlib.suppress(BaseException):
+                        await copy
+            tail = chunks.finish()
+            if tail:
+                total += await asyncio.to_thread(deliver, tail)
+        return total
 
     async def delete_readings_before(
         self, t: float, chunk: int = 10_000, max_chunks: int | None = None

@@ -196,3 +196,85 @@ def test_mismatched_columns_are_rejected():
     )
     with pytest.raises(ValueError, match="rows.board"):
         bin_readings(bad, T0, T0 + 3.0, 1.0)
+
+
+def chunks_of(entries, sizes, tag_ids):
+    """The entries as store chunks (ids plus name maps), cut at ``sizes``."""
+    from listenpost.collector.store import ReadingChunk
+
+    board_ids = {f"g{i}-a": 10 + i for i in range(5)} | {"g0-b": 20}
+    board_names = {v: k for k, v in board_ids.items()}
+    tag_names = {v: k for k, v in tag_ids.items()}
+    out, at = [], 0
+    for size in [*sizes, len(entries)]:
+        part = entries[at : at + size]
+        at += len(part)
+        if part:
+            b, g, t, r = zip(*part, strict=True)
+            out.append(
+                ReadingChunk(
+                    np.array([board_ids[x] for x in b], dtype=np.int64),
+                    np.array([tag_ids[x] for x in g], dtype=np.int64),
+                    np.array(t, dtype=np.float64),
+                    np.array(r, dtype=np.int32),
+                    board_names,
+                    tag_names,
+                )
+            )
+    return out
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    seed=st.integers(0, 2**32 - 1),
+    agg=st.sampled_from(["max", "mean"]),
+    bin_s=st.sampled_from([0.5, 1.0, 2.5, 10.0]),
+    fixed_tags=st.booleans(),
+)
+def test_chunked_builder_equals_whole_table_binning(seed, agg, bin_s, fixed_tags):
+    """Any row order, any chunking: `TableBuilder` gives `bin_readings`'s table (max bit for bit)."""
+    from listenpost.collector.models.export import TableBuilder
+
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(0, 400))
+    boards = [f"g{i}-a" for i in range(5)]
+    tags = [f"lpx:{i:08x}" for i in range(7)]
+    tag_ids = {t: int(i) for t, i in zip(tags, rng.permutation(100)[:7] + 1, strict=True)}
+    entries = [
+        (
+            boards[rng.integers(5)],
+            tags[rng.integers(7)],
+            T0 + float(rng.uniform(-5, 65)),
+            int(rng.integers(-1000, -300)),
+        )
+        for _ in range(n)
+    ]
+    registered = [tags[i] for i in rng.permutation(7)[: int(rng.integers(0, 4))]]
+    cols = boards[:4]  # g4-a is left out
+    chosen = [tags[5], tags[2], tags[0]] if fixed_tags else None
+    builder = TableBuilder(T0, T0 + 60.0, bin_s, cols, tags=chosen, base_tags=registered, agg=agg)
+    sizes = sorted(rng.integers(0, max(n, 1), int(rng.integers(0, 6))).tolist())
+    for chunk in chunks_of(entries, np.diff([0, *sizes]).tolist(), tag_ids):
+        builder.add(chunk)
+    got = builder.table()
+    heard = sorted({g for b, g, t, _ in entries if T0 <= t < T0 + 60.0 and b in cols})
+    want = bin_readings(
+        rows_of(entries), T0, T0 + 60.0, bin_s, cols, chosen or sorted(set(heard) | set(registered)), agg=agg
+    )
+    assert got.tags == want.tags and got.boards == want.boards
+    assert_array_equal(got.counts, want.counts)
+    if agg == "max":
+        assert_array_equal(got.rssi, want.rssi)
+    else:
+        assert_allclose(got.rssi, want.rssi, rtol=1e-12)
+    assert builder.readings == int(want.counts.sum())
+
+
+def test_builder_refuses_tags_that_push_the_table_past_max_cells():
+    from listenpost.collector.models.export import TableBuilder
+
+    builder = TableBuilder(T0, T0 + 3.0, 1.0, ["g0-a", "g0-b"], max_cells=6)  # one tag fits
+    chunk = chunks_of([e for e in SMALL if e[1] == TAG_A], [], {TAG_A: 1, TAG_B: 2})[0]
+    builder.add(chunk)
+    with pytest.raises(ValueError, match="max_cells"):
+        builder.add(chunks_of(SMALL, [], {TAG_A: 1, TAG_B: 2})[0])
