@@ -252,6 +252,8 @@ class BleakSource:
         self._trouble_cause = Cause.STALLED
         self._wake = asyncio.Event()
         """Set by the bus watch when what had gone came back: cut the backoff short."""
+        self._attempt = 0
+        """Scanners built so far; each one's callback carries its number."""
         self.generation = 0
         """Scanners started so far (the bus watch ties a ``Discovering`` change to one)."""
         self._episode: Episode | None = None
@@ -282,7 +284,7 @@ class BleakSource:
 
     # -- callback side (runs inline in the D-Bus message handler: keep it cheap)
 
-    def _on_detect(self, device: BLEDevice, adv: AdvertisementData) -> None:
+    def _on_detect(self, device: BLEDevice, adv: AdvertisementData, attempt: int = 0) -> None:
         self.callbacks += 1
         if adv.rssi == NO_RSSI:
             self.dropped_no_rssi += 1
@@ -306,7 +308,9 @@ class BleakSource:
         # Only real adverts keep the stall watchdog quiet: a callback without RSSI is a cached
         # property change (Connected, ServicesResolved…), not proof that the radio hears.
         self._last_advert = now
-        if self._episode is not None and self.state is ScanState.SCANNING:
+        # Recovered when the scanner being started (its callback can run before start() returns)
+        # hears with no trouble reported since; an older scanner's orphaned devices prove nothing.
+        if self._episode is not None and attempt == self._attempt and not self._trouble.is_set():
             self._close_episode(now)
         self._meter.note(advert.address, now)
         try:
@@ -319,11 +323,17 @@ class BleakSource:
     # -- supervisor
 
     def _new_scanner(self) -> BleakScanner:
+        self._attempt += 1
+        attempt = self._attempt
+
+        def on_detect(device: BLEDevice, adv: AdvertisementData) -> None:
+            self._on_detect(device, adv, attempt)
+
         bluez: dict[str, Any] = {"filters": {"RSSI": -127, "DuplicateData": True}}
         if self.adapter:
             bluez["adapter"] = self.adapter
         if self.passive_patterns is None:
-            return BleakScanner(self._on_detect, bluez=bluez, backend=self.backend)  # type: ignore[arg-type]
+            return BleakScanner(on_detect, bluez=bluez, backend=self.backend)  # type: ignore[arg-type]
         from bleak.args.bluez import OrPattern
         from bleak.assigned_numbers import AdvertisementDataType
 
@@ -332,7 +342,7 @@ class BleakSource:
             for pos, ad_type, data in self.passive_patterns
         ]
         return BleakScanner(
-            self._on_detect,
+            on_detect,
             scanning_mode="passive",
             bluez=bluez,  # type: ignore[arg-type]
             backend=self.backend,

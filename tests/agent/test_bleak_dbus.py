@@ -362,8 +362,11 @@ async def test_agent_run_reports_the_restart_in_its_heartbeat_and_keeps_uploadin
     def radio() -> dict[str, Any]:
         return services[0].stats()["source"]["radio"] if services and services[0].source else {}
 
-    def readings() -> int:
-        return sum(n for (t, _, _), n in collector.readings.items() if t == tag(7))
+    def readings(since_s: float = 0.0) -> int:
+        """Readings of the tag stored by the collector, taken at or after board time ``since_s``."""
+        return sum(
+            n for (t, t_ms, _), n in collector.readings.items() if t == tag(7) and t_ms >= since_s * 1000
+        )
 
     async def advertise_until(done: Callable[[], bool], what: str) -> None:
         dev = await bluez.add_device(ADDR)
@@ -379,11 +382,11 @@ async def test_agent_run_reports_the_restart_in_its_heartbeat_and_keeps_uploadin
         try:
             await wait_until(lambda: radio().get("state") == "scanning", "agent scanning")
             await advertise_until(lambda: readings() > 0, "a reading stored before the crash")
-            before = readings()
             bluez.kill_bluez()
             await wait_until(lambda: radio().get("state") != "scanning", "agent noticed bluetoothd leave")
             await bluez.start_bluez()
-            await advertise_until(lambda: readings() > before, "a reading stored after the restart")
+            back = clock.monotonic()
+            await advertise_until(lambda: readings(since_s=back) > 0, "a reading stored after the restart")
 
             def reported() -> list[dict[str, Any]]:
                 return [

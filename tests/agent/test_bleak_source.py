@@ -345,3 +345,21 @@ async def test_episodes_kept_are_bounded(clock, fake):
         assert stats["episodes_total"] == EPISODES_KEPT + 3 and len(stats["episodes"]) == EPISODES_KEPT
         assert {e["reason"] for e in stats["episodes"]} == {"stalled"}
         assert not any(e["open"] for e in stats["episodes"])
+
+
+async def test_an_advert_heard_while_start_returns_ends_the_episode(clock, fake):
+    """bleak registers the callback before StartDiscovery returns: the first advert then is the recovery."""
+
+    class Eager(fake):
+        async def start(self) -> None:
+            await super().start()
+            if len(type(self).instances) > 1:
+                self.emit("C4:7A:10:00:2B:91", -60)  # delivered before start() has returned
+
+    src = BleakSource("hci0", clock, 1000, backend=Eager)
+    async with running(src):
+        src.trouble(Cause.DISCOVERY_STOPPED)
+        await settle()
+        assert len(Eager.instances) == 2 and src.state is ScanState.SCANNING
+        (ep,) = src.stats()["episodes"]
+        assert ep["reason"] == "discovery_stopped" and not ep["open"] and ep["duration_s"] == 0
