@@ -593,6 +593,13 @@ class BusWatch:
 
     async def run(self) -> None:
         try:
+            await self._run()
+        finally:
+            for task in list(self._checks):  # bounded by call_timeout, but not left behind the source
+                task.cancel()
+
+    async def _run(self) -> None:
+        try:
             from dbus_fast import BusType
             from dbus_fast.aio import MessageBus
         except ImportError as e:
