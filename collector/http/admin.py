@@ -481,26 +481,28 @@ async def _run_export(app: web.Application, job: ExportJob) -> None:
     except asyncio.CancelledError:
         job.state, job.error = "failed", {"code": "cancelled", "message": "the collector is shutting down"}
         raise
-    except ValueError as e:  # the table grew past max_cells: a request to narrow, not a fault
-        job.state, job.error = "failed", {"code": "bad_field", "field": "bin", "message": f"bin: {e}"}
     except StoreUnavailable as e:
         log.warning("export_failed", job=job.id, error=str(e))
         job.state = "failed"
         job.error = {"code": "store_unavailable", "message": "the database is not available now; retry later"}
-    except Exception:
-        log.exception("export_failed", job=job.id)
-        job.state, job.error = (
-            "failed",
-            {"code": "internal", "message": "internal error; see the collector log"},
-        )
+    except Exception as e:
+        job.state = "failed"
+        if isinstance(e, ValueError) and str(e).startswith("max_cells"):
+            # Tags turning up pushed the table past max_cells: a request to narrow, not a fault.
+            job.error = {"code": "bad_field", "field": "bin", "message": f"bin: {e}"}
+        else:
+            log.exception("export_failed", job=job.id)
+            job.error = {"code": "internal", "message": "internal error; see the collector log"}
     finally:
+        if job.state == "running":  # whatever ended the task, a poll must not see it running forever
+            job.state = "failed"
         job.finished.set()
 
 
 async def _start_export(request: web.Request) -> ExportJob:
     require_admin(request)
     ask = _export_request(request)
-    from listenpost.collector.models.export import TableBuilder
+    from listenpost.collector.models.export import check_table
 
     jobs = request.app[EXPORT_JOBS]
     if jobs.running() >= MAX_RUNNING_EXPORTS:
@@ -513,7 +515,7 @@ async def _start_export(request: web.Request) -> ExportJob:
     store = request.app[STORE]
     boards = ask.boards or sorted(b.name for b in await store.list_boards())
     try:  # name and size checks are cheap: do them here so a refusal is a 400, not a failed job
-        TableBuilder(ask.t_from, ask.t_to, ask.bin_s, boards, tags=ask.tags or await store.list_tags())
+        check_table(ask.t_from, ask.t_to, ask.bin_s, boards, ask.tags or await store.list_tags())
     except ValueError as e:
         raise bad_field("bin", str(e)) from e
     jobs.prune()

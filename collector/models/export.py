@@ -191,6 +191,31 @@ def _check_args(agg: Aggregate | str, t_from: float, t_to: float, bin_s: float) 
     return agg
 
 
+def check_table(
+    t_from: float,
+    t_to: float,
+    bin_s: float,
+    boards: Sequence[str],
+    tags: Sequence[str],
+    agg: Aggregate | str = Aggregate.MAX,
+    max_cells: int = 50_000_000,
+) -> None:
+    """The checks of `bin_readings` on a table's arguments, without building it; ``ValueError`` names the argument."""
+    _check_args(agg, t_from, t_to, bin_s)
+    _names("boards", boards, np.empty(0, dtype=object))
+    _names("tags", tags, np.empty(0, dtype=object))
+    _check_cells(len(tags), max(1, math.ceil((t_to - t_from) / bin_s)), len(boards), max_cells)
+
+
+def _check_cells(n_tags: int, n_bins: int, n_boards: int, max_cells: int) -> None:
+    cells = n_tags * n_bins * n_boards
+    if cells > max_cells:
+        raise ValueError(
+            f"max_cells: table of {n_tags} tags x {n_bins} bins x {n_boards} boards "
+            f"= {cells} cells exceeds {max_cells}; narrow the range or widen bin_s"
+        )
+
+
 class TableBuilder:
     """
     The table of `bin_readings`, built from chunks of readings in any order with bounded memory.
@@ -245,12 +270,7 @@ class TableBuilder:
         self._maps: tuple[int, int, np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None = None
 
     def _check_cells(self, n_tags: int) -> None:
-        cells = n_tags * self.n_bins * len(self.boards)
-        if cells > self.max_cells:
-            raise ValueError(
-                f"max_cells: table of {n_tags} tags x {self.n_bins} bins x {len(self.boards)} boards "
-                f"= {cells} cells exceeds {self.max_cells}; narrow the range or widen bin_s"
-            )
+        _check_cells(n_tags, self.n_bins, len(self.boards), self.max_cells)
 
     def _lookups(self, chunk: ReadingChunk) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """Sorted store ids and the row/column each maps to (-1: not in the table), per name map."""
@@ -355,7 +375,8 @@ def _names(arg: str, given: Sequence[str] | None, present: np.ndarray) -> list[s
         return sorted({str(x) for x in present})
     names = [str(x) for x in given]
     if len(set(names)) != len(names):
-        dup = next(x for x in names if names.count(x) > 1)
+        seen: set[str] = set()
+        dup = next(x for x in names if x in seen or seen.add(x))  # type: ignore[func-returns-value]
         raise ValueError(f"{arg}: {dup!r} is listed twice")
     return names
 
@@ -444,6 +465,7 @@ __all__ = [
     "ExportTable",
     "TableBuilder",
     "bin_readings",
+    "check_table",
     "write_csv",
     "write_npz",
 ]
