@@ -6,8 +6,12 @@ import argparse
 import json
 import sys
 from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
 from listenpost.core.errors import ConfigError
+
+if TYPE_CHECKING:
+    from listenpost.agent.config import AgentConfig
 
 
 def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None:  # type: ignore[type-arg]
@@ -149,13 +153,31 @@ def _record(args: argparse.Namespace) -> int:
 
 
 def _check_config(args: argparse.Namespace) -> int:
-    from dataclasses import asdict
-
     from listenpost.agent.config import load_agent_config
 
     cfg = load_agent_config(args.file)
-    out = asdict(cfg)
-    out["rules"] = [{**r, "prefix": r["prefix"].hex()} for r in out["rules"]]
-    json.dump(out, sys.stdout, indent=2)
+    json.dump(config_as_yaml(cfg), sys.stdout, indent=2)
     print(f"\n{args.file}: ok", file=sys.stderr)
     return 0
+
+
+def config_as_yaml(cfg: AgentConfig) -> dict[str, Any]:
+    """The config under agent.yaml's own sections and keys, defaults filled in; it reads back the same."""
+    from dataclasses import asdict
+
+    from listenpost.core.settings import rule_to_json
+
+    c, s = cfg.collector, cfg.source
+    return {
+        "board": cfg.board,
+        "state_dir": cfg.state_dir,
+        "collector": {k: v for k, v in asdict(c).items() if v is not None},
+        "source": {k: list(v) if isinstance(v, tuple) else v for k, v in asdict(s).items() if v is not None},
+        "tags": {"file": cfg.tags_file} if cfg.tags_file is not None else {},
+        "decode": {"rules": [rule_to_json(r) for r in cfg.rules]},
+        "calibration": {"offset_db": cfg.offset_db},
+        "spool": asdict(cfg.spool),
+        "uplink": asdict(cfg.uplink),
+        "heartbeat": {"period_seconds": cfg.heartbeat_seconds},
+        "log": {"format": cfg.log_format, "level": cfg.log_level},
+    }

@@ -34,6 +34,7 @@ PACKAGE_HELP = (
     "what the card's first boot pip-installs as the agent (a requirement, wheel URL or path "
     "reachable from the board; default: listenpost==<this version>)"
 )
+FORCE_HELP = "write the bundle even into a folder that holds another board's bundle"
 
 
 class AdminError(ListenpostError):
@@ -122,6 +123,7 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
         help="also write a provisioning bundle (agent.yaml, cloud-init user-data/meta-data) to DIR",
     )
     add.add_argument("--package", metavar="SPEC", help=PACKAGE_HELP)
+    add.add_argument("--force", action="store_true", help=FORCE_HELP)
     add.add_argument("--json", action="store_true", help="print JSON instead of text")
     add.set_defaults(func=_board_add)
     ls = client(
@@ -158,6 +160,7 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
     rei.add_argument("name", metavar="NAME", help="board name")
     rei.add_argument("--bundle", type=Path, metavar="DIR", help="also write a provisioning bundle to DIR")
     rei.add_argument("--package", metavar="SPEC", help=PACKAGE_HELP)
+    rei.add_argument("--force", action="store_true", help=FORCE_HELP)
     rei.add_argument("--json", action="store_true", help=JSON_HELP)
     rei.set_defaults(func=_board_reissue)
 
@@ -540,6 +543,7 @@ def _write_bundle(args: argparse.Namespace, answer: dict[str, Any]) -> Path | No
     extra = {"package": args.package} if getattr(args, "package", None) else {}
     write_bundle(
         args.bundle,
+        force=args.force,
         board=answer["name"],
         room=answer["room"],
         floor=answer.get("floor"),
@@ -602,12 +606,11 @@ def _print_code(args: argparse.Namespace, answer: dict[str, Any], verb: str) -> 
 def _check_bundle_possible(args: argparse.Namespace) -> None:
     """Fail before the collector is asked for a code, so a bundle problem never leaves a half-done board."""
     if getattr(args, "bundle", None):
-        from listenpost.collector.provision import agent_unit, package_spec
+        from listenpost.collector.provision import agent_unit, check_bundle_dir, package_spec
 
         agent_unit()
         package_spec(getattr(args, "package", None))
-        if args.bundle.exists() and not args.bundle.is_dir():
-            raise ConfigError(f"--bundle: {args.bundle} exists and is not a directory")
+        check_bundle_dir(args.bundle, args.name, force=args.force)
 
 
 def _board_add(args: argparse.Namespace) -> int:

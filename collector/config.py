@@ -30,7 +30,17 @@ from pathlib import Path
 from typing import Any
 
 from listenpost.core.errors import ConfigError
-from listenpost.core.settings import DecodeRule, Section, load_yaml, non_negative, parse_rules, positive
+from listenpost.core.settings import (
+    DecodeRule,
+    Section,
+    load_yaml,
+    non_negative,
+    parse_rules,
+    positive,
+    rule_to_json,
+)
+
+__all__ = ["rule_to_json"]  # board API answers carry the rules in the form agent.yaml reads
 
 DEFAULT_PORT = 8470
 
@@ -117,17 +127,6 @@ class CollectorSettings:
 
     def replace(self, **changes: Any) -> CollectorSettings:
         return dataclasses.replace(self, **changes)
-
-
-def rule_to_json(rule: DecodeRule) -> dict[str, Any]:
-    """A decode rule in the shape `listenpost.core.settings.parse_rule` reads back (prefix as hex)."""
-    out: dict[str, Any] = {"name": rule.name}
-    if rule.company_id is not None:
-        out["company_id"] = rule.company_id
-    if rule.service_uuid16 is not None:
-        out["service_uuid16"] = rule.service_uuid16
-    out.update(prefix=rule.prefix.hex(), offset=rule.offset, length=rule.length)
-    return out
 
 
 def _liveness_overrides(s: Section) -> dict[str, Any]:

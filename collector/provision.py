@@ -283,9 +283,50 @@ def build_bundle(
     }
 
 
-def write_bundle(directory: str | Path, **kwargs: Any) -> list[Path]:
-    """Write the bundle to ``directory`` (created); files holding the code are mode 0600."""
+def bundle_owner(directory: str | Path) -> str | None:
+    """
+    The board whose bundle ``directory`` holds (``local-hostname`` of its meta-data), ``"?"`` for
+    bundle files whose board cannot be read, None for a folder without a bundle.
+    """
     d = Path(directory)
+    if not any((d / name).exists() for name in ("user-data", "meta-data")):
+        return None
+    try:
+        meta = yaml.safe_load((d / "meta-data").read_text())
+    except (OSError, UnicodeDecodeError, yaml.YAMLError):
+        return "?"
+    name = meta.get("local-hostname") if isinstance(meta, dict) else None
+    return name if isinstance(name, str) else "?"
+
+
+def check_bundle_dir(directory: str | Path, board: str, *, force: bool = False) -> None:
+    """
+    Refuse to write ``board``'s bundle over another board's: two cards made from one folder would
+    carry one code, and the first board to boot would leave the other unenrolled.
+
+    Raises:
+        ConfigError: ``directory`` is not a folder, or holds another board's bundle and not ``force``.
+    """
+    d = Path(directory)
+    if d.exists() and not d.is_dir():
+        raise ConfigError(f"--bundle: {d} exists and is not a directory")
+    owner = bundle_owner(d)
+    if owner is not None and owner != board and not force:
+        who = "another board's bundle" if owner == "?" else f"the bundle of board {owner}"
+        raise ConfigError(
+            f"--bundle: {d} already holds {who}; choose an empty folder, or give --force to replace it"
+        )
+
+
+def write_bundle(directory: str | Path, *, force: bool = False, **kwargs: Any) -> list[Path]:
+    """
+    Write the bundle to ``directory`` (created); files holding the code are mode 0600.
+
+    Raises:
+        ConfigError: see `check_bundle_dir`.
+    """
+    d = Path(directory)
+    check_bundle_dir(d, kwargs["board"], force=force)
     d.mkdir(parents=True, exist_ok=True)
     written = []
     for name, content in build_bundle(**kwargs).items():

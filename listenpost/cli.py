@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import importlib
 import importlib.util
+import os
 import sys
 from collections.abc import Sequence
 
@@ -71,3 +72,21 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 1
     except KeyboardInterrupt:
         return 130
+    except BrokenPipeError:
+        return _reader_gone()
+
+
+def _reader_gone() -> int:
+    """
+    stdout's reader left (``listenpost collector events | head``): stop quietly with the status a shell
+    gives a writer killed by SIGPIPE. stdout goes to /dev/null first, so the interpreter's final flush
+    of what is still buffered cannot raise again (the recipe of the Python docs, "Note on SIGPIPE").
+    """
+    devnull = os.open(os.devnull, os.O_WRONLY)
+    try:
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError):
+        pass
+    finally:
+        os.close(devnull)
+    return 128 + 13  # SIGPIPE

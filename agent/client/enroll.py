@@ -50,11 +50,16 @@ class EnrollStatus(enum.Enum):
     UNREACHABLE = "unreachable"
 
 
+REISSUE_HINT = (
+    "on the collector machine run 'listenpost collector board reissue NAME --bundle DIR' for a new code "
+    "(and a new bundle for the card)"
+)
+
 _MESSAGES = {
     EnrollStatus.UNKNOWN_CODE: "the collector does not know this enrollment code (404); check it against "
-    "'collector board add' output",
-    EnrollStatus.CODE_USED: "this enrollment code was already used (409); issue a new one for the board",
-    EnrollStatus.CODE_EXPIRED: "this enrollment code has expired (410); issue a new one for the board",
+    f"'collector board add' output, or {REISSUE_HINT}",
+    EnrollStatus.CODE_USED: f"this enrollment code was already used (409); {REISSUE_HINT}",
+    EnrollStatus.CODE_EXPIRED: f"this enrollment code has expired (410); {REISSUE_HINT}",
 }
 
 EXIT_CODES = {

@@ -207,3 +207,14 @@ def parse_rules(s: Section) -> tuple[DecodeRule, ...]:
     if len({r.name for r in rules}) != len(rules):
         raise s.fail("rules", "rule names must be unique")
     return rules
+
+
+def rule_to_json(rule: DecodeRule) -> dict[str, Any]:
+    """A decode rule in the shape `parse_rule` reads back (prefix as hex, absent keys left out)."""
+    out: dict[str, Any] = {"name": rule.name}
+    if rule.company_id is not None:
+        out["company_id"] = rule.company_id
+    if rule.service_uuid16 is not None:
+        out["service_uuid16"] = rule.service_uuid16
+    out.update(prefix=rule.prefix.hex(), offset=rule.offset, length=rule.length)
+    return out

@@ -206,3 +206,15 @@ async def test_a_shared_session_is_left_open(srv, tmp_path):
             fingerprint_data=FP,
         )
         assert not session.closed
+
+
+async def test_a_used_code_names_the_reissue_command(srv, tmp_path):
+    result = await enroll(
+        str(srv.make_url("")), "USED-1234", tmp_path / "s", clock=VirtualClock(), fingerprint_data=FP
+    )
+    assert result.status is EnrollStatus.CODE_USED
+    assert "listenpost collector board reissue" in result.message
+    expired = await enroll(
+        str(srv.make_url("")), "OLD-12345", tmp_path / "s", clock=VirtualClock(), fingerprint_data=FP
+    )
+    assert "listenpost collector board reissue" in expired.message

@@ -573,3 +573,55 @@ async def test_a_walk_test_room_with_a_control_character_names_the_line(server, 
     rc = await cli(server, tmp_path, "walktest", "--tag", "lpx:00000007", "--marks", str(marks))
     err = capsys.readouterr().err
     assert rc == 2 and f"{marks}:3: room: must not contain control characters" in err
+
+
+async def test_a_bundle_folder_of_another_board_is_refused_unless_forced(server, tmp_path, capsys):
+    card = tmp_path / "card"
+    args = ("--room", "G0 Foyer", "--bundle", str(card), "--json")
+    assert await cli(server, tmp_path, "board", "add", "g0-a", *args) == 0
+    first = (card / "user-data").read_text()
+    capsys.readouterr()
+    # Another board into the same folder: refused before a code is issued, the card left as it was.
+    assert await cli(server, tmp_path, "board", "add", "g0-b", *args) == 2
+    err = capsys.readouterr().err
+    assert "--bundle" in err and "g0-a" in err and "--force" in err and "Traceback" not in err
+    assert (card / "user-data").read_text() == first
+    assert await cli(server, tmp_path, "board", "list", "--json") == 0
+    assert [b["name"] for b in json.loads(capsys.readouterr().out)["boards"]] == ["g0-a"]
+    # The same board's own bundle may be rewritten (a reissue after a re-flash).
+    assert await cli(server, tmp_path, "board", "reissue", "g0-a", "--bundle", str(card), "--json") == 0
+    capsys.readouterr()
+    assert await cli(server, tmp_path, "board", "add", "g0-b", *args, "--force") == 0
+    assert "g0-b" in (card / "meta-data").read_text()
+
+
+async def test_events_into_a_closed_pipe_ends_quietly(server, tmp_path):
+    """``collector events | head -1``: the reader goes away; no traceback, the pipe's exit status."""
+    import os
+    import subprocess
+    import sys
+
+    for name in ("g5-a", "g5-b"):
+        assert await cli(server, tmp_path, "board", "add", name, "--room", "G5 Shop") == 0
+        assert await cli(server, tmp_path, "board", "retire", name) == 0
+    read, write = os.pipe()
+    os.close(read)  # every write to the pipe now fails with EPIPE, as after `head` exits
+    try:
+        proc = await asyncio.create_subprocess_exec(
+            sys.executable,
+            "-m",
+            "listenpost",
+            "collector",
+            "events",
+            "--collector",
+            str(server.make_url("")).rstrip("/"),
+            "--state-dir",
+            str(tmp_path / "state"),
+            stdout=write,
+            stderr=subprocess.PIPE,
+        )
+    finally:
+        os.close(write)
+    _, err = await asyncio.wait_for(proc.communicate(), 60)
+    assert b"Traceback" not in err and b"BrokenPipe" not in err, err.decode()
+    assert proc.returncode == 141  # 128 + SIGPIPE, what a shell reports for a writer cut off by head
