@@ -72,7 +72,27 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
     en.add_argument(
         "--collector", required=True, metavar="URL", help="collector base URL, e.g. http://10.0.0.2:8470"
     )
-    en.add_argument("--code", required=True, help="enrollment code printed by 'collector board add'")
+    code = en.add_mutually_exclusive_group(required=True)
+    code.add_argument("--code", help="enrollment code printed by 'collector board add'")
+    code.add_argument(
+        "--code-file",
+        type=Path,
+        metavar="FILE",
+        help="read the code from FILE (the enroll unit passes its systemd credential), keeping it out of argv",
+    )
+    en.add_argument(
+        "--until-enrolled",
+        action="store_true",
+        help="retry an unreachable collector (capped, jittered backoff) until enrolled or the code is "
+        "refused, for up to --give-up-after hours; what the first-boot enroll unit runs",
+    )
+    en.add_argument(
+        "--give-up-after",
+        type=float,
+        default=80.0,
+        metavar="HOURS",
+        help="with --until-enrolled: stop trying after this long (default %(default)s h, past a code's lifetime)",
+    )
     en.add_argument(
         "--state-dir",
         type=Path,
@@ -139,9 +159,19 @@ def _replay(args: argparse.Namespace) -> int:
 
 
 def _enroll(args: argparse.Namespace) -> int:
-    from listenpost.agent.client.enroll import enroll_command
+    from listenpost.agent.client.enroll import enroll_command, read_code_file
 
-    return enroll_command(args.collector, args.code, args.state_dir, ca_file=args.ca_file)
+    if not args.give_up_after > 0:
+        raise ConfigError(f"--give-up-after: must be > 0, got {args.give_up_after}")
+    code = args.code if args.code is not None else read_code_file(args.code_file)
+    return enroll_command(
+        args.collector,
+        code,
+        args.state_dir,
+        attempts=None if args.until_enrolled else 4,
+        give_up_after_s=args.give_up_after * 3600.0,
+        ca_file=args.ca_file,
+    )
 
 
 def _record(args: argparse.Namespace) -> int:

@@ -3,8 +3,9 @@ The provisioning bundle for a freshly flashed card (``collector board add NAME -
 
 Files written to DIR:
 
-- ``user-data`` — cloud-init cloud-config: sets the hostname, installs the agent into a virtualenv,
-  installs the systemd unit, enrolls the board with its one-time code, starts the agent.
+- ``user-data`` — cloud-init cloud-config: sets the hostname, creates the service account, installs the
+  agent into a virtualenv and its units, and starts the enroll unit, which trades the one-time code for
+  the board's credential (retrying until the collector answers) and then starts the agent.
 - ``meta-data`` — cloud-init NoCloud instance id and hostname.
 - ``agent.yaml`` — the agent config the board will run with (``agent enroll`` writes the final one;
   this copy is for the installer's records and for boards enrolled by hand).
@@ -31,7 +32,13 @@ from listenpost.core.settings import BOARD_NAME
 AGENT_PREFIX = "/opt/listenpost"
 AGENT_STATE_DIR = "/var/lib/listenpost/agent"
 UNIT_NAME = "listenpost-agent.service"
-UNIT_SOURCE = Path(str(resources.files("listenpost.systemd") / UNIT_NAME))  # package data of the wheel
+ENROLL_UNIT = "listenpost-enroll.service"
+SYSUSERS_FILE = "listenpost-sysusers.conf"
+UNITS_DIR = Path(str(resources.files("listenpost.systemd")))  # package data of the wheel
+UNIT_SOURCE = UNITS_DIR / UNIT_NAME
+ENROLL_ENV = "/etc/listenpost/enroll.env"
+ENROLL_CODE = "/etc/listenpost/enroll-code"
+"""The enroll unit's inputs (its EnvironmentFile= and LoadCredential= source)."""
 
 
 # Control characters (C0, DEL, C1: newlines, escapes), format characters (bidi overrides, zero-width),
@@ -133,11 +140,11 @@ _Dumper.add_representer(_Literal, _literal)
 
 
 def agent_unit(source: Path = UNIT_SOURCE) -> str:
-    """The project's agent unit with ExecStart pointed at the bundle's virtualenv."""
+    """A unit of the project (the agent's by default) with ExecStart pointed at the bundle's virtualenv."""
     try:
         text = source.read_text()
     except OSError as e:
-        raise ConfigError(f"{source}: cannot read the agent unit for the bundle: {e.strerror or e}") from e
+        raise ConfigError(f"{source}: cannot read the unit for the bundle: {e.strerror or e}") from e
     lines = []
     for line in text.splitlines():
         m = re.match(r"^(ExecStart=[-@:+!]*)(\S+)(.*)$", line)
@@ -203,56 +210,42 @@ def build_bundle(
     from datetime import UTC, datetime
 
     spec = package_spec(package)
+    # Both go into one-line files the enroll unit reads (EnvironmentFile=, the code credential).
+    for field, value in (("collector URL", collector_url), ("code", code)):
+        if not value.strip() or any(
+            c.isspace() or unicodedata.category(c) in _UNSAFE_CATEGORIES for c in value.strip()
+        ):
+            raise ConfigError(
+                f"{field}: must be one word without spaces or control characters, got {value!r}"
+            )
+    code = code.strip()
     expires = datetime.fromtimestamp(expires_at, UTC).strftime("%Y-%m-%d %H:%M UTC")
     url = collector_url.rstrip("/")
     pip = f"{AGENT_PREFIX}/bin/pip"
-    cli = f"{AGENT_PREFIX}/bin/listenpost"
+    units = unit_source.parent
     cloud = {
         "hostname": board,
         "preserve_hostname": False,
         "package_update": True,
         "packages": ["python3-venv", "bluez"],
-        # The unit runs the agent as this user (User=listenpost, SupplementaryGroups=bluetooth).
-        "users": [
-            "default",
-            {
-                "name": "listenpost",
-                "system": True,
-                "shell": "/usr/sbin/nologin",
-                "groups": "bluetooth",
-                "lock_passwd": True,
-            },
-        ],
         "write_files": [
-            {
-                "path": f"/etc/systemd/system/{UNIT_NAME}",
-                "owner": "root:root",
-                "permissions": "0644",
-                "content": _Literal(agent_unit(unit_source)),
-            },
+            # The account the units run as (User=listenpost), created by systemd-sysusers below.
+            _file("/etc/sysusers.d/listenpost.conf", _read(units / SYSUSERS_FILE), "0644"),
+            _file(f"/etc/systemd/system/{UNIT_NAME}", agent_unit(unit_source), "0644"),
+            _file(f"/etc/systemd/system/{ENROLL_UNIT}", agent_unit(units / ENROLL_UNIT), "0644"),
+            # What the enroll unit needs: where the collector is, and the code (root only; the unit
+            # hands it to the agent's user as a credential).
+            _file(ENROLL_ENV, f"LISTENPOST_COLLECTOR={url}\n", "0644"),
+            _file(ENROLL_CODE, code + "\n", "0600"),
         ],
         "runcmd": [
+            ["systemd-sysusers"],
             ["python3", "-m", "venv", AGENT_PREFIX],
             [pip, "install", "--upgrade", spec],
-            ["install", "-d", "-o", "listenpost", "-g", "listenpost", "-m", "0700", AGENT_STATE_DIR],
-            # Enroll as the agent's user, so the credential (0600) belongs to it.
-            [
-                "runuser",
-                "-u",
-                "listenpost",
-                "--",
-                cli,
-                "agent",
-                "enroll",
-                "--collector",
-                url,
-                "--code",
-                code,
-                "--state-dir",
-                AGENT_STATE_DIR,
-            ],
             ["systemctl", "daemon-reload"],
-            ["systemctl", "enable", "--now", UNIT_NAME],
+            # Enrollment is a unit of its own: it retries an unreachable collector until it answers
+            # (or refuses the code), then starts the agent. --no-block: cloud-init does not wait for it.
+            ["systemctl", "enable", "--now", "--no-block", ENROLL_UNIT],
         ],
     }
     # Every value reaches the file through the YAML emitter, which quotes and escapes as needed; the
@@ -265,7 +258,9 @@ def build_bundle(
         f"Provisioning bundle for board {board} (room {room}{', floor ' + floor if floor else ''}).\n\n"
         "1. Flash the board's OS image to the card.\n"
         "2. Copy user-data and meta-data to the card's boot partition (cloud-init NoCloud).\n"
-        "3. Mount the board, power it on; on first boot it installs the agent, enrolls and starts scanning.\n"
+        "3. Mount the board, power it on; on first boot it installs the agent and starts\n"
+        f"   {ENROLL_UNIT}, which keeps trying the collector until it answers, enrolls, then starts\n"
+        "   the agent (journalctl -u listenpost-enroll shows each try).\n"
         f"   It needs the network then: pip installs {spec} (from PyPI unless that is a URL or path;\n"
         "   choose it with 'board add --package') and the board must reach the collector at\n"
         f"   {url}.\n"
@@ -316,6 +311,18 @@ def check_bundle_dir(directory: str | Path, board: str, *, force: bool = False) 
         raise ConfigError(
             f"--bundle: {d} already holds {who}; choose an empty folder, or give --force to replace it"
         )
+
+
+def _file(path: str, content: str, mode: str) -> dict[str, Any]:
+    """One cloud-init write_files entry, owned by root."""
+    return {"path": path, "owner": "root:root", "permissions": mode, "content": _Literal(content)}
+
+
+def _read(path: Path) -> str:
+    try:
+        return path.read_text()
+    except OSError as e:
+        raise ConfigError(f"{path}: cannot read it for the bundle: {e.strerror or e}") from e
 
 
 def write_bundle(directory: str | Path, *, force: bool = False, **kwargs: Any) -> list[Path]:

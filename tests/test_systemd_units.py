@@ -37,19 +37,29 @@ def directives(path: Path) -> dict[str, list[str]]:
     return out
 
 
+def runnable(text: str) -> str:
+    """The unit with ExecStart= pointed at this Python (verify needs the binary to exist)."""
+    out = text.replace("ExecStart=/usr/local/bin/listenpost ", f"ExecStart={sys.executable} -m listenpost ")
+    assert out != text, "ExecStart no longer points at /usr/local/bin/listenpost"
+    return out
+
+
 def verify(unit: Path, tmp_path: Path) -> subprocess.CompletedProcess[str]:
+    # Beside copies of the others: the units name each other in After=/Wants=.
+    for other in UNITS.glob("*.service"):
+        if other.name != unit.name and not (tmp_path / other.name).exists():
+            (tmp_path / other.name).write_text(runnable(other.read_text()))
     copy = tmp_path / unit.name
-    text = unit.read_text().replace(
-        "ExecStart=/usr/local/bin/listenpost ", f"ExecStart={sys.executable} -m listenpost "
-    )
-    assert text != unit.read_text(), "ExecStart no longer points at /usr/local/bin/listenpost"
-    copy.write_text(text)
+    copy.write_text(runnable(unit.read_text()))
     return subprocess.run(
         [ANALYZE, "verify", "--man=no", str(copy)], capture_output=True, text=True, timeout=60
     )
 
 
-@pytest.mark.parametrize("name", ["listenpost-agent.service", "listenpost-collector.service"])
+ALL = ["listenpost-agent.service", "listenpost-enroll.service", "listenpost-collector.service"]
+
+
+@pytest.mark.parametrize("name", ALL)
 def test_unit_verifies_without_errors_or_warnings(name, tmp_path):
     r = verify(UNITS / name, tmp_path)
     assert r.returncode == 0, r.stderr
@@ -71,18 +81,50 @@ def test_agent_unit_contract():
     d = directives(UNITS / "listenpost-agent.service")
     assert d["Type"] == ["notify"] and d["NotifyAccess"] == ["main"]
     assert int(d["WatchdogSec"][0]) > 0 and d["Restart"] == ["on-failure"] and d["RestartSec"]
-    assert {"bluetooth.target", "network-online.target"} <= set(d["After"][0].split())
+    # Scanning does not wait for the network (the agent spools); it waits for enrollment, if any.
+    after = set(d["After"][0].split())
+    assert {"bluetooth.target", "listenpost-enroll.service"} <= after
+    assert "network-online.target" not in after and "Wants" not in d
+    assert d["ConditionPathExists"] == ["/var/lib/listenpost/agent/agent.yaml"]
     assert (
         d["ProtectSystem"] == ["strict"] and d["NoNewPrivileges"] == ["true"] and d["PrivateTmp"] == ["true"]
     )
     assert d["StateDirectory"] == ["listenpost/agent"]
-    assert d["ReadWritePaths"] == ["/var/lib/listenpost/agent"]
     assert d["CapabilityBoundingSet"] == ["CAP_NET_RAW"]
+    assert set(d["RestrictAddressFamilies"][0].split()) == {
+        "AF_UNIX",
+        "AF_INET",
+        "AF_INET6",
+        "AF_BLUETOOTH",
+        "AF_NETLINK",
+    }
     # CAP_NET_RAW is granted only to boards with the raw HCI source: commented out, explained beside it.
     assert "AmbientCapabilities" not in d
     text = (UNITS / "listenpost-agent.service").read_text()
     assert "#AmbientCapabilities=CAP_NET_RAW" in text and "raw HCI source" in text
     assert d["ExecStart"][0].endswith("agent run --config /var/lib/listenpost/agent/agent.yaml")
+
+
+def test_enroll_unit_contract():
+    """Runs once (until agent.yaml exists), before the agent; a refused code or a give-up is final."""
+    from listenpost.agent.client.enroll import EXIT_CODES, EnrollStatus
+
+    d = directives(UNITS / "listenpost-enroll.service")
+    assert d["Type"] == ["oneshot"] and d["TimeoutStartSec"] == ["infinity"]
+    assert d["ConditionPathExists"] == ["!/var/lib/listenpost/agent/agent.yaml"]
+    assert "listenpost-agent.service" in d["Before"][0] and "listenpost-agent.service" in " ".join(d["Wants"])
+    assert d["Also"] == ["listenpost-agent.service"]
+    final = {EXIT_CODES[s] for s in (EnrollStatus.CODE_EXPIRED, EnrollStatus.CODE_USED, EnrollStatus.GAVE_UP)}
+    assert final == {int(v) for v in d["RestartPreventExitStatus"][0].split()}
+    assert EXIT_CODES[EnrollStatus.UNREACHABLE] not in final  # a crash (exit 1) is restarted
+    assert d["Restart"] == ["on-failure"] and d["StartLimitBurst"]
+    start = d["ExecStart"][0]
+    assert (
+        "agent enroll --collector ${LISTENPOST_COLLECTOR} --code-file %d/enroll-code --until-enrolled"
+        in start
+    )
+    assert d["LoadCredential"] == ["enroll-code:/etc/listenpost/enroll-code"]
+    assert d["User"] == ["listenpost"] and d["CapabilityBoundingSet"] == [""]
 
 
 def test_agent_unit_with_the_hci_capability_enabled_still_verifies(tmp_path):

@@ -8,7 +8,9 @@ is written for the board the collector named, and the config that came with the 
 remote-config cache so the first ``agent run`` scans even before it reaches the collector again.
 
 Exit codes: 0 enrolled · 1 the collector could not be reached (timeout, network, 5xx: try again) ·
-2 the code was refused (404 unknown, 409 already used, 410 expired) or an argument is bad.
+2 the code was refused (404 unknown, 409 already used, 410 expired) or an argument is bad: final, no
+retry can help (the enroll unit's ``RestartPreventExitStatus=2 3``); the fix is ``board reissue`` ·
+3 (``--until-enrolled`` only) the collector stayed unreachable for the whole ``--give-up-after``.
 """
 
 from __future__ import annotations
@@ -16,6 +18,7 @@ from __future__ import annotations
 import asyncio
 import enum
 import json
+import random
 import sys
 from dataclasses import dataclass
 from pathlib import Path
@@ -29,6 +32,7 @@ from listenpost.agent.boardinfo import fingerprint
 from listenpost.agent.client.net import client_session
 from listenpost.agent.client.remote_config import ConfigCache, parse_remote_config, write_atomic
 from listenpost.agent.config import parse_agent_config
+from listenpost.core.backoff import full_jitter
 from listenpost.core.clock import Clock, SystemClock
 from listenpost.core.errors import ConfigError
 
@@ -48,6 +52,8 @@ class EnrollStatus(enum.Enum):
     REFUSED = "refused"
     """Another 4xx: the request itself is wrong."""
     UNREACHABLE = "unreachable"
+    GAVE_UP = "gave_up"
+    """Unreachable for the whole ``give_up_after_s`` of an unbounded run: final, like a refusal."""
 
 
 REISSUE_HINT = (
@@ -69,6 +75,7 @@ EXIT_CODES = {
     EnrollStatus.CODE_USED: 2,
     EnrollStatus.CODE_EXPIRED: 2,
     EnrollStatus.REFUSED: 2,
+    EnrollStatus.GAVE_UP: 3,
 }
 
 
@@ -80,6 +87,11 @@ class EnrollResult:
     config_path: Path | None = None
 
 
+GIVE_UP_AFTER_S = 80 * 3600.0
+"""How long ``--until-enrolled`` keeps trying an unreachable collector: past the default code lifetime
+(72 h), after which the collector answers 410 anyway; the bound is for a collector that never returns."""
+
+
 async def enroll(
     collector_url: str,
     code: str,
@@ -88,13 +100,21 @@ async def enroll(
     clock: Clock,
     session: aiohttp.ClientSession | None = None,
     timeout_s: float = 10.0,
-    attempts: int = 4,
+    attempts: int | None = 4,
     backoff_s: float = 2.0,
+    backoff_max_s: float = 60.0,
+    give_up_after_s: float = GIVE_UP_AFTER_S,
+    rng: random.Random | None = None,
     fingerprint_data: dict[str, Any] | None = None,
     ca_file: str | Path | None = None,
 ) -> EnrollResult:
     """
-    Enroll once, retrying only an unreachable collector (at most ``attempts`` tries, doubling waits).
+    Enroll once, retrying only an unreachable collector with capped, fully jittered backoff.
+
+    Args:
+        attempts: tries at most; None keeps trying until enrolled, refused, or ``give_up_after_s`` of
+            ``clock`` time passed (the first-boot unit: the code stays valid for days).
+        backoff_s, backoff_max_s: the first retry's ceiling and the cap (`listenpost.core.backoff`).
 
     Raises:
         ConfigError: bad URL or code, an unusable state directory, or a malformed 200 answer.
@@ -105,44 +125,59 @@ async def enroll(
     code = code.strip()
     if not code or len(code) > 200:
         raise ConfigError("--code: must be 1-200 characters")
-    if attempts < 1:
+    if attempts is not None and attempts < 1:
         raise ConfigError(f"attempts: must be >= 1, got {attempts}")
     state = _prepare_state_dir(state_dir)
     body = {"code": code, "fingerprint": fingerprint_data if fingerprint_data is not None else fingerprint()}
     timeout = aiohttp.ClientTimeout(total=timeout_s, connect=min(timeout_s, 10.0))
+    jitter = rng or random.Random()
+    deadline = clock.monotonic() + give_up_after_s
     own = session is None
     sess = session or client_session(ca_file)
     try:
         last = ""
-        for attempt in range(attempts):
+        attempt = 0
+        while True:
             if attempt:
-                await clock.sleep(backoff_s * 2 ** (attempt - 1))
+                wait = full_jitter(attempt - 1, backoff_s, backoff_max_s, jitter)
+                if attempts is None and clock.monotonic() + wait > deadline:
+                    break
+                await clock.sleep(wait)
+            attempt += 1
             try:
                 async with sess.post(url + "/v1/enroll", json=body, timeout=timeout) as resp:
                     status, text = resp.status, await resp.text()
             except (TimeoutError, aiohttp.ClientError, OSError) as e:
                 last = f"{type(e).__name__}: {e}" if str(e) else type(e).__name__
-                log.warning("enroll_unreachable", url=url, attempt=attempt + 1, error=last)
-                continue
-            if status == 200:
-                return _complete(url, state, text, ca_file)
-            if status in (404, 409, 410):
-                st = {
-                    404: EnrollStatus.UNKNOWN_CODE,
-                    409: EnrollStatus.CODE_USED,
-                    410: EnrollStatus.CODE_EXPIRED,
-                }[status]
-                return EnrollResult(st, _MESSAGES[st])
-            if status >= 500 or status == 429:
+                log.warning("enroll_unreachable", url=url, attempt=attempt, error=last)
+            else:
+                if status == 200:
+                    return _complete(url, state, text, ca_file)
+                if status in (404, 409, 410):
+                    st = {
+                        404: EnrollStatus.UNKNOWN_CODE,
+                        409: EnrollStatus.CODE_USED,
+                        410: EnrollStatus.CODE_EXPIRED,
+                    }[status]
+                    log.error("enroll_refused", url=url, status=status, reason=_MESSAGES[st])
+                    return EnrollResult(st, _MESSAGES[st])
+                if status < 500 and status != 429:
+                    return EnrollResult(
+                        EnrollStatus.REFUSED, f"the collector refused the enrollment ({status}): {text[:200]}"
+                    )
                 last = f"collector answered {status}"
-                log.warning("enroll_unreachable", url=url, attempt=attempt + 1, status=status)
-                continue
+                log.warning("enroll_unreachable", url=url, attempt=attempt, status=status)
+            if attempts is not None and attempt >= attempts:
+                break
+        if attempts is None:
             return EnrollResult(
-                EnrollStatus.REFUSED, f"the collector refused the enrollment ({status}): {text[:200]}"
+                EnrollStatus.GAVE_UP,
+                f"cannot reach the collector at {url}: gave up after {give_up_after_s / 3600:g} h and "
+                f"{attempt} attempts ({last}); the code has likely expired, so {REISSUE_HINT}",
             )
         return EnrollResult(
             EnrollStatus.UNREACHABLE,
-            f"cannot reach the collector at {url} after {attempts} attempts ({last}); check the "
+            f"cannot reach the collector at {url} after {attempt} attempts ({last}); check the "
             "URL (the one 'collector board add' printed), that the collector runs and listens "
             "on an address this board can reach, then run the same command again: the code "
             "is still unused",
@@ -225,14 +260,26 @@ def _yaml_text(data: dict[str, Any]) -> str:
     return head + yaml.safe_dump(data, sort_keys=False, default_flow_style=False)
 
 
+def read_code_file(path: str | Path) -> str:
+    """The enrollment code from a file (the first-boot unit's credential), so it is never in argv."""
+    try:
+        text = Path(path).read_text().strip()
+    except (OSError, UnicodeDecodeError) as e:
+        raise ConfigError(f"--code-file: {path}: cannot read: {getattr(e, 'strerror', None) or e}") from e
+    if not text or "\n" in text:
+        raise ConfigError(f"--code-file: {path}: must hold the code on one line")
+    return text
+
+
 def enroll_command(
     collector_url: str,
     code: str,
     state_dir: str | Path,
     *,
     clock: Clock | None = None,
-    attempts: int = 4,
+    attempts: int | None = 4,
     timeout_s: float = 10.0,
+    give_up_after_s: float = GIVE_UP_AFTER_S,
     ca_file: str | Path | None = None,
 ) -> int:
     """``listenpost agent enroll``: print the outcome, return the exit code (0, 1 or 2)."""
@@ -244,6 +291,7 @@ def enroll_command(
             clock=clock or SystemClock(),
             attempts=attempts,
             timeout_s=timeout_s,
+            give_up_after_s=give_up_after_s,
             ca_file=ca_file,
         )
     )

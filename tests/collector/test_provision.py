@@ -10,6 +10,7 @@ import yaml
 
 from listenpost.agent.config import parse_agent_config
 from listenpost.collector.provision import BadLabel, build_bundle, check_label, write_bundle
+from listenpost.core.errors import ConfigError
 from tests.conftest import require_tool
 
 
@@ -63,19 +64,21 @@ def test_bundle_contents(tmp_path):
     assert all(p.stat().st_mode & 0o077 == 0 for p in out.iterdir())  # the code is on the card: owner only
     doc = yaml.safe_load((out / "user-data").read_text())
     assert doc["hostname"] == "u4-b"
-    enroll = next(c for c in doc["runcmd"] if "enroll" in c)
-    i = enroll.index("agent")
-    assert enroll[i : i + 6] == [
-        "agent",
-        "enroll",
-        "--collector",
-        "http://10.20.0.2:8470",
-        "--code",
-        "7KQ2-M9XD-4TPA-WZ3R",
-    ]
-    assert doc["runcmd"][-1] == ["systemctl", "enable", "--now", "listenpost-agent.service"]
-    unit = doc["write_files"][0]["content"]
+    files = {f["path"]: f for f in doc["write_files"]}
+    # The enroll unit's inputs: the URL in its environment file, the code root-only for its credential.
+    assert files["/etc/listenpost/enroll.env"]["content"] == "LISTENPOST_COLLECTOR=http://10.20.0.2:8470\n"
+    code = files["/etc/listenpost/enroll-code"]
+    assert code["content"] == "7KQ2-M9XD-4TPA-WZ3R\n" and code["permissions"] == "0600"
+    assert not any("7KQ2-M9XD-4TPA-WZ3R" in str(c) for c in doc["runcmd"])  # never in a command line
+    # First boot only starts enrollment, without waiting; the enroll unit starts the agent.
+    assert doc["runcmd"][-1] == ["systemctl", "enable", "--now", "--no-block", "listenpost-enroll.service"]
+    assert not any("listenpost-agent.service" in c for c in doc["runcmd"])
+    unit = files["/etc/systemd/system/listenpost-agent.service"]["content"]
     assert "ExecStart=/opt/listenpost/bin/listenpost agent run" in unit
+    enroll = files["/etc/systemd/system/listenpost-enroll.service"]["content"]
+    assert "ExecStart=/opt/listenpost/bin/listenpost agent enroll" in enroll
+    assert "u listenpost" in files["/etc/sysusers.d/listenpost.conf"]["content"]
+    assert ["systemd-sysusers"] in doc["runcmd"]
     meta = yaml.safe_load((out / "meta-data").read_text())
     assert meta["local-hostname"] == "u4-b" and meta["instance-id"].startswith("listenpost-u4-b-")
     cfg = parse_agent_config(yaml.safe_load((out / "agent.yaml").read_text()), origin="agent.yaml")
@@ -153,16 +156,22 @@ def test_hostile_values_that_reach_the_writer_stay_values(tmp_path, cloud_init):
         )["user-data"]
     )
     board = "g0-a\nbootcmd: [[touch, /pwned-board]]"
-    code = "7KQ2\n  - [touch, /pwned-code]\n#"
-    url = "http://c:8470/\nruncmd: [[touch, /pwned-url]]"
     out = tmp_path / "card"
+    # The URL and the code go into one-line files on the card: a line break there is refused by name.
+    for field, bad in (
+        ("code", {"code": "7KQ2\n  - [touch, /pwned-code]\n#"}),
+        ("collector URL", {"collector_url": "http://c:8470/\nruncmd: [[touch, /pwned-url]]"}),
+    ):
+        kwargs = {"code": "C", "collector_url": "http://c:8470", **bad}
+        with pytest.raises(ConfigError, match=f"^{field}: "):
+            write_bundle(out, board="g0-a", room="G0", floor=None, expires_at=0, **kwargs)
     write_bundle(
         out,
         board=board,
         room=INJECTED,
         floor="up\r\nbootcmd: [x]",
-        code=code,
-        collector_url=url,
+        code="7KQ2-M9XD",
+        collector_url="http://c:8470",
         expires_at=0,
     )
     text = (out / "user-data").read_text()
@@ -170,9 +179,6 @@ def test_hostile_values_that_reach_the_writer_stay_values(tmp_path, cloud_init):
     doc = yaml.safe_load(text)
     assert list(doc) == list(benign)  # no key added, none lost
     assert doc["hostname"] == board
-    enroll = next(c for c in doc["runcmd"] if "enroll" in c)
-    assert enroll[enroll.index("--code") + 1] == code
-    assert enroll[enroll.index("--collector") + 1] == url.rstrip("/")
     assert len(doc["runcmd"]) == len(benign["runcmd"])
     assert list(yaml.safe_load((out / "agent.yaml").read_text())) == [
         "board",
