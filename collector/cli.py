@@ -62,7 +62,12 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
         metavar="DIR",
         help="admin token and (unless --db) the SQLite database live here",
     )
-    sv.add_argument("--db", metavar="URL", help="postgresql://... for several collectors on one database")
+    sv.add_argument(
+        "--db",
+        metavar="URL",
+        help="postgresql://... for several collectors on one database (default: the systemd credential "
+        "db_url, else $LISTENPOST_DB_URL, else database.url of the config, else SQLite in --state-dir)",
+    )
     sv.add_argument("--host", help="listen address (default from the config, else 127.0.0.1)")
     sv.add_argument("--port", type=int, help="listen port (default from the config, else 8470)")
     sv.add_argument("--config", type=Path, metavar="FILE", help="collector.yaml")
@@ -202,10 +207,10 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
     st = client(
         cmds.add_parser(
             "status",
-            help="fleet health: one line per board",
-            description="Fleet health, one line per board: state, last contact, readings, "
-            "readings per second, clock skew (ppm) and fit residual (ms), wall "
-            "clock error (s), spool backlog (batches), and why.",
+            help="fleet health: one line per board, then what needs a person",
+            description="Fleet health, one line per board (state and the health page's figures, "
+            "under the same names), then the boards that need a person, most urgent first, each "
+            "with the reason, what to check on site and which command to run. Needs no admin token.",
         )
     )
     st.add_argument("--json", action="store_true", help=JSON_HELP)
@@ -333,7 +338,12 @@ def _serve(args: argparse.Namespace) -> int:
     from listenpost.core.logs import configure
 
     settings = load_settings(
-        args.config, state_dir=str(args.state_dir), db_url=args.db, host=args.host, port=args.port
+        args.config,
+        environ=os.environ,
+        state_dir=str(args.state_dir),
+        db_url=args.db,
+        host=args.host,
+        port=args.port,
     )
     configure(args.log_format)
     ssl_ctx = tls_context(settings)
@@ -429,26 +439,26 @@ def request(
     body: Any = None,
     params: Sequence[tuple[str, str]] | None = None,
     raw: bool = False,
+    auth: bool = True,
 ) -> Any:
-    """One admin API call with a total timeout; returns the JSON answer (or bytes with ``raw``)."""
-    return asyncio.run(_request(args, method, path, body=body, params=params, raw=raw))
+    """One API call with a total timeout; returns the JSON answer (or bytes with ``raw``). ``auth``:
+    send the admin token (public endpoints such as ``/v1/status`` need none)."""
+    return asyncio.run(_request(args, method, path, body=body, params=params, raw=raw, auth=auth))
 
 
 async def _request(
-    args: argparse.Namespace, method: str, path: str, *, body: Any, params: Any, raw: bool
+    args: argparse.Namespace, method: str, path: str, *, body: Any, params: Any, raw: bool, auth: bool = True
 ) -> Any:
     import aiohttp
 
     base = collector_url(args.collector)
-    token = admin_token(args)
+    headers = {"Authorization": f"Bearer {admin_token(args)}"} if auth else {}
     url = base + path
     timeout = aiohttp.ClientTimeout(total=args.timeout, connect=min(args.timeout, 10.0))
     try:
         async with (
             aiohttp.ClientSession(timeout=timeout) as session,
-            session.request(
-                method, url, json=body, params=params, headers={"Authorization": f"Bearer {token}"}
-            ) as resp,
+            session.request(method, url, json=body, params=params, headers=headers) as resp,
         ):
             data = await resp.read()
             if resp.status >= 400:
@@ -774,61 +784,61 @@ def _tags_retire(args: argparse.Namespace) -> int:
 # ------------------------------------------------------------------ status, export, events
 
 
-def _age(s: float | None) -> str | None:
-    from listenpost.collector.status import fmt_age
-
-    return None if s is None else fmt_age(s)
-
-
 def _num(v: float | None, fmt: str) -> str | None:
     return None if v is None else format(v, fmt)
 
 
+STATUS_FIGURES = (
+    "last_contact_age_s",
+    "readings_per_s",
+    "clock_skew_ppm",
+    "clock_residual_ms",
+    "wall_error_ms",
+    "spool_backlog_batches",
+)
+"""The figures of ``collector status``, labelled and printed as on the health page."""
+
+
 def _status(args: argparse.Namespace) -> int:
-    doc = request(args, "GET", "/v1/status")
+    from listenpost.collector.status import FIGURE, STATE_LABELS, STATE_ORDER
+
+    doc = request(args, "GET", "/v1/status", auth=False)  # public, like the health page
     if args.json:
         _out(json.dumps(doc))
         return 0
     f = doc["fleet"]
+    by_state = f["by_state"]
     _out(
         f"{f['boards']} boards · {f['readings_total']:,} readings · {f['tags']} tags · "
-        + ", ".join(f"{n} {s}" for s, n in sorted(f["by_state"].items()))
+        + ", ".join(
+            f"{by_state[s]} {STATE_LABELS.get(s, (s,))[0]}"
+            for s in (*STATE_ORDER, *sorted(set(by_state) - set(STATE_ORDER)))
+            if by_state.get(s)
+        )
     )
+    figs = [FIGURE[k] for k in STATUS_FIGURES]
     rows = [
         (
             r["name"],
             r["room"],
-            r["state"],
-            _age(r["last_contact_age_s"]),
-            f"{r['readings_total']:,}",
-            _num(r["readings_per_s"], ".1f"),
-            _num(r["clock_skew_ppm"], "+.1f"),
-            _num(r["clock_residual_ms"], ".1f"),
-            _num(None if r["wall_error_ms"] is None else r["wall_error_ms"] / 1000, "+.1f"),
-            r["spool_backlog_batches"],
-            r["state_reason"] or "",
+            STATE_LABELS.get(r["state"], (r["state"],))[0],
+            *(g.text(r[g.key]) for g in figs),
         )
         for r in doc["boards"]
     ]
-    _out(
-        table(
-            rows,
-            (
-                "BOARD",
-                "ROOM",
-                "STATE",
-                "LAST CONTACT",
-                "READINGS",
-                "PER s",
-                "SKEW ppm",
-                "FIT ms",
-                "WALL s",
-                "BACKLOG",
-                "WHY",
-            ),
-            right=(4, 5, 6, 7, 8, 9),
-        )
+    _out(table(rows, ("Board", "Room", "State", *(g.label for g in figs)), right=range(3, 3 + len(figs))))
+    troubled = sorted(
+        (r for r in doc["boards"] if r.get("attention")),
+        key=lambda r: (r["attention"][0]["severity"], r["name"]),
     )
+    if troubled:
+        _out("\nNeeds attention, most urgent first:")
+    for r in troubled:
+        for i in r["attention"]:
+            _out(f"  {r['name']} ({r['room']}): {i['what']}: {i['why']}")
+            _out(f"      on site: {i['site']}")
+            for c in i["commands"]:
+                _out(f"      run: {c['run']}" + ("   (on the board)" if c["on"] == "board" else ""))
     return 0
 
 

@@ -18,7 +18,14 @@ from prometheus_client.exposition import CONTENT_TYPE_PLAIN_0_0_4
 from prometheus_client.registry import Collector
 
 from listenpost.collector.state import RUNTIME
-from listenpost.collector.status import STATE_LABELS, status_doc
+from listenpost.collector.status import FIGURES, STATE_LABELS, Figure, status_doc
+
+
+def metric_help(f: Figure) -> str:
+    """The HELP line of a figure's family: its label and help text; a scaled figure names the unit it
+    is exported in (the unit its metric name ends in)."""
+    unit = f" Exported in {f.metric.rsplit('_', 1)[-1]}." if f.scale != 1.0 and f.metric else ""
+    return f"{f.label}. {f.help}{unit}"
 
 
 class SnapshotCollector(Collector):
@@ -32,85 +39,16 @@ class SnapshotCollector(Collector):
     def collect(self) -> Iterator[Metric]:
         boards = self.doc["boards"]
 
-        def per_board(cls: type, name: str, doc: str, key: str, scale: float = 1.0) -> Metric:
-            fam = cls(name, doc, labels=["board"])
+        # One family per figure of the shared vocabulary (collector/status.py): same name, same help.
+        for f in FIGURES:
+            if f.metric is None:
+                continue
+            cls = CounterMetricFamily if f.counter else GaugeMetricFamily
+            fam = cls(f.metric, metric_help(f), labels=["board"])
             for r in boards:
-                if r.get(key) is not None:
-                    fam.add_metric([r["name"]], r[key] * scale)
-            return fam
-
-        yield per_board(
-            CounterMetricFamily, "listenpost_readings", "Readings stored, per board.", "readings_total"
-        )
-        yield per_board(
-            CounterMetricFamily,
-            "listenpost_gap_readings",
-            "Readings a board reported lost (spool overflow, corruption), per board.",
-            "gap_readings",
-        )
-        yield per_board(
-            CounterMetricFamily,
-            "listenpost_adverts",
-            "Advertisements the board's radio heard (all devices), from its latest heartbeat.",
-            "adverts_total",
-        )
-        yield per_board(
-            GaugeMetricFamily,
-            "listenpost_readings_per_second",
-            "Readings stored per second over the last two minutes, per board.",
-            "readings_per_s",
-        )
-        yield per_board(
-            GaugeMetricFamily,
-            "listenpost_tag_rate_median_hertz",
-            "Median over the tags a board heard recently of its readings per tag per second, "
-            "from its latest heartbeat (far below the tags' advertising rate: the radio misses adverts).",
-            "tag_rate_hz_median",
-        )
-        yield per_board(
-            GaugeMetricFamily,
-            "listenpost_clock_offset_seconds",
-            "Collector time minus board monotonic time at the fit's reference point.",
-            "clock_offset_ms",
-            1e-3,
-        )
-        yield per_board(
-            GaugeMetricFamily,
-            "listenpost_clock_skew_ppm",
-            "Board clock rate error against the collector, parts per million (positive: fast).",
-            "clock_skew_ppm",
-        )
-        yield per_board(
-            GaugeMetricFamily,
-            "listenpost_wall_clock_error_seconds",
-            "Board wall clock minus collector time (health figure; readings do not use it).",
-            "wall_error_ms",
-            1e-3,
-        )
-        yield per_board(
-            GaugeMetricFamily,
-            "listenpost_heartbeat_age_seconds",
-            "Seconds since the board's latest heartbeat.",
-            "heartbeat_age_s",
-        )
-        yield per_board(
-            GaugeMetricFamily,
-            "listenpost_last_contact_age_seconds",
-            "Seconds since the board's latest heartbeat or batch.",
-            "last_contact_age_s",
-        )
-        yield per_board(
-            GaugeMetricFamily,
-            "listenpost_spool_backlog_batches",
-            "Sealed batches waiting in the board's spool, from its latest heartbeat.",
-            "spool_backlog_batches",
-        )
-        yield per_board(
-            GaugeMetricFamily,
-            "listenpost_spool_backlog_bytes",
-            "Bytes waiting in the board's spool, from its latest heartbeat.",
-            "spool_backlog_bytes",
-        )
+                if r.get(f.key) is not None:
+                    fam.add_metric([r["name"]], r[f.key] * f.scale)
+            yield fam
 
         state = GaugeMetricFamily(
             "listenpost_board_state",

@@ -1,14 +1,15 @@
 """
-The technician's view: ``GET /`` (server-rendered health page) and ``GET /v1/status`` (the same facts as JSON).
+The technician's view: ``GET /`` (what needs a person, then the fleet by floor and room) and
+``GET /v1/status`` (the same facts as JSON), plus the layout every page of the view shares.
 
-The page works without JavaScript; a small inline script re-fetches ``/v1/status`` every few seconds
-and redraws the tables. No external assets: the CSS and the script are inlined from ``templates/``.
+Every page is rendered on the server and works without JavaScript; a small script re-fetches the
+same page every few seconds and swaps in its ``<main>``. No external assets: the CSS and the script
+are inlined from ``templates/``.
 """
 
 from __future__ import annotations
 
 import html
-import json
 import math
 import time
 from pathlib import Path
@@ -19,135 +20,231 @@ from aiohttp import web
 
 from listenpost.collector.http.middlewares import bad_field
 from listenpost.collector.state import SETTINGS
-from listenpost.collector.status import REFRESH_SECONDS, STATE_LABELS, fmt_age, fmt_clock_error, status_doc
+from listenpost.collector.status import (
+    FIGURE,
+    FIGURES,
+    REFRESH_SECONDS,
+    STATE_LABELS,
+    STATE_ORDER,
+    status_doc,
+)
 
 TEMPLATES = Path(__file__).parent / "templates"
 # Read at import, not per request: the page handler must not read files on the event loop.
 _TEMPLATE_TEXT = {
-    name: (TEMPLATES / name).read_text(encoding="utf-8")
-    for name in ("health.html", "health.css", "health.js")
+    name: (TEMPLATES / name).read_text(encoding="utf-8") for name in ("layout.html", "site.css", "refresh.js")
 }
+
+NAV = (("/", "Fleet"), ("/plan", "Plan"))
+CURRENT = ' aria-current="page"'
+
+CARD_FIGURES = (
+    "last_contact_age_s",
+    "readings_per_s",
+    "tag_rate_hz_median",
+    "clock_skew_ppm",
+    "clock_residual_ms",
+    "wall_error_ms",
+    "spool_backlog_batches",
+    "adverts_total",
+)
+"""The figures on each board's card, in this order (all of them are on the board's own page)."""
 
 
 async def status(request: web.Request) -> web.Response:
     return web.json_response(await status_doc(request.app))
 
 
-# ------------------------------------------------------------------ HTML
+# ------------------------------------------------------------------ shared pieces
 
 
-def _fmt(v: Any, unit: str = "", digits: int = 1) -> str:
-    if v is None:
-        return "–"
-    if isinstance(v, float):
-        if abs(v) < 0.5 * 10**-digits:
-            v = 0.0  # no "-0.00"
-        return f"{v:,.{digits}f}{unit}"
-    if isinstance(v, int):
-        return f"{v:,}{unit}"
-    return html.escape(str(v)) + unit
+def esc(v: Any) -> str:
+    return html.escape(str(v), quote=True)
 
 
-def _state_badge(state: str, reason: str | None) -> str:
+def state_badge(state: str) -> str:
     text, symbol = STATE_LABELS.get(state, (state, "?"))
-    title = f' title="{html.escape(reason)}"' if reason else ""
-    return (
-        f'<span class="state s-{html.escape(state)}"{title}><span aria-hidden="true">{symbol}</span> '
-        f"{html.escape(text)}</span>"
-    )
+    return f'<span class="state s-{esc(state)}"><span aria-hidden="true">{symbol}</span> {esc(text)}</span>'
 
 
-def _event_text(ev: dict[str, Any]) -> str:
-    new = ev["detail"].get("new") if ev["kind"] == "state_changed" else None
-    return f"→ {new}" if new else ev["kind"]
+def clock_text(t: float) -> str:
+    return time.strftime("%H:%M:%S", time.gmtime(t))
 
 
-def _event_note(ev: dict[str, Any]) -> str:
-    """What follows the kind in the events list: the new state, or which batches a loss covers."""
-    d = ev["detail"]
-    if ev["kind"] == "loss" and "first_seq" in d:
-        return f" batches {d['first_seq']}–{d['last_seq']} lost"
-    return f" → {d['new']}" if d.get("new") else ""
-
-
-def _tag_rate_title(r: dict[str, Any]) -> str:
-    if r["tags_heard"] is None:
-        return ""
-    return f' title="median over {r["tags_heard"]:.0f} tags heard recently"'
-
-
-def _board_row(r: dict[str, Any]) -> str:
-    ev = r["last_event"]
-    cells = [
-        f'<th scope="row">{html.escape(r["name"])}</th>',
-        f"<td>{html.escape(r['room'])}</td>",
-        f"<td>{_fmt(r['floor'])}</td>",
-        f'<td class="st">{_state_badge(r["state"], r["state_reason"])}</td>',
-        f'<td class="age num">{fmt_age(r["last_contact_age_s"])}</td>',
-        f'<td class="num readings">{_fmt(r["readings_total"])}</td>',
-        f'<td class="num rate">{_fmt(r["readings_per_s"], "/s")}</td>',
-        f'<td class="num tagrate"{_tag_rate_title(r)}>{_fmt(r["tag_rate_hz_median"], " Hz", 2)}</td>',
-        f'<td class="num">{_fmt(r["clock_skew_ppm"], " ppm", 2)}</td>',
-        f'<td class="num">{_fmt(r["clock_residual_ms"], " ms", 2)}</td>',
-        f'<td class="num">{fmt_clock_error(r["wall_error_ms"] / 1000.0 if r["wall_error_ms"] is not None else None)}</td>',
-        f'<td class="num">{_fmt(r["spool_backlog_batches"])}</td>',
-        f'<td class="num">{_fmt(r["adverts_total"])}</td>',
-        f"<td>{html.escape(_event_text(ev)) if ev else '–'}</td>",
-    ]
-    return (
-        f'<tr data-board="{html.escape(r["name"])}" data-state="{html.escape(r["state"])}">'
-        + "".join(cells)
-        + "</tr>"
-    )
-
-
-def render_page(doc: dict[str, Any], title: str = "listenpost · receivers") -> str:
-    fleet = doc["fleet"]
-    summary = " ".join(
-        f"<li>{_state_badge(s, None)} <b>{n}</b></li>" for s, n in sorted(fleet["by_state"].items())
-    )
-    events = (
-        "".join(
-            f"<li><time>{time.strftime('%H:%M:%S', time.gmtime(e['at']))}</time> "
-            f"<b>{html.escape(e['board'] or 'collector')}</b> {html.escape(e['kind'])}"
-            f"{html.escape(_event_note(e))}"
-            f"{' <span class=why>' + html.escape(str(e['detail']['reason'])) + '</span>' if e['detail'].get('reason') else ''}</li>"
-            for e in doc["events"]
+def figure_list(r: dict[str, Any], keys: tuple[str, ...] = CARD_FIGURES) -> str:
+    """A board's figures as label/value pairs; each value carries its figure key for tools and tests."""
+    items = []
+    for key in keys:
+        f = FIGURE[key]
+        off = key == "wall_error_ms" and any(i["what"] == "Wall clock off" for i in r.get("attention", ()))
+        cls = ' class="off"' if off else ""
+        items.append(
+            f'<div><dt>{esc(f.label)}</dt><dd data-figure="{key}"{cls}>{esc(f.text(r.get(key)))}</dd></div>'
         )
-        or "<li>no events yet</li>"
-    )
-    return Template(_TEMPLATE_TEXT["health.html"]).substitute(
-        title=html.escape(title),
-        css=_TEMPLATE_TEXT["health.css"],
-        js=_TEMPLATE_TEXT["health.js"],
-        boards_total=fleet["boards"],
-        readings_total=f"{fleet['readings_total']:,}",
-        tags_total=fleet["tags"],
-        summary=summary,
-        rows="".join(_board_row(r) for r in doc["boards"]),
-        events=events,
-        refresh_ms=int(doc["refresh_seconds"] * 1000),
-        generated=time.strftime("%Y-%m-%d %H:%M:%S UTC", time.gmtime(doc["at"])),
-        labels=html.escape(json.dumps(STATE_LABELS), quote=True),
-    )
+    return f'<dl class="figs">{"".join(items)}</dl>'
 
 
-async def page(request: web.Request) -> web.Response:
-    raw = request.query.get("refresh")  # ?refresh=S: a wall display may want it slower, a test faster
+def where(r: dict[str, Any]) -> str:
+    floor = f" · floor {r['floor']}" if r.get("floor") else ""
+    return f"{r['room']}{floor}"
+
+
+def refresh_seconds(request: web.Request) -> float:
+    """``?refresh=S``: a wall display may want it slower, a test faster; 0 turns refreshing off."""
+    raw = request.query.get("refresh")
     try:
         refresh = float(raw) if raw is not None else REFRESH_SECONDS
     except ValueError:
         refresh = math.nan
     if not math.isfinite(refresh):
-        raise bad_field("refresh", f"must be seconds (clamped to 0.2..300), got {raw[:40]!r}")
-    doc = await status_doc(request.app)
-    doc["refresh_seconds"] = min(max(refresh, 0.2), 300.0)
-    name = request.app[SETTINGS].public_url or request.host
-    return web.Response(
-        text=render_page(doc, f"listenpost · {name}"),
-        content_type="text/html",
-        headers={"Cache-Control": "no-store"},
+        raise bad_field(
+            "refresh", f"must be seconds (0 for never, else clamped to 0.2..300), got {raw[:40]!r}"
+        )
+    return 0.0 if refresh <= 0 else min(max(refresh, 0.2), 300.0)
+
+
+def render_layout(*, title: str, site: str, body: str, current: str, at: float, refresh: float) -> str:
+    nav = "".join(
+        f'<li><a href="{href}"{CURRENT if href == current else ""}>{text}</a></li>' for href, text in NAV
     )
+    return Template(_TEMPLATE_TEXT["layout.html"]).substitute(
+        title=esc(title),
+        site=esc(site),
+        nav=nav,
+        css=_TEMPLATE_TEXT["site.css"],
+        js=_TEMPLATE_TEXT["refresh.js"],
+        body=body,
+        refresh_ms=int(refresh * 1000),
+        generated=time.strftime("%Y-%m-%d %H:%M:%S UTC", time.gmtime(at)),
+    )
+
+
+def site_name(request: web.Request) -> str:
+    return request.app[SETTINGS].public_url or request.host
+
+
+def html_response(text: str, status: int = 200) -> web.Response:
+    return web.Response(
+        text=text, status=status, content_type="text/html", headers={"Cache-Control": "no-store"}
+    )
+
+
+# ------------------------------------------------------------------ the fleet page
+
+
+def _issue_card(r: dict[str, Any]) -> str:
+    issues = r["attention"]
+    parts = [
+        f'<article class="issue sev-{issues[0]["severity"]}" data-board="{esc(r["name"])}" '
+        f'data-state="{esc(r["state"])}" aria-labelledby="i-{esc(r["name"])}">',
+        f'<h3 id="i-{esc(r["name"])}"><a href="/board/{esc(r["name"])}">{esc(r["name"])}</a> '
+        f'{state_badge(r["state"])} <span class="where">{esc(where(r))}</span></h3>',
+    ]
+    for i in issues:
+        todo = "".join(
+            f"<li>{'On the board, run' if c['on'] == 'board' else 'Run'} <code>{esc(c['run'])}</code></li>"
+            for c in i["commands"]
+        )
+        parts.append(
+            f'<p class="what"><b>{esc(i["what"])}</b></p><p class="why">{esc(i["why"])}</p>'
+            f'<ul class="todo"><li>On site: {esc(i["site"])}</li>{todo}</ul>'
+        )
+    parts.append(figure_list(r))
+    parts.append("</article>")
+    return "".join(parts)
+
+
+def _board_card(r: dict[str, Any]) -> str:
+    return (
+        f'<article class="board" data-board="{esc(r["name"])}" data-state="{esc(r["state"])}" '
+        f'aria-labelledby="b-{esc(r["name"])}">'
+        f'<h4 id="b-{esc(r["name"])}"><a href="/board/{esc(r["name"])}">{esc(r["name"])}</a> '
+        f"{state_badge(r['state'])}</h4>{figure_list(r)}</article>"
+    )
+
+
+def _floor_key(floor: Any) -> tuple[int, str]:
+    return (1, "") if floor in (None, "") else (0, str(floor))
+
+
+def render_page(doc: dict[str, Any], site: str = "", refresh: float = REFRESH_SECONDS) -> str:
+    fleet, rows = doc["fleet"], doc["boards"]
+    chips = "".join(
+        f"<li>{state_badge(s)} <b>{fleet['by_state'][s]}</b></li>"
+        for s in (*STATE_ORDER, *sorted(set(fleet["by_state"]) - set(STATE_ORDER)))
+        if fleet["by_state"].get(s)
+    )
+    troubled = sorted(
+        (r for r in rows if r["attention"]), key=lambda r: (r["attention"][0]["severity"], r["name"])
+    )
+    if troubled:
+        attention = (
+            f'<p class="lede">{len(troubled)} of {fleet["boards"]} boards need a person, the most urgent '
+            f'first.</p><div class="issues">{"".join(_issue_card(r) for r in troubled)}</div>'
+        )
+    else:
+        attention = f'<p class="allwell">Nothing needs attention: all {fleet["boards"]} boards are fine.</p>'
+    rest = [r for r in rows if not r["attention"]]
+    groups: list[str] = []
+    for floor in sorted({r["floor"] for r in rest}, key=_floor_key):
+        on_floor = [r for r in rest if r["floor"] == floor]
+        rooms = []
+        for room in sorted({r["room"] for r in on_floor}):
+            cards = "".join(
+                _board_card(r) for r in sorted(on_floor, key=lambda r: r["name"]) if r["room"] == room
+            )
+            rooms.append(f'<h4 class="room">{esc(room)}</h4><div class="cards">{cards}</div>')
+        title = f"Floor {esc(floor)}" if floor else "No floor given"
+        groups.append(f'<section class="floor"><h3>{title}</h3>{"".join(rooms)}</section>')
+    events = "".join(
+        f'<li><time datetime="{int(e["at"])}">{clock_text(e["at"])}</time> '
+        + (
+            f'<a href="/board/{esc(e["board"])}">{esc(e["board"])}</a> '
+            if e["board"]
+            else "<b>collector</b> "
+        )
+        + f"{esc(e['text'])}</li>"
+        for e in doc["events"]
+    )
+    glossary = "".join(
+        f"<dt>{esc(f.heading())}</dt><dd>{esc(f.help)}</dd>" for f in FIGURES if f.key in CARD_FIGURES
+    )
+    body = f"""
+<h1>Receivers</h1>
+<p class="lede"><b id="boards-total">{fleet["boards"]}</b> boards · <b id="readings-total">{fleet["readings_total"]:,}</b>
+readings stored · <b id="tags-total">{fleet["tags"]}</b> registered tags</p>
+<ul class="chips" id="summary" aria-label="Boards per state">{chips}</ul>
+<section aria-labelledby="attn-h" id="attention">
+<h2 id="attn-h">Needs attention</h2>
+{attention}
+</section>
+<section aria-labelledby="fleet-h" id="fleet">
+<h2 id="fleet-h">{"The rest of the fleet" if troubled else "The fleet"}, by floor and room</h2>
+{"".join(groups) or '<p class="lede">No other boards.</p>'}
+</section>
+<section aria-labelledby="events-h">
+<h2 id="events-h">Recent events</h2>
+<ol id="events" class="events">{events or "<li>no events yet</li>"}</ol>
+</section>
+<section aria-labelledby="gloss-h">
+<h2 id="gloss-h">What the figures mean</h2>
+<details id="glossary"><summary>Show the explanations</summary><dl class="glossary">{glossary}</dl></details>
+</section>
+"""
+    return render_layout(
+        title=f"listenpost · {site}" if site else "listenpost · receivers",
+        site=site,
+        body=body,
+        current="/",
+        at=doc["at"],
+        refresh=refresh,
+    )
+
+
+async def page(request: web.Request) -> web.Response:
+    refresh = refresh_seconds(request)
+    doc = await status_doc(request.app)
+    return html_response(render_page(doc, site_name(request), refresh))
 
 
 def add_routes(app: web.Application) -> None:

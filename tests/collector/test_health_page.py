@@ -6,6 +6,7 @@ driven into different states by the monitor on virtual time.
 from __future__ import annotations
 
 import os
+import re
 import shutil
 from pathlib import Path
 from typing import Any
@@ -143,7 +144,8 @@ async def test_fleet_states_in_status_json(fleet):
     assert rows["g0-a"]["readings_per_s"] == pytest.approx(1.2) and rows["u2-a"][
         "readings_per_s"
     ] == pytest.approx(1.2)
-    assert rows["g2-a"]["readings_per_s"] == 0.0 and rows["u3-a"]["readings_per_s"] == 0.0
+    assert rows["g2-a"]["readings_per_s"] == 0.0
+    assert rows["g0-a"]["readings_rate_window_s"] == pytest.approx(120, abs=10)
     assert (rows["g0-a"]["tag_rate_hz_median"], rows["g2-a"]["tag_rate_hz_median"]) == (1.95, 0.35)
     assert rows["u3-a"]["tag_rate_hz_median"] is None and rows["u5-a"]["readings_per_s"] is None
     kinds = [(e["board"], e["detail"].get("new")) for e in doc["events"] if e["kind"] == "state_changed"]
@@ -156,12 +158,114 @@ async def test_page_renders_without_javascript(fleet):
     html = await r.text()
     assert r.status == 200 and r.content_type == "text/html"
     assert 'data-board="g2-a" data-state="deaf"' in html
-    row = html[html.index('data-board="g0-a"') :]
-    row = row[: row.index("</tr>")]
-    assert '<td class="num rate">1.2/s</td>' in row and ">1.95 Hz</td>" in row
+    card = html[html.index('data-board="g0-a"') :]
+    card = card[: card.index("</article>")]
+    assert '<dd data-figure="readings_per_s">1.2/s</dd>' in card
+    assert '<dd data-figure="tag_rate_hz_median">1.95/s</dd>' in card
     assert (
         "http://" not in html.replace(str(client.make_url("/")), "") and "https://" not in html
     )  # no external assets
+    assert "<main" in html and "<table" not in html  # a landmark; no wide table to scroll sideways
+
+
+async def test_page_leads_with_what_needs_a_person(fleet):
+    """Troubled boards come first, most urgent first, each with the reason in words and what to do;
+    the healthy rest follows, grouped by floor and room."""
+    client, _ = fleet
+    html = await (await client.get("/")).text()
+    attention = html[html.index('id="attention"') : html.index('id="fleet"')]
+    rest = html[html.index('id="fleet"') : html.index('id="events-h"')]
+    order = [name for name in ("u3-a", "g2-a", "u2-a", "g3-b", "u5-a") if f'data-board="{name}"' in attention]
+    assert order == ["u3-a", "g2-a", "u2-a", "g3-b", "u5-a"]
+    assert sorted(order, key=attention.index) == order
+    assert 'data-board="g0-a"' not in attention and 'data-board="g0-a"' in rest
+    for name, words in (
+        ("u3-a", "no heartbeat or batch for 5 min 20 s"),
+        ("g2-a", "radio counted no advertisements"),
+        ("u2-a", "clock skew +85"),
+        ("g3-b", "spool grew by"),
+        ("u5-a", "board reissue u5-a --bundle DIR"),
+    ):
+        card = attention[attention.index(f'data-board="{name}"') :]
+        card = card[: card.index("</article>")]
+        assert words in card, (name, card)
+        assert "On site:" in card and "<code>" in card
+    assert "sudo systemctl restart listenpost-agent" in attention  # the deaf board's next step
+    assert 'id="fleet-h">The rest of the fleet, by floor and room' in rest and "G0 Foyer" in rest
+
+
+async def test_a_silent_board_has_no_current_rate(fleet):
+    """Before: a silent board showed the average of a window reaching back before its silence."""
+    client, boards = fleet
+    rows = {r["name"]: r for r in (await (await client.get("/v1/status")).json())["boards"]}
+    assert rows["u3-a"]["state"] == "silent" and rows["u3-a"]["readings_per_s"] is None
+    assert rows["u3-a"]["readings_rate_window_s"] is None
+
+
+async def test_the_silent_reason_counts_to_the_same_now_as_the_age(fleet, clock):
+    """
+    The reason of a silent board was the monitor's text from its latest round, counted to that round's
+    time, while the age beside it counted to the request: "no contact for 47 s" beside "84 s ago".
+    Both now count from the same last contact to the same now.
+    """
+    client, _ = fleet
+    await clock.advance(30)  # no monitor round since: the stored verdict is 30 s old
+    row = next(r for r in (await (await client.get("/v1/status")).json())["boards"] if r["name"] == "u3-a")
+    assert row["last_contact_age_s"] == pytest.approx(350, abs=1)
+    m = re.search(r"for (?:(\d+) min )?(\d+) s", row["state_reason"])
+    assert m, row["state_reason"]
+    assert int(m[1] or 0) * 60 + int(m[2]) == pytest.approx(row["last_contact_age_s"], abs=1)
+
+
+async def test_events_read_in_words(fleet):
+    client, _ = fleet
+    doc = await (await client.get("/v1/status")).json()
+    silent = next(e for e in doc["events"] if e["board"] == "u3-a" and e["detail"].get("new") == "silent")
+    assert silent["text"].startswith("became silent (was live): no contact for")
+    assert "phi" not in silent["text"]
+    html = await (await client.get("/")).text()
+    events = html[html.index('id="events"') :]
+    assert "state_changed" not in events and "phi" not in events and "became deaf (was live)" in events
+
+
+async def test_spool_bytes_are_no_backlog_when_no_batch_waits(fleet):
+    """A board counts sent batches in its spool bytes until its next seal removes them: with 0 batches
+    waiting the byte backlog is 0, not the bytes of batches already delivered."""
+    client, boards = fleet
+    b = boards["g0-a"]
+    b.spool = 0
+    body_stats = {"spool": {"batches": 0, "bytes": 48_213}, "pipeline": {"adverts_total": b.adverts}}
+    r = await client.post(
+        "/v1/heartbeat",
+        json={"board": b.name, "boot": b.clock.boot_id, "t1": b.clock.monotonic(), "stats": body_stats},
+        headers=b.auth,
+    )
+    assert r.status == 200, await r.text()
+    row = next(r for r in (await (await client.get("/v1/status")).json())["boards"] if r["name"] == "g0-a")
+    assert (row["spool_backlog_batches"], row["spool_backlog_bytes"]) == (0, 0)
+
+
+async def test_a_board_hours_off_in_wall_clock_needs_attention(aiohttp_client, tmp_path, clock):
+    """A board whose wall clock is 3 h 12 min behind is live, but its time sync is broken: it is listed
+    with the time-sync steps and its figure is marked."""
+    client = await make_client(aiohttp_client, tmp_path, clock)
+    b = VirtualBoard("g4-a", "G4 Planet Room", clock)
+    await b.enroll(client, tmp_path)
+    b.clock = DerivedClock(
+        clock, boot_at=clock.monotonic() - 100.0, boot_id="boot-g4-a", wall_error_s=-11520.0
+    )
+    monitor = client.app[MONITOR]
+    for _ in range(6):
+        await b.beat(client)
+        await clock.advance(10)
+        await monitor.run_once()
+    row = (await (await client.get("/v1/status")).json())["boards"][0]
+    assert row["state"] == "live" and row["attention"][0]["what"] == "Wall clock off"
+    assert "3 h 12 min behind" in row["attention"][0]["why"]
+    html = await (await client.get("/")).text()
+    card = html[html.index('data-board="g4-a"') :]
+    assert '<dd data-figure="wall_error_ms" class="off">−3 h 12 min</dd>' in card
+    assert "sudo timedatectl set-ntp true" in card
 
 
 def _browser_or_skip() -> None:
@@ -171,56 +275,95 @@ def _browser_or_skip() -> None:
         pytest.skip(f"browser test: {CHROMIUM} not installed")
 
 
+WIDTHS = {"desktop": (1280, 800), "phone": (390, 844)}
+PAGES = {"fleet": "/"}
+"""Every page of the technician's view, checked at both widths."""
+
+
+def axe_script() -> Path:
+    """axe-core 4.12.1 as bundled by the PyPI package axe-playwright-python 0.1.8 (the test extra)."""
+    import axe_playwright_python
+
+    return Path(axe_playwright_python.__file__).parent / "axe.min.js"
+
+
+async def check_page(page: Any, url: str, shot: Path) -> None:
+    """No sideways scrolling, no serious or critical axe-core violation, and a screenshot at ``shot``."""
+    await page.goto(url, timeout=15_000)
+    width = await page.evaluate("() => [document.scrollingElement.scrollWidth, window.innerWidth]")
+    assert width[0] <= width[1], (url, width)
+    await page.add_script_tag(path=str(axe_script()))
+    result = await page.evaluate("() => axe.run(document, {resultTypes: ['violations']})")
+    bad = [
+        (v["id"], v["impact"], [n["target"] for n in v["nodes"]][:3])
+        for v in result["violations"]
+        if v["impact"] in ("serious", "critical")
+    ]
+    assert not bad, (url, bad)
+    await page.screenshot(path=str(shot), full_page=True)
+    # The first screen as well: what a phone shows before any scrolling.
+    await page.screenshot(path=str(shot.with_name(shot.stem + "-top.png")))
+
+
 @pytest.mark.browser
-async def test_health_page_in_a_real_browser(aiohttp_client, tmp_path, clock):
+async def test_pages_in_a_real_browser(aiohttp_client, tmp_path, clock):
+    """
+    Each page at 1280 px and at 390 px in headless Chromium: no sideways scrolling, no serious or
+    critical accessibility violation (axe-core), screenshots for people to look at; and the fleet
+    page refreshes itself.
+    """
     _browser_or_skip()
     from playwright.async_api import async_playwright
 
     client, boards = await build_fleet(aiohttp_client, tmp_path, clock)
-    url = str(client.make_url("/?refresh=0.3"))
+    shots = tmp_path / "screenshots"
+    shots.mkdir()
+    print(f"screenshots: {shots}")
     async with async_playwright() as pw:
         browser = await pw.chromium.launch(executable_path=CHROMIUM, args=CHROMIUM_ARGS)
         try:
-            page = await browser.new_page(viewport={"width": 1700, "height": 900})
-            await page.goto(url, timeout=15_000)
-            rows = page.locator("#boards tbody tr")
-            assert await rows.count() == 6
-            seen = {}
+            for wname, (w, h) in WIDTHS.items():
+                page = await browser.new_page(viewport={"width": w, "height": h})
+                for pname, path in PAGES.items():
+                    await check_page(
+                        page, str(client.make_url(path + "?refresh=0")), shots / f"{pname}-{wname}.png"
+                    )
+                await page.close()
+            page = await browser.new_page(viewport={"width": 1280, "height": 800})
+            await page.goto(str(client.make_url("/?refresh=0.3")), timeout=15_000)
+            cards = page.locator("article[data-board]")
+            assert await cards.count() == 6
+            badge = {}
             for i in range(6):
-                row = rows.nth(i)
-                seen[await row.get_attribute("data-board")] = (
-                    await row.locator("td.st").inner_text()
+                card = cards.nth(i)
+                badge[await card.get_attribute("data-board")] = (
+                    await card.locator(".state").first.inner_text()
                 ).strip()
-            assert seen["g0-a"].endswith("live") and seen["u3-a"].endswith("silent")
-            assert seen["g2-a"].endswith("deaf") and seen["u2-a"].endswith("drifting")
-            assert seen["g3-b"].endswith("backlogged") and seen["u5-a"].endswith("not yet seen")
+            assert badge["g0-a"].endswith("live") and badge["u3-a"].endswith("silent")
+            assert badge["g2-a"].endswith("deaf") and badge["u2-a"].endswith("drifting")
+            assert badge["g3-b"].endswith("backlogged") and badge["u5-a"].endswith("not yet seen")
             # Colour is not the only signal, but it is there: silent and live badges differ.
-            live_bg = await page.locator('tr[data-board="g0-a"] .state').evaluate(
-                "e => getComputedStyle(e).backgroundColor"
-            )
-            silent_bg = await page.locator('tr[data-board="u3-a"] .state').evaluate(
-                "e => getComputedStyle(e).backgroundColor"
-            )
+            bg = "e => getComputedStyle(e).backgroundColor"
+            live_bg = await page.locator('article[data-board="g0-a"] .state').first.evaluate(bg)
+            silent_bg = await page.locator('article[data-board="u3-a"] .state').first.evaluate(bg)
             assert live_bg != silent_bg
-            cell = page.locator('tr[data-board="g0-a"] td.readings')
-            before = await cell.inner_text()
-            assert before == f"{36 * 12:,}"
+            assert await page.locator("#readings-total").inner_text() == f"{2 * 36 * 12:,}"
             # New readings arrive; the script's refresh must show them without a reload.
             await boards["g0-a"].send(client, n=30)
             await page.wait_for_function(
-                "() => document.querySelector('tr[data-board=\"g0-a\"] td.readings').textContent === '462'",
-                timeout=10_000,
+                "() => document.getElementById('readings-total').textContent === '894'", timeout=10_000
             )
             assert await page.locator("#refresh-state").inner_text() == ""
-            # The redrawn rows carry the rates too (the script's formatting, not the server's).
-            assert await page.locator('tr[data-board="g0-a"] td.rate').inner_text() == "1.2/s"
-            assert await page.locator('tr[data-board="g2-a"] td.tagrate').inner_text() == "0.35 Hz"
-            assert await page.locator('tr[data-board="u3-a"] td.tagrate').inner_text() == "–"
-            shot = tmp_path / "health.png"
-            await page.screenshot(path=str(shot), full_page=True)
-            assert shot.stat().st_size > 10_000
-            if os.path.isdir("/tmp/lp"):  # noqa: ASYNC240 (a copy for people to look at; not committed)
-                shutil.copyfile(shot, "/tmp/lp/health2.png")
+            assert (
+                await page.locator(
+                    'article[data-board="g2-a"] [data-figure="tag_rate_hz_median"]'
+                ).inner_text()
+                == "0.35/s"
+            )
+            assert all(s.stat().st_size > 5_000 for s in shots.iterdir())  # noqa: ASYNC240
+            if os.path.isdir("/tmp/lp"):  # noqa: ASYNC240 (copies for people to look at; not committed)
+                for shot in shots.iterdir():
+                    shutil.copyfile(shot, Path("/tmp/lp") / shot.name)
         finally:
             await browser.close()
 

@@ -66,7 +66,7 @@ def test_the_wheel_holds_one_namespace_and_its_package_data(wheel):
         "listenpost/replay_logs/truth.json",
         "listenpost/replay_logs/g0-a.btsnoop.gz",
         "listenpost/scenarios/brackenford.yaml",
-        "listenpost/collector/web/templates/health.html",
+        "listenpost/collector/web/templates/layout.html",
     ):
         assert data in names
     assert any(n.endswith("licenses/LICENSE") for n in names)
