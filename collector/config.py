@@ -19,12 +19,18 @@ Every key is optional; an absent file means all defaults::
       rules:
         - {name: lpx, company_id: 0xFFFF, prefix: "4c50", offset: 2, length: 4}
     monitor: {interval_seconds: 5}
+    database: {url: "postgresql://listenpost@db.internal/listenpost"}   # default: SQLite in the state dir
+
+The database URL may carry a password, so it can also come from outside the file (`database_url_from`):
+``$CREDENTIALS_DIRECTORY/db_url`` (systemd ``LoadCredential=db_url:...``) wins, then ``$LISTENPOST_DB_URL``
+(e.g. from the unit's ``EnvironmentFile=``), then ``database.url``; ``serve --db`` beats all three.
 """
 
 from __future__ import annotations
 
 import dataclasses
 import re
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -43,6 +49,9 @@ from listenpost.core.settings import (
 __all__ = ["rule_to_json"]  # board API answers carry the rules in the form agent.yaml reads
 
 DEFAULT_PORT = 8470
+DB_URL_ENV = "LISTENPOST_DB_URL"
+DB_URL_CREDENTIAL = "db_url"
+"""The name of the systemd credential holding the database URL (``$CREDENTIALS_DIRECTORY/db_url``)."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -227,9 +236,14 @@ def parse_settings(data: Any, origin: str = "collector.yaml", **overrides: Any) 
     mon = top.section("monitor")
     interval = mon.get("interval_seconds", float, 5.0, positive)
     mon.done()
+
+    db = top.section("database")
+    db_url = db.get("url", str, None, check_db_url)
+    db.done()
     top.done()
 
     settings = CollectorSettings(
+        db_url=db_url,
         host=host,
         port=port,
         tls_cert=cert,
@@ -253,8 +267,46 @@ def parse_settings(data: Any, origin: str = "collector.yaml", **overrides: Any) 
     return settings.replace(**{k: v for k, v in overrides.items() if v is not None})
 
 
-def load_settings(path: str | Path | None, **overrides: Any) -> CollectorSettings:
-    """Load ``collector.yaml`` (or defaults when ``path`` is None) and apply command-line overrides."""
+def check_db_url(v: str) -> str | None:
+    """`Section.get` check of a database URL: the schemes `listenpost.collector.store.open_store` knows."""
+    if re.match(r"^(postgres(ql)?://\S+|sqlite:///\S+)$", v.strip()):
+        return None
+    return "must be postgresql://... or sqlite:///PATH"
+
+
+def database_url_from(environ: Mapping[str, str]) -> tuple[str, str] | None:
+    """
+    The database URL given outside collector.yaml, and where it came from: the systemd credential
+    ``db_url`` first, then ``$LISTENPOST_DB_URL``; None when neither is set.
+
+    Raises:
+        ConfigError: the credential cannot be read, or either value is not a database URL.
+    """
+    found: tuple[str, str] | None = None
+    creds = environ.get("CREDENTIALS_DIRECTORY")
+    if creds and (Path(creds) / DB_URL_CREDENTIAL).exists():
+        path = Path(creds) / DB_URL_CREDENTIAL
+        try:
+            found = (path.read_text().strip(), f"credential {DB_URL_CREDENTIAL} ({path})")
+        except (OSError, UnicodeDecodeError) as e:
+            raise ConfigError(f"credential {DB_URL_CREDENTIAL}: {path}: cannot read: {e}") from e
+    elif environ.get(DB_URL_ENV, "").strip():
+        found = (environ[DB_URL_ENV].strip(), f"${DB_URL_ENV}")
+    if found is not None and (problem := check_db_url(found[0])):
+        # The value itself may hold a password: name where it came from, not what it is.
+        raise ConfigError(f"{found[1]}: {problem}")
+    return found
+
+
+def load_settings(
+    path: str | Path | None, environ: Mapping[str, str] | None = None, **overrides: Any
+) -> CollectorSettings:
+    """
+    Load ``collector.yaml`` (or defaults when ``path`` is None) and apply command-line overrides;
+    with ``environ``, a database URL from the environment (`database_url_from`) beats the file's.
+    """
+    if environ is not None and overrides.get("db_url") is None and (env := database_url_from(environ)):
+        overrides["db_url"] = env[0]
     if path is None:
         return parse_settings({}, "(defaults)", **overrides)
     return parse_settings(load_yaml(path), str(path), **overrides)

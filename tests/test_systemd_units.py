@@ -7,6 +7,7 @@ The unit files pass ``systemd-analyze verify`` (systemd 252 here; docs/reference
 
 from __future__ import annotations
 
+import re
 import shutil
 import subprocess
 import sys
@@ -145,5 +146,75 @@ def test_collector_unit_contract():
     assert d["ProtectSystem"] == ["strict"] and d["NoNewPrivileges"] == ["true"]
     assert d["StateDirectory"] == ["listenpost/collector"]
     assert d["AmbientCapabilities"] == [""] and d["CapabilityBoundingSet"] == [""]
-    assert "bluetooth" not in (UNITS / "listenpost-collector.service").read_text().lower()
-    assert "collector serve --state-dir /var/lib/listenpost/collector" in d["ExecStart"][0]
+    text = (UNITS / "listenpost-collector.service").read_text()
+    assert "bluetooth" not in text.lower()
+    # collector.yaml decides where it listens and which database it uses: nothing in argv overrides it.
+    start = d["ExecStart"][0]
+    assert start.endswith(
+        "collector serve --state-dir /var/lib/listenpost/collector --config /etc/listenpost/collector.yaml"
+    )
+    assert "--host" not in start and "--port" not in start and "--db" not in start
+    assert d["EnvironmentFile"] == ["-/etc/listenpost/collector.env"]
+    assert "#LoadCredential=db_url:/etc/listenpost/db_url" in text
+
+
+def test_collector_unit_with_the_database_credential_enabled_still_verifies(tmp_path):
+    src = tmp_path / "src" / "listenpost-collector.service"
+    src.parent.mkdir()
+    src.write_text(
+        (UNITS / "listenpost-collector.service").read_text().replace("#LoadCredential=", "LoadCredential=")
+    )
+    r = verify(src, tmp_path)
+    assert r.returncode == 0 and r.stderr == ""
+
+
+def test_the_service_account_comes_from_sysusers(tmp_path):
+    """Every unit runs as an account the sysusers.d file creates (systemd-sysusers into a scratch root)."""
+    sysusers = require_tool("systemd-sysusers")
+    conf = UNITS / "listenpost-sysusers.conf"
+    users = {directives(UNITS / n)["User"][0] for n in ALL}
+    assert users == {"listenpost"}
+    (tmp_path / "etc").mkdir()
+    r = subprocess.run(
+        [sysusers, f"--root={tmp_path}", str(conf)], capture_output=True, text=True, timeout=60
+    )
+    assert r.returncode == 0, r.stderr
+    passwd = {
+        line.split(":")[0]: line.split(":") for line in (tmp_path / "etc/passwd").read_text().splitlines()
+    }
+    assert passwd["listenpost"][6] == "/usr/sbin/nologin"
+    assert "listenpost" in {line.split(":")[0] for line in (tmp_path / "etc/group").read_text().splitlines()}
+
+
+MAX_EXPOSURE = 2.5
+
+
+def exposure(unit: Path) -> float:
+    r = subprocess.run(
+        [ANALYZE, "security", "--offline=true", "--no-pager", str(unit)],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
+    m = re.search(r"Overall exposure level for \S+: (\d+\.\d+)", r.stdout)
+    assert m, r.stdout + r.stderr
+    return float(m.group(1))
+
+
+@pytest.mark.parametrize("name", ALL)
+def test_unit_exposure_is_at_most_2_5(name, tmp_path):
+    """`systemd-analyze security --offline=true` (systemd 252) scores 0 (locked down) to 10 (exposed)."""
+    copy = tmp_path / name
+    copy.write_text(runnable((UNITS / name).read_text()))
+    assert exposure(copy) <= MAX_EXPOSURE
+
+
+def test_the_exposure_check_sees_a_loosened_unit(tmp_path):
+    """Anti-vacuity: the same unit without its sandbox scores far above the bar."""
+    text = runnable((UNITS / "listenpost-collector.service").read_text())
+    loose = "\n".join(
+        line for line in text.splitlines() if line.startswith(("[", "ExecStart", "Type", "User"))
+    )
+    copy = tmp_path / "listenpost-collector.service"
+    copy.write_text(loose + "\n")
+    assert exposure(copy) > 5
