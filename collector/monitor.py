@@ -317,7 +317,7 @@ class Monitor:
             if event is None:
                 continue  # stored already by another writer, which also sent it
             report.changes.append(event)
-            log.info(
+            (log.warning if detail["new"] in ("silent", "deaf", "drifting") else log.info)(
                 "board_state_changed",
                 board=change.board,
                 old=detail["old"],
