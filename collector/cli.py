@@ -111,6 +111,7 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
     add = client(
         bc.add_parser(
             "add",
+            allow_abbrev=False,  # so --wifi-passphrase SECRET is refused, not read as a file name
             help="register a board and print its one-time enrollment code",
             description="Register a board and print its one-time enrollment code. Boards reach the collector at "
             "public_url of collector.yaml, else at --collector: give one the board can reach.",
@@ -129,6 +130,7 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
     )
     add.add_argument("--package", metavar="SPEC", help=PACKAGE_HELP)
     add.add_argument("--force", action="store_true", help=FORCE_HELP)
+    network_options(add)
     add.add_argument("--json", action="store_true", help="print JSON instead of text")
     add.set_defaults(func=_board_add)
     ls = client(
@@ -158,6 +160,7 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
     rei = client(
         bc.add_parser(
             "reissue",
+            allow_abbrev=False,  # so --wifi-passphrase SECRET is refused, not read as a file name
             help="new enrollment code for a re-flashed card (older codes stop working)",
             description="New one-time enrollment code for a re-flashed card; older codes stop working.",
         )
@@ -166,6 +169,7 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
     rei.add_argument("--bundle", type=Path, metavar="DIR", help="also write a provisioning bundle to DIR")
     rei.add_argument("--package", metavar="SPEC", help=PACKAGE_HELP)
     rei.add_argument("--force", action="store_true", help=FORCE_HELP)
+    network_options(rei)
     rei.add_argument("--json", action="store_true", help=JSON_HELP)
     rei.set_defaults(func=_board_reissue)
 
@@ -305,6 +309,33 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
 
 
 # ------------------------------------------------------------------ serve
+
+
+def network_options(parser: argparse.ArgumentParser) -> None:
+    """The bundle's network-config: Wi-Fi when --wifi-ssid is given, else wired DHCP."""
+    parser.add_argument(
+        "--wifi-ssid", metavar="SSID", help="the bundle joins this Wi-Fi network (default: wired)"
+    )
+    parser.add_argument(
+        "--wifi-passphrase-file",
+        type=Path,
+        metavar="FILE",
+        help="the Wi-Fi passphrase, one line (read from a file so it stays out of shell history and ps)",
+    )
+    parser.add_argument("--wifi-country", metavar="CC", help="Wi-Fi regulatory domain, e.g. GB (ISO 3166)")
+
+
+def _network(args: argparse.Namespace) -> Any:
+    from listenpost.collector.provision import Network, check_network, read_passphrase
+
+    path = getattr(args, "wifi_passphrase_file", None)
+    return check_network(
+        Network(
+            wifi_ssid=getattr(args, "wifi_ssid", None),
+            wifi_passphrase=read_passphrase(path) if path is not None else None,
+            wifi_country=getattr(args, "wifi_country", None),
+        )
+    )
 
 
 def tls_context(settings: Any) -> ssl.SSLContext | None:
@@ -554,6 +585,7 @@ def _write_bundle(args: argparse.Namespace, answer: dict[str, Any]) -> Path | No
     write_bundle(
         args.bundle,
         force=args.force,
+        network=_network(args),
         board=answer["name"],
         room=answer["room"],
         floor=answer.get("floor"),
@@ -621,6 +653,9 @@ def _check_bundle_possible(args: argparse.Namespace) -> None:
         agent_unit()
         package_spec(getattr(args, "package", None))
         check_bundle_dir(args.bundle, args.name, force=args.force)
+        _network(args)
+    elif getattr(args, "wifi_ssid", None) or getattr(args, "wifi_passphrase_file", None):
+        raise ConfigError("--wifi-ssid: only with --bundle DIR (it goes into the bundle's network-config)")
 
 
 def _board_add(args: argparse.Namespace) -> int:

@@ -7,6 +7,7 @@ Files written to DIR:
   agent into a virtualenv and its units, and starts the enroll unit, which trades the one-time code for
   the board's credential (retrying until the collector answers) and then starts the agent.
 - ``meta-data`` — cloud-init NoCloud instance id and hostname.
+- ``network-config`` — cloud-init network config v2: Wi-Fi (SSID, passphrase, country) or wired DHCP.
 - ``agent.yaml`` — the agent config the board will run with (``agent enroll`` writes the final one;
   this copy is for the installer's records and for boards enrolled by hand).
 - ``README.txt`` — what to copy where.
@@ -20,6 +21,7 @@ import os
 import re
 import secrets
 import unicodedata
+from dataclasses import dataclass, field
 from importlib import resources
 from pathlib import Path
 from typing import Any
@@ -124,6 +126,87 @@ def check_board_name(field: str, value: object) -> str:
     return value
 
 
+@dataclass(frozen=True, slots=True)
+class Network:
+    """How the board joins the venue network; no SSID means wired (DHCP on eth0)."""
+
+    wifi_ssid: str | None = None
+    wifi_passphrase: str | None = field(default=None, repr=False)
+    wifi_country: str | None = None
+    """Regulatory domain (ISO 3166 alpha-2): without it some boards keep Wi-Fi off."""
+
+
+def check_network(net: Network) -> Network:
+    """
+    Raises:
+        ConfigError: naming the option: an SSID of more than 32 bytes, a passphrase that is not 8-63
+            printable ASCII characters or 64 hex digits (IEEE 802.11i WPA-PSK), a bad country code.
+    """
+    if net.wifi_ssid is None:
+        if net.wifi_passphrase is not None or net.wifi_country is not None:
+            raise ConfigError("--wifi-ssid: needed with --wifi-passphrase-file and --wifi-country")
+        return net
+    check_label("--wifi-ssid", net.wifi_ssid, max_len=32)
+    if len(net.wifi_ssid.encode()) > 32:
+        raise ConfigError("--wifi-ssid: must be at most 32 bytes in UTF-8")
+    pw = net.wifi_passphrase
+    if pw is None:
+        raise ConfigError(
+            "--wifi-passphrase-file: needed with --wifi-ssid (the passphrase never goes on the command line)"
+        )
+    if not (8 <= len(pw) <= 63 and all(" " <= c <= "~" for c in pw)) and not re.fullmatch(
+        r"[0-9a-fA-F]{64}", pw
+    ):
+        raise ConfigError(
+            "--wifi-passphrase-file: the passphrase must be 8-63 printable ASCII characters or 64 hex digits"
+        )
+    if net.wifi_country is not None and not re.fullmatch(r"[A-Z]{2}", net.wifi_country):
+        raise ConfigError(
+            f"--wifi-country: must be two upper-case letters (ISO 3166), got {net.wifi_country!r}"
+        )
+    return net
+
+
+def read_passphrase(path: str | Path) -> str:
+    """The Wi-Fi passphrase from a file: one line, its line break dropped."""
+    try:
+        text = Path(path).read_text()
+    except (OSError, UnicodeDecodeError) as e:
+        raise ConfigError(
+            f"--wifi-passphrase-file: {path}: cannot read: {getattr(e, 'strerror', None) or e}"
+        ) from e
+    lines = text.splitlines()
+    if len(lines) != 1:
+        raise ConfigError(f"--wifi-passphrase-file: {path}: must hold the passphrase on one line")
+    return lines[0]
+
+
+def network_config(net: Network) -> dict[str, Any]:
+    """cloud-init network config version 2 (the netplan format) for NoCloud's ``network-config``."""
+    if net.wifi_ssid is None:
+        return {"network": {"version": 2, "ethernets": {"eth0": {"dhcp4": True, "dhcp6": True}}}}
+    wlan: dict[str, Any] = {
+        "dhcp4": True,
+        "dhcp6": True,
+        "access-points": {net.wifi_ssid: {"password": net.wifi_passphrase}},
+    }
+    if net.wifi_country:
+        wlan["regulatory-domain"] = net.wifi_country
+    # eth0 stays usable for a technician's cable; optional, so boot does not wait for it.
+    return {
+        "network": {
+            "version": 2,
+            "ethernets": {"eth0": {"dhcp4": True, "optional": True}},
+            "wifis": {"wlan0": wlan},
+        }
+    }
+
+
+TIME_SYNC_WAIT_S = 180
+"""How long first boot waits for the clock to be synchronised before apt and pip (bounded: a venue
+network may have no time server, and a plain-HTTP collector and wheelhouse do not need one)."""
+
+
 class _Literal(str):
     """A string YAML writes as a ``|`` block (unit files stay readable in user-data)."""
 
@@ -198,6 +281,7 @@ def build_bundle(
     collector_url: str,
     expires_at: float,
     package: str | None = None,
+    network: Network | None = None,
     unit_source: Path = UNIT_SOURCE,
 ) -> dict[str, str]:
     """
@@ -206,28 +290,36 @@ def build_bundle(
     Args:
         package: what the first boot pip-installs as the agent: a requirement, a wheel URL or a path on
             the card (default `default_package`); it must be reachable from the board.
+        network: the board's network (default wired), written as ``network-config``.
     """
     from datetime import UTC, datetime
 
     spec = package_spec(package)
     # Both go into one-line files the enroll unit reads (EnvironmentFile=, the code credential).
-    for field, value in (("collector URL", collector_url), ("code", code)):
+    for what, value in (("collector URL", collector_url), ("code", code)):
         if not value.strip() or any(
             c.isspace() or unicodedata.category(c) in _UNSAFE_CATEGORIES for c in value.strip()
         ):
-            raise ConfigError(
-                f"{field}: must be one word without spaces or control characters, got {value!r}"
-            )
+            raise ConfigError(f"{what}: must be one word without spaces or control characters, got {value!r}")
     code = code.strip()
     expires = datetime.fromtimestamp(expires_at, UTC).strftime("%Y-%m-%d %H:%M UTC")
     url = collector_url.rstrip("/")
     pip = f"{AGENT_PREFIX}/bin/pip"
     units = unit_source.parent
+    net = check_network(network or Network())
+    # A board has no real-time clock: until NTP answers it may think it is 1970, and apt (Release
+    # dates) or TLS would fail. So packages are installed from runcmd, after a bounded wait for the
+    # clock, and only when the image lacks them (a venue network may have no internet at all).
+    time_wait = (
+        f"timeout {TIME_SYNC_WAIT_S} /lib/systemd/systemd-time-wait-sync || "
+        f"echo 'listenpost: clock not synchronised after {TIME_SYNC_WAIT_S} s; going on' >&2"
+    )
+    packages = "python3-venv bluez"
+    apt = f"dpkg -s {packages} >/dev/null 2>&1 || {{ apt-get update && apt-get install -y {packages}; }}"
     cloud = {
         "hostname": board,
         "preserve_hostname": False,
-        "package_update": True,
-        "packages": ["python3-venv", "bluez"],
+        "manage_etc_hosts": True,
         "write_files": [
             # The account the units run as (User=listenpost), created by systemd-sysusers below.
             _file("/etc/sysusers.d/listenpost.conf", _read(units / SYSUSERS_FILE), "0644"),
@@ -240,6 +332,8 @@ def build_bundle(
         ],
         "runcmd": [
             ["systemd-sysusers"],
+            ["sh", "-c", time_wait],
+            ["sh", "-c", apt],
             ["python3", "-m", "venv", AGENT_PREFIX],
             [pip, "install", "--upgrade", spec],
             ["systemctl", "daemon-reload"],
@@ -257,7 +351,8 @@ def build_bundle(
     readme = (
         f"Provisioning bundle for board {board} (room {room}{', floor ' + floor if floor else ''}).\n\n"
         "1. Flash the board's OS image to the card.\n"
-        "2. Copy user-data and meta-data to the card's boot partition (cloud-init NoCloud).\n"
+        "2. Copy user-data, meta-data and network-config to the card's boot partition (cloud-init\n"
+        f"   NoCloud). network-config joins {'Wi-Fi ' + repr(net.wifi_ssid) if net.wifi_ssid else 'the wired network (DHCP)'}; it holds any Wi-Fi passphrase.\n"
         "3. Mount the board, power it on; on first boot it installs the agent and starts\n"
         f"   {ENROLL_UNIT}, which keeps trying the collector until it answers, enrolls, then starts\n"
         "   the agent (journalctl -u listenpost-enroll shows each try).\n"
@@ -273,6 +368,7 @@ def build_bundle(
     return {
         "user-data": user_data,
         "meta-data": yaml.safe_dump(meta, sort_keys=False),
+        "network-config": yaml.safe_dump(network_config(net), sort_keys=False, allow_unicode=True),
         "agent.yaml": yaml.safe_dump(agent_config(board, url), sort_keys=False),
         "README.txt": readme,
     }

@@ -625,3 +625,45 @@ async def test_events_into_a_closed_pipe_ends_quietly(server, tmp_path):
     _, err = await asyncio.wait_for(proc.communicate(), 60)
     assert b"Traceback" not in err and b"BrokenPipe" not in err, err.decode()
     assert proc.returncode == 141  # 128 + SIGPIPE, what a shell reports for a writer cut off by head
+
+
+async def test_board_add_writes_a_wifi_network_config_with_the_passphrase_from_a_file(
+    server, tmp_path, capsys
+):
+    import yaml
+
+    secret = tmp_path / "wifi.txt"
+    secret.write_text("tall-lighthouse-17\n")
+    card = tmp_path / "card"
+    wifi = ["--wifi-ssid", "Brackenford Staff", "--wifi-country", "GB", "--bundle", str(card)]
+    rc = await cli(
+        server, tmp_path, "board", "add", "g2-a", "--room", "G2", *wifi, "--wifi-passphrase-file", str(secret)
+    )
+    assert rc == 0
+    net = yaml.safe_load((card / "network-config").read_text())["network"]
+    assert net["wifis"]["wlan0"]["access-points"] == {"Brackenford Staff": {"password": "tall-lighthouse-17"}}
+    capsys.readouterr()
+    # No option takes the passphrase itself, not even as an abbreviation of the file option.
+    with pytest.raises(SystemExit) as e:
+        await cli(
+            server, tmp_path, "board", "add", "g2-b", "--room", "G2", *wifi, "--wifi-passphrase", "hunter22"
+        )
+    assert e.value.code == 2 and "unrecognized arguments: --wifi-passphrase" in capsys.readouterr().err
+    # A passphrase too short for WPA is refused before any code is issued.
+    secret.write_text("short\n")
+    rc = await cli(
+        server,
+        tmp_path,
+        "board",
+        "add",
+        "g2-c",
+        "--room",
+        "G2",
+        *wifi[:-1],
+        str(tmp_path / "c2"),
+        "--wifi-passphrase-file",
+        str(secret),
+    )
+    assert rc == 2 and "--wifi-passphrase-file" in capsys.readouterr().err
+    assert await cli(server, tmp_path, "board", "list", "--json") == 0
+    assert [b["name"] for b in json.loads(capsys.readouterr().out)["boards"]] == ["g2-a"]

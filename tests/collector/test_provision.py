@@ -60,7 +60,13 @@ def test_a_broken_user_data_fails_the_same_check(tmp_path, cloud_init):
 
 def test_bundle_contents(tmp_path):
     out = _bundle(tmp_path)
-    assert sorted(p.name for p in out.iterdir()) == ["README.txt", "agent.yaml", "meta-data", "user-data"]
+    assert sorted(p.name for p in out.iterdir()) == [
+        "README.txt",
+        "agent.yaml",
+        "meta-data",
+        "network-config",
+        "user-data",
+    ]
     assert all(p.stat().st_mode & 0o077 == 0 for p in out.iterdir())  # the code is on the card: owner only
     doc = yaml.safe_load((out / "user-data").read_text())
     assert doc["hostname"] == "u4-b"
@@ -189,3 +195,93 @@ def test_hostile_values_that_reach_the_writer_stay_values(tmp_path, cloud_init):
     assert list(yaml.safe_load((out / "meta-data").read_text())) == ["instance-id", "local-hostname"]
     r = _schema(cloud_init, out / "user-data")
     assert r.returncode == 0, r.stderr
+
+
+def _net_convert(cloud_init: str, path: Path, out: Path, kind: str) -> subprocess.CompletedProcess[str]:
+    # cloud-init 22.4's `schema` validates cloud-config only (a network-config schema type came later);
+    # `cloud-init devel net-convert` reads a network config through cloud-init's own parser and renders it.
+    return subprocess.run(
+        [cloud_init, "devel", "net-convert", "-p", str(path), "-k", "yaml", "-D", "debian", "-O", kind]
+        + ["-d", str(out)],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
+
+
+def test_the_default_network_config_is_wired_dhcp_and_cloud_init_renders_it(tmp_path, cloud_init):
+    out = _bundle(tmp_path)
+    doc = yaml.safe_load((out / "network-config").read_text())
+    assert doc == {"network": {"version": 2, "ethernets": {"eth0": {"dhcp4": True, "dhcp6": True}}}}
+    r = _net_convert(cloud_init, out / "network-config", tmp_path / "root", "networkd")
+    assert r.returncode == 0, r.stderr
+    rendered = (tmp_path / "root/etc/systemd/network/10-cloud-init-eth0.network").read_text()
+    assert "Name=eth0" in rendered and "DHCP=" in rendered
+
+
+def test_a_wifi_bundle_carries_ssid_passphrase_and_country(tmp_path, cloud_init):
+    from listenpost.collector.provision import Network
+
+    out = tmp_path / "card"
+    write_bundle(
+        out,
+        board="g2-a",
+        room="G2 Sound Lab",
+        floor=None,
+        code="7KQ2-M9XD-4TPA-WZ3R",
+        collector_url="http://10.20.0.2:8470",
+        expires_at=0,
+        network=Network("Brackenford Staff", "tall-lighthouse-17", "GB"),
+    )
+    assert (out / "network-config").stat().st_mode & 0o077 == 0  # it holds the passphrase
+    r = _net_convert(cloud_init, out / "network-config", tmp_path / "root", "netplan")
+    assert r.returncode == 0, r.stderr
+    plan = yaml.safe_load((tmp_path / "root/etc/netplan/50-cloud-init.yaml").read_text())
+    wlan = plan["network"]["wifis"]["wlan0"]
+    assert wlan["access-points"] == {"Brackenford Staff": {"password": "tall-lighthouse-17"}}
+    assert wlan["regulatory-domain"] == "GB" and wlan["dhcp4"] is True
+    assert plan["network"]["ethernets"]["eth0"]["optional"] is True
+    assert _schema(cloud_init, out / "user-data").returncode == 0
+
+
+def test_a_broken_network_config_fails_the_same_check(tmp_path, cloud_init):
+    """Anti-vacuity: the check above refuses a network config cloud-init cannot read."""
+    bad = tmp_path / "network-config"
+    bad.write_text(yaml.safe_dump({"network": {"version": 3, "ethernets": {}}}))
+    assert _net_convert(cloud_init, bad, tmp_path / "root", "networkd").returncode != 0
+
+
+@pytest.mark.parametrize(
+    ("net", "option"),
+    [
+        (("Staff", None, None), "--wifi-passphrase-file"),
+        (("Staff", "short", None), "--wifi-passphrase-file"),
+        (("Staff", "x" * 64, None), "--wifi-passphrase-file"),
+        (("Staff", "pass\tword1", None), "--wifi-passphrase-file"),
+        (("S" * 33, "long enough", None), "--wifi-ssid"),
+        (("Staff\n", "long enough", None), "--wifi-ssid"),
+        (("Staff", "long enough", "gb"), "--wifi-country"),
+        ((None, "long enough", None), "--wifi-ssid"),
+    ],
+)
+def test_bad_wifi_settings_are_refused_naming_the_option(net, option):
+    from listenpost.collector.provision import Network, check_network
+
+    with pytest.raises(ConfigError, match=f"^{option}: ") as e:
+        check_network(Network(*net))
+    if net[1]:
+        assert net[1] not in str(e.value)  # the passphrase is never echoed
+    check_network(Network("Staff", "a" * 63))
+    check_network(Network("Staff", "0123456789abcdef" * 4))  # a raw 256-bit PSK
+
+
+def test_first_boot_waits_a_bounded_time_for_the_clock_before_apt_and_pip(tmp_path):
+    doc = yaml.safe_load((_bundle(tmp_path) / "user-data").read_text())
+    assert "package_update" not in doc and "packages" not in doc  # apt would run before the clock is set
+    assert doc["hostname"] == "u4-b" and doc["manage_etc_hosts"] is True
+    cmds = [" ".join(c) for c in doc["runcmd"]]
+    wait = next(i for i, c in enumerate(cmds) if "systemd-time-wait-sync" in c)
+    assert "timeout 180 " in cmds[wait] and "||" in cmds[wait]  # bounded, and not fatal
+    apt = next(i for i, c in enumerate(cmds) if "apt-get install" in c)
+    pip = next(i for i, c in enumerate(cmds) if "/opt/listenpost/bin/pip" in c)
+    assert wait < apt < pip
