@@ -47,7 +47,9 @@ class AdminError(ListenpostError):
 def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None:  # type: ignore[type-arg]
     p = sub.add_parser(name, help=help_text, description=help_text)
     cmds = p.add_subparsers(
-        dest="command", required=True, metavar="{serve,board,tags,status,export,calibrate,walktest,events}"
+        dest="command",
+        required=True,
+        metavar="{serve,board,tags,plan,status,export,calibrate,walktest,events}",
     )
 
     sv = cmds.add_parser(
@@ -219,6 +221,23 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
     )
     st.add_argument("--json", action="store_true", help=JSON_HELP)
     st.set_defaults(func=_status)
+
+    plan = cmds.add_parser(
+        "plan",
+        help="import the venue plan (floors, rooms, board and reference tag positions)",
+        description="The venue plan the plan view draws and calibration reads (docs/technician.md).",
+    )
+    pc = plan.add_subparsers(dest="plan_command", required=True, metavar="{import}")
+    pi = client(
+        pc.add_parser(
+            "import",
+            help="check a plan file and make it the collector's plan",
+            description="FILE: the venue plan as YAML or JSON. It is checked here and again by the "
+            "collector; any problem is named by its key path and nothing is kept.",
+        )
+    )
+    pi.add_argument("file", type=Path, metavar="FILE", help="venue plan (YAML)")
+    pi.set_defaults(func=_plan_import)
 
     ex = client(
         cmds.add_parser(
@@ -874,6 +893,18 @@ def _status(args: argparse.Namespace) -> int:
             _out(f"      on site: {i['site']}")
             for c in i["commands"]:
                 _out(f"      run: {c['run']}" + ("   (on the board)" if c["on"] == "board" else ""))
+    return 0
+
+
+def _plan_import(args: argparse.Namespace) -> int:
+    from listenpost.collector.models.plan import load_plan
+
+    plan = load_plan(args.file)  # ConfigError "FILE: floors[0].rooms[2].polygon: ...": exit 2
+    answer = request(args, "PUT", "/v1/admin/plan", body=plan.to_document())
+    _out(
+        f"plan imported: {answer['floors']} floors, {answer['rooms']} rooms, {answer['boards']} boards, "
+        f"{answer['reference_tags']} reference tags"
+    )
     return 0
 
 

@@ -252,12 +252,73 @@ def spec() -> dict[str, Any]:
                         "name": "refresh",
                         "in": "query",
                         "schema": NUM,
-                        "description": "seconds between updates, clamped to 0.2..300",
+                        "description": "seconds between updates, 0 for none, else clamped to 0.2..300",
                     }
                 ],
                 "responses": {
                     "200": {"description": "HTML", "content": {"text/html": {"schema": STR}}},
                     **_errors(400),
+                },
+            }
+        },
+        "/board/{name}": {
+            "get": {
+                "summary": "One board's page (HTML): what to do, its figures, charts of the last hours",
+                "security": PUBLIC,
+                "tags": ["health"],
+                "parameters": [
+                    {"name": "name", "in": "path", "required": True, "schema": STR},
+                    {
+                        "name": "hours",
+                        "in": "query",
+                        "schema": {**NUM, "minimum": 0.05, "maximum": 24},
+                        "description": "window, hours",
+                    },
+                    {
+                        "name": "refresh",
+                        "in": "query",
+                        "schema": NUM,
+                        "description": "seconds between updates",
+                    },
+                ],
+                "responses": {
+                    "200": {"description": "HTML", "content": {"text/html": {"schema": STR}}},
+                    "404": {"description": "no such board", "content": {"text/html": {"schema": STR}}},
+                    **_errors(400),
+                },
+            }
+        },
+        "/plan": {
+            "get": {
+                "summary": "The venue plan view (HTML): boards where they hang, rooms by live coverage",
+                "security": PUBLIC,
+                "tags": ["health"],
+                "parameters": [
+                    {
+                        "name": "refresh",
+                        "in": "query",
+                        "schema": NUM,
+                        "description": "seconds between updates",
+                    }
+                ],
+                "responses": {
+                    "200": {"description": "HTML", "content": {"text/html": {"schema": STR}}},
+                    **_errors(400),
+                },
+            }
+        },
+        "/v1/admin/plan": {
+            "put": {
+                "summary": "Import the venue plan (docs/technician.md); all valid or nothing kept",
+                "security": ADMIN_AUTH,
+                "tags": ["admin"],
+                "requestBody": {
+                    "required": True,
+                    "content": {"application/json": {"schema": {"type": "object"}}},
+                },
+                "responses": {
+                    "200": _json(_obj(floors=INT, rooms=INT, boards=INT, reference_tags=INT)),
+                    **_errors(*BODY_ERRORS, 401),
                 },
             }
         },

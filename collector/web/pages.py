@@ -132,15 +132,10 @@ def html_response(text: str, status: int = 200) -> web.Response:
 # ------------------------------------------------------------------ the fleet page
 
 
-def _issue_card(r: dict[str, Any]) -> str:
-    issues = r["attention"]
-    parts = [
-        f'<article class="issue sev-{issues[0]["severity"]}" data-board="{esc(r["name"])}" '
-        f'data-state="{esc(r["state"])}" aria-labelledby="i-{esc(r["name"])}">',
-        f'<h3 id="i-{esc(r["name"])}"><a href="/board/{esc(r["name"])}">{esc(r["name"])}</a> '
-        f'{state_badge(r["state"])} <span class="where">{esc(where(r))}</span></h3>',
-    ]
-    for i in issues:
+def issue_list(r: dict[str, Any]) -> str:
+    """A board's issues: what, why, what to check on site, which commands to run."""
+    parts = []
+    for i in r["attention"]:
         todo = "".join(
             f"<li>{'On the board, run' if c['on'] == 'board' else 'Run'} <code>{esc(c['run'])}</code></li>"
             for c in i["commands"]
@@ -149,6 +144,18 @@ def _issue_card(r: dict[str, Any]) -> str:
             f'<p class="what"><b>{esc(i["what"])}</b></p><p class="why">{esc(i["why"])}</p>'
             f'<ul class="todo"><li>On site: {esc(i["site"])}</li>{todo}</ul>'
         )
+    return "".join(parts)
+
+
+def _issue_card(r: dict[str, Any]) -> str:
+    issues = r["attention"]
+    parts = [
+        f'<article class="issue sev-{issues[0]["severity"]}" data-board="{esc(r["name"])}" '
+        f'data-state="{esc(r["state"])}" aria-labelledby="i-{esc(r["name"])}">',
+        f'<h3 id="i-{esc(r["name"])}"><a href="/board/{esc(r["name"])}">{esc(r["name"])}</a> '
+        f'{state_badge(r["state"])} <span class="where">{esc(where(r))}</span></h3>',
+    ]
+    parts.append(issue_list(r))
     parts.append(figure_list(r))
     parts.append("</article>")
     return "".join(parts)
@@ -248,5 +255,9 @@ async def page(request: web.Request) -> web.Response:
 
 
 def add_routes(app: web.Application) -> None:
+    from listenpost.collector.web import board, plan
+
     app.router.add_get("/", page, allow_head=False)
     app.router.add_get("/v1/status", status, allow_head=False)
+    board.add_routes(app)
+    plan.add_routes(app)

@@ -90,6 +90,27 @@ async def start_collector(
     return RunningCollector(app, runner, f"http://{host}:{bound}", state_dir, read_admin_token(state_dir))
 
 
+def venue_plan(venue: Truth) -> dict[str, Any]:
+    """
+    The venue plan of the simulated venue, as its installer would write it: rooms and board positions
+    from the truth file, reference tag positions from the scenario it was generated from.
+    """
+    from listenpost.collector.models.plan import plan_from_truth
+    from listenpost.core.identity import parse_tag_id
+    from listenpost.sim.scenario import load_scenario
+
+    tags = load_scenario(str(venue.document["scenario"])).tags
+    refs = [
+        (
+            parse_tag_id(f"ibeacon:{tags.venue_uuid}:{tags.reference_major}:{r.minor}"),
+            r.place.room,
+            r.place.at,
+        )
+        for r in tags.reference
+    ]
+    return plan_from_truth(venue.document, refs)
+
+
 async def admin_call(
     session: aiohttp.ClientSession, url: str, token: str, method: str, path: str, body: Any = None
 ) -> Any:

@@ -40,6 +40,7 @@ from listenpost.demo.collector import (
     RunningCollector,
     admin_call,
     start_collector,
+    venue_plan,
     write_collector_yaml,
 )
 from listenpost.demo.idle import InFlight, TrackingClock
@@ -134,6 +135,8 @@ class Fleet:
         url, token = self.collector.url, self.collector.admin_token
         tags = read_tag_file(self.venue.tags_file)
         await admin_call(self.session, url, token, "POST", "/v1/admin/tags", {"ids": tags})
+        # The venue plan, as the installer imports it: the plan view draws it.
+        await admin_call(self.session, url, token, "PUT", "/v1/admin/plan", venue_plan(self.venue))
         codes = {}
         for name, board in self.boards.items():
             answer = await admin_call(

@@ -268,6 +268,33 @@ async def test_a_board_hours_off_in_wall_clock_needs_attention(aiohttp_client, t
     assert "sudo timedatectl set-ntp true" in card
 
 
+async def test_a_board_page_draws_its_last_hour(fleet):
+    client, _ = fleet
+    r = await client.get("/board/u2-a")
+    html = await r.text()
+    assert r.status == 200
+    for caption in (
+        'id="c-states">State',
+        "Readings stored per minute",
+        "Radio: adverts heard per second",
+        "Clock: each exchange around the fitted line",
+        "Clock: offset change since the first exchange shown",
+        "Reference tag signal",
+        "Spool backlog",
+        "Temperature",
+        "Disk free",
+        "Latest events",
+    ):
+        assert caption in html, caption
+    assert "432 readings in the window" in html  # 12 per round for 36 rounds
+    assert "the slope is the rate error: +85" in html
+    assert "Clock running off" in html and "became drifting (was live)" in html
+    assert html.count('role="img"') == 5  # temperature, disk and reference tags: not in these heartbeats
+    assert (await client.get("/board/nope")).status == 404
+    r = await client.get("/board/u2-a?hours=abc")
+    assert r.status == 400 and (await r.json())["error"]["field"] == "hours"
+
+
 def _browser_or_skip() -> None:
     if not shutil.which(CHROMIUM) and not Path(CHROMIUM).exists():
         if os.environ.get("LISTENPOST_REQUIRE_BROWSER") == "1":
@@ -276,7 +303,7 @@ def _browser_or_skip() -> None:
 
 
 WIDTHS = {"desktop": (1280, 800), "phone": (390, 844)}
-PAGES = {"fleet": "/"}
+PAGES = {"fleet": "/", "plan": "/plan", "board": "/board/u2-a"}
 """Every page of the technician's view, checked at both widths."""
 
 
@@ -315,7 +342,11 @@ async def test_pages_in_a_real_browser(aiohttp_client, tmp_path, clock):
     _browser_or_skip()
     from playwright.async_api import async_playwright
 
+    from tests.collector.test_plan import PLAN
+
     client, boards = await build_fleet(aiohttp_client, tmp_path, clock)
+    auth = {"Authorization": "Bearer " + (tmp_path / "admin-token").read_text().strip()}  # noqa: ASYNC240
+    assert (await client.put("/v1/admin/plan", json=PLAN, headers=auth)).status == 200
     shots = tmp_path / "screenshots"
     shots.mkdir()
     print(f"screenshots: {shots}")

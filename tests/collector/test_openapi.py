@@ -95,6 +95,7 @@ RULES_IN_WORDS = {
     "/v1/admin/export",
     "/v1/admin/exports",
     "/v1/admin/walktest",
+    "/v1/admin/plan",
 }
 
 
