@@ -15,7 +15,7 @@ import structlog
 from aiohttp import web
 
 from listenpost.collector.config import CollectorSettings
-from listenpost.collector.http import admin, api
+from listenpost.collector.http import admin, api, wheelhouse
 from listenpost.collector.http.auth import ensure_admin_token, hash_secret
 from listenpost.collector.http.middlewares import error_middleware, request_context_middleware
 from listenpost.collector.http.openapi import add_routes as add_openapi_routes
@@ -53,6 +53,7 @@ def create_app(
     app[RUNTIME] = Runtime()
     api.add_routes(app)
     admin.add_routes(app)
+    wheelhouse.add_routes(app)
     pages.add_routes(app)
     metrics.add_routes(app)
     add_openapi_routes(app)

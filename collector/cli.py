@@ -32,7 +32,8 @@ DEFAULT_TIMEOUT = 30.0
 JSON_HELP = "print JSON instead of text"
 PACKAGE_HELP = (
     "what the card's first boot pip-installs as the agent (a requirement, wheel URL or path "
-    "reachable from the board; default: listenpost==<this version>)"
+    "reachable from the board; default: listenpost==<this version> from the collector's wheelhouse, "
+    "see 'collector wheelhouse build')"
 )
 FORCE_HELP = "write the bundle even into a folder that holds another board's bundle"
 
@@ -325,6 +326,45 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
     ev.add_argument("--board", metavar="NAME", help="only this board's events")
     ev.add_argument("--json", action="store_true", help=JSON_HELP)
     ev.set_defaults(func=_events)
+
+    wh = cmds.add_parser(
+        "wheelhouse",
+        help="build the wheels boards install the agent from (no internet needed at the venue)",
+        description="The agent and its dependencies as wheels for the boards' platform, served by the "
+        "collector under /wheels/; bundles install from there by default.",
+    )
+    whc = wh.add_subparsers(dest="wheelhouse_command", required=True, metavar="{build}")
+    whb = whc.add_parser(
+        "build",
+        help="pip download the agent's wheels for the boards' platform",
+        description="Fill STATE_DIR/wheels with listenpost's wheel and a wheel of every agent "
+        "dependency for the boards' platform (pip download --only-binary=:all:); replaced whole, "
+        "so a failed build keeps the previous wheelhouse.",
+    )
+    whb.add_argument(
+        "--state-dir",
+        type=Path,
+        default=Path(DEFAULT_STATE_DIR),
+        metavar="DIR",
+        help="the collector's state directory (default %(default)s)",
+    )
+    whb.add_argument(
+        "--platform",
+        action="append",
+        metavar="TAG",
+        help="the boards' platform tag, repeatable (default: the manylinux tags of a 64-bit "
+        "board on Debian 12, manylinux2014_aarch64 and manylinux_2_17_aarch64 to manylinux_2_36_aarch64)",
+    )
+    whb.add_argument(
+        "--python-version", default="3.11", metavar="X.Y", help="the boards' Python (default %(default)s)"
+    )
+    whb.add_argument(
+        "--wheel",
+        type=Path,
+        metavar="FILE",
+        help="listenpost wheel to include (default: built from this checkout, else this version's)",
+    )
+    whb.set_defaults(func=_wheelhouse_build)
 
 
 # ------------------------------------------------------------------ serve
@@ -990,6 +1030,22 @@ async def _download(args: argparse.Namespace, path: str, out: Path) -> int:
         with contextlib.suppress(OSError):
             tmp.unlink()
     return size
+
+
+def _wheelhouse_build(args: argparse.Namespace) -> int:
+    from listenpost.collector.http.wheelhouse import DEFAULT_PLATFORMS, build_wheelhouse, wheel_dir
+
+    dest = wheel_dir(args.state_dir)
+    wheels = build_wheelhouse(
+        dest,
+        platforms=args.platform or DEFAULT_PLATFORMS,
+        python_version=args.python_version,
+        wheel=args.wheel,
+    )
+    _out(f"{len(wheels)} wheels in {dest}/ (served under /wheels/):")
+    for w in wheels:
+        _out(f"  {w.name}")
+    return 0
 
 
 def _events(args: argparse.Namespace) -> int:

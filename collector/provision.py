@@ -272,6 +272,22 @@ def package_spec(package: str | None) -> str:
     return spec
 
 
+def install_command(pip: str, spec: str, collector_url: str, *, own_wheelhouse: bool) -> list[str]:
+    """
+    The first boot's pip command: from the collector's wheelhouse only (``--no-index``: a venue
+    network often has no internet), or, for an explicit ``--package``, as pip finds that.
+    """
+    if not own_wheelhouse:
+        return [pip, "install", "--upgrade", spec]
+    from urllib.parse import urlsplit
+
+    cmd = [pip, "install", "--no-index", "--find-links", f"{collector_url}/wheels/"]
+    parts = urlsplit(collector_url)
+    if parts.scheme == "http" and parts.hostname:
+        cmd += ["--trusted-host", parts.hostname]  # pip ignores plain-HTTP links of other hosts otherwise
+    return [*cmd, spec]
+
+
 def build_bundle(
     *,
     board: str,
@@ -335,7 +351,7 @@ def build_bundle(
             ["sh", "-c", time_wait],
             ["sh", "-c", apt],
             ["python3", "-m", "venv", AGENT_PREFIX],
-            [pip, "install", "--upgrade", spec],
+            install_command(pip, spec, url, own_wheelhouse=package is None),
             ["systemctl", "daemon-reload"],
             # Enrollment is a unit of its own: it retries an unreachable collector until it answers
             # (or refuses the code), then starts the agent. --no-block: cloud-init does not wait for it.
@@ -356,8 +372,13 @@ def build_bundle(
         "3. Mount the board, power it on; on first boot it installs the agent and starts\n"
         f"   {ENROLL_UNIT}, which keeps trying the collector until it answers, enrolls, then starts\n"
         "   the agent (journalctl -u listenpost-enroll shows each try).\n"
-        f"   It needs the network then: pip installs {spec} (from PyPI unless that is a URL or path;\n"
-        "   choose it with 'board add --package') and the board must reach the collector at\n"
+        + (
+            f"   pip installs {spec} from the collector's wheelhouse ({url}/wheels/, filled by\n"
+            "   'listenpost collector wheelhouse build' for the boards' platform): no internet needed,\n"
+            if package is None
+            else f"   pip installs {spec} (from PyPI unless that is a URL or path),\n"
+        )
+        + "   and the board must reach the collector at\n"
         f"   {url}.\n"
         f"   By hand instead: listenpost agent enroll --collector {url} --code {code}\n"
         "4. Check the health page: the board appears as 'live' within a minute.\n\n"

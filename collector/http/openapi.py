@@ -322,6 +322,34 @@ def spec() -> dict[str, Any]:
                 },
             }
         },
+        "/wheels/": {
+            "get": {
+                "summary": "Index of the wheelhouse (pip --find-links reads it); 'collector wheelhouse build' fills it",
+                "security": PUBLIC,
+                "tags": ["health"],
+                "responses": {
+                    "200": {"description": "HTML links", "content": {"text/html": {"schema": STR}}},
+                    **_errors(404),
+                },
+            }
+        },
+        "/wheels/{name}": {
+            "get": {
+                "summary": "One wheel of the wheelhouse",
+                "security": PUBLIC,
+                "tags": ["health"],
+                "parameters": [{"name": "name", "in": "path", "required": True, "schema": STR}],
+                "responses": {
+                    "200": {
+                        "description": "the wheel",
+                        "content": {
+                            "application/octet-stream": {"schema": {"type": "string", "format": "binary"}}
+                        },
+                    },
+                    **_errors(404),
+                },
+            }
+        },
         "/metrics": {
             "get": {
                 "summary": "Prometheus text exposition",

@@ -285,3 +285,20 @@ def test_first_boot_waits_a_bounded_time_for_the_clock_before_apt_and_pip(tmp_pa
     apt = next(i for i, c in enumerate(cmds) if "apt-get install" in c)
     pip = next(i for i, c in enumerate(cmds) if "/opt/listenpost/bin/pip" in c)
     assert wait < apt < pip
+
+
+def test_by_default_the_agent_comes_from_the_collectors_wheelhouse_only(tmp_path):
+    from importlib.metadata import version
+
+    doc = yaml.safe_load((_bundle(tmp_path) / "user-data").read_text())
+    pip = next(c for c in doc["runcmd"] if c[0] == "/opt/listenpost/bin/pip")
+    assert pip == [
+        "/opt/listenpost/bin/pip",
+        "install",
+        "--no-index",
+        "--find-links",
+        "http://10.20.0.2:8470/wheels/",
+        "--trusted-host",
+        "10.20.0.2",
+        f"listenpost=={version('listenpost')}",
+    ]
