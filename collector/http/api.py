@@ -429,8 +429,9 @@ async def heartbeat(request: web.Request) -> web.Response:
         exchange = parse_clock(body.get("clock"))
     except WireError as e:
         raise bad_field(e.field, str(e).removeprefix(f"{e.field}: ")) from e
+    sample = None
     if exchange is not None:
-        await _exchange(request, board, boot, exchange, send_t1=extra["t1"])
+        sample = await _exchange(request, board, boot, exchange, send_t1=extra["t1"], keep=False)
     if extra["wall"] is not None:
         # The board read its wall clock at t1 (board monotonic); the model says what time that was here.
         model = await clock_model(runtime.clock_models, store, board.name, boot)
@@ -438,7 +439,7 @@ async def heartbeat(request: web.Request) -> web.Response:
         if extra["t1"] is not None and model.fit() is not None:
             at = float(model.to_collector_time([round(extra["t1"] * 1000)])[0])
         extra["wall_error_s"] = wall_error_s(extra["wall"], at)
-    await store.add_heartbeat(Heartbeat(board.name, t2, boot, {**stats, **extra}))
+    await store.add_heartbeat(Heartbeat(board.name, t2, boot, {**stats, **extra}), clock=sample)
     _, etag = await board_config(app, board)
     return web.json_response({"t2": t2, "t3": app[CLOCK].time(), "config_etag": etag})
 

@@ -294,22 +294,31 @@ class SqliteStore:
         if self._closed:
             raise StoreUnavailable(f"{self.path}: store is closed")
 
-    async def _wtx(self, fn: Callable[[sqlite3.Connection], T]) -> T:
-        """Run ``fn(con)`` in one write transaction on the writer thread."""
+    async def _wtx(self, fn: Callable[[sqlite3.Connection], T], *, durable: bool = True) -> T:
+        """
+        Run ``fn(con)`` in one write transaction on the writer thread. Not ``durable``: the commit does
+        not fsync the WAL (``synchronous=NORMAL``); the next durable commit's fsync covers it.
+        """
         self._check_open()
 
         def job() -> T:
             con = self._wcon
             assert con is not None
-            con.execute("BEGIN IMMEDIATE")
+            if not durable:
+                con.execute("PRAGMA synchronous = NORMAL")  # only outside a transaction
             try:
-                out = fn(con)
-                con.execute("COMMIT")
-                return out
-            except BaseException:
-                if con.in_transaction:
-                    con.execute("ROLLBACK")
-                raise
+                con.execute("BEGIN IMMEDIATE")
+                try:
+                    out = fn(con)
+                    con.execute("COMMIT")
+                    return out
+                except BaseException:
+                    if con.in_transaction:
+                        con.execute("ROLLBACK")
+                    raise
+            finally:
+                if not durable:
+                    con.execute("PRAGMA synchronous = FULL")
 
         return await self._write(job)
 
@@ -728,11 +737,15 @@ class SqliteStore:
         rows = await self._query("SELECT last_boot FROM boards WHERE name = ?", (board,))
         return rows[0][0] if rows else None
 
-    async def add_heartbeat(self, hb: Heartbeat) -> None:
+    async def add_heartbeat(self, hb: Heartbeat, clock: ClockSample | None = None) -> None:
         keep = self._heartbeat_history
+        if clock is not None:
+            check_clock_sample(clock)
 
         def tx(con: sqlite3.Connection) -> None:
             bid = self._board_id(con, hb.board)
+            if clock is not None:
+                _insert_clock_sample(con, bid, clock)
             con.execute(
                 "INSERT INTO heartbeats (board_id, at, boot, stats) VALUES (?, ?, ?, ?)",
                 (bid, hb.at, hb.boot, json.dumps(hb.stats, sort_keys=True)),
@@ -744,7 +757,7 @@ class SqliteStore:
             )
             _note_boot(con, bid, hb.boot, hb.at)
 
-        await self._wtx(tx)
+        await self._wtx(tx, durable=False)
 
     async def heartbeats(self, board: str, since: float) -> list[Heartbeat]:
         rows = await self._query(

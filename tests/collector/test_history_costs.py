@@ -319,6 +319,40 @@ async def test_batches_with_clock_exchanges_take_one_commit_each(aiohttp_client,
     assert len(await store.clock_samples("g1-a", "boot-1")) == 8
 
 
+async def test_a_heartbeat_and_its_exchange_are_one_commit_that_does_not_fsync(
+    aiohttp_client, tmp_path, clock
+):
+    """A heartbeat and its clock exchange share one commit, made with synchronous=NORMAL (no fsync of its
+    own: the next batch commit's fsync covers it); batches keep synchronous=FULL."""
+    client = await make_client(aiohttp_client, tmp_path, clock)
+    auth = await enrolled(client, tmp_path, "g1-a")
+    store = client.app[STORE]
+    trace: list[str] = []
+    await store._write(lambda: store._wcon.set_trace_callback(trace.append))
+    w = clock.time() - 200.0
+    for k in range(3):
+        b = 200.0 + 10 * k
+        ex = {"t1": b, "t2": w + b + 0.004, "t3": w + b + 0.005, "t4": b + 0.009}
+        body = {"board": "g1-a", "boot": "boot-1", "t1": b + 0.01, "clock": ex, "stats": {"k": k}}
+        r = await client.post("/v1/heartbeat", json=body, headers=auth)
+        assert r.status == 200, await r.text()
+    r = await client.post(
+        "/v1/batches", json=batch_body("g1-a", 0, readings(2, t0_s=230.0), t1=230.0), headers=auth
+    )
+    assert r.status == 200, await r.text()
+    commits = [i for i, sql in enumerate(trace) if sql.startswith("COMMIT")]
+    assert len(commits) == 4  # three heartbeats with their exchanges, one batch
+
+    # The pragma in force at each commit: the last one set before it.
+    def sync_at(i: int) -> str:
+        return [sql for sql in trace[:i] if "PRAGMA synchronous" in sql][-1]
+
+    assert [sync_at(i) for i in commits[:3]] == ["PRAGMA synchronous = NORMAL"] * 3
+    assert sync_at(commits[3]) == "PRAGMA synchronous = FULL"
+    assert len(await store.clock_samples("g1-a", "boot-1")) == 3
+    assert (await store.latest_heartbeats())["g1-a"].stats["k"] == 2
+
+
 # -- retention of history -------------------------------------------------------------------------------------
 
 
