@@ -329,17 +329,25 @@ def attention(r: dict[str, Any]) -> list[dict[str, Any]]:
             )
         )
     elif st == "drifting":
-        out.append(
-            _issue(
-                2,
-                "Clock running off",
-                why,
+        if "stepped" in why:
+            site = (
+                "The board's clock jumped: usually the agent restarted on a board whose clock was set by "
+                "hand or by a late time sync. Readings around the jump are placed by the new line; check "
+                "the board's logs for a restart or a clock change."
+            )
+        elif "residual" in why:
+            site = (
+                "Its clock exchanges scatter: the round trips to the collector vary a lot (a congested or "
+                "flaky Wi-Fi link, or a board too busy to answer promptly). Check the link at the board "
+                "and the board's load; readings keep the fitted times, with this much uncertainty."
+            )
+        else:
+            site = (
                 "Readings are still corrected with the fitted clock line, but a clock this far off points "
                 "at a failing crystal or heat: check the board is not in the sun or next to a heater "
-                "(temperature below), and plan to swap the board if it persists.",
-                [events, admin("listenpost collector status")],
+                "(its temperature is on its page), and plan to swap the board if it persists."
             )
-        )
+        out.append(_issue(2, "Clock running off", why, site, [events, logs]))
     elif st == "backlogged":
         out.append(
             _issue(

@@ -269,7 +269,7 @@ def plan_from_truth(
         "version": PLAN_VERSION,
         "title": str(document.get("scenario", "")),
         "floors": [
-            {"id": f, "title": f"{f} floor", "level_m": i * height, "rooms": rooms_by_floor[i]}
+            {"id": f, "title": f"{f.capitalize()} floor", "level_m": i * height, "rooms": rooms_by_floor[i]}
             for i, f in enumerate(floors)
         ],
         "boards": boards,

@@ -115,6 +115,10 @@ async def board_page(request: web.Request) -> web.Response:
             status=404,
         )
     t0 = now - hours * 3600.0
+    if "hours" not in request.query:  # by default the window starts no earlier than the board did
+        board = await store.get_board(name)
+        if board is not None and board.enrolled_at is not None:
+            t0 = max(t0, min(board.enrolled_at - 60.0, now - 900.0))
     hbs = await store.heartbeats(name, t0)
     events = []
     cursor = 0
@@ -250,7 +254,7 @@ async def board_page(request: web.Request) -> web.Response:
     for cid, title, unit, keys, scale, zero in (
         ("c-spool", "Spool backlog", "batches", ("spool_batches", "spool.batches"), 1.0, True),
         ("c-temp", "Temperature", "°C", ("cpu_temperature_c",), 1.0, False),
-        ("c-disk", "Disk free", "MB", ("disk_free_bytes",), 1e-6, False),
+        ("c-disk", "Disk free", "GB", ("disk_free_bytes",), 1e-9, False),
     ):
         pts = [(h.at, float(v) * scale) for h in hbs if isinstance(v := stat(h.stats, *keys), int | float)]
         charts.append(
@@ -272,7 +276,8 @@ async def board_page(request: web.Request) -> web.Response:
     issues = (
         issue_list(row) if row["attention"] else '<p class="allwell">Nothing needs doing at this board.</p>'
     )
-    span_text = f"{hours:g} h" if hours >= 1 else f"{hours * 60:g} min"
+    minutes = (now - t0) / 60.0
+    span_text = f"{minutes / 60:.3g} h" if minutes >= 60 else f"{minutes:.0f} min"
     body = f"""
 <h1>{esc(name)} {state_badge(row["state"])}</h1>
 <p class="lede">{esc(where(row))}{" · " + esc(row["state_reason"]) if row["state_reason"] else ""}</p>

@@ -29,15 +29,13 @@ def _ticks(lo: float, hi: float, n: int = 3) -> list[float]:
     return [first + i * step for i in range(int((hi - first) / step) + 1)]
 
 
-def _num(v: float) -> str:
+def _label(v: float, step: float) -> str:
+    """A tick label with as many decimals as the tick step needs (ticks 81.62, 81.64 stay apart)."""
+    digits = max(0, -math.floor(math.log10(step))) if step > 0 else 0
     a = abs(v)
-    if a >= 1e6:
-        return f"{v / 1e6:.0f}M" if a >= 1e7 else f"{v / 1e6:.1f}M"
-    if a >= 1e4:
-        return f"{v / 1e3:.0f}k"
-    if a >= 100 or v == int(v):
-        return f"{v:.0f}".replace("-", "−")
-    return f"{v:.2g}".replace("-", "−")
+    if digits == 0 and a >= 1e4:
+        return f"{v / 1e3:.0f}k".replace("-", "−")
+    return f"{v:.{digits}f}".replace("-", "−")
 
 
 def time_chart(
@@ -89,10 +87,12 @@ def time_chart(
         out.append(
             f'<rect x="{LEFT}" y="{y(band[1])}" width="{W - LEFT - RIGHT}" height="{y(band[0]) - y(band[1])}" fill="#e3f4e8"/>'
         )
-    for v in _ticks(lo, hi):
+    ticks = _ticks(lo, hi)
+    step = ticks[1] - ticks[0] if len(ticks) > 1 else 1.0
+    for v in ticks:
         out.append(
             f'<line x1="{LEFT}" x2="{W - RIGHT}" y1="{y(v)}" y2="{y(v)}" stroke="#dde2e8" stroke-width="1"/>'
-            f'<text x="{LEFT - 4}" y="{y(v) + 4}" text-anchor="end">{_num(v)}</text>'
+            f'<text x="{LEFT - 4}" y="{y(v) + 4}" text-anchor="end">{_label(v, step)}</text>'
         )
     for k in range(4):
         t = t0 + span * k / 3
