@@ -91,3 +91,11 @@ def test_configuring_again_replaces_the_handler_instead_of_doubling_lines():
     configure("json", stream=b, journal=False)
     logging.getLogger("bleak").warning("once")
     assert a.getvalue() == "" and len(_lines(b)) == 1
+
+
+def test_a_closed_log_stream_drops_library_records_quietly(capsys):
+    buf = io.StringIO()
+    configure("json", stream=buf, journal=False)
+    buf.close()
+    logging.getLogger("asyncio").warning("after the run")
+    assert "Logging error" not in capsys.readouterr().err

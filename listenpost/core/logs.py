@@ -49,6 +49,14 @@ def _with_priority(render: Callable[..., Any]) -> Callable[..., str]:
     return wrapped
 
 
+class _Handler(logging.StreamHandler):  # type: ignore[type-arg]
+    """The root handler; a stream closed under it (a demo's log file after the run) drops records."""
+
+    def emit(self, record: logging.LogRecord) -> None:
+        if not getattr(self.stream, "closed", False):
+            super().emit(record)
+
+
 def configure(
     fmt: LogFormat = "auto",
     level: str = "info",
@@ -100,7 +108,7 @@ def configure(
             renderer,
         ],
     )
-    handler = logging.StreamHandler(out)
+    handler = _Handler(out)
     handler.setFormatter(formatter)
     setattr(handler, _HANDLER_MARK, True)
     root = logging.getLogger()
