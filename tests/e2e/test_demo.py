@@ -53,6 +53,7 @@ def test_demo_subprocess_ends_in_the_scenario_states(tmp_path: Path):
         proc.stderr == ""
     )  # agent and collector logs go to the state directory's demo.log, not the terminal
     assert (state / "demo.log").stat().st_size > 0 and (state / "collector.sqlite").exists()
+    assert (state / "venue-plan.json").exists()  # the venue plan, imported at start for the plan view
 
     doc = json.loads(out.read_text())
     truth = json.loads((REPLAY_LOGS / "truth.json").read_text())
