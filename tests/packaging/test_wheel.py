@@ -63,6 +63,8 @@ def test_the_wheel_holds_one_namespace_and_its_package_data(wheel):
     for data in (
         "listenpost/systemd/listenpost-agent.service",
         "listenpost/systemd/listenpost-collector.service",
+        "listenpost/systemd/listenpost-enroll.service",
+        "listenpost/systemd/listenpost-sysusers.conf",
         "listenpost/replay_logs/truth.json",
         "listenpost/replay_logs/g0-a.btsnoop.gz",
         "listenpost/scenarios/brackenford.yaml",
