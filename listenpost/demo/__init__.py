@@ -39,10 +39,25 @@ PROGRESS_EVERY_S = 5.0
 STEP_S = 0.5
 """Virtual seconds between checks for power cuts and progress."""
 DEMO_LIVENESS = {"deaf_window_s": 40.0}
-"""Liveness override for the demo venue: every board here hears some device at least every few
-seconds (longest gap in the recordings: 2.5 s), so 40 s of a flat advert counter is already telling,
-and a hung radio is flagged within a minute (docs/design.md §1: "notice within a minute when a board dies or
-its radio hangs"); the collector's default window is 120 s."""
+"""The demo's liveness, stated rather than inherited: the deaf window is the collector's default (40 s),
+written out because the demo's verdict for g2-a depends on it; every board here hears some device at
+least every few seconds (longest gap in the recordings: 2.5 s), so 40 s of a flat advert counter is
+telling, and a hung radio is flagged within a minute (docs/design.md §1)."""
+
+
+def sped_up_liveness(speed: float) -> dict[str, float]:
+    """
+    The demo's liveness on a clock sped up ``speed`` times: every real delay (loopback, scheduling, a
+    busy machine) reaches the clock exchanges multiplied by the speed, so the clock-offset residual
+    tolerance is widened by the same factor; otherwise a loaded machine, not a board, would look like
+    scatter.
+    """
+    from listenpost.collector.models.liveness import LivenessSettings  # the collector extra, at run time
+
+    default = LivenessSettings().residual_tolerance_ms
+    return {**DEMO_LIVENESS, "residual_tolerance_ms": default * max(1.0, speed)}
+
+
 REPLAY_DIR = Path(str(resources.files("listenpost.replay_logs")))  # package data of the wheel
 
 
@@ -153,7 +168,7 @@ async def _demo(args: argparse.Namespace, venue: Any, state_dir: Path, counter: 
 
     speed = float(args.speed)
     base = ScaledClock(speed)
-    fleet = Fleet(venue, state_dir, base, liveness=DEMO_LIVENESS)
+    fleet = Fleet(venue, state_dir, base, liveness=sped_up_liveness(speed))
     end = venue.duration_s + EXTRA_S
     _out(
         f"listenpost demo · Brackenford Science Centre (an invented venue, simulated) · {len(fleet.boards)} boards"
