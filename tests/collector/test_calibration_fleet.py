@@ -1,0 +1,141 @@
+"""Fleet calibration: one solve over every board and reference tag, checked against the simulator's truth
+and against scipy.optimize.least_squares."""
+
+from __future__ import annotations
+
+import gzip
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy.optimize import least_squares
+
+from listenpost.collector.models.calibration_fleet import (
+    HUBER_K,
+    design,
+    pair_geometry,
+    pair_medians,
+    plan_geometry,
+    solve_fleet,
+)
+from listenpost.collector.models.plan import parse_plan
+from listenpost.demo.collector import venue_plan
+from listenpost.sim.truth import read_truth
+
+RECORDING = Path(__file__).resolve().parents[2] / "replay_logs"
+
+
+@pytest.fixture(scope="module")
+def recording():
+    """The simulator's recorded reports of the reference tags, per board, with its truth and plan."""
+    truth = read_truth(RECORDING)
+    plan = parse_plan(venue_plan(truth), "plan")
+    venue = truth.document["venue"]
+    uuid, major = venue["ibeacon_uuid"], venue["reference_major"]
+    prefix = "0215" + uuid.replace("-", "") + f"{major:04x}"
+    boards, tags, raw = [], [], []
+    for path in sorted(RECORDING.glob("*.jsonl.gz")):
+        board = path.name.split(".")[0]
+        with gzip.open(path, "rt") as f:
+            for line in f:
+                m = json.loads(line).get("m", {}).get("004c", "")
+                if m.startswith(prefix):
+                    boards.append(board)
+                    tags.append(f"ibeacon:{uuid}:{major}:{int(m[len(prefix) : len(prefix) + 4], 16)}")
+                    raw.append(json.loads(line)["r"])
+    b, r = np.array(boards, dtype=object), np.array(raw, dtype=float)
+    # The weakest report each board delivered marks its sensitivity (whole dBm: the cut is half a dB lower).
+    floors = {name: float(r[b == name].min()) - 0.5 for name in set(boards)}
+    return truth, plan, pair_medians(b, tags, r, floor_dbm=floors)
+
+
+def test_geometry_from_the_plan_counts_walls_and_slabs(recording):
+    """g0-a to the G0 reference tag: same room, 13.5 m; g0-b to the U0 tag: one slab, one wall."""
+    _, plan, _ = recording
+    g = plan_geometry(plan)
+    g0a = g[("g0-a", "ibeacon:0321413f-8676-4b05-99ca-d259a1f94031:9:1")]
+    assert (g0a.walls, g0a.floors) == (0, 0) and g0a.distance_m == pytest.approx(
+        np.sqrt(11.5**2 + 7**2 + 1.0**2)
+    )
+    assert g0a.p1_dbm == -59.0
+    u0 = g[("g0-b", "ibeacon:0321413f-8676-4b05-99ca-d259a1f94031:9:3")]
+    assert u0.floors == 1 and u0.walls == 1
+    board = next(b for b in plan.boards if b.id == "u0-a")
+    same = pair_geometry(plan, board, board, -59.0)
+    assert same.distance_m == 0.0 and same.walls == 0
+
+
+def test_recovers_the_simulated_offsets_and_exponent(recording):
+    """Against replay_logs/truth.json: exponent within 0.3; every board heard by two or more tags within
+    1.5 dB of the negative of its true offset. The losses are held at the venue's (5 dB/wall, 15 dB/slab):
+    with four reference tags the free fit cannot tell the exponent from the fleet's mean offset."""
+    truth, plan, medians = recording
+    fit = solve_fleet(
+        medians,
+        plan_geometry(plan),
+        all_boards=[b.id for b in plan.boards],
+        wall_db=5.0,
+        floor_db=15.0,
+        min_median_dbm=-100.0,
+    )
+    radio = truth.document["radio"]
+    assert abs(fit.exponent - radio["exponent"]) < 0.3
+    for bf in fit.boards:
+        true = -truth.document["boards"][bf.board]["true_offset_db"]
+        if bf.tags >= 2:
+            assert abs(bf.offset_db - true) < 1.5, bf
+        assert abs(bf.offset_db - true) < 2.0, bf
+    # Boards whose only reference tag is too weak to trust are listed, not given an offset.
+    assert set(fit.unheard) == {"g1-a", "g2-a", "u2-a"}
+    assert not {b.board for b in fit.boards} & set(fit.unheard)
+
+
+def test_agrees_with_scipy_least_squares(recording):
+    """Same data, same Huber threshold: the IRLS solve and least_squares(loss='huber') agree to 0.01 dB."""
+    _, plan, medians = recording
+    geometry = plan_geometry(plan)
+    fit = solve_fleet(medians, geometry, min_median_dbm=-110.0)
+    _, _, a, y = design(medians, geometry, min_median_dbm=-110.0)
+    ref = least_squares(
+        lambda th: y - a @ th,
+        np.zeros(a.shape[1]),
+        loss="huber",
+        f_scale=fit.huber_k_db,
+        xtol=1e-14,
+        ftol=1e-14,
+    )
+    nb = len(fit.boards)
+    assert np.max(np.abs(ref.x[:nb] - [b.offset_db for b in fit.boards])) < 0.01
+    assert abs(ref.x[nb] - fit.exponent) < 0.01
+    assert abs(ref.x[nb + 1] - fit.wall_db) < 0.01 and abs(ref.x[nb + 2] - fit.floor_db) < 0.01
+    assert fit.huber_k_db == pytest.approx(HUBER_K * fit.sigma_db)
+
+
+def test_an_outlying_pair_loses_weight():
+    """A pair 20 dB off the model (a tag moved behind a metal cabinet) is down-weighted, offsets hold."""
+    from listenpost.collector.models.calibration_fleet import PairGeometry
+
+    rng = np.random.default_rng(3)
+    truth = {f"b{i}": o for i, o in enumerate(rng.uniform(-4, 4, 6))}
+    geometry, medians = {}, {}
+    for b, o in truth.items():
+        for t in range(5):
+            d = float(rng.uniform(2, 25))
+            geometry[(b, f"t{t}")] = PairGeometry(b, f"t{t}", d, 0, 0, -59.0)
+            medians[(b, f"t{t}")] = (-59.0 - 27.0 * np.log10(d) - o + rng.normal(0, 0.3), 100)
+    medians[("b0", "t0")] = (medians[("b0", "t0")][0] - 20.0, 100)
+    fit = solve_fleet(medians, geometry, wall_db=0.0, floor_db=0.0, min_median_dbm=-200.0)
+    assert fit.exponent == pytest.approx(2.7, abs=0.05)
+    for bf in fit.boards:
+        assert bf.offset_db == pytest.approx(truth[bf.board], abs=0.5)
+    worst = min(fit.pairs, key=lambda p: p.weight)
+    assert (worst.board, worst.tag) == ("b0", "t0") and worst.weight < 0.1
+
+
+def test_too_few_pairs_is_a_clear_error():
+    from listenpost.collector.models.calibration_fleet import PairGeometry
+
+    g = {("a", "t"): PairGeometry("a", "t", 3.0, 0, 0, -59.0)}
+    with pytest.raises(ValueError, match="pairs: 1 usable"):
+        solve_fleet({("a", "t"): (-75.0, 100)}, g)
