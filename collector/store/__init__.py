@@ -235,13 +235,16 @@ class ReadingChunk:
     board_id: np.ndarray  # int64 store ids
     tag_id: np.ndarray  # int64 store ids
     t_collector: np.ndarray  # float64
-    rssi_dd: np.ndarray  # int32, calibrated
+    rssi_dd: np.ndarray  # int32, as the board calibrated it
     board_names: Mapping[int, str]
     """Every board id -> name of the scan's snapshot (the same object in every chunk of one scan)."""
     tag_names: Mapping[int, str]
     """Every tag id -> identity of the scan's snapshot (the same object in every chunk of one scan)."""
     progress: float | None = None
     """Share of the scan done once this chunk is handled (0..1), when the store can tell."""
+    offset_dd: np.ndarray | None = None
+    """int32, the offset the board had added to each reading (its batch's), tenths of a dB, so the raw
+    value is ``rssi_dd - offset_dd``; ``None`` when the chunk's maker did not say."""
 
 
 class Store(Protocol):

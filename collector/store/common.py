@@ -50,6 +50,46 @@ LATEST_TELEMETRY_SQL = (
 )
 
 
+# Where each board's applied offset changed, in batch id order: readings carry their batch id, and a
+# board's offset changes rarely, so these few rows give every reading's offset without a join per row.
+OFFSET_CHANGES_SQL = (
+    "SELECT board_id, id, offset_dd FROM (SELECT board_id, id, offset_dd, "
+    "lag(offset_dd) OVER (PARTITION BY board_id ORDER BY id) AS prev FROM batches) x "
+    "WHERE prev IS NULL OR prev <> offset_dd ORDER BY board_id, id"
+)
+
+
+class OffsetChanges:
+    """
+    The applied offset of any stored reading, from `OFFSET_CHANGES_SQL`'s rows (board id, batch id, offset).
+
+    A reading's offset is its batch's: the last change of its board at or before its batch id.
+    """
+
+    def __init__(self, rows: Sequence[Sequence[int]]) -> None:
+        arr = np.array(rows, dtype=np.int64).reshape(-1, 3)
+        self._keys = self._key(arr[:, 0], arr[:, 1])
+        self._boards = arr[:, 0]
+        self._offsets = arr[:, 2].astype(np.int32)
+
+    @staticmethod
+    def _key(board_id: np.ndarray, batch_id: np.ndarray) -> np.ndarray:
+        # board ids are small (smallint) and batch ids below 2**47: one sortable int64 key.
+        return (np.asarray(board_id, dtype=np.int64) << 47) | np.asarray(batch_id, dtype=np.int64)
+
+    def lookup(self, board_id: np.ndarray, batch_id: np.ndarray) -> np.ndarray:
+        """int32 offset (tenths of a dB) per reading.
+
+        Raises:
+            ValueError: a reading whose board has no stored batch (its offset is unknown).
+        """
+        i = np.searchsorted(self._keys, self._key(board_id, batch_id), side="right") - 1
+        ok = (i >= 0) & (self._boards[np.maximum(i, 0)] == board_id) if self._keys.size else i >= 0
+        if not np.all(ok):
+            raise ValueError("readings whose batch header is gone: their applied offset is unknown")
+        return self._offsets[i]
+
+
 def json_text(obj: dict[str, Any] | None) -> str | None:
     """A JSON column's text (keys sorted, so equal dicts store equal text), or NULL."""
     return None if obj is None else json.dumps(obj, sort_keys=True)

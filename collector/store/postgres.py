@@ -62,7 +62,9 @@ from listenpost.collector.store.common import (
     BOARD_COLS,
     HISTORY_TABLES,
     LATEST_TELEMETRY_SQL,
+    OFFSET_CHANGES_SQL,
     TELEMETRY_FIELDS,
+    OffsetChanges,
     batch_tag_names,
     board_from_row,
     calibration_from_row,
@@ -127,7 +129,7 @@ _EXPORT_ROW = np.dtype(
 _EXPORT_LENGTHS = {"l0": 4, "l1": 4, "l2": 8, "l3": 4, "l4": 4}
 
 
-# `scan_readings`'s rows in the same binary COPY layout: four NOT NULL fixed-width fields.
+# `scan_readings`'s rows in the same binary COPY layout: five NOT NULL fixed-width fields.
 _SCAN_ROW = np.dtype(
     [
         ("nf", ">i2"),
@@ -139,9 +141,11 @@ _SCAN_ROW = np.dtype(
         ("t_collector", ">f8"),
         ("l3", ">i4"),
         ("rssi_dd", ">i4"),
+        ("l4", ">i4"),
+        ("batch_id", ">i8"),
     ]
 )
-_SCAN_LENGTHS = {"l0": 4, "l1": 4, "l2": 8, "l3": 4}
+_SCAN_LENGTHS = {"l0": 4, "l1": 4, "l2": 8, "l3": 4, "l4": 8}
 SCAN_MAX_SECONDS = 6 * 3600.0
 """Longest a `PostgresStore.scan_readings` COPY may run in all (it also fails after a stall)."""
 
@@ -185,8 +189,8 @@ def _parse_scan_rows(body: bytes) -> np.ndarray:
     if len(body) % _SCAN_ROW.itemsize:
         raise ValueError(f"binary COPY body of {len(body)} bytes is not whole {_SCAN_ROW.itemsize}-byte rows")
     rows = np.frombuffer(body, dtype=_SCAN_ROW)
-    if len(rows) and (np.any(rows["nf"] != 4) or any(np.any(rows[k] != v) for k, v in _SCAN_LENGTHS.items())):
-        raise ValueError("binary COPY rows do not have the expected four fixed-width fields")
+    if len(rows) and (np.any(rows["nf"] != 5) or any(np.any(rows[k] != v) for k, v in _SCAN_LENGTHS.items())):
+        raise ValueError("binary COPY rows do not have the expected five fixed-width fields")
     return rows
 
 
@@ -839,6 +843,7 @@ class PostgresStore:
             # One snapshot for the names and the rows.
             board_names = {int(i): n for i, n in await con.fetch("SELECT id::int8, name FROM boards")}
             tag_names = {int(i): n for i, n in await con.fetch("SELECT id::int8, tag FROM tags")}
+            offsets = OffsetChanges([tuple(r) for r in await con.fetch(OFFSET_CHANGES_SQL)])
             cond, args = ["t_collector >= $1", "t_collector < $2"], [float(t_from), float(t_to)]
             for col, names, wanted in (("board_id", board_names, boards), ("tag_id", tag_names, tags)):
                 if wanted is not None:
@@ -846,7 +851,7 @@ class PostgresStore:
                     args.append([i for i, n in names.items() if n in keep])
                     cond.append(f"{col} = ANY(${len(args)}::int8[])")
             sql = (
-                f"SELECT board_id::int4, tag_id::int4, t_collector, rssi_dd::int4 FROM readings "
+                f"SELECT board_id::int4, tag_id::int4, t_collector, rssi_dd::int4, batch_id::int8 FROM readings "
                 f"WHERE {' AND '.join(cond)}"
             )
             plan = await con.fetchval(f"EXPLAIN (FORMAT JSON) {sql}", *args)
@@ -868,6 +873,7 @@ class PostgresStore:
                         board_names,
                         tag_names,
                         min(1.0, done / estimate) if estimate > 0 else None,
+                        offsets.lookup(rows["board_id"].astype(np.int64), rows["batch_id"].astype(np.int64)),
                     )
                 )
                 return len(rows)

@@ -61,7 +61,9 @@ from listenpost.collector.store.common import (
     BOARD_COLS,
     HISTORY_TABLES,
     LATEST_TELEMETRY_SQL,
+    OFFSET_CHANGES_SQL,
     TELEMETRY_FIELDS,
+    OffsetChanges,
     batch_tag_names,
     board_from_row,
     calibration_from_row,
@@ -106,9 +108,15 @@ _READING_DTYPE = np.dtype(
 )
 
 
-# What `scan_readings` reads per row: no join, no offset (rssi_dd is calibrated already).
+# What `scan_readings` reads per row: no join; the batch id gives the applied offset (`OffsetChanges`).
 _SCAN_DTYPE = np.dtype(
-    [("board_id", np.int64), ("tag_id", np.int64), ("t_collector", np.float64), ("rssi_dd", np.int32)]
+    [
+        ("board_id", np.int64),
+        ("tag_id", np.int64),
+        ("t_collector", np.float64),
+        ("rssi_dd", np.int32),
+        ("batch_id", np.int64),
+    ]
 )
 
 
@@ -868,8 +876,8 @@ class SqliteStore:
         """
         `Store.scan_readings` on a connection and thread of its own, so the shared reader stays free.
 
-        Rows come in time order straight from the ``readings_t`` index (no sort, no join: the offset
-        is not needed), so ``progress`` is how far into the range the last row of a chunk is. One read
+        Rows come in time order straight from the ``readings_t`` index (no sort, no join: the applied
+        offsets come from the few rows where a board's offset changed), so ``progress`` is how far into the range the last row of a chunk is. One read
         transaction holds the snapshot; in WAL mode it never blocks the writer (the WAL cannot be
         checkpointed past it until the scan ends).
         """
@@ -885,6 +893,7 @@ class SqliteStore:
                 con.execute("BEGIN")  # the names and the rows from one snapshot
                 board_names: dict[int, str] = dict(con.execute("SELECT id, name FROM boards"))
                 tag_names: dict[int, str] = dict(con.execute("SELECT id, tag FROM tags"))
+                offsets = OffsetChanges(con.execute(OFFSET_CHANGES_SQL).fetchall())
                 cond, params = ["t_collector >= ?", "t_collector < ?"], [t_from, t_to]
                 for col, names, wanted in (("board_id", board_names, boards), ("tag_id", tag_names, tags)):
                     if wanted is not None:
@@ -892,7 +901,7 @@ class SqliteStore:
                         cond.append(f"{col} IN (SELECT value FROM json_each(?))")
                         params.append(json.dumps([i for i, n in names.items() if n in keep]))
                 cur = con.execute(
-                    f"SELECT board_id, tag_id, t_collector, rssi_dd FROM readings WHERE {' AND '.join(cond)}",
+                    f"SELECT board_id, tag_id, t_collector, rssi_dd, batch_id FROM readings WHERE {' AND '.join(cond)}",
                     params,
                 )
                 span = t_to - t_from
@@ -915,6 +924,7 @@ class SqliteStore:
                             board_names,
                             tag_names,
                             progress,
+                            offsets.lookup(arr["board_id"], arr["batch_id"]),
                         )
                     )
                 return total

@@ -52,9 +52,9 @@ def test_small_case_by_hand_max_and_mean():
     assert mx.tags == (TAG_A, TAG_B) and mx.boards == ("g0-a", "g0-b")
     assert_array_equal(mx.bin_starts, [T0, T0 + 1, T0 + 2])
     nan = math.nan
-    assert_array_equal(
-        mx.rssi, [[[-60.0, nan], [nan, -70.5], [nan, nan]], [[nan, nan], [-81.2, nan], [-82.0, -70.0]]]
-    )
+    expected = [[[-60.0, nan], [nan, -70.5], [nan, nan]], [[nan, nan], [-81.2, nan], [-82.0, -70.0]]]
+    assert mx.rssi.dtype == np.float32
+    assert_array_equal(mx.rssi, np.array(expected, dtype=np.float32))
     assert_array_equal(mx.counts, [[[2, 0], [0, 1], [0, 0]], [[0, 0], [1, 0], [1, 1]]])
     mean = bin_readings(rows_of(SMALL), T0, T0 + 3.0, 1.0, agg=Aggregate.MEAN)
     assert_allclose(mean.rssi[0, 0, 0], -62.0)
@@ -156,6 +156,11 @@ def test_failed_write_keeps_the_previous_file(tmp_path):
         counts = np.ones((1, 1, 1), dtype=np.int32)
         bin_starts = np.array([T0])
         rssi = None  # indexing this fails during the write
+
+        def room_of(self, i):
+            return ""
+
+        floor_of = room_of
 
     with pytest.raises(TypeError):
         write_csv(Broken(), path)  # type: ignore[arg-type]
