@@ -278,13 +278,30 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
             "history; calibrate again to replace it.",
         )
     )
-    cal.add_argument("name", metavar="NAME", help="board name")
-    cal.add_argument("--tag", required=True, metavar="ID", help="the reference tag's canonical ID")
+    cal.add_argument("name", metavar="NAME", nargs="?", help="board name (not with --fleet)")
+    cal.add_argument("--tag", metavar="ID", help="the reference tag's canonical ID")
+    cal.add_argument("--distance", type=float, metavar="M", help="tag-to-board distance, metres")
     cal.add_argument(
-        "--distance", type=float, required=True, metavar="M", help="tag-to-board distance, metres"
+        "--fleet",
+        action="store_true",
+        help="every board at once from the venue plan's reference tags (docs/calibration.md); "
+        "prints the fit, and applies it with --apply",
+    )
+    cal.add_argument("--apply", action="store_true", help="with --fleet: make the fitted offsets current")
+    cal.add_argument(
+        "--wall-db", type=float, metavar="DB", help="with --fleet: hold the loss per wall (default: fitted)"
     )
     cal.add_argument(
-        "--minutes", type=float, default=5.0, metavar="N", help="use the last N minutes (default 5)"
+        "--floor-db",
+        type=float,
+        metavar="DB",
+        help="with --fleet: hold the loss per floor slab (default: fitted)",
+    )
+    cal.add_argument(
+        "--minutes",
+        type=float,
+        metavar="N",
+        help="use the last N minutes (default 5; with --fleet 30)",
     )
     cal.add_argument(
         "--power-1m",
@@ -1080,10 +1097,17 @@ def event_detail(kind: str, detail: Any) -> str:
 
 
 def _calibrate(args: argparse.Namespace) -> int:
+    if args.fleet:
+        return _calibrate_fleet(args)
+    if args.apply:
+        raise ConfigError("--apply: only with --fleet (a single-board calibration is applied at once)")
+    for flag, value in (("NAME", args.name), ("--tag", args.tag), ("--distance", args.distance)):
+        if value is None:
+            raise ConfigError(f"{flag}: required without --fleet")
     body = {
         "tag": args.tag,
         "distance_m": args.distance,
-        "minutes": args.minutes,
+        "minutes": 5.0 if args.minutes is None else args.minutes,
         "power_1m_dbm": args.power_1m,
         "exponent": args.exponent,
     }
@@ -1100,6 +1124,36 @@ def _calibrate(args: argparse.Namespace) -> int:
         _out(f"! {_CALIBRATION_WARNINGS.get(w, w)}")
     if answer["warnings"]:
         _out("  The offset was applied; fix the cause and calibrate again to replace it.")
+    return 0
+
+
+def _calibrate_fleet(args: argparse.Namespace) -> int:
+    if args.name or args.tag or args.distance is not None:
+        raise ConfigError("--fleet: takes no NAME, --tag or --distance (the plan gives them)")
+    body: dict[str, Any] = {"minutes": 30.0 if args.minutes is None else args.minutes, "apply": args.apply}
+    if args.wall_db is not None:
+        body["wall_db"] = args.wall_db
+    if args.floor_db is not None:
+        body["floor_db"] = args.floor_db
+    answer = request(args, "POST", "/v1/admin/calibrate/fleet", body=body)
+    if args.json:
+        _out(json.dumps(answer))
+        return 0
+    _out(
+        f"exponent {answer['exponent']:.2f} ± {answer['exponent_stderr'] or 0:.2f}, "
+        f"wall {answer['wall_db']:.1f} dB, floor {answer['floor_db']:.1f} dB, "
+        f"residual σ {answer['sigma_db']:.2f} dB, last {answer['minutes']:g} minutes"
+    )
+    _out(f"{'board':<12} {'offset dB':>10} {'± dB':>6} {'resid dB':>9} {'tags':>5}")
+    for b in answer["boards"]:
+        se = "—" if b["stderr_db"] is None else f"{b['stderr_db']:.1f}"
+        _out(f"{b['board']:<12} {b['offset_db']:>+10.1f} {se:>6} {b['residual_db']:>9.1f} {b['tags']:>5}")
+    if answer["unheard"]:
+        _out(f"! no usable reference tag, offset unchanged: {', '.join(answer['unheard'])}")
+    if answer["applied"]:
+        _out(f"applied to {len(answer['applied'])} boards")
+    else:
+        _out("not applied (add --apply)")
     return 0
 
 

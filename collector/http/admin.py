@@ -350,6 +350,7 @@ class ExportRequest:
     fmt: str
     boards: list[str] | None
     tags: list[str] | None
+    calibration: str = "applied"
 
 
 def _export_request(request: web.Request) -> ExportRequest:
@@ -365,8 +366,13 @@ def _export_request(request: web.Request) -> ExportRequest:
     if not math.isfinite(bin_s) or bin_s <= 0 or (t_to - t_from) / bin_s > 10_000_000:
         raise bad_field("bin", "must be > 0 seconds and give at most 10 million bins")
     fmt = request.query.get("format", "csv")
-    if fmt not in ("csv", "npz"):
-        raise bad_field("format", f"must be csv or npz, got {fmt!r}")
+    if fmt not in EXPORT_FORMATS:
+        raise bad_field("format", f"must be one of {', '.join(EXPORT_FORMATS)}, got {fmt[:40]!r}")
+    calibration = request.query.get("calibration", "applied")
+    if calibration not in EXPORT_CALIBRATIONS:
+        raise bad_field(
+            "calibration", f"must be one of {', '.join(EXPORT_CALIBRATIONS)}, got {calibration[:40]!r}"
+        )
     boards = [_query_board(request, b) for b in request.query.getall("board", [])] or None
     tags = []
     for text in request.query.getall("tag", []):
@@ -374,7 +380,13 @@ def _export_request(request: web.Request) -> ExportRequest:
             tags.append(parse_tag_id(text))
         except DecodeError as e:
             raise bad_field("tag", str(e)) from e
-    return ExportRequest(t_from, t_to, bin_s, fmt, boards, tags or None)
+    return ExportRequest(t_from, t_to, bin_s, fmt, boards, tags or None, calibration)
+
+
+EXPORT_FORMATS = ("csv", "npz", "parquet")
+EXPORT_CALIBRATIONS = ("applied", "history", "latest")
+"""`CalibrationChoice` values (collector/models/export.py), spelled here so a bad request costs no import."""
+_EXPORT_TYPES = {"csv": "text/csv", "npz": "application/octet-stream", "parquet": "application/vnd.apache.parquet"}
 
 
 MAX_RUNNING_EXPORTS = 2
@@ -401,6 +413,8 @@ class ExportJob:
     readings: int = 0
     progress: float | None = None
     error: dict[str, Any] | None = None
+    summary: dict[str, Any] | None = None
+    """Cells, readings, boards, tags, time span and calibration of the finished table."""
     path: Path | None = None
     finished: asyncio.Event = dataclasses.field(default_factory=asyncio.Event)
     task: asyncio.Task[None] | None = None
@@ -414,6 +428,8 @@ class ExportJob:
             "readings": self.readings,
             "progress": self.progress,
             "error": self.error,
+            "calibration": self.ask.calibration,
+            "summary": self.summary,
         }
 
 
@@ -447,11 +463,16 @@ EXPORT_JOBS = web.AppKey("export_jobs", ExportJobs)
 
 async def _run_export(app: web.Application, job: ExportJob) -> None:
     """Scan, bin and write in worker threads; the event loop only starts them and records progress."""
-    from listenpost.collector.models.export import TableBuilder, write_csv, write_npz
+    from listenpost.collector.models.export import WRITERS, BoardInfo, TableBuilder
 
     ask, store = job.ask, app[STORE]
     try:
-        boards = ask.boards or sorted(b.name for b in await store.list_boards())
+        registry = {b.name: b for b in await store.list_boards()}
+        boards = ask.boards or sorted(registry)
+        history = {}
+        if ask.calibration != "applied":
+            for name in boards:
+                history[name] = [(c.at, c.offset_db) for c in await store.calibrations(name)]
         builder = TableBuilder(
             ask.t_from,
             ask.t_to,
@@ -459,6 +480,9 @@ async def _run_export(app: web.Application, job: ExportJob) -> None:
             boards,
             tags=ask.tags,
             base_tags=() if ask.tags else await store.list_tags(),
+            calibration=ask.calibration,
+            history=history,
+            board_info={n: BoardInfo(b.room, b.floor) for n, b in registry.items()},
         )
 
         def sink(chunk: ReadingChunk) -> None:
@@ -471,8 +495,9 @@ async def _run_export(app: web.Application, job: ExportJob) -> None:
 
         def render() -> Path:
             table = builder.table()
+            job.summary = table.summary()
             path = Path(job.folder.name) / f"listenpost-export.{ask.fmt}"
-            (write_csv if ask.fmt == "csv" else write_npz)(table, path)
+            WRITERS[ask.fmt](table, path)
             return path
 
         job.path = await asyncio.to_thread(render)
@@ -542,7 +567,7 @@ def _export_file(job: ExportJob) -> web.StreamResponse:
     return web.FileResponse(
         job.path,
         headers={
-            "Content-Type": "text/csv" if job.ask.fmt == "csv" else "application/octet-stream",
+            "Content-Type": _EXPORT_TYPES[job.ask.fmt],
             "Content-Disposition": f'attachment; filename="listenpost-export.{job.ask.fmt}"',
             "X-Readings": str(job.readings),
         },
@@ -689,6 +714,94 @@ async def calibrate(request: web.Request) -> web.Response:
     )
 
 
+async def calibrate_fleet(request: web.Request) -> web.Response:
+    """
+    ``POST /v1/admin/calibrate/fleet`` ``{minutes?, apply?, wall_db?, floor_db?, min_level_dbm?}``.
+
+    One solve over every board and every reference tag of the venue plan it heard in the last ``minutes``
+    (collector/models/calibration_fleet.py). With ``apply`` each fitted offset goes into its board's
+    history and becomes current, as a single-board calibration does; boards with no usable pair are
+    listed in ``unheard`` and keep their offset.
+    """
+    require_admin(request)
+    from listenpost.collector.models.calibration_fleet import (
+        fit_json,
+        pair_medians,
+        plan_geometry,
+        solve_fleet,
+    )
+    from listenpost.collector.web.plan import read_plan
+
+    body = await _json_object(request)
+    minutes = _number_field(body, "minutes", 1.0, 240.0, default=30.0)
+    apply = body.get("apply", False)
+    if not isinstance(apply, bool):
+        raise bad_field("apply", f"must be true or false, got {apply!r}")
+    losses = {
+        k: None if body.get(k) is None else _number_field(body, k, 0.0, 60.0) for k in ("wall_db", "floor_db")
+    }
+    min_level = _number_field(body, "min_level_dbm", -127.0, 0.0, default=-100.0)
+    plan = await asyncio.to_thread(read_plan, request.app[SETTINGS].state_dir)
+    if plan is None or not plan.reference_tags:
+        raise ApiError(
+            409, "no_plan", "import a venue plan with reference tags first (collector plan import)"
+        )
+    store, now = request.app[STORE], request.app[CLOCK].time()
+    rows = await store.readings(now - minutes * 60, now, tags=[t.id for t in plan.reference_tags])
+    raw = (np.asarray(rows.rssi_dd, dtype=float) - np.asarray(rows.offset_dd, dtype=float)) / 10.0
+    known = {b.id for b in plan.boards}
+    keep = np.array([b in known for b in rows.board], dtype=bool)
+    b, t, raw = rows.board[keep], rows.tag[keep], raw[keep]
+    if raw.size == 0:
+        raise ApiError(
+            409, "no_readings", f"no board of the plan heard a reference tag in the last {minutes:g} minutes"
+        )
+    # The weakest report a board delivered stands for its sensitivity (whole dBm: the cut is half a dB lower).
+    floors = {name: float(raw[b == name].min()) - 0.5 for name in set(b.tolist())}
+    try:
+        medians = pair_medians(b, t, raw, floor_dbm=floors)
+        fit = await asyncio.to_thread(
+            solve_fleet,
+            medians,
+            plan_geometry(plan),
+            all_boards=sorted(known),
+            min_median_dbm=min_level,
+            **losses,
+        )
+    except ValueError as e:
+        raise ApiError(409, "cannot_solve", str(e)) from e
+    answer = fit_json(fit)
+    applied = []
+    if apply:
+        for bf in fit.boards:
+            board = await store.get_board(bf.board)
+            if board is None or board.retired_at is not None:
+                continue
+            cal = Calibration(
+                board.name,
+                now,
+                float(bf.offset_db),
+                float(bf.residual_db),
+                sum(p.samples for p in fit.pairs if p.board == bf.board),
+                "fleet",
+                0.0,
+                board.fingerprint,
+            )
+            await store.set_offset(cal)
+            await store.add_event(
+                Event(
+                    now,
+                    board.name,
+                    "calibrated",
+                    {**_calibration_json(cal), "fleet": True, "stderr_db": bf.stderr_db},
+                )
+            )
+            applied.append(board.name)
+        forget_tokens(request.app)  # cached Board records carry the old offsets
+        log.info("fleet_calibrated", boards=len(applied), exponent=fit.exponent)
+    return web.json_response({**answer, "applied": applied, "minutes": minutes})
+
+
 async def walktest(request: web.Request) -> web.Response:
     """
     ``POST /v1/admin/walktest`` ``{tag, marks: [{room, from, to}]}`` → per room, the board that heard the
@@ -742,6 +855,7 @@ def add_routes(app: web.Application) -> None:
     r.add_post("/v1/admin/boards/{name}/retire", retire_board)
     r.add_post("/v1/admin/boards/{name}/reissue", reissue_board)
     r.add_post("/v1/admin/boards/{name}/calibrate", calibrate)
+    r.add_post("/v1/admin/calibrate/fleet", calibrate_fleet)
     r.add_post("/v1/admin/tags", import_tags)
     r.add_get("/v1/admin/tags", list_tags, allow_head=False)
     r.add_post("/v1/admin/tags/retire", retire_tags)

@@ -408,6 +408,44 @@ def spec() -> dict[str, Any]:
                 "responses": {"200": _json(_ref("BoardWithCode")), **_errors(401, 404, 409)},
             }
         },
+        "/v1/admin/calibrate/fleet": {
+            "post": {
+                "summary": "Fit every board's RSSI offset and the path-loss exponent from the plan's reference tags",
+                "security": ADMIN_AUTH,
+                "tags": ["admin"],
+                "requestBody": _body(
+                    _obj(
+                        [],
+                        minutes={"type": "number", "minimum": 1.0, "maximum": 240.0, "default": 30.0},
+                        apply={"type": "boolean", "default": False},
+                        wall_db={"type": ["number", "null"], "minimum": 0.0, "maximum": 60.0},
+                        floor_db={"type": ["number", "null"], "minimum": 0.0, "maximum": 60.0},
+                        min_level_dbm={
+                            "type": "number",
+                            "minimum": -127.0,
+                            "maximum": 0.0,
+                            "default": -100.0,
+                        },
+                    )
+                ),
+                "responses": {
+                    "200": _json(
+                        _obj(
+                            exponent=NUM,
+                            exponent_stderr=NUM,
+                            wall_db=NUM,
+                            floor_db=NUM,
+                            sigma_db=NUM,
+                            boards={"type": "array", "items": {"type": "object"}},
+                            unheard={"type": "array", "items": STR},
+                            pairs={"type": "array", "items": {"type": "object"}},
+                            applied={"type": "array", "items": STR},
+                        )
+                    ),
+                    **_errors(*BODY_ERRORS, 401, 409),
+                },
+            }
+        },
         "/v1/admin/boards/{name}/calibrate": {
             "post": {
                 "summary": "Set the board's RSSI offset from a reference tag at a measured distance",
