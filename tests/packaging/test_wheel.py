@@ -125,6 +125,7 @@ def serving(lp: Path, state: Path, config: Path) -> Iterator[str]:
     argv += ["--port", str(port), "--log-format", "json"]
     proc = subprocess.Popen(argv, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
     seen: list[str] = []
+    drain: threading.Thread | None = None
     try:
         assert proc.stdout is not None
         for line in proc.stdout:  # bounded by pytest-timeout; EOF if serve dies
@@ -135,11 +136,16 @@ def serving(lp: Path, state: Path, config: Path) -> Iterator[str]:
             raise AssertionError("collector serve exited before listening:\n" + "".join(seen)[-3000:])
         drain = threading.Thread(target=seen.extend, args=(proc.stdout,), daemon=True)
         drain.start()  # keeps the pipe from filling while the test runs
-        urllib.request.urlopen(url + "/v1/status", timeout=10).read()  # listening means answering
+        with urllib.request.urlopen(url + "/v1/status", timeout=10) as answer:  # listening means answering
+            answer.read()
         yield url
     finally:
         proc.terminate()
         proc.wait(timeout=60)
+        if drain is not None:
+            drain.join(timeout=60)  # EOF once the process is gone
+        if proc.stdout is not None:
+            proc.stdout.close()
 
 
 def test_collector_extra_serves_enrolls_stores_a_replay_and_runs_the_demo(collector_env, tmp_path):
