@@ -50,7 +50,7 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
     cmds = p.add_subparsers(
         dest="command",
         required=True,
-        metavar="{serve,board,tags,plan,status,export,calibrate,walktest,events}",
+        metavar="{serve,board,tags,plan,status,export,report,calibrate,walktest,events}",
     )
 
     sv = cmds.add_parser(
@@ -243,11 +243,13 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
     ex = client(
         cmds.add_parser(
             "export",
-            help="binned calibrated RSSI table (tag × time bin × board)",
-            description="Calibrated RSSI per tag, time bin and board, on the collector's clock (each board's clock "
-            "correction applied); the strongest reading of each bin. CSV: one row per heard cell "
-            "(t_start_iso, t_start, tag, board, rssi_dbm, n). npz: dense arrays rssi[tag, bin, board] "
-            "(NaN where not heard), counts, tags, boards, bin_starts, metadata. See README.md.",
+            help="binned RSSI table (tag × time bin × board) with a chosen calibration",
+            description="RSSI per tag, time bin and board, on the collector's clock (each board's clock "
+            "correction applied); the strongest reading of each bin. Bins are aligned to the Unix epoch "
+            "(starts are multiples of --bin; the first and last may be partial). CSV and Parquet: one row "
+            "per heard cell (t_start_iso, t_start, tag, board, room, floor, rssi_dbm, n). npz: dense float32 "
+            "arrays rssi[tag, bin, board] (NaN where not heard), counts, tags, boards, rooms, floors, "
+            "bin_starts, metadata. See docs/export.md.",
         )
     )
     ex.add_argument(
@@ -257,7 +259,14 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
         "--to", dest="t_to", required=True, metavar="T", help="end, same forms; must be after --from"
     )
     ex.add_argument("--bin", type=float, required=True, metavar="S", help="bin width, seconds")
-    ex.add_argument("--format", choices=("csv", "npz"), default="csv", help="default %(default)s")
+    ex.add_argument("--format", choices=("csv", "npz", "parquet"), default="csv", help="default %(default)s")
+    ex.add_argument(
+        "--calibration",
+        choices=("applied", "history", "latest"),
+        default="applied",
+        help="offset added to the raw RSSI: as each board applied it, the calibration history valid at "
+        "each reading's time, or each board's latest calibration for all readings (default %(default)s)",
+    )
     ex.add_argument("--out", type=Path, required=True, metavar="FILE", help="written whole or not at all")
     ex.add_argument("--board", action="append", metavar="NAME", help="only these boards (repeatable)")
     ex.add_argument("--tag", action="append", metavar="ID", help="only these tags (repeatable)")
@@ -267,6 +276,28 @@ def register(sub: argparse._SubParsersAction, name: str, help_text: str) -> None
         f"Exit status {EXIT_NO_READINGS}: no reading matched, nothing written."
     )
     ex.set_defaults(func=_export)
+
+    rp = client(
+        cmds.add_parser(
+            "report",
+            help="study-day report: one self-contained HTML file with plots",
+            description="One HTML file (plots inline, no external requests; prints on A4, reads on a phone) "
+            "of the span: board states per floor, readings per room per hour, coverage gaps, losses and "
+            "their cause, clock fit per board, calibrations, and a walk test when --walk-tag and "
+            "--walk-marks are given. Gathered over the admin API and drawn here, so the collector only "
+            "answers queries and runs one export job.",
+        )
+    )
+    rp.add_argument(
+        "--from", dest="t_from", required=True, metavar="T", help="ISO-8601 (UTC if no zone) or Unix seconds"
+    )
+    rp.add_argument(
+        "--to", dest="t_to", required=True, metavar="T", help="end, same forms; must be after --from"
+    )
+    rp.add_argument("--out", type=Path, required=True, metavar="FILE", help="the HTML file, written whole")
+    rp.add_argument("--walk-tag", metavar="ID", help="reference tag of a walk test to include")
+    rp.add_argument("--walk-marks", type=Path, metavar="FILE", help="its marks: CSV room,from,to")
+    rp.set_defaults(func=_report)
 
     cal = client(
         cmds.add_parser(
@@ -978,6 +1009,7 @@ def _export(args: argparse.Namespace) -> int:
     if args.bin <= 0:
         raise ConfigError("--bin: must be > 0 seconds")
     params = [("from", repr(t_from)), ("to", repr(t_to)), ("bin", repr(args.bin)), ("format", args.format)]
+    params.append(("calibration", args.calibration))
     params += [("board", b) for b in args.board or []] + [("tag", t) for t in args.tag or []]
     return asyncio.run(_export_job(args, params))
 
@@ -1013,7 +1045,22 @@ async def _export_job(args: argparse.Namespace, params: list[tuple[str, str]]) -
         return EXIT_NO_READINGS
     size = await _download(args, f"/v1/admin/exports/{job['job']}/file", args.out)
     _out(f"wrote {args.out} ({size:,} bytes, {args.format}, {job['readings']:,} readings)")
+    if job.get("summary"):
+        sys.stderr.write(_export_summary(job["summary"]) + "\n")
     return 0
+
+
+def _export_summary(s: dict[str, Any]) -> str:
+    """One line to check an export by before analysing it."""
+    span = f"{_utc(s['t_from'])} .. {_utc(s['t_to'])}"
+    return (
+        f"export: {s['cells']:,} cells, {s['readings']:,} readings, {s['boards']} boards, {s['tags']} tags, "
+        f"{span} ({s['bins']:,} bins), calibration {s['calibration']}"
+    )
+
+
+def _utc(t: float) -> str:
+    return datetime.fromtimestamp(t, tz=UTC).isoformat(timespec="seconds").replace("+00:00", "Z")
 
 
 async def _download(args: argparse.Namespace, path: str, out: Path) -> int:
@@ -1047,6 +1094,46 @@ async def _download(args: argparse.Namespace, path: str, out: Path) -> int:
         with contextlib.suppress(OSError):
             tmp.unlink()
     return size
+
+
+def _report(args: argparse.Namespace) -> int:
+    t_from, t_to = parse_time(args.t_from, "--from"), parse_time(args.t_to, "--to")
+    if t_to <= t_from:
+        raise ConfigError("--to: must be after --from")
+    if (args.walk_tag is None) != (args.walk_marks is None):
+        raise ConfigError("--walk-tag: give it together with --walk-marks (or neither)")
+    walk = (args.walk_tag, read_marks(args.walk_marks)) if args.walk_marks is not None else None
+    try:
+        args.out.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        raise ConfigError(f"--out: cannot create {args.out.parent}: {e.strerror or e}") from None
+    from listenpost.collector.report import gather, render
+
+    async def call(method: str, path: str, *, params: Any = None, body: Any = None) -> Any:
+        return await _request(args, method, path, body=body, params=params, raw=False, auth=True)
+
+    async def download(path: str, out: Path) -> int:
+        return await _download(args, path, out)
+
+    try:
+        data = asyncio.run(
+            gather(
+                call, download, collector=collector_url(args.collector), t_from=t_from, t_to=t_to, walk=walk
+            )
+        )
+    except RuntimeError as e:
+        raise AdminError(f"the readings export failed: {e}") from e
+    page = render(data)
+    tmp = args.out.with_name(args.out.name + ".part")
+    try:
+        tmp.write_text(page, encoding="utf-8")
+        os.replace(tmp, args.out)  # a half-written report never carries the final name
+    except OSError as e:
+        with contextlib.suppress(OSError):
+            tmp.unlink()
+        raise AdminError(f"{args.out}: cannot write: {e.strerror or e}") from e
+    _out(f"wrote {args.out} ({len(page.encode()):,} bytes, {sum(data.readings.values()):,} readings)")
+    return 0
 
 
 def _wheelhouse_build(args: argparse.Namespace) -> int:

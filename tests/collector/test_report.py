@@ -1,0 +1,224 @@
+"""
+``listenpost collector report`` against the demo venue: the real collector on loopback and real agents
+replaying the recordings for a few minutes of virtual time (g2-a's radio hangs at 4 min, u3-a loses
+power at 6 min, u2-a's crystal is 85 ppm fast), one board calibrated and a walk test given; then the
+HTML file in headless Chromium at desktop and phone widths, and printed to A4.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import math
+import re
+from dataclasses import dataclass
+from pathlib import Path
+
+import pytest
+import structlog
+
+from listenpost.core.clock import VirtualClock
+from listenpost.demo import DEMO_LIVENESS
+from listenpost.demo.fleet import Fleet
+from listenpost.sim.truth import Truth, read_truth
+from tests.collector.test_health_page import CHROMIUM, CHROMIUM_ARGS, WIDTHS, _browser_or_skip
+from tests.e2e.conftest import REPLAY_LOGS, cli, cli_async, quiet_logs
+
+pytestmark = pytest.mark.timeout(600)
+
+RUN_S = 400.0
+"""Virtual seconds of the venue: past g2-a's radio hang (240 s) and u3-a's power cut (360 s)."""
+SECTIONS = {
+    "states": 2,  # one plot per floor: ground and upper
+    "readings": 1,
+    "coverage": 1,
+    "losses": 1,
+    "clock": 1,
+    "calibration": 1,
+    "walktest": 1,
+}
+"""Plots each section must hold for this run."""
+
+
+@dataclass
+class ReportRun:
+    venue: Truth
+    html: Path
+    plain: Path
+    """The same span without a walk test."""
+    out: str
+    calibrated: str
+    ref_room: str
+
+
+def _reference(venue: Truth) -> tuple[str, str, str, float]:
+    """The first reference tag: (id, room label, the nearest board in its room, distance m)."""
+    from listenpost.core.identity import parse_tag_id
+    from listenpost.sim.scenario import load_scenario
+
+    tags = load_scenario(str(venue.document["scenario"])).tags
+    ref = tags.reference[0]
+    tag = parse_tag_id(f"ibeacon:{tags.venue_uuid}:{tags.reference_major}:{ref.minor}")
+    docs = venue.document["boards"]
+    mine = [
+        (name, math.dist(d["pos_m"], ref.place.at)) for name, d in docs.items() if d["room"] == ref.place.room
+    ]
+    name, dist = min(mine, key=lambda x: x[1])
+    label = next(b.room_label for b in venue.boards if b.name == name)
+    return tag, label, name, dist
+
+
+async def _run(base: Path) -> ReportRun:
+    venue = read_truth(REPLAY_LOGS)
+    fleet = Fleet(
+        venue, base / "run", VirtualClock(start=1000.0, wall=venue.start_wall), liveness=DEMO_LIVENESS
+    )
+    tag, room, board, dist = _reference(venue)
+    try:
+        await fleet.start()
+        await fleet.run_until(RUN_S, step_s=1.0)
+        common = ["--collector", fleet.url, "--state-dir", str(fleet.state_dir), "--timeout", "120"]
+        code, out = await cli_async(
+            [
+                "collector",
+                "calibrate",
+                board,
+                "--tag",
+                tag,
+                "--distance",
+                f"{dist:.2f}",
+                "--minutes",
+                "3",
+                *common,
+            ]
+        )
+        assert code == 0, out
+        marks = base / "marks.csv"
+        t0 = venue.start_wall
+        marks.write_text(f"room,from,to\n{room},{t0 + 60!r},{t0 + 300!r}\n")  # noqa: ASYNC240
+        span = ["--from", repr(t0), "--to", repr(t0 + RUN_S)]
+        report = base / "report" / "day.html"
+        code, out = await cli_async(
+            [
+                "collector",
+                "report",
+                *span,
+                "--out",
+                str(report),
+                "--walk-tag",
+                tag,
+                "--walk-marks",
+                str(marks),
+            ]
+            + common
+        )
+        assert code == 0, out
+        plain = base / "report" / "plain.html"
+        code, out2 = await cli_async(["collector", "report", *span, "--out", str(plain), *common])
+        assert code == 0, out2
+    finally:
+        await fleet.close()
+    return ReportRun(venue, report, plain, out, board, room)
+
+
+@pytest.fixture(scope="module")
+def run(tmp_path_factory: pytest.TempPathFactory) -> ReportRun:
+    base = tmp_path_factory.mktemp("report")
+    fh = quiet_logs(base / "run.log")
+    try:
+        return asyncio.run(_run(base))
+    finally:
+        fh.close()
+        structlog.reset_defaults()
+
+
+def _section(text: str, key: str) -> str:
+    m = re.search(rf'<section id="{key}">(.*?)</section>', text, re.S)
+    assert m, key
+    return m.group(1)
+
+
+def test_report_holds_every_section_and_its_plots(run: ReportRun):
+    text = run.html.read_text(encoding="utf-8")
+    print(f"\nreport: {run.html} ({len(text):,} bytes); {run.out.strip()}")
+    for key, n in SECTIONS.items():
+        assert _section(text, key).count("<svg ") == n, key
+    # Self-contained: no script, and every reference points inside the page (SVG clip paths, hatches).
+    assert "<script" not in text
+    assert not re.search(r'\b(src|href)="(?!#|data:)', text) and not re.search(r"url\((?!#)", text)
+    ids = re.findall(r'\bid="([^"]+)"', text)
+    assert len(ids) == len(set(ids)), "ids repeat across the inline plots"
+    states = _section(text, "states")
+    assert "u3-a" in states and "became silent" in states  # the power cut
+    assert "became deaf" in states  # g2-a's radio
+    assert "became drifting" in states  # u2-a's crystal
+    clock = _section(text, "clock")
+    assert re.search(r"<td>u2-a</td><td class=n>[0-9.]+</td><td class=n>\+[89][0-9]\.[0-9]</td>", clock)
+    cal = _section(text, "calibration")
+    assert f"<td>{run.calibrated}</td>" in cal and "never" in cal
+    walk = _section(text, "walktest")
+    assert f"<td>{run.ref_room}</td>" in walk
+    plain = run.plain.read_text(encoding="utf-8")
+    assert "does not store walk tests" in _section(plain, "walktest")
+    assert _section(plain, "walktest").count("<svg ") == 0
+
+
+def test_report_in_a_browser_fits_a_phone_and_prints_on_a4(run: ReportRun, tmp_path: Path):
+    _browser_or_skip()
+    asyncio.run(_browse(run, tmp_path))
+
+
+async def _browse(run: ReportRun, tmp_path: Path) -> None:
+    from playwright.async_api import async_playwright
+
+    shots = tmp_path / "screenshots"
+    shots.mkdir()
+    print(f"\nscreenshots: {shots}")
+    async with async_playwright() as pw:
+        browser = await pw.chromium.launch(executable_path=CHROMIUM, args=CHROMIUM_ARGS)
+        try:
+            for wname, (w, h) in WIDTHS.items():
+                page = await browser.new_page(viewport={"width": w, "height": h})
+                requests: list[str] = []
+                page.on("request", lambda r, seen=requests: seen.append(r.url))
+                await page.goto(run.html.as_uri(), timeout=15_000)
+                assert requests == [run.html.as_uri()]  # nothing fetched beyond the file itself
+                for key, n in SECTIONS.items():
+                    shown = await page.locator(f"section#{key} svg.plot").count()
+                    assert shown == n, (wname, key, shown)
+                    box = await page.locator(f"section#{key}").bounding_box()
+                    assert box is not None and box["height"] > 0
+                width = await page.evaluate(
+                    "() => [document.scrollingElement.scrollWidth, window.innerWidth]"
+                )
+                assert width[0] <= width[1], (wname, width)
+                await page.screenshot(path=str(shots / f"report-{wname}.png"), full_page=True)
+                await page.screenshot(path=str(shots / f"report-{wname}-top.png"))
+                await page.close()
+            page = await browser.new_page()
+            await page.goto(run.html.as_uri(), timeout=15_000)
+            await page.emulate_media(media="print")
+            pdf = shots / "report-a4.pdf"
+            await page.pdf(path=str(pdf), format="A4", prefer_css_page_size=True)
+            assert pdf.read_bytes().startswith(b"%PDF")  # noqa: ASYNC230
+            await page.set_viewport_size({"width": 718, "height": 1000})  # A4 less the margins, at 96 dpi
+            width = await page.evaluate("() => [document.scrollingElement.scrollWidth, window.innerWidth]")
+            assert width[0] <= width[1], ("print", width)
+        finally:
+            await browser.close()
+
+
+@pytest.mark.parametrize(
+    ("argv", "field"),
+    [
+        (["--from", "2026-01-02", "--to", "2026-01-01"], "--to"),
+        (["--from", "yesterday", "--to", "2026-01-01"], "--from"),
+        (["--from", "0", "--to", "10", "--walk-tag", "ibeacon:x"], "--walk-tag"),
+    ],
+)
+def test_bad_report_arguments_name_the_option(
+    argv: list[str], field: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+):
+    out = tmp_path / "r.html"
+    code, _ = cli(["collector", "report", *argv, "--out", str(out), "--collector", "http://127.0.0.1:9"])
+    assert code == 2 and field in capsys.readouterr().err
+    assert not out.exists()
