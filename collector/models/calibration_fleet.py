@@ -19,8 +19,9 @@ with Huber weights (k = 1.345·σ̂, σ̂ = 1.4826·MAD of the residuals; Huber 
 constant): a pair far off the model (a tag moved, a board behind a metal case) loses weight instead
 of dragging every offset. Per-board residuals and standard errors come with the offsets.
 
-Pairs whose median is below ``min_median_dbm`` are left out: near a receiver's sensitivity the weak
-reports are never heard, so the median of what is heard reads too strong.
+Near a receiver's sensitivity the weak reports are never heard, so the median of what is heard reads
+too strong: `pair_medians` corrects for the cut (a normal distribution cut at the board's weakest
+report), and pairs whose level is below ``min_level_dbm`` are left out.
 """
 
 from __future__ import annotations
@@ -37,8 +38,9 @@ HUBER_K = 1.345
 """Huber's tuning constant, in robust standard deviations (95 % efficiency under Gaussian noise)."""
 MAD_TO_SIGMA = 1.4826
 """MAD → σ for Gaussian data (1 / Φ⁻¹(0.75))."""
-MIN_MEDIAN_DBM = -90.0
-"""Pairs with a weaker median are left out (about 2σ of 5 dB shadowing above a −100 dBm sensitivity)."""
+MIN_LEVEL_DBM = -105.0
+"""Pairs with a weaker level are left out: about one shadowing σ (5 dB) below a −100 dBm sensitivity, so at
+least a sixth of the reports are seen, enough for the cut-normal correction of `pair_medians`."""
 MIN_SAMPLES = 30
 """Fewer readings per pair are left out: the median is not yet stable."""
 DEFAULT_P1_DBM = -59.0
@@ -188,7 +190,7 @@ def pair_medians(
     board or one for all), the level is the mean of a normal distribution cut at that floor whose
     visible part has the pair's mean: far pairs lose their weak reports below the receiver's
     sensitivity, and their plain median reads several dB too strong. ``sigma_db`` is the shadowing
-    spread (default: pooled from the pairs well above the floor, IQR/1.349).
+    spread (default: the median standard deviation of the pairs well above the floor).
     """
     b = np.asarray(boards, dtype=object)
     t = np.asarray(tags, dtype=object)
@@ -207,8 +209,10 @@ def pair_medians(
         return float(floor_dbm if not isinstance(floor_dbm, Mapping) else floor_dbm.get(board, -math.inf))
 
     if sigma_db is None:
+        # Standard deviation, not IQR: reports are whole dBm, so quartiles move in 1 dB steps. Sheppard's
+        # correction takes out the rounding's own 1/12 dB².
         spreads = [
-            float(np.subtract(*np.percentile(x[idx], [75, 25]))) / 1.349
+            math.sqrt(max(float(np.var(x[idx])) - 1.0 / 12.0, 0.0))
             for k, idx in groups.items()
             if len(idx) >= MIN_SAMPLES and np.percentile(x[idx], 2) > floor_of(k[0]) + 1.0
         ]
@@ -248,7 +252,7 @@ def design(
     medians: Mapping[tuple[str, str], tuple[float, int]],
     geometry: Mapping[tuple[str, str], PairGeometry],
     *,
-    min_median_dbm: float = MIN_MEDIAN_DBM,
+    min_level_dbm: float = MIN_LEVEL_DBM,
     min_samples: int = MIN_SAMPLES,
     wall_db: float | None = None,
     floor_db: float | None = None,
@@ -262,7 +266,7 @@ def design(
     pairs = sorted(
         k
         for k, (med, count) in medians.items()
-        if k in geometry and count >= min_samples and med >= min_median_dbm
+        if k in geometry and count >= min_samples and med >= min_level_dbm
     )
     boards = sorted({b for b, _ in pairs})
     col = {b: i for i, b in enumerate(boards)}
@@ -286,7 +290,7 @@ def solve_fleet(
     geometry: Mapping[tuple[str, str], PairGeometry],
     *,
     all_boards: Iterable[str] = (),
-    min_median_dbm: float = MIN_MEDIAN_DBM,
+    min_level_dbm: float = MIN_LEVEL_DBM,
     min_samples: int = MIN_SAMPLES,
     wall_db: float | None = None,
     floor_db: float | None = None,
@@ -311,7 +315,7 @@ def solve_fleet(
     boards, pairs, a, y = design(
         medians,
         geometry,
-        min_median_dbm=min_median_dbm,
+        min_level_dbm=min_level_dbm,
         min_samples=min_samples,
         wall_db=wall_db,
         floor_db=floor_db,
