@@ -715,7 +715,7 @@ async def calibrate_fleet(request: web.Request) -> web.Response:
     losses = {
         k: None if body.get(k) is None else _number_field(body, k, 0.0, 60.0) for k in ("wall_db", "floor_db")
     }
-    min_level = _number_field(body, "min_level_dbm", -127.0, 0.0, default=-100.0)
+    min_level = _number_field(body, "min_level_dbm", -127.0, 0.0, default=-105.0)
     plan = await asyncio.to_thread(read_plan, request.app[SETTINGS].state_dir)
     if plan is None or not plan.reference_tags:
         raise ApiError(
@@ -740,7 +740,7 @@ async def calibrate_fleet(request: web.Request) -> web.Response:
             medians,
             plan_geometry(plan),
             all_boards=sorted(known),
-            min_median_dbm=min_level,
+            min_level_dbm=min_level,
             **losses,
         )
     except ValueError as e:

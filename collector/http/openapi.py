@@ -424,7 +424,7 @@ def spec() -> dict[str, Any]:
                             "type": "number",
                             "minimum": -127.0,
                             "maximum": 0.0,
-                            "default": -100.0,
+                            "default": -105.0,
                         },
                     )
                 ),
