@@ -190,7 +190,10 @@ def coverage_gaps(
         rooms[row["room"]].append(row["name"])
     gaps: dict[str, list[tuple[float, float]]] = {}
     for room, names in sorted(rooms.items()):
-        covered = sorted((a, b) for n in names for a, b, s in segments.get(n, []) if s in COVERING)
+        # Before the monitor's first verdict a board is "not yet seen": unknown, not a gap.
+        covered = sorted(
+            (a, b) for n in names for a, b, s in segments.get(n, []) if s in COVERING or s == "unknown"
+        )
         out, at = [], data.t_from
         for a, b in covered:
             if a > at:
@@ -300,13 +303,14 @@ def plot_states(
             )
             for s in order
         ],
-        loc="upper center",
-        bbox_to_anchor=(0.5, -0.28 if len(rows) > 2 else -0.5),
-        ncol=min(4, max(1, len(order))),
+        loc="lower left",
+        bbox_to_anchor=(0.0, 1.0),
+        ncol=min(5, max(1, len(order))),
         frameon=False,
         fontsize=9,
+        handlelength=1.6,
+        columnspacing=1.0,
     )
-    ax.set_title(f"Board states, floor {floor}", loc="left", fontsize=11)
     return _svg(fig, f"board states over time on floor {floor}")
 
 
@@ -321,7 +325,8 @@ def room_rates(data: ReportData) -> tuple[list[str], list[float], list[list[floa
         k = int((t - data.t_from) // data.bin_s)
         room = room_of.get(board)
         if room is not None and 0 <= k < n_bins:
-            grid[room][k] += n * 3600.0 / data.bin_s
+            width = min(data.bin_s, data.t_end - starts[k])  # the last bin may be cut by the span's end
+            grid[room][k] += n * 3600.0 / max(width, 1e-9)
     return rooms, starts, [grid[r] for r in rooms]
 
 
@@ -345,7 +350,6 @@ def plot_rates(data: ReportData) -> str:
     ax.set_xlim(x0, x1)
     bar = fig.colorbar(im, ax=ax, orientation="horizontal", pad=0.22, fraction=0.05, aspect=40)
     bar.set_label(f"readings per hour ({_dur(data.bin_s)} bins)")
-    ax.set_title("Readings per room", loc="left", fontsize=11)
     return _svg(fig, "readings per room per hour as a heat map")
 
 
@@ -371,7 +375,7 @@ def plot_coverage(data: ReportData, gaps: dict[str, list[tuple[float, float]]]) 
     ax.set_yticks(range(len(rooms)), rooms, fontsize=9)
     ax.set_ylim(len(rooms) - 0.5, -0.5)
     _minutes_axis(ax, data)
-    ax.set_title("Rooms without a working board (red, hatched)", loc="left", fontsize=11)
+    ax.set_title("red, hatched: no working board in the room", loc="left", fontsize=10)
     return _svg(fig, "coverage gaps per room over time")
 
 
@@ -394,7 +398,7 @@ def plot_losses(data: ReportData, batches: dict[str, int], gaps: dict[str, int])
     import numpy as np
 
     plt = _plt()
-    names = sorted({r["name"] for r in data.status.get("boards", [])} | set(batches))
+    names = sorted(n for n in set(batches) | set(gaps) if batches.get(n) or gaps.get(n))
     fig, (a1, a2) = plt.subplots(1, 2, figsize=(7.5, 1.4 + 0.3 * max(1, len(names))), sharey=True)
     y = np.arange(len(names))
     a1.barh(y, [batches.get(n, 0) for n in names], color="#c62828")
@@ -417,10 +421,10 @@ def plot_clock(data: ReportData) -> str:
     names = [r["name"] for r in rows]
     y = np.arange(len(names))
     fig, (a1, a2) = plt.subplots(1, 2, figsize=(7.5, 1.4 + 0.3 * max(1, len(names))), sharey=True)
-    res = [r.get("clock_residual_ms") for r in rows]
+    res = [None if r.get("clock_residual_ms") is None else r["clock_residual_ms"] * 1000.0 for r in rows]
     skew = [r.get("clock_skew_ppm") for r in rows]
     a1.barh(y, [v or 0.0 for v in res], color="#1565c0")
-    a1.set_title("fit residual, ms", fontsize=10)
+    a1.set_title("fit residual, µs", fontsize=10)
     a2.barh(
         y,
         [v or 0.0 for v in skew],
@@ -458,13 +462,16 @@ def plot_calibrations(data: ReportData) -> str | None:
         )
     import matplotlib.dates as mdates
 
+    times = [c["at"] for _, c in hist]
+    lo, hi = min(times + [data.t_from]), max(times + [data.t_end])
+    pad = max(60.0, 0.05 * (hi - lo))
     ax.xaxis_date(tz=UTC)
+    ax.set_xlim(_num(lo - pad), _num(hi + pad))
     ax.xaxis.set_major_formatter(mdates.DateFormatter("%m-%d %H:%M", tz=UTC))
     ax.xaxis.set_major_locator(mdates.AutoDateLocator(minticks=2, maxticks=5, tz=UTC))
     ax.set_ylabel("offset, dB (bar: spread)")
     ax.set_xlabel("calibrated at (UTC)")
-    ax.legend(fontsize=8, ncol=3, frameon=False, loc="upper center", bbox_to_anchor=(0.5, -0.3))
-    ax.set_title("RSSI offset history", loc="left", fontsize=11)
+    ax.legend(fontsize=9, ncol=5, frameon=False, loc="lower left", bbox_to_anchor=(0.0, 1.0))
     return _svg(fig, "calibration offset history per board")
 
 
@@ -481,7 +488,7 @@ def plot_walk(data: ReportData) -> str | None:
     ax.set_yticks(range(len(rooms)), names, fontsize=9)
     ax.set_ylim(len(rooms) - 0.5, -0.5)
     ax.set_xlabel("margin of the strongest board over the runner-up, dB")
-    ax.set_title("Walk test (green: strongest board is in the room)", loc="left", fontsize=11)
+    ax.set_title("green: the strongest board is in the room; red: it is not", loc="left", fontsize=10)
     return _svg(fig, "walk test margin per room")
 
 
@@ -533,7 +540,7 @@ CSS = """
 html{-webkit-text-size-adjust:100%}
 body{font:15px/1.45 system-ui,-apple-system,"Segoe UI",sans-serif;color:#1b1b1b;margin:0 auto;
  max-width:60rem;padding:1rem}
-h1{font-size:1.5rem;margin:.2rem 0}h2{font-size:1.2rem;margin:1.6rem 0 .5rem;border-bottom:1px solid #ccc}
+h1{font-size:1.5rem;margin:.2rem 0}h2{font-size:1.2rem;margin:1.6rem 0 .5rem;border-bottom:1px solid #ccc}h3{font-size:1rem;margin:1rem 0 .2rem}
 .meta{color:#444;margin:0 0 1rem}
 figure.plot{margin:.5rem 0;max-width:100%}
 svg.plot{display:block;width:100%;height:auto;max-width:100%}
@@ -567,7 +574,10 @@ def render(data: ReportData) -> str:
             "states",
             "Board states over time",
             _p(f"{len(rows)} boards on {len(floors)} floors; {len(changes)} state changes in the span."),
-            *(_fig(plot_states(data, floor, fr, segs)) for floor, fr in floors.items()),
+            *(
+                f"<h3>Floor {html.escape(floor)}</h3>" + _fig(plot_states(data, floor, fr, segs))
+                for floor, fr in floors.items()
+            ),
             _table(
                 ("At (UTC)", "Board", "Change"),
                 [(_t(e["at"]), e["board"], event_text(e["kind"], e["detail"])) for e in changes[-200:]],
@@ -579,6 +589,10 @@ def render(data: ReportData) -> str:
 
     # readings
     rooms, _, grid = room_rates(data)
+    room_of = {r["name"]: r["room"] for r in rows}
+    room_totals: dict[str, int] = defaultdict(int)
+    for (board, _t0), n in data.readings.items():
+        room_totals[room_of.get(board, "?")] += n
     hours = max(1e-9, (data.t_end - data.t_from) / 3600.0)
     parts.append(
         _section(
@@ -590,8 +604,8 @@ def render(data: ReportData) -> str:
                 [
                     (
                         room,
-                        f"{round(sum(g) * data.bin_s / 3600):,}",
-                        f"{sum(g) * data.bin_s / 3600 / hours:,.0f}",
+                        f"{room_totals.get(room, 0):,}",
+                        f"{room_totals.get(room, 0) / hours:,.0f}",
                         f"{max(g, default=0):,.0f}",
                     )
                     for room, g in zip(rooms, grid, strict=True)
@@ -610,7 +624,8 @@ def render(data: ReportData) -> str:
             "Coverage gaps",
             _p(
                 "A room is covered while at least one of its boards is live, late or backlogged (its "
-                "readings still arrive); not yet seen, silent, deaf, drifting or retired boards do not count."
+                "readings still arrive); silent, deaf, drifting or retired boards do not count. Time before the "
+                "collector first judged a board (not yet seen) is not counted as a gap."
             ),
             _fig(plot_coverage(data, gaps)),
             _table(
@@ -631,7 +646,9 @@ def render(data: ReportData) -> str:
                 f"waiting for, as loss events in the span); {sum(gap_readings.values()):,} readings the "
                 "boards themselves reported dropped (gap records, since each board's start)."
             ),
-            _fig(plot_losses(data, lost_batches, gap_readings)),
+            _fig(plot_losses(data, lost_batches, gap_readings))
+            if any(lost_batches.values()) or any(gap_readings.values())
+            else _p("No board lost a batch or dropped a reading."),
             _table(
                 ("At (UTC)", "Board", "Seqs", "Batches"),
                 [
@@ -661,11 +678,14 @@ def render(data: ReportData) -> str:
             ),
             _fig(plot_clock(data)),
             _table(
-                ("Board", "Residual ms", "Skew ppm", "Steps", "Refused", "State"),
+                ("Board", "Residual µs", "Skew ppm", "Steps", "Refused", "State"),
                 [
                     (
                         r["name"],
-                        _f(r.get("clock_residual_ms"), ".2f"),
+                        _f(
+                            None if r.get("clock_residual_ms") is None else r["clock_residual_ms"] * 1000,
+                            ".1f",
+                        ),
                         _f(r.get("clock_skew_ppm"), "+.1f"),
                         r.get("clock_steps", 0),
                         r.get("clock_exchanges_refused", 0),

@@ -16,6 +16,7 @@ from pathlib import Path
 import pytest
 import structlog
 
+from listenpost.collector.report import ReportData, coverage_gaps, render, state_segments
 from listenpost.core.clock import VirtualClock
 from listenpost.demo import DEMO_LIVENESS
 from listenpost.demo.fleet import Fleet
@@ -31,7 +32,7 @@ SECTIONS = {
     "states": 2,  # one plot per floor: ground and upper
     "readings": 1,
     "coverage": 1,
-    "losses": 1,
+    "losses": 0,  # nothing was lost in this run: a sentence says so (test_losses_are_drawn draws some)
     "clock": 1,
     "calibration": 1,
     "walktest": 1,
@@ -151,6 +152,11 @@ def test_report_holds_every_section_and_its_plots(run: ReportRun):
     assert "u3-a" in states and "became silent" in states  # the power cut
     assert "became deaf" in states  # g2-a's radio
     assert "became drifting" in states  # u2-a's crystal
+    coverage = _section(text, "coverage")
+    # Before the first verdict nobody is judged: only the rooms whose boards failed have gaps.
+    assert "<td>G0 Foyer</td><td class=n>0 s</td>" in coverage
+    assert "<td>G2 Sound Lab</td><td class=n>2 min</td>" in coverage
+    assert "No board lost a batch" in _section(text, "losses")
     clock = _section(text, "clock")
     assert re.search(r"<td>u2-a</td><td class=n>[0-9.]+</td><td class=n>\+[89][0-9]\.[0-9]</td>", clock)
     cal = _section(text, "calibration")
@@ -222,3 +228,80 @@ def test_bad_report_arguments_name_the_option(
     code, _ = cli(["collector", "report", *argv, "--out", str(out), "--collector", "http://127.0.0.1:9"])
     assert code == 2 and field in capsys.readouterr().err
     assert not out.exists()
+
+
+def _data(**kw: object) -> ReportData:
+    """A small fleet's report data: two boards in one room, one alone in another, 10 minutes."""
+    t0 = 1_800_000_000.0
+    rows = [
+        {"name": "a-1", "room": "A", "floor": "ground", "state": "live", "gap_readings": 0},
+        {"name": "a-2", "room": "A", "floor": "ground", "state": "silent", "gap_readings": 120},
+        {"name": "b-1", "room": "B", "floor": "upper", "state": "deaf", "gap_readings": 0},
+    ]
+    for r in rows:
+        r.update(clock_residual_ms=0.4, clock_skew_ppm=3.0, clock_steps=0, clock_exchanges_refused=0)
+
+    def change(i: int, at: float, board: str, old: str | None, new: str) -> dict[str, object]:
+        return {
+            "id": i,
+            "at": t0 + at,
+            "board": board,
+            "kind": "state_changed",
+            "detail": {"old": old, "new": new},
+        }
+
+    events = [
+        change(1, 5, "a-1", None, "live"),
+        change(2, 5, "a-2", None, "live"),
+        change(3, 5, "b-1", None, "live"),
+        change(4, 200, "a-2", "live", "silent"),
+        change(5, 300, "b-1", "live", "deaf"),
+        {
+            "id": 6,
+            "at": t0 + 400,
+            "board": "a-2",
+            "kind": "loss",
+            "detail": {"first_seq": 7, "last_seq": 9, "batches": 3},
+        },
+    ]
+    boards = [
+        {"name": "a-1", "offset_db": 0.0, "calibrations": []},
+        {
+            "name": "a-2",
+            "offset_db": -2.5,
+            "calibrations": [
+                {"at": t0 + 100, "offset_db": -1.0, "spread_db": 1.5, "samples": 80},
+                {"at": t0 + 500, "offset_db": -2.5, "spread_db": 0.8, "samples": 90},
+            ],
+        },
+        {"name": "b-1", "offset_db": 0.0, "calibrations": []},
+    ]
+    args: dict[str, object] = {
+        "t_from": t0,
+        "t_to": t0 + 600,
+        "collector": "http://127.0.0.1:8470",
+        "status": {"at": t0 + 600, "boards": rows, "fleet": {"boards": 3, "tags": 4}},
+        "boards": boards,
+        "events": events,
+        "bin_s": 60.0,
+        "readings": {("a-1", t0 + 60 * k): 100 for k in range(10)} | {("b-1", t0): 50},
+    }
+    args.update(kw)
+    return ReportData(**args)  # type: ignore[arg-type]
+
+
+def test_losses_are_drawn_with_their_cause_and_gaps_follow_the_states():
+    data = _data()
+    gaps = coverage_gaps(data, state_segments(data))
+    # Room A keeps a live board throughout; room B has none from b-1 going deaf at 300 s. The first
+    # 5 s, before any verdict, are no gap.
+    assert gaps == {"A": [], "B": [(data.t_from + 300, data.t_from + 600)]}
+    text = render(data)
+    losses = text[text.index('<section id="losses">') :]
+    losses = losses[: losses.index("</section>")]
+    assert losses.count("<svg ") == 1
+    assert "3 batches never arrived" in losses and "120 readings" in losses
+    cal = text[text.index('<section id="calibration">') :]
+    assert cal.count("<svg ", 0, cal.index("</section>")) == 1
+    assert "<td class=n>-1.5</td>" in cal  # the shift between a-2's two calibrations
+    assert "does not store walk tests" in text
