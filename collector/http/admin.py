@@ -350,6 +350,7 @@ class ExportRequest:
     fmt: str
     boards: list[str] | None
     tags: list[str] | None
+    calibration: str = "applied"
 
 
 def _export_request(request: web.Request) -> ExportRequest:
@@ -365,8 +366,13 @@ def _export_request(request: web.Request) -> ExportRequest:
     if not math.isfinite(bin_s) or bin_s <= 0 or (t_to - t_from) / bin_s > 10_000_000:
         raise bad_field("bin", "must be > 0 seconds and give at most 10 million bins")
     fmt = request.query.get("format", "csv")
-    if fmt not in ("csv", "npz"):
-        raise bad_field("format", f"must be csv or npz, got {fmt!r}")
+    if fmt not in EXPORT_FORMATS:
+        raise bad_field("format", f"must be one of {', '.join(EXPORT_FORMATS)}, got {fmt[:40]!r}")
+    calibration = request.query.get("calibration", "applied")
+    if calibration not in EXPORT_CALIBRATIONS:
+        raise bad_field(
+            "calibration", f"must be one of {', '.join(EXPORT_CALIBRATIONS)}, got {calibration[:40]!r}"
+        )
     boards = [_query_board(request, b) for b in request.query.getall("board", [])] or None
     tags = []
     for text in request.query.getall("tag", []):
@@ -374,7 +380,17 @@ def _export_request(request: web.Request) -> ExportRequest:
             tags.append(parse_tag_id(text))
         except DecodeError as e:
             raise bad_field("tag", str(e)) from e
-    return ExportRequest(t_from, t_to, bin_s, fmt, boards, tags or None)
+    return ExportRequest(t_from, t_to, bin_s, fmt, boards, tags or None, calibration)
+
+
+EXPORT_FORMATS = ("csv", "npz", "parquet")
+EXPORT_CALIBRATIONS = ("applied", "history", "latest")
+"""`CalibrationChoice` values (collector/models/export.py), spelled here so a bad request costs no import."""
+_EXPORT_TYPES = {
+    "csv": "text/csv",
+    "npz": "application/octet-stream",
+    "parquet": "application/vnd.apache.parquet",
+}
 
 
 MAX_RUNNING_EXPORTS = 2
@@ -401,6 +417,8 @@ class ExportJob:
     readings: int = 0
     progress: float | None = None
     error: dict[str, Any] | None = None
+    summary: dict[str, Any] | None = None
+    """Cells, readings, boards, tags, time span and calibration of the finished table."""
     path: Path | None = None
     finished: asyncio.Event = dataclasses.field(default_factory=asyncio.Event)
     task: asyncio.Task[None] | None = None
@@ -414,6 +432,8 @@ class ExportJob:
             "readings": self.readings,
             "progress": self.progress,
             "error": self.error,
+            "calibration": self.ask.calibration,
+            "summary": self.summary,
         }
 
 
@@ -447,11 +467,16 @@ EXPORT_JOBS = web.AppKey("export_jobs", ExportJobs)
 
 async def _run_export(app: web.Application, job: ExportJob) -> None:
     """Scan, bin and write in worker threads; the event loop only starts them and records progress."""
-    from listenpost.collector.models.export import TableBuilder, write_csv, write_npz
+    from listenpost.collector.models.export import WRITERS, BoardInfo, TableBuilder
 
     ask, store = job.ask, app[STORE]
     try:
-        boards = ask.boards or sorted(b.name for b in await store.list_boards())
+        registry = {b.name: b for b in await store.list_boards()}
+        boards = ask.boards or sorted(registry)
+        history = {}
+        if ask.calibration != "applied":
+            for name in boards:
+                history[name] = [(c.at, c.offset_db) for c in await store.calibrations(name)]
         builder = TableBuilder(
             ask.t_from,
             ask.t_to,
@@ -459,6 +484,9 @@ async def _run_export(app: web.Application, job: ExportJob) -> None:
             boards,
             tags=ask.tags,
             base_tags=() if ask.tags else await store.list_tags(),
+            calibration=ask.calibration,
+            history=history,
+            board_info={n: BoardInfo(b.room, b.floor) for n, b in registry.items()},
         )
 
         def sink(chunk: ReadingChunk) -> None:
@@ -471,8 +499,9 @@ async def _run_export(app: web.Application, job: ExportJob) -> None:
 
         def render() -> Path:
             table = builder.table()
+            job.summary = table.summary()
             path = Path(job.folder.name) / f"listenpost-export.{ask.fmt}"
-            (write_csv if ask.fmt == "csv" else write_npz)(table, path)
+            WRITERS[ask.fmt](table, path)
             return path
 
         job.path = await asyncio.to_thread(render)
@@ -542,7 +571,7 @@ def _export_file(job: ExportJob) -> web.StreamResponse:
     return web.FileResponse(
         job.path,
         headers={
-            "Content-Type": "text/csv" if job.ask.fmt == "csv" else "application/octet-stream",
+            "Content-Type": _EXPORT_TYPES[job.ask.fmt],
             "Content-Disposition": f'attachment; filename="listenpost-export.{job.ask.fmt}"',
             "X-Readings": str(job.readings),
         },
@@ -558,7 +587,8 @@ def _failed(job: ExportJob) -> ApiError:
 
 
 async def export(request: web.Request) -> web.StreamResponse:
-    """``GET /v1/admin/export?from=&to=&bin=&format=csv|npz[&board=..][&tag=..]``: binned calibrated RSSI.
+    """``GET /v1/admin/export?from=&to=&bin=&format=csv|npz|parquet[&calibration=applied|history|latest]
+    [&board=..][&tag=..]``: binned RSSI with the chosen calibration (docs/export.md).
 
     Runs as an export job and answers when it is done: a client with a total timeout shorter than the
     export gives up; ``POST /v1/admin/exports`` plus polling does not."""

@@ -111,25 +111,40 @@ def spec() -> dict[str, Any]:
             ("from", UNIX_S),
             ("to", UNIX_S),
             ("bin", {"type": "number", "exclusiveMinimum": True, "minimum": 0, "default": 1}),
-            ("format", {"type": "string", "enum": ["csv", "npz"], "default": "csv"}),
+            ("format", {"type": "string", "enum": ["csv", "npz", "parquet"], "default": "csv"}),
+            (
+                "calibration",
+                {"type": "string", "enum": ["applied", "history", "latest"], "default": "applied"},
+            ),
             ("board", {"type": "array", "items": BOARD}),
             ("tag", {"type": "array", "items": TAG}),
         )
     ]
     export_file = {
         "description": "the table",
-        "content": {"text/csv": {"schema": STR}, "application/octet-stream": {"schema": STR}},
+        "content": {
+            "text/csv": {"schema": STR},
+            "application/octet-stream": {"schema": STR},
+            "application/vnd.apache.parquet": {"schema": STR},
+        },
     }
     nullable_num = {"type": "number", "nullable": True}
     export_job = _obj(
-        ["job", "state", "format", "rows_scanned", "readings", "progress", "error"],
+        ["job", "state", "format", "rows_scanned", "readings", "progress", "error", "calibration", "summary"],
         job=STR,
         state={"type": "string", "enum": ["running", "done", "failed"]},
-        format={"type": "string", "enum": ["csv", "npz"]},
+        format={"type": "string", "enum": ["csv", "npz", "parquet"]},
         rows_scanned=INT,
         readings=INT,
         progress=nullable_num,
         error={"type": "object", "nullable": True},
+        calibration={"type": "string", "enum": ["applied", "history", "latest"]},
+        summary={
+            "type": "object",
+            "nullable": True,
+            "description": "when done: cells (heard), readings, boards and tags heard, t_from, t_to, bins, "
+            "calibration",
+        },
     )
     clock = _obj(["t1", "t2", "t3", "t4"], t1=NUM, t2=NUM, t3=NUM, t4=NUM)
     paths: dict[str, Any] = {
