@@ -52,15 +52,17 @@ def machine() -> str:
 
 
 def head_commit() -> str:
-    proc = subprocess.run(
-        ["git", "rev-parse", "--short", "HEAD"],
-        cwd=REPO,
-        capture_output=True,
-        text=True,
-        check=False,
-        timeout=30,
-    )
-    return proc.stdout.strip()
+    """HEAD at the end of the run, and how many tracked files then differed from it (the run measures the tree)."""
+
+    def git(*args: str) -> str:
+        proc = subprocess.run(
+            ["git", *args], cwd=REPO, capture_output=True, text=True, check=False, timeout=30
+        )
+        return proc.stdout.strip()
+
+    head = git("rev-parse", "--short", "HEAD") or "?"
+    changed = [line for line in git("status", "--porcelain", "-uno").splitlines() if line.strip()]
+    return f"`{head}`" + (f" ({len(changed)} tracked files changed in the working tree)" if changed else "")
 
 
 RESULT = {True: "pass", False: "**FAIL**", None: "not run"}
