@@ -148,6 +148,8 @@ async def _binned_readings(
 
 
 Segment = tuple[float, float, str]
+FIG_W = 5.6
+"""Figure width, inches: narrow enough that a 390 px phone shows the labels at a readable size."""
 
 
 def state_segments(data: ReportData) -> dict[str, list[Segment]]:
@@ -217,7 +219,7 @@ def _plt() -> Any:
     plt.rcParams.update(
         {
             "svg.fonttype": "none",  # text stays text: small files, selectable, crisp in print
-            "font.size": 11,
+            "font.size": 10,
             "axes.spines.top": False,
             "axes.spines.right": False,
         }
@@ -279,7 +281,7 @@ def plot_states(
 
     plt = _plt()
     rows = sorted(rows, key=lambda r: r["name"])
-    fig, ax = plt.subplots(figsize=(7.5, 1.2 + 0.42 * len(rows)))
+    fig, ax = plt.subplots(figsize=(FIG_W, 1.2 + 0.42 * len(rows)))
     seen: set[str] = set()
     for i, r in enumerate(rows):
         for a, b, s in segs.get(r["name"], []):
@@ -332,10 +334,11 @@ def room_rates(data: ReportData) -> tuple[list[str], list[float], list[list[floa
 
 def plot_rates(data: ReportData) -> str:
     import numpy as np
+    from matplotlib.ticker import FuncFormatter
 
     plt = _plt()
     rooms, starts, grid = room_rates(data)
-    fig, ax = plt.subplots(figsize=(7.5, 1.4 + 0.36 * max(1, len(rooms))))
+    fig, ax = plt.subplots(figsize=(FIG_W, 1.4 + 0.36 * max(1, len(rooms))))
     arr = np.array(grid, dtype=float) if rooms else np.zeros((1, 1))
     x0, x1 = _num(data.t_from), _num(starts[-1] + data.bin_s) if starts else _num(data.t_end)
     im = ax.imshow(
@@ -350,13 +353,16 @@ def plot_rates(data: ReportData) -> str:
     ax.set_xlim(x0, x1)
     bar = fig.colorbar(im, ax=ax, orientation="horizontal", pad=0.22, fraction=0.05, aspect=40)
     bar.set_label(f"readings per hour ({_dur(data.bin_s)} bins)")
+    bar.ax.xaxis.set_major_formatter(
+        FuncFormatter(lambda v, _: f"{v / 1e6:g}M" if v >= 1e6 else f"{v / 1e3:g}k" if v >= 1e3 else f"{v:g}")
+    )
     return _svg(fig, "readings per room per hour as a heat map")
 
 
 def plot_coverage(data: ReportData, gaps: dict[str, list[tuple[float, float]]]) -> str:
     plt = _plt()
     rooms = list(gaps)
-    fig, ax = plt.subplots(figsize=(7.5, 1.2 + 0.36 * max(1, len(rooms))))
+    fig, ax = plt.subplots(figsize=(FIG_W, 1.2 + 0.36 * max(1, len(rooms))))
     for i, room in enumerate(rooms):
         ax.broken_barh(
             [(_num(data.t_from), _num(data.t_end) - _num(data.t_from))],
@@ -399,7 +405,7 @@ def plot_losses(data: ReportData, batches: dict[str, int], gaps: dict[str, int])
 
     plt = _plt()
     names = sorted(n for n in set(batches) | set(gaps) if batches.get(n) or gaps.get(n))
-    fig, (a1, a2) = plt.subplots(1, 2, figsize=(7.5, 1.4 + 0.3 * max(1, len(names))), sharey=True)
+    fig, (a1, a2) = plt.subplots(1, 2, figsize=(FIG_W, 1.4 + 0.3 * max(1, len(names))), sharey=True)
     y = np.arange(len(names))
     a1.barh(y, [batches.get(n, 0) for n in names], color="#c62828")
     a1.set_title("batches never arrived\n(seq holes)", fontsize=10)
@@ -420,7 +426,7 @@ def plot_clock(data: ReportData) -> str:
     rows = sorted(data.status.get("boards", []), key=lambda r: r["name"])
     names = [r["name"] for r in rows]
     y = np.arange(len(names))
-    fig, (a1, a2) = plt.subplots(1, 2, figsize=(7.5, 1.4 + 0.3 * max(1, len(names))), sharey=True)
+    fig, (a1, a2) = plt.subplots(1, 2, figsize=(FIG_W, 1.4 + 0.3 * max(1, len(names))), sharey=True)
     res = [None if r.get("clock_residual_ms") is None else r["clock_residual_ms"] * 1000.0 for r in rows]
     skew = [r.get("clock_skew_ppm") for r in rows]
     a1.barh(y, [v or 0.0 for v in res], color="#1565c0")
@@ -446,7 +452,7 @@ def plot_calibrations(data: ReportData) -> str | None:
     hist = [(b["name"], c) for b in data.boards for c in b.get("calibrations") or []]
     if not hist:
         return None
-    fig, ax = plt.subplots(figsize=(7.5, 3.2))
+    fig, ax = plt.subplots(figsize=(FIG_W, 3.2))
     by_board: dict[str, list[dict[str, Any]]] = defaultdict(list)
     for name, c in hist:
         by_board[name].append(c)
@@ -480,7 +486,7 @@ def plot_walk(data: ReportData) -> str | None:
     rooms = (data.walktest or {}).get("rooms") or []
     if not rooms:
         return None
-    fig, ax = plt.subplots(figsize=(7.5, 1.2 + 0.36 * len(rooms)))
+    fig, ax = plt.subplots(figsize=(FIG_W, 1.2 + 0.36 * len(rooms)))
     names = [r["room"] for r in rooms]
     margins = [r.get("margin_db") or 0.0 for r in rooms]
     colours = ["#2e7d32" if r.get("strongest_in_room") else "#c62828" for r in rooms]
@@ -544,9 +550,10 @@ h1{font-size:1.5rem;margin:.2rem 0}h2{font-size:1.2rem;margin:1.6rem 0 .5rem;bor
 .meta{color:#444;margin:0 0 1rem}
 figure.plot{margin:.5rem 0;max-width:100%}
 svg.plot{display:block;width:100%;height:auto;max-width:100%}
-table{border-collapse:collapse;width:100%;table-layout:fixed;font-size:.85rem;margin:.5rem 0}
-th,td{border-bottom:1px solid #ddd;padding:.25rem .3rem;text-align:left;vertical-align:top;
- overflow-wrap:anywhere}
+svg.plot{max-width:46rem}
+table{border-collapse:collapse;width:100%;font-size:.85rem;margin:.5rem 0}
+th,td{border-bottom:1px solid #ddd;padding:.25rem .3rem;text-align:left;vertical-align:top}
+td{overflow-wrap:break-word}
 th{background:#f3f3f3}.n{text-align:right;font-variant-numeric:tabular-nums}
 .note{color:#555;font-size:.9rem}
 @media (max-width:480px){body{font-size:14px;padding:.6rem}table{font-size:.75rem}}
@@ -559,6 +566,12 @@ th{background:#f3f3f3}.n{text-align:right;font-variant-numeric:tabular-nums}
 def render(data: ReportData) -> str:
     """The report as one HTML document (no external resources)."""
     segs = state_segments(data)
+    one_day = _t(data.t_from)[:10] == _t(data.t_end)[:10]
+
+    def clock(t: float) -> str:
+        """Time of day when the whole span is one UTC day (the title gives the date), else date and time."""
+        return _t(t)[11:] if one_day else _t(t)
+
     gaps = coverage_gaps(data, segs)
     loss_events, lost_batches, gap_readings = losses(data)
     rows = data.status.get("boards", [])
@@ -569,6 +582,16 @@ def render(data: ReportData) -> str:
     changes = [
         e for e in data.events if e["kind"] == "state_changed" and data.t_from <= e["at"] <= data.t_end
     ]
+    # A board's first verdict (from "not yet seen") is routine: one line for all of them.
+    first = [e for e in changes if e["detail"].get("old") in (None, "unknown")]
+    later = [e for e in changes if e not in first]
+    by_new: dict[str, list[dict[str, Any]]] = defaultdict(list)
+    for e in first:
+        by_new[str(e["detail"].get("new"))].append(e)
+    first_line = "; ".join(
+        f"{len(es)} boards first judged {STATE_LABELS.get(s, (s,))[0]} by {clock(max(e['at'] for e in es))}"
+        for s, es in sorted(by_new.items())
+    )
     parts.append(
         _section(
             "states",
@@ -578,11 +601,12 @@ def render(data: ReportData) -> str:
                 f"<h3>Floor {html.escape(floor)}</h3>" + _fig(plot_states(data, floor, fr, segs))
                 for floor, fr in floors.items()
             ),
+            _p(first_line) if first_line else "",
             _table(
                 ("At (UTC)", "Board", "Change"),
-                [(_t(e["at"]), e["board"], event_text(e["kind"], e["detail"])) for e in changes[-200:]],
+                [(clock(e["at"]), e["board"], event_text(e["kind"], e["detail"])) for e in later[-200:]],
             )
-            if changes
+            if later
             else "",
         )
     )
@@ -653,7 +677,7 @@ def render(data: ReportData) -> str:
                 ("At (UTC)", "Board", "Seqs", "Batches"),
                 [
                     (
-                        _t(e["at"]),
+                        clock(e["at"]),
                         e["board"],
                         f"{e['detail'].get('first_seq')}–{e['detail'].get('last_seq')}",
                         e["detail"].get("batches"),
@@ -707,7 +731,7 @@ def render(data: ReportData) -> str:
                 b["name"],
                 f"{b.get('offset_db', 0.0):+.1f}",
                 len(cs),
-                _t(cs[-1]["at"]) if cs else "never",
+                clock(cs[-1]["at"]) if cs else "never",
                 "yes" if b.get("recalibrate") else "",
             )
         )
@@ -717,7 +741,7 @@ def render(data: ReportData) -> str:
             hist_rows.append(
                 (
                     b["name"],
-                    _t(c["at"]),
+                    clock(c["at"]),
                     f"{c['offset_db']:+.1f}",
                     shift,
                     f"{c['spread_db']:.1f}",

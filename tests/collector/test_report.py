@@ -152,6 +152,7 @@ def test_report_holds_every_section_and_its_plots(run: ReportRun):
     assert "u3-a" in states and "became silent" in states  # the power cut
     assert "became deaf" in states  # g2-a's radio
     assert "became drifting" in states  # u2-a's crystal
+    assert "16 boards first judged live by 08:00:05" in states  # one line, not sixteen rows
     coverage = _section(text, "coverage")
     # Before the first verdict nobody is judged: only the rooms whose boards failed have gaps.
     assert "<td>G0 Foyer</td><td class=n>0 s</td>" in coverage
