@@ -10,7 +10,11 @@ database, so each board is evaluated once per round fleet-wide):
 2. loss: seq holes (not covered by a batch or a gap record) that persist past a grace period
    become ``loss`` events, once each;
 3. retention: raw readings older than ``retention.days`` go, then heartbeats, clock samples and batch
-   keys past their own ages (`history_cuts`), all in bounded chunks.
+   keys past their own ages (`history_cuts`), all in bounded chunks;
+4. calibration watch, every ``WATCH_EVERY_SECONDS``: each board's raw level of the venue plan's reference
+   tags against its level at calibration (collector/models/calibration.py `CalibrationWatch`); a
+   sustained shift is stored as a ``calibration_shift`` event with its size, once. A collector that
+   takes the lead starts its baselines afresh.
 
 A collector that does not hold the lock follows the stored ``state_changed`` events instead, so every
 collector's page and ``/metrics`` show the same states.
@@ -59,6 +63,7 @@ from listenpost.collector.state import Runtime
 from listenpost.collector.status import note_total, stat
 from listenpost.collector.store import Event, LeadershipLost, Store, StoreError
 from listenpost.core.clock import Clock, with_timeout
+from listenpost.core.errors import ConfigError
 
 log = structlog.get_logger("listenpost.collector.monitor")
 
@@ -73,6 +78,8 @@ LOCK = "monitor"
 """The run-once lock the leader holds (`Store.exclusive`)."""
 HISTORY_SECONDS = 900.0
 """Heartbeat history handed to the liveness evaluator."""
+WATCH_EVERY_SECONDS = 60.0
+"""How often the calibration watch compares levels (each comparison reads a 5-minute window)."""
 
 
 @dataclass(slots=True)
@@ -86,6 +93,8 @@ class RoundReport:
     deleted: int = 0
     history_deleted: dict[str, int] = field(default_factory=dict)
     """Heartbeats, clock samples and batch keys deleted this round, by table."""
+    shifts: list[Event] = field(default_factory=list)
+    """``calibration_shift`` events stored this round."""
 
 
 class Monitor:
@@ -116,6 +125,9 @@ class Monitor:
         self.leading = False
         """This process proved it held the lock at its latest round and has not stood down since."""
         self.webhook_failed = 0
+        self.watch: Any = None
+        """The calibration watch (collector/models/calibration.py), made at the first watch step."""
+        self._last_watch = float("-inf")
 
     # ------------------------------------------------------------ life cycle
 
@@ -191,6 +203,7 @@ class Monitor:
             await self._liveness(report)
             await self._losses(report)
             await self._retention(report)
+            await self._calibration_watch(report)
         else:
             await self._follow_states()
         self.runtime.monitor_rounds += 1
@@ -350,6 +363,52 @@ class Monitor:
             report.losses.append(event)
             log.warning("batches_lost", board=board, **detail)
             self._queue_webhook(event)
+
+    async def _calibration_watch(self, report: RoundReport) -> None:
+        now = self.clock.time()
+        if now - self._last_watch < WATCH_EVERY_SECONDS:
+            return
+        self._last_watch = now
+        from listenpost.collector.models.calibration import CalibrationWatch
+        from listenpost.collector.models.calibration_fleet import pair_medians
+        from listenpost.collector.web.plan import read_plan
+
+        try:
+            plan = await asyncio.to_thread(read_plan, self.settings.state_dir)
+        except ConfigError as e:
+            log.warning("calibration_watch_skipped", error=str(e))
+            return
+        if plan is None or not plan.reference_tags:
+            return
+        if self.watch is None:
+            self.watch = CalibrationWatch()
+        rows = await self.store.readings(
+            now - self.watch.window_s, now, tags=[t.id for t in plan.reference_tags]
+        )
+        raw = (rows.rssi_dd.astype(float) - rows.offset_dd.astype(float)) / 10.0
+        levels = pair_medians(rows.board, rows.tag, raw)
+        markers = {b.name: b.offset_db for b in await self.store.list_boards(include_retired=False)}
+        for shift in self.watch.update(now, levels, markers):
+            detail = {
+                "shift_db": round(shift.shift_db, 1),
+                "tags": shift.tags,
+                "since": shift.since,
+                "threshold_db": self.watch.threshold_db,
+                "window_s": self.watch.window_s,
+            }
+            event = await self._store_event(
+                Event(
+                    now,
+                    shift.board,
+                    "calibration_shift",
+                    detail,
+                    key=f"calibration_shift/{shift.board}/{shift.since:.0f}",
+                )
+            )
+            if event is None:
+                continue
+            report.shifts.append(event)
+            log.warning("calibration_shift", board=shift.board, **detail)
 
     async def _store_event(self, event: Event) -> Event | None:
         """Store a leader's event, fenced by the lock; the stored event with its id, or None if its key was

@@ -58,6 +58,8 @@ class Runtime:
     every ``REGISTRY_CACHE_SECONDS`` (collector/http/api.py)."""
     unregistered: dict[str, int] = field(default_factory=dict)
     """board → readings dropped as unregistered, summed from the stored ``unregistered_ids`` events."""
+    calibration_shifts: dict[str, dict[str, Any]] = field(default_factory=dict)
+    """board → detail of its latest ``calibration_shift`` event not followed by a calibration."""
 
 
 SETTINGS = web.AppKey("settings", CollectorSettings)

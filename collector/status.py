@@ -391,6 +391,19 @@ def attention(r: dict[str, Any]) -> list[dict[str, Any]]:
                 [on_board("df -h /var/lib/listenpost"), logs],
             )
         )
+    shift = r.get("calibration_shift_db")
+    if shift is not None and st != "retired":
+        out.append(
+            _issue(
+                4,
+                "Signal level shifted since calibration",
+                f"it hears the reference tags {shift:+.1f} dB from their level at its calibration, for "
+                "more than 5 minutes: its offset no longer holds, so its RSSI is off by about that much",
+                "Check the board's antenna and adapter are seated and that nothing new stands around the "
+                "board or the reference tags (a closed case, a moved display); then calibrate again.",
+                [events, admin("listenpost collector calibrate --fleet")],
+            )
+        )
     wall = r["wall_error_ms"]
     if st not in ("silent", "retired") and wall is not None and abs(wall) / 1000.0 > WALL_CLOCK_TOLERANCE_S:
         ahead = "ahead" if wall > 0 else "behind"
@@ -476,6 +489,10 @@ async def recent_events(app: web.Application) -> list[Event]:
                 runtime.unregistered[e.board] = runtime.unregistered.get(e.board, 0) + (
                     n if isinstance(n, int) else 0
                 )
+            elif e.kind == "calibration_shift" and e.board:
+                runtime.calibration_shifts[e.board] = e.detail
+            elif e.kind == "calibrated" and e.board:
+                runtime.calibration_shifts.pop(e.board, None)  # calibrated again: the shift is taken in
         if page:
             runtime.events_cursor = max(e.id or 0 for e in page)
         if len(page) < 1000:
@@ -568,6 +585,7 @@ async def status_doc(app: web.Application) -> dict[str, Any]:
             "cpu_temperature_c": _number(stats.get("cpu_temperature_c")),
             "disk_free_bytes": _number(stats.get("disk_free_bytes")),
             "offset_db": b.offset_db,
+            "calibration_shift_db": _number(runtime.calibration_shifts.get(b.name, {}).get("shift_db")),
             "last_event": {"kind": ev.kind, "at": ev.at, "detail": ev.detail} if ev else None,
         }
         row["attention"] = attention(row)
@@ -614,6 +632,7 @@ EVENT_WORDS = {
     "fingerprint_changed": "board identity changed",
     "unregistered_ids": "readings of unregistered tags dropped",
     "calibrated": "RSSI offset calibrated",
+    "calibration_shift": "signal level shifted since calibration",
 }
 """Stored event kinds in words; a kind not listed reads as its name with spaces."""
 
@@ -627,6 +646,8 @@ def event_text(kind: str, detail: dict[str, Any]) -> str:
         text = f"became {new}" + (f" (was {old})" if old else "")
     elif kind == "loss" and "first_seq" in d:
         text = f"batches {d['first_seq']}–{d['last_seq']} lost"
+    elif kind == "calibration_shift" and isinstance(d.get("shift_db"), int | float):
+        text = f"reference tags heard {d['shift_db']:+.1f} dB from their level at calibration"
     else:
         text = EVENT_WORDS.get(kind, kind.replace("_", " "))
     reason = d.get("reason")

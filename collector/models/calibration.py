@@ -287,8 +287,128 @@ def walk_report(
     return out
 
 
+# -- calibration watch ---------------------------------------------------------------------------------------
+
+CALIBRATION_SHIFT_DB = 3.0
+"""A board's reference-tag level this far from its level at calibration, sustained, raises
+``calibration_shift``. Twice the fleet calibration's per-board tolerance (1.5 dB, docs/calibration.md), and
+ten times the standard error of a 5-minute median (1.25·σ/√N ≈ 0.3 dB for σ = 5 dB shadowing and N ≈ 300
+reports): noise does not reach it, a real change in gain (a loose antenna, a case closed around it) does.
+At an exponent of 3 it is the level change of a 26 % change in distance."""
+WATCH_WINDOW_S = 300.0
+"""The rolling window each level is the median of, seconds."""
+WATCH_SUSTAIN_S = 300.0
+"""A shift must hold this long before it is an event: a visitor standing between tag and board for a few
+minutes is not a change in the board."""
+WATCH_MIN_READINGS = 30
+"""Fewer readings of a tag in the window: that tag is left out of this round's comparison."""
+
+
+@dataclass(frozen=True, slots=True)
+class CalibrationShift:
+    """A sustained change in a board's reference-tag level since calibration."""
+
+    board: str
+    shift_db: float
+    """Median over the reference tags of (level now − level at calibration), dB; negative: hears weaker."""
+    tags: int
+    since: float
+    """When the shift first passed the threshold, collector Unix seconds."""
+
+
+@dataclass(slots=True)
+class _BoardWatch:
+    marker: float
+    baseline_from: float
+    """The baseline is the first full window starting here (calibration, or watching began)."""
+    baseline: dict[str, float]
+    since: float | None = None
+    raised: bool = False
+    last: float | None = None
+
+
+class CalibrationWatch:
+    """
+    Each board's raw reference-tag level (median over a rolling window) against its level at calibration.
+
+    The level at calibration is the first full window after the board's latest calibration (a change of
+    its offset marks one) or after watching began. A board whose median shift over its reference tags
+    stays beyond ``threshold_db`` for ``sustain_s`` gives one `CalibrationShift`; it can give another
+    only after the shift fell back under half the threshold, or after a new calibration.
+    """
+
+    def __init__(
+        self,
+        *,
+        threshold_db: float = CALIBRATION_SHIFT_DB,
+        window_s: float = WATCH_WINDOW_S,
+        sustain_s: float = WATCH_SUSTAIN_S,
+        min_readings: int = WATCH_MIN_READINGS,
+    ) -> None:
+        self.threshold_db = threshold_db
+        self.window_s = window_s
+        self.sustain_s = sustain_s
+        self.min_readings = min_readings
+        self._boards: dict[str, _BoardWatch] = {}
+
+    def shift(self, board: str) -> float | None:
+        """The board's latest shift, dB (None before it has a baseline)."""
+        w = self._boards.get(board)
+        return None if w is None else w.last
+
+    def update(
+        self,
+        now: float,
+        levels: Mapping[tuple[str, str], tuple[float, int]],
+        markers: Mapping[str, float],
+    ) -> list[CalibrationShift]:
+        """
+        One round.
+
+        Args:
+            now: collector Unix seconds.
+            levels: (board, tag) → (median raw RSSI over the window ending at ``now``, readings).
+            markers: board → its current offset (a change means it was calibrated again).
+        Returns:
+            The shifts that became sustained this round.
+        """
+        out = []
+        for board, marker in markers.items():
+            w = self._boards.get(board)
+            if w is None or w.marker != marker:
+                # New or recalibrated: its baseline is the first full window from now.
+                self._boards[board] = _BoardWatch(marker, now, {})
+                continue
+            mine = {t: lv for (b, t), (lv, n) in levels.items() if b == board and n >= self.min_readings}
+            if not w.baseline:
+                if now - w.baseline_from >= self.window_s and mine:
+                    w.baseline = mine
+                continue
+            deltas = [lv - w.baseline[t] for t, lv in mine.items() if t in w.baseline]
+            for t, lv in mine.items():
+                w.baseline.setdefault(t, lv)  # a tag first heard later joins at its own level
+            if not deltas:
+                continue
+            shift = float(np.median(deltas))
+            w.last = shift
+            if abs(shift) >= self.threshold_db:
+                if w.since is None:
+                    w.since = now
+                if not w.raised and now - w.since >= self.sustain_s:
+                    w.raised = True
+                    out.append(CalibrationShift(board, shift, len(deltas), w.since))
+            else:
+                w.since = None
+                if abs(shift) < self.threshold_db / 2:
+                    w.raised = False
+        return out
+
+
 __all__ = [
+    "CALIBRATION_SHIFT_DB",
     "BoardHearing",
+    "CalibrationShift",
+    "CalibrationWatch",
     "CalibrationResult",
     "CalibrationWarning",
     "RoomCoverage",

@@ -167,3 +167,126 @@ def test_walk_report_flags_a_room_won_by_a_neighbour_and_an_unheard_room():
 def test_walk_report_rejects_reversed_mark():
     with pytest.raises(ValueError, match=r"marks\[0\]"):
         walk_report([("G0 Foyer", T0 + 10, T0)], [])
+
+
+# -- calibration watch -------------------------------------------------------------------------------------
+
+REF_TAGS = [
+    "ibeacon:0321413f-8676-4b05-99ca-d259a1f94031:9:1",
+    "ibeacon:0321413f-8676-4b05-99ca-d259a1f94031:9:2",
+]
+WATCHED = {"g0-a": (-70.0, -84.0), "g0-b": (-76.0, -80.0), "g1-a": (-88.0, -91.0)}
+"""Board → mean raw level of each reference tag, dBm."""
+
+
+def _watch_plan(state_dir) -> None:
+    from listenpost.collector.models.plan import parse_plan
+    from listenpost.collector.web.plan import save_plan
+
+    square = [[0, 0], [20, 0], [20, 20], [0, 20]]
+    doc = {
+        "format": "listenpost-venue-plan",
+        "version": 1,
+        "title": "watch",
+        "floors": [
+            {
+                "id": "ground",
+                "title": "Ground",
+                "level_m": 0,
+                "rooms": [{"id": "G0", "name": "G0 Foyer", "polygon": square}],
+            }
+        ],
+        "boards": [
+            {"name": b, "floor": "ground", "position": [2 + i, 2], "height_m": 2.5}
+            for i, b in enumerate(WATCHED)
+        ],
+        "reference_tags": [
+            {"id": t, "floor": "ground", "position": [10 + i, 10], "height_m": 1.5}
+            for i, t in enumerate(REF_TAGS)
+        ],
+    }
+    save_plan(state_dir, parse_plan(doc, "plan"))
+
+
+async def _watched_venue(store, tmp_path, clock, *, drop_board=None, drop_at=None, minutes=60, drop_db=6.0):
+    """Three boards hearing two reference tags every second (σ 5 dB, whole dBm) for ``minutes``; the monitor
+    runs a round every 30 s on the virtual clock. Returns the ``calibration_shift`` events with their times."""
+    from listenpost.collector.monitor import Monitor
+    from listenpost.collector.state import Runtime
+    from listenpost.collector.store import Board, Enrollment
+    from tests.collector.test_api import settings_for
+    from tests.collector.test_store import make_batch
+
+    _watch_plan(tmp_path)
+    settings = settings_for(tmp_path)
+    t0 = clock.time()
+    for b in WATCHED:
+        await store.add_board(Board(b, "G0 Foyer", "ground", t0, enrolled_at=t0), Enrollment(b, f"h-{b}", t0))
+    await store.add_tags(REF_TAGS, t0)
+    monitor = Monitor(store, clock=clock, settings=settings, runtime=Runtime())
+    rng = np.random.default_rng(11)
+    events = []
+    step = 30
+    for k in range(minutes * 60 // step):
+        start = t0 + k * step
+        for b, means in WATCHED.items():
+            mean = np.array([means[i % 2] for i in range(step)])
+            if b == drop_board and start >= t0 + drop_at:
+                mean = mean - drop_db
+            rssi = (np.rint(mean + rng.normal(0, 5.0, step)) * 10).astype(np.int32)
+            await store.ingest(
+                make_batch(b, k, n=step, t0=t0, tags=REF_TAGS, rssi=rssi, offset_db=0.0, boot=f"boot-{b}")
+            )
+        await clock.advance(step)
+        report = await monitor.run_once()
+        events += [(clock.time() - t0, e) for e in report.shifts]
+    return events
+
+
+async def test_watch_raises_a_6_db_gain_drop_within_15_minutes(store, tmp_path, clock):
+    """g0-b's gain drops 6 dB at minute 20: one calibration_shift event within 15 simulated minutes, sized
+    within 2 dB; the other boards raise none."""
+    drop_at = 20 * 60.0
+    events = await _watched_venue(store, tmp_path, clock, drop_board="g0-b", drop_at=drop_at, minutes=50)
+    assert [e.board for _, e in events] == ["g0-b"], events
+    at, event = events[0]
+    assert event.kind == "calibration_shift"
+    assert drop_at < at <= drop_at + 15 * 60, at
+    assert abs(event.detail["shift_db"] - (-6.0)) < 2.0, event.detail
+    assert event.detail["threshold_db"] == 3.0 and event.detail["tags"] == 2
+    stored = [e for e in await store.events() if e.kind == "calibration_shift"]
+    assert len(stored) == 1 and stored[0].board == "g0-b"
+
+
+async def test_watch_is_quiet_for_healthy_boards_over_an_hour(store, tmp_path, clock):
+    assert await _watched_venue(store, tmp_path, clock, minutes=60) == []
+
+
+async def test_shift_shows_on_status_and_fleet_calibration_takes_it_in(
+    store, tmp_path, clock, aiohttp_client
+):
+    """The shifted board carries the figure and an attention issue in /v1/status; a fleet calibration
+    applied over the admin API stores new offsets and the issue goes."""
+    from tests.collector.test_api import admin_headers, make_client
+
+    await _watched_venue(store, tmp_path, clock, drop_board="g0-b", drop_at=600.0, minutes=25)
+    client = await make_client(aiohttp_client, tmp_path, clock, store=store)
+    rows = {r["name"]: r for r in (await (await client.get("/v1/status")).json())["boards"]}
+    assert rows["g0-b"]["calibration_shift_db"] == pytest.approx(-6.0, abs=2.0)
+    assert [i["what"] for i in rows["g0-b"]["attention"]] == ["Signal level shifted since calibration"]
+    assert rows["g0-a"]["calibration_shift_db"] is None and rows["g0-a"]["attention"] == []
+
+    # Three boards, two tags: with the losses free the pairs cannot fix the unknowns; a clear 409.
+    r = await client.post("/v1/admin/calibrate/fleet", json={"minutes": 5}, headers=admin_headers(tmp_path))
+    assert r.status == 409 and (await r.json())["error"]["code"] == "cannot_solve"
+    r = await client.post("/v1/admin/calibrate/fleet", json={"minutes": "5"}, headers=admin_headers(tmp_path))
+    assert r.status == 400 and (await r.json())["error"]["field"] == "minutes"
+    body = {"minutes": 5, "apply": True, "wall_db": 0, "floor_db": 0}
+    r = await client.post("/v1/admin/calibrate/fleet", json=body, headers=admin_headers(tmp_path))
+    assert r.status == 200, await r.text()
+    fit = await r.json()
+    assert sorted(fit["applied"]) == sorted(WATCHED) and fit["unheard"] == []
+    offsets = {b.name: b.offset_db for b in await store.list_boards()}
+    assert offsets == {b["board"]: pytest.approx(b["offset_db"], abs=1e-3) for b in fit["boards"]}
+    rows = {r["name"]: r for r in (await (await client.get("/v1/status")).json())["boards"]}
+    assert rows["g0-b"]["calibration_shift_db"] is None and rows["g0-b"]["attention"] == []
