@@ -45,6 +45,12 @@ MIN_SAMPLES = 30
 """Fewer readings per pair are left out: the median is not yet stable."""
 DEFAULT_P1_DBM = -59.0
 """A reference tag whose plan gives no ``power_1m_dbm``: the usual iBeacon measured-power byte."""
+PLAUSIBLE_EXPONENT = (1.6, 3.3)
+"""Where a fitted indoor exponent belongs once walls and slabs have their own terms: from 1.6 (line of
+sight along a corridor; Rappaport, *Wireless Communications*, 2nd ed., table 4.2, from memory) to 3.3
+(ITU-R P.1238 distance power-loss coefficients N = 22–33 for residential, office and commercial sites at
+0.9–5.2 GHz, i.e. n = N/10; from memory, docs/references.md §7). Outside it, suspect the plan (a tag at
+the wrong position or height) before the venue."""
 _SAME_WALL_M = 0.01
 """Crossings this close along the line are one wall (two rooms sharing it)."""
 
@@ -104,6 +110,10 @@ class FleetFit:
     unheard: tuple[str, ...]
     """Boards of the plan with no usable reference-tag pair: no offset for them."""
     iterations: int
+
+    @property
+    def exponent_plausible(self) -> bool:
+        return PLAUSIBLE_EXPONENT[0] <= self.exponent <= PLAUSIBLE_EXPONENT[1]
 
 
 # -- geometry from the plan ------------------------------------------------------------------------------
@@ -432,6 +442,7 @@ def fit_json(fit: FleetFit) -> dict[str, object]:
     return {
         "exponent": num(fit.exponent),
         "exponent_stderr": num(fit.exponent_stderr),
+        "exponent_plausible": fit.exponent_plausible,
         "wall_db": num(fit.wall_db),
         "floor_db": num(fit.floor_db),
         "sigma_db": num(fit.sigma_db),
@@ -465,6 +476,7 @@ def fit_json(fit: FleetFit) -> dict[str, object]:
 
 
 __all__ = [
+    "PLAUSIBLE_EXPONENT",
     "BoardFit",
     "FleetFit",
     "PairFit",
