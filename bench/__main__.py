@@ -54,7 +54,9 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     _repeat.QUICK = args.quick
     _repeat.RESULTS.clear()
-    configure("console", "warning")  # the figures are the output; the components' info logs are noise here
+    configure(
+        "console", "error"
+    )  # the figures are the output; components' logs (board state changes included) are noise here
     print(f"machine: {machine()}{'; --quick' if args.quick else ''}", flush=True)
     for name in wanted:
         module = importlib.import_module(f"bench.{name}")

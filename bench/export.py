@@ -338,5 +338,5 @@ def main(quick: bool = False, argv: list[str] | None = None) -> None:
 if __name__ == "__main__":
     from listenpost.core.logs import configure
 
-    configure("console", "warning")  # the figures are the output
+    configure("console", "error")  # the figures are the output
     main(argv=sys.argv[1:])

@@ -295,7 +295,7 @@ def main(quick: bool = False) -> None:
 if __name__ == "__main__":
     from listenpost.core.logs import configure
 
-    configure("console", "warning")
+    configure("console", "error")  # the figures are the output
     if "--quick" in sys.argv:
         _repeat.QUICK = True
     main()
