@@ -14,7 +14,9 @@ from typing import Any
 
 from aiohttp import web
 
+from listenpost import __version__
 from listenpost.collector.ingest import clock_model
+from listenpost.collector.provision import AGENT_PREFIX
 from listenpost.collector.state import CLOCK, RUNTIME, SETTINGS, STORE
 from listenpost.collector.store import Event, Heartbeat
 
@@ -419,6 +421,26 @@ def attention(r: dict[str, Any]) -> list[dict[str, Any]]:
                 [on_board("timedatectl"), on_board("sudo timedatectl set-ntp true")],
             )
         )
+    version = r.get("agent_version")
+    if st not in ("silent", "retired") and version is not None and version != __version__:
+        out.append(
+            _issue(
+                5,
+                "Agent version differs",
+                f"the board runs listenpost {version}, the collector {__version__}: a board left behind "
+                "after an upgrade, or a card from another installation",
+                "Reinstall the agent on the board from the collector's wheelhouse (build it first with "
+                "`listenpost collector wheelhouse build` if the collector was upgraded), then restart it; "
+                "COLLECTOR_URL is the address in the board's agent.yaml.",
+                [
+                    on_board(
+                        f"sudo {AGENT_PREFIX}/bin/pip install --no-index --find-links COLLECTOR_URL/wheels/ "
+                        f"listenpost=={__version__}"
+                    ),
+                    on_board(f"sudo systemctl restart {AGENT_UNIT}"),
+                ],
+            )
+        )
     return sorted(out, key=lambda i: i["severity"])
 
 
@@ -585,6 +607,7 @@ async def status_doc(app: web.Application) -> dict[str, Any]:
             "cpu_temperature_c": _number(stats.get("cpu_temperature_c")),
             "disk_free_bytes": _number(stats.get("disk_free_bytes")),
             "offset_db": b.offset_db,
+            "agent_version": stats.get("version") if isinstance(stats.get("version"), str) else None,
             "calibration_shift_db": _number(runtime.calibration_shifts.get(b.name, {}).get("shift_db")),
             "last_event": {"kind": ev.kind, "at": ev.at, "detail": ev.detail} if ev else None,
         }

@@ -245,6 +245,27 @@ async def test_spool_bytes_are_no_backlog_when_no_batch_waits(fleet):
     assert (row["spool_backlog_batches"], row["spool_backlog_bytes"]) == (0, 0)
 
 
+async def test_a_board_on_another_agent_version_is_flagged(fleet):
+    """A board whose heartbeat reports another listenpost version than the collector's is listed with
+    the reinstall step; one on the same version is not."""
+    from listenpost import __version__
+
+    client, boards = fleet
+    for name, version in (("g0-a", "0.0.1"), ("u2-a", __version__)):
+        b = boards[name]
+        stats = {"version": version, "pipeline": {"adverts_total": b.adverts}}
+        body = {"board": b.name, "boot": b.clock.boot_id, "t1": b.clock.monotonic(), "stats": stats}
+        r = await client.post("/v1/heartbeat", json=body, headers=b.auth)
+        assert r.status == 200, await r.text()
+    rows = {r["name"]: r for r in (await (await client.get("/v1/status")).json())["boards"]}
+    assert rows["g0-a"]["agent_version"] == "0.0.1"
+    old = [i for i in rows["g0-a"]["attention"] if i["what"] == "Agent version differs"]
+    assert len(old) == 1 and f"the collector {__version__}" in old[0]["why"]
+    assert any(f"listenpost=={__version__}" in c["run"] for c in old[0]["commands"])
+    assert rows["u2-a"]["agent_version"] == __version__
+    assert not [i for i in rows["u2-a"]["attention"] if i["what"] == "Agent version differs"]
+
+
 async def test_a_board_hours_off_in_wall_clock_needs_attention(aiohttp_client, tmp_path, clock):
     """A board whose wall clock is 3 h 12 min behind is live, but its time sync is broken: it is listed
     with the time-sync steps and its figure is marked."""
