@@ -1235,6 +1235,8 @@ def _calibrate_fleet(args: argparse.Namespace) -> int:
     for b in answer["boards"]:
         se = "—" if b["stderr_db"] is None else f"{b['stderr_db']:.1f}"
         _out(f"{b['board']:<12} {b['offset_db']:>+10.1f} {se:>6} {b['residual_db']:>9.1f} {b['tags']:>5}")
+    if answer.get("losses_held"):
+        _out("! the reference tags heard do not fix the wall and floor losses: held at the values shown")
     if not answer.get("exponent_plausible", True):
         _out("! the exponent is outside the indoor range 1.6–3.3: check the plan's reference tag positions")
     if answer["unheard"]:

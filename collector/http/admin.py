@@ -730,6 +730,7 @@ async def calibrate_fleet(request: web.Request) -> web.Response:
     """
     require_admin(request)
     from listenpost.collector.models.calibration_fleet import (
+        FALLBACK_LOSSES_DB,
         fit_json,
         pair_medians,
         plan_geometry,
@@ -771,6 +772,7 @@ async def calibrate_fleet(request: web.Request) -> web.Response:
             plan_geometry(plan),
             all_boards=sorted(known),
             min_level_dbm=min_level,
+            fallback_losses=FALLBACK_LOSSES_DB,
             **losses,
         )
     except ValueError as e:

@@ -26,6 +26,7 @@ report), and pairs whose level is below ``min_level_dbm`` are left out.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
@@ -45,6 +46,10 @@ MIN_SAMPLES = 30
 """Fewer readings per pair are left out: the median is not yet stable."""
 DEFAULT_P1_DBM = -59.0
 """A reference tag whose plan gives no ``power_1m_dbm``: the usual iBeacon measured-power byte."""
+FALLBACK_LOSSES_DB = (5.0, 15.0)
+"""(per wall, per floor slab) dB held when the pairs cannot fix the losses. 15 dB for one slab is ITU-R
+P.1238's floor penetration factor for offices near 2 GHz (from memory); 5 dB is a typical interior
+partition (plasterboard about 3, brick about 6–8 dB at 2.4 GHz; from memory)."""
 PLAUSIBLE_EXPONENT = (1.6, 3.3)
 """Where a fitted indoor exponent belongs once walls and slabs have their own terms: from 1.6 (line of
 sight along a corridor; Rappaport, *Wireless Communications*, 2nd ed., table 4.2, from memory) to 3.3
@@ -110,6 +115,8 @@ class FleetFit:
     unheard: tuple[str, ...]
     """Boards of the plan with no usable reference-tag pair: no offset for them."""
     iterations: int
+    losses_held: bool = False
+    """The losses were held at ``fallback_losses`` because the pairs could not fix them."""
 
     @property
     def exponent_plausible(self) -> bool:
@@ -304,6 +311,7 @@ def solve_fleet(
     min_samples: int = MIN_SAMPLES,
     wall_db: float | None = None,
     floor_db: float | None = None,
+    fallback_losses: tuple[float, float] | None = None,
     max_iterations: int = 100,
     tolerance_db: float = 1e-9,
 ) -> FleetFit:
@@ -317,6 +325,8 @@ def solve_fleet(
         wall_db, floor_db: hold the loss per wall / per slab at this value instead of fitting it. With
             few reference tags the exponent and the fleet's mean offset trade off against the losses
             (pairs at similar distances); a known loss pins them.
+        fallback_losses: (wall, slab) dB to hold the free losses at when the pairs cannot fix them
+            (`FleetFit.losses_held` tells), instead of raising.
 
     Raises:
         ValueError: too few usable pairs to fix the unknowns (more pairs than unknowns are needed),
@@ -332,6 +342,23 @@ def solve_fleet(
     )
     fit_walls, fit_floors = wall_db is None, floor_db is None
     unknowns = a.shape[1]
+    if (
+        fallback_losses is not None
+        and (fit_walls or fit_floors)
+        and (len(pairs) <= unknowns or np.linalg.matrix_rank(a) < unknowns)
+    ):
+        held = solve_fleet(
+            medians,
+            geometry,
+            all_boards=all_boards,
+            min_level_dbm=min_level_dbm,
+            min_samples=min_samples,
+            wall_db=fallback_losses[0] if wall_db is None else wall_db,
+            floor_db=fallback_losses[1] if floor_db is None else floor_db,
+            max_iterations=max_iterations,
+            tolerance_db=tolerance_db,
+        )
+        return dataclasses.replace(held, losses_held=True)
     if len(pairs) <= unknowns:
         raise ValueError(
             f"pairs: {len(pairs)} usable board–tag pairs for {unknowns} unknowns; more reference tags "
@@ -447,6 +474,7 @@ def fit_json(fit: FleetFit) -> dict[str, object]:
         "floor_db": num(fit.floor_db),
         "sigma_db": num(fit.sigma_db),
         "iterations": fit.iterations,
+        "losses_held": fit.losses_held,
         "boards": [
             {
                 "board": b.board,
@@ -476,6 +504,7 @@ def fit_json(fit: FleetFit) -> dict[str, object]:
 
 
 __all__ = [
+    "FALLBACK_LOSSES_DB",
     "PLAUSIBLE_EXPONENT",
     "BoardFit",
     "FleetFit",

@@ -276,9 +276,13 @@ async def test_shift_shows_on_status_and_fleet_calibration_takes_it_in(
     assert [i["what"] for i in rows["g0-b"]["attention"]] == ["Signal level shifted since calibration"]
     assert rows["g0-a"]["calibration_shift_db"] is None and rows["g0-a"]["attention"] == []
 
-    # Three boards, two tags: with the losses free the pairs cannot fix the unknowns; a clear 409.
+    # Three boards, two tags: the pairs cannot fix the losses too, so they are held (and said so); not applied.
     r = await client.post("/v1/admin/calibrate/fleet", json={"minutes": 5}, headers=admin_headers(tmp_path))
-    assert r.status == 409 and (await r.json())["error"]["code"] == "cannot_solve"
+    answer = await r.json()
+    assert r.status == 200 and answer["losses_held"] is True and answer["applied"] == []
+    assert (answer["wall_db"], answer["floor_db"]) == (5.0, 15.0)
+    r = await client.post("/v1/admin/calibrate/fleet", json={"minutes": 0.5}, headers=admin_headers(tmp_path))
+    assert r.status == 400 and (await r.json())["error"]["field"] == "minutes"
     r = await client.post("/v1/admin/calibrate/fleet", json={"minutes": "5"}, headers=admin_headers(tmp_path))
     assert r.status == 400 and (await r.json())["error"]["field"] == "minutes"
     body = {"minutes": 5, "apply": True, "wall_db": 0, "floor_db": 0}
