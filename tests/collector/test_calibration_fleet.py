@@ -12,6 +12,7 @@ import pytest
 from scipy.optimize import least_squares
 
 from listenpost.collector.models.calibration_fleet import (
+    FALLBACK_LOSSES_DB,
     HUBER_K,
     design,
     pair_geometry,
@@ -97,6 +98,19 @@ def test_held_losses_pin_the_exponent(recording):
     fit = solve_fleet(medians, plan_geometry(plan), wall_db=5.0, floor_db=15.0)
     assert abs(fit.exponent - truth.document["radio"]["exponent"]) < 0.3
     assert (fit.wall_db, fit.floor_db) == (5.0, 15.0)
+    for b in fit.boards:
+        assert abs(b.offset_db + truth.document["boards"][b.board]["true_offset_db"]) < 1.5, b
+
+
+def test_losses_held_when_the_pairs_cannot_fix_them(recording):
+    """Cut at -100 dBm the recording's pairs no longer separate the losses from the exponent: without a
+    fallback that is a clear error, with one the losses are held (and said so) and the targets still hold."""
+    truth, plan, medians = recording
+    with pytest.raises(ValueError, match="separate the exponent"):
+        solve_fleet(medians, plan_geometry(plan), min_level_dbm=-100.0)
+    fit = solve_fleet(medians, plan_geometry(plan), min_level_dbm=-100.0, fallback_losses=FALLBACK_LOSSES_DB)
+    assert fit.losses_held and (fit.wall_db, fit.floor_db) == FALLBACK_LOSSES_DB
+    assert abs(fit.exponent - truth.document["radio"]["exponent"]) < 0.3
     for b in fit.boards:
         assert abs(b.offset_db + truth.document["boards"][b.board]["true_offset_db"]) < 1.5, b
 
