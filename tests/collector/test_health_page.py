@@ -412,6 +412,16 @@ async def test_pages_in_a_real_browser(aiohttp_client, tmp_path, clock):
                 ).inner_text()
                 == "0.35/s"
             )
+            # The plan view: a board that goes silent changes its marker at the next refresh.
+            await page.goto(str(client.make_url("/plan?refresh=0.3")), timeout=15_000)
+            marker = 'g[data-board="g0-a"]'
+            assert await page.locator(marker).first.get_attribute("data-state") == "live"
+            await clock.advance(120)  # g0-a sends nothing: past the silent limit
+            await client.app[MONITOR].run_once()
+            await page.wait_for_function(
+                f"() => document.querySelector('{marker}').dataset.state === 'silent'", timeout=10_000
+            )
+            assert "g0-a silent" in (await page.locator(marker).first.text_content() or "")
             assert all(s.stat().st_size > 5_000 for s in shots.iterdir())  # noqa: ASYNC240
             if os.path.isdir("/tmp/lp"):  # noqa: ASYNC240 (copies for people to look at; not committed)
                 for shot in shots.iterdir():
