@@ -1008,7 +1008,9 @@ class PostgresStore:
             now = await asyncio.wait_for(
                 con.fetchval("SELECT term FROM leases WHERE name = $1", name), self._lock_timeout_s
             )
-        except (*_UNAVAILABLE, asyncpg.PostgresError) as e:
+        except Exception as e:
+            # Any failure to get an answer on the lock's own session (a killed session can also leave
+            # asyncpg's protocol mid-operation: InternalClientError) means the lock cannot be proven held.
             log.warning("lock_lost", name=name, term=term, error=f"{type(e).__name__}: {e}")
             return False
         if now != term:
