@@ -264,6 +264,33 @@ def gap_epoch(batch: IngestBatch) -> str:
     return (batch.gap or {}).get("epoch") or batch.epoch
 
 
+BATCH_COLS = (
+    "board_id", "epoch", "seq", "digest", "boot", "n", "received_at", "offset_dd",
+    "gap_first", "gap_last", "gap_readings", "gap_reason", "gap_epoch",
+)  # fmt: skip
+"""The columns of a stored batch row, in the order of `batch_row`."""
+
+
+def batch_row(batch: IngestBatch, board_id: int, offset_dd: int) -> tuple[Any, ...]:
+    """A batch's row for `BATCH_COLS` (both stores insert it, each in its own placeholder style)."""
+    gap = batch.gap or {}
+    return (
+        board_id,
+        batch.epoch,
+        batch.seq,
+        batch.digest,
+        batch.boot,
+        batch.n,
+        batch.received_at,
+        offset_dd,
+        gap.get("first_seq"),
+        gap.get("last_seq"),
+        gap.get("readings"),
+        gap.get("reason"),
+        gap_epoch(batch) if batch.gap is not None else None,
+    )
+
+
 def seq_intervals(batch: IngestBatch) -> list[tuple[str, int, int]]:
     """The (epoch, first, last) seq ranges a newly stored batch covers, sorted (the lock order on PostgreSQL)."""
     out = [(batch.epoch, batch.seq, batch.seq)]

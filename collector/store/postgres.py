@@ -59,12 +59,14 @@ from listenpost.collector.store import (
     TagTelemetry,
 )
 from listenpost.collector.store.common import (
+    BATCH_COLS,
     BOARD_COLS,
     HISTORY_TABLES,
     LATEST_TELEMETRY_SQL,
     OFFSET_CHANGES_SQL,
     TELEMETRY_FIELDS,
     OffsetChanges,
+    batch_row,
     batch_tag_names,
     board_from_row,
     calibration_from_row,
@@ -74,7 +76,6 @@ from listenpost.collector.store.common import (
     cover_seqs,
     delete_history_in_chunks,
     delete_in_chunks,
-    gap_epoch,
     json_text,
     reading_tag_ids,
     seq_intervals,
@@ -82,6 +83,12 @@ from listenpost.collector.store.common import (
 from listenpost.collector.store.migrations import migrate_postgres
 
 log = structlog.get_logger("listenpost.collector.store.postgres")
+
+_INSERT_BATCH = (
+    f"INSERT INTO batches ({', '.join(BATCH_COLS)}) "
+    f"VALUES ({', '.join(f'${i}' for i in range(1, len(BATCH_COLS) + 1))}) "
+    "ON CONFLICT (board_id, epoch, seq) DO NOTHING RETURNING id"
+)
 
 # Errors that say "the database cannot do it now" (retry later), not "this request is wrong".
 _UNAVAILABLE: tuple[type[BaseException], ...] = (
@@ -556,24 +563,7 @@ class PostgresStore:
                     if b.clock is not None:
                         # Kept whatever the batch turns out to be, in its transaction: one commit.
                         await _insert_clock_sample(con, bid, b.clock)
-                    batch_id = await con.fetchval(
-                        "INSERT INTO batches (board_id, epoch, seq, digest, boot, n, received_at, offset_dd, gap_first, "
-                        "gap_last, gap_readings, gap_reason, gap_epoch) VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, "
-                        "$10, $11, $12, $13) ON CONFLICT (board_id, epoch, seq) DO NOTHING RETURNING id",
-                        bid,
-                        b.epoch,
-                        b.seq,
-                        b.digest,
-                        b.boot,
-                        b.n,
-                        b.received_at,
-                        offset_dd,
-                        gap.get("first_seq"),
-                        gap.get("last_seq"),
-                        gap.get("readings"),
-                        gap.get("reason"),
-                        gap_epoch(b) if b.gap is not None else None,
-                    )
+                    batch_id = await con.fetchval(_INSERT_BATCH, *batch_row(b, bid, offset_dd))
                     if batch_id is None:
                         stored = await con.fetchval(
                             "SELECT digest FROM batches WHERE board_id = $1 AND epoch = $2 AND seq = $3",

@@ -58,12 +58,14 @@ from listenpost.collector.store import (
     TagTelemetry,
 )
 from listenpost.collector.store.common import (
+    BATCH_COLS,
     BOARD_COLS,
     HISTORY_TABLES,
     LATEST_TELEMETRY_SQL,
     OFFSET_CHANGES_SQL,
     TELEMETRY_FIELDS,
     OffsetChanges,
+    batch_row,
     batch_tag_names,
     board_from_row,
     calibration_from_row,
@@ -73,7 +75,6 @@ from listenpost.collector.store.common import (
     cover_seqs,
     delete_history_in_chunks,
     delete_in_chunks,
-    gap_epoch,
     json_text,
     reading_tag_ids,
     seq_intervals,
@@ -81,6 +82,7 @@ from listenpost.collector.store.common import (
 from listenpost.collector.store.migrations import migrate_sqlite
 
 log = structlog.get_logger("listenpost.collector.store.sqlite")
+_INSERT_BATCH = f"INSERT INTO batches ({', '.join(BATCH_COLS)}) VALUES ({', '.join('?' * len(BATCH_COLS))})"
 T = TypeVar("T")
 
 # Result codes that mean "the storage cannot do it now", not "this request is wrong".
@@ -625,25 +627,9 @@ class SqliteStore:
             return IngestResult(
                 IngestStatus.DUPLICATE if row[0] == b.digest else IngestStatus.CONFLICT, row[0]
             )
-        gap = b.gap or {}
         cur = con.execute(
-            "INSERT INTO batches (board_id, epoch, seq, digest, boot, n, received_at, offset_dd, gap_first, "
-            "gap_last, gap_readings, gap_reason, gap_epoch) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
-            (
-                bid,
-                b.epoch,
-                b.seq,
-                b.digest,
-                b.boot,
-                b.n,
-                b.received_at,
-                offset_dd,
-                gap.get("first_seq"),
-                gap.get("last_seq"),
-                gap.get("readings"),
-                gap.get("reason"),
-                gap_epoch(b) if b.gap is not None else None,
-            ),
+            _INSERT_BATCH,
+            batch_row(b, bid, offset_dd),
         )
         batch_id = cur.lastrowid
         for epoch, lo, hi in seq_intervals(b):
@@ -686,7 +672,7 @@ class SqliteStore:
             "last_boot_at = max(coalesce(last_boot_at, ?), ?) WHERE id = ?",
             (
                 b.n,
-                gap.get("readings", 0),
+                (b.gap or {}).get("readings", 0),
                 b.received_at,
                 b.received_at,
                 b.received_at,
