@@ -563,6 +563,30 @@ th{background:#f3f3f3}.n{text-align:right;font-variant-numeric:tabular-nums}
 """
 
 
+def _watch_table(data: ReportData, clock: Any) -> str:
+    """The calibration watch's events in the span: boards whose reference-tag level moved and stayed moved."""
+    rows = [
+        (
+            e["board"],
+            clock(e["at"]),
+            clock(e["detail"].get("since", e["at"])),
+            _f(e["detail"].get("shift_db"), "+.1f"),
+            e["detail"].get("tags", ""),
+        )
+        for e in sorted(data.events, key=lambda e: e["at"])
+        if e["kind"] == "calibration_shift" and e["at"] >= data.t_from and isinstance(e["detail"], dict)
+    ]
+    if not rows:
+        return _p(
+            "Calibration watch: no board's reference-tag level moved from its level at calibration and stayed "
+            "moved in this span."
+        )
+    return _p(
+        "Calibration watch: these boards' reference-tag levels moved from their level at calibration and "
+        "stayed moved (a knocked antenna, a case closed around a board); recalibrate them or look at them."
+    ) + _table(("Board", "Flagged (UTC)", "Since (UTC)", "Shift dB", "Tags"), rows, num=(3, 4))
+
+
 def render(data: ReportData) -> str:
     """The report as one HTML document (no external resources)."""
     segs = state_segments(data)
@@ -765,6 +789,7 @@ def render(data: ReportData) -> str:
                 "Shift: change from the board's previous calibration. Spread: how widely the reference "
                 "readings scattered. Per-reading residuals are not kept by the collector."
             ),
+            _watch_table(data, clock),
         )
     )
 

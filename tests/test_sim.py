@@ -290,6 +290,46 @@ def test_shadowing_sigma_and_hearing_probability(brackenford):
     assert stats.binomtest(heard, offered, 0.9).pvalue > 1e-3
 
 
+def test_a_gain_step_lowers_only_that_boards_reports_from_its_minute_on(brackenford):
+    """
+    g3-b's antenna is knocked at minute 20 (−6 dB). Against the same run without the step, every report of
+    g3-b heard in both runs (and clear of the int8 floor) is exactly 6 dB lower from then on and unchanged before; other boards' reports
+    are identical. The step only adds to the offset, so the random draws are the same in both runs.
+    """
+    sc = _quiet(brackenford, sensitivity_dbm=-300.0)
+    at = {b.name: b for b in sc.boards}["g3-b"]
+    assert (at.gain_step_at_s, at.gain_step_db) == (1200.0, -6.0)
+    step = replace(
+        sc, boards=tuple(replace(b, gain_step_at_s=60.0) if b.name == "g3-b" else b for b in sc.boards)
+    )
+    flat = replace(
+        sc,
+        boards=tuple(
+            replace(b, gain_step_at_s=None, gain_step_db=0.0) if b.name == "g3-b" else b for b in sc.boards
+        ),
+    )
+    a, b = simulate(step, 2.0, seed=3), simulate(flat, 2.0, seed=3)
+    for i, board in enumerate(a.boards):
+        ha, hb = a.heard[i], b.heard[i]
+        assert np.array_equal(ha.t_true, hb.t_true) and np.array_equal(ha.device, hb.device)
+        diff = ha.rssi.astype(int) - hb.rssi.astype(int)
+        if board.name != "g3-b":
+            assert not diff.any(), board.name
+            continue
+        # Reports clip at −127 dBm (int8): compare the ones that stay clear of it.
+        after = (ha.t_true >= 60.0) & (hb.rssi > -120)
+        assert after.sum() > 100 and (ha.t_true < 60.0).sum() > 100
+        assert not diff[ha.t_true < 60.0].any()
+        assert np.all(diff[after] == -6)
+
+
+def test_a_gain_step_needs_both_its_minute_and_its_size():
+    data = yaml.safe_load(builtin_path("brackenford").read_text())
+    data["boards"][0]["gain_step_db"] = -6
+    with pytest.raises(ConfigError, match=r"boards\[0\]\.gain_step_db: gain_step_at_s and a non-zero"):
+        parse_scenario(data)
+
+
 # ---------------------------------------------------------------- outputs of a full run
 
 
@@ -332,6 +372,7 @@ def test_faults_as_specified(venue_run):
     assert truth["faults"]["u3-a"] == {"power_off_at_s": 360}
     assert truth["faults"]["g4-a"] == {"wall_error_s": -11520}
     assert truth["faults"]["u2-a"] == {"skew_ppm": 85}
+    assert truth["faults"]["g3-b"] == {"gain_step_at_s": 1200, "gain_step_db": -6}
     hdr, _ = read_recording(out / "g4-a.jsonl.gz")
     assert hdr.wall_at_start == pytest.approx(truth["start_wall"] - 11520, abs=1e-3)
     hdr, _ = read_recording(out / "g0-a.jsonl.gz")

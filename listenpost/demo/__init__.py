@@ -8,8 +8,10 @@ real agent replays its own recording from ``replay_logs/`` over HTTP on loopback
 ``u3-a`` loses power at minute 6, ``g2-a``'s radio hangs at minute 4 (it keeps heartbeating),
 ``u2-a``'s crystal runs 85 ppm fast and ``g4-a``'s wall clock is 3 h 12 min behind.
 
-At the end a table compares what the collector concluded with the truth; the command exits 1 if any
-board ended in another state than the one its fault calls for.
+At the end a table compares what the collector concluded with the truth; then the fleet calibration is
+run and applied and compared with the hidden offsets, and the study-day report of the run is written to
+``report.html`` in the state directory. The command exits 1 if any board ended in another state than the
+one its fault calls for, or a fitted offset is off by more than the calibration tolerance.
 
 Logs of the agents and the collector go to ``demo.log`` in the state directory (JSON lines), so the
 terminal shows only the demo's own progress.
@@ -203,9 +205,13 @@ async def _demo(args: argparse.Namespace, venue: Any, state_dir: Path, counter: 
         await fleet.run_until(end, step_s=STEP_S, on_step=progress)
         summary = await fleet.summary()
         wall_s = base.monotonic() / speed
-        ok = _report(summary, venue, wall_s, speed, counter, state_dir)
+        _report(summary, venue, wall_s, speed, counter, state_dir)
+        fit, calibrated = await _calibrate(fleet, venue)
+        report = await _study_report(fleet, venue)
+        ok = _verdict(summary, calibrated)
         if args.summary_json:
-            _write_json(args.summary_json, summary, venue, url, state_dir, speed, wall_s, ok)
+            extra = {"calibration": fit, "report": None if report is None else str(report)}
+            _write_json(args.summary_json, summary, venue, url, state_dir, speed, wall_s, ok, extra)
             _out(f"summary written to {args.summary_json}")
         if args.keep_open:
             _out(
@@ -221,7 +227,7 @@ async def _demo(args: argparse.Namespace, venue: Any, state_dir: Path, counter: 
 
 def _report(
     summary: list[Any], venue: Any, wall_s: float, speed: float, counter: _LevelCounter, state_dir: Path
-) -> bool:
+) -> None:
     from listenpost.collector.cli import table
 
     def num(v: float | None, fmt: str) -> str | None:
@@ -276,6 +282,10 @@ def _report(
     err = sum(n for k, n in counter.counts.items() if k != "warning")
     if warn or err:
         _out(f"log: {warn} warnings, {err} errors in {state_dir / 'demo.log'}")
+
+
+def _verdict(summary: list[Any], calibrated: bool) -> bool:
+    """The last lines: does every board end where its fault puts it, and is every fitted offset right?"""
     wrong = [s for s in summary if s.state != s.expected_state]
     if wrong:
         _out("\nOUTCOME DIFFERS FROM THE TRUTH:")
@@ -283,12 +293,61 @@ def _report(
             _out(
                 f"  {s.name}: ended {s.state} ({s.state_reason or 'no reason given'}), expected {s.expected_state}"
             )
-        return False
+    elif not calibrated:
+        _out("\nOUTCOME DIFFERS FROM THE TRUTH: the fleet calibration (above).")
+    else:
+        _out(
+            "\noutcome as expected: u3-a silent (power cut), g2-a deaf (radio hang), u2-a drifting (+85 ppm), "
+            "all others live; every fitted offset within the calibration tolerance."
+        )
+    return not wrong and calibrated
+
+
+async def _calibrate(fleet: Any, venue: Any) -> tuple[dict[str, Any], bool]:
+    """Fleet calibration over the whole run, applied, beside the true offsets: (the collector's answer
+    without its per-pair rows, whether every fitted offset is within tolerance)."""
+    from listenpost.demo.outcome import CALIBRATION_TOLERANCE_DB, calibration_errors
+
+    minutes = min(240.0, fleet.t_true() / 60.0 + 1.0)
+    fit = await fleet.calibrate(minutes, apply=True)
+    errors = calibration_errors(fit, venue.boards)
+    worst = max(errors, key=lambda n: abs(errors[n]))
+    true_n = venue.document["radio"]["exponent"]
     _out(
-        "\noutcome as expected: u3-a silent (power cut), g2-a deaf (radio hang), u2-a drifting (+85 ppm), "
-        "all others live."
+        f"\nfleet calibration from the venue plan's reference tags, applied: path-loss exponent "
+        f"{fit['exponent']:.2f} (true {true_n:.2f}); offsets of {len(errors)} boards against the truth: "
+        f"largest error {errors[worst]:+.2f} dB ({worst})"
+        + (f"; no reference tag heard well enough by {', '.join(fit['unheard'])}" if fit["unheard"] else "")
     )
-    return True
+    # A board that hears no reference tag well enough gets no offset, and is listed: that is the venue
+    # plan's limit, not an error. Every offset it gives must be right.
+    problems = [f"{n} {e:+.2f} dB" for n, e in sorted(errors.items()) if abs(e) > CALIBRATION_TOLERANCE_DB]
+    if problems:
+        _out(
+            f"CALIBRATION DIFFERS FROM THE TRUTH (tolerance {CALIBRATION_TOLERANCE_DB} dB): {', '.join(problems)}"
+        )
+    fit = {k: v for k, v in fit.items() if k != "pairs"}
+    fit["true_exponent"] = true_n
+    for b in fit["boards"]:
+        b["error_db"] = errors.get(b["board"])
+    return fit, not problems
+
+
+async def _study_report(fleet: Any, venue: Any) -> Path | None:
+    """The study-day report of the run, through the same command a researcher runs (docs/report.md)."""
+    from listenpost.cli import main as cli_main
+
+    start = fleet.clock.time() - fleet.t_true()
+    out = fleet.state_dir / "report.html"
+    argv = ["collector", "report", "--from", repr(start), "--to", repr(start + venue.duration_s + EXTRA_S)]
+    argv += ["--out", str(out), "--collector", fleet.url, "--state-dir", str(fleet.state_dir)]
+    _out("study-day report (listenpost collector report):")
+    # The command runs its own event loop; this loop keeps serving the collector meanwhile.
+    code = await asyncio.to_thread(cli_main, argv)
+    if code != 0:
+        _out(f"  the report failed (exit {code}); see {fleet.state_dir / 'demo.log'}")
+        return None
+    return Path(out)
 
 
 def _write_json(
@@ -300,6 +359,7 @@ def _write_json(
     speed: float,
     wall_s: float,
     ok: bool,
+    extra: dict[str, Any],
 ) -> None:
     doc = {
         "venue": "Brackenford Science Centre (simulated)",
@@ -313,6 +373,7 @@ def _write_json(
         "offset_definition": "collector time minus board monotonic time, seconds, at offset_at_board_s "
         "(the newest clock exchange the collector's fit kept); offset_error_ms = est - true",
         "boards": [s.to_json() for s in summary],
+        **extra,
     }
     tmp = path.with_name(path.name + ".part")
     try:

@@ -290,6 +290,16 @@ class Fleet:
         await self.quiesce()
         return out
 
+    async def calibrate(self, minutes: float, *, apply: bool) -> dict[str, Any]:
+        """The collector's fleet calibration over the last ``minutes`` (its answer, docs/calibration.md)."""
+        assert self.session is not None and self.collector is not None
+        body = {"minutes": minutes, "apply": apply}
+        doc: dict[str, Any] = await admin_call(
+            self.session, self.url, self.collector.admin_token, "POST", "/v1/admin/calibrate/fleet", body
+        )
+        await self.quiesce()
+        return doc
+
     # ------------------------------------------------------------ shutdown
 
     async def stop_boards(self) -> None:

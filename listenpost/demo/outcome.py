@@ -4,6 +4,7 @@ What a run concluded, board by board, beside the simulator's truth.
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from dataclasses import dataclass
 from typing import Any
 
@@ -66,3 +67,24 @@ def expected_state(truth: BoardTruth, skew_tolerance_ppm: float) -> str:
     if abs(truth.skew_ppm) > skew_tolerance_ppm:
         return "drifting"
     return "live"
+
+
+CALIBRATION_TOLERANCE_DB = 1.5
+"""How close the fleet calibration must come to each board's true correction on the demo venue, dB
+(docs/calibration.md)."""
+
+
+def calibration_errors(fit: dict[str, Any], boards: Iterable[BoardTruth]) -> dict[str, float]:
+    """
+    Board → fitted offset minus its true correction, dB, for every board the fleet calibration fitted.
+
+    ``fit`` is the collector's answer (``POST /v1/admin/calibrate/fleet``). The true correction is the
+    negative of what the board's adapter adds (``true_offset_db``), plus nothing for a gain step: the demo's
+    recording ends before the one the venue plants (docs/demo-venue.md).
+    """
+    truth = {b.name: b for b in boards}
+    return {
+        b["board"]: b["offset_db"] + truth[b["board"]].true_offset_db
+        for b in fit["boards"]
+        if b.get("offset_db") is not None and b["board"] in truth
+    }

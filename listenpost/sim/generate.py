@@ -97,6 +97,8 @@ class DrawnBoard:
     wall_error_s: float
     power_off_at_s: float | None
     radio_hang_at_s: float | None
+    gain_step_at_s: float | None
+    gain_step_db: float
 
     def board_time(self, t_true: np.ndarray) -> np.ndarray:
         """Board monotonic seconds at true recording times ``t_true``."""
@@ -339,6 +341,8 @@ def _boards(scenario: Scenario, rng: np.random.Generator) -> tuple[DrawnBoard, .
                 wall_error_s=round(b.wall_error_s if b.wall_error_s is not None else wall, 4),
                 power_off_at_s=b.power_off_at_s,
                 radio_hang_at_s=b.radio_hang_at_s,
+                gain_step_at_s=b.gain_step_at_s,
+                gain_step_db=b.gain_step_db,
             )
         )
     return tuple(out)
@@ -374,6 +378,8 @@ def simulate(scenario: Scenario, minutes: float, seed: int | None = None) -> Sim
     bpos = np.array([b.pos for b in boards])
     offsets = np.array([b.offset_db for b in boards], dtype=np.float32)
     until = np.array([b.listening_until(duration) for b in boards])
+    step_at = np.array([np.inf if b.gain_step_at_s is None else b.gain_step_at_s for b in boards])
+    step_db = np.array([b.gain_step_db for b in boards], dtype=np.float32)
     per_board: list[list[tuple[np.ndarray, ...]]] = [[] for _ in boards]
     sent = 0
     for di, (dev, dss) in enumerate(zip(devices, radio_ss.spawn(len(devices)), strict=True)):
@@ -394,7 +400,11 @@ def simulate(scenario: Scenario, minutes: float, seed: int | None = None) -> Sim
         walls = venue.walls_crossed(tr.pos[:, None, :], bpos[None, :, :])
         floors = venue.floors_crossed(tr.pos[:, None, 2], bpos[None, :, 2])
         mean = mean_rssi_dbm(dev.p1_dbm, dist, walls, floors, scenario.radio).astype(np.float32)
-        rssi, heard = sample_reports(mean[seg], offsets[None, :], scenario.radio, rng)
+        # A gain step adds to the board's offset from its minute on; the draws stay the same either way.
+        offset = offsets[None, :] + np.where(
+            times[:, None] >= step_at[None, :], step_db[None, :], np.float32(0)
+        )
+        rssi, heard = sample_reports(mean[seg], offset, scenario.radio, rng)
         heard &= times[:, None] < until[None, :]
         for b in range(len(boards)):
             idx = np.flatnonzero(heard[:, b])
@@ -516,6 +526,8 @@ def truth_document(sim: Simulation, counts: dict[str, int] | None = None) -> dic
             last_advert_true_s=round(float(h.t_true[-1]), 3) if len(h.t_true) else None,
             power_off_at_s=b.power_off_at_s,
             radio_hang_at_s=b.radio_hang_at_s,
+            gain_step_at_s=b.gain_step_at_s,
+            gain_step_db=b.gain_step_db,
         ).entry()
         for b, h in zip(sim.boards, sim.heard, strict=True)
     }
@@ -566,14 +578,20 @@ def truth_document(sim: Simulation, counts: dict[str, int] | None = None) -> dic
         "faults": {
             b.name: {
                 k: v
-                for k, v in (("power_off_at_s", b.power_off_at_s), ("radio_hang_at_s", b.radio_hang_at_s))
+                for k, v in (
+                    ("power_off_at_s", b.power_off_at_s),
+                    ("radio_hang_at_s", b.radio_hang_at_s),
+                    ("gain_step_at_s", b.gain_step_at_s),
+                )
                 if v is not None
             }
+            | ({"gain_step_db": b.gain_step_db} if b.gain_step_at_s is not None else {})
             | ({"wall_error_s": b.wall_error_s} if abs(b.wall_error_s) > 1 else {})
             | ({"skew_ppm": b.skew_ppm} if abs(b.skew_ppm) > s.clocks.skew_ppm_max else {})
             for b in sim.boards
             if b.power_off_at_s is not None
             or b.radio_hang_at_s is not None
+            or b.gain_step_at_s is not None
             or abs(b.wall_error_s) > 1
             or abs(b.skew_ppm) > s.clocks.skew_ppm_max
         },

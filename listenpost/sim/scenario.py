@@ -108,6 +108,10 @@ class BoardSpec:
     """Recording time at which the board loses power for good, seconds."""
     radio_hang_at_s: float | None = None
     """Recording time at which the radio stops delivering adverts (the process lives on), seconds."""
+    gain_step_at_s: float | None = None
+    """Recording time at which the board's receive gain changes for good (antenna knocked), seconds."""
+    gain_step_db: float = 0.0
+    """The change in every report from ``gain_step_at_s`` on, dB (negative: hears weaker)."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -409,8 +413,17 @@ def parse_scenario(data: Any, origin: str = "scenario") -> Scenario:
                 wall_error_s=s.get("wall_error_s", float, None),
                 power_off_at_s=s.get("power_off_at_s", float, None, non_negative),
                 radio_hang_at_s=s.get("radio_hang_at_s", float, None, non_negative),
+                gain_step_at_s=s.get("gain_step_at_s", float, None, non_negative),
+                gain_step_db=s.get(
+                    "gain_step_db",
+                    float,
+                    0.0,
+                    check=lambda v: None if -40 <= v <= 40 else "must be within ±40 dB",
+                ),
             )
         )
+        if (boards[-1].gain_step_at_s is None) != (boards[-1].gain_step_db == 0.0):
+            raise s.fail("gain_step_db", "gain_step_at_s and a non-zero gain_step_db go together")
         s.done()
     if len({b.name for b in boards}) != len(boards):
         raise top.fail("boards", "board names must be unique")

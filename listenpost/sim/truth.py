@@ -55,6 +55,10 @@ class BoardTruth:
     """True seconds from recording start when the board loses power for good."""
     radio_hang_at_s: float | None = None
     """True seconds from recording start when the radio stops hearing (the board stays up)."""
+    gain_step_at_s: float | None = None
+    """True seconds from recording start when the board's receive gain changes for good."""
+    gain_step_db: float = 0.0
+    """That change, added to every report from then on, dB."""
     # Filled in by the reader from the venue plan; not part of the board's entry.
     room_label: str = ""
     """Room as the collector is told, e.g. ``G0 Foyer``."""
@@ -79,6 +83,8 @@ class BoardTruth:
             "wall_error_s": self.wall_error_s,
             "power_off_at_s": self.power_off_at_s,
             "radio_hang_at_s": self.radio_hang_at_s,
+            "gain_step_at_s": self.gain_step_at_s,
+            "gain_step_db": self.gain_step_db,
             "adverts": self.adverts,
             "last_advert_true_s": self.last_advert_true_s,
             "file": self.file,
@@ -173,6 +179,8 @@ def read_truth(directory: str | Path) -> Truth:
                     last_advert_true_s=b.get("last_advert_true_s"),
                     power_off_at_s=b.get("power_off_at_s"),
                     radio_hang_at_s=b.get("radio_hang_at_s"),
+                    gain_step_at_s=b.get("gain_step_at_s"),
+                    gain_step_db=float(b.get("gain_step_db", 0.0)),
                     room_label=f"{room} {need(info, 'title', f'venue.rooms.{room}.')}",
                     floor=str(floors[floor_idx]),
                     recording=recording,

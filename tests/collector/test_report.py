@@ -151,6 +151,7 @@ def test_report_holds_every_section_and_its_plots(run: ReportRun):
     states = _section(text, "states")
     assert "u3-a" in states and "became silent" in states  # the power cut
     assert "became deaf" in states  # g2-a's radio
+    assert "no board&#x27;s reference-tag level moved" in _section(text, "calibration")
     assert "became drifting" in states  # u2-a's crystal
     assert "16 boards first judged live by 08:00:05" in states  # one line, not sixteen rows
     coverage = _section(text, "coverage")
@@ -264,6 +265,19 @@ def _data(**kw: object) -> ReportData:
             "kind": "loss",
             "detail": {"first_seq": 7, "last_seq": 9, "batches": 3},
         },
+        {
+            "id": 7,
+            "at": t0 + 450,
+            "board": "a-1",
+            "kind": "calibration_shift",
+            "detail": {
+                "shift_db": -6.2,
+                "tags": 2,
+                "since": t0 + 150,
+                "threshold_db": 3.0,
+                "window_s": 300.0,
+            },
+        },
     ]
     boards = [
         {"name": "a-1", "offset_db": 0.0, "calibrations": []},
@@ -305,4 +319,6 @@ def test_losses_are_drawn_with_their_cause_and_gaps_follow_the_states():
     cal = text[text.index('<section id="calibration">') :]
     assert cal.count("<svg ", 0, cal.index("</section>")) == 1
     assert "<td class=n>-1.5</td>" in cal  # the shift between a-2's two calibrations
+    # The calibration watch's event: board, when flagged, since when, its size and how many tags agreed.
+    assert "<td>a-1</td><td>08:07:30</td><td>08:02:30</td><td class=n>-6.2</td><td class=n>2</td>" in cal
     assert "does not store walk tests" in text

@@ -78,6 +78,22 @@ def test_demo_subprocess_ends_in_the_scenario_states(tmp_path: Path):
     g4 = boards["g4-a"]
     assert abs(g4["wall_error_est_s"] - truth["boards"]["g4-a"]["wall_error_s"]) < 1.0  # 3 h 12 min behind
 
+    # Fleet calibration at the end, against truth.json's hidden offsets (the correction is their negative):
+    # every fitted board within 1.5 dB, the exponent within 0.3 of the simulator's; unheard boards listed.
+    cal = doc["calibration"]
+    assert abs(cal["exponent"] - truth["radio"]["exponent"]) <= 0.3, cal["exponent"]
+    fitted = {b["board"]: b["offset_db"] for b in cal["boards"] if b["offset_db"] is not None}
+    assert len(fitted) >= 12 and set(fitted) | set(cal["unheard"]) == set(truth["boards"])
+    for name, offset in fitted.items():
+        assert abs(offset + truth["boards"][name]["true_offset_db"]) <= 1.5, (name, offset)
+    # The study-day report of the run (its browser checks: tests/collector/test_report.py).
+    report = Path(doc["report"])
+    assert report.parent == state and f"wrote {report}" in proc.stdout
+    page = report.read_text(encoding="utf-8")
+    for key in ("states", "readings", "coverage", "losses", "clock", "calibration"):
+        assert f'<section id="{key}">' in page, key
+    assert page.count("<svg ") >= 6
+
 
 def test_demo_refuses_bad_input_before_starting_anything(tmp_path: Path, capsys):
     from listenpost.cli import main

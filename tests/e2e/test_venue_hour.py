@@ -13,6 +13,8 @@ virtual clock driven in 1 s steps with the fleet idle between steps (listenpost/
 - privacy: no identity of an unregistered device anywhere in the store;
 - completeness: stored readings per board equal an independent ``agent replay --dry-run`` of its
   recording, cut at its fault;
+- calibration watch: g3-b's antenna knocked at minute 20 (−6 dB) flagged within 15 minutes with its
+  size within 2 dB, and no other board ever flagged;
 - export: ``listenpost collector export`` with 1 s bins, strongest board's room vs the true room.
 """
 
@@ -22,6 +24,7 @@ import asyncio
 import concurrent.futures
 import contextlib
 import gzip
+import json
 import multiprocessing
 import re
 import sqlite3
@@ -75,6 +78,8 @@ class HourRun:
     power_off_at: dict[str, float]
     first_exchange_t: dict[str, float]
     """Board → true time of its first stored clock exchange."""
+    shifts: list[tuple[float, str, dict]]
+    """(collector time, board, detail) of every stored calibration_shift event."""
     timings: dict[str, float] = field(default_factory=dict)
 
 
@@ -205,6 +210,13 @@ async def _run_hour(base: Path) -> HourRun:
                 "GROUP BY b.name"
             ).fetchall()
         )
+        shifts = [
+            (at, board, json.loads(detail))
+            for at, board, detail in con.execute(
+                "SELECT e.at, b.name, e.detail FROM events e JOIN boards b ON b.id = e.board_id "
+                "WHERE e.kind = 'calibration_shift' ORDER BY e.id"
+            )
+        ]
     t3 = time.perf_counter()
     dry_runs = await dry_task
     noise = await noise_fut
@@ -221,6 +233,7 @@ async def _run_hour(base: Path) -> HourRun:
         noise=noise,
         power_off_at=power_off_at,
         first_exchange_t={b: t - venue.start_wall for b, t in first.items()},
+        shifts=shifts,
         timings=timings,
     )
 
@@ -317,6 +330,24 @@ def test_faults_flagged_within_a_minute_and_never_before(hour: HourRun):
             assert s.state == "live", (name, s)
             assert not _left_live_before(hour, name, float("inf")), name
     print(f"fault detection delays (s): { {k: round(v, 1) for k, v in delays.items()} }")
+
+
+SHIFT_LIMIT_S = 900.0
+"""The knocked antenna must be flagged within 15 simulated minutes: a 5-minute window must tip past the
+threshold, then hold it for the 5-minute sustain (collector/models/calibration.py), plus one watch step."""
+
+
+def test_a_knocked_antenna_is_flagged_with_its_size_and_no_healthy_board_is(hour: HourRun):
+    """g3-b hears 6 dB less from minute 20 on; the calibration watch reads raw reference-tag levels."""
+    g3b = hour.venue.board("g3-b")
+    assert (g3b.gain_step_at_s, g3b.gain_step_db) == (1200.0, -6.0)
+    assert [board for _, board, _ in hour.shifts] == ["g3-b"], hour.shifts
+    at, _, detail = hour.shifts[0]
+    delay = _t(hour, at) - g3b.gain_step_at_s
+    assert 0 < delay <= SHIFT_LIMIT_S, delay
+    assert detail["shift_db"] == pytest.approx(g3b.gain_step_db, abs=2.0), detail
+    assert detail["threshold_db"] == 3.0 and detail["tags"] >= 1
+    print(f"calibration shift: g3-b flagged {delay:.0f} s after the step, {detail['shift_db']} dB")
 
 
 def test_no_unregistered_identity_anywhere_in_the_store(hour: HourRun):
