@@ -381,7 +381,8 @@ class Monitor:
         if plan is None or not plan.reference_tags:
             return
         if self.watch is None:
-            self.watch = CalibrationWatch()
+            # Go on from the stored memory: a level learned now might already carry a shift.
+            self.watch = CalibrationWatch(saved=await self.store.watch_baselines())
         rows = await self.store.readings(
             now - self.watch.window_s, now, tags=[t.id for t in plan.reference_tags]
         )
@@ -409,6 +410,10 @@ class Monitor:
                 continue
             report.shifts.append(event)
             log.warning("calibration_shift", board=shift.board, **detail)
+        # Kept after the events: if this write fails, the next round (or leader) raises the same shift
+        # again from the stored start of it, under the same event key, so it is stored once.
+        if changed := self.watch.changed():
+            await self.store.set_watch_baselines(changed)
 
     async def _store_event(self, event: Event) -> Event | None:
         """Store a leader's event, fenced by the lock; the stored event with its id, or None if its key was

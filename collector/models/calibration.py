@@ -21,6 +21,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from listenpost.collector.store import WatchBaseline
+
 SPEED_OF_LIGHT_M_S = 299_792_458.0
 """Exact by the SI definition of the metre."""
 
@@ -326,6 +328,11 @@ class _BoardWatch:
     raised: bool = False
     last: float | None = None
 
+    def saved(self, board: str) -> WatchBaseline:
+        return WatchBaseline(
+            board, self.marker, self.baseline_from, dict(self.baseline), self.since, self.raised
+        )
+
 
 class CalibrationWatch:
     """
@@ -335,6 +342,10 @@ class CalibrationWatch:
     its offset marks one) or after watching began. A board whose median shift over its reference tags
     stays beyond ``threshold_db`` for ``sustain_s`` gives one `CalibrationShift`; it can give another
     only after the shift fell back under half the threshold, or after a new calibration.
+
+    Its memory per board is a `WatchBaseline`: start from the stored ones (``saved``) and store
+    `changed` after each round, so a restart or another collector taking the lead goes on comparing
+    against the level at calibration instead of learning a level that may already carry a shift.
     """
 
     def __init__(
@@ -344,12 +355,23 @@ class CalibrationWatch:
         window_s: float = WATCH_WINDOW_S,
         sustain_s: float = WATCH_SUSTAIN_S,
         min_readings: int = WATCH_MIN_READINGS,
+        saved: Mapping[str, WatchBaseline] | None = None,
     ) -> None:
         self.threshold_db = threshold_db
         self.window_s = window_s
         self.sustain_s = sustain_s
         self.min_readings = min_readings
-        self._boards: dict[str, _BoardWatch] = {}
+        self._boards = {
+            b: _BoardWatch(w.marker, w.baseline_from, dict(w.levels), w.shift_since, w.raised)
+            for b, w in (saved or {}).items()
+        }
+        self._changed: set[str] = set()
+
+    def changed(self) -> list[WatchBaseline]:
+        """The boards whose memory changed since the last call, to store."""
+        out = [self._boards[b].saved(b) for b in sorted(self._changed)]
+        self._changed.clear()
+        return out
 
     def shift(self, board: str) -> float | None:
         """The board's latest shift, dB (None before it has a baseline)."""
@@ -378,30 +400,42 @@ class CalibrationWatch:
             if w is None or w.marker != marker:
                 # New or recalibrated: its baseline is the first full window from now.
                 self._boards[board] = _BoardWatch(marker, now, {})
+                self._changed.add(board)
                 continue
-            mine = {t: lv for (b, t), (lv, n) in levels.items() if b == board and n >= self.min_readings}
-            if not w.baseline:
-                if now - w.baseline_from >= self.window_s and mine:
-                    w.baseline = mine
-                continue
-            deltas = [lv - w.baseline[t] for t, lv in mine.items() if t in w.baseline]
-            for t, lv in mine.items():
-                w.baseline.setdefault(t, lv)  # a tag first heard later joins at its own level
-            if not deltas:
-                continue
-            shift = float(np.median(deltas))
-            w.last = shift
-            if abs(shift) >= self.threshold_db:
-                if w.since is None:
-                    w.since = now
-                if not w.raised and now - w.since >= self.sustain_s:
-                    w.raised = True
-                    out.append(CalibrationShift(board, shift, len(deltas), w.since))
-            else:
-                w.since = None
-                if abs(shift) < self.threshold_db / 2:
-                    w.raised = False
+            before = (len(w.baseline), w.since, w.raised)
+            shift = self._compare(board, w, now, levels)
+            if shift is not None:
+                out.append(shift)
+            if (len(w.baseline), w.since, w.raised) != before:
+                self._changed.add(board)
         return out
+
+    def _compare(
+        self, board: str, w: _BoardWatch, now: float, levels: Mapping[tuple[str, str], tuple[float, int]]
+    ) -> CalibrationShift | None:
+        mine = {t: lv for (b, t), (lv, n) in levels.items() if b == board and n >= self.min_readings}
+        if not w.baseline:
+            if now - w.baseline_from >= self.window_s and mine:
+                w.baseline = mine
+            return None
+        deltas = [lv - w.baseline[t] for t, lv in mine.items() if t in w.baseline]
+        for t, lv in mine.items():
+            w.baseline.setdefault(t, lv)  # a tag first heard later joins at its own level
+        if not deltas:
+            return None
+        shift = float(np.median(deltas))
+        w.last = shift
+        if abs(shift) >= self.threshold_db:
+            if w.since is None:
+                w.since = now
+            if not w.raised and now - w.since >= self.sustain_s:
+                w.raised = True
+                return CalibrationShift(board, shift, len(deltas), w.since)
+        else:
+            w.since = None
+            if abs(shift) < self.threshold_db / 2:
+                w.raised = False
+        return None
 
 
 __all__ = [

@@ -179,6 +179,23 @@ class Event:
 
 
 @dataclass(frozen=True, slots=True)
+class WatchBaseline:
+    """What the calibration watch remembers of one board, kept so a restart or a new leader goes on from it."""
+
+    board: str
+    marker: float
+    """The board's offset when the level was learned (a new offset means a new calibration)."""
+    baseline_from: float
+    """Collector time the level's window began."""
+    levels: dict[str, float]
+    """Reference tag → raw level at calibration, dBm (empty until the first full window)."""
+    shift_since: float | None = None
+    """When the current shift first passed the threshold."""
+    raised: bool = False
+    """Whether that shift has already been an event."""
+
+
+@dataclass(frozen=True, slots=True)
 class BoardCounts:
     board: str
     readings_total: int
@@ -378,6 +395,14 @@ class Store(Protocol):
 
         Leaving the block releases the lock within a bound, even on a dead connection, and never turns a
         cancellation into another error."""
+        ...
+
+    async def watch_baselines(self) -> dict[str, WatchBaseline]:
+        """Every board's stored calibration-watch state."""
+        ...
+
+    async def set_watch_baselines(self, baselines: Sequence[WatchBaseline]) -> None:
+        """Replace these boards' calibration-watch state, in one transaction."""
         ...
 
     async def holds(self, name: str) -> bool:

@@ -15,7 +15,7 @@ from typing import Any
 
 import numpy as np
 
-from listenpost.collector.store import BadBatch, Board, Calibration, ClockSample, IngestBatch
+from listenpost.collector.store import BadBatch, Board, Calibration, ClockSample, IngestBatch, WatchBaseline
 from listenpost.core.wire import EPOCH
 
 BOARD_COLS = "name, room, floor, created_at, enrolled_at, fingerprint, offset_db, retired_at"
@@ -107,6 +107,21 @@ def calibration_from_row(row: Sequence[Any]) -> Calibration:
     """A `Calibration` from (board name, at, offset, spread, samples, reference tag, distance, fingerprint)."""
     *values, fp = row
     return Calibration(*values, json.loads(fp) if fp else None)
+
+
+WATCH_COLS = "marker, baseline_from, levels, shift_since, raised"
+"""The columns of ``watch_baselines`` after ``board_id``, in `watch_row` order."""
+
+
+def watch_row(w: WatchBaseline) -> tuple[Any, ...]:
+    """The `WATCH_COLS` values of one board's watch state."""
+    return (w.marker, w.baseline_from, json_text(w.levels), w.shift_since, w.raised)
+
+
+def watch_from_row(board: str, row: Sequence[Any]) -> WatchBaseline:
+    """A `WatchBaseline` from the board's name and the `WATCH_COLS` of its row."""
+    marker, baseline_from, levels, since, raised = row
+    return WatchBaseline(board, marker, baseline_from, json.loads(levels), since, bool(raised))
 
 
 def check_clock_sample(s: ClockSample) -> None:

@@ -69,6 +69,19 @@ def _SEQ_ACCOUNTING(integer: str, text: str) -> tuple[str, ...]:  # noqa: N802 -
     )
 
 
+# The calibration watch's memory per board (collector/models/calibration.py): the level at calibration per
+# reference tag as a JSON object, so a restarted or new leader compares against it instead of learning a
+# level that may already carry the shift.
+def _WATCH(integer: str, real: str, text: str) -> str:  # noqa: N802 - reads as a constant
+    return f"""CREATE TABLE watch_baselines (
+            board_id {integer} PRIMARY KEY references boards(id),
+            marker {real} NOT NULL,
+            baseline_from {real} NOT NULL,
+            levels {text} NOT NULL,
+            shift_since {real},
+            raised boolean NOT NULL)"""
+
+
 HOLES_SCAN = """
 WITH iv AS (
     SELECT board_id, epoch, seq AS lo, seq AS hi FROM batches WHERE {board}
@@ -214,6 +227,7 @@ SQLITE: tuple[Migration, ...] = (
             "CREATE INDEX batches_received ON batches(received_at)",
         ),
     ),
+    Migration(5, "calibration watch state", (_WATCH("INTEGER", "REAL", "TEXT"),)),
 )
 
 
@@ -356,6 +370,7 @@ POSTGRES: tuple[Migration, ...] = (
             "CREATE INDEX batches_received ON batches(received_at)",
         ),
     ),
+    Migration(5, "calibration watch state", (_WATCH("smallint", "double precision", "text"),)),
 )
 
 _VERSION_TABLE = "CREATE TABLE IF NOT EXISTS schema_version (version integer PRIMARY KEY, name text NOT NULL, applied_at text NOT NULL)"

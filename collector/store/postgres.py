@@ -57,6 +57,7 @@ from listenpost.collector.store import (
     SeqHole,
     StoreUnavailable,
     TagTelemetry,
+    WatchBaseline,
 )
 from listenpost.collector.store.common import (
     BATCH_COLS,
@@ -65,6 +66,7 @@ from listenpost.collector.store.common import (
     LATEST_TELEMETRY_SQL,
     OFFSET_CHANGES_SQL,
     TELEMETRY_FIELDS,
+    WATCH_COLS,
     OffsetChanges,
     batch_row,
     batch_tag_names,
@@ -79,6 +81,8 @@ from listenpost.collector.store.common import (
     json_text,
     reading_tag_ids,
     seq_intervals,
+    watch_from_row,
+    watch_row,
 )
 from listenpost.collector.store.migrations import migrate_postgres
 
@@ -986,6 +990,23 @@ class PostgresStore:
             if not isinstance(e, Exception):
                 raise  # a cancellation stays a cancellation
             log.warning("lock_release_failed", name=name, error=f"{type(e).__name__}: {e}")
+
+    async def watch_baselines(self) -> dict[str, WatchBaseline]:
+        rows = await self._fetch(
+            f"SELECT b.name, {WATCH_COLS} FROM watch_baselines w JOIN boards b ON b.id = w.board_id"
+        )
+        return {r[0]: watch_from_row(r[0], tuple(r)[1:]) for r in rows}
+
+    async def set_watch_baselines(self, baselines: Sequence[WatchBaseline]) -> None:
+        async with self._acquire() as con, con.transaction():
+            rows = [(await self._board_id(con, w.board), *watch_row(w)) for w in baselines]
+            await con.executemany(
+                f"INSERT INTO watch_baselines (board_id, {WATCH_COLS}) VALUES ($1, $2, $3, $4, $5, $6) "
+                "ON CONFLICT (board_id) DO UPDATE SET marker = excluded.marker, "
+                "baseline_from = excluded.baseline_from, levels = excluded.levels, "
+                "shift_since = excluded.shift_since, raised = excluded.raised",
+                rows,
+            )
 
     async def holds(self, name: str) -> bool:
         held = self._held.get(name)

@@ -56,6 +56,7 @@ from listenpost.collector.store import (
     StoreError,
     StoreUnavailable,
     TagTelemetry,
+    WatchBaseline,
 )
 from listenpost.collector.store.common import (
     BATCH_COLS,
@@ -64,6 +65,7 @@ from listenpost.collector.store.common import (
     LATEST_TELEMETRY_SQL,
     OFFSET_CHANGES_SQL,
     TELEMETRY_FIELDS,
+    WATCH_COLS,
     OffsetChanges,
     batch_row,
     batch_tag_names,
@@ -78,6 +80,8 @@ from listenpost.collector.store.common import (
     json_text,
     reading_tag_ids,
     seq_intervals,
+    watch_from_row,
+    watch_row,
 )
 from listenpost.collector.store.migrations import migrate_sqlite
 
@@ -973,6 +977,21 @@ class SqliteStore:
             return
         async with lock:
             yield True
+
+    async def watch_baselines(self) -> dict[str, WatchBaseline]:
+        rows = await self._query(
+            f"SELECT b.name, {WATCH_COLS} FROM watch_baselines w JOIN boards b ON b.id = w.board_id"
+        )
+        return {r[0]: watch_from_row(r[0], r[1:]) for r in rows}
+
+    async def set_watch_baselines(self, baselines: Sequence[WatchBaseline]) -> None:
+        def tx(con: sqlite3.Connection) -> None:
+            con.executemany(
+                f"INSERT OR REPLACE INTO watch_baselines (board_id, {WATCH_COLS}) VALUES (?, ?, ?, ?, ?, ?)",
+                [(self._board_id(con, w.board), *watch_row(w)) for w in baselines],
+            )
+
+        await self._wtx(tx, durable=False)
 
     async def holds(self, name: str) -> bool:
         lock = self._locks.get(name)

@@ -208,9 +208,12 @@ def _watch_plan(state_dir) -> None:
     save_plan(state_dir, parse_plan(doc, "plan"))
 
 
-async def _watched_venue(store, tmp_path, clock, *, drop_board=None, drop_at=None, minutes=60, drop_db=6.0):
+async def _watched_venue(
+    store, tmp_path, clock, *, drop_board=None, drop_at=None, minutes=60, drop_db=6.0, restarts=()
+):
     """Three boards hearing two reference tags every second (σ 5 dB, whole dBm) for ``minutes``; the monitor
-    runs a round every 30 s on the virtual clock. Returns the ``calibration_shift`` events with their times."""
+    runs a round every 30 s on the virtual clock, and is replaced by a new one (a restarted collector, its
+    memory gone) at each of ``restarts`` (seconds). Returns the ``calibration_shift`` events with their times."""
     from listenpost.collector.monitor import Monitor
     from listenpost.collector.state import Runtime
     from listenpost.collector.store import Board, Enrollment
@@ -229,6 +232,8 @@ async def _watched_venue(store, tmp_path, clock, *, drop_board=None, drop_at=Non
     step = 30
     for k in range(minutes * 60 // step):
         start = t0 + k * step
+        if start - t0 in restarts:
+            monitor = Monitor(store, clock=clock, settings=settings, runtime=Runtime())
         for b, means in WATCHED.items():
             mean = np.array([means[i % 2] for i in range(step)])
             if b == drop_board and start >= t0 + drop_at:
@@ -256,6 +261,23 @@ async def test_watch_raises_a_6_db_gain_drop_within_15_minutes(store, tmp_path, 
     assert event.detail["threshold_db"] == 3.0 and event.detail["tags"] == 2
     stored = [e for e in await store.events() if e.kind == "calibration_shift"]
     assert len(stored) == 1 and stored[0].board == "g0-b"
+
+
+async def test_watch_goes_on_from_its_stored_levels_across_restarts(store, tmp_path, clock):
+    """
+    The collector restarts 2 minutes after g0-b's drop (its window already half shifted) and again after the
+    event. From stored levels the shift is still raised, once; a watch that learned its level again after
+    the first restart would take the shifted level as normal and never raise it.
+    """
+    drop_at = 20 * 60.0
+    events = await _watched_venue(
+        store, tmp_path, clock, drop_board="g0-b", drop_at=drop_at, minutes=50, restarts=(22 * 60, 40 * 60)
+    )
+    assert [e.board for _, e in events] == ["g0-b"], events
+    assert drop_at < events[0][0] <= drop_at + 15 * 60
+    saved = await store.watch_baselines()
+    assert set(saved) == set(WATCHED) and saved["g0-b"].raised and not saved["g0-a"].raised
+    assert set(saved["g0-b"].levels) == set(REF_TAGS)
 
 
 async def test_watch_is_quiet_for_healthy_boards_over_an_hour(store, tmp_path, clock):

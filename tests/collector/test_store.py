@@ -665,7 +665,7 @@ async def test_migrations_from_empty_and_from_an_older_version(store_factory: St
     await add_boards(store, "g0-a")
     assert (await store.ingest(make_batch("g0-a", 0))).status is IngestStatus.STORED  # v2 tables exist
     await store.close()
-    assert await _raw_migrate(store_factory) == mig.latest(_versions(store_factory)) == 4
+    assert await _raw_migrate(store_factory) == mig.latest(_versions(store_factory)) == 5
 
 
 async def test_newer_schema_is_refused(store_factory: StoreFactory):
@@ -673,7 +673,7 @@ async def test_newer_schema_is_refused(store_factory: StoreFactory):
     await _raw_migrate(
         store_factory, sql="INSERT INTO schema_version (version, name, applied_at) VALUES (9, 'future', 'x')"
     )
-    with pytest.raises(SchemaTooNew, match="version 9 is newer than this listenpost supports \\(4\\)"):
+    with pytest.raises(SchemaTooNew, match="version 9 is newer than this listenpost supports \\(5\\)"):
         await store_factory.open()
 
 
@@ -682,7 +682,9 @@ async def test_a_failing_migration_leaves_the_previous_version(store_factory: St
     base = _versions(store_factory)
     broken = (
         *base,
-        mig.Migration(5, "broken", ("CREATE TABLE half_made (x integer)", "CREATE TABLE boards (x integer)")),
+        mig.Migration(
+            len(base) + 1, "broken", ("CREATE TABLE half_made (x integer)", "CREATE TABLE boards (x integer)")
+        ),
     )
     with pytest.raises(Exception, match="boards"):
         await _raw_migrate(store_factory, migrations=broken)
