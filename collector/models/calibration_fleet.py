@@ -244,16 +244,17 @@ def pair_medians(
 
 def _truncated_mean_level(x: np.ndarray, floor: float, sigma: float) -> float:
     """μ of N(μ, σ²) cut below at ``floor`` whose visible mean is mean(x) (bisection; monotone in μ)."""
-    from scipy.special import log_ndtr
-
     seen = float(np.mean(x))
     if not math.isfinite(floor):
         return seen
 
     def visible_mean(mu: float) -> float:
         a = (floor - mu) / sigma
-        # φ(a) / (1 − Φ(a)), in logs so far tails do not overflow.
-        return mu + sigma * math.exp(-0.5 * a * a - 0.5 * math.log(2 * math.pi) - float(log_ndtr(-a)))
+        # φ(a) / (1 − Φ(a)), with 1 − Φ(a) = erfc(a/√2)/2 and taken in logs. The search keeps
+        # μ ≥ mean − 10σ and every reading lies above the floor, so a ≤ 10: erfc stays above 1e-23.
+        return mu + sigma * math.exp(
+            -0.5 * a * a - 0.5 * math.log(2 * math.pi) - math.log(0.5 * math.erfc(a / math.sqrt(2)))
+        )
 
     lo, hi = seen - 10.0 * sigma, seen
     for _ in range(80):

@@ -212,3 +212,19 @@ async def test_cli_fleet_flags_and_missing_plan(server, tmp_path, capsys):
     assert "--apply: only with --fleet" in capsys.readouterr().err
     assert await cli(server, tmp_path, "calibrate", "--fleet") == 1
     assert "venue plan" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("mu", [-80.0, -97.0, -103.0, -110.0])
+def test_truncated_level_inverts_scipys_truncated_normal_mean(mu):
+    """
+    A pair heard near the board's floor shows only the reports above it, so its plain mean reads too
+    strong. The level we solve for is the μ whose cut-off normal has the mean we saw; checked against
+    ``scipy.stats.truncnorm`` (reference library), whose mean for μ we invert back to μ.
+    """
+    from scipy.stats import truncnorm
+
+    from listenpost.collector.models.calibration_fleet import _truncated_mean_level
+
+    floor, sigma = -100.5, 5.0
+    seen = float(truncnorm.mean((floor - mu) / sigma, np.inf, loc=mu, scale=sigma))
+    assert _truncated_mean_level(np.array([seen]), floor, sigma) == pytest.approx(mu, abs=1e-6)

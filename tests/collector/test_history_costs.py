@@ -200,7 +200,8 @@ async def test_seq_hole_check_cost_does_not_grow_with_the_batches(store_factory:
     assert large <= 2 * small + 2 * len(holes) + 10, f"cost grew from {small} to {large} with 10x the batches"
 
 
-@pytest.mark.parametrize("seed", [random.randrange(2**32) for _ in range(2)])
+# Fixed seeds: every worker of a parallel run must collect the same test ids, and a failure reproduces.
+@pytest.mark.parametrize("seed", [11, 80004523, 1605338274, 2933666143])
 async def test_incremental_holes_equal_the_full_scan(store_factory: StoreFactory, seed: int):
     """Random seqs and gap records arriving in random order (late ones included): after every step of
     the way, the holes kept by ingest equal the full scan over all batches (seed in the test id)."""
