@@ -25,6 +25,7 @@ bench: $(STAMP)
 	$(BIN)/python -m bench
 
 soak: $(STAMP)
+	$(BIN)/python -m pytest -m soak
 	$(BIN)/python -m tests.soak
 
 lint: $(STAMP)
