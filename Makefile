@@ -19,7 +19,7 @@ test: $(STAMP)
 	$(BIN)/ruff check agent collector listenpost tests bench
 	$(BIN)/ruff format --check --quiet agent collector listenpost tests bench systemd replay_logs
 	$(BIN)/mypy listenpost/core
-	$(BIN)/python -m pytest
+	$(BIN)/python -m pytest -n 2 --dist loadscope
 
 bench: $(STAMP)
 	$(BIN)/python -m bench
