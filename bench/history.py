@@ -43,6 +43,7 @@ HEARTBEAT_S = 30.0
 HISTORY_CAP = 2880
 INGEST_BATCHES = 200
 CLOCK_SPAN = 3600.0
+FILL_TIMEOUT_S = 1800.0
 """Clock samples are filled for the last hour only: the warm-up round rebuilds every board's clock model
 from all its stored samples (about 2 ms a sample here), a restart cost that this bench does not measure."""
 T_END = 1_800_000_000.0
@@ -121,15 +122,21 @@ async def _fill(store: Any, boards: int, span: float | None) -> dict[str, int]:
             async with con.transaction():
                 for table, sql in _INSERT.items():
                     cols = sql[sql.index("(") + 1 : sql.index(")")].replace(" ", "").split(",")
+                    # A simulated week is millions of rows: the fill is not held to the store's statement timeout.
                     await con.copy_records_to_table(
-                        table, records=rows[table], columns=cols, schema_name=store.schema
+                        table,
+                        records=rows[table],
+                        columns=cols,
+                        schema_name=store.schema,
+                        timeout=FILL_TIMEOUT_S,
                     )
                 await con.execute(
                     "UPDATE boards SET batches_total = (SELECT count(*) FROM batches WHERE board_id = boards.id), "
                     "readings_total = batches_total, last_batch_at = $1, last_boot = 'boot-1', last_boot_at = $1",
                     T_END,
+                    timeout=FILL_TIMEOUT_S,
                 )
-            await con.execute("ANALYZE")
+            await con.execute("ANALYZE", timeout=FILL_TIMEOUT_S)
     return {k: len(v) for k, v in rows.items()}
 
 
