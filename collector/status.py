@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import math
 import re
-from collections import deque
+from collections import Counter, deque
 from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
@@ -538,6 +538,9 @@ async def status_doc(app: web.Application) -> dict[str, Any]:
     beats: dict[str, Heartbeat] = await store.latest_heartbeats()
     recent = await recent_events(app)
     last_event: dict[str, Event] = {e.board: e for e in recent if e.board}
+    refused: Counter[str] = Counter()
+    for (name, _), m in runtime.clock_models.items():
+        refused[name] += m.n_refused
     rows = []
     for b in boards:
         c = counts.get(b.name)
@@ -554,7 +557,8 @@ async def status_doc(app: web.Application) -> dict[str, Any]:
         if st in ("silent", "late"):
             reason = _contact_reason(st, contact_age, limits)
         fit = None
-        boot = hb.boot if hb else await store.latest_boot(b.name)
+        # From the counts' row, not one query per board: a fleet that has not called in yet costs one query.
+        boot = hb.boot if hb else (c.last_boot if c else None)
         if boot is not None:
             fit = (await clock_model(runtime.clock_models, store, b.name, boot)).fit()
         total = c.readings_total if c else 0
@@ -590,9 +594,7 @@ async def status_doc(app: web.Application) -> dict[str, Any]:
             "tags_heard": _number(stats.get("tags_heard")),
             "gap_readings": c.gap_readings if c else 0,
             "unregistered_readings": runtime.unregistered.get(b.name, 0),
-            "clock_exchanges_refused": sum(
-                m.n_refused for (name, _), m in runtime.clock_models.items() if name == b.name
-            ),
+            "clock_exchanges_refused": refused[b.name],
             "clock_offset_ms": fit.offset_s * 1000.0 if fit else None,
             "clock_skew_ppm": fit.skew_ppm if fit else None,
             "clock_residual_ms": fit.residual_ms if fit else None,

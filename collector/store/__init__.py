@@ -203,6 +203,8 @@ class BoardCounts:
     last_batch_at: float | None
     gap_readings: int
     """Readings the board reported lost (gap records)."""
+    last_boot: str | None = None
+    """The boot id of the newest batch, heartbeat or clock exchange."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -320,7 +322,6 @@ class Store(Protocol):
     # clock, heartbeats, events
     async def add_clock_sample(self, sample: ClockSample) -> None: ...
     async def clock_samples(self, board: str, boot: str, since: float | None = None) -> list[ClockSample]: ...
-    async def latest_boot(self, board: str) -> str | None: ...
     async def add_heartbeat(self, hb: Heartbeat, clock: ClockSample | None = None) -> None:
         """
         Keep the latest heartbeat per board, plus a bounded history for trends, and its clock exchange,

@@ -639,7 +639,7 @@ class PostgresStore:
 
     async def board_counts(self) -> list[BoardCounts]:
         rows = await self._fetch(
-            "SELECT name, readings_total, batches_total, last_batch_at, gap_readings "
+            "SELECT name, readings_total, batches_total, last_batch_at, gap_readings, last_boot "
             "FROM boards ORDER BY name"
         )
         return [BoardCounts(*r) for r in rows]
@@ -678,10 +678,6 @@ class PostgresStore:
             -math.inf if since is None else since,
         )
         return [ClockSample(board, boot, *r) for r in rows]
-
-    async def latest_boot(self, board: str) -> str | None:
-        rows = await self._fetch("SELECT last_boot FROM boards WHERE name = $1", board)
-        return rows[0][0] if rows else None
 
     async def add_heartbeat(self, hb: Heartbeat, clock: ClockSample | None = None) -> None:
         if clock is not None:

@@ -690,7 +690,7 @@ class SqliteStore:
 
     async def board_counts(self) -> list[BoardCounts]:
         rows = await self._query(
-            "SELECT name, readings_total, batches_total, last_batch_at, gap_readings "
+            "SELECT name, readings_total, batches_total, last_batch_at, gap_readings, last_boot "
             "FROM boards ORDER BY name"
         )
         return [BoardCounts(*r) for r in rows]
@@ -730,10 +730,6 @@ class SqliteStore:
             (board, boot, -math.inf if since is None else since),
         )
         return [ClockSample(board, boot, *r) for r in rows]
-
-    async def latest_boot(self, board: str) -> str | None:
-        rows = await self._query("SELECT last_boot FROM boards WHERE name = ?", (board,))
-        return rows[0][0] if rows else None
 
     async def add_heartbeat(self, hb: Heartbeat, clock: ClockSample | None = None) -> None:
         keep = self._heartbeat_history
