@@ -28,7 +28,9 @@ import asyncio
 import gzip
 import json
 import os
+import pickle
 import statistics
+import sys
 import tempfile
 import time
 import uuid
@@ -157,7 +159,6 @@ async def http_ingest(store: Any, per_board: list[list[dict[str, Any]]], tmp: Pa
     import aiohttp
     from aiohttp import web
 
-    from listenpost.agent.client.uplink import ExchangeLog
     from listenpost.collector.app import create_app
     from listenpost.collector.config import parse_settings
     from listenpost.collector.http.auth import ADMIN_TOKEN_FILE
@@ -191,65 +192,104 @@ async def http_ingest(store: Any, per_board: list[list[dict[str, Any]]], tmp: Pa
                     code = (await r.json())["code"]
                 async with s.post(f"{base}/v1/enroll", json={"code": code, "fingerprint": {}}) as r:
                     tokens.append((await r.json())["token"])
-            sent = 0
-
-            async def post(url: str, data: bytes, headers: dict[str, str]) -> dict[str, Any]:
-                async with s.post(url, data=data, headers=headers) as r:
-                    answer = await r.json()
-                    if r.status != 200:
-                        raise RuntimeError(f"{url} refused: {r.status} {answer}")
-                    return answer  # type: ignore[no-any-return]
-
-            async def board(token: str, bodies: list[dict[str, Any]]) -> None:
-                nonlocal sent
-                last_s = bodies[-1]["last_t_ms"] / 1000
-                # A board clock on which every reading is already in the past when the first batch goes.
-                clock = DerivedClock(
-                    base_clock, boot_at=base_clock.monotonic() - last_s - 1, boot_id=bodies[0]["boot"]
-                )
-                exchanges = ExchangeLog()
-                auth = {"Authorization": f"Bearer {token}", "Content-Type": "application/json"}
-                gz = {**auth, "Content-Encoding": "gzip"}
-                for kind, j, _ in schedule(len(bodies), HEARTBEAT_EVERY, True):
-                    t1 = clock.monotonic()
-                    if kind == "batch":
-                        b = bodies[j]
-                        payload = gzip.compress(
-                            wire.encode_batch(
-                                board=b["board"],
-                                boot=clock.boot_id,
-                                epoch=b["epoch"],
-                                seq=b["seq"],
-                                digest=b["digest"],
-                                t1=t1,
-                                clock=exchanges.take(),
-                                content=b["content_json"],
-                            ),
-                            compresslevel=6,
-                        )
-                        answer = await post(f"{base}/v1/batches", payload, gz)
-                        if answer.get("status") != "stored":
-                            raise RuntimeError(f"batch not stored: {answer}")
-                        sent += len(payload)
-                    else:
-                        hb = {
-                            "board": bodies[0]["board"],
-                            "boot": clock.boot_id,
-                            "t1": t1,
-                            "clock": exchanges.take(),
-                            "wall": clock.time(),
-                            "stats": HEARTBEAT_STATS,
-                        }
-                        answer = await post(f"{base}/v1/heartbeat", wire.canonical_json(hb), auth)
-                    exchanges.record(t1, clock.monotonic(), answer)
-                    exchanges.delivered()
-
-            t = time.perf_counter()
-            await asyncio.gather(*[board(tok, bodies) for tok, bodies in zip(tokens, per_board, strict=True)])
-            elapsed = time.perf_counter() - t
-            return elapsed, sent, app[RUNTIME].monitor_rounds - rounds_before
+        # The boards run in a process of their own, as they run on hardware of their own: building and
+        # gzipping batches and the HTTP client are board work, which the raw anchors do not carry either.
+        proc = await asyncio.create_subprocess_exec(
+            sys.executable,
+            "-c",
+            "from bench.ingest_http import boards_process; boards_process()",
+            stdin=asyncio.subprocess.PIPE,
+            stdout=asyncio.subprocess.PIPE,
+            env={**os.environ, "PYTHONPATH": os.pathsep.join(sys.path)},
+        )
+        out, _ = await proc.communicate(pickle.dumps((base, tokens, [_wire_only(b) for b in per_board])))
+        if proc.returncode != 0:
+            raise RuntimeError(f"boards process failed (exit {proc.returncode})")
+        outcome = pickle.loads(out)
+        elapsed, sent = outcome
+        return elapsed, sent, app[RUNTIME].monitor_rounds - rounds_before
     finally:
         await runner.cleanup()
+
+
+def _wire_only(bodies: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """What a board's process needs of its batches (the spool's bytes, not the decoded content)."""
+    return [{k: v for k, v in b.items() if k != "content"} for b in bodies]
+
+
+def boards_process() -> None:
+    """Entry of the boards' process: (base URL, tokens, batches per board) pickled on stdin; (seconds, batch
+    bytes sent) pickled on stdout."""
+    base, tokens, per_board = pickle.load(sys.stdin.buffer)
+    pickle.dump(asyncio.run(_boards(base, tokens, per_board)), sys.stdout.buffer)
+
+
+async def _boards(base: str, tokens: list[str], per_board: list[list[dict[str, Any]]]) -> tuple[float, int]:
+    """Each board one request in flight, as the agent's uplink does: batches, and every ``HEARTBEAT_EVERY``
+    batches a heartbeat, each request carrying the previous clock exchange."""
+    import aiohttp
+
+    from listenpost.agent.client.uplink import ExchangeLog
+
+    base_clock = SystemClock()  # CLOCK_MONOTONIC and the wall clock are the collector process's too
+    sent = 0
+    timeout = aiohttp.ClientTimeout(total=60)
+    async with aiohttp.ClientSession(timeout=timeout) as s:
+
+        async def post(url: str, data: bytes, headers: dict[str, str]) -> dict[str, Any]:
+            async with s.post(url, data=data, headers=headers) as r:
+                answer = await r.json()
+                if r.status != 200:
+                    raise RuntimeError(f"{url} refused: {r.status} {answer}")
+                return answer  # type: ignore[no-any-return]
+
+        async def board(token: str, bodies: list[dict[str, Any]]) -> None:
+            nonlocal sent
+            last_s = bodies[-1]["last_t_ms"] / 1000
+            # A board clock on which every reading is already in the past when the first batch goes.
+            clock = DerivedClock(
+                base_clock, boot_at=base_clock.monotonic() - last_s - 1, boot_id=bodies[0]["boot"]
+            )
+            exchanges = ExchangeLog()
+            auth = {"Authorization": f"Bearer {token}", "Content-Type": "application/json"}
+            gz = {**auth, "Content-Encoding": "gzip"}
+            for kind, j, _ in schedule(len(bodies), HEARTBEAT_EVERY, True):
+                t1 = clock.monotonic()
+                if kind == "batch":
+                    b = bodies[j]
+                    payload = gzip.compress(
+                        wire.encode_batch(
+                            board=b["board"],
+                            boot=clock.boot_id,
+                            epoch=b["epoch"],
+                            seq=b["seq"],
+                            digest=b["digest"],
+                            t1=t1,
+                            clock=exchanges.take(),
+                            content=b["content_json"],
+                        ),
+                        compresslevel=6,
+                    )
+                    answer = await post(f"{base}/v1/batches", payload, gz)
+                    if answer.get("status") != "stored":
+                        raise RuntimeError(f"batch not stored: {answer}")
+                    sent += len(payload)
+                else:
+                    hb = {
+                        "board": bodies[0]["board"],
+                        "boot": clock.boot_id,
+                        "t1": t1,
+                        "clock": exchanges.take(),
+                        "wall": clock.time(),
+                        "stats": HEARTBEAT_STATS,
+                    }
+                    answer = await post(f"{base}/v1/heartbeat", wire.canonical_json(hb), auth)
+                exchanges.record(t1, clock.monotonic(), answer)
+                exchanges.delivered()
+
+        t = time.perf_counter()
+        await asyncio.gather(*[board(tok, bodies) for tok, bodies in zip(tokens, per_board, strict=True)])
+        return time.perf_counter() - t, sent
 
 
 async def _sqlite_http(per_board: list[list[dict[str, Any]]], tmp: Path) -> tuple[float, int, int]:

@@ -56,6 +56,8 @@ class Runtime:
     tag_registry: tuple[frozenset[str], float] | None = None
     """(registered tags, read at): the registry a batch's identities are checked against, re-read
     every ``REGISTRY_CACHE_SECONDS`` (collector/http/api.py)."""
+    board_configs: dict[str, tuple[frozenset[str], float, dict[str, Any], str]] = field(default_factory=dict)
+    """board → (registry snapshot, offset_db, config document, ETag): `board_config` builds each once."""
     unregistered: dict[str, int] = field(default_factory=dict)
     """board → readings dropped as unregistered, summed from the stored ``unregistered_ids`` events."""
     calibration_shifts: dict[str, dict[str, Any]] = field(default_factory=dict)

@@ -20,7 +20,7 @@ import numpy as np
 import structlog
 from aiohttp import web
 
-from listenpost.collector.http.api import forget_tokens, read_json
+from listenpost.collector.http.api import forget_tags, forget_tokens, read_json
 from listenpost.collector.http.auth import (
     bearer_token,
     code_hash,
@@ -272,6 +272,7 @@ async def import_tags(request: web.Request) -> web.Response:
     ids = _tag_list(await _json_object(request))
     store = request.app[STORE]
     added = await store.add_tags(ids, request.app[CLOCK].time())
+    forget_tags(request.app)
     return web.json_response(
         {
             "added": added,
@@ -308,6 +309,7 @@ async def retire_tags(request: web.Request) -> web.Response:
     require_admin(request)
     ids = _tag_list(await _json_object(request))
     n = await request.app[STORE].retire_tags(ids, request.app[CLOCK].time())
+    forget_tags(request.app)
     return web.json_response({"retired": n, "given": len(ids)})
 
 

@@ -113,8 +113,9 @@ TOKEN_CACHE_SECONDS = 10.0
 once (`forget_tokens`); another collector on the same database notices within this time."""
 TOKEN_CACHE_MAX = 10_000
 REGISTRY_CACHE_SECONDS = 10.0
-"""How long the tag registry read for batch checks is reused: a tag imported or retired applies to
-batches within this time (on every collector sharing the database)."""
+"""How long the tag registry read for batch checks and board configs is reused: a tag imported or retired
+through this collector applies at once (`forget_tags`), through another collector sharing the database
+within this time."""
 
 
 def time_window(limits: Limits) -> TimeWindow:
@@ -128,6 +129,12 @@ async def registered_tags(app: web.Application) -> frozenset[str]:
     if hit is None or not 0 <= now - hit[1] < REGISTRY_CACHE_SECONDS:
         hit = runtime.tag_registry = (frozenset(await app[STORE].list_tags()), now)
     return hit[0]
+
+
+def forget_tags(app: web.Application) -> None:
+    """Drop the cached tag registry (and the configs built from it): after a tag import or retirement."""
+    app[RUNTIME].tag_registry = None
+    app[RUNTIME].board_configs.clear()
 
 
 def forget_tokens(app: web.Application) -> None:
@@ -171,17 +178,29 @@ async def require_board(request: web.Request) -> Board:
 
 
 async def board_config(app: web.Application, board: Board) -> tuple[dict[str, Any], str]:
-    """The config a board runs with, and its ETag (sha256 of the canonical JSON, quoted)."""
-    settings = app[SETTINGS]
+    """
+    The config a board runs with, and its ETag (sha256 of the canonical JSON, quoted).
+
+    Every heartbeat answers with the ETag: the document is built and hashed once per board and registry
+    snapshot (`registered_tags`), not per request, since the registry holds hundreds of tags.
+    """
+    settings, cache = app[SETTINGS], app[RUNTIME].board_configs
+    tags = await registered_tags(app)
+    hit = cache.get(board.name)
+    if hit is not None and hit[0] is tags and hit[1] == board.offset_db:
+        return hit[2], hit[3]
     doc = {
         "board": board.name,
-        "tags": sorted(await app[STORE].list_tags()),
+        "tags": sorted(tags),
         "rules": [rule_to_json(r) for r in settings.rules],
         "offset_db": board.offset_db,
         "flush_seconds": settings.flush_seconds,
         "heartbeat_seconds": settings.heartbeat_seconds,
     }
     etag = '"' + hashlib.sha256(wire.canonical_json(doc)).hexdigest()[:32] + '"'
+    if len(cache) >= TOKEN_CACHE_MAX:
+        cache.clear()
+    cache[board.name] = (tags, board.offset_db, doc, etag)
     return doc, etag
 
 

@@ -371,6 +371,7 @@ class ClockModel:
         self._segments: list[_Segment] = []
         self._steps: list[ClockStep] = []
         self._pending: list[_Sample] = []
+        self._fit_with_steps: tuple[ClockFit, int, ClockFit] | None = None
         self.n_exchanges = 0
         """Exchanges passed to `add` and accepted as valid input."""
         self.n_ignored = 0
@@ -471,7 +472,17 @@ class ClockModel:
         if not self._segments:
             return None
         f = self._fit_segment(self._segments[-1])
-        return None if f is None else dataclasses.replace(f, steps=tuple(self._steps))
+        if f is None:
+            return None
+        # Asked several times per request: the copy with the steps is made once per refit or new step.
+        cached = self._fit_with_steps
+        if cached is None or cached[0] is not f or cached[1] != len(self._steps):
+            cached = self._fit_with_steps = (
+                f,
+                len(self._steps),
+                dataclasses.replace(f, steps=tuple(self._steps)),
+            )
+        return cached[2]
 
     def to_collector_time(self, board_ms: np.ndarray) -> np.ndarray:
         """
