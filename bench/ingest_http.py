@@ -224,35 +224,68 @@ def boards_process() -> None:
     pickle.dump(asyncio.run(_boards(base, tokens, per_board)), sys.stdout.buffer)
 
 
+class _Uplink:
+    """
+    One board's keep-alive HTTP/1.1 connection, one request at a time (as the agent's uplink holds one).
+
+    The load generator's side is plain asyncio streams: the request bytes are what a board sends
+    (method, path, Host, Authorization, Content-Type, Content-Encoding, Content-Length and the body), and
+    the answer is read by its Content-Length. A full HTTP client per board would cost several times the
+    CPU of these few lines, and on a machine of two cores that CPU is taken from the collector measured.
+    """
+
+    def __init__(self, host: str, port: int, token: str) -> None:
+        self.host, self.port = host, port
+        self.auth = f"Authorization: Bearer {token}\r\nContent-Type: application/json\r\n"
+        self._streams: tuple[asyncio.StreamReader, asyncio.StreamWriter] | None = None
+
+    async def post(self, path: str, body: bytes, *, gzipped: bool = False) -> dict[str, Any]:
+        if self._streams is None:
+            self._streams = await asyncio.open_connection(self.host, self.port)
+        reader, writer = self._streams
+        head = (
+            f"POST {path} HTTP/1.1\r\nHost: {self.host}:{self.port}\r\n{self.auth}"
+            + ("Content-Encoding: gzip\r\n" if gzipped else "")
+            + f"Content-Length: {len(body)}\r\n\r\n"
+        )
+        writer.write(head.encode() + body)
+        status = int((await reader.readline()).split(b" ", 2)[1])
+        length = None
+        while (line := await reader.readline()) not in (b"\r\n", b""):
+            name, _, value = line.partition(b":")
+            if name.strip().lower() == b"content-length":
+                length = int(value)
+        if length is None:
+            raise RuntimeError(f"{path}: answer {status} without Content-Length")
+        answer = json.loads(await reader.readexactly(length))
+        if status != 200:
+            raise RuntimeError(f"{path} refused: {status} {answer}")
+        return answer  # type: ignore[no-any-return]
+
+    def close(self) -> None:
+        if self._streams is not None:
+            self._streams[1].close()
+
+
 async def _boards(base: str, tokens: list[str], per_board: list[list[dict[str, Any]]]) -> tuple[float, int]:
     """Each board one request in flight, as the agent's uplink does: batches, and every ``HEARTBEAT_EVERY``
     batches a heartbeat, each request carrying the previous clock exchange."""
-    import aiohttp
-
     from listenpost.agent.client.uplink import ExchangeLog
 
+    host, port = base.removeprefix("http://").rsplit(":", 1)
     base_clock = SystemClock()  # CLOCK_MONOTONIC and the wall clock are the collector process's too
     sent = 0
-    timeout = aiohttp.ClientTimeout(total=60)
-    async with aiohttp.ClientSession(timeout=timeout) as s:
 
-        async def post(url: str, data: bytes, headers: dict[str, str]) -> dict[str, Any]:
-            async with s.post(url, data=data, headers=headers) as r:
-                answer = await r.json()
-                if r.status != 200:
-                    raise RuntimeError(f"{url} refused: {r.status} {answer}")
-                return answer  # type: ignore[no-any-return]
-
-        async def board(token: str, bodies: list[dict[str, Any]]) -> None:
-            nonlocal sent
-            last_s = bodies[-1]["last_t_ms"] / 1000
-            # A board clock on which every reading is already in the past when the first batch goes.
-            clock = DerivedClock(
-                base_clock, boot_at=base_clock.monotonic() - last_s - 1, boot_id=bodies[0]["boot"]
-            )
-            exchanges = ExchangeLog()
-            auth = {"Authorization": f"Bearer {token}", "Content-Type": "application/json"}
-            gz = {**auth, "Content-Encoding": "gzip"}
+    async def board(token: str, bodies: list[dict[str, Any]]) -> None:
+        nonlocal sent
+        last_s = bodies[-1]["last_t_ms"] / 1000
+        # A board clock on which every reading is already in the past when the first batch goes.
+        clock = DerivedClock(
+            base_clock, boot_at=base_clock.monotonic() - last_s - 1, boot_id=bodies[0]["boot"]
+        )
+        exchanges = ExchangeLog()
+        uplink = _Uplink(host, int(port), token)
+        try:
             for kind, j, _ in schedule(len(bodies), HEARTBEAT_EVERY, True):
                 t1 = clock.monotonic()
                 if kind == "batch":
@@ -270,7 +303,7 @@ async def _boards(base: str, tokens: list[str], per_board: list[list[dict[str, A
                         ),
                         compresslevel=6,
                     )
-                    answer = await post(f"{base}/v1/batches", payload, gz)
+                    answer = await uplink.post("/v1/batches", payload, gzipped=True)
                     if answer.get("status") != "stored":
                         raise RuntimeError(f"batch not stored: {answer}")
                     sent += len(payload)
@@ -283,13 +316,15 @@ async def _boards(base: str, tokens: list[str], per_board: list[list[dict[str, A
                         "wall": clock.time(),
                         "stats": HEARTBEAT_STATS,
                     }
-                    answer = await post(f"{base}/v1/heartbeat", wire.canonical_json(hb), auth)
+                    answer = await uplink.post("/v1/heartbeat", wire.canonical_json(hb))
                 exchanges.record(t1, clock.monotonic(), answer)
                 exchanges.delivered()
+        finally:
+            uplink.close()
 
-        t = time.perf_counter()
-        await asyncio.gather(*[board(tok, bodies) for tok, bodies in zip(tokens, per_board, strict=True)])
-        return time.perf_counter() - t, sent
+    t = time.perf_counter()
+    await asyncio.gather(*[board(tok, bodies) for tok, bodies in zip(tokens, per_board, strict=True)])
+    return time.perf_counter() - t, sent
 
 
 async def _sqlite_http(per_board: list[list[dict[str, Any]]], tmp: Path) -> tuple[float, int, int]:

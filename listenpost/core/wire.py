@@ -153,6 +153,14 @@ _CANONICAL: set[str] = set()
 _CANONICAL_MAX = 50_000
 
 
+def _known_canonical(values: list[Any]) -> bool:
+    """Every value already found canonical (one set operation in C, the common case of a batch's tags)."""
+    try:
+        return _CANONICAL.issuperset(values)
+    except TypeError:  # an unhashable value: `check_tag` names it
+        return False
+
+
 def check_tag(v: Any, field: str) -> str:
     """A tag identity in canonical form (`listenpost.core.identity`), the only form a board sends."""
     if not isinstance(v, str) or len(v) > 200:
@@ -232,8 +240,9 @@ def decode_content(content: Any, *, max_readings: int = 200_000) -> DecodedConte
     tags = cols.get("tags")
     if not isinstance(tags, list):
         raise WireError("content.readings.tags", "must be a list of tag identity strings")
-    for i, x in enumerate(tags):
-        check_tag(x, f"content.readings.tags[{i}]")
+    if not _known_canonical(tags):
+        for i, x in enumerate(tags):
+            check_tag(x, f"content.readings.tags[{i}]")
     idx = _int_list(cols.get("tag"), "content.readings.tag", 0, max(len(tags) - 1, 0))
     rssi = _int_list(cols.get("rssi_dd"), "content.readings.rssi_dd", -2000, 500)
     if len(idx) != n or len(rssi) != n:
