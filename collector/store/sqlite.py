@@ -10,7 +10,9 @@ Ingest uses **group commit**: batches that arrive while a commit is running wait
 written together in the next transaction, each inside its own SAVEPOINT, so a batch the database refuses
 is rolled back alone while the others in its group are kept. Every caller's future resolves only after
 the group's COMMIT returned with ``synchronous=FULL`` (the WAL is fsynced on every commit). One fsync per
-group instead of one per batch is what lets a hundred boards share one SD card or disk.
+group instead of one per batch is what lets a hundred boards share one SD card or disk. Heartbeats join
+the same queue (a savepoint each): a group of heartbeats alone commits without the fsync, as heartbeats
+always did (the next one replaces what a crash loses); one among batches is as durable as they are.
 
 A write lock held elsewhere past ``busy_timeout_s``, a full disk or an I/O error → `StoreUnavailable`.
 One collector per SQLite file: `exclusive` is an in-process lock.
@@ -27,6 +29,7 @@ import sqlite3
 from collections import deque
 from collections.abc import AsyncIterator, Callable, Iterator, Sequence
 from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
 from itertools import chain, islice, repeat
 from pathlib import Path
 from typing import Any, TypeVar
@@ -165,7 +168,7 @@ class SqliteStore:
         self._wcon: sqlite3.Connection | None = None
         self._rcon: sqlite3.Connection | None = None
         self._closed = False
-        self._pending: deque[tuple[IngestBatch, asyncio.Future[IngestResult]]] = deque()
+        self._pending: deque[tuple[IngestBatch | _HeartbeatWrite, asyncio.Future[Any]]] = deque()
         self._flusher: asyncio.Task[None] | None = None
         self._locks: dict[str, asyncio.Lock] = {}
         # name -> id caches; boards and tags are never deleted, so ids never change. The tag cache is
@@ -528,18 +531,22 @@ class SqliteStore:
     async def ingest(self, batch: IngestBatch) -> IngestResult:
         self._check_open()
         check_batch(batch)
-        fut: asyncio.Future[IngestResult] = asyncio.get_running_loop().create_future()
+        return await self._enqueue(batch)  # type: ignore[no-any-return]
+
+    async def _enqueue(self, item: IngestBatch | _HeartbeatWrite) -> Any:
+        """Queue ``item`` for the next group commit; its outcome once the group's COMMIT returned."""
+        fut: asyncio.Future[Any] = asyncio.get_running_loop().create_future()
         # A caller cancelled while its group commits never reads the outcome; mark it retrieved.
         fut.add_done_callback(lambda f: f.cancelled() or f.exception())
-        self._pending.append((batch, fut))
+        self._pending.append((item, fut))
         if self._flusher is None or self._flusher.done():
             self._flusher = asyncio.create_task(self._flush(), name="sqlite-group-commit")
         return await asyncio.shield(fut)
 
     async def _flush(self) -> None:
-        """Write queued batches group by group until the queue is empty."""
+        """Write queued batches and heartbeats group by group until the queue is empty."""
         while self._pending:
-            group: list[tuple[IngestBatch, asyncio.Future[IngestResult]]] = []
+            group: list[tuple[IngestBatch | _HeartbeatWrite, asyncio.Future[Any]]] = []
             readings = 0
             while (
                 self._pending
@@ -567,41 +574,54 @@ class SqliteStore:
                 else:
                     fut.set_result(res)
 
-    def _write_group(self, batches: list[IngestBatch]) -> list[IngestResult | Exception]:
+    def _write_group(self, items: list[IngestBatch | _HeartbeatWrite]) -> list[Any]:
         con = self._wcon
         if con is None:
             raise StoreUnavailable(f"{self.path}: store is closed")
-        con.execute("BEGIN IMMEDIATE")
-        new_tags: dict[str, int] = {}
+        batches = sum(isinstance(x, IngestBatch) for x in items)
+        if not batches:
+            con.execute(
+                "PRAGMA synchronous = NORMAL"
+            )  # heartbeats alone: no fsync (only outside a transaction)
         try:
-            results: list[IngestResult | Exception] = []
-            for b in batches:
-                # Everything one batch does, its new tags included, is inside its own savepoint: whatever
-                # goes wrong with one batch is answered to that batch and rolled back alone. Only the
-                # storage failing (disk full, I/O error, lock) fails the group.
-                con.execute("SAVEPOINT batch")
-                try:
-                    mine = self._intern_tags(con, batch_tag_names(b) - new_tags.keys())
-                    results.append(self._insert_batch(con, b, self._tag_ids | new_tags | mine))
-                    con.execute("RELEASE batch")
-                    new_tags |= mine
-                except Exception as e:
-                    if isinstance(e, sqlite3.Error) and not isinstance(
-                        e, sqlite3.IntegrityError | sqlite3.DataError
-                    ):
-                        raise
-                    con.execute("ROLLBACK TO batch")
-                    con.execute("RELEASE batch")
-                    results.append(_refusal(b, e))
-            con.execute("COMMIT")
-        except BaseException:
-            if con.in_transaction:
-                with contextlib.suppress(sqlite3.Error):
-                    con.execute("ROLLBACK")
-            raise
+            con.execute("BEGIN IMMEDIATE")
+            new_tags: dict[str, int] = {}
+            try:
+                results: list[Any] = []
+                for x in items:
+                    # Everything one batch does, its new tags included, is inside its own savepoint:
+                    # whatever goes wrong with one batch (or heartbeat) is answered to it and rolled back
+                    # alone. Only the storage failing (disk full, I/O error, lock) fails the group.
+                    con.execute("SAVEPOINT item")
+                    try:
+                        if isinstance(x, IngestBatch):
+                            mine = self._intern_tags(con, batch_tag_names(x) - new_tags.keys())
+                            results.append(self._insert_batch(con, x, self._tag_ids | new_tags | mine))
+                            new_tags |= mine
+                        else:
+                            results.append(self._insert_heartbeat(con, x))
+                        con.execute("RELEASE item")
+                    except Exception as e:
+                        if isinstance(e, sqlite3.Error) and not isinstance(
+                            e, sqlite3.IntegrityError | sqlite3.DataError
+                        ):
+                            raise
+                        con.execute("ROLLBACK TO item")
+                        con.execute("RELEASE item")
+                        results.append(_refusal(x, e) if isinstance(x, IngestBatch) else e)
+                con.execute("COMMIT")
+            except BaseException:
+                if con.in_transaction:
+                    with contextlib.suppress(sqlite3.Error):
+                        con.execute("ROLLBACK")
+                raise
+        finally:
+            if not batches:
+                con.execute("PRAGMA synchronous = FULL")
         self._tag_ids.update(new_tags)
-        self.ingest_commits += 1
-        self.ingest_batches += len(batches)
+        if batches:
+            self.ingest_commits += 1
+            self.ingest_batches += batches
         return results
 
     def _intern_tags(self, con: sqlite3.Connection, names: set[str]) -> dict[str, int]:
@@ -732,26 +752,27 @@ class SqliteStore:
         return [ClockSample(board, boot, *r) for r in rows]
 
     async def add_heartbeat(self, hb: Heartbeat, clock: ClockSample | None = None) -> None:
-        keep = self._heartbeat_history
+        self._check_open()
         if clock is not None:
             check_clock_sample(clock)
+        # Serialised here, on the event loop: the writer thread's time is what ingest waits on.
+        await self._enqueue(_HeartbeatWrite(hb, clock, json.dumps(hb.stats, sort_keys=True)))
 
-        def tx(con: sqlite3.Connection) -> None:
-            bid = self._board_id(con, hb.board)
-            if clock is not None:
-                _insert_clock_sample(con, bid, clock)
-            con.execute(
-                "INSERT INTO heartbeats (board_id, at, boot, stats) VALUES (?, ?, ?, ?)",
-                (bid, hb.at, hb.boot, json.dumps(hb.stats, sort_keys=True)),
-            )
-            con.execute(
-                "DELETE FROM heartbeats WHERE id IN (SELECT id FROM heartbeats WHERE board_id = ? "
-                "ORDER BY at DESC, id DESC LIMIT -1 OFFSET ?)",
-                (bid, keep),
-            )
-            _note_boot(con, bid, hb.boot, hb.at)
-
-        await self._wtx(tx, durable=False)
+    def _insert_heartbeat(self, con: sqlite3.Connection, w: _HeartbeatWrite) -> None:
+        hb = w.heartbeat
+        bid = self._board_id(con, hb.board)
+        if w.clock is not None:
+            _insert_clock_sample(con, bid, w.clock)
+        con.execute(
+            "INSERT INTO heartbeats (board_id, at, boot, stats) VALUES (?, ?, ?, ?)",
+            (bid, hb.at, hb.boot, w.stats_json),
+        )
+        con.execute(
+            "DELETE FROM heartbeats WHERE id IN (SELECT id FROM heartbeats WHERE board_id = ? "
+            "ORDER BY at DESC, id DESC LIMIT -1 OFFSET ?)",
+            (bid, self._heartbeat_history),
+        )
+        _note_boot(con, bid, hb.boot, hb.at)
 
     async def heartbeats(self, board: str, since: float) -> list[Heartbeat]:
         rows = await self._query(
@@ -992,6 +1013,17 @@ class SqliteStore:
     async def holds(self, name: str) -> bool:
         lock = self._locks.get(name)
         return lock is not None and lock.locked()
+
+
+@dataclass(frozen=True, slots=True)
+class _HeartbeatWrite:
+    """A heartbeat (with the clock sample its request carried) queued for a group commit."""
+
+    heartbeat: Heartbeat
+    clock: ClockSample | None
+    stats_json: str
+    n: int = 0
+    """Readings: none (the group bound counts readings)."""
 
 
 def _refusal(b: IngestBatch, e: Exception) -> Exception:

@@ -458,6 +458,44 @@ async def test_heartbeat_history_is_bounded(store_factory: StoreFactory):
     assert latest["g6-a"].boot == "boot-9"
 
 
+async def test_heartbeats_among_concurrent_batches_fail_alone_and_the_rest_is_durable(
+    store_factory: StoreFactory,
+):
+    """
+    Heartbeats sent while batches are being stored: every one answered, a heartbeat of an unknown board
+    fails alone (SQLite: in the same group transaction as the batches), and everything answered is
+    there after a reopen.
+    """
+    store = await store_factory.open()
+    boards = [f"h{i}" for i in range(4)]
+    await add_boards(store, *boards)
+    sample = ClockSample("h0", "boot-1", 10.0, 1_800_000_000.0, 1_800_000_000.1, 10.2)
+    calls = [
+        store.ingest(make_batch(b, seq, received_at=1_800_000_005.0)) for b in boards for seq in range(3)
+    ]
+    calls += [
+        store.add_heartbeat(Heartbeat(b, 1_800_000_010.0, "boot-1", {"i": i})) for i, b in enumerate(boards)
+    ]
+    calls.insert(5, store.add_heartbeat(Heartbeat("h9-unknown", 1_800_000_010.0, "boot-1", {})))
+    calls.insert(7, store.add_heartbeat(Heartbeat("h0", 1_800_000_011.0, "boot-2", {}), clock=sample))
+    results = await asyncio.gather(*calls, return_exceptions=True)
+    assert isinstance(results[5], ValueError) and "h9-unknown" in str(results[5])
+    assert [r for i, r in enumerate(results) if i != 5 and isinstance(r, BaseException)] == []
+    if store_factory.backend == "sqlite":
+        assert store.ingest_commits == 1  # the batches and the heartbeats queued with them: one commit
+    await store.close()
+    store = await store_factory.open()
+    assert await total_readings(store) == 120
+    assert {b: h.stats for b, h in (await store.latest_heartbeats()).items()} == {
+        "h0": {},
+        "h1": {"i": 1},
+        "h2": {"i": 2},
+        "h3": {"i": 3},
+    }
+    assert [s.t1 for s in await store.clock_samples("h0", "boot-1")] == [10.0]
+    assert await _last_boot(store, "h0") == "boot-2"
+
+
 async def test_events_are_a_cursor(store):
     """Event ids increase; ``since_id``, ``limit`` and ``board`` page and filter."""
     await add_boards(store, "g0-a", "u3-a")
