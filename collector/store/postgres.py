@@ -93,6 +93,30 @@ _INSERT_BATCH = (
     f"VALUES ({', '.join(f'${i}' for i in range(1, len(BATCH_COLS) + 1))}) "
     "ON CONFLICT (board_id, epoch, seq) DO NOTHING RETURNING id"
 )
+assert BATCH_COLS[:8] == ("board_id", "epoch", "seq", "digest", "boot", "n", "received_at", "offset_dd")
+_COUNT_BATCH = (
+    "UPDATE boards SET readings_total = readings_total + {n}, batches_total = batches_total + 1, "
+    "gap_readings = gap_readings + {gap}, last_batch_at = greatest(last_batch_at, {at}), "
+    "last_boot = CASE WHEN last_boot_at IS NULL OR last_boot_at <= {at} THEN {boot} ELSE last_boot END, "
+    "last_boot_at = greatest(last_boot_at, {at}) WHERE id = {board}"
+)
+"""A stored batch's counts on its board (placeholders filled in per statement)."""
+# The common case in one statement: the batch row; if it went in (not a duplicate) and its seq is the
+# next of the (board, epoch)'s span, the span extended (the UPDATE locks the span row and re-checks reach
+# under the lock, as _account_seqs' FOR UPDATE does); and if that applied, the board's counts. Row locks
+# in the order of the general path (seq span, then board): the board's UPDATE waits on `extended`, so
+# concurrent batches of one board cannot deadlock. Returns the new batch id (NULL for a duplicate) and
+# whether the rest (span and counts) is done.
+_STORE_NEXT_BATCH = (
+    f"WITH ins AS ({_INSERT_BATCH}), "
+    "extended AS (UPDATE seq_reach SET reach = $3 WHERE board_id = $1 AND epoch = $2 AND reach = $3 - 1 "
+    "AND EXISTS (SELECT FROM ins) RETURNING 1), "
+    "counted AS ("
+    + _COUNT_BATCH.format(n="$6", gap="$14", at="$7", boot="$5", board="$1")
+    + " AND EXISTS (SELECT FROM extended)) "
+    "SELECT (SELECT id FROM ins), EXISTS (SELECT FROM extended)"
+)
+_COUNT_ONE_BATCH = _COUNT_BATCH.format(n="$1", gap="$2", at="$3", boot="$4", board="$5")
 
 # Errors that say "the database cannot do it now" (retry later), not "this request is wrong".
 _UNAVAILABLE: tuple[type[BaseException], ...] = (
@@ -272,6 +296,19 @@ class PostgresStore:
         self._closed = False
         self._board_ids: dict[str, int] = {}
         self._tag_ids: dict[str, int] = {}
+        self._lock_sessions: set[int] = set()
+        """Server pids of pooled sessions `exclusive` took an advisory lock on: reset in full on release."""
+
+    async def _release(self, con: asyncpg.Connection) -> None:
+        """
+        Pool reset on release. asyncpg rolls back an open transaction before this; the full reset (a
+        round trip: unlock advisory locks, CLOSE ALL, UNLISTEN, RESET ALL) only follows `exclusive`,
+        the one place that leaves session state (its lock). Every other use of a connection here keeps
+        to transactions and SET LOCAL, so a batch or heartbeat costs no reset round trip.
+        """
+        if con.get_server_pid() in self._lock_sessions:
+            self._lock_sessions.discard(con.get_server_pid())
+            await con.reset()
 
     @classmethod
     async def open(
@@ -331,6 +368,7 @@ class PostgresStore:
                 timeout=connect_timeout_s,
                 command_timeout=command_timeout_s,
                 server_settings=settings,
+                reset=store._release,
             )
         except _UNAVAILABLE as e:
             raise StoreUnavailable(f"PostgreSQL unreachable: {type(e).__name__}: {e}") from e
@@ -567,7 +605,12 @@ class PostgresStore:
                     if b.clock is not None:
                         # Kept whatever the batch turns out to be, in its transaction: one commit.
                         await _insert_clock_sample(con, bid, b.clock)
-                    batch_id = await con.fetchval(_INSERT_BATCH, *batch_row(b, bid, offset_dd))
+                    row = batch_row(b, bid, offset_dd)
+                    done = False
+                    if b.gap is None:  # the common case, one round trip (_STORE_NEXT_BATCH)
+                        batch_id, done = await con.fetchrow(_STORE_NEXT_BATCH, *row, 0)
+                    else:
+                        batch_id = await con.fetchval(_INSERT_BATCH, *row)
                     if batch_id is None:
                         stored = await con.fetchval(
                             "SELECT digest FROM batches WHERE board_id = $1 AND epoch = $2 AND seq = $3",
@@ -577,8 +620,12 @@ class PostgresStore:
                         )
                         status = IngestStatus.DUPLICATE if stored == b.digest else IngestStatus.CONFLICT
                         return IngestResult(status, stored)
-                    for epoch, lo, hi in seq_intervals(b):
-                        await _account_seqs(con, bid, epoch, lo, hi)
+                    if not done:
+                        for epoch, lo, hi in seq_intervals(b):
+                            await _account_seqs(con, bid, epoch, lo, hi)
+                        await con.execute(
+                            _COUNT_ONE_BATCH, b.n, gap.get("readings", 0), b.received_at, b.boot, bid
+                        )
                     if b.n:
                         await con.copy_records_to_table(
                             "readings",
@@ -616,17 +663,6 @@ class PostgresStore:
                                 for t in b.telemetry
                             ],
                         )
-                    await con.execute(
-                        "UPDATE boards SET readings_total = readings_total + $1, batches_total = batches_total + 1, "
-                        "gap_readings = gap_readings + $2, last_batch_at = greatest(last_batch_at, $3), "
-                        "last_boot = CASE WHEN last_boot_at IS NULL OR last_boot_at <= $3 THEN $4 ELSE last_boot END, "
-                        "last_boot_at = greatest(last_boot_at, $3) WHERE id = $5",
-                        b.n,
-                        gap.get("readings", 0),
-                        b.received_at,
-                        b.boot,
-                        bid,
-                    )
             except (asyncpg.IntegrityConstraintViolationError, asyncpg.DataError) as e:
                 field = constraint_field(
                     getattr(e, "constraint_name", None) or getattr(e, "column_name", None) or ""
@@ -689,7 +725,9 @@ class PostgresStore:
             if clock is not None:
                 await _insert_clock_sample(con, bid, clock)
             await con.execute(
-                "INSERT INTO heartbeats (board_id, at, boot, stats) VALUES ($1, $2, $3, $4)",
+                "WITH h AS (INSERT INTO heartbeats (board_id, at, boot, stats) VALUES ($1, $2, $3, $4)) "
+                "UPDATE boards SET last_boot = $3, last_boot_at = $2 WHERE id = $1 AND "
+                "(last_boot_at IS NULL OR last_boot_at <= $2)",
                 bid,
                 hb.at,
                 hb.boot,
@@ -701,7 +739,6 @@ class PostgresStore:
                 bid,
                 self._heartbeat_history,
             )
-            await _note_boot(con, bid, hb.boot, hb.at)
 
     async def heartbeats(self, board: str, since: float) -> list[Heartbeat]:
         rows = await self._fetch(
@@ -956,6 +993,7 @@ class PostgresStore:
         """Session advisory lock ``name`` on one pooled connection, held for the block, released after."""
         key = lock_key(name, self.lock_scope)
         async with self._acquire() as con:
+            self._lock_sessions.add(con.get_server_pid())  # before the lock may exist: reset in full
             if not await con.fetchval("SELECT pg_try_advisory_lock($1)", key):
                 yield False
                 return
@@ -1027,8 +1065,11 @@ class PostgresStore:
 
 
 async def _insert_clock_sample(con: asyncpg.Connection, board_id: int, s: ClockSample) -> None:
+    """The sample, and its boot as the board's latest if no later contact says otherwise: one statement."""
     await con.execute(
-        "INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES ($1, $2, $3, $4, $5, $6)",
+        "WITH s AS (INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES ($1, $2, $3, $4, $5, $6)) "
+        "UPDATE boards SET last_boot = $2, last_boot_at = $4 WHERE id = $1 AND "
+        "(last_boot_at IS NULL OR last_boot_at <= $4)",
         board_id,
         s.boot,
         s.t1,
@@ -1036,7 +1077,6 @@ async def _insert_clock_sample(con: asyncpg.Connection, board_id: int, s: ClockS
         s.t3,
         s.t4,
     )
-    await _note_boot(con, board_id, s.boot, s.t2)
 
 
 async def _account_seqs(con: asyncpg.Connection, board_id: int, epoch: str, lo: int, hi: int) -> None:
@@ -1095,14 +1135,4 @@ async def _account_seqs(con: asyncpg.Connection, board_id: int, epoch: str, lo: 
         epoch,
         first,
         reach,
-    )
-
-
-async def _note_boot(con: asyncpg.Connection, board_id: int, boot: str, at: float) -> None:
-    await con.execute(
-        "UPDATE boards SET last_boot = $1, last_boot_at = $2 WHERE id = $3 AND "
-        "(last_boot_at IS NULL OR last_boot_at <= $2)",
-        boot,
-        at,
-        board_id,
     )
