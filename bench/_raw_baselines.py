@@ -12,7 +12,11 @@ done.
 
 Besides the batches both write what the collector writes for the same requests (`schedule`): a
 ``clock_samples`` row for every request that carries a clock exchange and a ``heartbeats`` row per
-heartbeat. Both take the batches per board, pre-register ``tags`` and every board outside the timed
+heartbeat; with ``counts``, also each batch's seq on its (board, epoch) span (``seq_reach``) and the
+board's running counts (``boards``), which the collector updates with every batch. PostgreSQL keeps a
+batch's clock sample in the batch's transaction and heartbeats without waiting for the WAL flush, as the
+store does; a batch request is then one statement (clock sample, batch row, span, counts), the COPY and
+the commit. Both take the batches per board, pre-register ``tags`` and every board outside the timed
 part, and return the seconds of the timed part.
 """
 
@@ -81,6 +85,7 @@ def raw_sqlite(
     heartbeat_every: int = 0,
     exchanges: bool = False,
     stats_text: str = "{}",
+    counts: bool = False,
 ) -> float:
     """Seconds to write every request's rows in one durable transaction (the floor)."""
     con = sqlite3.connect(path, isolation_level=None)
@@ -118,6 +123,17 @@ def raw_sqlite(
                 "VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
                 (board_id, b.epoch, b.seq, b.digest, b.boot, b.n, b.received_at, _offset_dd(b)),
             )
+            if counts:
+                con.execute(
+                    "INSERT INTO seq_reach (board_id, epoch, first_seq, reach) VALUES (?, ?, ?, ?) "
+                    "ON CONFLICT (board_id, epoch) DO UPDATE SET reach = excluded.reach",
+                    (board_id, b.epoch, b.seq, b.seq),
+                )
+                con.execute(
+                    "UPDATE boards SET readings_total = readings_total + ?, batches_total = batches_total + 1, "
+                    "last_batch_at = ? WHERE id = ?",
+                    (b.n, b.received_at, board_id),
+                )
             _insert_readings(
                 con,
                 b.n,
@@ -147,6 +163,7 @@ async def raw_pg_copy(
     heartbeat_every: int = 0,
     exchanges: bool = False,
     stats_text: str = "{}",
+    counts: bool = False,
 ) -> tuple[float, int]:
     """Seconds to COPY every batch (a transaction each) from ``POOL`` connections; the readings table's bytes."""
     import asyncpg
@@ -170,35 +187,60 @@ async def raw_pg_copy(
                     mine[0].board,
                 )
 
+        # $1 board, $2 epoch, $3 seq, $4 digest, $5 boot, $6 n, $7 received_at, $8 offset_dd; $9.. t1..t4.
+        ctes = []
+        if counts:
+            ctes += [
+                "s AS (INSERT INTO seq_reach (board_id, epoch, first_seq, reach) VALUES ($1, $2, $3, $3) "
+                "ON CONFLICT (board_id, epoch) DO UPDATE SET reach = excluded.reach)",
+                "c AS (UPDATE boards SET readings_total = readings_total + $6, batches_total = batches_total + 1, "
+                "last_batch_at = $7 WHERE id = $1)",
+            ]
+        insert_batch = (
+            "INSERT INTO batches (board_id, epoch, seq, digest, boot, n, received_at, offset_dd) "
+            "VALUES ($1, $2, $3, $4, $5, $6, $7, $8) RETURNING id"
+        )
+        clock_cte = "k AS (INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES ($1, $5, $9, $10, $11, $12))"
+        batch_sql = {
+            carries: (
+                "WITH " + ", ".join([*ctes, *([clock_cte] if carries else [])]) + " "
+                if ctes or carries
+                else ""
+            )
+            + insert_batch
+            for carries in (False, True)
+        }
+        # One implicit transaction that does not wait for the WAL flush (set_config local to it).
+        heartbeat_sql = {
+            carries: "WITH cfg AS (SELECT set_config('synchronous_commit', 'off', true))"
+            + (
+                ", k AS (INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES ($1, $3, $5, $6, $7, $8))"
+                if carries
+                else ""
+            )
+            + " INSERT INTO heartbeats (board_id, at, boot, stats) SELECT $1, $2, $3, $4 FROM cfg"
+            for carries in (False, True)
+        }
+
         async def board(board_id: int, mine: list[IngestBatch]) -> None:
             for kind, j, carries_clock in schedule(len(mine), heartbeat_every, exchanges):
                 b = mine[j]
+                t2 = b.received_at
+                exchange = (100.0 + j, t2, t2 + 0.001, 100.002 + j) if carries_clock else ()
                 async with pool.acquire() as con:
-                    if carries_clock:
-                        t2 = b.received_at
-                        await con.execute(
-                            "INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) "
-                            "VALUES ($1, $2, $3, $4, $5, $6)",
-                            board_id,
-                            b.boot,
-                            100.0 + j,
-                            t2,
-                            t2 + 0.001,
-                            100.002 + j,
-                        )
                     if kind == "heartbeat":
                         await con.execute(
-                            "INSERT INTO heartbeats (board_id, at, boot, stats) VALUES ($1, $2, $3, $4)",
+                            heartbeat_sql[carries_clock],
                             board_id,
                             b.received_at,
                             b.boot,
                             stats_text,
+                            *exchange,
                         )
                         continue
                     async with con.transaction():
                         bid = await con.fetchval(
-                            "INSERT INTO batches (board_id, epoch, seq, digest, boot, n, received_at, "
-                            "offset_dd) VALUES ($1, $2, $3, $4, $5, $6, $7, $8) RETURNING id",
+                            batch_sql[carries_clock],
                             board_id,
                             b.epoch,
                             b.seq,
@@ -207,6 +249,7 @@ async def raw_pg_copy(
                             b.n,
                             b.received_at,
                             _offset_dd(b),
+                            *exchange,
                         )
                         await con.copy_records_to_table(
                             "readings",

@@ -80,6 +80,7 @@ RAW_EXTRA: dict[str, Any] = {
     "heartbeat_every": HEARTBEAT_EVERY,
     "exchanges": True,
     "stats_text": json.dumps(HEARTBEAT_STATS),
+    "counts": True,
 }
 PG_URL = os.environ.get("LISTENPOST_TEST_PG", "postgresql://postgres@127.0.0.1:5432/test")
 
