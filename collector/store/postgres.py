@@ -118,6 +118,25 @@ _STORE_NEXT_BATCH = (
 )
 _COUNT_ONE_BATCH = _COUNT_BATCH.format(n="$1", gap="$2", at="$3", boot="$4", board="$5")
 
+# A heartbeat ($1 board, $2 at, $3 boot, $4 stats) and its boot noted on the board as of $5. Telemetry the
+# next heartbeat replaces: the transaction's commit need not wait for the WAL flush (set_config local to
+# the transaction, as SET LOCAL, in the same round trip).
+_HEARTBEAT_CTES = (
+    "WITH cfg AS (SELECT set_config('synchronous_commit', 'off', true)), "
+    "h AS (INSERT INTO heartbeats (board_id, at, boot, stats) SELECT $1, $2, $3, $4 FROM cfg)"
+)
+_HEARTBEAT_BOOT = (
+    " UPDATE boards SET last_boot = $3, last_boot_at = $5 WHERE id = $1 AND "
+    "(last_boot_at IS NULL OR last_boot_at <= $5)"
+)
+_HEARTBEAT = _HEARTBEAT_CTES + _HEARTBEAT_BOOT
+# ...with the clock sample ($6..$9: t1..t4) its request carried, of the same boot.
+_HEARTBEAT_WITH_SAMPLE = (
+    _HEARTBEAT_CTES
+    + ", k AS (INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES ($1, $3, $6, $7, $8, $9))"
+    + _HEARTBEAT_BOOT
+)
+
 # Errors that say "the database cannot do it now" (retry later), not "this request is wrong".
 _UNAVAILABLE: tuple[type[BaseException], ...] = (
     OSError,
@@ -718,21 +737,27 @@ class PostgresStore:
     async def add_heartbeat(self, hb: Heartbeat, clock: ClockSample | None = None) -> None:
         if clock is not None:
             check_clock_sample(clock)
+        stats = json.dumps(hb.stats, sort_keys=True)
         async with self._acquire() as con, con.transaction():
-            # Telemetry the next heartbeat replaces: the commit need not wait for the WAL flush.
-            await con.execute("SET LOCAL synchronous_commit = off")
             bid = await self._board_id(con, hb.board)
-            if clock is not None:
+            if clock is not None and clock.boot != hb.boot:
                 await _insert_clock_sample(con, bid, clock)
-            await con.execute(
-                "WITH h AS (INSERT INTO heartbeats (board_id, at, boot, stats) VALUES ($1, $2, $3, $4)) "
-                "UPDATE boards SET last_boot = $3, last_boot_at = $2 WHERE id = $1 AND "
-                "(last_boot_at IS NULL OR last_boot_at <= $2)",
-                bid,
-                hb.at,
-                hb.boot,
-                json.dumps(hb.stats, sort_keys=True),
-            )
+            if clock is not None and clock.boot == hb.boot:
+                # The exchange, the heartbeat and their boot on the board (the later of the two times).
+                await con.execute(
+                    _HEARTBEAT_WITH_SAMPLE,
+                    bid,
+                    hb.at,
+                    hb.boot,
+                    stats,
+                    max(hb.at, clock.t2),
+                    clock.t1,
+                    clock.t2,
+                    clock.t3,
+                    clock.t4,
+                )
+            else:
+                await con.execute(_HEARTBEAT, bid, hb.at, hb.boot, stats, hb.at)
             await con.execute(
                 "DELETE FROM heartbeats WHERE id IN (SELECT id FROM heartbeats WHERE board_id = $1 "
                 "ORDER BY at DESC, id DESC OFFSET $2)",
