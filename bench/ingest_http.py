@@ -8,18 +8,21 @@ gzip level 6, as agent/client/uplink.py does) with its ``t1`` and the previous c
 board clock of its own; after every ``HEARTBEAT_EVERY`` batches a heartbeat (``agent.heartbeat_seconds``
 / ``agent.flush_seconds`` of the defaults) with its own exchange. Tags are registered and boards
 enrolled through the admin API first. The server is the real collector app (``create_app`` with the
-monitor running, every ``MONITOR_S`` seconds) on a loopback TCP socket in this process, so the
-clients share its core: the figure is conservative.
+monitor running, every ``MONITOR_S`` seconds) on a loopback TCP socket in this process; the boards run
+in a process of their own (`boards_process`, one keep-alive connection each, `_Uplink`), as boards are
+hardware of their own. On a machine of two cores they still take CPU from the collector.
 
-  (a) HTTP → collector → SQLite store vs (b) the floor: the same rows, clock samples and heartbeats in
-      one transaction, readings in the store's statement shape (``bench._raw_baselines.raw_sqlite``);
+  (a) HTTP → collector → SQLite store vs (b) the floor: the same rows (clock samples, heartbeats, seq
+      spans and board counts too) in one transaction, readings in the store's statement shape
+      (``bench._raw_baselines.raw_sqlite``);
   (c) HTTP → collector → PostgreSQL store (pool of ``POOL``) vs (d) COPY of the same rows, one
-      transaction per batch from ``POOL`` connections (``bench._raw_baselines.raw_pg_copy``);
+      transaction per batch from ``POOL`` connections, clock samples in it and heartbeats without
+      waiting for the WAL flush, as the store keeps them (``bench._raw_baselines.raw_pg_copy``);
   (e) bytes on the wire per reading (batch request bodies as sent).
 
 The sides run interleaved (``_repeat.repeats(5)`` rounds, each on a fresh file or schema); each ratio
 is taken within a round and reported as median and spread.
-Targets (docs/design.md §7): (a) ≥ 50 % of (b) and ≥ 150,000 readings/s; (c) ≥ 50 % of (d); (e) ≤ 6.
+Targets: (a) ≥ 60 % of (b); (c) ≥ 60 % of (d); (e) ≤ 6.
 """
 
 from __future__ import annotations
@@ -389,7 +392,7 @@ def sqlite_part(
         "ingest_http",
         "sqlite HTTP/floor throughput (a/b)",
         [f / h for h, f in zip(got["http"], got["floor"], strict=True)],
-        ">= 0.50",
+        ">= 0.60",
     )
     print(f"        monitor rounds during (a): {rounds} (every {MONITOR_S:g} s)")
     print(f"wire    (e) bytes per reading (gzip'd)  : {statistics.median(sent) / n:.2f} (target <= 6)")
@@ -425,7 +428,7 @@ def pg_part(
         "ingest_http",
         "postgres HTTP/COPY throughput (c/d)",
         [c / h for h, c in zip(got["http"], got["copy"], strict=True)],
-        ">= 0.50",
+        ">= 0.60",
     )
 
 
