@@ -343,6 +343,7 @@ class Monitor:
         now = self.clock.time()
         holes = await self.store.seq_holes()
         current = {(h.board, h.epoch, h.first_seq, h.last_seq) for h in holes}
+        tails = {(h.board, h.epoch, h.first_seq, h.last_seq) for h in holes if h.tail}
         for key in list(self._hole_first_seen):
             if key not in current:
                 del self._hole_first_seen[key]  # filled in after all: a late batch, not a loss
@@ -354,6 +355,8 @@ class Monitor:
                 continue
             board, epoch, lo, hi = key
             detail = {"epoch": epoch, "first_seq": lo, "last_seq": hi, "batches": hi - lo + 1}
+            if key in tails:
+                detail["tail"] = True  # sealed on the board, never sent before it moved to a new epoch
             event = await self._store_event(
                 Event(now, board, "loss", detail, key=f"loss/{board}/{epoch}/{lo}-{hi}")
             )

@@ -215,6 +215,9 @@ class SeqHole:
     epoch: str
     first_seq: int
     last_seq: int
+    tail: bool = False
+    """After the last seq that arrived: batches the board's heartbeats said it had sealed before it moved
+    to a new epoch, and never sent."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -316,8 +319,9 @@ class Store(Protocol):
         """The newest telemetry row per tag (by board time within the newest batch)."""
 
     async def seq_holes(self, board: str | None = None) -> list[SeqHole]:
-        """Seq holes now, by board, epoch and first seq. Kept up to date by ingest (one small table), so
-        this costs the same however many batches are stored."""
+        """Seq holes now, by board, epoch and first seq: runs inside each epoch's span, and the tails of
+        epochs a board has left (`SeqHole.tail`). Kept up to date by ingest and heartbeats (two small
+        tables), so this costs the same however many batches are stored."""
 
     # clock, heartbeats, events
     async def add_clock_sample(self, sample: ClockSample) -> None: ...

@@ -82,6 +82,17 @@ def _WATCH(integer: str, real: str, text: str) -> str:  # noqa: N802 - reads as 
             raised boolean NOT NULL)"""
 
 
+# What each board's heartbeats say of its spool, so a tail of batches that never arrived is seen once the
+# board moved to a new epoch: ``seq_reach.announced`` is the highest seq a heartbeat said the spool had
+# sealed in that epoch; ``boards.spool_epoch`` the epoch of its newest heartbeat (common.TAIL_HOLES_SQL).
+def _SPOOL_TAILS(integer: str, real: str, text: str) -> tuple[str, ...]:  # noqa: N802 - reads as a constant
+    return (
+        f"ALTER TABLE seq_reach ADD COLUMN announced {integer}",
+        f"ALTER TABLE boards ADD COLUMN spool_epoch {text}",
+        f"ALTER TABLE boards ADD COLUMN spool_epoch_at {real}",
+    )
+
+
 HOLES_SCAN = """
 WITH iv AS (
     SELECT board_id, epoch, seq AS lo, seq AS hi FROM batches WHERE {board}
@@ -228,6 +239,7 @@ SQLITE: tuple[Migration, ...] = (
         ),
     ),
     Migration(5, "calibration watch state", (_WATCH("INTEGER", "REAL", "TEXT"),)),
+    Migration(6, "spool tails announced by heartbeats", _SPOOL_TAILS("INTEGER", "REAL", "TEXT")),
 )
 
 
@@ -371,6 +383,7 @@ POSTGRES: tuple[Migration, ...] = (
         ),
     ),
     Migration(5, "calibration watch state", (_WATCH("smallint", "double precision", "text"),)),
+    Migration(6, "spool tails announced by heartbeats", _SPOOL_TAILS("bigint", "double precision", "text")),
 )
 
 _VERSION_TABLE = "CREATE TABLE IF NOT EXISTS schema_version (version integer PRIMARY KEY, name text NOT NULL, applied_at text NOT NULL)"

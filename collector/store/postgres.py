@@ -65,6 +65,7 @@ from listenpost.collector.store.common import (
     HISTORY_TABLES,
     LATEST_TELEMETRY_SQL,
     OFFSET_CHANGES_SQL,
+    SEQ_HOLES_SQL,
     TELEMETRY_FIELDS,
     WATCH_COLS,
     OffsetChanges,
@@ -81,6 +82,7 @@ from listenpost.collector.store.common import (
     json_text,
     reading_tag_ids,
     seq_intervals,
+    spool_mark,
     watch_from_row,
     watch_row,
 )
@@ -653,13 +655,9 @@ class PostgresStore:
         return {r[0]: TagTelemetry(*r) for r in rows}
 
     async def seq_holes(self, board: str | None = None) -> list[SeqHole]:
-        cond, args = ("", ()) if board is None else ("WHERE b.name = $1", (board,))
-        rows = await self._fetch(
-            "SELECT b.name, h.epoch, h.first_seq, h.last_seq FROM seq_holes h JOIN boards b ON b.id = h.board_id "
-            f"{cond} ORDER BY b.name, h.epoch, h.first_seq",
-            *args,
-        )
-        return [SeqHole(*r) for r in rows]
+        cond, args = ("", ()) if board is None else ("AND b.name = $1", (board,))
+        rows = await self._fetch(SEQ_HOLES_SQL.format(board=cond), *args)
+        return [SeqHole(*r[:4], tail=bool(r[4])) for r in rows]
 
     # -- clock, heartbeats, events -----------------------------------------------------------------------
 
@@ -682,6 +680,7 @@ class PostgresStore:
     async def add_heartbeat(self, hb: Heartbeat, clock: ClockSample | None = None) -> None:
         if clock is not None:
             check_clock_sample(clock)
+        mark = spool_mark(hb.stats)
         async with self._acquire() as con, con.transaction():
             # Telemetry the next heartbeat replaces: the commit need not wait for the WAL flush.
             await con.execute("SET LOCAL synchronous_commit = off")
@@ -702,6 +701,8 @@ class PostgresStore:
                 self._heartbeat_history,
             )
             await _note_boot(con, bid, hb.boot, hb.at)
+            if mark is not None:
+                await _note_spool(con, bid, *mark, hb.at)
 
     async def heartbeats(self, board: str, since: float) -> list[Heartbeat]:
         rows = await self._fetch(
@@ -1096,6 +1097,27 @@ async def _account_seqs(con: asyncpg.Connection, board_id: int, epoch: str, lo: 
         first,
         reach,
     )
+
+
+async def _note_spool(
+    con: asyncpg.Connection, board_id: int, epoch: str, sealed: int | None, at: float
+) -> None:
+    """A heartbeat's spool figures: the board's current epoch, and how far that epoch's seqs reach."""
+    await con.execute(
+        "UPDATE boards SET spool_epoch = $1, spool_epoch_at = $2 WHERE id = $3 AND "
+        "(spool_epoch_at IS NULL OR spool_epoch_at <= $2)",
+        epoch,
+        at,
+        board_id,
+    )
+    if sealed is not None:  # only an epoch some batch opened: one that never sent any has no span to extend
+        await con.execute(
+            "UPDATE seq_reach SET announced = GREATEST(coalesce(announced, -1), $1) "
+            "WHERE board_id = $2 AND epoch = $3",
+            sealed,
+            board_id,
+            epoch,
+        )
 
 
 async def _note_boot(con: asyncpg.Connection, board_id: int, boot: str, at: float) -> None:

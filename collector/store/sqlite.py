@@ -64,6 +64,7 @@ from listenpost.collector.store.common import (
     HISTORY_TABLES,
     LATEST_TELEMETRY_SQL,
     OFFSET_CHANGES_SQL,
+    SEQ_HOLES_SQL,
     TELEMETRY_FIELDS,
     WATCH_COLS,
     OffsetChanges,
@@ -80,6 +81,7 @@ from listenpost.collector.store.common import (
     json_text,
     reading_tag_ids,
     seq_intervals,
+    spool_mark,
     watch_from_row,
     watch_row,
 )
@@ -704,13 +706,9 @@ class SqliteStore:
         return {r[0]: TagTelemetry(*r) for r in rows}
 
     async def seq_holes(self, board: str | None = None) -> list[SeqHole]:
-        cond, params = ("", ()) if board is None else ("WHERE b.name = ?", (board,))
-        rows = await self._query(
-            "SELECT b.name, h.epoch, h.first_seq, h.last_seq FROM seq_holes h JOIN boards b ON b.id = h.board_id "
-            f"{cond} ORDER BY b.name, h.epoch, h.first_seq",
-            params,
-        )
-        return [SeqHole(*r) for r in rows]
+        cond, params = ("", ()) if board is None else ("AND b.name = ?", (board, board))
+        rows = await self._query(SEQ_HOLES_SQL.format(board=cond), params)
+        return [SeqHole(*r[:4], tail=bool(r[4])) for r in rows]
 
     # -- clock, heartbeats, events -----------------------------------------------------------------------
 
@@ -750,7 +748,10 @@ class SqliteStore:
                 (bid, keep),
             )
             _note_boot(con, bid, hb.boot, hb.at)
+            if mark is not None:
+                _note_spool(con, bid, *mark, hb.at)
 
+        mark = spool_mark(hb.stats)
         await self._wtx(tx, durable=False)
 
     async def heartbeats(self, board: str, since: float) -> list[Heartbeat]:
@@ -1087,6 +1088,20 @@ def _account_seqs(con: sqlite3.Connection, board_id: int, epoch: str, lo: int, h
         "UPDATE seq_reach SET first_seq = ?, reach = ? WHERE board_id = ? AND epoch = ?",
         (first, reach, board_id, epoch),
     )
+
+
+def _note_spool(con: sqlite3.Connection, board_id: int, epoch: str, sealed: int | None, at: float) -> None:
+    """A heartbeat's spool figures: the board's current epoch, and how far that epoch's seqs reach."""
+    con.execute(
+        "UPDATE boards SET spool_epoch = ?, spool_epoch_at = ? WHERE id = ? AND "
+        "(spool_epoch_at IS NULL OR spool_epoch_at <= ?)",
+        (epoch, at, board_id, at),
+    )
+    if sealed is not None:  # only an epoch some batch opened: one that never sent any has no span to extend
+        con.execute(
+            "UPDATE seq_reach SET announced = max(coalesce(announced, -1), ?) WHERE board_id = ? AND epoch = ?",
+            (sealed, board_id, epoch),
+        )
 
 
 def _note_boot(con: sqlite3.Connection, board_id: int, boot: str, at: float) -> None:

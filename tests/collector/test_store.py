@@ -414,6 +414,55 @@ async def test_seq_holes_match_a_plain_model(store):
     assert await store.seq_holes("g5-a") == expected
 
 
+def _spool(epoch: str, next_seq, **more) -> dict:
+    """A heartbeat's stats as the agent sends them (agent/service.py ``stats``), spool part only."""
+    return {"spool": {"epoch": epoch, "next_seq": next_seq, "batches": 0, **more}}
+
+
+async def test_a_tail_left_behind_by_a_new_epoch_is_a_hole(store):
+    """Seqs a heartbeat announced in an epoch the board has left, never sent, are a tail hole once a batch
+    of the new epoch arrived; late batches shrink it; malformed or older heartbeats announce nothing."""
+    old, new, unseen = "a1b2c3d4e5f60718", "0badc0ffee0ddf00", "5eed5eed5eed5eed"
+    await add_boards(store, "u2-a", "g0-a")
+    for seq in range(4):
+        await store.ingest(make_batch("u2-a", seq, epoch=old))
+    t = 1_800_000_000.0
+    await store.add_heartbeat(Heartbeat("u2-a", t, "boot-1", _spool(old, 7)))  # sealed 0..6
+    assert await store.seq_holes() == []  # still its epoch: 4..6 are on their way
+    await store.add_heartbeat(Heartbeat("u2-a", t + 30, "boot-2", _spool(new, 1)))
+    assert await store.seq_holes() == []  # no batch of the new epoch yet: the old one may still drain
+    await store.ingest(make_batch("u2-a", 4, epoch=old))
+    await store.ingest(make_batch("u2-a", 0, epoch=new))
+    assert await store.seq_holes() == [SeqHole("u2-a", old, 5, 6, tail=True)]
+    await store.ingest(make_batch("u2-a", 5, epoch=old))  # a late one after all
+    assert await store.seq_holes("u2-a") == [SeqHole("u2-a", old, 6, 6, tail=True)]
+    # Hostile or foreign figures change nothing; the heartbeat itself is still stored.
+    for stats in (
+        _spool("NOT-AN-EPOCH", 99),
+        _spool(old, "99"),
+        _spool(old, True),
+        _spool(old, -1),
+        _spool(old, 2**60),
+        _spool(old, 99.0),
+        {"spool": ["epoch", old]},
+        {"spool_depth": 3},
+    ):
+        await store.add_heartbeat(Heartbeat("u2-a", t + 40, "boot-2", stats))
+    # An older heartbeat arriving late does not take the board back to the old epoch.
+    await store.add_heartbeat(Heartbeat("u2-a", t + 10, "boot-1", _spool(old, 9)))
+    assert await store.seq_holes("u2-a") == [SeqHole("u2-a", old, 6, 8, tail=True)]
+    assert len(await store.heartbeats("u2-a", since=t + 40)) == 8
+    # An epoch no batch ever opened has no span to extend; another board is not touched.
+    await store.ingest(make_batch("g0-a", 0, epoch=old))
+    await store.add_heartbeat(Heartbeat("g0-a", t, "boot-1", _spool(unseen, 5)))
+    await store.ingest(make_batch("g0-a", 0, epoch=unseen))
+    assert await store.seq_holes("g0-a") == []
+    # Every batch of the tail that arrives closes it (a dead-lettered one would be a gap record).
+    gap = {"first_seq": 6, "last_seq": 8, "readings": 30, "reason": "dead_letter", "epoch": old}
+    assert (await store.ingest(make_batch("u2-a", 1, n=0, epoch=new, gap=gap))).status is IngestStatus.STORED
+    assert await store.seq_holes() == []
+
+
 # -- clock samples, heartbeats, events, telemetry ------------------------------------------------------------
 
 
@@ -669,7 +718,7 @@ async def test_migrations_from_empty_and_from_an_older_version(store_factory: St
     await add_boards(store, "g0-a")
     assert (await store.ingest(make_batch("g0-a", 0))).status is IngestStatus.STORED  # v2 tables exist
     await store.close()
-    assert await _raw_migrate(store_factory) == mig.latest(_versions(store_factory)) == 5
+    assert await _raw_migrate(store_factory) == mig.latest(_versions(store_factory)) == 6
 
 
 async def test_newer_schema_is_refused(store_factory: StoreFactory):
@@ -677,7 +726,7 @@ async def test_newer_schema_is_refused(store_factory: StoreFactory):
     await _raw_migrate(
         store_factory, sql="INSERT INTO schema_version (version, name, applied_at) VALUES (9, 'future', 'x')"
     )
-    with pytest.raises(SchemaTooNew, match="version 9 is newer than this listenpost supports \\(5\\)"):
+    with pytest.raises(SchemaTooNew, match="version 9 is newer than this listenpost supports \\(6\\)"):
         await store_factory.open()
 
 
