@@ -28,7 +28,7 @@ from tests.collector.conftest import StoreFactory, require_pg
 from tests.collector.test_api import batch_body, enrolled, import_tags, make_client, readings
 
 
-async def until(cond: Callable[[], bool], what: str, seconds: float = 5.0) -> None:
+async def until(cond: Callable[[], bool], what: str, seconds: float = 30.0) -> None:
     """Poll ``cond`` while real loopback I/O finishes; fail naming ``what`` after ``seconds``."""
     loop = asyncio.get_running_loop()
     end = loop.time() + seconds
