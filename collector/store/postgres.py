@@ -276,10 +276,12 @@ def partition_name(day: int) -> str:
 
 
 def _day_of(name: str) -> int | None:
+    """The UTC day a ``readings_YYYYMMDD`` name stands for; None for any other name."""
     m = _DAY_NAME.fullmatch(name)
-    if m is None:
+    try:
+        return None if m is None else (datetime.date(*map(int, m.groups())) - _EPOCH_DATE).days
+    except ValueError:  # eight digits that are no date
         return None
-    return (datetime.date(*map(int, m.groups())) - _EPOCH_DATE).days
 
 
 async def _partition_days(con: asyncpg.Connection) -> dict[int, str]:
@@ -288,9 +290,8 @@ async def _partition_days(con: asyncpg.Connection) -> dict[int, str]:
         "SELECT c.relname FROM pg_inherits i JOIN pg_class c ON c.oid = i.inhrelid "
         "WHERE i.inhparent = 'readings'::regclass"
     )
-    days = {_day_of(r[0]): r[0] for r in rows}
-    days.pop(None, None)
-    return days  # type: ignore[return-value]
+    named = ((_day_of(r[0]), r[0]) for r in rows)
+    return {d: name for d, name in named if d is not None}
 
 
 def _count(status: str) -> int:
