@@ -906,6 +906,23 @@ async def test_a_day_another_collector_dropped_is_made_again_at_ingest(pg_factor
     assert len((await a.readings(-np.inf, np.inf)).t_collector) == 3
 
 
+async def test_day_ddl_behind_a_long_reader_gives_way_and_goes_through_afterwards(pg_factory: StoreFactory):
+    """While a transaction reads readings (an export, say), making or detaching a day cannot get its lock:
+    the pass makes and drops nothing, raises nothing and counts nothing; the next pass does it all."""
+    store = await pg_factory.open(lock_timeout_s=0.2)
+    await add_boards(store, "g0-a")
+    await store.ingest(timed_batch("g0-a", 0, MIDNIGHT - DAY + np.arange(30.0)))
+    await store.ingest(timed_batch("g0-a", 1, MIDNIGHT + np.arange(5.0)))
+    async with _admin(pg_factory) as con, con.transaction():
+        assert await con.fetchval("SELECT count(*) FROM readings") == 35  # holds its lock on readings
+        assert await store.ensure_reading_days(MIDNIGHT + DAY, MIDNIGHT + DAY) == 0
+        assert await store.delete_readings_before(MIDNIGHT) == 0
+    assert await _days(pg_factory) == ["readings_20270114", "readings_20270115"]
+    assert await store.ensure_reading_days(MIDNIGHT + DAY, MIDNIGHT + DAY) == 1
+    assert await store.delete_readings_before(MIDNIGHT) == 30
+    assert await _days(pg_factory) == ["readings_20270115", "readings_20270116"]
+
+
 def _relations(plan) -> set[str]:
     """Every table an EXPLAIN (FORMAT JSON) plan reads."""
     if isinstance(plan, list):
