@@ -437,6 +437,8 @@ class Monitor:
         if not self._retention_more:
             self._last_retention = now
         s, chunk = self.settings, self.settings.retention_chunk
+        # Today's and tomorrow's day partitions (PostgreSQL), made here a day ahead so ingest finds them.
+        await self.store.ensure_reading_days(now, now + 86400.0)
         more = False
         if s.retention_days > 0:
             report.deleted = await self.store.delete_readings_before(

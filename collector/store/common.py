@@ -138,6 +138,17 @@ def constraint_field(constraint: str) -> str:
     return constraint.removesuffix("_range").removesuffix("_non_negative").removesuffix("_finite") or "batch"
 
 
+def check_chunks(chunk: int, max_chunks: int | None) -> None:
+    """
+    Raises:
+        ValueError: ``chunk`` or ``max_chunks`` below 1.
+    """
+    if chunk < 1:
+        raise ValueError(f"chunk must be >= 1, got {chunk!r}")
+    if max_chunks is not None and max_chunks < 1:
+        raise ValueError(f"max_chunks must be >= 1 or None, got {max_chunks!r}")
+
+
 async def delete_in_chunks(
     delete_chunk: Callable[[str, str], Awaitable[int]], chunk: int, max_chunks: int | None
 ) -> int:
@@ -156,10 +167,7 @@ async def delete_in_chunks(
     Raises:
         ValueError: ``chunk`` or ``max_chunks`` below 1.
     """
-    if chunk < 1:
-        raise ValueError(f"chunk must be >= 1, got {chunk!r}")
-    if max_chunks is not None and max_chunks < 1:
-        raise ValueError(f"max_chunks must be >= 1 or None, got {max_chunks!r}")
+    check_chunks(chunk, max_chunks)
     total = 0
     for table, col, count in RETENTION_TABLES:
         for _ in itertools.count() if max_chunks is None else range(max_chunks):
@@ -186,10 +194,7 @@ async def delete_history_in_chunks(
     Raises:
         ValueError: ``chunk`` or ``max_chunks`` below 1, or a table that is not in `HISTORY_TABLES`.
     """
-    if chunk < 1:
-        raise ValueError(f"chunk must be >= 1, got {chunk!r}")
-    if max_chunks is not None and max_chunks < 1:
-        raise ValueError(f"max_chunks must be >= 1 or None, got {max_chunks!r}")
+    check_chunks(chunk, max_chunks)
     unknown = set(cuts) - HISTORY_TABLES.keys()
     if unknown:
         raise ValueError(f"no history retention for {sorted(unknown)}")

@@ -925,6 +925,9 @@ class SqliteStore:
             stop[0] = True  # a cancelled caller: the thread stops before its next chunk
             executor.shutdown(wait=False)
 
+    async def ensure_reading_days(self, t_from: float, t_to: float) -> int:
+        return 0  # one readings table: no day partitions to make
+
     async def delete_readings_before(
         self, t: float, chunk: int = 10_000, max_chunks: int | None = None
     ) -> int:
