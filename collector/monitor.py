@@ -125,8 +125,6 @@ class Monitor:
         self.leading = False
         """This process proved it held the lock at its latest round and has not stood down since."""
         self.webhook_failed = 0
-        self.watch: Any = None
-        """The calibration watch (collector/models/calibration.py), made at the first watch step."""
         self._last_watch = float("-inf")
 
     # ------------------------------------------------------------ life cycle
@@ -383,22 +381,21 @@ class Monitor:
             return
         if plan is None or not plan.reference_tags:
             return
-        if self.watch is None:
-            # Go on from the stored memory: a level learned now might already carry a shift.
-            self.watch = CalibrationWatch(saved=await self.store.watch_baselines())
-        rows = await self.store.readings(
-            now - self.watch.window_s, now, tags=[t.id for t in plan.reference_tags]
-        )
+        # The watch's memory is the store's, read every step (one row per board): a restarted collector,
+        # a new leader, or this one leading again after another did, goes on from what was stored last,
+        # never from a level learned now that might already carry a shift.
+        watch = CalibrationWatch(saved=await self.store.watch_baselines())
+        rows = await self.store.readings(now - watch.window_s, now, tags=[t.id for t in plan.reference_tags])
         raw = (rows.rssi_dd.astype(float) - rows.offset_dd.astype(float)) / 10.0
         levels = pair_medians(rows.board, rows.tag, raw)
         markers = {b.name: b.offset_db for b in await self.store.list_boards(include_retired=False)}
-        for shift in self.watch.update(now, levels, markers):
+        for shift in watch.update(now, levels, markers):
             detail = {
                 "shift_db": round(shift.shift_db, 1),
                 "tags": shift.tags,
                 "since": shift.since,
-                "threshold_db": self.watch.threshold_db,
-                "window_s": self.watch.window_s,
+                "threshold_db": watch.threshold_db,
+                "window_s": watch.window_s,
             }
             event = await self._store_event(
                 Event(
@@ -415,7 +412,7 @@ class Monitor:
             log.warning("calibration_shift", board=shift.board, **detail)
         # Kept after the events: if this write fails, the next round (or leader) raises the same shift
         # again from the stored start of it, under the same event key, so it is stored once.
-        if changed := self.watch.changed():
+        if changed := watch.changed():
             await self.store.set_watch_baselines(changed)
 
     async def _store_event(self, event: Event) -> Event | None:
