@@ -232,13 +232,13 @@ class ReplaySource:
     """
 
     YIELD_EVERY = 256
-    PACING_GRAIN_S = 1.0
+    PACING_GRAIN_S = 2.0
     """
     Shortest clock time between two wake-ups of a paced replay, seconds (the most an advert is late).
-    A wake-up costs about 0.5 ms of CPU on a shared core (the event loop's turn, then caches refilled
-    for the pipeline), some 80 adverts' worth of the pipeline: at 200 adverts/s a quarter-second grain
-    doubled the CPU per advert, a one-second grain adds about half (bench/agent_live.py). One second
-    stays well inside the spool's 5 s flush, and board times do not depend on it.
+    A wake-up costs some 0.5 ms of CPU on a shared core (the event loop's turn, then the pipeline on
+    cold caches), as much as 80 adverts through the pipeline. At 206 adverts/s the live replay's CPU
+    per advert against the dry run's is about 2.5 at a 0.25 s grain, 1.5 at 1 s and 1.3 at 2 s
+    (bench/agent_live.py). Two seconds stay inside the spool's 5 s flush; board times never depend on it.
     """
 
     def __init__(self, files: Sequence[ReplayFile], clock: Clock, speed: float = 1.0) -> None:
@@ -276,8 +276,8 @@ class ReplaySource:
 
     async def batches(self) -> AsyncIterator[list[Advert]]:
         """
-        The adverts in order, as the groups that are due together: one list per wake-up when paced,
-        lists of at most `YIELD_EVERY` with a loop turn between them at speed 0 (or when behind).
+        The adverts in order, as the groups that are due together: what one wake-up hands over when
+        paced, everything at speed 0; at most `YIELD_EVERY` per list, with a loop turn after a full one.
 
         The clock is read once per wake-up and once after each list is handed over (the consumer's
         work took time), never per advert; board times are the recorded ones.

@@ -328,10 +328,11 @@ TIMES = [10.0, 10.5, 12.0, 12.0, 15.0]
 @pytest.mark.parametrize(
     ("speed", "offsets", "sleeps"),
     [
-        (1.0, [0.0, 0.5, 2.0, 2.0, 5.0], 3),
-        # due at 0.2, 0.2 and 0.5, but the wake-up at 0.05 allows the next one only a grain (1 s) later,
+        # due at 2.0, but the wake-up at 0.5 allows the next one only a grain (2 s) later
+        (1.0, [0.0, 0.5, 2.5, 2.5, 5.0], 3),
+        # due at 0.2, 0.2 and 0.5, but the wake-up at 0.05 allows the next one only a grain later,
         # which hands over all three
-        (10.0, [0.0, 0.05, 1.05, 1.05, 1.05], 2),
+        (10.0, [0.0, 0.05, 2.05, 2.05, 2.05], 2),
         (0.0, [0.0, 0.0, 0.0, 0.0, 0.0], 0),
     ],
 )
@@ -340,7 +341,7 @@ async def test_pacing_on_virtual_clock(tmp_path, speed, offsets, sleeps):
     At speed S each advert comes (t_i - t_0)/S of clock time after the first, or when due sooner than
     a grain after the last wake-up, one grain after that wake-up; speed 0 does not wait.
     """
-    assert ReplaySource.PACING_GRAIN_S == 1.0  # the offsets below are worked out for it
+    assert ReplaySource.PACING_GRAIN_S == 2.0  # the offsets below are worked out for it
     p = tmp_path / "r.jsonl"
     _write(p, [_adv(t, i) for i, t in enumerate(TIMES)])
     clock = CountingClock()
@@ -403,8 +404,8 @@ async def test_several_files_play_in_order_including_btsnoop(tmp_path):
         w.write_advert(1_700_000_000_500_000, _adv(0, 4))
     clock = VirtualClock(start=0.0)
     got = await _run_paced(open_replay([rec, cap], clock, 1.0), clock, 5)
-    # the last is due at 1.5, but the wake-up at 1.0 allows the next one only a grain (1 s) later
-    assert [g[0] for g in got] == pytest.approx([0.0, 1.0, 1.0, 2.0])
+    # the last is due at 1.5, but the wake-up at 1.0 allows the next one only a grain (2 s) later
+    assert [g[0] for g in got] == pytest.approx([0.0, 1.0, 1.0, 3.0])
     assert [g[1] for g in got] == [100_000_000_000, 101_000_000_000, 0, 500_000_000]
 
 
@@ -505,7 +506,8 @@ async def test_batches_hand_each_advert_over_once_in_order_as_one_by_one(tmp_pat
     assert [a for _, batch in got for a in batch] == recorded
     assert src.count == n
     grain = ReplaySource.PACING_GRAIN_S
-    assert len(got) <= span / grain + 2 and len(clock.sleeps) <= span / grain + 2
+    assert len(clock.sleeps) <= span / grain + 2  # wake-ups; a batch is split past YIELD_EVERY
+    assert max(len(batch) for _, batch in got) <= ReplaySource.YIELD_EVERY
     for at, batch in got:
         for a in batch:
             due = 1000.0 + (a.t_mono_ns / 1e9 - times[0])
