@@ -237,7 +237,7 @@ class ReplaySource:
     Shortest clock time between two wake-ups of a paced replay, seconds (the most an advert is late).
     A wake-up costs some 0.5 ms of CPU on a shared core (the event loop's turn, then the pipeline on
     cold caches), as much as 80 adverts through the pipeline. At 206 adverts/s the live replay's CPU
-    per advert against the dry run's is about 2.5 at a 0.25 s grain, 1.5 at 1 s and 1.3 at 2 s
+    per advert against the dry run's measured 2.2-2.6 at a 0.25 s grain, 1.5 at 1 s and 1.2-1.3 at 2 s
     (bench/agent_live.py). Two seconds stay inside the spool's 5 s flush; board times never depend on it.
     """
 
