@@ -38,7 +38,7 @@ from listenpost.agent.client.uplink import ExchangeLog, Uplink, UplinkState
 from listenpost.agent.config import AgentConfig, load_agent_config
 from listenpost.agent.pipeline import Pipeline, build_pipeline
 from listenpost.agent.pipeline.tagrate import TagRates
-from listenpost.agent.sources import open_source, replay_board_clock
+from listenpost.agent.sources import batches_of, open_source, replay_board_clock
 from listenpost.agent.spool import Spool
 from listenpost.core.backoff import capped_exponential
 from listenpost.core.clock import Clock, SystemClock
@@ -335,12 +335,12 @@ class AgentService:
                 self.source_error = None
                 spool = self.spool
                 assert spool is not None
-                async for advert in self.source.adverts():
+                async for batch in batches_of(self.source):
                     # Read the attribute each time: a config with new rules swaps the pipeline.
-                    r = self.pipeline.process(advert)  # type: ignore[union-attr]
-                    if r is not None:
-                        spool.add(r)
-                        self.tag_rates.note(r.tag)
+                    readings = self.pipeline.process_batch(batch)  # type: ignore[union-attr]
+                    if readings:
+                        spool.add_many(readings)
+                        self.tag_rates.note_readings(readings)
                     failures = 0
                 self.source_state = SourceState.ENDED
                 log.info("source_ended", adverts=self.pipeline.stats()["adverts_total"])  # type: ignore[union-attr]

@@ -171,6 +171,15 @@ async def raw_pg_copy(
     from listenpost.collector.store.postgres import PostgresStore
 
     migrated = await PostgresStore.open(url, schema=schema, max_size=1)  # the store's schema, migrated
+    times = [
+        t
+        for mine in per_board
+        for b in mine
+        if b.n
+        for t in (float(b.t_collector.min()), float(b.t_collector.max()))
+    ]
+    if times:  # the day partitions the COPYs below go to (the store makes them at ingest)
+        await migrated.ensure_reading_days(min(times), max(times))
     await migrated.close()
     settings = {"search_path": schema, "synchronous_commit": "on"}
     pool = await asyncpg.create_pool(url, min_size=POOL, max_size=POOL, server_settings=settings, timeout=30)
@@ -276,7 +285,11 @@ async def raw_pg_copy(
         await asyncio.gather(*[board(i, mine) for i, mine in enumerate(per_board, 1)])
         elapsed = time.perf_counter() - t
         async with pool.acquire() as con:
-            size = await con.fetchval("SELECT pg_total_relation_size($1::regclass)", f'"{schema}".readings')
+            # readings is partitioned by day: its bytes are its partitions'.
+            size = await con.fetchval(
+                "SELECT coalesce(sum(pg_total_relation_size(relid)), 0) FROM pg_partition_tree($1::regclass)",
+                f'"{schema}".readings',
+            )
         return elapsed, int(size)
     finally:
         await pool.close()

@@ -118,6 +118,7 @@ async def _fill(store: Any, boards: int, span: float | None) -> dict[str, int]:
 
         await store._write(job)
     else:
+        await store.ensure_reading_days(T_END - span, T_END)  # the day partitions the readings go to
         async with store._acquire() as con:
             async with con.transaction():
                 for table, sql in _INSERT.items():

@@ -64,6 +64,9 @@ def create_app(
         app[STORE] = await open_store(settings.resolved_db_url()) if own else store  # type: ignore[assignment]
         log.info("collector_started", store=app[STORE].url.split("@")[-1], state_dir=settings.state_dir)
         try:
+            # Today's and tomorrow's day partitions (PostgreSQL) before the first batch; the monitor keeps
+            # them a day ahead from then on.
+            await app[STORE].ensure_reading_days(clock.time(), clock.time() + 86400.0)
             yield
         finally:
             if own:

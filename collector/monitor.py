@@ -125,8 +125,6 @@ class Monitor:
         self.leading = False
         """This process proved it held the lock at its latest round and has not stood down since."""
         self.webhook_failed = 0
-        self.watch: Any = None
-        """The calibration watch (collector/models/calibration.py), made at the first watch step."""
         self._last_watch = float("-inf")
 
     # ------------------------------------------------------------ life cycle
@@ -343,6 +341,7 @@ class Monitor:
         now = self.clock.time()
         holes = await self.store.seq_holes()
         current = {(h.board, h.epoch, h.first_seq, h.last_seq) for h in holes}
+        tails = {(h.board, h.epoch, h.first_seq, h.last_seq) for h in holes if h.tail}
         for key in list(self._hole_first_seen):
             if key not in current:
                 del self._hole_first_seen[key]  # filled in after all: a late batch, not a loss
@@ -354,6 +353,8 @@ class Monitor:
                 continue
             board, epoch, lo, hi = key
             detail = {"epoch": epoch, "first_seq": lo, "last_seq": hi, "batches": hi - lo + 1}
+            if key in tails:
+                detail["tail"] = True  # sealed on the board, never sent before it moved to a new epoch
             event = await self._store_event(
                 Event(now, board, "loss", detail, key=f"loss/{board}/{epoch}/{lo}-{hi}")
             )
@@ -380,22 +381,21 @@ class Monitor:
             return
         if plan is None or not plan.reference_tags:
             return
-        if self.watch is None:
-            # Go on from the stored memory: a level learned now might already carry a shift.
-            self.watch = CalibrationWatch(saved=await self.store.watch_baselines())
-        rows = await self.store.readings(
-            now - self.watch.window_s, now, tags=[t.id for t in plan.reference_tags]
-        )
+        # The watch's memory is the store's, read every step (one row per board): a restarted collector,
+        # a new leader, or this one leading again after another did, goes on from what was stored last,
+        # never from a level learned now that might already carry a shift.
+        watch = CalibrationWatch(saved=await self.store.watch_baselines())
+        rows = await self.store.readings(now - watch.window_s, now, tags=[t.id for t in plan.reference_tags])
         raw = (rows.rssi_dd.astype(float) - rows.offset_dd.astype(float)) / 10.0
         levels = pair_medians(rows.board, rows.tag, raw)
         markers = {b.name: b.offset_db for b in await self.store.list_boards(include_retired=False)}
-        for shift in self.watch.update(now, levels, markers):
+        for shift in watch.update(now, levels, markers):
             detail = {
                 "shift_db": round(shift.shift_db, 1),
                 "tags": shift.tags,
                 "since": shift.since,
-                "threshold_db": self.watch.threshold_db,
-                "window_s": self.watch.window_s,
+                "threshold_db": watch.threshold_db,
+                "window_s": watch.window_s,
             }
             event = await self._store_event(
                 Event(
@@ -412,7 +412,7 @@ class Monitor:
             log.warning("calibration_shift", board=shift.board, **detail)
         # Kept after the events: if this write fails, the next round (or leader) raises the same shift
         # again from the stored start of it, under the same event key, so it is stored once.
-        if changed := self.watch.changed():
+        if changed := watch.changed():
             await self.store.set_watch_baselines(changed)
 
     async def _store_event(self, event: Event) -> Event | None:
@@ -434,6 +434,8 @@ class Monitor:
         if not self._retention_more:
             self._last_retention = now
         s, chunk = self.settings, self.settings.retention_chunk
+        # Today's and tomorrow's day partitions (PostgreSQL), made here a day ahead so ingest finds them.
+        await self.store.ensure_reading_days(now, now + 86400.0)
         more = False
         if s.retention_days > 0:
             report.deleted = await self.store.delete_readings_before(

@@ -671,6 +671,8 @@ def event_text(kind: str, detail: dict[str, Any]) -> str:
         text = f"became {new}" + (f" (was {old})" if old else "")
     elif kind == "loss" and "first_seq" in d:
         text = f"batches {d['first_seq']}–{d['last_seq']} lost"
+        if d.get("tail"):
+            text += " (sealed on the board, never sent before its spool started a new epoch)"
     elif kind == "calibration_shift" and isinstance(d.get("shift_db"), int | float):
         text = f"reference tags heard {d['shift_db']:+.1f} dB from their level at calibration"
     else:

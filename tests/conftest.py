@@ -17,6 +17,26 @@ def pytest_addoption(parser: pytest.Parser) -> None:
     parser.addoption("--ble-adapter", default=None, help="run live-radio tests on this adapter (e.g. hci0)")
 
 
+# The modules that take longest, started first: `make test` hands whole modules to two workers in
+# collection order (``--dist loadscope``), so a long module collected last would run alone at the end.
+LONG_MODULES = (
+    "tests/packaging/test_wheel.py",  # a wheel, two fresh environments and the demo
+    "tests/collector/test_report.py",
+    "tests/collector/test_wheelhouse.py",
+    "tests/collector/test_openapi.py",
+    "tests/collector/test_leadership.py",
+    "tests/collector/test_calibration.py",
+)
+
+
+def pytest_collection_modifyitems(items: list[pytest.Item]) -> None:
+    def rank(item: pytest.Item) -> int:
+        path = item.nodeid.split("::")[0]
+        return LONG_MODULES.index(path) if path in LONG_MODULES else len(LONG_MODULES)
+
+    items.sort(key=rank)  # stable: the order within each module and among the rest stays
+
+
 def require_tool(name: str) -> str:
     """
     The path of a command-line tool the test checks against; skip without it locally, but fail when

@@ -17,7 +17,7 @@ RATIO = re.compile(
     r"ratio .+ = \d+\.\d\d median of (\d+) \(min-max \d+\.\d\d-\d+\.\d\d, IQR \d+\.\d\d-\d+\.\d\d(; target .+)?\)"
 )
 EXPECTED = {
-    "agent_live": 2,
+    "agent_live": 3,
     "agent_pipeline": 1,
     "ingest_store": 2,  # the PostgreSQL one only with a server
     "ingest_http": 2,

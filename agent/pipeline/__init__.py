@@ -21,6 +21,7 @@ from typing import Any
 from listenpost.agent.pipeline.calibrate import Calibrate
 from listenpost.agent.pipeline.decode import Decoder
 from listenpost.agent.pipeline.filter import TagFilter
+from listenpost.agent.sources import batches_of
 from listenpost.core.records import Advert, Reading, Source, Stage
 from listenpost.core.settings import DecodeRule
 
@@ -55,12 +56,13 @@ class Pipeline:
         stages: run in order on each reading; a stage returning ``None`` drops it.
     """
 
-    __slots__ = ("decoder", "stages", "adverts_total", "readings_total", "_stages_tuple")
+    __slots__ = ("decoder", "stages", "adverts_total", "readings_total", "_stages_tuple", "_calls")
 
     def __init__(self, decoder: Decoder, stages: Sequence[Stage]) -> None:
         self.decoder = decoder
         self.stages = list(stages)
         self._stages_tuple = tuple(self.stages)
+        self._calls = (_direct(decoder), tuple(_direct(st) for st in self._stages_tuple))
         self.adverts_total = 0
         self.readings_total = 0
 
@@ -98,41 +100,46 @@ class Pipeline:
 
     def process(self, advert: Advert) -> Reading | None:
         """Run one advert through decode and every stage; ``None`` if anything dropped it."""
-        self.adverts_total += 1
-        r = self.decoder(advert)
-        if r is None:
-            return None
-        for stage in self._stages_tuple:
-            r = stage(r)
+        out = self.process_batch((advert,))
+        return out[0] if out else None
+
+    def process_batch(self, adverts: Sequence[Advert]) -> list[Reading]:
+        """The readings that survive decode and every stage, in the adverts' order.
+
+        A source hands over what is due per wake-up; one call per batch keeps the loop below tight.
+        """
+        decoder, stages = self._calls
+        out: list[Reading] = []
+        append = out.append
+        self.adverts_total += len(adverts)
+        for advert in adverts:
+            r = decoder(advert)
             if r is None:
-                return None
-        self.readings_total += 1
-        return r
+                continue
+            for stage in stages:
+                r = stage(r)
+                if r is None:
+                    break
+            else:
+                append(r)
+        self.readings_total += len(out)
+        return out
 
     async def run(self, source: Source, sink: Sink) -> None:
-        """Feed every advert of ``source`` through `process` and each surviving reading to ``sink``.
+        """Feed every advert of ``source`` through the pipeline, batch by batch, and each surviving
+        reading to ``sink``.
 
         Returns when the source ends; cancel the task to stop a radio source.
         """
-        # process() inlined: this loop runs once per advertisement heard.
-        decoder, stages = _direct(self.decoder), tuple(_direct(s) for s in self._stages_tuple)
         n = 0
-        async for advert in source.adverts():
-            self.adverts_total += 1
-            n += 1
-            r = decoder(advert)
-            if r is not None:
-                for stage in stages:
-                    r = stage(r)
-                    if r is None:
-                        break
-                else:
-                    self.readings_total += 1
-                    out = sink(r)
-                    if out is not None and inspect.isawaitable(out):
-                        await out
+        async for batch in batches_of(source):
+            for r in self.process_batch(batch):
+                out = sink(r)
+                if out is not None and inspect.isawaitable(out):
+                    await out
+            n += len(batch)
             if n >= _YIELD_EVERY:
-                # A file source at full speed never blocks; give heartbeats and uplink their turn.
+                # A source that never blocks (a file at full speed): give heartbeats and uplink their turn.
                 n = 0
                 await asyncio.sleep(0)
 

@@ -12,11 +12,12 @@ unregistered devices, leaves the board.
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 
 from listenpost.agent.sources import RateMeter
 from listenpost.core.clock import Clock
+from listenpost.core.records import Reading
 
 WINDOW_S = 60.0
 """Length of the sliding window, seconds."""
@@ -85,6 +86,10 @@ class TagRates:
     def note(self, tag: str) -> None:
         """Count one reading of ``tag`` (a registered tag: the pipeline's output) now."""
         self._meter.note(tag, self.clock.monotonic())
+
+    def note_readings(self, readings: Iterable[Reading]) -> None:
+        """Count the readings of one batch, all at one reading of the clock (they came out together)."""
+        self._meter.note_many((r.tag for r in readings), self.clock.monotonic())
 
     def rates(self) -> dict[str, float]:
         """Readings per second of each tag heard in the window. Stays on the board."""

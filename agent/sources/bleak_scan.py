@@ -46,7 +46,7 @@ from bleak.exc import (
     BleakError,
 )
 
-from listenpost.agent.sources import RateMeter
+from listenpost.agent.sources import RateMeter, one_by_one
 from listenpost.core.backoff import half_jitter
 from listenpost.core.clock import Clock, with_timeout
 from listenpost.core.errors import SourceReason, SourceUnavailable
@@ -467,15 +467,23 @@ class BleakSource:
             return path == f"/org/bluez/{self.adapter}"
         return path.startswith("/org/bluez/hci") and path[len("/org/bluez/hci") :].isdigit()
 
-    async def adverts(self) -> AsyncIterator[Advert]:
+    def adverts(self) -> AsyncIterator[Advert]:
+        """The same adverts as `batches`, one at a time."""
+        return one_by_one(self.batches())
+
+    async def batches(self) -> AsyncIterator[list[Advert]]:
         """
-        Yield adverts until cancelled.
+        Yield adverts until cancelled, as lists of what queued up since the last turn.
+
+        BlueZ hands over one advert per D-Bus signal and bleak calls back once per advert, so each
+        costs a loop turn by nature; only adverts already queued when the consumer comes back
+        (a burst of signals in one read) travel together.
 
         Raises:
             SourceUnavailable: only when ``max_failures`` consecutive starts failed.
         """
         if self._running:
-            raise RuntimeError("BleakSource.adverts() is already being iterated")
+            raise RuntimeError("BleakSource.batches() is already being iterated")
         self._running = True
         sup = asyncio.create_task(self._supervise(), name=f"bleak-supervisor-{self.adapter or 'default'}")
         watch: asyncio.Task[None] | None = None
@@ -488,7 +496,7 @@ class BleakSource:
         try:
             while True:
                 if not q.empty():
-                    yield q.get_nowait()
+                    yield [q.get_nowait() for _ in range(q.qsize())]
                     continue
                 get = asyncio.ensure_future(q.get())
                 try:
@@ -497,7 +505,7 @@ class BleakSource:
                     if not get.done():
                         get.cancel()
                 if get.done() and not get.cancelled():
-                    yield get.result()
+                    yield [get.result(), *(q.get_nowait() for _ in range(q.qsize()))]
                 elif sup.done():
                     sup.result()  # raises SourceUnavailable when it gave up
                     return

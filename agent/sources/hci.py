@@ -23,6 +23,7 @@ from collections.abc import AsyncIterator
 
 import structlog
 
+from listenpost.agent.sources import one_by_one
 from listenpost.agent.sources.hci_events import ExtendedReassembler, parse_h4, report_to_advert
 from listenpost.core.clock import Clock
 from listenpost.core.errors import DecodeError, SourceReason, SourceUnavailable
@@ -37,6 +38,8 @@ BTPROTO_HCI = 1
 HCI_FILTER_EVENTS = struct.pack("<IIIH", 1 << 0x04, (1 << 0x0E) | (1 << 0x0F), 1 << (0x3E - 32), 0)
 """hci_ufilter {type_mask: event packets; event_mask: Command Complete, Command Status, LE Meta; opcode 0}."""
 RECV_SIZE = 1024  # an HCI event is at most 3 + 255 bytes
+DRAIN_MAX = 64
+"""Packets read per wake-up at most, so a flood still lets other tasks run between batches."""
 
 
 def dev_id_of(adapter: str | None) -> int:
@@ -136,9 +139,15 @@ class HciSource:
         self.adverts_seen += len(out)
         return out
 
-    async def adverts(self) -> AsyncIterator[Advert]:
+    async def batches(self) -> AsyncIterator[list[Advert]]:
         """
-        Yield adverts until cancelled or the socket closes.
+        Yield the adverts of every packet queued on the socket at a wake-up, until cancelled or the
+        socket closes.
+
+        After the packet that woke the loop, whatever else the socket already holds (up to
+        `DRAIN_MAX` packets) is read without waiting, and the clock is read once for them all:
+        each is stamped with that reading, as each packet alone was stamped right after its
+        ``recv``; they differ by the microseconds the drain takes.
 
         Raises:
             SourceUnavailable: the socket cannot be opened (see `open_hci_socket`).
@@ -148,11 +157,26 @@ class HciSource:
         loop = asyncio.get_running_loop()
         try:
             while True:
-                pkt = await loop.sock_recv(sock, RECV_SIZE)
-                if not pkt:
+                pkts = [await loop.sock_recv(sock, RECV_SIZE)]
+                ended = not pkts[0]
+                while not ended and len(pkts) < DRAIN_MAX:
+                    try:
+                        pkt = sock.recv(RECV_SIZE)
+                    except (BlockingIOError, InterruptedError):
+                        break
+                    ended = not pkt
+                    if not ended:
+                        pkts.append(pkt)
+                t_ns = self.clock.monotonic_ns()
+                batch = [adv for pkt in pkts if pkt for adv in self._decode(pkt, t_ns)]
+                if batch:
+                    yield batch
+                if ended:
                     return
-                for adv in self._decode(pkt, self.clock.monotonic_ns()):
-                    yield adv
         finally:
             with contextlib.suppress(OSError):
                 sock.close()
+
+    def adverts(self) -> AsyncIterator[Advert]:
+        """The same adverts one at a time."""
+        return one_by_one(self.batches())

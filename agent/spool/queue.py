@@ -8,7 +8,7 @@ from __future__ import annotations
 import asyncio
 import concurrent.futures
 from collections import deque
-from collections.abc import Awaitable, Callable
+from collections.abc import Awaitable, Callable, Sequence
 from pathlib import Path
 from typing import Any, TypeVar
 
@@ -154,13 +154,19 @@ class Spool:
     # ---------------------------------------------------------------- intake
 
     def add(self, reading: Reading) -> None:
+        """Queue one reading in memory (see `add_many`)."""
+        self.add_many((reading,))
+
+    def add_many(self, readings: Sequence[Reading]) -> None:
         """
-        Queue one reading in memory (O(1), no I/O). Past the memory bound the oldest readings go: a whole
-        memory batch if there is one, else the oldest pending reading; every drop is counted.
+        Queue readings in memory, in order (no I/O). Past the memory bound the oldest readings go: a
+        whole memory batch if there is one, else the oldest pending reading; every drop is counted.
         """
+        if not readings:
+            return
         if self._first_add_mono is None:
             self._first_add_mono = self._clock.monotonic()
-        self._pending.append(reading)
+        self._pending.extend(readings)
         while len(self._pending) + self._mem_readings > self.max_pending_readings:
             self._drop_oldest()
 
@@ -358,8 +364,14 @@ class Spool:
         self._check_open()
         if self._snap.degraded and not self._mem and self._pending:
             await self._shielded(self._serial(self._seal_now_in_memory))
-        if not self._snap.degraded or (not self._mem and self._clock.monotonic() >= self._retry_at):
-            # Reading works on a full disk; a failing file is retried no sooner than its timer.
+        snap = self._snap
+        # Reading works on a full disk; a failing file is retried no sooner than its timer. A healthy
+        # file holding no batch (its row count is mirrored here after every disk call) is not asked:
+        # the uplink polls an empty spool every second, and the hop to the disk thread and back costs
+        # about as much CPU as a second of the pipeline at 200 adverts/s.
+        if (not snap.degraded and snap.batches) or (
+            snap.degraded and not self._mem and self._clock.monotonic() >= self._retry_at
+        ):
             try:
                 found = await self._shielded(
                     self._call(

@@ -215,6 +215,9 @@ class SeqHole:
     epoch: str
     first_seq: int
     last_seq: int
+    tail: bool = False
+    """After the last seq that arrived: batches the board's heartbeats said it had sealed before it moved
+    to a new epoch, and never sent."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -316,8 +319,9 @@ class Store(Protocol):
         """The newest telemetry row per tag (by board time within the newest batch)."""
 
     async def seq_holes(self, board: str | None = None) -> list[SeqHole]:
-        """Seq holes now, by board, epoch and first seq. Kept up to date by ingest (one small table), so
-        this costs the same however many batches are stored."""
+        """Seq holes now, by board, epoch and first seq: runs inside each epoch's span, and the tails of
+        epochs a board has left (`SeqHole.tail`). Kept up to date by ingest and heartbeats (two small
+        tables), so this costs the same however many batches are stored."""
 
     # clock, heartbeats, events
     async def add_clock_sample(self, sample: ClockSample) -> None: ...
@@ -365,15 +369,23 @@ class Store(Protocol):
         one chunk is held at a time. An exception from ``sink`` ends the scan and is raised here;
         cancelling the call stops the scan at the next chunk."""
 
+    async def ensure_reading_days(self, t_from: float, t_to: float) -> int:
+        """Make room ahead for readings of every UTC day from ``t_from``'s to ``t_to``'s; returns how
+        many day partitions were made. PostgreSQL keeps one partition of ``readings`` per day and makes
+        a missing one at ingest too, so this only moves that work off the ingest path; SQLite has one
+        table and nothing to do (0)."""
+
     async def delete_readings_before(
         self, t: float, chunk: int = 10_000, max_chunks: int | None = None
     ) -> int:
-        """Remove raw readings older than ``t`` in chunks of ``chunk`` rows; returns how many went.
+        """Remove raw readings older than ``t`` in chunks of ``chunk`` rows; returns exactly how many went.
 
         With ``max_chunks`` at most that many chunks go per table in this call, so a caller can spread a
         large backlog over several calls (the monitor does, one call per round): a return value of
-        ``chunk * max_chunks`` means there may be more. Telemetry rows and clock samples older than ``t``
-        go too (not counted); batch headers and clock samples have their own cut (`delete_history_before`)."""
+        ``chunk * max_chunks`` or more means there may be more. On PostgreSQL whole days before ``t`` are
+        dropped instead (at most ``max_chunks`` days per call, every row counted), and only the day that
+        straddles ``t`` is deleted in chunks. Telemetry rows older than ``t`` go too (not counted); batch
+        headers and clock samples have their own cut (`delete_history_before`)."""
 
     async def delete_history_before(
         self,

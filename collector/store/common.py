@@ -138,6 +138,17 @@ def constraint_field(constraint: str) -> str:
     return constraint.removesuffix("_range").removesuffix("_non_negative").removesuffix("_finite") or "batch"
 
 
+def check_chunks(chunk: int, max_chunks: int | None) -> None:
+    """
+    Raises:
+        ValueError: ``chunk`` or ``max_chunks`` below 1.
+    """
+    if chunk < 1:
+        raise ValueError(f"chunk must be >= 1, got {chunk!r}")
+    if max_chunks is not None and max_chunks < 1:
+        raise ValueError(f"max_chunks must be >= 1 or None, got {max_chunks!r}")
+
+
 async def delete_in_chunks(
     delete_chunk: Callable[[str, str], Awaitable[int]], chunk: int, max_chunks: int | None
 ) -> int:
@@ -156,10 +167,7 @@ async def delete_in_chunks(
     Raises:
         ValueError: ``chunk`` or ``max_chunks`` below 1.
     """
-    if chunk < 1:
-        raise ValueError(f"chunk must be >= 1, got {chunk!r}")
-    if max_chunks is not None and max_chunks < 1:
-        raise ValueError(f"max_chunks must be >= 1 or None, got {max_chunks!r}")
+    check_chunks(chunk, max_chunks)
     total = 0
     for table, col, count in RETENTION_TABLES:
         for _ in itertools.count() if max_chunks is None else range(max_chunks):
@@ -186,10 +194,7 @@ async def delete_history_in_chunks(
     Raises:
         ValueError: ``chunk`` or ``max_chunks`` below 1, or a table that is not in `HISTORY_TABLES`.
     """
-    if chunk < 1:
-        raise ValueError(f"chunk must be >= 1, got {chunk!r}")
-    if max_chunks is not None and max_chunks < 1:
-        raise ValueError(f"max_chunks must be >= 1 or None, got {max_chunks!r}")
+    check_chunks(chunk, max_chunks)
     unknown = set(cuts) - HISTORY_TABLES.keys()
     if unknown:
         raise ValueError(f"no history retention for {sorted(unknown)}")
@@ -304,6 +309,48 @@ def batch_row(batch: IngestBatch, board_id: int, offset_dd: int) -> tuple[Any, .
         gap.get("reason"),
         gap_epoch(batch) if batch.gap is not None else None,
     )
+
+
+# Seq holes now (board, epoch, first, last, tail): the runs inside each epoch's span that ingest keeps in
+# ``seq_holes``, and the tails of epochs a board has left. A tail is the seqs a board's heartbeats said
+# its spool had sealed (``announced``) beyond the last one covered, in an epoch that is no longer the
+# board's spool epoch, once a batch of that newer epoch has arrived. The agent sends its spool oldest
+# first, one request at a time, so by then every batch of the old epoch it still held has been sent (or
+# dead-lettered, which a gap record covers): what is missing is lost. Both parts read one small table
+# (rows per hole and per epoch), so the cost does not follow the history kept. ``{board}`` is a backend's
+# ``AND b.name = <param>`` or empty.
+SEQ_HOLES_SQL = (
+    "SELECT b.name, h.epoch, h.first_seq, h.last_seq, 0 AS tail FROM seq_holes h "
+    "JOIN boards b ON b.id = h.board_id WHERE 1 = 1 {board} "
+    "UNION ALL "
+    "SELECT b.name, r.epoch, r.reach + 1, r.announced, 1 FROM seq_reach r JOIN boards b ON b.id = r.board_id "
+    "WHERE r.announced > r.reach AND b.spool_epoch <> r.epoch {board} AND EXISTS (SELECT 1 FROM seq_reach c "
+    "WHERE c.board_id = r.board_id AND c.epoch = b.spool_epoch) "
+    "ORDER BY 1, 2, 3"
+)
+
+# The most a heartbeat may announce: seqs are sqlite/PostgreSQL 64-bit integers, and JSON numbers beyond
+# 2**53 are not exact.
+_MAX_SEQ = 2**53
+
+
+def spool_mark(stats: dict[str, Any]) -> tuple[str, int | None] | None:
+    """
+    What a heartbeat says of its board's spool: (epoch, highest seq sealed so far, or None before the first).
+
+    None when the heartbeat carries no usable spool figures (an older agent, a spool that could never be
+    opened, or values that are not an epoch and a seq): the heartbeat is stored all the same, it only
+    announces nothing.
+    """
+    spool = stats.get("spool")
+    if not isinstance(spool, dict):
+        return None
+    epoch, next_seq = spool.get("epoch"), spool.get("next_seq")
+    if not isinstance(epoch, str) or not EPOCH.fullmatch(epoch):
+        return None
+    if isinstance(next_seq, bool) or not isinstance(next_seq, int) or not 0 <= next_seq <= _MAX_SEQ:
+        return None
+    return epoch, (next_seq - 1 if next_seq > 0 else None)
 
 
 def seq_intervals(batch: IngestBatch) -> list[tuple[str, int, int]]:

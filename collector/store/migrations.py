@@ -18,6 +18,10 @@ Layout choices, the same in both dialects:
   the dedup key and is never deleted while the board exists.
 - Per-board counters live on ``boards`` and are bumped in the ingest transaction, so status pages do
   not sum the batch table.
+- On PostgreSQL, ``readings`` is partitioned by range of ``t_collector``, one partition per UTC day
+  named ``readings_YYYYMMDD`` (migration 7), so retention drops whole days (collector/store/postgres.py).
+  SQLite keeps one table; its migration 7 changes nothing and only keeps the version numbers of the two
+  dialects in step.
 """
 
 from __future__ import annotations
@@ -80,6 +84,54 @@ def _WATCH(integer: str, real: str, text: str) -> str:  # noqa: N802 - reads as 
             levels {text} NOT NULL,
             shift_since {real},
             raised boolean NOT NULL)"""
+
+
+# What each board's heartbeats say of its spool, so a tail of batches that never arrived is seen once the
+# board moved to a new epoch: ``seq_reach.announced`` is the highest seq a heartbeat said the spool had
+# sealed in that epoch; ``boards.spool_epoch`` the epoch of its newest heartbeat (common.SEQ_HOLES_SQL).
+def _SPOOL_TAILS(integer: str, real: str, text: str) -> tuple[str, ...]:  # noqa: N802 - reads as a constant
+    return (
+        f"ALTER TABLE seq_reach ADD COLUMN announced {integer}",
+        f"ALTER TABLE boards ADD COLUMN spool_epoch {text}",
+        f"ALTER TABLE boards ADD COLUMN spool_epoch_at {real}",
+    )
+
+
+# Migration 7 (PostgreSQL): readings becomes a table partitioned by range of t_collector, one partition per
+# UTC day [d * 86400, (d + 1) * 86400), named for its day. The old table's rows move into partitions made
+# for the days they cover, in their physical order (roughly collector-time order, which is what keeps the
+# per-partition BRIN ranges tight), then the old table goes; all in the migration's one transaction. The
+# columns and CHECK constraints are those of migration 2 (readings has no primary or foreign key, so no
+# key has to grow the partition column). The BRIN index is made on the partitioned table after the move:
+# one build per partition, and every later partition gets its own automatically.
+# The name's day must be the one `postgres.partition_name` computes: to_char of the UTC midnight.
+_READINGS_DAYS = (
+    "ALTER TABLE readings RENAME TO readings_unpartitioned",
+    "DROP INDEX readings_t",
+    """CREATE TABLE readings (
+        t_collector float8 NOT NULL
+            CONSTRAINT t_collector_finite CHECK (t_collector > '-Infinity' AND t_collector < 'Infinity'),
+        t_board_ms bigint NOT NULL,
+        batch_id bigint NOT NULL,
+        tag_id integer NOT NULL,
+        board_id smallint NOT NULL,
+        rssi_dd smallint NOT NULL CONSTRAINT rssi_dd_range CHECK (rssi_dd BETWEEN -2000 AND 500))
+    PARTITION BY RANGE (t_collector)""",
+    """DO $$
+    DECLARE d bigint;
+    BEGIN
+        FOR d IN SELECT DISTINCT floor(t_collector / 86400)::bigint FROM readings_unpartitioned LOOP
+            EXECUTE format(
+                'CREATE TABLE %I PARTITION OF readings FOR VALUES FROM (%s) TO (%s)',
+                'readings_' || to_char(to_timestamp(d * 86400) AT TIME ZONE 'UTC', 'YYYYMMDD'),
+                d * 86400, (d + 1) * 86400);
+        END LOOP;
+    END $$""",
+    "INSERT INTO readings (t_collector, t_board_ms, batch_id, tag_id, board_id, rssi_dd) "
+    "SELECT t_collector, t_board_ms, batch_id, tag_id, board_id, rssi_dd FROM readings_unpartitioned",
+    "DROP TABLE readings_unpartitioned",
+    "CREATE INDEX readings_t ON readings USING brin (t_collector) WITH (pages_per_range = 32)",
+)
 
 
 HOLES_SCAN = """
@@ -228,6 +280,8 @@ SQLITE: tuple[Migration, ...] = (
         ),
     ),
     Migration(5, "calibration watch state", (_WATCH("INTEGER", "REAL", "TEXT"),)),
+    Migration(6, "spool tails announced by heartbeats", _SPOOL_TAILS("INTEGER", "REAL", "TEXT")),
+    Migration(7, "readings partitioned by day (PostgreSQL only)", ()),
 )
 
 
@@ -371,6 +425,8 @@ POSTGRES: tuple[Migration, ...] = (
         ),
     ),
     Migration(5, "calibration watch state", (_WATCH("smallint", "double precision", "text"),)),
+    Migration(6, "spool tails announced by heartbeats", _SPOOL_TAILS("bigint", "double precision", "text")),
+    Migration(7, "readings partitioned by day (PostgreSQL only)", _READINGS_DAYS),
 )
 
 _VERSION_TABLE = "CREATE TABLE IF NOT EXISTS schema_version (version integer PRIMARY KEY, name text NOT NULL, applied_at text NOT NULL)"
@@ -442,6 +498,9 @@ def migrate_sqlite(
 
 # A fixed advisory-lock key so two collectors starting together migrate one after the other.
 _MIGRATION_LOCK_KEY = 0x6C70_6D69_6772  # "lpmigr"
+STATEMENT_MAX_SECONDS = 3600.0
+"""Longest one PostgreSQL migration statement may run: moving a large table takes longer than the store's
+per-statement timeout allows, and a collector that cannot finish a migration cannot start."""
 
 
 async def migrate_postgres(
@@ -470,7 +529,7 @@ async def migrate_postgres(
             if now >= m.version:
                 continue
             for stmt in m.statements:
-                await con.execute(stmt)
+                await con.execute(stmt, timeout=STATEMENT_MAX_SECONDS)
             await con.execute(
                 "INSERT INTO schema_version (version, name, applied_at) VALUES ($1, $2, now()::text)",
                 m.version,

@@ -16,19 +16,28 @@ The multi-collector store: PostgreSQL through an asyncpg pool.
   ``lead=`` checks it in its own transaction, so a collector whose lock session died (and the lock with
   it) cannot write as leader after another took over. Releasing is bounded by ``lock_timeout_s``; a
   session that cannot be released is closed, which frees its locks on the server.
+- ``readings`` is partitioned by range of ``t_collector``, one partition per UTC day, named
+  ``readings_YYYYMMDD`` (migration 7). There is no DEFAULT partition: a batch whose readings fall on a
+  day without a partition creates it first (`ensure_reading_days`), in a short transaction of its own
+  before the batch's, so every finite time has a home and nothing waits in a catch-all that every later
+  partition creation would have to scan (and that a row of a later day would make that creation fail
+  on). The monitor's retention pass and the app at start create today's and tomorrow's partitions
+  ahead, so ingest normally finds its day made. Retention detaches and drops the days wholly before the
+  cut, counting their rows exactly first, and deletes in chunks only in the day that straddles it.
 """
 
 from __future__ import annotations
 
 import asyncio
 import contextlib
+import datetime
 import hashlib
 import json
 import math
 import os
 import re
 import socket
-from collections.abc import AsyncIterator, Callable, Sequence
+from collections.abc import AsyncIterator, Callable, Iterable, Sequence
 from itertools import repeat
 from typing import Any
 
@@ -65,6 +74,7 @@ from listenpost.collector.store.common import (
     HISTORY_TABLES,
     LATEST_TELEMETRY_SQL,
     OFFSET_CHANGES_SQL,
+    SEQ_HOLES_SQL,
     TELEMETRY_FIELDS,
     WATCH_COLS,
     OffsetChanges,
@@ -73,6 +83,7 @@ from listenpost.collector.store.common import (
     board_from_row,
     calibration_from_row,
     check_batch,
+    check_chunks,
     check_clock_sample,
     constraint_field,
     cover_seqs,
@@ -81,6 +92,7 @@ from listenpost.collector.store.common import (
     json_text,
     reading_tag_ids,
     seq_intervals,
+    spool_mark,
     watch_from_row,
     watch_row,
 )
@@ -278,6 +290,55 @@ def parse_copy_binary(buf: bytes | bytearray | memoryview) -> np.ndarray:
     return rows
 
 
+DAY_SECONDS = 86400.0
+"""Span of one readings partition: a UTC day (Unix time has no leap seconds, so every day is this long)."""
+DDL_LOCK_TIMEOUT_S = 1.0
+"""Longest wait for the lock a partition needs created or detached. That DDL locks ``readings`` whole,
+so it waits behind every open transaction on it (a long export among them) while every new ingest queues
+behind the DDL: a short wait bounds that stall. Creation ahead and retention retry on their next pass."""
+DROP_COUNT_MAX_SECONDS = 3600.0
+"""Longest the exact count of a day being dropped may run: one sequential read of the partition, which
+a busy day makes longer than the per-statement timeout allows."""
+_DAY_NAME = re.compile(r"readings_(\d{4})(\d{2})(\d{2})")
+_DROPPING = "_dropped"
+"""Suffix of a day detached from ``readings`` whose count and drop are still to come."""
+_EPOCH_DATE = datetime.date(1970, 1, 1)
+
+
+def reading_day(t: float) -> int:
+    """The UTC day (days since 1970-01-01) whose partition holds a reading at collector time ``t``."""
+    return math.floor(t / DAY_SECONDS)
+
+
+def partition_name(day: int) -> str:
+    """``readings_YYYYMMDD`` of UTC day ``day``; the same text migration 7 makes with ``to_char``.
+
+    Raises:
+        OverflowError: the day is outside the years 1 to 9999.
+    """
+    d = _EPOCH_DATE + datetime.timedelta(days=day)
+    return f"readings_{d.year:04d}{d.month:02d}{d.day:02d}"
+
+
+def _day_of(name: str) -> int | None:
+    """The UTC day a ``readings_YYYYMMDD`` name stands for; None for any other name."""
+    m = _DAY_NAME.fullmatch(name)
+    try:
+        return None if m is None else (datetime.date(*map(int, m.groups())) - _EPOCH_DATE).days
+    except ValueError:  # eight digits that are no date
+        return None
+
+
+async def _partition_days(con: asyncpg.Connection) -> dict[int, str]:
+    """Day -> name of every partition of ``readings`` now (from the catalog)."""
+    rows = await con.fetch(
+        "SELECT c.relname FROM pg_inherits i JOIN pg_class c ON c.oid = i.inhrelid "
+        "WHERE i.inhparent = 'readings'::regclass"
+    )
+    named = ((_day_of(r[0]), r[0]) for r in rows)
+    return {d: name for d, name in named if d is not None}
+
+
 def _count(status: str) -> int:
     return int(status.rsplit(" ", 1)[-1])
 
@@ -328,6 +389,9 @@ class PostgresStore:
         if con.get_server_pid() in self._lock_sessions:
             self._lock_sessions.discard(con.get_server_pid())
             await con.reset()
+        self._days: set[int] = set()
+        """Days known to have a readings partition. Another collector's retention may drop one behind
+        this process's back: an insert that then finds no partition makes it again (`ingest`)."""
 
     @classmethod
     async def open(
@@ -395,6 +459,7 @@ class PostgresStore:
             async with store._acquire() as con:
                 await migrate_postgres(con)
                 store.lock_scope = await con.fetchval("SELECT current_schema()")
+                store._days = set(await _partition_days(con))
         except BaseException:
             await store._pool.close()
             raise
@@ -611,77 +676,62 @@ class PostgresStore:
             )
         return self._tag_ids
 
+    async def _ensure_days(self, con: asyncpg.Connection, days: Iterable[int]) -> int:
+        """Create the readings partitions of ``days`` that do not exist; returns how many it made.
+
+        Its own short transaction (never inside a batch's: the DDL locks ``readings`` whole until
+        commit). Collectors doing this at once take turns on an advisory lock, so CREATE ... IF NOT EXISTS
+        sees the other's committed partition instead of racing it on the catalog.
+
+        Raises:
+            OverflowError: a day outside the years 1 to 9999 (no name for it).
+            asyncpg.LockNotAvailableError: ``readings`` stayed locked past `DDL_LOCK_TIMEOUT_S`.
+        """
+        missing = sorted(set(days) - self._days)
+        if not missing:
+            return 0
+        names = {d: partition_name(d) for d in missing}
+        timeout_ms = round(min(self._lock_timeout_s, DDL_LOCK_TIMEOUT_S) * 1000)
+        async with con.transaction():
+            await con.execute(f"SET LOCAL lock_timeout = {timeout_ms}")
+            await con.execute("SELECT pg_advisory_xact_lock($1)", lock_key("readings_days", self.lock_scope))
+            have = await _partition_days(con)
+            made = [d for d in missing if d not in have]
+            for d in made:
+                await con.execute(
+                    f'CREATE TABLE IF NOT EXISTS "{names[d]}" PARTITION OF readings '
+                    f"FOR VALUES FROM ({d * DAY_SECONDS!r}) TO ({(d + 1) * DAY_SECONDS!r})"
+                )
+        self._days |= have.keys() | set(made)
+        if made:
+            log.info("readings_partitions_created", partitions=[names[d] for d in made])
+        return len(made)
+
     async def ingest(self, batch: IngestBatch) -> IngestResult:
         b = batch
         offset_dd = check_batch(b)
-        gap = b.gap or {}
+        days = {
+            int(d) for d in np.unique(np.floor(np.asarray(b.t_collector, dtype=np.float64) / DAY_SECONDS))
+        }
         async with self._acquire() as con:
             bid = await self._board_id(con, b.board)
             try:
                 # Inside the try: a name the server or the driver cannot take refuses this batch (400).
                 tag_ids = await self._intern_tags(con, batch_tag_names(b))
-                async with con.transaction():
-                    if b.clock is not None:
-                        # Kept whatever the batch turns out to be, in its transaction: one commit.
-                        await _insert_clock_sample(con, bid, b.clock)
-                    row = batch_row(b, bid, offset_dd)
-                    done = False
-                    if b.gap is None:  # the common case, one round trip (_STORE_NEXT_BATCH)
-                        batch_id, done = await con.fetchrow(_STORE_NEXT_BATCH, *row, 0)
-                    else:
-                        batch_id = await con.fetchval(_INSERT_BATCH, *row)
-                    if batch_id is None:
-                        stored = await con.fetchval(
-                            "SELECT digest FROM batches WHERE board_id = $1 AND epoch = $2 AND seq = $3",
-                            bid,
-                            b.epoch,
-                            b.seq,
-                        )
-                        status = IngestStatus.DUPLICATE if stored == b.digest else IngestStatus.CONFLICT
-                        return IngestResult(status, stored)
-                    if not done:
-                        for epoch, lo, hi in seq_intervals(b):
-                            await _account_seqs(con, bid, epoch, lo, hi)
-                        await con.execute(
-                            _COUNT_ONE_BATCH, b.n, gap.get("readings", 0), b.received_at, b.boot, bid
-                        )
-                    if b.n:
-                        await con.copy_records_to_table(
-                            "readings",
-                            schema_name=self.schema,
-                            columns=[
-                                "t_collector",
-                                "t_board_ms",
-                                "batch_id",
-                                "tag_id",
-                                "board_id",
-                                "rssi_dd",
-                            ],
-                            records=zip(
-                                np.asarray(b.t_collector, dtype=np.float64).tolist(),
-                                np.asarray(b.t_board_ms, dtype=np.int64).tolist(),
-                                repeat(batch_id),
-                                reading_tag_ids(b, tag_ids),
-                                repeat(bid),
-                                np.asarray(b.rssi_dd, dtype=np.int64).tolist(),
-                            ),
-                        )
-                    if b.telemetry:
-                        await con.executemany(
-                            "INSERT INTO telemetry (batch_id, board_id, tag_id, at, t_board_ms, battery_mv, "
-                            "temperature_c, adv_count, uptime_s) VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9)",
-                            [
-                                (
-                                    batch_id,
-                                    bid,
-                                    tag_ids[t["tag"]],
-                                    b.received_at,
-                                    t["t_ms"],
-                                    *(None if t.get(k) is None else float(t[k]) for k in TELEMETRY_FIELDS),
-                                )
-                                for t in b.telemetry
-                            ],
-                        )
+                await self._ensure_days(con, days)
+                try:
+                    return await self._store_batch(con, b, bid, tag_ids, offset_dd)
+                except asyncpg.CheckViolationError as e:
+                    # No partition for a row's day (that error names no constraint): another collector's
+                    # retention dropped a day this process still counted on. The batch rolled back
+                    # whole; make the day again and store it once more.
+                    if e.constraint_name:
+                        raise
+                    self._days -= days
+                await self._ensure_days(con, days)
+                return await self._store_batch(con, b, bid, tag_ids, offset_dd)
+            except OverflowError as e:  # partition_name: no calendar day for that time
+                raise BadBatch("t_collector", f"a reading outside the years 1 to 9999 ({e})") from e
             except (asyncpg.IntegrityConstraintViolationError, asyncpg.DataError) as e:
                 field = constraint_field(
                     getattr(e, "constraint_name", None) or getattr(e, "column_name", None) or ""
@@ -690,6 +740,72 @@ class PostgresStore:
                     field,
                     f"refused by the database ({type(e).__name__}: {e}) in batch {b.board}/{b.epoch}/{b.seq}",
                 ) from e
+
+    async def _store_batch(
+        self, con: asyncpg.Connection, b: IngestBatch, bid: int, tag_ids: dict[str, int], offset_dd: int
+    ) -> IngestResult:
+        """The batch's one transaction: clock sample, header, seq accounting, readings, telemetry, counters."""
+        gap = b.gap or {}
+        async with con.transaction():
+            if b.clock is not None:
+                # Kept whatever the batch turns out to be, in its transaction: one commit.
+                await _insert_clock_sample(con, bid, b.clock)
+            row = batch_row(b, bid, offset_dd)
+            done = False
+            if b.gap is None:  # the common case, one round trip (_STORE_NEXT_BATCH)
+                batch_id, done = await con.fetchrow(_STORE_NEXT_BATCH, *row, 0)
+            else:
+                batch_id = await con.fetchval(_INSERT_BATCH, *row)
+            if batch_id is None:
+                stored = await con.fetchval(
+                    "SELECT digest FROM batches WHERE board_id = $1 AND epoch = $2 AND seq = $3",
+                    bid,
+                    b.epoch,
+                    b.seq,
+                )
+                status = IngestStatus.DUPLICATE if stored == b.digest else IngestStatus.CONFLICT
+                return IngestResult(status, stored)
+            if not done:
+                for epoch, lo, hi in seq_intervals(b):
+                    await _account_seqs(con, bid, epoch, lo, hi)
+                await con.execute(_COUNT_ONE_BATCH, b.n, gap.get("readings", 0), b.received_at, b.boot, bid)
+            if b.n:
+                await con.copy_records_to_table(
+                    "readings",
+                    schema_name=self.schema,
+                    columns=[
+                        "t_collector",
+                        "t_board_ms",
+                        "batch_id",
+                        "tag_id",
+                        "board_id",
+                        "rssi_dd",
+                    ],
+                    records=zip(
+                        np.asarray(b.t_collector, dtype=np.float64).tolist(),
+                        np.asarray(b.t_board_ms, dtype=np.int64).tolist(),
+                        repeat(batch_id),
+                        reading_tag_ids(b, tag_ids),
+                        repeat(bid),
+                        np.asarray(b.rssi_dd, dtype=np.int64).tolist(),
+                    ),
+                )
+            if b.telemetry:
+                await con.executemany(
+                    "INSERT INTO telemetry (batch_id, board_id, tag_id, at, t_board_ms, battery_mv, "
+                    "temperature_c, adv_count, uptime_s) VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9)",
+                    [
+                        (
+                            batch_id,
+                            bid,
+                            tag_ids[t["tag"]],
+                            b.received_at,
+                            t["t_ms"],
+                            *(None if t.get(k) is None else float(t[k]) for k in TELEMETRY_FIELDS),
+                        )
+                        for t in b.telemetry
+                    ],
+                )
         return IngestResult(IngestStatus.STORED, b.digest)
 
     async def board_counts(self) -> list[BoardCounts]:
@@ -708,13 +824,9 @@ class PostgresStore:
         return {r[0]: TagTelemetry(*r) for r in rows}
 
     async def seq_holes(self, board: str | None = None) -> list[SeqHole]:
-        cond, args = ("", ()) if board is None else ("WHERE b.name = $1", (board,))
-        rows = await self._fetch(
-            "SELECT b.name, h.epoch, h.first_seq, h.last_seq FROM seq_holes h JOIN boards b ON b.id = h.board_id "
-            f"{cond} ORDER BY b.name, h.epoch, h.first_seq",
-            *args,
-        )
-        return [SeqHole(*r) for r in rows]
+        cond, args = ("", ()) if board is None else ("AND b.name = $1", (board,))
+        rows = await self._fetch(SEQ_HOLES_SQL.format(board=cond), *args)
+        return [SeqHole(*r[:4], tail=bool(r[4])) for r in rows]
 
     # -- clock, heartbeats, events -----------------------------------------------------------------------
 
@@ -738,6 +850,7 @@ class PostgresStore:
         if clock is not None:
             check_clock_sample(clock)
         stats = json.dumps(hb.stats, sort_keys=True)
+        mark = spool_mark(hb.stats)
         async with self._acquire() as con, con.transaction():
             bid = await self._board_id(con, hb.board)
             if clock is not None and clock.boot != hb.boot:
@@ -764,6 +877,8 @@ class PostgresStore:
                 bid,
                 self._heartbeat_history,
             )
+            if mark is not None:
+                await _note_spool(con, bid, *mark, hb.at)
 
     async def heartbeats(self, board: str, since: float) -> list[Heartbeat]:
         rows = await self._fetch(
@@ -964,10 +1079,65 @@ class PostgresStore:
                 total += await asyncio.to_thread(deliver, tail)
         return total
 
+    async def ensure_reading_days(self, t_from: float, t_to: float) -> int:
+        """Create the day partitions of ``readings`` for every UTC day from ``t_from``'s to ``t_to``'s.
+
+        Returns how many were made. ``readings`` locked past `DDL_LOCK_TIMEOUT_S` (a long export, say)
+        makes none and says so in the log: the next pass tries again, and ingest makes a missing day
+        itself."""
+        if not (math.isfinite(t_from) and math.isfinite(t_to)) or t_to < t_from:
+            raise ValueError(f"need finite t_from <= t_to, got {t_from!r}, {t_to!r}")
+        async with self._acquire() as con:
+            try:
+                return await self._ensure_days(con, range(reading_day(t_from), reading_day(t_to) + 1))
+            except asyncpg.LockNotAvailableError as e:
+                log.warning("readings_partitions_busy", t_from=t_from, t_to=t_to, error=str(e))
+                return 0
+
     async def delete_readings_before(
         self, t: float, chunk: int = 10_000, max_chunks: int | None = None
     ) -> int:
+        """`Store.delete_readings_before` by days: every partition wholly before ``t`` is detached and
+        dropped (its rows counted exactly first; at most ``max_chunks`` days per call, like the chunks),
+        then the rows before ``t`` in the one day that straddles it go in chunks. Telemetry keeps its
+        chunked delete: one row per tag report, not per reading."""
+        check_chunks(chunk, max_chunks)
+        if not math.isfinite(t):
+            raise ValueError(f"t: must be finite, got {t!r}")
+        cut_day = reading_day(t)
+        async with self._acquire() as con:
+            leftover = [
+                r[0]
+                for r in await con.fetch(
+                    "SELECT relname FROM pg_class WHERE relnamespace = current_schema()::regnamespace "
+                    "AND relkind = 'r' AND relname LIKE $1 ORDER BY relname",
+                    f"readings\\_%{_DROPPING}",
+                )
+                if _day_of(r[0].removesuffix(_DROPPING)) is not None
+            ]
+            days = await _partition_days(con)
+        self._days = set(days)
+        dropped = 0
+        total = 0
+        # Days a drop detached but did not get to drop (the process stopped, or a reader held the table):
+        # nothing reads or writes them any more, so they go first, counted like the rest.
+        for name in leftover:
+            total += await self._count_and_drop(name)
+        for day in sorted(d for d in days if d < cut_day)[:max_chunks]:
+            name = days[day]
+            if not await self._detach(name):
+                break
+            self._days.discard(day)
+            total += await self._count_and_drop(name + _DROPPING)
+            dropped += 1
+        straddling = days.get(cut_day)
+
         async def delete_chunk(table: str, col: str) -> int:
+            if table == "readings":
+                if straddling is None:
+                    return 0
+                # One partition by name: ctids are unique only within a partition.
+                table = f'"{straddling}"'
             # One short statement per chunk (autocommit): no giant transaction, no long row locks.
             async with self._acquire() as con:
                 st = await con.execute(
@@ -978,16 +1148,43 @@ class PostgresStore:
                 )
             return _count(st)
 
-        total = await delete_in_chunks(delete_chunk, chunk, max_chunks)
+        total += await delete_in_chunks(delete_chunk, chunk, max_chunks)
         log.info(
             "readings_deleted",
             backend="postgres",
             before=t,
             readings=total,
+            partitions_dropped=dropped + len(leftover),
             chunk=chunk,
             max_chunks=max_chunks,
         )
         return total
+
+    async def _detach(self, name: str) -> bool:
+        """Take day ``name`` out of ``readings`` and rename it for its drop; False if ``readings`` stayed
+        locked past `DDL_LOCK_TIMEOUT_S` (nothing changed; the next pass tries again).
+
+        From the commit on, no insert can reach the table (a late reading of that day makes a new
+        partition, which a later pass drops), so the count taken before the drop is exact."""
+        timeout_ms = round(min(self._lock_timeout_s, DDL_LOCK_TIMEOUT_S) * 1000)
+        async with self._acquire() as con:
+            try:
+                async with con.transaction():
+                    await con.execute(f"SET LOCAL lock_timeout = {timeout_ms}")
+                    await con.execute(f'ALTER TABLE readings DETACH PARTITION "{name}"')
+                    await con.execute(f'ALTER TABLE "{name}" RENAME TO "{name}{_DROPPING}"')
+            except asyncpg.LockNotAvailableError as e:
+                log.warning("readings_partition_busy", partition=name, error=str(e))
+                return False
+        return True
+
+    async def _count_and_drop(self, table: str) -> int:
+        """Count a detached day's rows and drop it, in one transaction; returns the count."""
+        async with self._acquire() as con, con.transaction():
+            n = int(await con.fetchval(f'SELECT count(*) FROM "{table}"', timeout=DROP_COUNT_MAX_SECONDS))
+            await con.execute(f'DROP TABLE "{table}"')
+        log.info("readings_partition_dropped", partition=table.removesuffix(_DROPPING), readings=n)
+        return n
 
     async def delete_history_before(
         self,
@@ -1161,3 +1358,24 @@ async def _account_seqs(con: asyncpg.Connection, board_id: int, epoch: str, lo: 
         first,
         reach,
     )
+
+
+async def _note_spool(
+    con: asyncpg.Connection, board_id: int, epoch: str, sealed: int | None, at: float
+) -> None:
+    """A heartbeat's spool figures: the board's current epoch, and how far that epoch's seqs reach."""
+    await con.execute(
+        "UPDATE boards SET spool_epoch = $1, spool_epoch_at = $2 WHERE id = $3 AND "
+        "(spool_epoch_at IS NULL OR spool_epoch_at <= $2)",
+        epoch,
+        at,
+        board_id,
+    )
+    if sealed is not None:  # only an epoch some batch opened: one that never sent any has no span to extend
+        await con.execute(
+            "UPDATE seq_reach SET announced = GREATEST(coalesce(announced, -1), $1) "
+            "WHERE board_id = $2 AND epoch = $3",
+            sealed,
+            board_id,
+            epoch,
+        )

@@ -67,6 +67,7 @@ from listenpost.collector.store.common import (
     HISTORY_TABLES,
     LATEST_TELEMETRY_SQL,
     OFFSET_CHANGES_SQL,
+    SEQ_HOLES_SQL,
     TELEMETRY_FIELDS,
     WATCH_COLS,
     OffsetChanges,
@@ -83,6 +84,7 @@ from listenpost.collector.store.common import (
     json_text,
     reading_tag_ids,
     seq_intervals,
+    spool_mark,
     watch_from_row,
     watch_row,
 )
@@ -724,13 +726,9 @@ class SqliteStore:
         return {r[0]: TagTelemetry(*r) for r in rows}
 
     async def seq_holes(self, board: str | None = None) -> list[SeqHole]:
-        cond, params = ("", ()) if board is None else ("WHERE b.name = ?", (board,))
-        rows = await self._query(
-            "SELECT b.name, h.epoch, h.first_seq, h.last_seq FROM seq_holes h JOIN boards b ON b.id = h.board_id "
-            f"{cond} ORDER BY b.name, h.epoch, h.first_seq",
-            params,
-        )
-        return [SeqHole(*r) for r in rows]
+        cond, params = ("", ()) if board is None else ("AND b.name = ?", (board, board))
+        rows = await self._query(SEQ_HOLES_SQL.format(board=cond), params)
+        return [SeqHole(*r[:4], tail=bool(r[4])) for r in rows]
 
     # -- clock, heartbeats, events -----------------------------------------------------------------------
 
@@ -756,7 +754,9 @@ class SqliteStore:
         if clock is not None:
             check_clock_sample(clock)
         # Serialised here, on the event loop: the writer thread's time is what ingest waits on.
-        await self._enqueue(_HeartbeatWrite(hb, clock, json.dumps(hb.stats, sort_keys=True)))
+        await self._enqueue(
+            _HeartbeatWrite(hb, clock, json.dumps(hb.stats, sort_keys=True), spool_mark(hb.stats))
+        )
 
     def _insert_heartbeat(self, con: sqlite3.Connection, w: _HeartbeatWrite) -> None:
         hb = w.heartbeat
@@ -773,6 +773,8 @@ class SqliteStore:
             (bid, self._heartbeat_history),
         )
         _note_boot(con, bid, hb.boot, hb.at)
+        if w.spool_mark is not None:
+            _note_spool(con, bid, *w.spool_mark, hb.at)
 
     async def heartbeats(self, board: str, since: float) -> list[Heartbeat]:
         rows = await self._query(
@@ -945,6 +947,9 @@ class SqliteStore:
             stop[0] = True  # a cancelled caller: the thread stops before its next chunk
             executor.shutdown(wait=False)
 
+    async def ensure_reading_days(self, t_from: float, t_to: float) -> int:
+        return 0  # one readings table: no day partitions to make
+
     async def delete_readings_before(
         self, t: float, chunk: int = 10_000, max_chunks: int | None = None
     ) -> int:
@@ -1022,6 +1027,7 @@ class _HeartbeatWrite:
     heartbeat: Heartbeat
     clock: ClockSample | None
     stats_json: str
+    spool_mark: tuple[str, int | None] | None
     n: int = 0
     """Readings: none (the group bound counts readings)."""
 
@@ -1119,6 +1125,20 @@ def _account_seqs(con: sqlite3.Connection, board_id: int, epoch: str, lo: int, h
         "UPDATE seq_reach SET first_seq = ?, reach = ? WHERE board_id = ? AND epoch = ?",
         (first, reach, board_id, epoch),
     )
+
+
+def _note_spool(con: sqlite3.Connection, board_id: int, epoch: str, sealed: int | None, at: float) -> None:
+    """A heartbeat's spool figures: the board's current epoch, and how far that epoch's seqs reach."""
+    con.execute(
+        "UPDATE boards SET spool_epoch = ?, spool_epoch_at = ? WHERE id = ? AND "
+        "(spool_epoch_at IS NULL OR spool_epoch_at <= ?)",
+        (epoch, at, board_id, at),
+    )
+    if sealed is not None:  # only an epoch some batch opened: one that never sent any has no span to extend
+        con.execute(
+            "UPDATE seq_reach SET announced = max(coalesce(announced, -1), ?) WHERE board_id = ? AND epoch = ?",
+            (sealed, board_id, epoch),
+        )
 
 
 def _note_boot(con: sqlite3.Connection, board_id: int, boot: str, at: float) -> None:

@@ -9,9 +9,9 @@ the later stages take and return `Reading`, returning ``None`` to drop.
 
 from __future__ import annotations
 
-from collections.abc import AsyncIterator, Callable, Mapping
+from collections.abc import AsyncIterator, Callable, Mapping, Sequence
 from dataclasses import dataclass, field
-from typing import Any, Protocol
+from typing import Any, Protocol, runtime_checkable
 
 #: Bluetooth Base UUID suffix: a 16-bit UUID ``xxxx`` is ``0000xxxx`` + this.
 BASE_UUID_SUFFIX = "-0000-1000-8000-00805f9b34fb"
@@ -88,4 +88,13 @@ class Source(Protocol):
 
     def adverts(self) -> AsyncIterator[Advert]:
         """Yield advertisements until the source ends (files) or is cancelled (radios)."""
+        ...
+
+
+@runtime_checkable
+class BatchSource(Source, Protocol):
+    """A source that can hand over, in order, the advertisements that arrived or fell due together."""
+
+    def batches(self) -> AsyncIterator[Sequence[Advert]]:
+        """Yield non-empty lists of advertisements; flattened, they are exactly what ``adverts()`` yields."""
         ...

@@ -351,3 +351,46 @@ def test_hci_filter_layout():
     assert (
         type_mask == 1 << 4 and ev0 == (1 << 0x0E) | (1 << 0x0F) and ev1 == 1 << (0x3E - 32) and opcode == 0
     )
+
+
+async def test_hci_source_hands_over_queued_packets_as_one_batch(clock):
+    """
+    What the socket holds at a wake-up comes as one batch stamped with one clock reading, in order; a
+    flood comes in batches of at most DRAIN_MAX packets; flattened, it is what the per-advert view yields.
+    """
+    import asyncio
+    import socket
+
+    from listenpost.agent.sources.hci import DRAIN_MAX, HciSource
+
+    def legacy(rssi: int) -> bytes:
+        return LEGACY[:-1] + (rssi & 0xFF).to_bytes(1, "big")
+
+    ours, theirs = socket.socketpair(socket.AF_UNIX, socket.SOCK_SEQPACKET)
+    src = HciSource(0, clock, sock=ours)
+    it = src.batches()
+    for rssi in (-50, -51, -52):
+        theirs.send(legacy(rssi))
+    first = await asyncio.wait_for(it.__anext__(), 5)
+    assert [(a.rssi_dbm, a.t_mono_ns) for a in first] == [(r, 1000 * 10**9) for r in (-50, -51, -52)]
+    await clock.advance(1.5)
+    for pkt in (legacy(-60), b"\x04\x0e\x04\x01\x0c\x20\x00", legacy(-61)):  # a Command Complete between
+        theirs.send(pkt)
+    second = await asyncio.wait_for(it.__anext__(), 5)
+    assert [(a.rssi_dbm, a.t_mono_ns) for a in second] == [(-60, 1001_500_000_000), (-61, 1001_500_000_000)]
+    n = DRAIN_MAX + 6
+    for i in range(n):
+        theirs.send(legacy(-40 - i))
+    theirs.close()
+    rest = [b async for b in it]
+    assert [len(b) for b in rest] == [DRAIN_MAX, 6]
+    assert [a.rssi_dbm for b in rest for a in b] == [-40 - i for i in range(n)]
+    assert src.stats()["packets"] == 6 + n and src.stats()["adverts"] == 5 + n
+
+    # the per-advert view of the same packets
+    ours, theirs = socket.socketpair(socket.AF_UNIX, socket.SOCK_SEQPACKET)
+    for i in range(n):
+        theirs.send(legacy(-40 - i))
+    theirs.close()
+    singles = await asyncio.wait_for(_drain(HciSource(0, clock, sock=ours)), 5)
+    assert singles == [a for b in rest for a in b]

@@ -243,6 +243,32 @@ class TestPrivacy:
         )
 
 
+def test_a_batch_gives_what_one_by_one_gives():
+    """process_batch over any split of a mixed stream: the readings and counters of process per advert."""
+    rng = random.Random(5)
+    adverts = []
+    for i in range(600):
+        kind = rng.randrange(4)
+        addr = f"D0:00:00:00:00:{i % 7:02X}"
+        if kind == 0:
+            adverts.append(ibeacon(addr, VENUE, 7, rng.randrange(4), i, -40 - i % 50))
+        elif kind == 1:
+            adverts.append(eddy_uid(addr, NAMESPACE, rng.randrange(1, 3), i))
+        elif kind == 2:
+            adverts.append(eddy_tlm(addr, i))  # matched only after a UID from the same address
+        else:
+            adverts.append(lpx(addr, rng.randrange(1, 9), i))
+    tags = [f"ibeacon:{VENUE}:7:1", f"eddystone:{NAMESPACE.hex()}:000000000001", "lpx:00000003"]
+    one = build_pipeline(tags, [LPX], offset_db=1.5)
+    singles = [r for a in adverts if (r := one.process(a)) is not None]
+    assert singles and one.stats()["tlm_unmatched"] and one.stats()["telemetry_total"]
+    for size in (1, 7, 64, len(adverts)):
+        many = build_pipeline(tags, [LPX], offset_db=1.5)
+        batched = [r for i in range(0, len(adverts), size) for r in many.process_batch(adverts[i : i + size])]
+        assert batched == singles and many.stats() == one.stats(), size
+    assert build_pipeline(tags).process_batch([]) == []
+
+
 @pytest.mark.parametrize("offset", [0.0, -4.0])
 def test_readings_per_tag_match_a_direct_count(offset):
     """Every registered advert becomes exactly one reading; nothing is duplicated or lost."""

@@ -326,27 +326,29 @@ TIMES = [10.0, 10.5, 12.0, 12.0, 15.0]
 
 
 @pytest.mark.parametrize(
-    ("speed", "offsets"),
+    ("speed", "offsets", "sleeps"),
     [
-        (1.0, [0.0, 0.5, 2.0, 2.0, 5.0]),
-        # due at 0.2 and 0.5, but the wake-up at 0.05 allows the next one only a grain (0.25 s) later
-        (10.0, [0.0, 0.05, 0.3, 0.3, 0.55]),
-        (0.0, [0.0, 0.0, 0.0, 0.0, 0.0]),
+        # due at 2.0, but the wake-up at 0.5 allows the next one only a grain (2 s) later
+        (1.0, [0.0, 0.5, 2.5, 2.5, 5.0], 3),
+        # due at 0.2, 0.2 and 0.5, but the wake-up at 0.05 allows the next one only a grain later,
+        # which hands over all three
+        (10.0, [0.0, 0.05, 2.05, 2.05, 2.05], 2),
+        (0.0, [0.0, 0.0, 0.0, 0.0, 0.0], 0),
     ],
 )
-async def test_pacing_on_virtual_clock(tmp_path, speed, offsets):
+async def test_pacing_on_virtual_clock(tmp_path, speed, offsets, sleeps):
     """
     At speed S each advert comes (t_i - t_0)/S of clock time after the first, or when due sooner than
     a grain after the last wake-up, one grain after that wake-up; speed 0 does not wait.
     """
-    assert ReplaySource.PACING_GRAIN_S == 0.25  # the offsets below are worked out for it
+    assert ReplaySource.PACING_GRAIN_S == 2.0  # the offsets below are worked out for it
     p = tmp_path / "r.jsonl"
     _write(p, [_adv(t, i) for i, t in enumerate(TIMES)])
     clock = CountingClock()
     got = await _run_paced(open_replay([p], clock, speed), clock, 10)
     assert [g[0] - 1000.0 for g in got] == pytest.approx(offsets, abs=1e-9)
     assert [g[1] for g in got] == [round(t * 1e9) for t in TIMES]  # board time as recorded
-    assert len(clock.sleeps) == (0 if speed == 0 else 3)  # no sleep for the first and for equal times
+    assert len(clock.sleeps) == sleeps  # no sleep for the first, for equal times, nor for what is already due
 
 
 async def test_slow_consumer_is_not_slowed_further(tmp_path):
@@ -402,7 +404,8 @@ async def test_several_files_play_in_order_including_btsnoop(tmp_path):
         w.write_advert(1_700_000_000_500_000, _adv(0, 4))
     clock = VirtualClock(start=0.0)
     got = await _run_paced(open_replay([rec, cap], clock, 1.0), clock, 5)
-    assert [g[0] for g in got] == pytest.approx([0.0, 1.0, 1.0, 1.5])
+    # the last is due at 1.5, but the wake-up at 1.0 allows the next one only a grain (2 s) later
+    assert [g[0] for g in got] == pytest.approx([0.0, 1.0, 1.0, 3.0])
     assert [g[1] for g in got] == [100_000_000_000, 101_000_000_000, 0, 500_000_000]
 
 
@@ -463,3 +466,95 @@ async def test_paced_replay_sleeps_per_grain_not_per_advert(tmp_path):
         due = 1000.0 + (t - times[0])
         assert due - 1e-9 <= at <= due + grain + 1e-9, (at, due)
         assert t_ns == round(t * 1e9)  # board time as recorded, however late the hand-over
+
+
+# ---------------------------------------------------------------- batches
+
+
+async def _run_batches(
+    src: ReplaySource, clock: VirtualClock, total: float
+) -> list[tuple[float, list[Advert]]]:
+    got: list[tuple[float, list[Advert]]] = []
+
+    async def consume() -> None:
+        async for batch in src.batches():
+            got.append((clock.monotonic(), list(batch)))
+
+    task = asyncio.create_task(consume())
+    await settle()
+    await clock.advance(total)
+    await asyncio.wait_for(task, 5)
+    return got
+
+
+async def test_batches_hand_each_advert_over_once_in_order_as_one_by_one(tmp_path):
+    """
+    Paced batches, flattened, are the recording itself: same order, nothing dropped or repeated across
+    wake-ups, board times as recorded and equal to those of one wake-up per advert. Each batch comes at
+    one wake-up, every advert in it due by then and at most one grain late.
+    """
+    n, span = 2000, 10.0
+    times = sorted(10.0 + span * ((i * 7919) % n) / n for i in range(n))
+    p = tmp_path / "r.jsonl"
+    _write(p, [_adv(t, i % 200, -40 - i % 50) for i, t in enumerate(times)])
+    recorded = list(read_recording(p)[1])
+
+    clock = CountingClock()
+    src = open_replay([p], clock, 1.0)
+    got = await _run_batches(src, clock, span + 2)
+    assert all(batch for _, batch in got)
+    assert [a for _, batch in got for a in batch] == recorded
+    assert src.count == n
+    grain = ReplaySource.PACING_GRAIN_S
+    assert len(clock.sleeps) <= span / grain + 2  # wake-ups; a batch is split past YIELD_EVERY
+    assert max(len(batch) for _, batch in got) <= ReplaySource.YIELD_EVERY
+    for at, batch in got:
+        for a in batch:
+            due = 1000.0 + (a.t_mono_ns / 1e9 - times[0])
+            assert due - 1e-9 <= at <= due + grain + 1e-9, (at, due)
+
+    # the per-advert path: no grain, one wake-up per advert, handed over one at a time
+    clock1 = CountingClock()
+    one = open_replay([p], clock1, 1.0)
+    one.PACING_GRAIN_S = 0.0  # type: ignore[misc]  # an instance attribute shadows the class constant
+    singles = await _run_paced(one, clock1, span + 2)
+    assert [t for _, t in singles] == [a.t_mono_ns for _, batch in got for a in batch]
+    assert len(clock1.sleeps) > len(clock.sleeps) * 10
+
+
+async def test_unpaced_batches_are_bounded_and_let_the_loop_turn(tmp_path):
+    """Speed 0: batches of at most YIELD_EVERY, all adverts once, another task runs between batches."""
+    n = 1000
+    p = tmp_path / "r.jsonl"
+    _write(p, [_adv(i * 0.01, i % 200) for i in range(n)])
+    ticks: list[int] = []
+    count = 0
+
+    async def other() -> None:
+        while True:
+            ticks.append(count)
+            await asyncio.sleep(0)
+
+    t = asyncio.create_task(other())
+    await asyncio.sleep(0)
+    sizes = []
+    async for batch in open_replay([p], VirtualClock(), 0).batches():
+        sizes.append(len(batch))
+        count += len(batch)
+    t.cancel()
+    cap = ReplaySource.YIELD_EVERY
+    assert sum(sizes) == n and max(sizes) <= cap and len(sizes) == -(-n // cap)
+    assert {c for c in ticks if 0 < c < n} == set(range(cap, n, cap))  # a turn after each full batch
+
+
+async def test_a_bad_line_ends_the_batches_after_handing_over_what_came_before(tmp_path):
+    """The adverts before a broken line still arrive, then the error names file:line."""
+    p = tmp_path / "r.jsonl"
+    _write(p, [_adv(i * 0.01, i) for i in range(5)])
+    p.write_text(p.read_text() + '{"t": 1.0, "a": "not an address", "at": 1, "r": -70}\n')
+    src = open_replay([p], VirtualClock(), 0)
+    got: list[Advert] = []
+    with pytest.raises(CaptureFormatError, match=r"r\.jsonl:7: a: must be an upper-case colon address"):
+        async for batch in src.batches():
+            got.extend(batch)
+    assert [a.t_mono_ns for a in got] == [round(i * 0.01 * 1e9) for i in range(5)] and src.count == 5

@@ -6,6 +6,7 @@ under tmp_path, the real uplink and heartbeat against a loopback collector, on v
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import gzip
 import json
 import os
@@ -418,6 +419,122 @@ async def test_contract_with_the_real_collector_enroll_then_upload(aiohttp_serve
     counts = {c.board: c for c in await store.board_counts()}
     assert counts["g1-a"].readings_total == len(expected)
     assert (await store.latest_heartbeats())["g1-a"].stats["adverts_seen"] == len(adverts)
+
+
+def lose_spool(path: Path, epoch: str) -> list[int]:
+    """The seqs of ``epoch`` a spool file still holds, unsent; then the file is gone (a failed card)."""
+    import sqlite3
+
+    with contextlib.closing(sqlite3.connect(path)) as con:
+        seqs = [s for (s,) in con.execute("SELECT seq FROM batches WHERE epoch = ? ORDER BY seq", (epoch,))]
+    for suffix in ("", "-wal", "-shm"):
+        Path(str(path) + suffix).unlink(missing_ok=True)
+    return seqs
+
+
+async def test_a_lost_spool_with_batches_unsent_is_reported_as_exactly_those_batches(
+    aiohttp_server, tmp_path
+):
+    """
+    A board keeps sealing while the collector refuses its uploads (its heartbeats still get through), then
+    its spool file is lost and it starts over in a new epoch. Its heartbeats had said how far the old
+    epoch reached, so once a batch of the new epoch arrives the collector's loss check names exactly the
+    batches the lost file held, as the tail of the old epoch.
+    """
+    from listenpost.agent.client.enroll import EnrollStatus, enroll
+    from listenpost.agent.config import load_agent_config
+    from listenpost.collector.app import create_app
+    from listenpost.collector.config import CollectorSettings
+    from listenpost.collector.http.auth import code_hash
+    from listenpost.collector.monitor import LOSS_GRACE_SECONDS, MONITOR
+    from listenpost.collector.state import STORE
+    from listenpost.collector.store import Board, Enrollment
+
+    clock = VirtualClock()
+    app = create_app(CollectorSettings(state_dir=str(tmp_path / "collector")), clock=clock, run_monitor=False)
+    (tmp_path / "collector").mkdir()
+    refusing = False
+
+    @web.middleware
+    async def outage(request: web.Request, handler: Any) -> web.StreamResponse:
+        # Fault injected at the network edge: the batch endpoint is unavailable, the rest answers.
+        if refusing and request.path == "/v1/batches":
+            return web.json_response({"error": {"code": "unavailable"}}, status=503)
+        return await handler(request)
+
+    app.middlewares.append(outage)
+    server = await aiohttp_server(app)
+    store = app[STORE]
+    await store.add_board(
+        Board("g1-a", "G1", "ground", clock.time()),
+        Enrollment("g1-a", code_hash("BRK-G1A-7731"), clock.time() + 3600),
+    )
+    await store.add_tags([tag(1), tag(2)], clock.time())
+    url = str(server.make_url("")).rstrip("/")
+    assert (
+        await enroll(url, "BRK-G1A-7731", tmp_path / "board", clock=clock)
+    ).status is EnrollStatus.ENROLLED
+    cfg = load_agent_config(tmp_path / "board" / "agent.yaml")
+    spool_file = cfg.state_path(cfg.spool.path)
+
+    async def advance_to(t: float) -> None:  # seconds after the agent started
+        end = started + t
+        while clock.monotonic() < end:
+            await asyncio.sleep(0.002)  # bounded real wait for loopback I/O and the spool's thread
+            await clock.advance(0.25)
+
+    async with aiohttp.ClientSession() as session:
+        started = clock.monotonic()
+        adverts, _ = traffic(clock, 40.0, [1, 2])
+        service = AgentService(
+            cfg, clock=clock, source=ListSource(clock, adverts, hang=True), session=session
+        )
+        task = asyncio.create_task(service.run())
+        await asyncio.wait_for(service.started.wait(), 10)
+        await advance_to(15.0)
+        refusing = True
+        # Past the last advert: everything sealed, and heartbeats (every 10 s) have announced it.
+        await advance_to(70.0)
+        old_epoch = service.spool.stats().epoch
+        service.request_stop()
+        await run_on_virtual_time(clock, task)
+    unsent = await asyncio.to_thread(lose_spool, spool_file, old_epoch)
+    assert len(unsent) >= 5 and unsent == list(range(unsent[0], unsent[-1] + 1)), unsent
+
+    refusing = False
+    async with aiohttp.ClientSession() as session:
+        adverts, _ = traffic(clock, 10.0, [1, 2])
+        task = asyncio.create_task(
+            run_agent(
+                cfg,
+                clock=clock,
+                source=ListSource(clock, adverts),
+                exit_when_source_ends=True,
+                session=session,
+            )
+        )
+        assert await run_on_virtual_time(clock, task) == 0
+    monitor = app[MONITOR]
+    assert (await monitor.run_once()).losses == []  # inside the grace period
+    await clock.advance(LOSS_GRACE_SECONDS + 1)
+    losses = (await monitor.run_once()).losses
+    assert [(e.board, e.detail) for e in losses] == [
+        (
+            "g1-a",
+            {
+                "epoch": old_epoch,
+                "first_seq": unsent[0],
+                "last_seq": unsent[-1],
+                "batches": len(unsent),
+                "tail": True,
+            },
+        )
+    ]
+    from listenpost.collector.status import event_text
+
+    assert event_text("loss", losses[0].detail) == (
+        f"batches {unsent[0]}–{unsent[-1]} lost (sealed on the board, never sent before its spool started a new epoch)"
+    )
 
 
 async def test_a_stop_with_the_disk_full_and_no_collector_exits_1_naming_the_lost_readings(

@@ -399,6 +399,24 @@ class TestDegraded:
         assert sum(x.n_readings for x in got) == 3010
         await spool.close()
 
+    async def test_a_batch_is_queued_as_its_readings_one_by_one(
+        self, tmp_path: Path, clock: VirtualClock
+    ) -> None:
+        """add_many keeps order and, past the memory bound, drops and counts as add per reading does."""
+        one = await open_spool(tmp_path / "one.sqlite", clock, max_pending_readings=100)
+        many = await open_spool(tmp_path / "many.sqlite", clock, max_pending_readings=100)
+        readings = [reading(i) for i in range(130)]
+        for r in readings:
+            one.add(r)
+        for i in range(0, len(readings), 40):
+            many.add_many(readings[i : i + 40])
+        many.add_many([])
+        assert (many.stats().readings_pending, many.stats().dropped_readings) == (100, 30)
+        got = [await s.seal(boot="b", offset_db=0) for s in (one, many)]
+        assert got[0] is not None and got[1] is not None and got[0].content == got[1].content
+        await one.close()
+        await many.close()
+
     async def test_ram_buffer_is_capped_and_counted(self, tmp_path: Path, clock: VirtualClock) -> None:
         """Past max_pending_readings the oldest readings are dropped and counted, durably after the next seal."""
         path = tmp_path / "s.sqlite"

@@ -92,6 +92,17 @@ def test_rate_meter_slides_in_buckets() -> None:
         RateMeter(60.0, buckets=0)
 
 
+def test_a_batch_counts_as_its_readings_one_by_one() -> None:
+    """note_many (a pipeline batch, one clock reading) counts what note per reading at that time counts."""
+    keys = ["a", "b", "a", "c", "a"] * 20
+    one, many = RateMeter(60.0, buckets=12), RateMeter(60.0, buckets=12)
+    for k, t in enumerate(range(1000, 1100, 5)):
+        for key in keys[k::7]:
+            one.note(key, t + PHASE)
+        many.note_many(keys[k::7], t + PHASE)
+    assert many.rates(1101.0) == one.rates(1101.0) and len(one.rates(1101.0)) == 3
+
+
 async def test_right_after_start_the_span_is_what_was_covered() -> None:
     """Ten seconds in, two 5 s buckets are complete: the rate is counted over 10 s, not 60."""
     clock = VirtualClock()  # starts at 1000.0, a bucket edge

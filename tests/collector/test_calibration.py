@@ -209,11 +209,21 @@ def _watch_plan(state_dir) -> None:
 
 
 async def _watched_venue(
-    store, tmp_path, clock, *, drop_board=None, drop_at=None, minutes=60, drop_db=6.0, restarts=()
+    store,
+    tmp_path,
+    clock,
+    *,
+    drop_board=None,
+    drop_at=None,
+    minutes=60,
+    drop_db=6.0,
+    restarts=(),
+    handovers=(),
 ):
     """Three boards hearing two reference tags every second (σ 5 dB, whole dBm) for ``minutes``; the monitor
     runs a round every 30 s on the virtual clock, and is replaced by a new one (a restarted collector, its
-    memory gone) at each of ``restarts`` (seconds). Returns the ``calibration_shift`` events with their times."""
+    memory gone) at each of ``restarts`` (seconds); at each of ``handovers`` the lead passes between two
+    collectors that both keep running. Returns the ``calibration_shift`` events with their times."""
     from listenpost.collector.monitor import Monitor
     from listenpost.collector.state import Runtime
     from listenpost.collector.store import Board, Enrollment
@@ -227,6 +237,7 @@ async def _watched_venue(
         await store.add_board(Board(b, "G0 Foyer", "ground", t0, enrolled_at=t0), Enrollment(b, f"h-{b}", t0))
     await store.add_tags(REF_TAGS, t0)
     monitor = Monitor(store, clock=clock, settings=settings, runtime=Runtime())
+    other = Monitor(store, clock=clock, settings=settings, runtime=Runtime())
     rng = np.random.default_rng(11)
     events = []
     step = 30
@@ -234,6 +245,8 @@ async def _watched_venue(
         start = t0 + k * step
         if start - t0 in restarts:
             monitor = Monitor(store, clock=clock, settings=settings, runtime=Runtime())
+        if start - t0 in handovers:
+            monitor, other = other, monitor
         for b, means in WATCHED.items():
             mean = np.array([means[i % 2] for i in range(step)])
             if b == drop_board and start >= t0 + drop_at:
@@ -278,6 +291,16 @@ async def test_watch_goes_on_from_its_stored_levels_across_restarts(store, tmp_p
     saved = await store.watch_baselines()
     assert set(saved) == set(WATCHED) and saved["g0-b"].raised and not saved["g0-a"].raised
     assert set(saved["g0-b"].levels) == set(REF_TAGS)
+
+
+async def test_a_collector_leading_again_goes_on_from_what_the_other_leader_stored(store, tmp_path, clock):
+    """The lead passes to another collector a minute after g0-b's drop and comes back after that one raised
+    the shift: the first collector, still running all along, takes the stored memory and does not raise
+    the same shift again."""
+    events = await _watched_venue(
+        store, tmp_path, clock, drop_board="g0-b", drop_at=20 * 60.0, minutes=50, handovers=(21 * 60, 40 * 60)
+    )
+    assert [(e.board, 21 * 60 < at <= 40 * 60) for at, e in events] == [("g0-b", True)], events
 
 
 async def test_watch_is_quiet_for_healthy_boards_over_an_hour(store, tmp_path, clock):

@@ -28,6 +28,23 @@ async def _pair(
     return clients
 
 
+async def _interval(clock: VirtualClock, *monitors) -> None:
+    """One monitor interval of virtual time, then wait until every monitor's loop has run its round and
+    sleeps again. The wait is real time (PostgreSQL round trips on loopback) and bounded; no assertion
+    depends on how long it takes."""
+    ran = [m.runtime.monitor_rounds for m in monitors]
+    await clock.advance(5)
+    for _ in range(3000):
+        await settle()
+        if all(m.runtime.monitor_rounds > n for m, n in zip(monitors, ran, strict=True)):
+            if clock.pending_sleepers >= len(monitors):
+                return
+        await asyncio.sleep(0.005)
+    raise AssertionError(
+        f"monitor rounds did not finish: {[m.runtime.monitor_rounds for m in monitors]} {ran}"
+    )
+
+
 # pg_factory comes first so the apps (and their monitors) stop before the factory closes the stores.
 async def test_a_batch_posted_to_both_collectors_at_once_is_stored_once(
     pg_factory, aiohttp_client, tmp_path, clock
@@ -67,9 +84,7 @@ async def test_one_collector_leads_the_monitor_and_the_other_takes_over(
         assert r.status == 200
     ma, mb = a.app[MONITOR], b.app[MONITOR]
     for _ in range(12):  # 12 rounds of 5 s; u0-a never calls in, so it turns silent once
-        await clock.advance(5)
-        await asyncio.sleep(0.02)  # loopback I/O to PostgreSQL is real: let both loops reach their sleep
-        await settle()
+        await _interval(clock, ma, mb)
     assert {ma.rounds_led > 0, mb.rounds_led > 0} == {True, False}, (ma.rounds_led, mb.rounds_led)
     leader, follower, leader_client = (ma, mb, a) if ma.rounds_led else (mb, ma, b)
     assert leader.rounds_led >= 10
@@ -83,7 +98,5 @@ async def test_one_collector_leads_the_monitor_and_the_other_takes_over(
     await leader_client.app[STORE].close()
     before = follower.rounds_led
     for _ in range(4):
-        await clock.advance(5)
-        await asyncio.sleep(0.02)
-        await settle()
+        await _interval(clock, follower)
     assert follower.rounds_led > before

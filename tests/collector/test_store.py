@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import asyncio
+import contextlib
+import dataclasses
 import random
 import sqlite3
 
@@ -435,6 +437,55 @@ async def test_seq_holes_match_a_plain_model(store):
     assert await store.seq_holes("g5-a") == expected
 
 
+def _spool(epoch: str, next_seq, **more) -> dict:
+    """A heartbeat's stats as the agent sends them (agent/service.py ``stats``), spool part only."""
+    return {"spool": {"epoch": epoch, "next_seq": next_seq, "batches": 0, **more}}
+
+
+async def test_a_tail_left_behind_by_a_new_epoch_is_a_hole(store):
+    """Seqs a heartbeat announced in an epoch the board has left, never sent, are a tail hole once a batch
+    of the new epoch arrived; late batches shrink it; malformed or older heartbeats announce nothing."""
+    old, new, unseen = "a1b2c3d4e5f60718", "0badc0ffee0ddf00", "5eed5eed5eed5eed"
+    await add_boards(store, "u2-a", "g0-a")
+    for seq in range(4):
+        await store.ingest(make_batch("u2-a", seq, epoch=old))
+    t = 1_800_000_000.0
+    await store.add_heartbeat(Heartbeat("u2-a", t, "boot-1", _spool(old, 7)))  # sealed 0..6
+    assert await store.seq_holes() == []  # still its epoch: 4..6 are on their way
+    await store.add_heartbeat(Heartbeat("u2-a", t + 30, "boot-2", _spool(new, 1)))
+    assert await store.seq_holes() == []  # no batch of the new epoch yet: the old one may still drain
+    await store.ingest(make_batch("u2-a", 4, epoch=old))
+    await store.ingest(make_batch("u2-a", 0, epoch=new))
+    assert await store.seq_holes() == [SeqHole("u2-a", old, 5, 6, tail=True)]
+    await store.ingest(make_batch("u2-a", 5, epoch=old))  # a late one after all
+    assert await store.seq_holes("u2-a") == [SeqHole("u2-a", old, 6, 6, tail=True)]
+    # Hostile or foreign figures change nothing; the heartbeat itself is still stored.
+    for stats in (
+        _spool("NOT-AN-EPOCH", 99),
+        _spool(old, "99"),
+        _spool(old, True),
+        _spool(old, -1),
+        _spool(old, 2**60),
+        _spool(old, 99.0),
+        {"spool": ["epoch", old]},
+        {"spool_depth": 3},
+    ):
+        await store.add_heartbeat(Heartbeat("u2-a", t + 40, "boot-2", stats))
+    # An older heartbeat arriving late does not take the board back to the old epoch.
+    await store.add_heartbeat(Heartbeat("u2-a", t + 10, "boot-1", _spool(old, 9)))
+    assert await store.seq_holes("u2-a") == [SeqHole("u2-a", old, 6, 8, tail=True)]
+    assert len(await store.heartbeats("u2-a", since=t + 40)) == 8
+    # An epoch no batch ever opened has no span to extend; another board is not touched.
+    await store.ingest(make_batch("g0-a", 0, epoch=old))
+    await store.add_heartbeat(Heartbeat("g0-a", t, "boot-1", _spool(unseen, 5)))
+    await store.ingest(make_batch("g0-a", 0, epoch=unseen))
+    assert await store.seq_holes("g0-a") == []
+    # Every batch of the tail that arrives closes it (a dead-lettered one would be a gap record).
+    gap = {"first_seq": 6, "last_seq": 8, "readings": 30, "reason": "dead_letter", "epoch": old}
+    assert (await store.ingest(make_batch("u2-a", 1, n=0, epoch=new, gap=gap))).status is IngestStatus.STORED
+    assert await store.seq_holes() == []
+
+
 # -- clock samples, heartbeats, events, telemetry ------------------------------------------------------------
 
 
@@ -731,7 +782,7 @@ async def test_migrations_from_empty_and_from_an_older_version(store_factory: St
     await add_boards(store, "g0-a")
     assert (await store.ingest(make_batch("g0-a", 0))).status is IngestStatus.STORED  # v2 tables exist
     await store.close()
-    assert await _raw_migrate(store_factory) == mig.latest(_versions(store_factory)) == 5
+    assert await _raw_migrate(store_factory) == mig.latest(_versions(store_factory)) == 7
 
 
 async def test_newer_schema_is_refused(store_factory: StoreFactory):
@@ -739,7 +790,7 @@ async def test_newer_schema_is_refused(store_factory: StoreFactory):
     await _raw_migrate(
         store_factory, sql="INSERT INTO schema_version (version, name, applied_at) VALUES (9, 'future', 'x')"
     )
-    with pytest.raises(SchemaTooNew, match="version 9 is newer than this listenpost supports \\(5\\)"):
+    with pytest.raises(SchemaTooNew, match="version 9 is newer than this listenpost supports \\(7\\)"):
         await store_factory.open()
 
 
@@ -758,6 +809,289 @@ async def test_a_failing_migration_leaves_the_previous_version(store_factory: St
         await _raw_migrate(store_factory, sql="SELECT * FROM half_made")
     store = await store_factory.open()  # still the latest version: the current code opens it
     assert await store.list_boards() == []
+
+
+# -- PostgreSQL: readings in day partitions ------------------------------------------------------------------
+
+DAY = 86400.0
+MIDNIGHT = 1_799_971_200.0
+"""2027-01-15 00:00 UTC (1_800_000_000 is 08:00 that day)."""
+
+
+@contextlib.asynccontextmanager
+async def _admin(factory: StoreFactory):
+    """A plain connection on the test schema, beside the store."""
+    import asyncpg
+
+    con = await asyncpg.connect(PG_URL, timeout=5)
+    try:
+        await con.execute(f'SET search_path TO "{factory.schema}"')
+        yield con
+    finally:
+        await con.close()
+
+
+async def _days(factory: StoreFactory) -> list[str]:
+    """The partitions of readings now, by name."""
+    async with _admin(factory) as con:
+        rows = await con.fetch(
+            "SELECT c.relname FROM pg_inherits i JOIN pg_class c ON c.oid = i.inhrelid "
+            "WHERE i.inhparent = 'readings'::regclass"
+        )
+    return sorted(r[0] for r in rows)
+
+
+def timed_batch(board: str, seq: int, times, **kw) -> IngestBatch:
+    """`make_batch`'s batch with one reading at each of these collector times."""
+    times = np.asarray(times, dtype=np.float64)
+    kw.setdefault("received_at", float(times.max()))
+    return dataclasses.replace(make_batch(board, seq, n=len(times), **kw), t_collector=times)
+
+
+async def test_migration_7_moves_every_reading_of_a_v5_database_into_its_day(pg_factory: StoreFactory):
+    """Readings of a v5 database over five days, midnight edges included, each land in their UTC day's
+    partition with every value kept; the CHECK constraints and the BRIN index hold on every day."""
+    from listenpost.collector.store.postgres import partition_name, reading_day
+
+    assert await _raw_migrate(pg_factory, upto=5) == 5
+    rng = np.random.default_rng(6)
+    edges = MIDNIGHT + DAY * np.arange(-1, 3)
+    t = np.concatenate(
+        [rng.uniform(MIDNIGHT - DAY, MIDNIGHT + 2.5 * DAY, 3000), edges, np.nextafter(edges, -np.inf)]
+    )
+    rows = [
+        (float(x), 1000 * i, 1 + i % 3, 1 + i % 4, 1, int(rng.integers(-2000, 501))) for i, x in enumerate(t)
+    ]
+    cols = ["t_collector", "t_board_ms", "batch_id", "tag_id", "board_id", "rssi_dd"]
+    async with _admin(pg_factory) as con:
+        await con.execute("INSERT INTO boards (name, room, created_at) VALUES ('g0-a', 'G0 Foyer', 0)")
+        await con.executemany("INSERT INTO tags (tag) VALUES ($1)", [(x,) for x in TAGS])
+        await con.executemany(
+            "INSERT INTO batches (board_id, epoch, seq, digest, boot, n, received_at, offset_dd) "
+            "VALUES (1, 'a1b2c3d4e5f60718', $1, 'd', 'boot-1', 0, 0, 25)",
+            [(s,) for s in range(3)],
+        )
+        await con.copy_records_to_table("readings", records=rows, columns=cols)
+        before = sorted(tuple(r) for r in await con.fetch(f"SELECT {', '.join(cols)} FROM readings"))
+    assert len(before) == len(t)
+
+    store = await pg_factory.open()
+    async with _admin(pg_factory) as con:
+        assert await con.fetchval("SELECT max(version) FROM schema_version") == 7
+        after = await con.fetch(f"SELECT tableoid::regclass::text, {', '.join(cols)} FROM readings")
+        brin = {
+            r[0]
+            for r in await con.fetch(
+                "SELECT tablename FROM pg_indexes WHERE schemaname = current_schema() "
+                "AND indexdef LIKE '%USING brin (t_collector)%'"
+            )
+        }
+        assert await con.fetchval("SELECT to_regclass('readings_unpartitioned')") is None
+    assert sorted(tuple(r)[1:] for r in after) == before
+    days = {f"readings_202701{d}" for d in (13, 14, 15, 16, 17)}
+    assert {r[0] for r in after} == days
+    placed = {r[1]: r[0] for r in after}
+    assert placed[MIDNIGHT] == "readings_20270115"
+    assert placed[float(np.nextafter(MIDNIGHT, -np.inf))] == "readings_20270114"
+    assert all(r[0] == partition_name(reading_day(r[1])) for r in after)  # the SQL and Python names agree
+    assert brin == days | {"readings"}
+    assert len((await store.readings(-np.inf, np.inf)).t_collector) == len(t)
+    with pytest.raises(BadBatch) as e:
+        await store.ingest(make_batch("g0-a", 9, t0=MIDNIGHT, rssi=np.full(10, 600, dtype=np.int32)))
+    assert e.value.field == "rssi_dd"
+
+
+async def test_ingest_makes_missing_days_and_midnight_readings_land_in_the_new_day(pg_factory: StoreFactory):
+    """A batch on days without a partition makes them; a reading at midnight belongs to the day it starts."""
+    store = await pg_factory.open()
+    await add_boards(store, "g0-a")
+    assert await _days(pg_factory) == []
+    times = [
+        MIDNIGHT - 1.0,
+        float(np.nextafter(MIDNIGHT, -np.inf)),
+        MIDNIGHT,
+        MIDNIGHT + 0.001,
+        MIDNIGHT + DAY - 0.5,
+    ]
+    assert (await store.ingest(timed_batch("g0-a", 0, times))).status is IngestStatus.STORED
+    assert await _days(pg_factory) == ["readings_20270114", "readings_20270115"]
+    async with _admin(pg_factory) as con:
+        placed = {
+            r[1]: r[0] for r in await con.fetch("SELECT tableoid::regclass::text, t_collector FROM readings")
+        }
+    assert placed == dict(zip(times, ["readings_20270114"] * 2 + ["readings_20270115"] * 3, strict=True))
+    # Ahead of need: every day the range touches, each once, whichever collector asks.
+    assert await store.ensure_reading_days(MIDNIGHT + 0.5 * DAY, MIDNIGHT + 1.5 * DAY) == 1
+    other = await pg_factory.open()
+    assert await other.ensure_reading_days(MIDNIGHT - DAY, MIDNIGHT + DAY) == 0
+    assert await _days(pg_factory) == ["readings_20270114", "readings_20270115", "readings_20270116"]
+    # A time no calendar day holds is refused by field name, and nothing of the batch is stored.
+    with pytest.raises(BadBatch) as e:
+        await store.ingest(timed_batch("g0-a", 1, [MIDNIGHT, 1e15]))
+    assert e.value.field == "t_collector"
+    assert len((await store.readings(-np.inf, np.inf)).t_collector) == len(times)
+
+
+async def test_retention_drops_whole_days_and_deletes_the_straddling_day_in_chunks(pg_factory: StoreFactory):
+    """Days wholly before the cut are dropped (at most max_chunks per call), the day holding the cut loses
+    its older rows in chunks, and the calls together return exactly the readings that went."""
+    store = await pg_factory.open()
+    await add_boards(store, "g0-a")
+    # Four days from 2027-01-14: 20 readings and one telemetry row every 3 hours.
+    telemetry = ({"tag": TAGS[1], "t_ms": 5, "battery_mv": 2980},)
+    times = [MIDNIGHT - DAY + s * 10800 + np.arange(20.0) for s in range(32)]
+    for s, ts in enumerate(times):
+        await store.ingest(timed_batch("g0-a", s, ts, telemetry=telemetry))
+    t = np.concatenate(times)
+    cut = MIDNIGHT + DAY + 6 * 3600 + 5.5  # 2027-01-16 06:00:05.5: six readings of that batch are older
+    first = await store.delete_readings_before(cut, chunk=4, max_chunks=1)
+    assert first == 160 + 4  # the first day whole, one chunk of the day holding the cut
+    assert await _days(pg_factory) == ["readings_20270115", "readings_20270116", "readings_20270117"]
+    total, calls = first, 1
+    while n := await store.delete_readings_before(cut, chunk=4, max_chunks=1):
+        total, calls = total + n, calls + 1
+    assert total == int((t < cut).sum()) == 160 + 160 + 46
+    assert calls == 12  # 46 rows of the straddling day in chunks of 4, one chunk per call
+    assert await _days(pg_factory) == ["readings_20270116", "readings_20270117"]
+    left = await store.readings(-np.inf, np.inf)
+    assert len(left.t_collector) == len(t) - total and left.t_collector.min() >= cut
+    async with _admin(pg_factory) as con:
+        assert await con.fetchval("SELECT count(*) FROM telemetry WHERE at < $1", cut) == 0
+        assert await con.fetchval("SELECT count(*) FROM telemetry") == sum(ts.max() >= cut for ts in times)
+    # Without a budget, in one call: the rest of the readings before a later cut.
+    later = MIDNIGHT + 2 * DAY + 1.0
+    assert await store.delete_readings_before(later, chunk=1000) == int(((t >= cut) & (t < later)).sum())
+    assert await _days(pg_factory) == ["readings_20270117"]
+
+
+async def test_a_day_detached_but_not_dropped_is_dropped_and_counted_on_the_next_pass(
+    pg_factory: StoreFactory,
+):
+    """A drop cut short after its detach (the process stopped) is finished by the next call, and counted."""
+    store = await pg_factory.open()
+    await add_boards(store, "g0-a")
+    for s in range(2):
+        await store.ingest(timed_batch("g0-a", s, MIDNIGHT - DAY + 60 * s + np.arange(20.0)))
+    await store.ingest(timed_batch("g0-a", 2, MIDNIGHT + np.arange(5.0)))
+    async with _admin(pg_factory) as con:
+        await con.execute("ALTER TABLE readings DETACH PARTITION readings_20270114")
+        await con.execute("ALTER TABLE readings_20270114 RENAME TO readings_20270114_dropped")
+    assert await store.delete_readings_before(MIDNIGHT - DAY) == 40
+    async with _admin(pg_factory) as con:
+        assert await con.fetchval("SELECT to_regclass('readings_20270114_dropped')") is None
+    assert len((await store.readings(-np.inf, np.inf)).t_collector) == 5
+
+
+async def test_two_collectors_making_the_same_days_at_once_both_succeed(pg_factory: StoreFactory):
+    """Two stores making days ahead, or ingesting into a day nobody made yet, at the same moment: no
+    failure, each day made once."""
+    a, b = await pg_factory.open(), await pg_factory.open()
+    await add_boards(a, "g0-a", "g0-b")
+    made = await asyncio.gather(
+        a.ensure_reading_days(MIDNIGHT, MIDNIGHT + 9 * DAY),
+        b.ensure_reading_days(MIDNIGHT, MIDNIGHT + 9 * DAY),
+    )
+    assert sorted(made) == [0, 10]
+    for k in range(5):
+        day = MIDNIGHT + (10 + k) * DAY
+        got = await asyncio.gather(
+            a.ingest(timed_batch("g0-a", k, [day + 1.0, day + 2.0])),
+            b.ingest(timed_batch("g0-b", k, [day + 3.0])),
+        )
+        assert [r.status for r in got] == [IngestStatus.STORED] * 2
+    assert len(await _days(pg_factory)) == 15
+    assert len((await a.readings(-np.inf, np.inf)).t_collector) == 15
+
+
+async def test_a_day_another_collector_dropped_is_made_again_at_ingest(pg_factory: StoreFactory):
+    """A store that still counts on a day another collector's retention dropped stores a late batch anyway."""
+    a, b = await pg_factory.open(), await pg_factory.open()
+    await add_boards(a, "g0-a")
+    await a.ingest(timed_batch("g0-a", 0, MIDNIGHT + np.arange(10.0)))
+    assert await b.delete_readings_before(MIDNIGHT + DAY) == 10
+    assert await _days(pg_factory) == []
+    assert (
+        await a.ingest(timed_batch("g0-a", 1, MIDNIGHT + 100 + np.arange(3.0)))
+    ).status is IngestStatus.STORED
+    assert await _days(pg_factory) == ["readings_20270115"]
+    assert len((await a.readings(-np.inf, np.inf)).t_collector) == 3
+
+
+async def test_day_ddl_behind_a_long_reader_gives_way_and_goes_through_afterwards(pg_factory: StoreFactory):
+    """While a transaction reads readings (an export, say), making or detaching a day cannot get its lock:
+    the pass makes and drops nothing, raises nothing and counts nothing; the next pass does it all."""
+    store = await pg_factory.open(lock_timeout_s=0.2)
+    await add_boards(store, "g0-a")
+    await store.ingest(timed_batch("g0-a", 0, MIDNIGHT - DAY + np.arange(30.0)))
+    await store.ingest(timed_batch("g0-a", 1, MIDNIGHT + np.arange(5.0)))
+    async with _admin(pg_factory) as con, con.transaction():
+        assert await con.fetchval("SELECT count(*) FROM readings") == 35  # holds its lock on readings
+        assert await store.ensure_reading_days(MIDNIGHT + DAY, MIDNIGHT + DAY) == 0
+        assert await store.delete_readings_before(MIDNIGHT) == 0
+    assert await _days(pg_factory) == ["readings_20270114", "readings_20270115"]
+    assert await store.ensure_reading_days(MIDNIGHT + DAY, MIDNIGHT + DAY) == 1
+    assert await store.delete_readings_before(MIDNIGHT) == 30
+    assert await _days(pg_factory) == ["readings_20270115", "readings_20270116"]
+
+
+def _relations(plan) -> set[str]:
+    """Every table an EXPLAIN (FORMAT JSON) plan reads."""
+    if isinstance(plan, list):
+        return set().union(*map(_relations, plan)) if plan else set()
+    if isinstance(plan, dict):
+        own = {plan["Relation Name"]} if "Relation Name" in plan else set()
+        return own.union(*(_relations(v) for v in plan.values()))
+    return set()
+
+
+async def test_export_across_days_matches_sqlite_and_reads_only_the_window_days(
+    pg_factory: StoreFactory, sqlite_factory: StoreFactory
+):
+    """A window over three days returns from the partitioned table exactly what SQLite's one table returns,
+    both through `readings` and through the export's scan; the plan reads only the window's days."""
+    import json
+
+    pg, lite = await pg_factory.open(), await sqlite_factory.open()
+    rng = np.random.default_rng(7)
+    for store in (pg, lite):
+        await add_boards(store, "g0-a", "g1-a")
+    for s in range(40):  # five days from 2027-01-13, two boards, distinct times
+        ts = np.sort(rng.uniform(MIDNIGHT - 2 * DAY, MIDNIGHT + 3 * DAY, 25))
+        rssi = rng.integers(-1000, -300, 25).astype(np.int32)
+        for store in (pg, lite):
+            assert (
+                await store.ingest(timed_batch(f"g{s % 2}-a", s, ts, rssi=rssi))
+            ).status is IngestStatus.STORED
+    lo, hi = MIDNIGHT - 3600.5, MIDNIGHT + DAY + 7200.0
+    want, got = await lite.readings(lo, hi), await pg.readings(lo, hi)
+    assert len(got.t_collector) > 0
+    for col in ("board", "tag", "t_collector", "rssi_dd", "offset_dd"):
+        np.testing.assert_array_equal(getattr(got, col), getattr(want, col))
+
+    async def scan(store) -> list[tuple]:
+        rows: list[tuple] = []
+
+        def sink(c) -> None:
+            rows.extend(
+                (c.board_names[int(b)], c.tag_names[int(g)], float(x), int(r), int(o))
+                for b, g, x, r, o in zip(
+                    c.board_id, c.tag_id, c.t_collector, c.rssi_dd, c.offset_dd, strict=True
+                )
+            )
+
+        await store.scan_readings(lo, hi, sink, chunk_rows=7)
+        return sorted(rows)
+
+    assert await scan(pg) == await scan(lite) != []
+    async with pg._acquire() as con:
+        plan = await con.fetchval(
+            "EXPLAIN (FORMAT JSON) SELECT board_id::int4, tag_id::int4, t_collector, rssi_dd::int4, batch_id::int8 "
+            "FROM readings WHERE t_collector >= $1 AND t_collector < $2",
+            lo,
+            hi,
+        )
+    assert len(await _days(pg_factory)) == 5
+    assert _relations(json.loads(plan)) == {"readings_20270114", "readings_20270115", "readings_20270116"}
 
 
 # -- durability settings and unavailability --------------------------------------------------------------------
