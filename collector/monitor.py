@@ -268,11 +268,16 @@ class Monitor:
         counts = {c.board: c for c in await self.store.board_counts()}
         latest = await self.store.latest_heartbeats()
         window = max(self.tracker.settings.deaf_window_s, self.tracker.settings.backlog_window_s)
+        # Every board's window of heartbeats in one query, not one per board.
+        recent = await self.store.recent_heartbeats(now - window - 2 * self.settings.heartbeat_seconds)
         # Readings per board a deaf-window ago, to tell whether the others heard tags meanwhile.
         self._totals.append((now, {n: c.readings_total for n, c in counts.items()}))
         while len(self._totals) > 1 and now - self._totals[1][0] >= self.tracker.settings.deaf_window_s:
             self._totals.popleft()
         then = self._totals[0][1]
+        # The fleet's new readings once; a board's "others" is that minus its own (not a sum per board).
+        gained = {n: c.readings_total - then.get(n, 0) for n, c in counts.items()}
+        fleet_gained = sum(gained.values())
         for b in boards:
             if b.enrolled_at is None and b.retired_at is None:
                 continue  # not on the network yet: nothing to judge
@@ -281,7 +286,7 @@ class Monitor:
                 seen = self._batch_contacts.setdefault(b.name, deque(maxlen=256))
                 if not seen or seen[-1] != c.last_batch_at:
                     seen.append(c.last_batch_at)
-            hbs = await self.store.heartbeats(b.name, now - window - 2 * self.settings.heartbeat_seconds)
+            hbs = recent.get(b.name, [])
             contacts = sorted({h.at for h in hbs} | set(self._batch_contacts.get(b.name, ())))
             hb = latest.get(b.name)
             if hb is not None and hb.at not in contacts:
@@ -297,11 +302,7 @@ class Monitor:
                 )
                 for h in hbs
             ]
-            others = sum(
-                total - then.get(name, 0)
-                for name, total in ((n, c2.readings_total) for n, c2 in counts.items())
-                if name != b.name
-            )
+            others = fleet_gained - gained.get(b.name, 0)
             inputs = BoardInputs(
                 board=b.name,
                 contacts=contacts,

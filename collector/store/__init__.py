@@ -335,6 +335,10 @@ class Store(Protocol):
         """
 
     async def heartbeats(self, board: str, since: float) -> list[Heartbeat]: ...
+    async def recent_heartbeats(self, since: float) -> dict[str, list[Heartbeat]]:
+        """Every board's heartbeats at or after ``since``, oldest first, in one query (boards without one are
+        absent): its cost follows the window, not the history kept."""
+
     async def latest_heartbeats(self) -> dict[str, Heartbeat]: ...
     async def add_event(self, event: Event, *, lead: str | None = None) -> int | None:
         """Store an event; its id, or ``None`` if an event with its ``key`` is stored already.

@@ -829,6 +829,20 @@ class PostgresStore:
         )
         return [Heartbeat(board, r["at"], r["boot"], json.loads(r["stats"])) for r in rows]
 
+    async def recent_heartbeats(self, since: float) -> dict[str, list[Heartbeat]]:
+        # A range of heartbeats_at, in its order (at, then id): the rows of the window only, whatever the
+        # history or the planner statistics; grouped by board here, each board's oldest first.
+        rows = await self._fetch(
+            "SELECT b.name, h.at, h.boot, h.stats FROM heartbeats h JOIN boards b ON b.id = h.board_id "
+            "WHERE h.at >= $1 ORDER BY h.at, h.id",
+            since,
+        )
+        out: dict[str, list[Heartbeat]] = {}
+        for r in rows:
+            name = r["name"]
+            out.setdefault(name, []).append(Heartbeat(name, r["at"], r["boot"], json.loads(r["stats"])))
+        return out
+
     async def latest_heartbeats(self) -> dict[str, Heartbeat]:
         # One backward step on heartbeats_board_at_id per board: the cost follows the number of boards,
         # not the history kept.

@@ -762,6 +762,19 @@ class SqliteStore:
         )
         return [Heartbeat(board, at, boot, json.loads(stats)) for at, boot, stats in rows]
 
+    async def recent_heartbeats(self, since: float) -> dict[str, list[Heartbeat]]:
+        # A range of heartbeats_at, in its order (at, then id): the rows of the window only, whatever the
+        # history or the planner statistics; grouped by board here, each board's oldest first.
+        rows = await self._query(
+            "SELECT b.name, h.at, h.boot, h.stats FROM heartbeats h JOIN boards b ON b.id = h.board_id "
+            "WHERE h.at >= ? ORDER BY h.at, h.id",
+            (since,),
+        )
+        out: dict[str, list[Heartbeat]] = {}
+        for name, at, boot, stats in rows:
+            out.setdefault(name, []).append(Heartbeat(name, at, boot, json.loads(stats)))
+        return out
+
     async def latest_heartbeats(self) -> dict[str, Heartbeat]:
         # One index probe per board (heartbeats_board_at ends in the rowid, so "at DESC, id DESC" is its
         # order): the cost follows the number of boards, not the history kept.

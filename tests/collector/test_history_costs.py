@@ -8,9 +8,11 @@ recurring read is measured on a small history and on one a hundred times larger.
 
 from __future__ import annotations
 
+import inspect
 import json
 import random
 import sqlite3
+from collections import Counter
 from collections.abc import Awaitable, Callable
 from dataclasses import replace
 from typing import Any
@@ -18,8 +20,18 @@ from typing import Any
 import numpy as np
 import pytest
 
+from listenpost.collector.monitor import MONITOR
 from listenpost.collector.state import STORE
-from listenpost.collector.store import BadBatch, ClockSample, Heartbeat, IngestBatch, IngestStatus, SeqHole
+from listenpost.collector.store import (
+    BadBatch,
+    Board,
+    ClockSample,
+    Enrollment,
+    Heartbeat,
+    IngestBatch,
+    IngestStatus,
+    SeqHole,
+)
 from listenpost.collector.store import migrations as mig
 from listenpost.collector.store.sqlite import SqliteStore
 from tests.collector.conftest import StoreFactory
@@ -172,6 +184,65 @@ async def test_latest_heartbeats_cost_does_not_grow_with_the_history(store_facto
         for name, at, boot, stats in await raw(store, LATEST_BY_WINDOW_SQL)
     }
     assert latest == expected and latest["g0-a"].boot == "boot-tie" and len(latest) == 20
+
+
+# -- the monitor round -----------------------------------------------------------------------------------------
+
+
+async def test_the_monitor_round_asks_the_same_questions_whatever_the_history(
+    store_factory: StoreFactory, aiohttp_client, tmp_path, clock
+):
+    """A monitor round asks the store a fixed set of questions, none per board, and what they read does not
+    grow with the heartbeats kept: ten minutes of them per board, then a hundred times that."""
+    store = await store_factory.open()
+    now = clock.time()
+    boards = [f"g{i}-a" for i in range(8)]
+    for name in boards:
+        await store.add_board(
+            Board(name, "G0 Foyer", "ground", now - 86400.0, enrolled_at=now - 86400.0),
+            Enrollment(name, f"code-{name}", now),
+        )
+    ids = {name: (await raw(store, "SELECT id FROM boards WHERE name = ?", (name,)))[0][0] for name in boards}
+    sql = "INSERT INTO heartbeats (board_id, at, boot, stats) VALUES (?, ?, ?, ?)"
+
+    def beats(first: int, n: int) -> list[tuple[Any, ...]]:
+        """Heartbeats every 30 s, ``first`` beats back from now and ``n`` of them going back further."""
+        return [
+            (ids[b], now - 30.0 * k, "boot-1", json.dumps({"adverts_total": 10_000 - k, "spool_batches": 0}))
+            for b in boards
+            for k in range(first, first + n)
+        ]
+
+    await bulk(store, sql, beats(0, 20))
+    client = await make_client(aiohttp_client, tmp_path, clock, store=store)
+    monitor = client.app[MONITOR]
+    await monitor.run_once()  # seeds the states; every board is live from here on
+
+    calls: Counter[str] = Counter()
+    for name in [n for n in dir(store) if not n.startswith("_")]:
+        method = getattr(store, name)
+        if inspect.iscoroutinefunction(method):
+
+            async def counted(*a: Any, _m: Any = method, _n: str = name, **k: Any) -> Any:
+                calls[_n] += 1
+                return await _m(*a, **k)
+
+            setattr(store, name, counted)
+
+    async def one_round() -> tuple[Counter[str], int, dict[str, str]]:
+        calls.clear()
+        steps = await cost(store, monitor.run_once)
+        states = {b: s["state"] for b, s in monitor.runtime.states.items()}
+        return Counter(calls), steps, states
+
+    small_calls, small, small_states = await one_round()
+    await bulk(store, sql, beats(20, 2000))
+    large_calls, large, large_states = await one_round()
+    print(f"monitor round: {dict(small_calls)}; cost {small} at 20 heartbeats per board, {large} at 2,020")
+    assert small_states == large_states == dict.fromkeys(boards, "live")
+    assert large_calls == small_calls
+    assert max(small_calls.values()) < len(boards), f"a store call per board: {dict(small_calls)}"
+    assert large <= 1.5 * small + 20, f"cost grew from {small} to {large} with 100x the heartbeats"
 
 
 # -- loss accounting --------------------------------------------------------------------------------------------
