@@ -36,7 +36,7 @@ from listenpost.collector.store import migrations as mig
 from listenpost.collector.store.sqlite import SqliteStore
 from tests.collector.conftest import StoreFactory
 from tests.collector.test_api import batch_body, enrolled, make_client, readings
-from tests.collector.test_store import add_boards, gap_record, make_batch
+from tests.collector.test_store import _raw_migrate, add_boards, gap_record, make_batch
 
 EPOCH_A = "a1b2c3d4e5f60718"
 EPOCH_B = "b0b1b2b3b4b5b6b7"
@@ -193,7 +193,8 @@ async def test_the_monitor_round_asks_the_same_questions_whatever_the_history(
     store_factory: StoreFactory, aiohttp_client, tmp_path, clock
 ):
     """A monitor round asks the store a fixed set of questions, none per board, and what they read does not
-    grow with the heartbeats kept: ten minutes of them per board, then a hundred times that."""
+    grow with the history: ten minutes of heartbeats per board, then a hundred times that and a hundred
+    reported losses per board."""
     store = await store_factory.open()
     now = clock.time()
     boards = [f"g{i}-a" for i in range(8)]
@@ -237,8 +238,16 @@ async def test_the_monitor_round_asks_the_same_questions_whatever_the_history(
 
     small_calls, small, small_states = await one_round()
     await bulk(store, sql, beats(20, 2000))
+    # A hundred losses per board reported long ago: they stay holes, but the loss check is done with them.
+    await bulk(
+        store,
+        "INSERT INTO seq_holes (board_id, epoch, first_seq, last_seq, reported) VALUES (?, ?, ?, ?, ?)",
+        [(ids[b], EPOCH_A, 10 * k, 10 * k, True) for b in boards for k in range(100)],
+    )
     large_calls, large, large_states = await one_round()
-    print(f"monitor round: {dict(small_calls)}; cost {small} at 20 heartbeats per board, {large} at 2,020")
+    print(
+        f"monitor round: {dict(small_calls)}; cost {small} at 20 heartbeats per board, {large} at 2,020 + holes"
+    )
     assert small_states == large_states == dict.fromkeys(boards, "live")
     assert large_calls == small_calls
     assert max(small_calls.values()) < len(boards), f"a store call per board: {dict(small_calls)}"
@@ -317,6 +326,41 @@ async def test_migration_fills_the_hole_accounting_from_stored_batches(sqlite_fa
     assert await store.seq_holes() == [SeqHole("g0-a", EPOCH_A, 2, 3), SeqHole("g0-a", EPOCH_A, 7, 8)]
     await store.ingest(make_batch("g0-a", 2, n=1))  # and it goes on from there
     assert await store.seq_holes() == [SeqHole("g0-a", EPOCH_A, 3, 3), SeqHole("g0-a", EPOCH_A, 7, 8)]
+
+
+async def test_a_reported_hole_stays_reported_when_a_late_batch_splits_it(store):
+    """Holes are read "unreported" until marked; what a late batch leaves of a marked hole stays marked,
+    and a hole that opens later is unreported."""
+    await add_boards(store, "g3-a")
+    for s in (0, 1, 9):
+        await store.ingest(make_batch("g3-a", s, epoch=EPOCH_A))
+    assert await store.seq_holes(unreported=True) == [SeqHole("g3-a", EPOCH_A, 2, 8)]
+    await store.mark_holes_reported([SeqHole("g3-a", EPOCH_A, 2, 8), SeqHole("g3-a", EPOCH_A, 20, 30)])
+    assert await store.seq_holes(unreported=True) == []
+    await store.ingest(make_batch("g3-a", 5, epoch=EPOCH_A))  # late: splits the hole in two
+    await store.ingest(make_batch("g3-a", 12, epoch=EPOCH_A))  # a new hole, 10-11
+    assert await store.seq_holes() == [
+        SeqHole("g3-a", EPOCH_A, 2, 4),
+        SeqHole("g3-a", EPOCH_A, 6, 8),
+        SeqHole("g3-a", EPOCH_A, 10, 11),
+    ]
+    assert await store.seq_holes(unreported=True) == [SeqHole("g3-a", EPOCH_A, 10, 11)]
+    assert await store.seq_holes("g3-a", unreported=True) == [SeqHole("g3-a", EPOCH_A, 10, 11)]
+
+
+async def test_migration_marks_the_holes_whose_loss_event_is_stored(store_factory: StoreFactory):
+    """A database from before the marks: holes with a stored loss event come out reported, others not."""
+    await _raw_migrate(store_factory, upto=7)
+    for sql in (
+        "INSERT INTO boards (id, name, room, created_at) VALUES (1, 'g0-a', 'G0', 5)",
+        f"INSERT INTO seq_holes (board_id, epoch, first_seq, last_seq) VALUES (1, '{EPOCH_A}', 2, 3)",
+        f"INSERT INTO seq_holes (board_id, epoch, first_seq, last_seq) VALUES (1, '{EPOCH_A}', 7, 8)",
+        f"INSERT INTO events (at, board_id, kind, detail, key) VALUES (9, 1, 'loss', '{{}}', 'loss/g0-a/{EPOCH_A}/2-3')",
+    ):
+        await _raw_migrate(store_factory, upto=7, sql=sql)
+    store = await store_factory.open()
+    assert await store.seq_holes() == [SeqHole("g0-a", EPOCH_A, 2, 3), SeqHole("g0-a", EPOCH_A, 7, 8)]
+    assert await store.seq_holes(unreported=True) == [SeqHole("g0-a", EPOCH_A, 7, 8)]
 
 
 async def test_a_gap_record_covers_seqs_of_the_epoch_it_names(store):
