@@ -1,23 +1,33 @@
 """
-What a collector's recurring work costs after an hour, a day and a week of history, against an empty store.
+What a collector's recurring work costs after an hour, a day and a week of history, against the same boards
+without it.
 
 Each store is filled by direct bulk inserts (not through ingest, which would take the week it simulates)
 with what ``BOARDS`` boards leave behind in that time:
 
 - a batch header every ``BATCH_S`` seconds per board (one epoch per board, a lost batch every 1,000),
-  with its seq accounting rows, one reading each;
+  with its seq accounting rows, one reading each; the holes the lost batches left are marked reported,
+  as the monitor rounds of that time would have left them;
 - a clock sample with every batch of the last hour (`CLOCK_SPAN`);
 - a heartbeat every 30 s, at most the store's ``heartbeat_history`` (2,880) per board.
 
-Then, interleaved over the stores (empty, 1 h, 1 day, 1 week) for ``_repeat.repeats`` rounds:
+Then, interleaved over the stores (empty, live, 1 h, 1 day, 1 week) for ``_repeat.repeats`` rounds:
 
 - **monitor round**: ``Monitor.run_once`` (liveness of every board, the loss check, retention), after a
   warm-up round that builds the clock models;
 - **/v1/status**: a GET over loopback to a real aiohttp server on the collector app;
 - **ingest**: ``INGEST_BATCHES`` batches of 50 readings from 50 boards at once through ``Store.ingest``.
 
-Each figure is reported as a ratio to the empty store of the same round. Targets: within 1.5x of the
-empty store; ``/v1/status`` under 50 ms with 500 boards at a week.
+Each figure is reported as a ratio to two anchors of the same round:
+
+- **live** (the fair anchor, target within 1.5x): the same boards up for ``LIVE_SPAN`` (15 minutes), which
+  holds everything a round reads of a board (the liveness step's 6-minute heartbeat window, its clock
+  model), so the ratio is what the *history* costs;
+- **empty**: the same boards that never made contact. Its monitor round judges every board "no contact
+  yet" without reading a heartbeat or a clock fit, so a ratio to it also counts the liveness work that
+  500 talking boards need whatever the history (reported for comparison with earlier figures).
+
+``/v1/status`` must stay under 50 ms with 500 boards at a week.
 """
 
 from __future__ import annotations
@@ -49,30 +59,37 @@ from all its stored samples (about 2 ms a sample here), a restart cost that this
 T_END = 1_800_000_000.0
 EPOCH = "a1b2c3d4e5f60718"
 SPANS = {"1 hour": 3600.0, "1 day": 86400.0, "1 week": 7 * 86400.0}
+LIVE_SPAN = 900.0
+ANCHORS = {"empty": None, "live": LIVE_SPAN}
 PG_URL = os.environ.get("LISTENPOST_TEST_PG", "postgresql://postgres@127.0.0.1:5432/test")
 
 
 def _rows(boards: int, span: float) -> dict[str, list[tuple[Any, ...]]]:
-    """Rows of one simulated history ending at T_END (board ids 1..boards)."""
+    """
+    Rows of one simulated history ending at T_END (board ids 1..boards), in time order across the boards,
+    as ingest stores them: a window of recent rows then lies together, not spread over one stretch per board.
+    """
     n_batches = int(span // BATCH_S)
     n_beats = min(int(span // HEARTBEAT_S), HISTORY_CAP)
     out: dict[str, list[tuple[Any, ...]]] = {
         k: [] for k in ("batches", "readings", "clock_samples", "heartbeats", "seq_reach", "seq_holes")
     }
     t0 = T_END - span
-    for bid in range(1, boards + 1):
-        seqs = [s for s in range(n_batches) if s % 1000 != 999]  # a lost batch now and then
-        for s in seqs:
-            at = t0 + s * BATCH_S
+    seqs = [s for s in range(n_batches) if s % 1000 != 999]  # a lost batch now and then
+    for s in seqs:
+        at = t0 + s * BATCH_S
+        for bid in range(1, boards + 1):
             out["batches"].append((bid, EPOCH, s, "0" * 64, "boot-1", 1, at, 0))
             out["readings"].append((len(out["batches"]), bid, 1, int(s * BATCH_S * 1000), at, -700))
             if at >= T_END - CLOCK_SPAN:
                 out["clock_samples"].append((bid, "boot-1", s * BATCH_S, at, at + 0.001, s * BATCH_S + 0.002))
-        if seqs:
+    if seqs:
+        for bid in range(1, boards + 1):
             out["seq_reach"].append((bid, EPOCH, 0, seqs[-1]))
-            out["seq_holes"] += [(bid, EPOCH, s, s) for s in range(999, seqs[-1], 1000)]
-        for k in range(n_beats):
-            at = T_END - (n_beats - k) * HEARTBEAT_S
+            out["seq_holes"] += [(bid, EPOCH, s, s, True) for s in range(999, seqs[-1], 1000)]
+    for k in range(n_beats):
+        at = T_END - (n_beats - k) * HEARTBEAT_S
+        for bid in range(1, boards + 1):
             out["heartbeats"].append((bid, at, "boot-1", f'{{"adverts_total": {k}, "spool_batches": 0}}'))
     return out
 
@@ -85,7 +102,7 @@ _INSERT = {
     "clock_samples": "INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES (?, ?, ?, ?, ?, ?)",
     "heartbeats": "INSERT INTO heartbeats (board_id, at, boot, stats) VALUES (?, ?, ?, ?)",
     "seq_reach": "INSERT INTO seq_reach (board_id, epoch, first_seq, reach) VALUES (?, ?, ?, ?)",
-    "seq_holes": "INSERT INTO seq_holes (board_id, epoch, first_seq, last_seq) VALUES (?, ?, ?, ?)",
+    "seq_holes": "INSERT INTO seq_holes (board_id, epoch, first_seq, last_seq, reported) VALUES (?, ?, ?, ?, ?)",
 }
 
 
@@ -218,7 +235,7 @@ async def _run_backend(backend: str, boards: int, rounds: int, tmp: Path) -> Non
 
     sides: dict[str, Side] = {}
     schemas: list[str] = []
-    for label, span in [("empty", None), *SPANS.items()]:
+    for label, span in [*ANCHORS.items(), *SPANS.items()]:
         t = time.perf_counter()
         if backend == "sqlite":
             store = await open_store(f"sqlite:///{tmp / (label.replace(' ', '_') + '.db')}")
@@ -253,14 +270,16 @@ async def _run_backend(backend: str, boards: int, rounds: int, tmp: Path) -> Non
             print(f"  {backend} {metric}:", flush=True)
             for label, values in figures[metric].items():
                 print(f"    {label}: {_repeat.spread([v * scale for v in values], ',.1f', unit)}")
-            empty = figures[metric]["empty"]
-            for label in SPANS:
-                # Ratios as "how many times the empty store's cost": for a rate that is empty / this.
-                vals = [
-                    (v / e if better == "lower" else e / v)
-                    for v, e in zip(figures[metric][label], empty, strict=True)
-                ]
-                _repeat.report("history", f"{backend} {metric} cost {label} / empty", vals, "<= 1.5")
+            for anchor in ANCHORS:
+                base = figures[metric][anchor]
+                for label in SPANS:
+                    # Ratios as "how many times the anchor's cost": for a rate that is anchor / this.
+                    vals = [
+                        (v / a if better == "lower" else a / v)
+                        for v, a in zip(figures[metric][label], base, strict=True)
+                    ]
+                    target = "<= 1.5" if anchor == "live" else ""
+                    _repeat.report("history", f"{backend} {metric} cost {label} / {anchor}", vals, target)
         week = statistics.median(figures["status"]["1 week"]) * 1000
         print(f"  {backend} /v1/status at 1 week, {boards} boards: {week:.1f} ms median (target < 50 ms)")
     finally:

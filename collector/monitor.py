@@ -61,7 +61,7 @@ from listenpost.collector.config import CollectorSettings
 from listenpost.collector.ingest import clock_model
 from listenpost.collector.state import Runtime
 from listenpost.collector.status import note_total, stat
-from listenpost.collector.store import Event, LeadershipLost, Store, StoreError
+from listenpost.collector.store import BoardCounts, Event, LeadershipLost, SeqHole, Store, StoreError
 from listenpost.core.clock import Clock, with_timeout
 from listenpost.core.errors import ConfigError
 
@@ -195,10 +195,10 @@ class Monitor:
             return await self._round(RoundReport(held_lock=held))
 
     async def _round(self, report: RoundReport) -> RoundReport:
-        await self._sample_rates()
+        counts = await self._sample_rates()
         if report.held_lock:
             await self._seed()
-            await self._liveness(report)
+            await self._liveness(report, counts)
             await self._losses(report)
             await self._retention(report)
             await self._calibration_watch(report)
@@ -208,12 +208,14 @@ class Monitor:
         self.rounds_led += report.held_lock
         return report
 
-    async def _sample_rates(self) -> None:
-        """Every board's stored-readings total now, for the readings-per-second figure (collector/status.py)."""
-
+    async def _sample_rates(self) -> dict[str, BoardCounts]:
+        """Every board's stored-readings total now, for the readings-per-second figure (collector/status.py);
+        the counts, which the liveness step reads too."""
         now = self.clock.time()
-        for c in await self.store.board_counts():
+        counts = {c.board: c for c in await self.store.board_counts()}
+        for c in counts.values():
             note_total(self.runtime.rates.setdefault(c.board, deque(maxlen=256)), now, c.readings_total)
+        return counts
 
     async def _seed(self) -> None:
         """Start the tracker from the stored states, so a restart does not announce every board again."""
@@ -260,19 +262,23 @@ class Monitor:
             if len(page) < 1000:
                 return
 
-    async def _liveness(self, report: RoundReport) -> None:
+    async def _liveness(self, report: RoundReport, counts: dict[str, BoardCounts]) -> None:
         from listenpost.collector.models.liveness import BoardInputs, HeartbeatSample
 
         now = self.clock.time()
         boards = await self.store.list_boards()
-        counts = {c.board: c for c in await self.store.board_counts()}
         latest = await self.store.latest_heartbeats()
         window = max(self.tracker.settings.deaf_window_s, self.tracker.settings.backlog_window_s)
+        # Every board's window of heartbeats in one query, not one per board.
+        recent = await self.store.recent_heartbeats(now - window - 2 * self.settings.heartbeat_seconds)
         # Readings per board a deaf-window ago, to tell whether the others heard tags meanwhile.
         self._totals.append((now, {n: c.readings_total for n, c in counts.items()}))
         while len(self._totals) > 1 and now - self._totals[1][0] >= self.tracker.settings.deaf_window_s:
             self._totals.popleft()
         then = self._totals[0][1]
+        # The fleet's new readings once; a board's "others" is that minus its own (not a sum per board).
+        gained = {n: c.readings_total - then.get(n, 0) for n, c in counts.items()}
+        fleet_gained = sum(gained.values())
         for b in boards:
             if b.enrolled_at is None and b.retired_at is None:
                 continue  # not on the network yet: nothing to judge
@@ -281,7 +287,7 @@ class Monitor:
                 seen = self._batch_contacts.setdefault(b.name, deque(maxlen=256))
                 if not seen or seen[-1] != c.last_batch_at:
                     seen.append(c.last_batch_at)
-            hbs = await self.store.heartbeats(b.name, now - window - 2 * self.settings.heartbeat_seconds)
+            hbs = recent.get(b.name, [])
             contacts = sorted({h.at for h in hbs} | set(self._batch_contacts.get(b.name, ())))
             hb = latest.get(b.name)
             if hb is not None and hb.at not in contacts:
@@ -297,11 +303,7 @@ class Monitor:
                 )
                 for h in hbs
             ]
-            others = sum(
-                total - then.get(name, 0)
-                for name, total in ((n, c2.readings_total) for n, c2 in counts.items())
-                if name != b.name
-            )
+            others = fleet_gained - gained.get(b.name, 0)
             inputs = BoardInputs(
                 board=b.name,
                 contacts=contacts,
@@ -339,31 +341,39 @@ class Monitor:
 
     async def _losses(self, report: RoundReport) -> None:
         now = self.clock.time()
-        holes = await self.store.seq_holes()
+        # Only the holes not marked reported: every loss ever stays a hole, and reading them all each round
+        # made the round grow with the history.
+        holes = await self.store.seq_holes(unreported=True)
         current = {(h.board, h.epoch, h.first_seq, h.last_seq) for h in holes}
         tails = {(h.board, h.epoch, h.first_seq, h.last_seq) for h in holes if h.tail}
         for key in list(self._hole_first_seen):
             if key not in current:
-                del self._hole_first_seen[key]  # filled in after all: a late batch, not a loss
-        for key in sorted(current - self._reported_holes):
-            if self._inside_reported(key):
-                continue  # what is left of a reported hole after a late batch split it
-            first = self._hole_first_seen.setdefault(key, now)
-            if now - first < LOSS_GRACE_SECONDS:
-                continue
-            board, epoch, lo, hi = key
-            detail = {"epoch": epoch, "first_seq": lo, "last_seq": hi, "batches": hi - lo + 1}
-            if key in tails:
-                detail["tail"] = True  # sealed on the board, never sent before it moved to a new epoch
-            event = await self._store_event(
-                Event(now, board, "loss", detail, key=f"loss/{board}/{epoch}/{lo}-{hi}")
-            )
-            self._reported_holes.add(key)
-            if event is None:
-                continue
-            report.losses.append(event)
-            log.warning("batches_lost", board=board, **detail)
-            self._queue_webhook(event)
+                del self._hole_first_seen[key]  # filled in after all (a late batch, not a loss), or marked
+        done: list[SeqHole] = []
+        for key in sorted(current):
+            # Reported already (its mark was not stored, or it was reported before the marks existed),
+            # or what is left of a reported hole after a late batch split it: only the mark is missing.
+            if key not in self._reported_holes and not self._inside_reported(key):
+                first = self._hole_first_seen.setdefault(key, now)
+                if now - first < LOSS_GRACE_SECONDS:
+                    continue
+                board, epoch, lo, hi = key
+                detail = {"epoch": epoch, "first_seq": lo, "last_seq": hi, "batches": hi - lo + 1}
+                if key in tails:
+                    detail["tail"] = True  # sealed on the board, never sent before it moved to a new epoch
+                event = await self._store_event(
+                    Event(now, board, "loss", detail, key=f"loss/{board}/{epoch}/{lo}-{hi}")
+                )
+                self._reported_holes.add(key)
+                if event is not None:
+                    report.losses.append(event)
+                    log.warning("batches_lost", board=board, **detail)
+                    self._queue_webhook(event)
+            if key not in tails:  # a tail is computed, not stored: nothing to mark
+                done.append(SeqHole(*key))
+        # Marked after their events: a round cut short leaves marks out, and the next round adds them.
+        if done:
+            await self.store.mark_holes_reported(done)
 
     async def _calibration_watch(self, report: RoundReport) -> None:
         now = self.clock.time()

@@ -318,10 +318,16 @@ class Store(Protocol):
     async def latest_telemetry(self, tags: Sequence[str] | None = None) -> dict[str, TagTelemetry]:
         """The newest telemetry row per tag (by board time within the newest batch)."""
 
-    async def seq_holes(self, board: str | None = None) -> list[SeqHole]:
+    async def seq_holes(self, board: str | None = None, *, unreported: bool = False) -> list[SeqHole]:
         """Seq holes now, by board, epoch and first seq: runs inside each epoch's span, and the tails of
         epochs a board has left (`SeqHole.tail`). Kept up to date by ingest and heartbeats (two small
-        tables), so this costs the same however many batches are stored."""
+        tables), so this costs the same however many batches are stored. With ``unreported``, only the
+        runs not yet marked with `mark_holes_reported` (a partial index) and the tails: what the monitor's
+        loss check reads, the same however many losses were reported before."""
+
+    async def mark_holes_reported(self, holes: Sequence[SeqHole]) -> None:
+        """Mark runs as reported (their ``loss`` event is stored); one no longer there, or a tail, is
+        skipped (tails are computed, one per epoch a board left, not stored)."""
 
     # clock, heartbeats, events
     async def add_clock_sample(self, sample: ClockSample) -> None: ...
@@ -335,6 +341,10 @@ class Store(Protocol):
         """
 
     async def heartbeats(self, board: str, since: float) -> list[Heartbeat]: ...
+    async def recent_heartbeats(self, since: float) -> dict[str, list[Heartbeat]]:
+        """Every board's heartbeats at or after ``since``, oldest first, in one query (boards without one are
+        absent): its cost follows the window, not the history kept."""
+
     async def latest_heartbeats(self) -> dict[str, Heartbeat]: ...
     async def add_event(self, event: Event, *, lead: str | None = None) -> int | None:
         """Store an event; its id, or ``None`` if an event with its ``key`` is stored already.

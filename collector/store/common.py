@@ -318,10 +318,12 @@ def batch_row(batch: IngestBatch, board_id: int, offset_dd: int) -> tuple[Any, .
 # first, one request at a time, so by then every batch of the old epoch it still held has been sent (or
 # dead-lettered, which a gap record covers): what is missing is lost. Both parts read one small table
 # (rows per hole and per epoch), so the cost does not follow the history kept. ``{board}`` is a backend's
-# ``AND b.name = <param>`` or empty.
+# ``AND b.name = <param>`` or empty; ``{open}`` its test for runs not yet marked reported (the predicate of
+# the partial index seq_holes_open) or empty. Tails are not stored, so they have no mark: few, one per
+# epoch a board left with batches unsent.
 SEQ_HOLES_SQL = (
     "SELECT b.name, h.epoch, h.first_seq, h.last_seq, 0 AS tail FROM seq_holes h "
-    "JOIN boards b ON b.id = h.board_id WHERE 1 = 1 {board} "
+    "JOIN boards b ON b.id = h.board_id WHERE 1 = 1 {board} {open} "
     "UNION ALL "
     "SELECT b.name, r.epoch, r.reach + 1, r.announced, 1 FROM seq_reach r JOIN boards b ON b.id = r.board_id "
     "WHERE r.announced > r.reach AND b.spool_epoch <> r.epoch {board} AND EXISTS (SELECT 1 FROM seq_reach c "
@@ -359,6 +361,14 @@ def seq_intervals(batch: IngestBatch) -> list[tuple[str, int, int]]:
     if batch.gap is not None:
         out.append((gap_epoch(batch), batch.gap["first_seq"], batch.gap["last_seq"]))
     return sorted(out)
+
+
+def pieces_reported(old: Sequence[tuple[int, int, bool]], new: Sequence[tuple[int, int]]) -> list[bool]:
+    """
+    Whether each hole `cover_seqs` returned is part of an ``old`` hole already reported as a loss: what is
+    left of a reported hole after a late batch was reported with it, so the monitor does not read it again.
+    """
+    return [any(r and a <= x and y <= b for a, b, r in old) for x, y in new]
 
 
 def cover_seqs(

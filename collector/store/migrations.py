@@ -134,6 +134,21 @@ _READINGS_DAYS = (
 )
 
 
+# Seq holes remember whether the monitor has reported them (a ``loss`` event), so its round reads the holes
+# still open, not every loss ever: those stay in ``seq_holes`` for good. Existing databases mark the holes
+# whose event is stored (its key names the hole); the monitor marks the rest as it meets them.
+def _HOLES_REPORTED(boolean: str, false: str, true: str, open_: str) -> tuple[str, ...]:  # noqa: N802
+    return (
+        f"ALTER TABLE seq_holes ADD COLUMN reported {boolean} NOT NULL DEFAULT {false}",
+        f"""UPDATE seq_holes SET reported = {true} WHERE EXISTS (
+            SELECT 1 FROM events e JOIN boards b ON b.id = e.board_id
+            WHERE e.board_id = seq_holes.board_id AND e.kind = 'loss'
+            AND e.key = 'loss/' || b.name || '/' || seq_holes.epoch || '/' || seq_holes.first_seq || '-'
+                || seq_holes.last_seq)""",
+        f"CREATE INDEX seq_holes_open ON seq_holes(board_id, epoch, first_seq) WHERE {open_}",
+    )
+
+
 HOLES_SCAN = """
 WITH iv AS (
     SELECT board_id, epoch, seq AS lo, seq AS hi FROM batches WHERE {board}
@@ -282,6 +297,7 @@ SQLITE: tuple[Migration, ...] = (
     Migration(5, "calibration watch state", (_WATCH("INTEGER", "REAL", "TEXT"),)),
     Migration(6, "spool tails announced by heartbeats", _SPOOL_TAILS("INTEGER", "REAL", "TEXT")),
     Migration(7, "readings partitioned by day (PostgreSQL only)", ()),
+    Migration(8, "seq holes marked once reported", _HOLES_REPORTED("INTEGER", "0", "1", "reported = 0")),
 )
 
 
@@ -427,6 +443,9 @@ POSTGRES: tuple[Migration, ...] = (
     Migration(5, "calibration watch state", (_WATCH("smallint", "double precision", "text"),)),
     Migration(6, "spool tails announced by heartbeats", _SPOOL_TAILS("bigint", "double precision", "text")),
     Migration(7, "readings partitioned by day (PostgreSQL only)", _READINGS_DAYS),
+    Migration(
+        8, "seq holes marked once reported", _HOLES_REPORTED("boolean", "false", "true", "NOT reported")
+    ),
 )
 
 _VERSION_TABLE = "CREATE TABLE IF NOT EXISTS schema_version (version integer PRIMARY KEY, name text NOT NULL, applied_at text NOT NULL)"

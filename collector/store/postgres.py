@@ -90,6 +90,7 @@ from listenpost.collector.store.common import (
     delete_history_in_chunks,
     delete_in_chunks,
     json_text,
+    pieces_reported,
     reading_tag_ids,
     seq_intervals,
     spool_mark,
@@ -823,10 +824,22 @@ class PostgresStore:
         rows = await self._fetch(LATEST_TELEMETRY_SQL.format(where=where), *args)
         return {r[0]: TagTelemetry(*r) for r in rows}
 
-    async def seq_holes(self, board: str | None = None) -> list[SeqHole]:
+    async def seq_holes(self, board: str | None = None, *, unreported: bool = False) -> list[SeqHole]:
         cond, args = ("", ()) if board is None else ("AND b.name = $1", (board,))
-        rows = await self._fetch(SEQ_HOLES_SQL.format(board=cond), *args)
+        # "NOT h.reported" as the partial index seq_holes_open has it.
+        sql = SEQ_HOLES_SQL.format(board=cond, open="AND NOT h.reported" if unreported else "")
+        rows = await self._fetch(sql, *args)
         return [SeqHole(*r[:4], tail=bool(r[4])) for r in rows]
+
+    async def mark_holes_reported(self, holes: Sequence[SeqHole]) -> None:
+        if not holes:
+            return
+        async with self._acquire() as con, con.transaction():
+            await con.executemany(
+                "UPDATE seq_holes SET reported = true WHERE board_id = (SELECT id FROM boards WHERE name = $1) "
+                "AND epoch = $2 AND first_seq = $3 AND last_seq = $4",
+                [(h.board, h.epoch, h.first_seq, h.last_seq) for h in holes],
+            )
 
     # -- clock, heartbeats, events -----------------------------------------------------------------------
 
@@ -888,6 +901,20 @@ class PostgresStore:
             since,
         )
         return [Heartbeat(board, r["at"], r["boot"], json.loads(r["stats"])) for r in rows]
+
+    async def recent_heartbeats(self, since: float) -> dict[str, list[Heartbeat]]:
+        # A range of heartbeats_at, in its order (at, then id): the rows of the window only, whatever the
+        # history or the planner statistics; grouped by board here, each board's oldest first.
+        rows = await self._fetch(
+            "SELECT b.name, h.at, h.boot, h.stats FROM heartbeats h JOIN boards b ON b.id = h.board_id "
+            "WHERE h.at >= $1 ORDER BY h.at, h.id",
+            since,
+        )
+        out: dict[str, list[Heartbeat]] = {}
+        for r in rows:
+            name = r["name"]
+            out.setdefault(name, []).append(Heartbeat(name, r["at"], r["boot"], json.loads(r["stats"])))
+        return out
 
     async def latest_heartbeats(self) -> dict[str, Heartbeat]:
         # One backward step on heartbeats_board_at_id per board: the cost follows the number of boards,
@@ -1325,12 +1352,12 @@ async def _account_seqs(con: asyncpg.Connection, board_id: int, epoch: str, lo: 
             "UPDATE seq_reach SET reach = $3 WHERE board_id = $1 AND epoch = $2", board_id, epoch, hi
         )
         return
-    old: list[tuple[int, int]] = []
+    old: list[tuple[int, int, bool]] = []
     if lo <= reach and hi >= first:  # a late batch or a gap record inside the span: it may fill holes
         old = [
-            (r[0], r[1])
+            (r[0], r[1], r[2])
             for r in await con.fetch(
-                "SELECT first_seq, last_seq FROM seq_holes WHERE board_id = $1 AND epoch = $2 "
+                "SELECT first_seq, last_seq, reported FROM seq_holes WHERE board_id = $1 AND epoch = $2 "
                 "AND first_seq <= $3 AND last_seq >= $4",
                 board_id,
                 epoch,
@@ -1338,18 +1365,18 @@ async def _account_seqs(con: asyncpg.Connection, board_id: int, epoch: str, lo: 
                 lo,
             )
         ]
-    first, reach, new = cover_seqs(first, reach, lo, hi, old)
+    first, reach, new = cover_seqs(first, reach, lo, hi, [(a, b) for a, b, _ in old])
     if old:
         await con.execute(
             "DELETE FROM seq_holes WHERE board_id = $1 AND epoch = $2 AND first_seq = ANY($3::bigint[])",
             board_id,
             epoch,
-            [a for a, _ in old],
+            [a for a, _, _ in old],
         )
     if new:
         await con.executemany(
-            "INSERT INTO seq_holes (board_id, epoch, first_seq, last_seq) VALUES ($1, $2, $3, $4)",
-            [(board_id, epoch, a, b) for a, b in new],
+            "INSERT INTO seq_holes (board_id, epoch, first_seq, last_seq, reported) VALUES ($1, $2, $3, $4, $5)",
+            [(board_id, epoch, a, b, r) for (a, b), r in zip(new, pieces_reported(old, new), strict=True)],
         )
     await con.execute(
         "UPDATE seq_reach SET first_seq = $3, reach = $4 WHERE board_id = $1 AND epoch = $2",

@@ -82,6 +82,7 @@ from listenpost.collector.store.common import (
     delete_history_in_chunks,
     delete_in_chunks,
     json_text,
+    pieces_reported,
     reading_tag_ids,
     seq_intervals,
     spool_mark,
@@ -725,10 +726,23 @@ class SqliteStore:
         rows = await self._query(LATEST_TELEMETRY_SQL.format(where=where), params)
         return {r[0]: TagTelemetry(*r) for r in rows}
 
-    async def seq_holes(self, board: str | None = None) -> list[SeqHole]:
+    async def seq_holes(self, board: str | None = None, *, unreported: bool = False) -> list[SeqHole]:
         cond, params = ("", ()) if board is None else ("AND b.name = ?", (board, board))
-        rows = await self._query(SEQ_HOLES_SQL.format(board=cond), params)
+        # "h.reported = 0" as the partial index seq_holes_open has it, so SQLite uses that index.
+        sql = SEQ_HOLES_SQL.format(board=cond, open="AND h.reported = 0" if unreported else "")
+        rows = await self._query(sql, params)
         return [SeqHole(*r[:4], tail=bool(r[4])) for r in rows]
+
+    async def mark_holes_reported(self, holes: Sequence[SeqHole]) -> None:
+        def tx(con: sqlite3.Connection) -> None:
+            con.executemany(
+                "UPDATE seq_holes SET reported = 1 WHERE board_id = (SELECT id FROM boards WHERE name = ?) "
+                "AND epoch = ? AND first_seq = ? AND last_seq = ?",
+                [(h.board, h.epoch, h.first_seq, h.last_seq) for h in holes],
+            )
+
+        if holes:
+            await self._wtx(tx)
 
     # -- clock, heartbeats, events -----------------------------------------------------------------------
 
@@ -783,6 +797,19 @@ class SqliteStore:
             (board, since),
         )
         return [Heartbeat(board, at, boot, json.loads(stats)) for at, boot, stats in rows]
+
+    async def recent_heartbeats(self, since: float) -> dict[str, list[Heartbeat]]:
+        # A range of heartbeats_at, in its order (at, then id): the rows of the window only, whatever the
+        # history or the planner statistics; grouped by board here, each board's oldest first.
+        rows = await self._query(
+            "SELECT b.name, h.at, h.boot, h.stats FROM heartbeats h JOIN boards b ON b.id = h.board_id "
+            "WHERE h.at >= ? ORDER BY h.at, h.id",
+            (since,),
+        )
+        out: dict[str, list[Heartbeat]] = {}
+        for name, at, boot, stats in rows:
+            out.setdefault(name, []).append(Heartbeat(name, at, boot, json.loads(stats)))
+        return out
 
     async def latest_heartbeats(self) -> dict[str, Heartbeat]:
         # One index probe per board (heartbeats_board_at ends in the rowid, so "at DESC, id DESC" is its
@@ -1105,21 +1132,24 @@ def _account_seqs(con: sqlite3.Connection, board_id: int, epoch: str, lo: int, h
     if lo == reach + 1:  # the common case: the next seq, right after the span
         con.execute("UPDATE seq_reach SET reach = ? WHERE board_id = ? AND epoch = ?", (hi, board_id, epoch))
         return
-    old: list[tuple[int, int]] = []
+    old: list[tuple[int, int, bool]] = []
     if lo <= reach and hi >= first:  # a late batch or a gap record inside the span: it may fill holes
-        old = con.execute(
-            "SELECT first_seq, last_seq FROM seq_holes WHERE board_id = ? AND epoch = ? AND first_seq <= ? "
-            "AND last_seq >= ?",
-            (board_id, epoch, hi, lo),
-        ).fetchall()
-    first, reach, new = cover_seqs(first, reach, lo, hi, old)
+        old = [
+            (a, b, bool(r))
+            for a, b, r in con.execute(
+                "SELECT first_seq, last_seq, reported FROM seq_holes WHERE board_id = ? AND epoch = ? "
+                "AND first_seq <= ? AND last_seq >= ?",
+                (board_id, epoch, hi, lo),
+            )
+        ]
+    first, reach, new = cover_seqs(first, reach, lo, hi, [(a, b) for a, b, _ in old])
     con.executemany(
         "DELETE FROM seq_holes WHERE board_id = ? AND epoch = ? AND first_seq = ?",
-        [(board_id, epoch, a) for a, _ in old],
+        [(board_id, epoch, a) for a, _, _ in old],
     )
     con.executemany(
-        "INSERT INTO seq_holes (board_id, epoch, first_seq, last_seq) VALUES (?, ?, ?, ?)",
-        [(board_id, epoch, a, b) for a, b in new],
+        "INSERT INTO seq_holes (board_id, epoch, first_seq, last_seq, reported) VALUES (?, ?, ?, ?, ?)",
+        [(board_id, epoch, a, b, int(r)) for (a, b), r in zip(new, pieces_reported(old, new), strict=True)],
     )
     con.execute(
         "UPDATE seq_reach SET first_seq = ?, reach = ? WHERE board_id = ? AND epoch = ?",

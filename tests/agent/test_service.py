@@ -164,6 +164,21 @@ async def run_on_virtual_time(
     return task.result()
 
 
+async def run_until_source_ends(cfg: Any, clock: VirtualClock, adverts: list[Advert]) -> int:
+    """``agent run`` over ``adverts`` on virtual time until the source ends; its exit code."""
+    async with aiohttp.ClientSession() as session:
+        task = asyncio.create_task(
+            run_agent(
+                cfg,
+                clock=clock,
+                source=ListSource(clock, adverts),
+                exit_when_source_ends=True,
+                session=session,
+            )
+        )
+        return await run_on_virtual_time(clock, task)
+
+
 async def spooled_readings(path: Path, clock: VirtualClock) -> Counter:
     """Everything left in a spool file (read with the real Spool, acking as we go)."""
     spool = await Spool.open(path, clock=clock, max_bytes=64 << 20, flush_seconds=5.0)
@@ -405,17 +420,7 @@ async def test_contract_with_the_real_collector_enroll_then_upload(aiohttp_serve
     cfg = load_agent_config(result.config_path)
     adverts, expected = traffic(clock, 20.0, [1, 2, 3])
     expected = {k for k in expected if k[0] != tag(3)}  # minor 3 is not registered at the collector
-    async with aiohttp.ClientSession() as session:
-        task = asyncio.create_task(
-            run_agent(
-                cfg,
-                clock=clock,
-                source=ListSource(clock, adverts),
-                exit_when_source_ends=True,
-                session=session,
-            )
-        )
-        assert await run_on_virtual_time(clock, task) == 0
+    assert await run_until_source_ends(cfg, clock, adverts) == 0
     counts = {c.board: c for c in await store.board_counts()}
     assert counts["g1-a"].readings_total == len(expected)
     assert (await store.latest_heartbeats())["g1-a"].stats["adverts_seen"] == len(adverts)
@@ -502,18 +507,7 @@ async def test_a_lost_spool_with_batches_unsent_is_reported_as_exactly_those_bat
     assert len(unsent) >= 5 and unsent == list(range(unsent[0], unsent[-1] + 1)), unsent
 
     refusing = False
-    async with aiohttp.ClientSession() as session:
-        adverts, _ = traffic(clock, 10.0, [1, 2])
-        task = asyncio.create_task(
-            run_agent(
-                cfg,
-                clock=clock,
-                source=ListSource(clock, adverts),
-                exit_when_source_ends=True,
-                session=session,
-            )
-        )
-        assert await run_on_virtual_time(clock, task) == 0
+    assert await run_until_source_ends(cfg, clock, traffic(clock, 10.0, [1, 2])[0]) == 0
     monitor = app[MONITOR]
     assert (await monitor.run_once()).losses == []  # inside the grace period
     await clock.advance(LOSS_GRACE_SECONDS + 1)

@@ -8,9 +8,11 @@ recurring read is measured on a small history and on one a hundred times larger.
 
 from __future__ import annotations
 
+import inspect
 import json
 import random
 import sqlite3
+from collections import Counter
 from collections.abc import Awaitable, Callable
 from dataclasses import replace
 from typing import Any
@@ -18,13 +20,23 @@ from typing import Any
 import numpy as np
 import pytest
 
+from listenpost.collector.monitor import MONITOR
 from listenpost.collector.state import STORE
-from listenpost.collector.store import BadBatch, ClockSample, Heartbeat, IngestBatch, IngestStatus, SeqHole
+from listenpost.collector.store import (
+    BadBatch,
+    Board,
+    ClockSample,
+    Enrollment,
+    Heartbeat,
+    IngestBatch,
+    IngestStatus,
+    SeqHole,
+)
 from listenpost.collector.store import migrations as mig
 from listenpost.collector.store.sqlite import SqliteStore
 from tests.collector.conftest import StoreFactory
 from tests.collector.test_api import batch_body, enrolled, make_client, readings
-from tests.collector.test_store import add_boards, gap_record, make_batch
+from tests.collector.test_store import _raw_migrate, add_boards, gap_record, make_batch
 
 EPOCH_A = "a1b2c3d4e5f60718"
 EPOCH_B = "b0b1b2b3b4b5b6b7"
@@ -174,6 +186,74 @@ async def test_latest_heartbeats_cost_does_not_grow_with_the_history(store_facto
     assert latest == expected and latest["g0-a"].boot == "boot-tie" and len(latest) == 20
 
 
+# -- the monitor round -----------------------------------------------------------------------------------------
+
+
+async def test_the_monitor_round_asks_the_same_questions_whatever_the_history(
+    store_factory: StoreFactory, aiohttp_client, tmp_path, clock
+):
+    """A monitor round asks the store a fixed set of questions, none per board, and what they read does not
+    grow with the history: ten minutes of heartbeats per board, then a hundred times that and a hundred
+    reported losses per board."""
+    store = await store_factory.open()
+    now = clock.time()
+    boards = [f"g{i}-a" for i in range(8)]
+    for name in boards:
+        await store.add_board(
+            Board(name, "G0 Foyer", "ground", now - 86400.0, enrolled_at=now - 86400.0),
+            Enrollment(name, f"code-{name}", now),
+        )
+    ids = {name: (await raw(store, "SELECT id FROM boards WHERE name = ?", (name,)))[0][0] for name in boards}
+    sql = "INSERT INTO heartbeats (board_id, at, boot, stats) VALUES (?, ?, ?, ?)"
+
+    def beats(first: int, n: int) -> list[tuple[Any, ...]]:
+        """Heartbeats every 30 s, ``first`` beats back from now and ``n`` of them going back further."""
+        return [
+            (ids[b], now - 30.0 * k, "boot-1", json.dumps({"adverts_total": 10_000 - k, "spool_batches": 0}))
+            for b in boards
+            for k in range(first, first + n)
+        ]
+
+    await bulk(store, sql, beats(0, 20))
+    client = await make_client(aiohttp_client, tmp_path, clock, store=store)
+    monitor = client.app[MONITOR]
+    await monitor.run_once()  # seeds the states; every board is live from here on
+
+    calls: Counter[str] = Counter()
+    for name in [n for n in dir(store) if not n.startswith("_")]:
+        method = getattr(store, name)
+        if inspect.iscoroutinefunction(method):
+
+            async def counted(*a: Any, _m: Any = method, _n: str = name, **k: Any) -> Any:
+                calls[_n] += 1
+                return await _m(*a, **k)
+
+            setattr(store, name, counted)
+
+    async def one_round() -> tuple[Counter[str], int, dict[str, str]]:
+        calls.clear()
+        steps = await cost(store, monitor.run_once)
+        states = {b: s["state"] for b, s in monitor.runtime.states.items()}
+        return Counter(calls), steps, states
+
+    small_calls, small, small_states = await one_round()
+    await bulk(store, sql, beats(20, 2000))
+    # A hundred losses per board reported long ago: they stay holes, but the loss check is done with them.
+    await bulk(
+        store,
+        "INSERT INTO seq_holes (board_id, epoch, first_seq, last_seq, reported) VALUES (?, ?, ?, ?, ?)",
+        [(ids[b], EPOCH_A, 10 * k, 10 * k, True) for b in boards for k in range(100)],
+    )
+    large_calls, large, large_states = await one_round()
+    print(
+        f"monitor round: {dict(small_calls)}; cost {small} at 20 heartbeats per board, {large} at 2,020 + holes"
+    )
+    assert small_states == large_states == dict.fromkeys(boards, "live")
+    assert large_calls == small_calls
+    assert max(small_calls.values()) < len(boards), f"a store call per board: {dict(small_calls)}"
+    assert large <= 1.5 * small + 20, f"cost grew from {small} to {large} with 100x the heartbeats"
+
+
 # -- loss accounting --------------------------------------------------------------------------------------------
 
 
@@ -246,6 +326,41 @@ async def test_migration_fills_the_hole_accounting_from_stored_batches(sqlite_fa
     assert await store.seq_holes() == [SeqHole("g0-a", EPOCH_A, 2, 3), SeqHole("g0-a", EPOCH_A, 7, 8)]
     await store.ingest(make_batch("g0-a", 2, n=1))  # and it goes on from there
     assert await store.seq_holes() == [SeqHole("g0-a", EPOCH_A, 3, 3), SeqHole("g0-a", EPOCH_A, 7, 8)]
+
+
+async def test_a_reported_hole_stays_reported_when_a_late_batch_splits_it(store):
+    """Holes are read "unreported" until marked; what a late batch leaves of a marked hole stays marked,
+    and a hole that opens later is unreported."""
+    await add_boards(store, "g3-a")
+    for s in (0, 1, 9):
+        await store.ingest(make_batch("g3-a", s, epoch=EPOCH_A))
+    assert await store.seq_holes(unreported=True) == [SeqHole("g3-a", EPOCH_A, 2, 8)]
+    await store.mark_holes_reported([SeqHole("g3-a", EPOCH_A, 2, 8), SeqHole("g3-a", EPOCH_A, 20, 30)])
+    assert await store.seq_holes(unreported=True) == []
+    await store.ingest(make_batch("g3-a", 5, epoch=EPOCH_A))  # late: splits the hole in two
+    await store.ingest(make_batch("g3-a", 12, epoch=EPOCH_A))  # a new hole, 10-11
+    assert await store.seq_holes() == [
+        SeqHole("g3-a", EPOCH_A, 2, 4),
+        SeqHole("g3-a", EPOCH_A, 6, 8),
+        SeqHole("g3-a", EPOCH_A, 10, 11),
+    ]
+    assert await store.seq_holes(unreported=True) == [SeqHole("g3-a", EPOCH_A, 10, 11)]
+    assert await store.seq_holes("g3-a", unreported=True) == [SeqHole("g3-a", EPOCH_A, 10, 11)]
+
+
+async def test_migration_marks_the_holes_whose_loss_event_is_stored(store_factory: StoreFactory):
+    """A database from before the marks: holes with a stored loss event come out reported, others not."""
+    await _raw_migrate(store_factory, upto=7)
+    for sql in (
+        "INSERT INTO boards (id, name, room, created_at) VALUES (1, 'g0-a', 'G0', 5)",
+        f"INSERT INTO seq_holes (board_id, epoch, first_seq, last_seq) VALUES (1, '{EPOCH_A}', 2, 3)",
+        f"INSERT INTO seq_holes (board_id, epoch, first_seq, last_seq) VALUES (1, '{EPOCH_A}', 7, 8)",
+        f"INSERT INTO events (at, board_id, kind, detail, key) VALUES (9, 1, 'loss', '{{}}', 'loss/g0-a/{EPOCH_A}/2-3')",
+    ):
+        await _raw_migrate(store_factory, upto=7, sql=sql)
+    store = await store_factory.open()
+    assert await store.seq_holes() == [SeqHole("g0-a", EPOCH_A, 2, 3), SeqHole("g0-a", EPOCH_A, 7, 8)]
+    assert await store.seq_holes(unreported=True) == [SeqHole("g0-a", EPOCH_A, 7, 8)]
 
 
 async def test_a_gap_record_covers_seqs_of_the_epoch_it_names(store):

@@ -782,7 +782,7 @@ async def test_migrations_from_empty_and_from_an_older_version(store_factory: St
     await add_boards(store, "g0-a")
     assert (await store.ingest(make_batch("g0-a", 0))).status is IngestStatus.STORED  # v2 tables exist
     await store.close()
-    assert await _raw_migrate(store_factory) == mig.latest(_versions(store_factory)) == 7
+    assert await _raw_migrate(store_factory) == mig.latest(_versions(store_factory)) == 8
 
 
 async def test_newer_schema_is_refused(store_factory: StoreFactory):
@@ -790,7 +790,7 @@ async def test_newer_schema_is_refused(store_factory: StoreFactory):
     await _raw_migrate(
         store_factory, sql="INSERT INTO schema_version (version, name, applied_at) VALUES (9, 'future', 'x')"
     )
-    with pytest.raises(SchemaTooNew, match="version 9 is newer than this listenpost supports \\(7\\)"):
+    with pytest.raises(SchemaTooNew, match="version 9 is newer than this listenpost supports \\(8\\)"):
         await store_factory.open()
 
 
@@ -877,7 +877,7 @@ async def test_migration_7_moves_every_reading_of_a_v5_database_into_its_day(pg_
 
     store = await pg_factory.open()
     async with _admin(pg_factory) as con:
-        assert await con.fetchval("SELECT max(version) FROM schema_version") == 7
+        assert await con.fetchval("SELECT max(version) FROM schema_version") == mig.latest(mig.POSTGRES)
         after = await con.fetch(f"SELECT tableoid::regclass::text, {', '.join(cols)} FROM readings")
         brin = {
             r[0]
