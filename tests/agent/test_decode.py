@@ -117,11 +117,14 @@ class TestPublishedVectors:
 
 u16 = st.integers(0, 0xFFFF)
 s8 = st.integers(-128, 127)
+# Not st.uuids(): it draws through a shared true-random source, and Hypothesis then sometimes finds the
+# generation inconsistent between runs of one example (FlakyStrategyDefinition) on a busy machine.
+uuid_values = st.binary(min_size=16, max_size=16).map(lambda b: uuid.UUID(bytes=b))
 
 
 class TestAgainstScapy:
     @settings(max_examples=150, deadline=None)
-    @given(st.uuids(), u16, u16, s8)
+    @given(uuid_values, u16, u16, s8)
     def test_ibeacon(self, u, major, minor, power):
         """scapy.contrib.ibeacon builds the frame and dissects it; our identity uses the same uuid/major/minor."""
         frame = s_ib.Apple_BLE_Submessage(subtype=0x02) / s_ib.IBeacon_Data(
@@ -134,7 +137,7 @@ class TestAgainstScapy:
         assert f"ibeacon:{d.uuid}:{d.major}:{d.minor}" == r.tag
 
     @settings(max_examples=150, deadline=None)
-    @given(st.uuids(), u16, u16, s8, u16)
+    @given(uuid_values, u16, u16, s8, u16)
     def test_altbeacon_any_company(self, u, id2, id3, power, company):
         """scapy.contrib.altbeacon under any company ID (the spec allows any manufacturer)."""
         if company == 0x004C:
@@ -195,7 +198,7 @@ company_ids = st.one_of(st.sampled_from([0x004C, 0x0118, 0xFFFF, 0x0006]), u16)
 service_keys = st.one_of(
     st.just(EDDYSTONE_UUID),
     st.sampled_from([uuid16_to_128(0x180F), uuid16_to_128(0xFD6F)]),
-    st.uuids().map(str),
+    uuid_values.map(str),
 )
 payload = st.one_of(
     st.binary(max_size=40),
