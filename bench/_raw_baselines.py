@@ -31,6 +31,7 @@ from pathlib import Path
 from typing import Any
 
 from listenpost.collector.store import IngestBatch
+from listenpost.collector.store.common import READING_COPY_COLUMNS
 from listenpost.collector.store.migrations import migrate_sqlite
 
 POOL = 10
@@ -263,14 +264,7 @@ async def raw_pg_copy(
                         await con.copy_records_to_table(
                             "readings",
                             schema_name=schema,
-                            columns=[
-                                "t_collector",
-                                "t_board_ms",
-                                "batch_id",
-                                "tag_id",
-                                "board_id",
-                                "rssi_dd",
-                            ],
+                            columns=READING_COPY_COLUMNS,
                             records=zip(
                                 b.t_collector.tolist(),
                                 b.t_board_ms.tolist(),

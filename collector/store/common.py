@@ -18,6 +18,9 @@ import numpy as np
 from listenpost.collector.store import BadBatch, Board, Calibration, ClockSample, IngestBatch, WatchBaseline
 from listenpost.core.wire import EPOCH
 
+READING_COPY_COLUMNS = ["t_collector", "t_board_ms", "batch_id", "tag_id", "board_id", "rssi_dd"]
+"""The readings columns in the order the PostgreSQL store COPYs them (the ingest bench's anchor does the same)."""
+
 BOARD_COLS = "name, room, floor, created_at, enrolled_at, fingerprint, offset_db, retired_at"
 """The `Board` columns, in the order `board_from_row` reads them."""
 

@@ -74,6 +74,7 @@ from listenpost.collector.store.common import (
     HISTORY_TABLES,
     LATEST_TELEMETRY_SQL,
     OFFSET_CHANGES_SQL,
+    READING_COPY_COLUMNS,
     SEQ_HOLES_SQL,
     TELEMETRY_FIELDS,
     WATCH_COLS,
@@ -774,14 +775,7 @@ class PostgresStore:
                 await con.copy_records_to_table(
                     "readings",
                     schema_name=self.schema,
-                    columns=[
-                        "t_collector",
-                        "t_board_ms",
-                        "batch_id",
-                        "tag_id",
-                        "board_id",
-                        "rssi_dd",
-                    ],
+                    columns=READING_COPY_COLUMNS,
                     records=zip(
                         np.asarray(b.t_collector, dtype=np.float64).tolist(),
                         np.asarray(b.t_board_ms, dtype=np.int64).tolist(),
