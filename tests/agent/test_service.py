@@ -164,9 +164,14 @@ async def run_on_virtual_time(
     return task.result()
 
 
-async def run_until_source_ends(cfg: Any, clock: VirtualClock, adverts: list[Advert]) -> int:
-    """``agent run`` over ``adverts`` on virtual time until the source ends; its exit code."""
-    async with aiohttp.ClientSession() as session:
+async def run_until_source_ends(
+    cfg: Any, clock: VirtualClock, adverts: list[Advert], session: aiohttp.ClientSession | None = None
+) -> int:
+    """``agent run`` over ``adverts`` on virtual time until the source ends (on the caller's HTTP session,
+    or one of its own); its exit code."""
+    async with contextlib.AsyncExitStack() as stack:
+        if session is None:
+            session = await stack.enter_async_context(aiohttp.ClientSession())
         task = asyncio.create_task(
             run_agent(
                 cfg,
@@ -201,16 +206,7 @@ async def test_replay_upload_stores_every_registered_reading_once_and_nothing_el
     cfg = board_config(tmp_path, str(server.make_url("")).rstrip("/"), tags=[1, 2, 3])
     adverts, expected = traffic(clock, 30.0, [1, 2, 3])
     async with aiohttp.ClientSession() as session:
-        task = asyncio.create_task(
-            run_agent(
-                cfg,
-                clock=clock,
-                source=ListSource(clock, adverts),
-                exit_when_source_ends=True,
-                session=session,
-            )
-        )
-        rc = await run_on_virtual_time(clock, task)
+        rc = await run_until_source_ends(cfg, clock, adverts, session)
         assert not session.closed  # a shared session stays the caller's
     assert rc == 0
     assert set(collector.readings) == expected and set(collector.readings.values()) == {1}
@@ -394,8 +390,11 @@ async def test_no_process_global_state_two_boards_in_one_loop(tmp_path):
         assert {k[0] for k in kept} == {tag(minor)} and len(kept) > 0
 
 
-async def test_contract_with_the_real_collector_enroll_then_upload(aiohttp_server, tmp_path):
-    """The real collector app (SQLite under tmp_path): enroll, fetch config, upload; readings stored once."""
+async def enrolled_at_a_real_collector(
+    aiohttp_server: Any, tmp_path: Path, clock: VirtualClock, *middlewares: Any
+) -> tuple[web.Application, Any]:
+    """The real collector app (SQLite under tmp_path, monitor not started, ``middlewares`` innermost) with
+    g1-a added and tags 1 and 2 registered, and g1-a enrolled through it; returns the app and its config."""
     from listenpost.agent.client.enroll import EnrollStatus, enroll
     from listenpost.agent.config import load_agent_config
     from listenpost.collector.app import create_app
@@ -404,9 +403,9 @@ async def test_contract_with_the_real_collector_enroll_then_upload(aiohttp_serve
     from listenpost.collector.state import STORE
     from listenpost.collector.store import Board, Enrollment
 
-    clock = VirtualClock()
     app = create_app(CollectorSettings(state_dir=str(tmp_path / "collector")), clock=clock, run_monitor=False)
     (tmp_path / "collector").mkdir()
+    app.middlewares.extend(middlewares)
     server = await aiohttp_server(app)
     store = app[STORE]
     await store.add_board(
@@ -417,7 +416,16 @@ async def test_contract_with_the_real_collector_enroll_then_upload(aiohttp_serve
     url = str(server.make_url("")).rstrip("/")
     result = await enroll(url, "BRK-G1A-7731", tmp_path / "board", clock=clock)
     assert result.status is EnrollStatus.ENROLLED, result.message
-    cfg = load_agent_config(result.config_path)
+    return app, load_agent_config(result.config_path)
+
+
+async def test_contract_with_the_real_collector_enroll_then_upload(aiohttp_server, tmp_path):
+    """The real collector app (SQLite under tmp_path): enroll, fetch config, upload; readings stored once."""
+    from listenpost.collector.state import STORE
+
+    clock = VirtualClock()
+    app, cfg = await enrolled_at_a_real_collector(aiohttp_server, tmp_path, clock)
+    store = app[STORE]
     adverts, expected = traffic(clock, 20.0, [1, 2, 3])
     expected = {k for k in expected if k[0] != tag(3)}  # minor 3 is not registered at the collector
     assert await run_until_source_ends(cfg, clock, adverts) == 0
@@ -446,18 +454,9 @@ async def test_a_lost_spool_with_batches_unsent_is_reported_as_exactly_those_bat
     epoch reached, so once a batch of the new epoch arrives the collector's loss check names exactly the
     batches the lost file held, as the tail of the old epoch.
     """
-    from listenpost.agent.client.enroll import EnrollStatus, enroll
-    from listenpost.agent.config import load_agent_config
-    from listenpost.collector.app import create_app
-    from listenpost.collector.config import CollectorSettings
-    from listenpost.collector.http.auth import code_hash
     from listenpost.collector.monitor import LOSS_GRACE_SECONDS, MONITOR
-    from listenpost.collector.state import STORE
-    from listenpost.collector.store import Board, Enrollment
 
     clock = VirtualClock()
-    app = create_app(CollectorSettings(state_dir=str(tmp_path / "collector")), clock=clock, run_monitor=False)
-    (tmp_path / "collector").mkdir()
     refusing = False
 
     @web.middleware
@@ -467,19 +466,7 @@ async def test_a_lost_spool_with_batches_unsent_is_reported_as_exactly_those_bat
             return web.json_response({"error": {"code": "unavailable"}}, status=503)
         return await handler(request)
 
-    app.middlewares.append(outage)
-    server = await aiohttp_server(app)
-    store = app[STORE]
-    await store.add_board(
-        Board("g1-a", "G1", "ground", clock.time()),
-        Enrollment("g1-a", code_hash("BRK-G1A-7731"), clock.time() + 3600),
-    )
-    await store.add_tags([tag(1), tag(2)], clock.time())
-    url = str(server.make_url("")).rstrip("/")
-    assert (
-        await enroll(url, "BRK-G1A-7731", tmp_path / "board", clock=clock)
-    ).status is EnrollStatus.ENROLLED
-    cfg = load_agent_config(tmp_path / "board" / "agent.yaml")
+    app, cfg = await enrolled_at_a_real_collector(aiohttp_server, tmp_path, clock, outage)
     spool_file = cfg.state_path(cfg.spool.path)
 
     async def advance_to(t: float) -> None:  # seconds after the agent started
