@@ -347,8 +347,11 @@ async def test_uploaded_replay_ends_at_the_collector_when_its_replay_ends(aiohtt
 
     with sqlite3.connect(f"file:{tmp_path / 'collector' / 'collector.sqlite'}?mode=ro", uri=True) as con:
         rows = con.execute("SELECT t_board_ms, t_collector FROM readings ORDER BY t_board_ms").fetchall()
+        # Round trips of the clock exchanges, in virtual time: none, unless the clock stepped while a
+        # loopback exchange was in flight (a busy machine); the fit's offset is off by at most half of one.
+        rtt = con.execute("SELECT max((t4 - t1) - (t3 - t2)) FROM clock_samples").fetchone()[0]
     assert [r[0] for r in rows] == [100_500, 101_250, 101_500, 103_000]
-    # Loopback exchanges take no virtual time, so the fit's offset is exact: board 101.75 s <-> `started`.
+    # The fit's offset: board 101.75 s <-> `started`, within half the longest exchange.
     for t_board_ms, t_collector in rows:
-        assert t_collector == pytest.approx(started + (t_board_ms / 1000 - 101.75), abs=0.01)
+        assert t_collector == pytest.approx(started + (t_board_ms / 1000 - 101.75), abs=0.01 + rtt / 2)
     assert rows[-1][1] <= clock.time()  # nothing lands in the collector's future
