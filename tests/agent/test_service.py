@@ -27,7 +27,7 @@ from listenpost.agent.config import parse_agent_config
 from listenpost.agent.service import AgentService, SourceState, run_agent
 from listenpost.agent.spool import Spool
 from listenpost.core import wire
-from listenpost.core.clock import VirtualClock
+from listenpost.core.clock import VirtualClock, settle
 from listenpost.core.records import Advert
 
 UUID = bytes.fromhex("4d2a0c1e7f3b4c559e612b8f0a7d3c10")
@@ -165,10 +165,15 @@ async def run_on_virtual_time(
 
 
 async def run_until_source_ends(
-    cfg: Any, clock: VirtualClock, adverts: list[Advert], session: aiohttp.ClientSession | None = None
+    cfg: Any,
+    clock: VirtualClock,
+    adverts: list[Advert],
+    session: aiohttp.ClientSession | None = None,
+    step: float = 0.25,
+    **run: Any,
 ) -> int:
-    """``agent run`` over ``adverts`` on virtual time until the source ends (on the caller's HTTP session,
-    or one of its own); its exit code."""
+    """``agent run`` (with ``run``'s options) over ``adverts`` on virtual time until the source ends, on
+    the caller's HTTP session or one of its own; its exit code."""
     async with contextlib.AsyncExitStack() as stack:
         if session is None:
             session = await stack.enter_async_context(aiohttp.ClientSession())
@@ -179,9 +184,10 @@ async def run_until_source_ends(
                 source=ListSource(clock, adverts),
                 exit_when_source_ends=True,
                 session=session,
+                **run,
             )
         )
-        return await run_on_virtual_time(clock, task)
+        return await run_on_virtual_time(clock, task, step=step)
 
 
 async def spooled_readings(path: Path, clock: VirtualClock) -> Counter:
@@ -262,16 +268,8 @@ async def test_boots_from_the_cached_config_when_the_collector_is_unreachable(tm
         '"cached"',
     )
     adverts, _ = traffic(clock, 6.0, [1, 2, 3])
-    task = asyncio.create_task(
-        run_agent(
-            cfg,
-            clock=clock,
-            source=ListSource(clock, adverts),
-            exit_when_source_ends=True,
-            drain_timeout_s=20.0,
-        )
-    )
-    assert await run_on_virtual_time(clock, task, step=0.5) == 1  # not drained: the collector is gone
+    # not drained: the collector is gone
+    assert await run_until_source_ends(cfg, clock, adverts, step=0.5, drain_timeout_s=20.0) == 1
     kept = await spooled_readings(cfg.state_path("spool.sqlite"), clock)
     tags = {k[0] for k in kept}
     assert tags == {tag(1), tag(2)}  # from the cache, not the local tag file's minor 3
@@ -455,6 +453,7 @@ async def test_a_lost_spool_with_batches_unsent_is_reported_as_exactly_those_bat
     batches the lost file held, as the tail of the old epoch.
     """
     from listenpost.collector.monitor import LOSS_GRACE_SECONDS, MONITOR
+    from listenpost.collector.state import STORE
 
     clock = VirtualClock()
     refusing = False
@@ -469,11 +468,18 @@ async def test_a_lost_spool_with_batches_unsent_is_reported_as_exactly_those_bat
     app, cfg = await enrolled_at_a_real_collector(aiohttp_server, tmp_path, clock, outage)
     spool_file = cfg.state_path(cfg.spool.path)
 
+    async def step() -> None:
+        await asyncio.wait_for(service.spool.idle(), 10)  # the spool's thread has caught up
+        await settle()  # loopback requests in this loop go as far as they can
+        await clock.advance(0.25)
+
     async def advance_to(t: float) -> None:  # seconds after the agent started
-        end = started + t
-        while clock.monotonic() < end:
-            await asyncio.sleep(0.002)  # bounded real wait for loopback I/O and the spool's thread
-            await clock.advance(0.25)
+        while clock.monotonic() < started + t:
+            await step()
+
+    async def announced() -> int | None:
+        hb = (await app[STORE].latest_heartbeats()).get("g1-a")
+        return None if hb is None else hb.stats["spool"]["next_seq"]
 
     async with aiohttp.ClientSession() as session:
         started = clock.monotonic()
@@ -485,8 +491,11 @@ async def test_a_lost_spool_with_batches_unsent_is_reported_as_exactly_those_bat
         await asyncio.wait_for(service.started.wait(), 10)
         await advance_to(15.0)
         refusing = True
-        # Past the last advert: everything sealed, and heartbeats (every 10 s) have announced it.
-        await advance_to(70.0)
+        await advance_to(50.0)  # past the last advert: everything sealed
+        # Until a heartbeat has announced all of it (one every 10 s; bounded in virtual time).
+        while await announced() != service.spool.stats().next_seq:
+            assert clock.monotonic() < started + 300, "no heartbeat announced the spool"
+            await step()
         old_epoch = service.spool.stats().epoch
         service.request_stop()
         await run_on_virtual_time(clock, task)
