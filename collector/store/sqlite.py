@@ -7,11 +7,11 @@ Threads, so the event loop never blocks on the disk:
 - one **reader** thread owns a second connection; WAL lets it read while the writer commits.
 
 Ingest uses **group commit**: batches that arrive while a commit is running wait in a queue and are
-written together in the next transaction, each inside its own SAVEPOINT, so a batch the database refuses
-is rolled back alone while the others in its group are kept. Every caller's future resolves only after
+written together in the next transaction; a batch the database refuses is rolled back alone while the
+others in its group are kept (`SqliteStore._write_items`). Every caller's future resolves only after
 the group's COMMIT returned with ``synchronous=FULL`` (the WAL is fsynced on every commit). One fsync per
 group instead of one per batch is what lets a hundred boards share one SD card or disk. Heartbeats join
-the same queue (a savepoint each): a group of heartbeats alone commits without the fsync, as heartbeats
+the same queue: a group of heartbeats alone commits without the fsync, as heartbeats
 always did (the next one replaces what a crash loses); one among batches is as durable as they are.
 
 A write lock held elsewhere past ``busy_timeout_s``, a full disk or an I/O error → `StoreUnavailable`.
@@ -27,7 +27,7 @@ import math
 import os
 import sqlite3
 from collections import deque
-from collections.abc import AsyncIterator, Callable, Iterator, Sequence
+from collections.abc import AsyncIterator, Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from itertools import chain, islice, repeat
@@ -92,7 +92,10 @@ from listenpost.collector.store.common import (
 from listenpost.collector.store.migrations import migrate_sqlite
 
 log = structlog.get_logger("listenpost.collector.store.sqlite")
-_INSERT_BATCH = f"INSERT INTO batches ({', '.join(BATCH_COLS)}) VALUES ({', '.join('?' * len(BATCH_COLS))})"
+_INSERT_BATCH = (
+    f"INSERT INTO batches ({', '.join(BATCH_COLS)}) VALUES ({', '.join('?' * len(BATCH_COLS))}) "
+    "ON CONFLICT (board_id, epoch, seq) DO NOTHING"
+)
 T = TypeVar("T")
 
 # Result codes that mean "the storage cannot do it now", not "this request is wrong".
@@ -587,44 +590,72 @@ class SqliteStore:
                 "PRAGMA synchronous = NORMAL"
             )  # heartbeats alone: no fsync (only outside a transaction)
         try:
-            con.execute("BEGIN IMMEDIATE")
-            new_tags: dict[str, int] = {}
             try:
-                results: list[Any] = []
-                for x in items:
-                    # Everything one batch does, its new tags included, is inside its own savepoint:
-                    # whatever goes wrong with one batch (or heartbeat) is answered to it and rolled back
-                    # alone. Only the storage failing (disk full, I/O error, lock) fails the group.
-                    con.execute("SAVEPOINT item")
-                    try:
-                        if isinstance(x, IngestBatch):
-                            mine = self._intern_tags(con, batch_tag_names(x) - new_tags.keys())
-                            results.append(self._insert_batch(con, x, self._tag_ids | new_tags | mine))
-                            new_tags |= mine
-                        else:
-                            results.append(self._insert_heartbeat(con, x))
-                        con.execute("RELEASE item")
-                    except Exception as e:
-                        if isinstance(e, sqlite3.Error) and not isinstance(
-                            e, sqlite3.IntegrityError | sqlite3.DataError
-                        ):
-                            raise
-                        con.execute("ROLLBACK TO item")
-                        con.execute("RELEASE item")
-                        results.append(_refusal(x, e) if isinstance(x, IngestBatch) else e)
-                con.execute("COMMIT")
-            except BaseException:
-                if con.in_transaction:
-                    with contextlib.suppress(sqlite3.Error):
-                        con.execute("ROLLBACK")
-                raise
+                results = self._write_items(con, items, careful=False)
+            except _ItemRefused:
+                results = self._write_items(con, items, careful=True)
         finally:
             if not batches:
                 con.execute("PRAGMA synchronous = FULL")
-        self._tag_ids.update(new_tags)
         if batches:
             self.ingest_commits += 1
             self.ingest_batches += batches
+        return results
+
+    def _write_items(
+        self, con: sqlite3.Connection, items: list[IngestBatch | _HeartbeatWrite], *, careful: bool
+    ) -> list[Any]:
+        """
+        One transaction for the group. Every statement lets the event loop's thread take the GIL (and
+        gives it back only at its next switch interval), so the writer sends as few as it can: the group's
+        readings go in shared multi-row INSERTs, not per batch, and no item has a savepoint of its own.
+        If the database refuses anything of one item, the group is rolled back (`_ItemRefused`) and
+        written again ``careful``: each item inside its own SAVEPOINT with its own readings, so the item
+        refused is answered and rolled back alone. Only the storage failing (disk full, I/O error, lock)
+        fails the group.
+        """
+        con.execute("BEGIN IMMEDIATE")
+        new_tags: dict[str, int] = {}
+        readings: list[Any] = []
+        try:
+            results: list[Any] = []
+            for x in items:
+                if careful:
+                    con.execute("SAVEPOINT item")
+                try:
+                    mine: dict[str, int] = {}
+                    if isinstance(x, IngestBatch):
+                        mine = self._intern_tags(con, batch_tag_names(x) - new_tags.keys())
+                        result = self._insert_batch(con, x, self._tag_ids | new_tags | mine, readings)
+                    else:
+                        result = self._insert_heartbeat(con, x)
+                    _insert_readings(con, readings, whole=careful)
+                    if careful:
+                        con.execute("RELEASE item")
+                    new_tags |= mine
+                    results.append(result)
+                except Exception as e:
+                    if isinstance(e, sqlite3.Error) and not isinstance(
+                        e, sqlite3.IntegrityError | sqlite3.DataError
+                    ):
+                        raise
+                    if not careful:
+                        raise _ItemRefused from e
+                    con.execute("ROLLBACK TO item")
+                    con.execute("RELEASE item")
+                    readings.clear()
+                    results.append(_refusal(x, e) if isinstance(x, IngestBatch) else e)
+            try:
+                _insert_readings(con, readings, whole=True)
+            except (sqlite3.IntegrityError, sqlite3.DataError) as e:
+                raise _ItemRefused from e
+            con.execute("COMMIT")
+        except BaseException:
+            if con.in_transaction:
+                with contextlib.suppress(sqlite3.Error):
+                    con.execute("ROLLBACK")
+            raise
+        self._tag_ids.update(new_tags)
         return results
 
     def _intern_tags(self, con: sqlite3.Connection, names: set[str]) -> dict[str, int]:
@@ -640,31 +671,32 @@ class SqliteStore:
         ids = {t: con.execute("SELECT id FROM tags WHERE tag = ?", (t,)).fetchone()[0] for t in missing}
         return ids
 
-    def _insert_batch(self, con: sqlite3.Connection, b: IngestBatch, tag_ids: dict[str, int]) -> IngestResult:
+    def _insert_batch(
+        self, con: sqlite3.Connection, b: IngestBatch, tag_ids: dict[str, int], readings: list[Any]
+    ) -> IngestResult:
+        """Store one batch; its readings' column values are appended to ``readings`` (`_insert_readings`)."""
         offset_dd = check_batch(b)
         bid = self._board_id(con, b.board)
         if b.clock is not None:
             # The exchange is a measurement of its own, kept whatever the batch turns out to be (stored,
-            # duplicate, conflict), in the batch's savepoint: one commit, and gone with a refused batch.
-            _insert_clock_sample(con, bid, b.clock)
-        row = con.execute(
-            "SELECT digest FROM batches WHERE board_id = ? AND epoch = ? AND seq = ?", (bid, b.epoch, b.seq)
-        ).fetchone()
-        if row is not None:
+            # duplicate, conflict), in the batch's transaction: one commit, and gone with a refused batch.
+            _insert_clock_sample(con, bid, b.clock, note_boot=False)
+        cur = con.execute(_INSERT_BATCH, batch_row(b, bid, offset_dd))
+        if not cur.rowcount:  # (board, epoch, seq) is stored already
+            if b.clock is not None:
+                _note_boot(con, bid, b.clock.boot, b.clock.t2)
+            (stored,) = con.execute(
+                "SELECT digest FROM batches WHERE board_id = ? AND epoch = ? AND seq = ?",
+                (bid, b.epoch, b.seq),
+            ).fetchone()
             return IngestResult(
-                IngestStatus.DUPLICATE if row[0] == b.digest else IngestStatus.CONFLICT, row[0]
+                IngestStatus.DUPLICATE if stored == b.digest else IngestStatus.CONFLICT, stored
             )
-        cur = con.execute(
-            _INSERT_BATCH,
-            batch_row(b, bid, offset_dd),
-        )
         batch_id = cur.lastrowid
         for epoch, lo, hi in seq_intervals(b):
             _account_seqs(con, bid, epoch, lo, hi)
         if b.n:
-            _insert_readings(
-                con,
-                b.n,
+            readings.extend(
                 chain.from_iterable(
                     zip(
                         repeat(batch_id),
@@ -674,7 +706,7 @@ class SqliteStore:
                         np.asarray(b.t_collector, dtype=np.float64).tolist(),
                         np.asarray(b.rssi_dd, dtype=np.int64).tolist(),
                     )
-                ),
+                )
             )
         if b.telemetry:
             con.executemany(
@@ -695,17 +727,14 @@ class SqliteStore:
         con.execute(
             "UPDATE boards SET readings_total = readings_total + ?, batches_total = batches_total + 1, "
             "gap_readings = gap_readings + ?, last_batch_at = max(coalesce(last_batch_at, ?), ?), "
-            "last_boot = CASE WHEN last_boot_at IS NULL OR last_boot_at <= ? THEN ? ELSE last_boot END, "
-            "last_boot_at = max(coalesce(last_boot_at, ?), ?) WHERE id = ?",
+            + _CONTACT_BOOT
+            + " WHERE id = ?",
             (
                 b.n,
                 (b.gap or {}).get("readings", 0),
                 b.received_at,
                 b.received_at,
-                b.received_at,
-                b.boot,
-                b.received_at,
-                b.received_at,
+                *_contact(b.clock, b.boot, b.received_at),
                 bid,
             ),
         )
@@ -776,7 +805,7 @@ class SqliteStore:
         hb = w.heartbeat
         bid = self._board_id(con, hb.board)
         if w.clock is not None:
-            _insert_clock_sample(con, bid, w.clock)
+            _insert_clock_sample(con, bid, w.clock, note_boot=False)
         con.execute(
             "INSERT INTO heartbeats (board_id, at, boot, stats) VALUES (?, ?, ?, ?)",
             (bid, hb.at, hb.boot, w.stats_json),
@@ -786,9 +815,18 @@ class SqliteStore:
             "ORDER BY at DESC, id DESC LIMIT -1 OFFSET ?)",
             (bid, self._heartbeat_history),
         )
-        _note_boot(con, bid, hb.boot, hb.at)
-        if w.spool_mark is not None:
-            _note_spool(con, bid, *w.spool_mark, hb.at)
+        # The board's boot (of the clock sample, then of the heartbeat) and spool epoch: one statement.
+        epoch, sealed = w.spool_mark if w.spool_mark is not None else (None, None)
+        con.execute(
+            "UPDATE boards SET " + _CONTACT_BOOT + ", "
+            "spool_epoch = CASE WHEN ? IS NOT NULL AND (spool_epoch_at IS NULL OR spool_epoch_at <= ?) "
+            "THEN ? ELSE spool_epoch END, "
+            "spool_epoch_at = CASE WHEN ? IS NOT NULL AND (spool_epoch_at IS NULL OR spool_epoch_at <= ?) "
+            "THEN ? ELSE spool_epoch_at END WHERE id = ?",
+            (*_contact(w.clock, hb.boot, hb.at), epoch, hb.at, epoch, epoch, hb.at, hb.at, bid),
+        )
+        if sealed is not None:
+            _note_announced(con, bid, epoch, sealed)
 
     async def heartbeats(self, board: str, since: float) -> list[Heartbeat]:
         rows = await self._query(
@@ -1047,6 +1085,10 @@ class SqliteStore:
         return lock is not None and lock.locked()
 
 
+class _ItemRefused(Exception):
+    """The database refused something of one item of a group written without savepoints."""
+
+
 @dataclass(frozen=True, slots=True)
 class _HeartbeatWrite:
     """A heartbeat (with the clock sample its request carried) queued for a group commit."""
@@ -1095,26 +1137,52 @@ def _readings_sql(rows: int) -> str:
 _READINGS_SQL = {1 << i: _readings_sql(1 << i) for i in range(_READING_CHUNK.bit_length())}
 
 
-def _insert_readings(con: sqlite3.Connection, n: int, flat: Iterator[Any]) -> None:
-    """Insert ``n`` readings given as one flat stream of their six column values, row after row, in order."""
-    left = n
-    while left:
-        k = _READING_CHUNK if left >= _READING_CHUNK else 1 << (left.bit_length() - 1)
-        params = list(islice(flat, k * _READING_COLS))
-        if len(params) != k * _READING_COLS:
-            raise ValueError(
-                f"readings: expected {n} rows, the columns ran out after {n - left + len(params) // _READING_COLS}"
-            )
-        con.execute(_READINGS_SQL[k], params)
-        left -= k
+def _insert_readings(con: sqlite3.Connection, flat: list[Any], *, whole: bool) -> None:
+    """
+    Insert the readings buffered in ``flat`` (their six column values, row after row) and take them out of
+    it: every full chunk, and with ``whole`` the rest too (as powers of two).
+    """
+    step = _READING_CHUNK * _READING_COLS
+    done = 0
+    while len(flat) - done >= step:
+        con.execute(_READINGS_SQL[_READING_CHUNK], flat[done : done + step])
+        done += step
+    if whole:
+        left = (len(flat) - done) // _READING_COLS
+        while left:
+            k = 1 << (left.bit_length() - 1)
+            con.execute(_READINGS_SQL[k], flat[done : done + k * _READING_COLS])
+            done += k * _READING_COLS
+            left -= k
+    del flat[:done]
 
 
-def _insert_clock_sample(con: sqlite3.Connection, board_id: int, s: ClockSample) -> None:
+def _insert_clock_sample(
+    con: sqlite3.Connection, board_id: int, s: ClockSample, *, note_boot: bool = True
+) -> None:
+    """The sample and (unless the caller notes it with its own `_CONTACT_BOOT`) its boot on the board."""
     con.execute(
         "INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES (?, ?, ?, ?, ?, ?)",
         (board_id, s.boot, s.t1, s.t2, s.t3, s.t4),
     )
-    _note_boot(con, board_id, s.boot, s.t2)
+    if note_boot:
+        _note_boot(con, board_id, s.boot, s.t2)
+
+
+# A contact's boot on its board (`_note_boot` as of the contact's clock sample t2, then as of the contact
+# itself), in one SET clause: every expression reads the row as it was, so the CASE first works out the
+# boot time the sample leaves, max(last_boot_at, t2). Parameters from `_contact`.
+_CONTACT_BOOT = (
+    "last_boot = CASE WHEN max(coalesce(last_boot_at, ?), ?) <= ? THEN ? "
+    "WHEN last_boot_at IS NULL OR last_boot_at <= ? THEN ? ELSE last_boot END, "
+    "last_boot_at = max(coalesce(last_boot_at, ?), ?, ?)"
+)
+
+
+def _contact(clock: ClockSample | None, boot: str, at: float) -> tuple[Any, ...]:
+    """`_CONTACT_BOOT`'s parameters for a contact at ``at`` in ``boot`` that carried ``clock``."""
+    t2, sample_boot = (clock.t2, clock.boot) if clock is not None else (at, boot)
+    return (t2, t2, at, boot, t2, sample_boot, t2, t2, at)
 
 
 def _account_seqs(con: sqlite3.Connection, board_id: int, epoch: str, lo: int, hi: int) -> None:
@@ -1157,18 +1225,12 @@ def _account_seqs(con: sqlite3.Connection, board_id: int, epoch: str, lo: int, h
     )
 
 
-def _note_spool(con: sqlite3.Connection, board_id: int, epoch: str, sealed: int | None, at: float) -> None:
-    """A heartbeat's spool figures: the board's current epoch, and how far that epoch's seqs reach."""
+def _note_announced(con: sqlite3.Connection, board_id: int, epoch: str, sealed: int) -> None:
+    """How far a heartbeat says its epoch's seqs reach (only an epoch some batch opened has a span)."""
     con.execute(
-        "UPDATE boards SET spool_epoch = ?, spool_epoch_at = ? WHERE id = ? AND "
-        "(spool_epoch_at IS NULL OR spool_epoch_at <= ?)",
-        (epoch, at, board_id, at),
+        "UPDATE seq_reach SET announced = max(coalesce(announced, -1), ?) WHERE board_id = ? AND epoch = ?",
+        (sealed, board_id, epoch),
     )
-    if sealed is not None:  # only an epoch some batch opened: one that never sent any has no span to extend
-        con.execute(
-            "UPDATE seq_reach SET announced = max(coalesce(announced, -1), ?) WHERE board_id = ? AND epoch = ?",
-            (sealed, board_id, epoch),
-        )
 
 
 def _note_boot(con: sqlite3.Connection, board_id: int, boot: str, at: float) -> None:
