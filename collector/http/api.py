@@ -41,7 +41,7 @@ from listenpost.collector.store import (
     StoreUnavailable,
 )
 from listenpost.core import jsonload, wire
-from listenpost.core.wire import WireError, parse_batch, parse_clock
+from listenpost.core.wire import WireError, parse_batch_body, parse_clock
 
 log = structlog.get_logger("listenpost.collector.http.api")
 
@@ -50,11 +50,24 @@ _READ_CHUNK = 64 * 1024
 
 async def read_json(request: web.Request, limits: Limits) -> Any:
     """
-    Read a JSON body within the limits: ``max_body_bytes`` as sent, ``max_decompressed_bytes`` inflated.
+    Read a JSON body within the limits (`read_body`).
 
-    Raises `ApiError` 413 past a limit, 415 for an encoding other than gzip, 400 for bad JSON: the
-    strict reader (`listenpost.core.jsonload`) also refuses NaN/Infinity, deep nesting, NUL and lone
-    surrogates, which nothing downstream could store.
+    Raises `ApiError` as `read_body` does, and 400 for bad JSON: the strict reader
+    (`listenpost.core.jsonload`) also refuses NaN/Infinity, deep nesting, NUL and lone surrogates, which
+    nothing downstream could store.
+    """
+    try:
+        return jsonload.loads(await read_body(request, limits))
+    except jsonload.JsonError as e:
+        raise ApiError(400, "bad_json", f"body: {e}", field="body") from e
+
+
+async def read_body(request: web.Request, limits: Limits) -> bytes:
+    """
+    Read a body within the limits: ``max_body_bytes`` as sent, ``max_decompressed_bytes`` inflated.
+
+    Raises `ApiError` 413 past a limit, 415 for an encoding other than gzip, 400 for a body that cannot be
+    inflated.
     """
     encoding = request.headers.get("Content-Encoding", "identity").strip().lower()
     if encoding not in ("identity", "gzip", ""):
@@ -102,10 +115,7 @@ async def read_json(request: web.Request, limits: Limits) -> Any:
             400, "bad_encoding", f"body could not be decoded as {encoding}: {e}", field="body"
         ) from e
     request[BYTES_SENT] = sent if sent is not None else received
-    try:
-        return jsonload.loads(b"".join(parts))
-    except jsonload.JsonError as e:
-        raise ApiError(400, "bad_json", f"body: {e}", field="body") from e
+    return b"".join(parts)
 
 
 TOKEN_CACHE_SECONDS = 10.0
@@ -312,9 +322,11 @@ async def post_batch(request: web.Request) -> web.Response:
 async def _store_batch(request: web.Request, board: Board) -> web.Response:
     app = request.app
     store, runtime, t2 = app[STORE], app[RUNTIME], request[T2]
-    body = await read_json(request, app[SETTINGS].limits)
+    body = await read_body(request, app[SETTINGS].limits)
     try:
-        env = parse_batch(body, max_readings=app[SETTINGS].limits.max_readings)
+        env = parse_batch_body(body, max_readings=app[SETTINGS].limits.max_readings)
+    except jsonload.JsonError as e:
+        raise ApiError(400, "bad_json", f"body: {e}", field="body") from e
     except WireError as e:
         runtime.counters.rejected += 1
         raise bad_field(e.field, str(e).removeprefix(f"{e.field}: ")) from e

@@ -18,8 +18,10 @@ from listenpost.core.wire import (
     canonical_json,
     decode_content,
     digest,
+    encode_batch,
     encode_content,
     parse_batch,
+    parse_batch_body,
     parse_clock,
 )
 
@@ -193,6 +195,93 @@ def test_bad_envelope_names_the_field(changes: dict, field: str) -> None:
     with pytest.raises(WireError) as e:
         parse_batch(_envelope(**changes), max_readings=10)
     assert e.value.field == field
+
+
+def _sent(content: dict, *, dig: str | None = None, clock: dict | None = None) -> bytes:
+    """A body as the agent's uplink sends it: the envelope, then the content's canonical bytes."""
+    raw = canonical_json(content)
+    return encode_batch(
+        board="g0-a",
+        boot="b",
+        epoch="00112233aabbccdd",
+        seq=3,
+        digest=dig or digest(raw),
+        t1=10.0,
+        clock=clock,
+        content=raw,
+    )
+
+
+def test_body_as_the_agent_sends_it_is_checked_without_encoding_the_content_again(monkeypatch) -> None:
+    """The content's bytes as sent are the canonical ones: their hash is the digest, no re-encoding."""
+    body = _sent(_content(), clock={"t1": 1.0, "t2": 1.8e9, "t3": 1.8e9, "t4": 1.1})
+    whole = parse_batch(jsonload.loads(body), max_readings=10)
+
+    def refuse(obj):
+        raise AssertionError("content encoded again")
+
+    monkeypatch.setattr("listenpost.core.wire.canonical_json", refuse)
+    assert parse_batch_body(body, max_readings=10) == whole
+
+
+@pytest.mark.parametrize(
+    "layout",
+    [
+        pytest.param(
+            lambda c, d: json.dumps({"digest": d, "content": c, **_envelope(digest=d, content=c)}, indent=1),
+            id="pretty-printed",
+        ),
+        pytest.param(
+            lambda c, d: json.dumps(
+                {"content": c, **{k: v for k, v in _envelope(digest=d).items() if k != "content"}}
+            ),
+            id="content first",
+        ),
+        pytest.param(
+            lambda c, d: _sent(c, dig=d).decode()[:-1] + ',"extra":{"content":1}}',
+            id="a member after the content",
+        ),
+        pytest.param(
+            lambda c, d: json.dumps({**_envelope(digest=d, content=c), "clock": None}).replace(
+                '"clock": null', '"clock": null, "x": {"y": 1, "content": {}}'
+            ),
+            id="a nested content key first",
+        ),
+    ],
+)
+def test_any_other_layout_of_a_valid_body_is_parsed_whole(layout) -> None:
+    """Key order and white space are the sender's choice: the digest is checked over the canonical content."""
+    c = _content()
+    body = layout(c, digest(c))
+    text = body if isinstance(body, str) else body.decode()
+    assert parse_batch_body(text.encode(), max_readings=10).content == decode_content(c)
+
+
+def test_content_bytes_that_do_not_hash_to_the_digest_are_refused() -> None:
+    c = _content()
+    with pytest.raises(WireError) as e:
+        parse_batch_body(_sent(c, dig="0" * 64), max_readings=10)
+    assert e.value.field == "digest"
+    # The digest of the content with one value changed is not this content's digest either.
+    other = copy.deepcopy(c)
+    other["readings"]["rssi_dd"][0] += 1
+    with pytest.raises(WireError) as e:
+        parse_batch_body(_sent(c, dig=digest(other)), max_readings=10)
+    assert e.value.field == "digest"
+
+
+@pytest.mark.parametrize(
+    ("body", "problem"),
+    [
+        (b'{"v":1,"content":{"a":NaN}}', "NaN is not allowed"),
+        (b'{"v":1,"content":{"a":1}', "not valid JSON"),
+        (b'{"v":1,"content":{"a":1}}}', "not valid JSON"),
+        (b'{"v":1,"clock":{"content":{"a":1}}', "not valid JSON"),
+    ],
+)
+def test_a_body_that_is_not_strict_json_is_named_as_a_whole(body: bytes, problem: str) -> None:
+    with pytest.raises(JsonError, match=problem):
+        parse_batch_body(body, max_readings=10)
 
 
 def test_board_and_collector_times_of_an_exchange() -> None:
