@@ -341,7 +341,8 @@ class _Segment:
         kept.append(s)
         kept.sort(key=lambda x: x.delay)
         del kept[settings.keep_per_window :]
-        self.dirty = True
+        # A sample slower than every one its window keeps changes nothing the line rests on: no refit.
+        self.dirty = self.dirty or any(x is s for x in kept)
 
     def kept(self, settings: ClockSettings) -> list[_Sample]:
         if not self.windows:
