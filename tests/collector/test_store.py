@@ -516,6 +516,52 @@ async def test_clock_samples_and_latest_boot(store):
         await store.add_clock_sample(ClockSample("u2-a", "boot-1", float("nan"), 1.0, 1.0, 1.0))
 
 
+@pytest.mark.parametrize("seed", range(4))
+async def test_latest_boot_follows_every_contact_in_order_of_its_time(store_factory: StoreFactory, seed: int):
+    """
+    The board's latest boot after any mix of contacts, each sent alone or queued together, equals a plain
+    model: every contact (its clock sample's t2 and boot first, then the contact's own time and boot) moves
+    it only if no earlier-stored contact was later; a duplicate batch contributes only its sample.
+    """
+    store = await store_factory.open()
+    rnd = random.Random(seed)
+    await add_boards(store, "u4-a")
+    model: tuple[float, str] | None = None
+    stored: list[int] = []
+
+    def note(at: float, boot: str) -> None:
+        nonlocal model
+        if model is None or model[0] <= at:
+            model = (at, boot)
+
+    for round_ in range(6):
+        calls = []
+        for _ in range(rnd.randrange(1, 6)):
+            at = 1_800_000_000.0 + rnd.randrange(0, 40)  # ties on purpose
+            boot = rnd.choice(["boot-1", "boot-2", "boot-3"])
+            sample = None
+            if rnd.random() < 0.6:
+                t2 = at - rnd.randrange(0, 5) if rnd.random() < 0.8 else at + 3  # a sample stamped later, too
+                sample = ClockSample("u4-a", rnd.choice(["boot-1", "boot-2", "boot-3"]), 5.0, t2, t2, 5.1)
+                note(sample.t2, sample.boot)
+            if rnd.random() < 0.5:
+                seq = rnd.randrange(0, 12)
+                b = dataclasses.replace(make_batch("u4-a", seq, boot=boot, received_at=at), clock=sample)
+                if seq not in stored:
+                    stored.append(seq)
+                    note(at, boot)
+                calls.append(store.ingest(b))
+            else:
+                note(at, boot)
+                calls.append(store.add_heartbeat(Heartbeat("u4-a", at, boot, {}), clock=sample))
+        if store_factory.backend == "sqlite":
+            await asyncio.gather(*calls)  # one group commit, in the order queued
+        else:
+            for call in calls:  # a pool of connections: concurrent ones may commit in any order
+                await call
+        assert model is not None and await _last_boot(store, "u4-a") == model[1], f"round {round_}"
+
+
 async def test_heartbeat_history_is_bounded(store_factory: StoreFactory):
     """Only the newest ``heartbeat_history`` heartbeats per board stay; the latest one is always at hand."""
     store = await store_factory.open(heartbeat_history=3)
