@@ -325,6 +325,10 @@ class _Sample:
         return (self.t1 + self.t4) / 2
 
 
+_SETTLED_WINDOWS = 10
+"""Span of a segment's line, in windows, from which it is refitted once per window (`_fit_segment`)."""
+
+
 @dataclass(slots=True)
 class _Segment:
     start_b: float
@@ -334,9 +338,13 @@ class _Segment:
     dirty: bool = True
     fit_window: int | None = None
     """Newest window index when ``fit`` was computed."""
+    newest: int | None = None
+    """Newest window index of any sample."""
 
     def add(self, s: _Sample, settings: ClockSettings) -> None:
         idx = math.floor((s.mid - self.start_b) / settings.window_s)
+        if self.newest is None or idx > self.newest:
+            self.newest = idx
         kept = self.windows.setdefault(idx, [])
         kept.append(s)
         kept.sort(key=lambda x: x.delay)
@@ -515,11 +523,7 @@ class ClockModel:
     # -- internals -------------------------------------------------------------------------------------
 
     def _consistent_with_segment(self, seg: _Segment, s: _Sample) -> bool:
-        f = seg.fit
-        # Refitting on every exchange would cost O(kept) each time; once the skew is known the line
-        # moves by far less than the step tolerance within a window, so refresh once per window.
-        if f is None or not f.skew_estimated or seg.fit_window != max(seg.windows):
-            f = self._fit_segment(seg)
+        f = self._fit_segment(seg)
         assert f is not None
         predicted = float(f.offset_at(s.mid))
         # The line is only as sure as its best exchange: a segment resting on one slow exchange (say a
@@ -541,8 +545,19 @@ class ClockModel:
         return abs(b.offset - a.offset) <= allowance
 
     def _fit_segment(self, seg: _Segment) -> ClockFit | None:
-        if not seg.dirty and seg.fit is not None:
-            return seg.fit
+        # Once the line rests on `_SETTLED_WINDOWS` windows of exchanges (up to `horizon_s`, thousands
+        # kept), one more moves it by a fraction of a millisecond: refit once per window, not per exchange
+        # (a refit over a full horizon costs milliseconds, and every request brings an exchange).
+        f = seg.fit
+        if f is not None and (
+            not seg.dirty
+            or (
+                f.skew_estimated
+                and f.span_s >= _SETTLED_WINDOWS * self.settings.window_s
+                and seg.fit_window == seg.newest
+            )
+        ):
+            return f
         kept = seg.kept(self.settings)
         if not kept:
             return None
@@ -588,7 +603,7 @@ class ClockModel:
         )
         seg.fit = fit
         seg.dirty = False
-        seg.fit_window = max(seg.windows)
+        seg.fit_window = seg.newest
         return fit
 
 

@@ -355,6 +355,38 @@ def test_long_boot_is_bounded_and_tracks_skew():
     assert_allclose(fit.skew_ppm, 31.0, atol=0.5)
 
 
+def test_a_long_boot_refits_once_per_window_and_the_line_stays_as_exact():
+    """
+    Every request brings an exchange; refitting thousands of kept exchanges for each would cost
+    milliseconds a request after a few hours. Once the skew is known, the line is refitted when an
+    exchange opens a new window (or a step starts a segment), and it maps board times as the line
+    refitted on every exchange would, to under a millisecond (while the line is young it is refitted
+    on every exchange, which is cheap then).
+    """
+    b1, t2, t3, t4 = synth(23, 27.0, minutes=3 * 60, period_s=10.0)
+    settings = ClockSettings(horizon_s=3600.0)  # a shorter horizon keeps the eager side's refits cheap
+    lazy, eager = ClockModel(settings), ClockModel(settings)
+    refits = 0  # after the first hour
+    worst = 0.0
+    for a, b, c, d in zip(b1, t2, t3, t4, strict=True):
+        before = lazy.fit()
+        lazy.add(float(a), float(b), float(c), float(d))
+        eager.add(float(a), float(b), float(c), float(d))
+        after = lazy.fit()
+        seg = eager._segments[-1]
+        seg.dirty = True
+        seg.fit = None  # eager: a line refitted from scratch on every exchange
+        assert after is not None and eager.fit() is not None
+        if after is not before and a - b1[0] > 3600:
+            refits += 1
+        probe = np.array([a * 1000.0])
+        worst = max(worst, abs(float(lazy.to_collector_time(probe)[0] - eager.to_collector_time(probe)[0])))
+    windows = (b1[-1] - b1[0] - 3600) / lazy.settings.window_s
+    assert refits <= windows + 1  # two hours, 720 exchanges: one refit per window
+    assert worst < 0.001  # a fifth of what thirty minutes of heartbeats must reach (test above)
+    assert_allclose(lazy.fit().skew_ppm, 27.0, atol=0.5)
+
+
 def test_a_slow_first_exchange_is_not_taken_for_a_step():
     """A segment resting on one 0.44 s exchange: the fast exchanges after it agree with it within δ/2."""
     b1, t2, t3, t4 = synth(14, 5.0, minutes=10)
