@@ -29,7 +29,7 @@ import sqlite3
 from collections import deque
 from collections.abc import AsyncIterator, Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from itertools import chain, islice, repeat
 from pathlib import Path
 from typing import Any, TypeVar
@@ -608,15 +608,16 @@ class SqliteStore:
         """
         One transaction for the group. Every statement lets the event loop's thread take the GIL (and
         gives it back only at its next switch interval), so the writer sends as few as it can: the group's
-        readings go in shared multi-row INSERTs, not per batch, and no item has a savepoint of its own.
+        readings and clock samples go in shared multi-row INSERTs, not per batch, and no item has a
+        savepoint of its own.
         If the database refuses anything of one item, the group is rolled back (`_ItemRefused`) and
-        written again ``careful``: each item inside its own SAVEPOINT with its own readings, so the item
+        written again ``careful``: each item inside its own SAVEPOINT with its own rows, so the item
         refused is answered and rolled back alone. Only the storage failing (disk full, I/O error, lock)
         fails the group.
         """
         con.execute("BEGIN IMMEDIATE")
         new_tags: dict[str, int] = {}
-        readings: list[Any] = []
+        rows = _Buffered()
         try:
             results: list[Any] = []
             for x in items:
@@ -626,10 +627,11 @@ class SqliteStore:
                     mine: dict[str, int] = {}
                     if isinstance(x, IngestBatch):
                         mine = self._intern_tags(con, batch_tag_names(x) - new_tags.keys())
-                        result = self._insert_batch(con, x, self._tag_ids | new_tags | mine, readings)
+                        tag_ids = self._tag_ids | new_tags | mine if new_tags or mine else self._tag_ids
+                        result = self._insert_batch(con, x, tag_ids, rows)
                     else:
-                        result = self._insert_heartbeat(con, x)
-                    _insert_readings(con, readings, whole=careful)
+                        result = self._insert_heartbeat(con, x, rows)
+                    rows.insert(con, whole=careful)
                     if careful:
                         con.execute("RELEASE item")
                     new_tags |= mine
@@ -643,10 +645,10 @@ class SqliteStore:
                         raise _ItemRefused from e
                     con.execute("ROLLBACK TO item")
                     con.execute("RELEASE item")
-                    readings.clear()
+                    rows.clear()
                     results.append(_refusal(x, e) if isinstance(x, IngestBatch) else e)
             try:
-                _insert_readings(con, readings, whole=True)
+                rows.insert(con, whole=True)
             except (sqlite3.IntegrityError, sqlite3.DataError) as e:
                 raise _ItemRefused from e
             con.execute("COMMIT")
@@ -672,15 +674,15 @@ class SqliteStore:
         return ids
 
     def _insert_batch(
-        self, con: sqlite3.Connection, b: IngestBatch, tag_ids: dict[str, int], readings: list[Any]
+        self, con: sqlite3.Connection, b: IngestBatch, tag_ids: dict[str, int], rows: _Buffered
     ) -> IngestResult:
-        """Store one batch; its readings' column values are appended to ``readings`` (`_insert_readings`)."""
+        """Store one batch; its readings and clock sample are left in ``rows`` for the caller to insert."""
         offset_dd = check_batch(b)
         bid = self._board_id(con, b.board)
         if b.clock is not None:
             # The exchange is a measurement of its own, kept whatever the batch turns out to be (stored,
             # duplicate, conflict), in the batch's transaction: one commit, and gone with a refused batch.
-            _insert_clock_sample(con, bid, b.clock, note_boot=False)
+            rows.samples.extend(_sample_row(bid, b.clock))
         cur = con.execute(_INSERT_BATCH, batch_row(b, bid, offset_dd))
         if not cur.rowcount:  # (board, epoch, seq) is stored already
             if b.clock is not None:
@@ -696,7 +698,7 @@ class SqliteStore:
         for epoch, lo, hi in seq_intervals(b):
             _account_seqs(con, bid, epoch, lo, hi)
         if b.n:
-            readings.extend(
+            rows.readings.extend(
                 chain.from_iterable(
                     zip(
                         repeat(batch_id),
@@ -801,11 +803,11 @@ class SqliteStore:
             _HeartbeatWrite(hb, clock, json.dumps(hb.stats, sort_keys=True), spool_mark(hb.stats))
         )
 
-    def _insert_heartbeat(self, con: sqlite3.Connection, w: _HeartbeatWrite) -> None:
+    def _insert_heartbeat(self, con: sqlite3.Connection, w: _HeartbeatWrite, rows: _Buffered) -> None:
         hb = w.heartbeat
         bid = self._board_id(con, hb.board)
         if w.clock is not None:
-            _insert_clock_sample(con, bid, w.clock, note_boot=False)
+            rows.samples.extend(_sample_row(bid, w.clock))
         con.execute(
             "INSERT INTO heartbeats (board_id, at, boot, stats) VALUES (?, ?, ?, ?)",
             (bid, hb.at, hb.boot, w.stats_json),
@@ -1116,57 +1118,72 @@ def _refusal(b: IngestBatch, e: Exception) -> Exception:
     return BadBatch(field, f"refused by the database ({msg}) in batch {b.board}/{b.epoch}/{b.seq}")
 
 
-# Rows per multi-row INSERT. executemany steps (and releases and re-takes the GIL) once per row; under
-# load the request handlers take the GIL at each of those releases, which doubled the writer's time per
-# reading. One statement of up to 2048 rows steps once: 12,288 parameters, below SQLite's default limit
-# of 32,766 (since 3.32).
-# Older SQLite allowed only 999 parameters per statement: 128 rows (768) fit there.
-_READING_CHUNK = 2048 if sqlite3.sqlite_version_info >= (3, 32, 0) else 128
-_READING_COLS = 6
-
-
-def _readings_sql(rows: int) -> str:
-    return (
-        "INSERT INTO readings (batch_id, board_id, tag_id, t_board_ms, t_collector, rssi_dd) VALUES "
-        + ", ".join(["(?, ?, ?, ?, ?, ?)"] * rows)
-    )
-
-
-# Full chunks, then the remainder as powers of two: at most twelve statement texts ever, all of which
-# stay in the connection's statement cache.
-_READINGS_SQL = {1 << i: _readings_sql(1 << i) for i in range(_READING_CHUNK.bit_length())}
-
-
-def _insert_readings(con: sqlite3.Connection, flat: list[Any], *, whole: bool) -> None:
+class _Rows:
     """
-    Insert the readings buffered in ``flat`` (their six column values, row after row) and take them out of
-    it: every full chunk, and with ``whole`` the rest too (as powers of two).
+    Multi-row INSERTs of one table, for rows buffered as their column values, row after row, in a list.
+
+    executemany steps (and releases and re-takes the GIL) once per row; under load the request handlers
+    take the GIL at each of those releases, which doubled the writer's time per reading. One statement of
+    up to 2048 rows steps once: with six columns 12,288 parameters, below SQLite's default limit of 32,766
+    (since 3.32); older SQLite allowed only 999 parameters per statement, where 128 rows fit. Full
+    chunks, then the remainder as powers of two: at most twelve statement texts per table, all of which
+    stay in the connection's statement cache.
     """
-    step = _READING_CHUNK * _READING_COLS
-    done = 0
-    while len(flat) - done >= step:
-        con.execute(_READINGS_SQL[_READING_CHUNK], flat[done : done + step])
-        done += step
-    if whole:
-        left = (len(flat) - done) // _READING_COLS
-        while left:
-            k = 1 << (left.bit_length() - 1)
-            con.execute(_READINGS_SQL[k], flat[done : done + k * _READING_COLS])
-            done += k * _READING_COLS
-            left -= k
-    del flat[:done]
+
+    CHUNK = 2048 if sqlite3.sqlite_version_info >= (3, 32, 0) else 128
+
+    def __init__(self, table: str, columns: tuple[str, ...]) -> None:
+        self.cols = len(columns)
+        head = f"INSERT INTO {table} ({', '.join(columns)}) VALUES "
+        row = "(" + ", ".join("?" * self.cols) + ")"
+        self.sql = {1 << i: head + ", ".join([row] * (1 << i)) for i in range(self.CHUNK.bit_length())}
+
+    def insert(self, con: sqlite3.Connection, flat: list[Any], *, whole: bool) -> None:
+        """Insert every full chunk of ``flat``, with ``whole`` the rest too, and take them out of it."""
+        cols = self.cols
+        step = self.CHUNK * cols
+        done = 0
+        while len(flat) - done >= step:
+            con.execute(self.sql[self.CHUNK], flat[done : done + step])
+            done += step
+        if whole:
+            left = (len(flat) - done) // cols
+            while left:
+                k = 1 << (left.bit_length() - 1)
+                con.execute(self.sql[k], flat[done : done + k * cols])
+                done += k * cols
+                left -= k
+        del flat[:done]
 
 
-def _insert_clock_sample(
-    con: sqlite3.Connection, board_id: int, s: ClockSample, *, note_boot: bool = True
-) -> None:
-    """The sample and (unless the caller notes it with its own `_CONTACT_BOOT`) its boot on the board."""
-    con.execute(
-        "INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES (?, ?, ?, ?, ?, ?)",
-        (board_id, s.boot, s.t1, s.t2, s.t3, s.t4),
-    )
-    if note_boot:
-        _note_boot(con, board_id, s.boot, s.t2)
+_READINGS = _Rows("readings", ("batch_id", "board_id", "tag_id", "t_board_ms", "t_collector", "rssi_dd"))
+_SAMPLES = _Rows("clock_samples", ("board_id", "boot", "t1", "t2", "t3", "t4"))
+
+
+@dataclass(slots=True)
+class _Buffered:
+    """What a group's items leave for multi-row INSERTs (`_Rows`): readings and clock samples."""
+
+    readings: list[Any] = field(default_factory=list)
+    samples: list[Any] = field(default_factory=list)
+
+    def insert(self, con: sqlite3.Connection, *, whole: bool) -> None:
+        _READINGS.insert(con, self.readings, whole=whole)
+        _SAMPLES.insert(con, self.samples, whole=whole)
+
+    def clear(self) -> None:
+        self.readings.clear()
+        self.samples.clear()
+
+
+def _sample_row(board_id: int, s: ClockSample) -> tuple[Any, ...]:
+    return (board_id, s.boot, s.t1, s.t2, s.t3, s.t4)
+
+
+def _insert_clock_sample(con: sqlite3.Connection, board_id: int, s: ClockSample) -> None:
+    """The sample and its boot on the board."""
+    _SAMPLES.insert(con, list(_sample_row(board_id, s)), whole=True)
+    _note_boot(con, board_id, s.boot, s.t2)
 
 
 # A contact's boot on its board (`_note_boot` as of the contact's clock sample t2, then as of the contact
@@ -1187,6 +1204,12 @@ def _contact(clock: ClockSample | None, boot: str, at: float) -> tuple[Any, ...]
 
 def _account_seqs(con: sqlite3.Connection, board_id: int, epoch: str, lo: int, hi: int) -> None:
     """Fold the covered range [lo, hi] into the (board, epoch)'s span and holes (common.cover_seqs)."""
+    # The common case, the seq right after the span: one statement.
+    if con.execute(
+        "UPDATE seq_reach SET reach = ? WHERE board_id = ? AND epoch = ? AND reach = ?",
+        (hi, board_id, epoch, lo - 1),
+    ).rowcount:
+        return
     row = con.execute(
         "SELECT first_seq, reach FROM seq_reach WHERE board_id = ? AND epoch = ?", (board_id, epoch)
     ).fetchone()
@@ -1197,9 +1220,6 @@ def _account_seqs(con: sqlite3.Connection, board_id: int, epoch: str, lo: int, h
         )
         return
     first, reach = row
-    if lo == reach + 1:  # the common case: the next seq, right after the span
-        con.execute("UPDATE seq_reach SET reach = ? WHERE board_id = ? AND epoch = ?", (hi, board_id, epoch))
-        return
     old: list[tuple[int, int, bool]] = []
     if lo <= reach and hi >= first:  # a late batch or a gap record inside the span: it may fill holes
         old = [
