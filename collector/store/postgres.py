@@ -380,6 +380,9 @@ class PostgresStore:
         self._tag_ids: dict[str, int] = {}
         self._lock_sessions: set[int] = set()
         """Server pids of pooled sessions `exclusive` took an advisory lock on: reset in full on release."""
+        self._days: set[int] = set()
+        """Days known to have a readings partition. Another collector's retention may drop one behind
+        this process's back: an insert that then finds no partition makes it again (`ingest`)."""
 
     async def _release(self, con: asyncpg.Connection) -> None:
         """
@@ -391,9 +394,6 @@ class PostgresStore:
         if con.get_server_pid() in self._lock_sessions:
             self._lock_sessions.discard(con.get_server_pid())
             await con.reset()
-        self._days: set[int] = set()
-        """Days known to have a readings partition. Another collector's retention may drop one behind
-        this process's back: an insert that then finds no partition makes it again (`ingest`)."""
 
     @classmethod
     async def open(
