@@ -108,6 +108,9 @@ _INSERT_BATCH = (
     "ON CONFLICT (board_id, epoch, seq) DO NOTHING RETURNING id"
 )
 assert BATCH_COLS[:8] == ("board_id", "epoch", "seq", "digest", "boot", "n", "received_at", "offset_dd")
+_LOCK_BOARD = "SELECT FROM boards WHERE id = $1 FOR NO KEY UPDATE"
+"""Every batch's first lock: its board's row, so one board's batches queue on it (then on the seq span,
+then the counts) and never hold those in opposite orders."""
 _COUNT_BATCH = (
     "UPDATE boards SET readings_total = readings_total + {n}, batches_total = batches_total + 1, "
     "gap_readings = gap_readings + {gap}, last_batch_at = greatest(last_batch_at, {at}), "
@@ -115,11 +118,10 @@ _COUNT_BATCH = (
     "last_boot_at = greatest(last_boot_at, {at}) WHERE id = {board}"
 )
 """A stored batch's counts on its board (placeholders filled in per statement)."""
-# The common case in one statement: the batch row; if it went in (not a duplicate) and its seq is the
-# next of the (board, epoch)'s span, the span extended (the UPDATE locks the span row and re-checks reach
-# under the lock, as _account_seqs' FOR UPDATE does); and if that applied, the board's counts. Row locks
-# in the order of the general path (seq span, then board): the board's UPDATE waits on `extended`, so
-# concurrent batches of one board cannot deadlock. Returns the new batch id (NULL for a duplicate) and
+# The common case in one statement, after the transaction's first statement locked the board's row: the
+# batch row; if it went in (not a duplicate) and its seq is the next of the (board, epoch)'s span, the span
+# extended (the UPDATE locks the span row and re-checks reach under the lock, as _account_seqs' FOR UPDATE
+# does); and if that applied, the board's counts. Returns the new batch id (NULL for a duplicate) and
 # whether the rest (span and counts) is done.
 _STORE_NEXT_BATCH = (
     f"WITH ins AS ({_INSERT_BATCH}), "
@@ -749,9 +751,12 @@ class PostgresStore:
         """The batch's one transaction: clock sample, header, seq accounting, readings, telemetry, counters."""
         gap = b.gap or {}
         async with con.transaction():
+            # The board's row first, as on every path (the sample's statement locks it too).
             if b.clock is not None:
                 # Kept whatever the batch turns out to be, in its transaction: one commit.
                 await _insert_clock_sample(con, bid, b.clock)
+            else:
+                await con.execute(_LOCK_BOARD, bid)
             row = batch_row(b, bid, offset_dd)
             done = False
             if b.gap is None:  # the common case, one round trip (_STORE_NEXT_BATCH)
@@ -1308,11 +1313,13 @@ class PostgresStore:
 
 
 async def _insert_clock_sample(con: asyncpg.Connection, board_id: int, s: ClockSample) -> None:
-    """The sample, and its boot as the board's latest if no later contact says otherwise: one statement."""
+    """The sample, and its boot as the board's latest if no later contact says otherwise: one statement,
+    which locks the board's row whatever the times (a batch's first lock, `_LOCK_BOARD`)."""
     await con.execute(
-        "WITH s AS (INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES ($1, $2, $3, $4, $5, $6)) "
-        "UPDATE boards SET last_boot = $2, last_boot_at = $4 WHERE id = $1 AND "
-        "(last_boot_at IS NULL OR last_boot_at <= $4)",
+        f"WITH board AS ({_LOCK_BOARD}), "
+        "s AS (INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES ($1, $2, $3, $4, $5, $6)) "
+        "UPDATE boards SET last_boot = $2, last_boot_at = $4 WHERE id = $1 AND EXISTS (SELECT FROM board) "
+        "AND (last_boot_at IS NULL OR last_boot_at <= $4)",
         board_id,
         s.boot,
         s.t1,
