@@ -163,7 +163,7 @@ def _store_next_sql(with_sample: bool) -> str:
 
     The board's row is locked first, as the general path's first statement does; then the span is
     extended (the UPDATE locks the span row and re-checks reach under the lock), and everything else
-    hangs on that: the batch row ($1..$8), its readings ($9..$12, one array per column), the request's
+    hangs on that: the batch row ($1..$8), its readings ($9..$12, one `_as_grid` per column), the request's
     clock sample if ``with_sample`` ($13..$17: boot, t1..t4) and one UPDATE of the board's counts and
     boot. Returns the batch id, or no row: then the batch is not the common case (the first of its
     epoch, late, out of order, a duplicate or a conflict), the statement changed nothing, and the
@@ -185,7 +185,8 @@ def _store_next_sql(with_sample: bool) -> str:
         "ON CONFLICT (board_id, epoch, seq) DO NOTHING RETURNING id), "
         f"ins_readings AS (INSERT INTO readings ({', '.join(READING_COPY_COLUMNS)}) "
         f"SELECT {', '.join(reading.get(c, f'u.{c}') for c in READING_COPY_COLUMNS)} FROM ins, "
-        "unnest($9::float8[], $10::int8[], $11::int4[], $12::int2[]) AS u(t_collector, t_board_ms, tag_id, rssi_dd)), "
+        "unnest($9::float8[], $10::int8[], $11::int4[], $12::int2[]) AS u(t_collector, t_board_ms, tag_id, rssi_dd) "
+        "WHERE u.t_collector IS NOT NULL), "  # the padding of `_as_grid`
         + sample
         + "counted AS ("
         + _count_batch("$6", "0", "$7", "$5", "$1", ("$13", "$15") if with_sample else None)
@@ -818,7 +819,7 @@ class PostgresStore:
         does not take (it then changed nothing) by the general path (`_store_batch`). One operation with
         one outcome either way; the statement is only the round trips the common case can skip."""
         if b.gap is None and not b.telemetry:
-            readings = _reading_columns(b, tag_ids)
+            readings = [_as_grid(col) for col in _reading_columns(b, tag_ids)]
             head = batch_row(b, bid, offset_dd)[:8]
             if b.clock is None:
                 stored = await con.fetchval(_STORE_NEXT, *head, *readings)
@@ -1417,6 +1418,21 @@ def _reading_columns(
         reading_tag_ids(b, tag_ids),
         rssi_dd.tolist(),
     )
+
+
+_GRID_WIDTH = 64
+
+
+def _as_grid(col: list[Any]) -> list[list[Any]]:
+    """A column as a 2-D array parameter: rows of `_GRID_WIDTH`, the last one padded with NULLs.
+
+    asyncpg tests every element of a 1-D list for nesting (an ABC isinstance each, costlier than encoding
+    the element), but of a 2-D list only the rows and the first row's elements. ``unnest`` reads it back
+    in order; the statement drops the padding."""
+    pad = -len(col) % _GRID_WIDTH
+    if pad:
+        col = col + [None] * pad
+    return [col[i : i + _GRID_WIDTH] for i in range(0, len(col), _GRID_WIDTH)]
 
 
 async def _insert_clock_sample(con: asyncpg.Connection, board_id: int, s: ClockSample) -> None:

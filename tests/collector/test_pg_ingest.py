@@ -75,6 +75,9 @@ STEPS: list[tuple[str, Any, str]] = [
     ("another board, first batch, no sample", make_batch("f0-b", 0), "general"),
     ("next seq, no readings", make_batch("f0-b", 1, n=0), "fast"),
     ("next seq", make_batch("f0-b", 2), "fast"),
+    # Readings go as 2-D arrays of 64-wide rows (postgres._as_grid): whole rows, and a padded last row.
+    ("next seq, two full rows of readings", make_batch("f0-b", 3, n=128, t0=T + 1000), "fast"),
+    ("next seq, three rows and one reading", make_batch("f0-b", 4, n=193, t0=T + 1000), "fast"),
 ]
 
 # Every table ingest writes, rows in a fixed order, boards by name.
@@ -150,7 +153,7 @@ async def test_the_one_statement_and_the_general_path_leave_the_same_rows(
     got, want = await _dump(pg_factory), await _dump(second_pg)
     for table in DUMPS:
         assert got[table] == want[table], table
-    assert len(got["readings"]) == 10 * 20 and len(got["clock_samples"]) == 16
+    assert len(got["readings"]) == 10 * 20 + 128 + 193 and len(got["clock_samples"]) == 16
     assert got["boards"][0][1:3] == ("boot-1", T + 800)
 
 
