@@ -1,8 +1,11 @@
 """
 The multi-collector store: PostgreSQL through an asyncpg pool.
 
-- Readings go in with COPY (``copy_records_to_table``) inside the batch's transaction; the export reads
-  them back with ``COPY ... TO STDOUT (FORMAT binary)`` parsed straight into numpy columns.
+- A batch that is the next seq of its epoch (no gap record, no telemetry) goes in by one statement, its
+  own commit: one round trip (`_store_next_sql`). Every other batch, and one that statement declines
+  (having changed nothing), is one transaction with its readings in by COPY (``copy_records_to_table``).
+  The export reads readings back with ``COPY ... TO STDOUT (FORMAT binary)`` parsed straight into numpy
+  columns.
 - ``synchronous_commit=on`` is set on every pooled connection, so a database or role default of ``off``
   cannot turn a 200 into a promise the server may forget.
 - Connection loss, a server restart, a lock held past ``lock_timeout_s``, a pool exhausted past
@@ -108,29 +111,92 @@ _INSERT_BATCH = (
     "ON CONFLICT (board_id, epoch, seq) DO NOTHING RETURNING id"
 )
 assert BATCH_COLS[:8] == ("board_id", "epoch", "seq", "digest", "boot", "n", "received_at", "offset_dd")
-_COUNT_BATCH = (
-    "UPDATE boards SET readings_total = readings_total + {n}, batches_total = batches_total + 1, "
-    "gap_readings = gap_readings + {gap}, last_batch_at = greatest(last_batch_at, {at}), "
-    "last_boot = CASE WHEN last_boot_at IS NULL OR last_boot_at <= {at} THEN {boot} ELSE last_boot END, "
-    "last_boot_at = greatest(last_boot_at, {at}) WHERE id = {board}"
-)
-"""A stored batch's counts on its board (placeholders filled in per statement)."""
-# The common case in one statement: the batch row; if it went in (not a duplicate) and its seq is the
-# next of the (board, epoch)'s span, the span extended (the UPDATE locks the span row and re-checks reach
-# under the lock, as _account_seqs' FOR UPDATE does); and if that applied, the board's counts. Row locks
-# in the order of the general path (seq span, then board): the board's UPDATE waits on `extended`, so
-# concurrent batches of one board cannot deadlock. Returns the new batch id (NULL for a duplicate) and
-# whether the rest (span and counts) is done.
+_LOCK_BOARD = "SELECT FROM boards WHERE id = $1 FOR NO KEY UPDATE"
+"""Every batch's first lock: its board's row, so one board's batches queue on it (then on the seq span,
+then the counts) and never hold those in opposite orders."""
+
+
+def _count_batch(
+    n: str, gap: str, at: str, boot: str, board: str, sample: tuple[str, str] | None = None
+) -> str:
+    """The UPDATE of a stored batch's counts on its board (SQL expressions for the values).
+
+    With ``sample`` (its boot, its t2), the board's boot is first noted as of the request's clock sample,
+    as `_insert_clock_sample` notes it: a statement updates a row once, so the one UPDATE computes what
+    the sample's and then the batch's would leave (NULL ``last_boot_at`` included)."""
+    last_boot, last_boot_at = "last_boot", "last_boot_at"
+    if sample is not None:
+        s_boot, t2 = sample
+        newer = f"(last_boot_at IS NULL OR last_boot_at <= {t2})"
+        last_boot = f"(CASE WHEN {newer} THEN {s_boot} ELSE last_boot END)"
+        last_boot_at = f"(CASE WHEN {newer} THEN {t2} ELSE last_boot_at END)"
+    return (
+        f"UPDATE boards SET readings_total = readings_total + {n}, batches_total = batches_total + 1, "
+        f"gap_readings = gap_readings + {gap}, last_batch_at = greatest(last_batch_at, {at}), "
+        f"last_boot = CASE WHEN {last_boot_at} IS NULL OR {last_boot_at} <= {at} THEN {boot} ELSE {last_boot} END, "
+        f"last_boot_at = greatest({last_boot_at}, {at}) WHERE id = {board}"
+    )
+
+
+# In the general path's transaction, after its first statement locked the board's row: the batch row; if
+# it went in (not a duplicate) and its seq is the next of the (board, epoch)'s span, the span extended (the
+# UPDATE locks the span row and re-checks reach under the lock, as _account_seqs' FOR UPDATE does); and if
+# that applied, the board's counts. Returns the new batch id (NULL for a duplicate) and whether the rest
+# (span and counts) is done.
 _STORE_NEXT_BATCH = (
     f"WITH ins AS ({_INSERT_BATCH}), "
     "extended AS (UPDATE seq_reach SET reach = $3 WHERE board_id = $1 AND epoch = $2 AND reach = $3 - 1 "
     "AND EXISTS (SELECT FROM ins) RETURNING 1), "
     "counted AS ("
-    + _COUNT_BATCH.format(n="$6", gap="$14", at="$7", boot="$5", board="$1")
+    + _count_batch(n="$6", gap="$14", at="$7", boot="$5", board="$1")
     + " AND EXISTS (SELECT FROM extended)) "
     "SELECT (SELECT id FROM ins), EXISTS (SELECT FROM extended)"
 )
-_COUNT_ONE_BATCH = _COUNT_BATCH.format(n="$1", gap="$2", at="$3", boot="$4", board="$5")
+_COUNT_ONE_BATCH = _count_batch(n="$1", gap="$2", at="$3", boot="$4", board="$5")
+
+
+def _store_next_sql(with_sample: bool) -> str:
+    """
+    The common case of storing a batch, whole, in one statement outside any transaction (its own commit,
+    one round trip): a batch with no gap record and no telemetry whose seq is the next of its (board,
+    epoch)'s span.
+
+    The board's row is locked first, as the general path's first statement does; then the span is
+    extended (the UPDATE locks the span row and re-checks reach under the lock), and everything else
+    hangs on that: the batch row ($1..$8), its readings ($9..$12, one `_as_grid` per column), the request's
+    clock sample if ``with_sample`` ($13..$17: boot, t1..t4) and one UPDATE of the board's counts and
+    boot. Returns the batch id, or no row: then the batch is not the common case (the first of its
+    epoch, late, out of order, a duplicate or a conflict), the statement changed nothing, and the
+    general path stores it.
+    """
+    reading = {"batch_id": "ins.id", "board_id": "$1"}  # the rest from the arrays, by column name
+    sample = (
+        "sampled AS (INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) "
+        "SELECT $1, $13, $14, $15, $16, $17 FROM ins), "
+        if with_sample
+        else ""
+    )
+    return (
+        f"WITH board AS ({_LOCK_BOARD}), "
+        "extended AS (UPDATE seq_reach SET reach = $3 WHERE board_id = $1 AND epoch = $2 "
+        "AND reach = $3 - 1 AND EXISTS (SELECT FROM board) RETURNING 1), "
+        f"ins AS (INSERT INTO batches ({', '.join(BATCH_COLS[:8])}) "
+        f"SELECT {', '.join(f'${i}' for i in range(1, 9))} FROM extended "
+        "ON CONFLICT (board_id, epoch, seq) DO NOTHING RETURNING id), "
+        f"ins_readings AS (INSERT INTO readings ({', '.join(READING_COPY_COLUMNS)}) "
+        f"SELECT {', '.join(reading.get(c, f'u.{c}') for c in READING_COPY_COLUMNS)} FROM ins, "
+        "unnest($9::float8[], $10::int8[], $11::int4[], $12::int2[]) AS u(t_collector, t_board_ms, tag_id, rssi_dd) "
+        "WHERE u.t_collector IS NOT NULL), "  # the padding of `_as_grid`
+        + sample
+        + "counted AS ("
+        + _count_batch("$6", "0", "$7", "$5", "$1", ("$13", "$15") if with_sample else None)
+        + " AND EXISTS (SELECT FROM ins)) "
+        "SELECT id FROM ins"
+    )
+
+
+_STORE_NEXT = _store_next_sql(with_sample=False)
+_STORE_NEXT_WITH_SAMPLE = _store_next_sql(with_sample=True)
 
 # A heartbeat ($1 board, $2 at, $3 boot, $4 stats) and its boot noted on the board as of $5. Telemetry the
 # next heartbeat replaces: the transaction's commit need not wait for the WAL flush (set_config local to
@@ -172,6 +238,9 @@ _CONNECTION_LOST: tuple[type[BaseException], ...] = (
     asyncpg.exceptions.CrashShutdownError,
     asyncpg.exceptions.CannotConnectNowError,
 )
+
+_INT16_MIN, _INT16_MAX = -(2**15), 2**15 - 1
+"""The range of a ``smallint`` column (``readings.rssi_dd``)."""
 
 _SCHEMA_RE = re.compile(r"[a-z_][a-z0-9_]{0,62}")
 
@@ -380,6 +449,9 @@ class PostgresStore:
         self._tag_ids: dict[str, int] = {}
         self._lock_sessions: set[int] = set()
         """Server pids of pooled sessions `exclusive` took an advisory lock on: reset in full on release."""
+        self._days: set[int] = set()
+        """Days known to have a readings partition. Another collector's retention may drop one behind
+        this process's back: an insert that then finds no partition makes it again (`ingest`)."""
 
     async def _release(self, con: asyncpg.Connection) -> None:
         """
@@ -391,9 +463,6 @@ class PostgresStore:
         if con.get_server_pid() in self._lock_sessions:
             self._lock_sessions.discard(con.get_server_pid())
             await con.reset()
-        self._days: set[int] = set()
-        """Days known to have a readings partition. Another collector's retention may drop one behind
-        this process's back: an insert that then finds no partition makes it again (`ingest`)."""
 
     @classmethod
     async def open(
@@ -722,7 +791,7 @@ class PostgresStore:
                 tag_ids = await self._intern_tags(con, batch_tag_names(b))
                 await self._ensure_days(con, days)
                 try:
-                    return await self._store_batch(con, b, bid, tag_ids, offset_dd)
+                    return await self._store(con, b, bid, tag_ids, offset_dd)
                 except asyncpg.CheckViolationError as e:
                     # No partition for a row's day (that error names no constraint): another collector's
                     # retention dropped a day this process still counted on. The batch rolled back
@@ -731,7 +800,7 @@ class PostgresStore:
                         raise
                     self._days -= days
                 await self._ensure_days(con, days)
-                return await self._store_batch(con, b, bid, tag_ids, offset_dd)
+                return await self._store(con, b, bid, tag_ids, offset_dd)
             except OverflowError as e:  # partition_name: no calendar day for that time
                 raise BadBatch("t_collector", f"a reading outside the years 1 to 9999 ({e})") from e
             except (asyncpg.IntegrityConstraintViolationError, asyncpg.DataError) as e:
@@ -743,18 +812,41 @@ class PostgresStore:
                     f"refused by the database ({type(e).__name__}: {e}) in batch {b.board}/{b.epoch}/{b.seq}",
                 ) from e
 
+    async def _store(
+        self, con: asyncpg.Connection, b: IngestBatch, bid: int, tag_ids: dict[str, int], offset_dd: int
+    ) -> IngestResult:
+        """Store one batch: its common case in one statement (`_STORE_NEXT`), anything that statement
+        does not take (it then changed nothing) by the general path (`_store_batch`). One operation with
+        one outcome either way; the statement is only the round trips the common case can skip."""
+        if b.gap is None and not b.telemetry:
+            readings = [_as_grid(col) for col in _reading_columns(b, tag_ids)]
+            head = batch_row(b, bid, offset_dd)[:8]
+            if b.clock is None:
+                stored = await con.fetchval(_STORE_NEXT, *head, *readings)
+            else:
+                s = b.clock
+                stored = await con.fetchval(
+                    _STORE_NEXT_WITH_SAMPLE, *head, *readings, s.boot, s.t1, s.t2, s.t3, s.t4
+                )
+            if stored is not None:
+                return IngestResult(IngestStatus.STORED, b.digest)
+        return await self._store_batch(con, b, bid, tag_ids, offset_dd)
+
     async def _store_batch(
         self, con: asyncpg.Connection, b: IngestBatch, bid: int, tag_ids: dict[str, int], offset_dd: int
     ) -> IngestResult:
         """The batch's one transaction: clock sample, header, seq accounting, readings, telemetry, counters."""
         gap = b.gap or {}
         async with con.transaction():
+            # The board's row first, as on every path (the sample's statement locks it too).
             if b.clock is not None:
                 # Kept whatever the batch turns out to be, in its transaction: one commit.
                 await _insert_clock_sample(con, bid, b.clock)
+            else:
+                await con.execute(_LOCK_BOARD, bid)
             row = batch_row(b, bid, offset_dd)
             done = False
-            if b.gap is None:  # the common case, one round trip (_STORE_NEXT_BATCH)
+            if b.gap is None:  # the next seq here too (a batch with telemetry): span and counts at once
                 batch_id, done = await con.fetchrow(_STORE_NEXT_BATCH, *row, 0)
             else:
                 batch_id = await con.fetchval(_INSERT_BATCH, *row)
@@ -772,18 +864,12 @@ class PostgresStore:
                     await _account_seqs(con, bid, epoch, lo, hi)
                 await con.execute(_COUNT_ONE_BATCH, b.n, gap.get("readings", 0), b.received_at, b.boot, bid)
             if b.n:
+                t_collector, t_board_ms, tag_id, rssi_dd = _reading_columns(b, tag_ids)
                 await con.copy_records_to_table(
                     "readings",
                     schema_name=self.schema,
                     columns=READING_COPY_COLUMNS,
-                    records=zip(
-                        np.asarray(b.t_collector, dtype=np.float64).tolist(),
-                        np.asarray(b.t_board_ms, dtype=np.int64).tolist(),
-                        repeat(batch_id),
-                        reading_tag_ids(b, tag_ids),
-                        repeat(bid),
-                        np.asarray(b.rssi_dd, dtype=np.int64).tolist(),
-                    ),
+                    records=zip(t_collector, t_board_ms, repeat(batch_id), tag_id, repeat(bid), rssi_dd),
                 )
             if b.telemetry:
                 await con.executemany(
@@ -1307,12 +1393,56 @@ class PostgresStore:
         return True
 
 
+def _reading_columns(
+    b: IngestBatch, tag_ids: dict[str, int]
+) -> tuple[list[float], list[int], list[int], list[int]]:
+    """A batch's readings as the column lists both ingest paths send: t_collector, t_board_ms, tag id, rssi_dd.
+
+    Raises:
+        BadBatch: a value its column's type cannot hold (the driver would refuse it before any CHECK
+            constraint could name the field).
+    """
+    try:
+        t_board_ms = np.asarray(b.t_board_ms, dtype=np.int64)
+    except OverflowError as e:
+        raise BadBatch("t_board_ms", f"must fit a 64-bit integer ({e})") from e
+    try:
+        rssi_dd = np.asarray(b.rssi_dd, dtype=np.int64)
+    except OverflowError as e:
+        raise BadBatch("rssi_dd", f"must fit a 16-bit integer ({e})") from e
+    if rssi_dd.size and not (_INT16_MIN <= rssi_dd.min() and rssi_dd.max() <= _INT16_MAX):
+        raise BadBatch("rssi_dd", f"must fit a 16-bit integer, got {rssi_dd.min()}..{rssi_dd.max()}")
+    return (
+        np.asarray(b.t_collector, dtype=np.float64).tolist(),
+        t_board_ms.tolist(),
+        reading_tag_ids(b, tag_ids),
+        rssi_dd.tolist(),
+    )
+
+
+_GRID_WIDTH = 64
+
+
+def _as_grid(col: list[Any]) -> list[list[Any]]:
+    """A column as a 2-D array parameter: rows of `_GRID_WIDTH`, the last one padded with NULLs.
+
+    asyncpg tests every element of a 1-D list for nesting (an ABC isinstance each, costlier than encoding
+    the element), but of a 2-D list only the rows and the first row's elements. ``unnest`` reads it back
+    in order; the statement drops the padding."""
+    pad = -len(col) % _GRID_WIDTH
+    if pad:
+        col = col + [None] * pad
+    return [col[i : i + _GRID_WIDTH] for i in range(0, len(col), _GRID_WIDTH)]
+
+
 async def _insert_clock_sample(con: asyncpg.Connection, board_id: int, s: ClockSample) -> None:
-    """The sample, and its boot as the board's latest if no later contact says otherwise: one statement."""
+    """The sample, and its boot as the board's latest if no later contact says otherwise: one statement,
+    which locks the board's row whatever the times (a batch's first lock, `_LOCK_BOARD`)."""
     await con.execute(
-        "WITH s AS (INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES ($1, $2, $3, $4, $5, $6)) "
-        "UPDATE boards SET last_boot = $2, last_boot_at = $4 WHERE id = $1 AND "
-        "(last_boot_at IS NULL OR last_boot_at <= $4)",
+        f"WITH board AS ({_LOCK_BOARD}), "
+        "s AS (INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES ($1, $2, $3, $4, $5, $6)) "
+        "UPDATE boards SET last_boot = $2, last_boot_at = $4 WHERE id = $1 AND EXISTS (SELECT FROM board) "
+        "AND (last_boot_at IS NULL OR last_boot_at <= $4)",
         board_id,
         s.boot,
         s.t1,

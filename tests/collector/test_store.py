@@ -388,8 +388,8 @@ async def test_gap_records_cover_seqs_and_the_rest_are_holes(store):
 async def test_one_boards_batches_stored_concurrently_in_and_out_of_order(store):
     """
     Batches of one board in flight at once, in order, out of order, duplicated and with a gap record:
-    no lock conflict between them (PostgreSQL takes the seq span's row before the board's, whichever
-    path a batch takes), every seq accounted once and the board's counts exact.
+    no lock conflict between them (PostgreSQL takes the board's row first, whichever path a batch
+    takes), every seq accounted once and the board's counts exact.
     """
     await add_boards(store, "c0-a")
     seqs = [*range(30), 40, 35, 33, 12, 5]  # 30..39 partly missing: holes; 12 and 5 again: duplicates
