@@ -22,7 +22,7 @@ EXPECTED = {
     "ingest_store": 2,  # the PostgreSQL one only with a server
     "ingest_http": 2,
     "spool_io": 1,  # 2 where the directory sits on a block device (write_bytes counted)
-    "clock_fit": 0,
+    "clock_fit": 1,
 }
 
 
