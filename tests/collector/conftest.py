@@ -10,6 +10,7 @@ LISTENPOST_REQUIRE_PG=1 (CI), where it fails.
 
 from __future__ import annotations
 
+import contextlib
 import os
 import uuid
 from collections.abc import AsyncIterator
@@ -120,12 +121,25 @@ async def sqlite_factory(tmp_path: Path) -> AsyncIterator[StoreFactory]:
         await factory.cleanup()
 
 
-@pytest.fixture
-async def pg_factory(tmp_path: Path) -> AsyncIterator[StoreFactory]:
-    """Stores on one fresh PostgreSQL schema, for the tests of PostgreSQL-only behaviour."""
+@contextlib.asynccontextmanager
+async def _fresh_pg(tmp_path: Path) -> AsyncIterator[StoreFactory]:
     await require_pg()
     factory = StoreFactory("postgres", tmp_path)
     try:
         yield factory
     finally:
         await factory.cleanup()
+
+
+@pytest.fixture
+async def pg_factory(tmp_path: Path) -> AsyncIterator[StoreFactory]:
+    """Stores on one fresh PostgreSQL schema, for the tests of PostgreSQL-only behaviour."""
+    async with _fresh_pg(tmp_path) as factory:
+        yield factory
+
+
+@pytest.fixture
+async def second_pg(tmp_path: Path) -> AsyncIterator[StoreFactory]:
+    """Another fresh PostgreSQL schema, beside ``pg_factory``'s."""
+    async with _fresh_pg(tmp_path) as factory:
+        yield factory

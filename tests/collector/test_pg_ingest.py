@@ -7,15 +7,13 @@ leave the same rows; the common case must cost one round trip.
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import AsyncIterator
-from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pytest
 
 from listenpost.collector.store import BadBatch, ClockSample, IngestBatch, IngestStatus
-from tests.collector.conftest import StoreFactory, require_pg
+from tests.collector.conftest import StoreFactory
 from tests.collector.test_store import TAGS, _admin, add_boards, gap_record, make_batch
 
 EPOCH_2 = "0badc0ffee0ddf00"
@@ -92,17 +90,6 @@ DUMPS = {
     "seq_holes": "SELECT * FROM seq_holes ORDER BY board_id, epoch, first_seq",
     "telemetry": "SELECT * FROM telemetry ORDER BY id",
 }
-
-
-@pytest.fixture
-async def second_pg(tmp_path: Path) -> AsyncIterator[StoreFactory]:
-    """Another fresh PostgreSQL schema, beside ``pg_factory``'s."""
-    await require_pg()
-    factory = StoreFactory("postgres", tmp_path)
-    try:
-        yield factory
-    finally:
-        await factory.cleanup()
 
 
 async def _dump(factory: StoreFactory) -> dict[str, list[tuple[Any, ...]]]:
