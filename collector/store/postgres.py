@@ -198,24 +198,55 @@ def _store_next_sql(with_sample: bool) -> str:
 _STORE_NEXT = _store_next_sql(with_sample=False)
 _STORE_NEXT_WITH_SAMPLE = _store_next_sql(with_sample=True)
 
-# A heartbeat ($1 board, $2 at, $3 boot, $4 stats) and its boot noted on the board as of $5. Telemetry the
-# next heartbeat replaces: the transaction's commit need not wait for the WAL flush (set_config local to
-# the transaction, as SET LOCAL, in the same round trip).
-_HEARTBEAT_CTES = (
-    "WITH cfg AS (SELECT set_config('synchronous_commit', 'off', true)), "
-    "h AS (INSERT INTO heartbeats (board_id, at, boot, stats) SELECT $1, $2, $3, $4 FROM cfg)"
-)
-_HEARTBEAT_BOOT = (
-    " UPDATE boards SET last_boot = $3, last_boot_at = $5 WHERE id = $1 AND "
-    "(last_boot_at IS NULL OR last_boot_at <= $5)"
-)
-_HEARTBEAT = _HEARTBEAT_CTES + _HEARTBEAT_BOOT
-# ...with the clock sample ($6..$9: t1..t4) its request carried, of the same boot.
-_HEARTBEAT_WITH_SAMPLE = (
-    _HEARTBEAT_CTES
-    + ", k AS (INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) VALUES ($1, $3, $6, $7, $8, $9))"
-    + _HEARTBEAT_BOOT
-)
+
+def _heartbeat_sql(with_sample: bool) -> str:
+    """
+    A heartbeat, whole, in one statement and its own commit (one round trip): $1 board, $2 at, $3 boot,
+    $4 stats, $5 how many of the board's older heartbeats to keep (the history less this one: the trim
+    sees the rows as they were before the statement), $6/$7 the spool's epoch and highest sealed seq
+    (`spool_mark`, NULL when the stats hold none); with ``with_sample`` the request's clock sample
+    ($8 boot, $9..$12 t1..t4). Returns 1, or 0 for a board that does not exist.
+
+    The board's row is updated (so locked) first, as on every batch path: the statement's result reads
+    it, and everything else waits on it. (A row-locking SELECT of the board beside an UPDATE of it in
+    one statement would find the row already changed by the same command and return nothing.) One UPDATE
+    notes the sample's boot as of its t2, then the heartbeat's as of its own time, and the spool's
+    epoch: what those three would leave one after the other. The heartbeat's telemetry the next one
+    replaces, so the commit does not wait for the WAL flush (set_config local to the transaction).
+    """
+    sample = (
+        "k AS (INSERT INTO clock_samples (board_id, boot, t1, t2, t3, t4) "
+        "SELECT $1, $8, $9, $10, $11, $12 FROM board), "
+        if with_sample
+        else ""
+    )
+    last_boot, last_boot_at = "last_boot", "last_boot_at"
+    if with_sample:
+        newer = "(last_boot_at IS NULL OR last_boot_at <= $10)"
+        last_boot = f"(CASE WHEN {newer} THEN $8 ELSE last_boot END)"
+        last_boot_at = f"(CASE WHEN {newer} THEN $10 ELSE last_boot_at END)"
+    contact = f"({last_boot_at} IS NULL OR {last_boot_at} <= $2)"
+    spool = "($6::text IS NOT NULL AND (spool_epoch_at IS NULL OR spool_epoch_at <= $2))"
+    return (
+        "WITH cfg AS (SELECT set_config('synchronous_commit', 'off', true)), "
+        f"board AS (UPDATE boards SET last_boot = CASE WHEN {contact} THEN $3 ELSE {last_boot} END, "
+        f"last_boot_at = CASE WHEN {contact} THEN $2 ELSE {last_boot_at} END, "
+        f"spool_epoch = CASE WHEN {spool} THEN $6 ELSE spool_epoch END, "
+        f"spool_epoch_at = CASE WHEN {spool} THEN $2 ELSE spool_epoch_at END "
+        "WHERE id = $1 RETURNING 1), "
+        "h AS (INSERT INTO heartbeats (board_id, at, boot, stats) SELECT $1, $2, $3, $4 FROM cfg, board), "
+        + sample
+        + "trimmed AS (DELETE FROM heartbeats WHERE id IN (SELECT id FROM heartbeats WHERE board_id = $1 "
+        "AND EXISTS (SELECT FROM board) ORDER BY at DESC, id DESC OFFSET $5)), "
+        # Only an epoch some batch opened has a span whose announced seqs can grow.
+        "announced AS (UPDATE seq_reach SET announced = GREATEST(coalesce(announced, -1), $7) "
+        "WHERE board_id = $1 AND epoch = $6 AND $7::bigint IS NOT NULL AND EXISTS (SELECT FROM board)) "
+        "SELECT count(*) FROM board"
+    )
+
+
+_HEARTBEAT = _heartbeat_sql(with_sample=False)
+_HEARTBEAT_WITH_SAMPLE = _heartbeat_sql(with_sample=True)
 
 # Errors that say "the database cannot do it now" (retry later), not "this request is wrong".
 _UNAVAILABLE: tuple[type[BaseException], ...] = (
@@ -943,35 +974,18 @@ class PostgresStore:
         if clock is not None:
             check_clock_sample(clock)
         stats = json.dumps(hb.stats, sort_keys=True)
-        mark = spool_mark(hb.stats)
-        async with self._acquire() as con, con.transaction():
+        epoch, sealed = spool_mark(hb.stats) or (None, None)
+        async with self._acquire() as con:
             bid = await self._board_id(con, hb.board)
-            if clock is not None and clock.boot != hb.boot:
-                await _insert_clock_sample(con, bid, clock)
-            if clock is not None and clock.boot == hb.boot:
-                # The exchange, the heartbeat and their boot on the board (the later of the two times).
-                await con.execute(
-                    _HEARTBEAT_WITH_SAMPLE,
-                    bid,
-                    hb.at,
-                    hb.boot,
-                    stats,
-                    max(hb.at, clock.t2),
-                    clock.t1,
-                    clock.t2,
-                    clock.t3,
-                    clock.t4,
-                )
+            args = (bid, hb.at, hb.boot, stats, self._heartbeat_history - 1, epoch, sealed)
+            if clock is None:
+                found = await con.fetchval(_HEARTBEAT, *args)
             else:
-                await con.execute(_HEARTBEAT, bid, hb.at, hb.boot, stats, hb.at)
-            await con.execute(
-                "DELETE FROM heartbeats WHERE id IN (SELECT id FROM heartbeats WHERE board_id = $1 "
-                "ORDER BY at DESC, id DESC OFFSET $2)",
-                bid,
-                self._heartbeat_history,
-            )
-            if mark is not None:
-                await _note_spool(con, bid, *mark, hb.at)
+                found = await con.fetchval(
+                    _HEARTBEAT_WITH_SAMPLE, *args, clock.boot, clock.t1, clock.t2, clock.t3, clock.t4
+                )
+        if not found:
+            raise ValueError(f"unknown board {hb.board!r}")
 
     async def heartbeats(self, board: str, since: float) -> list[Heartbeat]:
         rows = await self._fetch(
@@ -1509,24 +1523,3 @@ async def _account_seqs(con: asyncpg.Connection, board_id: int, epoch: str, lo: 
         first,
         reach,
     )
-
-
-async def _note_spool(
-    con: asyncpg.Connection, board_id: int, epoch: str, sealed: int | None, at: float
-) -> None:
-    """A heartbeat's spool figures: the board's current epoch, and how far that epoch's seqs reach."""
-    await con.execute(
-        "UPDATE boards SET spool_epoch = $1, spool_epoch_at = $2 WHERE id = $3 AND "
-        "(spool_epoch_at IS NULL OR spool_epoch_at <= $2)",
-        epoch,
-        at,
-        board_id,
-    )
-    if sealed is not None:  # only an epoch some batch opened: one that never sent any has no span to extend
-        await con.execute(
-            "UPDATE seq_reach SET announced = GREATEST(coalesce(announced, -1), $1) "
-            "WHERE board_id = $2 AND epoch = $3",
-            sealed,
-            board_id,
-            epoch,
-        )

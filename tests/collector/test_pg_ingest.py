@@ -12,7 +12,7 @@ from typing import Any
 import numpy as np
 import pytest
 
-from listenpost.collector.store import BadBatch, ClockSample, IngestBatch, IngestStatus
+from listenpost.collector.store import BadBatch, ClockSample, Heartbeat, IngestBatch, IngestStatus
 from tests.collector.conftest import StoreFactory
 from tests.collector.test_store import TAGS, _admin, add_boards, gap_record, make_batch
 
@@ -196,6 +196,46 @@ async def test_the_common_case_costs_one_round_trip(pg_factory: StoreFactory):
     # A seq past the next: the one statement declines (changing nothing), the general transaction stores it.
     assert (await store.ingest(make_batch("r0-a", 6))).status is IngestStatus.STORED
     assert sent.take() > 3
+
+
+async def test_a_heartbeat_costs_one_round_trip_and_keeps_everything_it_did(pg_factory: StoreFactory):
+    """
+    A heartbeat with or without a clock sample is one statement (its own commit): the heartbeat, the
+    sample, the trim to the history, the spool's announced seq and the board's boot and spool epoch. An
+    unknown board is refused with its name and nothing is stored.
+    """
+    store = await pg_factory.open(min_size=1, max_size=1, heartbeat_history=2)
+    await add_boards(store, "r1-a")
+    await store.ingest(make_batch("r1-a", 0, epoch="0a0b0c0d0e0f1011"))
+    spool = {"spool": {"epoch": "0a0b0c0d0e0f1011", "next_seq": 5}}
+    for i in range(2):  # the first use of each statement on the connection also prepares it
+        await store.add_heartbeat(Heartbeat("r1-a", T + i, "boot-1", {"i": i}))
+        await store.add_heartbeat(
+            Heartbeat("r1-a", T + 2 + i, "boot-1", {"i": i}),
+            clock=ClockSample("r1-a", "boot-1", 1.0, T, T, 1.1),
+        )
+    sent = _Sent()
+    async with store._pool.acquire() as con:  # type: ignore[union-attr]  # the pool's one connection
+        transport = con._con._transport
+    write, writelines = transport.write, transport.writelines
+    transport.write = lambda data: (sent.feed(data), write(data))[1]
+    transport.writelines = lambda bufs: (sent.feed(b"".join(bufs)), writelines(bufs))[1]
+
+    sample = ClockSample("r1-a", "boot-2", 3.0, T + 10, T + 10, 3.1)
+    await store.add_heartbeat(Heartbeat("r1-a", T + 9, "boot-1", {"n": 9, **spool}), clock=sample)
+    assert sent.take() == 1
+    await store.add_heartbeat(Heartbeat("r1-a", T + 8, "boot-1", {"n": 8}))
+    assert sent.take() == 1
+    assert [h.stats["n"] for h in await store.heartbeats("r1-a", 0.0)] == [8, 9]  # the newest two by time
+    assert await store.clock_samples("r1-a", "boot-2") == [sample]
+    # The sample (t2 = T + 10) is the board's latest contact: its boot stays over the later-sent but
+    # earlier-stamped heartbeats.
+    assert {c.board: c for c in await store.board_counts()}["r1-a"].last_boot == "boot-2"
+    async with _admin(pg_factory) as con:
+        assert await con.fetchval("SELECT announced FROM seq_reach") == 4
+        assert await con.fetchval("SELECT spool_epoch FROM boards") == "0a0b0c0d0e0f1011"
+    with pytest.raises(ValueError, match="r9-x"):
+        await store.add_heartbeat(Heartbeat("r9-x", T, "boot-1", {}))
 
 
 @pytest.mark.parametrize("rssi", [9_999, 40_000], ids=["past-the-check", "past-smallint"])
