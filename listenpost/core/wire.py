@@ -416,6 +416,38 @@ def parse_batch(body: Any, *, max_readings: int, content_bytes: bytes | None = N
     if not isinstance(raw, dict):
         raise WireError("content", "must be an object")
     content = decode_content(raw, max_readings=max_readings)
-    if (content_bytes is None or digest(content_bytes) != dig) and digest(raw) != dig:
+    as_sent = content_bytes is not None and digest(content_bytes) == dig and _canonical(raw, content_bytes)
+    if not as_sent and digest(raw) != dig:
         raise WireError("digest", "does not match the content")
     return BatchEnvelope(board, boot, epoch, seq, dig, t1, clock, content)
+
+
+_INT_COLUMNS = ("dt_ms", "tag", "rssi_dd")
+_HOLE = b'"\\u0000"'
+"""A NUL string as `canonical_json` writes it: no content holds one (`jsonload` refuses NUL)."""
+
+
+def _canonical(raw: dict[str, Any], sent: bytes) -> bool:
+    """
+    Whether ``sent``, which parses to the validated content ``raw``, is ``canonical_json(raw)``: only then
+    is its hash the content's digest (a content laid out otherwise, a key twice, ``1.00`` for ``1.0``,
+    would else be stored under a digest of its own). The readings' integer columns, nearly all of the
+    bytes, are not encoded again: everything else is, with a hole for each column, and each column's text
+    as sent must be integers and commas only. That text parsed (``sent`` is valid JSON) as a list of
+    integers, so it is canonical unless it spells zero ``-0``.
+    """
+    shell = {**raw, "readings": {**raw["readings"], **dict.fromkeys(_INT_COLUMNS, "\x00")}}
+    pieces = canonical_json(shell).split(_HOLE)
+    pos = 0
+    for i, piece in enumerate(pieces):
+        if not sent.startswith(piece, pos):
+            return False
+        pos += len(piece)
+        if i == len(pieces) - 1:
+            break
+        end = sent.find(b"]", pos) + 1
+        col = sent[pos:end]
+        if not col.startswith(b"[") or col.translate(None, b"0123456789,-") != b"[]" or b"-0" in col:
+            return False
+        pos = end
+    return pos == len(sent)

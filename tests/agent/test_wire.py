@@ -213,12 +213,16 @@ def _sent(content: dict, *, dig: str | None = None, clock: dict | None = None) -
 
 
 def test_body_as_the_agent_sends_it_is_checked_without_encoding_the_content_again(monkeypatch) -> None:
-    """The content's bytes as sent are the canonical ones: their hash is the digest, no re-encoding."""
+    """The content's bytes as sent are the canonical ones: their hash is the digest, no re-encoding of the
+    readings' columns (the rest is encoded again to see that the bytes are canonical)."""
     body = _sent(_content(), clock={"t1": 1.0, "t2": 1.8e9, "t3": 1.8e9, "t4": 1.1})
     whole = parse_batch(jsonload.loads(body), max_readings=10)
+    encode = canonical_json
 
     def refuse(obj):
-        raise AssertionError("content encoded again")
+        if isinstance(obj.get("readings", {}).get("dt_ms"), list):
+            raise AssertionError("readings encoded again")
+        return encode(obj)
 
     monkeypatch.setattr("listenpost.core.wire.canonical_json", refuse)
     assert parse_batch_body(body, max_readings=10) == whole
@@ -268,6 +272,43 @@ def test_content_bytes_that_do_not_hash_to_the_digest_are_refused() -> None:
     with pytest.raises(WireError) as e:
         parse_batch_body(_sent(c, dig=digest(other)), max_readings=10)
     assert e.value.field == "digest"
+
+
+def _relaid(c: dict) -> dict[str, bytes]:
+    """The content's text laid out otherwise than canonically, each parsing to the same content."""
+    canon = canonical_json(c)
+    return {
+        "spaces": json.dumps(c, sort_keys=True).encode(),
+        "keys unsorted": json.dumps(c, separators=(",", ":")).encode(),
+        "a key twice": b'{"boot":"other",' + canon[1:],
+        "a float spelt longer": canon.replace(b'"offset_db":1.0', b'"offset_db":1.00'),
+        "negative zero": canon.replace(b'"dt_ms":[0,', b'"dt_ms":[-0,'),
+        "an escaped letter": canon.replace(b'"boot":"b"', b'"boot":"\\u0062"'),
+    }
+
+
+@pytest.mark.parametrize(
+    "layout",
+    ["spaces", "keys unsorted", "a key twice", "a float spelt longer", "negative zero", "an escaped letter"],
+)
+def test_content_bytes_not_canonical_are_not_their_own_digest(layout: str) -> None:
+    """
+    A content laid out otherwise than canonically, with the hash of those bytes as its digest, is refused
+    as the whole-body parse refuses it: else one content could be stored under several digests (a resend
+    re-encoded would be a conflict, not a duplicate), and bytes where a key stands twice be digested as
+    something other than what is stored.
+    """
+    c = _content()
+    raw = _relaid(c)[layout]
+    assert jsonload.loads(raw) == c
+    body = _sent(c, dig=digest(raw))[: -len(canonical_json(c)) - 1] + raw + b"}"
+    for parse in (
+        lambda: parse_batch(jsonload.loads(body), max_readings=10),
+        lambda: parse_batch_body(body, max_readings=10),
+    ):
+        with pytest.raises(WireError) as e:
+            parse()
+        assert e.value.field == "digest"
 
 
 @pytest.mark.parametrize(
@@ -320,3 +361,58 @@ def test_strict_json_keeps_what_is_fine() -> None:
     assert jsonload.loads("[" * 16 + "]" * 16) == [[[[[[[[[[[[[[[[]]]]]]]]]]]]]]]]
     with pytest.raises(JsonError, match="not UTF-8"):
         jsonload.loads(b'"\xed\xa0\x80"')
+
+
+def _outcome(parse):
+    try:
+        return parse()
+    except WireError as e:
+        return ("WireError", e.field)
+    except JsonError:
+        return ("JsonError",)
+
+
+_BYTES = [
+    b" ",
+    b"\n",
+    b",",
+    b"}",
+    b"]",
+    b"{",
+    b"[",
+    b'"',
+    b"\\",
+    b"0",
+    b"-",
+    b":",
+    b"\xef\xbb\xbf",
+    b'"content":',
+]
+
+
+@given(
+    readings_st,
+    st.sampled_from(["canonical", "spaces", "keys unsorted", "a key twice", "negative zero"]),
+    st.booleans(),
+    st.lists(st.tuples(st.integers(0, 10**6), st.integers(0, 2), st.sampled_from(_BYTES)), max_size=3),
+)
+@settings(max_examples=300, deadline=None)
+def test_a_body_split_at_its_content_says_what_the_whole_body_says(
+    readings, layout, dig_of_bytes, edits
+) -> None:
+    """
+    For any body, laid out as sent or mutated anywhere (white space, brackets, quotes, escapes, a BOM, a
+    second content member), the split parse accepts exactly what the whole-body parse accepts, and the
+    same envelope; it refuses what that refuses, naming the same field.
+    """
+    c = encode_content(readings, boot="b", offset_db=1.0)
+    raw = canonical_json(c) if layout == "canonical" else {**_relaid(c), "negative zero": None}[layout]
+    if raw is None:
+        raw = canonical_json(c).replace(b'"dt_ms":[0', b'"dt_ms":[-0', 1)
+    dig = digest(raw) if dig_of_bytes else digest(c)
+    body = _sent(c, dig=dig)[: -len(canonical_json(c)) - 1] + raw + b"}"
+    for at, kind, b in edits:
+        at %= len(body) + 1
+        body = body[:at] + b + body[at + (kind == 1) * len(b) :] if kind < 2 else body[:at] + body[at + 1 :]
+    whole = _outcome(lambda: parse_batch(jsonload.loads(body), max_readings=1000))
+    assert _outcome(lambda: parse_batch_body(body, max_readings=1000)) == whole

@@ -1299,3 +1299,54 @@ async def test_binary_export_agrees_with_asyncpg_row_decoding(pg_factory: StoreF
         zip(got.board, got.tag, got.t_collector, got.rssi_dd, got.offset_dd, strict=True)
     )
     assert len(rows) == 300
+
+
+async def test_one_group_with_duplicates_conflicts_a_refusal_and_new_tags_is_what_a_reopen_shows(
+    store_factory: StoreFactory,
+):
+    """
+    One group (SQLite) holding the same key three times, a refused batch that brings the same new tag as
+    a batch after it, a heartbeat of an unknown board, a gap record and the late batch that fills its
+    hole: each caller's answer is what a reopened store holds, and the tag's id is not one of the
+    rolled-back attempt.
+    """
+    store = await store_factory.open()
+    await add_boards(store, "g0-a", "g1-a")
+    new_tag = "lpx:000000aa"
+    bad_rssi = np.full(10, -700, dtype=np.int32)
+    bad_rssi[3] = 9_999
+    first = make_batch("g0-a", 0, tags=[new_tag, *TAGS])
+    calls = [
+        store.ingest(first),
+        store.ingest(first),
+        store.ingest(make_batch("g0-a", 0, salt="other")),
+        store.ingest(make_batch("g1-a", 0, tags=["lpx:000000bb"], rssi=bad_rssi)),
+        store.add_heartbeat(Heartbeat("nobody", 1_800_000_010.0, "boot-1", {})),
+        store.ingest(make_batch("g1-a", 1, tags=["lpx:000000bb", new_tag])),
+        store.ingest(gap_record("g0-a", 3, 1, 1, 5)),
+        store.ingest(make_batch("g0-a", 2)),
+    ]
+    results = await asyncio.gather(*calls, return_exceptions=True)
+    assert [getattr(r, "status", type(r).__name__) for r in results] == [
+        IngestStatus.STORED,
+        IngestStatus.DUPLICATE,
+        IngestStatus.CONFLICT,
+        "BadBatch",
+        "ValueError" if store_factory.backend == "sqlite" else type(results[4]).__name__,
+        IngestStatus.STORED,
+        IngestStatus.STORED,
+        IngestStatus.STORED,
+    ]
+    if store_factory.backend == "sqlite":
+        assert (store.ingest_commits, store.ingest_batches) == (1, 7)
+    await store.close()
+
+    store = await store_factory.open()
+    counts = {c.board: c for c in await store.board_counts()}
+    assert (counts["g0-a"].batches_total, counts["g0-a"].readings_total) == (3, 20)
+    assert (counts["g1-a"].batches_total, counts["g1-a"].readings_total) == (1, 10)
+    assert await store.seq_holes() == []
+    rows = await store.readings(-np.inf, np.inf)
+    assert sorted(set(rows.tag.tolist())) == sorted({new_tag, "lpx:000000bb", *TAGS})
+    assert (await store.ingest(make_batch("g1-a", 0))).status is IngestStatus.STORED
+    assert (await store.ingest(first)).status is IngestStatus.DUPLICATE
