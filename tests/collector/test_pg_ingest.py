@@ -168,6 +168,17 @@ class _Sent:
         self.types.clear()
         return n
 
+    @classmethod
+    async def on(cls, store: Any) -> _Sent:
+        """Watch what the client sends on the store's one pooled connection."""
+        sent = cls()
+        async with store._pool.acquire() as con:  # the pool's one connection
+            transport = con._con._transport
+        write, writelines = transport.write, transport.writelines
+        transport.write = lambda data: (sent.feed(data), write(data))[1]
+        transport.writelines = lambda bufs: (sent.feed(b"".join(bufs)), writelines(bufs))[1]
+        return sent
+
 
 async def test_the_common_case_costs_one_round_trip(pg_factory: StoreFactory):
     """
@@ -181,12 +192,7 @@ async def test_the_common_case_costs_one_round_trip(pg_factory: StoreFactory):
     for seq in range(3):
         b = make_batch("r0-a", seq)
         await store.ingest(sampled(b, "boot-1", b.received_at) if seq == 1 else b)
-    sent = _Sent()
-    async with store._pool.acquire() as con:  # type: ignore[union-attr]  # the pool's one connection
-        transport = con._con._transport
-    write, writelines = transport.write, transport.writelines
-    transport.write = lambda data: (sent.feed(data), write(data))[1]
-    transport.writelines = lambda bufs: (sent.feed(b"".join(bufs)), writelines(bufs))[1]
+    sent = await _Sent.on(store)
 
     b = make_batch("r0-a", 3)
     assert (await store.ingest(sampled(b, "boot-1", b.received_at))).status is IngestStatus.STORED
@@ -214,12 +220,7 @@ async def test_a_heartbeat_costs_one_round_trip_and_keeps_everything_it_did(pg_f
             Heartbeat("r1-a", T + 2 + i, "boot-1", {"i": i}),
             clock=ClockSample("r1-a", "boot-1", 1.0, T, T, 1.1),
         )
-    sent = _Sent()
-    async with store._pool.acquire() as con:  # type: ignore[union-attr]  # the pool's one connection
-        transport = con._con._transport
-    write, writelines = transport.write, transport.writelines
-    transport.write = lambda data: (sent.feed(data), write(data))[1]
-    transport.writelines = lambda bufs: (sent.feed(b"".join(bufs)), writelines(bufs))[1]
+    sent = await _Sent.on(store)
 
     sample = ClockSample("r1-a", "boot-2", 3.0, T + 10, T + 10, 3.1)
     await store.add_heartbeat(Heartbeat("r1-a", T + 9, "boot-1", {"n": 9, **spool}), clock=sample)
