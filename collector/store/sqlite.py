@@ -606,8 +606,8 @@ class SqliteStore:
         self, con: sqlite3.Connection, items: list[IngestBatch | _HeartbeatWrite], *, careful: bool
     ) -> list[Any]:
         """
-        One transaction for the group. Every statement lets the event loop's thread take the GIL (and
-        gives it back only at its next switch interval), so the writer sends as few as it can: the group's
+        One transaction for the group. Every statement releases the GIL, and the writer then waits for the
+        request handlers to hand it back, so the writer sends as few statements as it can: the group's
         readings and clock samples go in shared multi-row INSERTs, not per batch, and no item has a
         savepoint of its own.
         If the database refuses anything of one item, the group is rolled back (`_ItemRefused`) and
