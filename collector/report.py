@@ -613,7 +613,8 @@ def render(data: ReportData) -> str:
     for e in first:
         by_new[str(e["detail"].get("new"))].append(e)
     first_line = "; ".join(
-        f"{len(es)} boards first judged {STATE_LABELS.get(s, (s,))[0]} by {clock(max(e['at'] for e in es))}"
+        f"{len(es)} board{'s' if len(es) != 1 else ''} first judged {STATE_LABELS.get(s, (s,))[0]} "
+        f"by {clock(max(e['at'] for e in es))}"
         for s, es in sorted(by_new.items())
     )
     parts.append(
