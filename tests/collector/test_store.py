@@ -1327,10 +1327,14 @@ async def test_one_group_with_duplicates_conflicts_a_refusal_and_new_tags_is_wha
         store.ingest(make_batch("g0-a", 2)),
     ]
     results = await asyncio.gather(*calls, return_exceptions=True)
-    assert [getattr(r, "status", type(r).__name__) for r in results] == [
-        IngestStatus.STORED,
-        IngestStatus.DUPLICATE,
-        IngestStatus.CONFLICT,
+    got = [getattr(r, "status", type(r).__name__) for r in results]
+    S, D, C = IngestStatus.STORED, IngestStatus.DUPLICATE, IngestStatus.CONFLICT
+    # SQLite's writer takes a group in the order it was handed; PostgreSQL's pool runs the three
+    # calls for key (g0-a, 0) on connections of their own, so any of them may commit first.
+    firsts = [[S, D, C]] if store_factory.backend == "sqlite" else [[S, D, C], [D, S, C], [C, C, S]]
+    assert got[:3] in firsts, got
+    other_won = got[2] is S
+    assert got[3:] == [
         "BadBatch",
         "ValueError" if store_factory.backend == "sqlite" else type(results[4]).__name__,
         IngestStatus.STORED,
@@ -1349,4 +1353,4 @@ async def test_one_group_with_duplicates_conflicts_a_refusal_and_new_tags_is_wha
     rows = await store.readings(-np.inf, np.inf)
     assert sorted(set(rows.tag.tolist())) == sorted({new_tag, "lpx:000000bb", *TAGS})
     assert (await store.ingest(make_batch("g1-a", 0))).status is IngestStatus.STORED
-    assert (await store.ingest(first)).status is IngestStatus.DUPLICATE
+    assert (await store.ingest(first)).status is (C if other_won else D)
