@@ -1354,3 +1354,70 @@ async def test_one_group_with_duplicates_conflicts_a_refusal_and_new_tags_is_wha
     assert sorted(set(rows.tag.tolist())) == sorted({new_tag, "lpx:000000bb", *TAGS})
     assert (await store.ingest(make_batch("g1-a", 0))).status is IngestStatus.STORED
     assert (await store.ingest(first)).status is (C if other_won else D)
+
+
+async def test_a_disk_that_fills_mid_group_fails_the_group_as_unavailable_and_loses_nothing(
+    sqlite_factory: StoreFactory,
+):
+    """
+    The file cannot grow while a group of batches (new tags, a heartbeat with its clock sample, a gap
+    record) is written: every caller is told the store is unavailable (its board keeps the batch and
+    sends it again), nothing of the group is kept, and once there is room the same calls are stored
+    with tag ids the rolled-back group did not leave behind in the store's caches.
+
+    The full disk is SQLite's own ``PRAGMA max_page_count`` on the writer's connection: SQLITE_FULL, the
+    result code a full file system gives (https://www.sqlite.org/rescode.html#full).
+    """
+    store = await sqlite_factory.open()
+    await add_boards(store, "g0-a", "g1-a")
+    assert (await store.ingest(make_batch("g0-a", 0))).status is IngestStatus.STORED
+
+    async def cap_pages(extra: int | None) -> None:
+        def job() -> None:
+            con = store._wcon
+            assert con is not None
+            pages = con.execute("PRAGMA page_count").fetchone()[0]
+            cap = 2**31 - 2 if extra is None else pages + extra
+            assert con.execute(f"PRAGMA max_page_count = {cap}").fetchone()[0] >= pages
+
+        await store._write(job)
+
+    new_tags = [f"lpx:{i:08x}" for i in range(1, 400)]  # more new rows than the free pages can take
+    sample = ClockSample("g1-a", "boot-1", 10.0, 1_800_000_000.0, 1_800_000_000.1, 10.2)
+
+    def calls() -> list:
+        return [
+            store.ingest(make_batch("g0-a", 1, n=400, tags=new_tags)),
+            store.add_heartbeat(Heartbeat("g1-a", 1_800_000_010.0, "boot-1", {"i": 1}), clock=sample),
+            store.ingest(make_batch("g1-a", 0, n=400, tags=new_tags[::-1])),
+            store.ingest(gap_record("g0-a", 3, 2, 2, 5)),
+        ]
+
+    await cap_pages(0)
+    results = await asyncio.gather(*calls(), return_exceptions=True)
+    assert all(isinstance(r, StoreUnavailable) for r in results), results
+    assert "full" in str(results[0])
+    counts = {c.board: c for c in await store.board_counts()}
+    assert (counts["g0-a"].batches_total, counts["g0-a"].readings_total) == (1, 10)
+    assert counts["g1-a"].batches_total == 0
+    assert await store.latest_heartbeats() == {}
+    assert await store.clock_samples("g1-a", "boot-1") == []
+
+    await cap_pages(None)
+    results = await asyncio.gather(*calls())
+    assert [getattr(r, "status", r) for r in results[:1] + results[2:]] == [IngestStatus.STORED] * 3
+    await store.close()
+    store = await sqlite_factory.open()
+    rows = await store.readings(-np.inf, np.inf)
+    assert len(rows.t_collector) == 810
+    assert set(rows.tag.tolist()) == set(TAGS) | set(new_tags)
+    counts = {c.board: c for c in await store.board_counts()}
+    assert (counts["g0-a"].batches_total, counts["g0-a"].readings_total, counts["g0-a"].gap_readings) == (
+        3,
+        410,
+        5,
+    )
+    assert counts["g1-a"].readings_total == 400
+    assert await store.seq_holes() == []
+    assert await store.clock_samples("g1-a", "boot-1") == [sample]
+    await store.close()
