@@ -615,7 +615,7 @@ def render(data: ReportData) -> str:
     first_line = "; ".join(
         f"{len(es)} board{'s' if len(es) != 1 else ''} first judged {STATE_LABELS.get(s, (s,))[0]} "
         f"by {clock(max(e['at'] for e in es))}"
-        for s, es in sorted(by_new.items())
+        for s, es in sorted(by_new.items(), key=lambda kv: (-len(kv[1]), kv[0]))  # most boards first
     )
     parts.append(
         _section(

@@ -8,6 +8,7 @@ HTML file in headless Chromium at desktop and phone widths, and printed to A4.
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 import math
 import re
 from dataclasses import dataclass
@@ -330,3 +331,15 @@ def test_losses_are_drawn_with_their_cause_and_gaps_follow_the_states():
     # The calibration watch's event: board, when flagged, since when, its size and how many tags agreed.
     assert "<td>a-1</td><td>08:07:30</td><td>08:02:30</td><td class=n>-6.2</td><td class=n>2</td>" in cal
     assert "does not store walk tests" in text
+
+
+def test_first_verdicts_are_one_line_counted_per_state():
+    """The boards' first verdicts read as one sentence, per state, with the number agreeing ("1 board")."""
+    data = _data()
+    events = [dict(e) for e in data.events]
+    events[2] = {**events[2], "at": data.t_from + 7, "detail": {"old": None, "new": "late"}}
+    text = render(dataclasses.replace(data, events=events))
+    states = text[text.index('<section id="states">') :]
+    states = states[: states.index("</section>")]
+    assert "<p>2 boards first judged live by 08:00:05; 1 board first judged late by 08:00:07</p>" in states
+    assert "(was not yet seen)" not in states  # no table row for a first verdict
