@@ -292,6 +292,16 @@ class Monitor:
             hb = latest.get(b.name)
             if hb is not None and hb.at not in contacts:
                 contacts = sorted([*contacts, hb.at])
+            if (
+                not contacts
+                and b.retired_at is None
+                and b.enrolled_at is not None
+                and now - b.enrolled_at < self.tracker.settings.silent_after_s
+            ):
+                # Enrolled moments ago: its first request is on the way. A verdict of silent now would
+                # be a false alarm at every fleet's start; it stays "not yet seen" until it speaks or
+                # until `silent_after_s` have passed since its enrolment.
+                continue
             fit = None
             if hb is not None:
                 fit = (await clock_model(self.runtime.clock_models, self.store, b.name, hb.boot)).fit()

@@ -14,7 +14,8 @@ from aiohttp.test_utils import TestClient
 from listenpost.collector.app import create_app
 from listenpost.collector.config import parse_settings
 from listenpost.collector.http.auth import ADMIN_TOKEN_FILE
-from listenpost.collector.state import STORE
+from listenpost.collector.state import CLOCK, STORE
+from listenpost.collector.status import liveness_limits
 from listenpost.collector.store import Store, StoreUnavailable, open_store
 from listenpost.core import wire
 from listenpost.core.clock import VirtualClock
@@ -76,6 +77,12 @@ async def enrolled(
     )
     assert r.status == 200, await r.text()
     return {"Authorization": "Bearer " + (await r.json())["token"]}
+
+
+async def never_heard_from(client: TestClient) -> None:
+    """Let ``liveness.silent_after_s`` pass on the collector's clock: boards enrolled and silent since are
+    judged silent by the next monitor round (before that they are not yet judged)."""
+    await client.app[CLOCK].advance(liveness_limits(client.app).silent_after_s)  # type: ignore[attr-defined]
 
 
 async def import_tags(client: TestClient, tmp_path: Path, tags: list[str] = TAGS) -> None:

@@ -44,7 +44,8 @@ async def until(cond: Callable[[], bool], what: str, seconds: float = 30.0) -> N
 
 
 async def _add_board(store: Store, name: str, at: float) -> None:
-    """A board enrolled at ``at`` that never calls in: the next led round stores it as ``silent``, once."""
+    """A board enrolled at ``at`` that never calls in: the first led round from ``silent_after_s`` after
+    ``at`` stores it as ``silent``, once."""
     await store.add_board(
         Board(name, "G0 Foyer", None, at, enrolled_at=at), Enrollment(name, f"h-{name}", at)
     )
@@ -118,7 +119,7 @@ async def test_killed_lock_connection_leaves_exactly_one_leader_and_no_event_twi
         async def step() -> None:
             nonlocal boards
             before = [m.rounds_led for m in monitors]
-            await _add_board(monitors[0].store, f"b{boards:02d}-a", clock.time())
+            await _add_board(monitors[0].store, f"b{boards:02d}-a", clock.time() - 3600)  # an hour ago
             boards += 1
             await _step(clock, 2)
             led_per_step.append([m.rounds_led - b for m, b in zip(monitors, before, strict=True)])

@@ -25,7 +25,14 @@ from listenpost.collector.store import Event, Store
 from listenpost.core.clock import VirtualClock
 from listenpost.core.logs import configure
 from tests.collector.conftest import StoreFactory, require_pg
-from tests.collector.test_api import batch_body, enrolled, import_tags, make_client, readings
+from tests.collector.test_api import (
+    batch_body,
+    enrolled,
+    import_tags,
+    make_client,
+    never_heard_from,
+    readings,
+)
 
 
 async def until(cond: Callable[[], bool], what: str, seconds: float = 30.0) -> None:
@@ -114,6 +121,7 @@ async def test_webhook_retries_500_stall_and_reset_then_delivers_once(
     rec, url = await receiver_factory(["500", "stall", "reset"])
     client = await hooked_collector(aiohttp_client, tmp_path, clock, url, attempts=5)
     await enrolled(client, tmp_path, "g0-a")
+    await never_heard_from(client)
     monitor = client.app[MONITOR]
     with capture_logs() as logs:
         t0 = clock.time()
@@ -157,6 +165,7 @@ async def test_webhook_gives_up_after_the_bound_and_logs_it(
     rec, url = await receiver_factory(["500"] * 10)
     client = await hooked_collector(aiohttp_client, tmp_path, clock, url, attempts=3)
     await enrolled(client, tmp_path, "g0-a")
+    await never_heard_from(client)
     monitor = client.app[MONITOR]
     with capture_logs() as logs:
         t0 = clock.time()
@@ -181,6 +190,7 @@ async def test_webhook_4xx_is_not_retried_and_the_next_event_still_goes(
     client = await hooked_collector(aiohttp_client, tmp_path, clock, url, attempts=4)
     await enrolled(client, tmp_path, "g0-a")
     await enrolled(client, tmp_path, "g1-a", "G1 Light and Colour")
+    await never_heard_from(client)
     monitor = client.app[MONITOR]
     with capture_logs() as logs:
         await monitor.run_once()
@@ -197,6 +207,7 @@ async def test_a_transition_stored_already_is_neither_stored_again_nor_sent(
     client = await hooked_collector(aiohttp_client, tmp_path, clock, url)
     await enrolled(client, tmp_path, "g0-a")
     await enrolled(client, tmp_path, "g1-a", "G1 Light and Colour")
+    await never_heard_from(client)
     store, monitor = client.app[STORE], client.app[MONITOR]
     at = clock.time()
     # The key the monitor gives a state change (collector/monitor.py, `_liveness`).
