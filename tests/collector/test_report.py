@@ -154,14 +154,15 @@ def test_report_holds_every_section_and_its_plots(run: ReportRun):
     assert "became deaf" in states  # g2-a's radio
     assert "no board&#x27;s reference-tag level moved" in _section(text, "calibration")
     assert "became drifting" in states  # u2-a's crystal
-    # Every board's first verdict is one line, not sixteen rows. Which verdict and when depends on how
-    # soon each agent's first request lands, which real sockets on a busy machine can delay.
+    # Every board's first verdict is one line, not sixteen rows. When depends on how soon each agent's
+    # first request lands, which real sockets on a busy machine can delay.
     first = re.search(r"<p>((?:\d+ boards? first judged [a-z ]+ by 08:00:\d\d(?:; )?)+)</p>", states)
     assert first, states
     verdicts = re.findall(r"(\d+) boards? first judged ([a-z ]+) by 08:00:(\d\d)", first.group(1))
-    assert sum(int(n) for n, _, _ in verdicts) == 16, verdicts
-    assert dict((s, int(n)) for n, s, _ in verdicts).get("live", 0) >= 14, verdicts
-    assert all(int(sec) <= 20 for _, _, sec in verdicts), verdicts
+    # No board is judged before it speaks (the monitor waits silent_after_s after an enrolment), so every
+    # first verdict is "live".
+    assert [(n, s) for n, s, _ in verdicts] == [("16", "live")], verdicts
+    assert int(verdicts[0][2]) <= 20, verdicts
     assert "(was not yet seen)" not in states
     coverage = _section(text, "coverage")
     # Before the first verdict nobody is judged: only the rooms whose boards failed have gaps.
