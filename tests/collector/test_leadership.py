@@ -237,7 +237,9 @@ async def test_serve_pair_sigterm_stops_a_leader_whose_lock_connection_died_and_
     fresh_database: str,  # noqa: F811 - the fixture imported above
 ) -> None:
     """Real processes on real time (monitor rounds every 5 s), every wait bounded generously."""
-    procs = [await _serve(tmp_path, name, fresh_database) for name in ("a", "b")]
+    # A board that never calls in is judged silent 3 s after its enrolment, not the default 45 s.
+    quick = {"liveness": {"min_late_s": 1, "min_silent_s": 2, "silent_after_s": 3}}
+    procs = [await _serve(tmp_path, name, fresh_database, quick) for name in ("a", "b")]
     logs = [tmp_path / "a.log", tmp_path / "b.log"]
     admin = await asyncpg.connect(fresh_database, timeout=5)
     try:

@@ -45,10 +45,12 @@ async def fresh_database():
         await admin.close()
 
 
-async def _serve(tmp_path: Path, name: str, db: str) -> tuple[asyncio.subprocess.Process, str]:
+async def _serve(
+    tmp_path: Path, name: str, db: str, settings: dict | None = None
+) -> tuple[asyncio.subprocess.Process, str]:
     port = _free_port()
     config = tmp_path / f"{name}.yaml"
-    config.write_text(yaml.safe_dump({"listen": {"host": "127.0.0.1", "port": port}}))
+    config.write_text(yaml.safe_dump({"listen": {"host": "127.0.0.1", "port": port}, **(settings or {})}))
     with (tmp_path / f"{name}.log").open("wb") as log:  # the child keeps its own copy of the descriptor
         proc = await asyncio.create_subprocess_exec(
             sys.executable,
