@@ -562,6 +562,30 @@ class ClockModel:
         if not kept:
             return None
         ref = seg.theta_ref
+        mids = [s.mid for s in kept]
+        span = max(mids) - min(mids)
+        if not (
+            span >= self.settings.min_skew_span_s
+            and len({s.t1 for s in kept}) >= 2
+            and len({s.t4 for s in kept}) >= 2
+        ):
+            # No skew yet: the clock filter's min-delay pick. A new boot stays here for its first
+            # minutes and refits on every exchange, so these few samples skip numpy's per-array cost.
+            best = min(kept, key=lambda s: s.delay)
+            theta_at_ref = best.offset - ref
+            sq = [((s.offset - ref) - theta_at_ref) ** 2 for s in kept]
+            fit = ClockFit(
+                offset_s=ref + theta_at_ref,
+                ref_board_s=max(mids),
+                skew_ppm=_skew_from_slope(0.0),
+                residual_ms=math.sqrt(math.fsum(sq) / len(sq)) * 1000.0,
+                n_samples=len(kept),
+                span_s=span,
+                skew_estimated=False,
+                segment_start_board_s=seg.start_b,
+            )
+            seg.fit, seg.dirty, seg.fit_window = fit, False, seg.newest
+            return fit
         t1 = np.array([s.t1 for s in kept])
         t4 = np.array([s.t4 for s in kept])
         mid = (t1 + t4) / 2
@@ -569,27 +593,18 @@ class ClockModel:
         fwd = np.array([(s.t2 - ref) - s.t1 for s in kept])  # θ(T1) + out
         back = np.array([(s.t3 - ref) - s.t4 for s in kept])  # θ(T4) − back
         theta = np.array([s.offset - ref for s in kept])
-        delay = np.array([s.delay for s in kept])
-        span = float(mid.max() - mid.min())
         x_ref = float(mid.max())
-        skew_estimated = (
-            span >= self.settings.min_skew_span_s and len(np.unique(t1)) >= 2 and len(np.unique(t4)) >= 2
-        )
-        if skew_estimated:
-            # Centre the abscissae so slopes and intercepts stay well conditioned after days of uptime.
-            x0 = float(mid.mean())
-            if self.settings.method is FitMethod.BAND:
-                alpha, beta, _ = band_fit(t1 - x0, fwd, t4 - x0, back)
-                theta_at_ref = alpha * (x_ref - x0) + beta
-            else:
-                a_f, b_f = lower_envelope(t1 - x0, fwd)
-                a_b, b_b = lower_envelope(t4 - x0, -back)
-                a_b, b_b = -a_b, -b_b
-                alpha = (a_f + a_b) / 2
-                theta_at_ref = ((a_f * (x_ref - x0) + b_f) + (a_b * (x_ref - x0) + b_b)) / 2
+        # Centre the abscissae so slopes and intercepts stay well conditioned after days of uptime.
+        x0 = float(mid.mean())
+        if self.settings.method is FitMethod.BAND:
+            alpha, beta, _ = band_fit(t1 - x0, fwd, t4 - x0, back)
+            theta_at_ref = alpha * (x_ref - x0) + beta
         else:
-            alpha = 0.0
-            theta_at_ref = float(theta[int(np.argmin(delay))])  # clock filter: min-delay pick
+            a_f, b_f = lower_envelope(t1 - x0, fwd)
+            a_b, b_b = lower_envelope(t4 - x0, -back)
+            a_b, b_b = -a_b, -b_b
+            alpha = (a_f + a_b) / 2
+            theta_at_ref = ((a_f * (x_ref - x0) + b_f) + (a_b * (x_ref - x0) + b_b)) / 2
         resid = theta - (theta_at_ref + alpha * (mid - x_ref))
         fit = ClockFit(
             offset_s=ref + theta_at_ref,
@@ -598,7 +613,7 @@ class ClockModel:
             residual_ms=float(np.sqrt(np.mean(resid**2)) * 1000.0),
             n_samples=len(kept),
             span_s=span,
-            skew_estimated=bool(skew_estimated),
+            skew_estimated=True,
             segment_start_board_s=seg.start_b,
         )
         seg.fit = fit

@@ -244,6 +244,12 @@ def test_fit_before_skew_span_uses_min_delay_offset_and_zero_skew():
     assert fit is not None and not fit.skew_estimated and fit.skew_ppm == 0.0
     assert fit.n_samples == 3
     assert_allclose(fit.offset_s - BOOT_WALL, -0.002, atol=1e-6)  # the 8 ms exchange's θ
+    # The same pick as the RFC 5905 filter above, and the residual is the RMS around it:
+    # θ − pick = +12, 0, −8 ms, so sqrt((144 + 0 + 64) / 3) = 8.33 ms (worked by hand).
+    assert clock_filter_pick([0.010, -0.002, -0.010], [0.040, 0.008, 0.030])[0] == -0.002
+    assert_allclose(fit.residual_ms, math.sqrt(208 / 3), atol=1e-3)  # Unix-time floats: ~0.1 µs
+    # Exchange mid-points 100.020, 110.004, 120.015 board seconds: the line's reference is the newest.
+    assert_allclose([fit.span_s, fit.ref_board_s], [19.995, 120.015], rtol=1e-9)
 
 
 def test_selection_keeps_lowest_delay_exchanges_per_window():
