@@ -505,14 +505,18 @@ async def _serve_until_signal(app: Any, settings: Any, ssl_ctx: Any, log: Any) -
 
     from listenpost.core.notify import Notifier
 
+    notifier = Notifier()
     runner = web.AppRunner(app, access_log=None)
-    await runner.setup()
+    starting = asyncio.create_task(_while_starting(notifier))
+    try:
+        await runner.setup()  # opens the store: its schema migrations run here
+    finally:
+        starting.cancel()
     try:
         site = web.TCPSite(runner, settings.host, settings.port, ssl_context=ssl_ctx)
         await site.start()  # raises OSError if the port cannot be bound
         url = f"{'https' if ssl_ctx else 'http'}://{settings.host}:{settings.port}"
         log.info("collector_listening", url=url, health_page=url + "/", public_url=settings.public_url)
-        notifier = Notifier()
         notifier.ready(f"listening on {url}")
         watchdog = asyncio.create_task(_watchdog(notifier)) if notifier.watchdog_interval else None
         stop = asyncio.Event()
@@ -526,6 +530,22 @@ async def _serve_until_signal(app: Any, settings: Any, ssl_ctx: Any, log: Any) -
             watchdog.cancel()
     finally:
         await runner.cleanup()
+
+
+START_EXTEND_S = 60.0
+"""While the store opens, systemd is asked for this much more start time, a third of it before it runs out."""
+
+
+async def _while_starting(notifier: Any, extend_s: float = START_EXTEND_S) -> None:
+    """
+    Keep systemd waiting while the collector starts. A schema migration of a large database (moving a
+    week of readings into day partitions takes tens of seconds, longer on slow disks) can outlast the
+    unit's start timeout (90 s by default); systemd would kill it mid-migration, which rolls back, and
+    start it into the same migration again, for ever.
+    """
+    while True:
+        notifier.extend_timeout(extend_s, "starting: opening the store (a schema migration may take minutes)")
+        await asyncio.sleep(extend_s / 3)
 
 
 async def _watchdog(notifier: Any) -> None:

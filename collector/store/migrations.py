@@ -27,10 +27,15 @@ Layout choices, the same in both dialects:
 from __future__ import annotations
 
 import sqlite3
+import time
 from dataclasses import dataclass
 from typing import Any
 
+import structlog
+
 from listenpost.collector.store import SchemaTooNew
+
+log = structlog.get_logger("listenpost.collector.store.migrations")
 
 
 @dataclass(frozen=True, slots=True)
@@ -501,6 +506,7 @@ def migrate_sqlite(
             if now >= m.version:
                 con.execute("COMMIT")
                 continue
+            started = _migrating(m)
             for stmt in m.statements:
                 con.execute(stmt)
             con.execute(
@@ -511,8 +517,19 @@ def migrate_sqlite(
         except BaseException:
             con.execute("ROLLBACK")
             raise
+        _migrated(m, started)
         current = m.version
     return current
+
+
+def _migrating(m: Migration) -> float:
+    """Log a migration's start (one may run for minutes on a large database); returns its start time."""
+    log.info("schema_migrating", version=m.version, name=m.name)
+    return time.monotonic()
+
+
+def _migrated(m: Migration, started: float) -> None:
+    log.info("schema_migrated", version=m.version, seconds=round(time.monotonic() - started, 3))
 
 
 # A fixed advisory-lock key so two collectors starting together migrate one after the other.
@@ -547,6 +564,7 @@ async def migrate_postgres(
             now = await con.fetchval("SELECT coalesce(max(version), 0) FROM schema_version")
             if now >= m.version:
                 continue
+            started = _migrating(m)
             for stmt in m.statements:
                 await con.execute(stmt, timeout=STATEMENT_MAX_SECONDS)
             await con.execute(
@@ -554,5 +572,6 @@ async def migrate_postgres(
                 m.version,
                 m.name,
             )
+        _migrated(m, started)
         current = m.version
     return current

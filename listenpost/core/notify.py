@@ -2,8 +2,9 @@
 sd_notify(3) without a dependency: one AF_UNIX datagram to ``$NOTIFY_SOCKET``.
 
 systemd starts a ``Type=notify`` unit with ``NOTIFY_SOCKET`` set; the service reports ``READY=1``
-when it is up, ``STATUS=...`` as a one-line summary for ``systemctl status``, and ``WATCHDOG=1``
-keep-alives when ``WatchdogSec=`` is set (``$WATCHDOG_USEC``). Outside systemd the variable is
+when it is up, ``STATUS=...`` as a one-line summary for ``systemctl status``, ``EXTEND_TIMEOUT_USEC=...``
+while a start takes longer than the unit's start timeout allows, and ``WATCHDOG=1`` keep-alives when
+``WatchdogSec=`` is set (``$WATCHDOG_USEC``). Outside systemd the variable is
 absent and every call is a no-op. Errors are swallowed: a missing notification socket must never
 take the agent down.
 """
@@ -68,6 +69,12 @@ class Notifier:
     def ready(self, status: str | None = None) -> bool:
         """Startup finished."""
         return self.notify("READY=1", *([f"STATUS={status}"] if status else []))
+
+    def extend_timeout(self, seconds: float, status: str | None = None) -> bool:
+        """Ask for ``seconds`` more before the current start (or stop) counts as hung; systemd 236 and
+        later take it (``EXTEND_TIMEOUT_USEC``), older ones ignore it."""
+        usec = max(1, round(seconds * 1e6))
+        return self.notify(f"EXTEND_TIMEOUT_USEC={usec}", *([f"STATUS={status}"] if status else []))
 
     def status(self, text: str) -> bool:
         """One-line summary shown by ``systemctl status``."""

@@ -86,3 +86,14 @@ def test_send_errors_are_swallowed_and_counted(tmp_path):
     assert n.enabled
     assert not n.ready()
     assert n.failures == 1
+
+
+def test_extend_timeout_asks_for_microseconds_as_sd_notify_3_names_them(path_socket):
+    """sd_notify(3): ``EXTEND_TIMEOUT_USEC=`` takes microseconds (systemd 236 and later)."""
+    rx, addr = path_socket
+    n = Notifier({"NOTIFY_SOCKET": addr})
+    assert n.extend_timeout(60, "starting: opening the store")
+    assert rx.recv(4096) == b"EXTEND_TIMEOUT_USEC=60000000\nSTATUS=starting: opening the store"
+    assert n.extend_timeout(0.25)
+    assert rx.recv(4096) == b"EXTEND_TIMEOUT_USEC=250000"
+    assert not Notifier({}).extend_timeout(60)  # outside systemd: nothing to ask

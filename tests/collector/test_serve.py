@@ -7,6 +7,9 @@ never READY followed by a traceback.
 
 from __future__ import annotations
 
+import asyncio
+import contextlib
+import json
 import os
 import signal
 import socket
@@ -16,6 +19,9 @@ import urllib.request
 from pathlib import Path
 
 import pytest
+
+from listenpost.collector.store.migrations import POSTGRES, latest
+from tests.collector.test_scaleout_processes import fresh_database  # noqa: F401
 
 WAIT_S = 60  # bounded waits for a process on a loaded machine, not speed assertions
 
@@ -30,9 +36,10 @@ def notify_socket(tmp_path):
     rx.close()
 
 
-def serve(state: Path, port: int, notify: str) -> subprocess.Popen[str]:
+def serve(state: Path, port: int, notify: str, db: str | None = None) -> subprocess.Popen[str]:
     argv = [sys.executable, "-m", "listenpost", "collector", "serve", "--state-dir", str(state)]
     argv += ["--host", "127.0.0.1", "--port", str(port), "--log-format", "json"]
+    argv += ["--db", db] if db else []
     env = {**os.environ, "NOTIFY_SOCKET": notify}
     return subprocess.Popen(argv, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
 
@@ -44,8 +51,16 @@ def test_ready_is_sent_only_once_the_port_answers_and_sigterm_stops_cleanly(tmp_
         port = probe.getsockname()[1]
     proc = serve(tmp_path / "state", port, addr)
     try:
+        # While the store opens (its migrations run then), systemd is asked for more start time.
         first = rx.recv(4096).decode()
-        assert first.startswith("READY=1"), first
+        assert (
+            first
+            == "EXTEND_TIMEOUT_USEC=60000000\nSTATUS=starting: opening the store (a schema migration may take minutes)"
+        ), first
+        ready = rx.recv(4096).decode()
+        while ready.startswith("EXTEND_TIMEOUT_USEC="):  # a slow start asks again every 20 s
+            ready = rx.recv(4096).decode()
+        assert ready.startswith("READY=1"), ready
         # READY came after the bind: the very next request is answered
         with urllib.request.urlopen(f"http://127.0.0.1:{port}/v1/status", timeout=WAIT_S) as resp:
             assert resp.status == 200
@@ -73,5 +88,80 @@ def test_a_port_in_use_is_one_clear_line_and_exit_2_without_ready(tmp_path, noti
     assert f"cannot listen on 127.0.0.1:{port}: Address already in use" in err
     assert "Traceback" not in err and "Traceback" not in out
     assert '"collector_listening"' not in err
-    with pytest.raises(TimeoutError):
-        rx.recv(4096)
+    sent = []
+    with contextlib.suppress(TimeoutError):
+        while True:
+            sent.append(rx.recv(4096))
+    assert sent and all(m.startswith(b"EXTEND_TIMEOUT_USEC=") for m in sent), sent  # never READY
+
+
+async def test_while_starting_asks_again_before_the_extension_runs_out(notify_socket):
+    """The start keeps asking, a third of the extension apart, until it is cancelled (READY follows)."""
+    from listenpost.collector.cli import _while_starting
+    from listenpost.core.notify import Notifier
+
+    rx, addr = notify_socket
+    rx.setblocking(False)
+    loop = asyncio.get_running_loop()
+    task = asyncio.create_task(_while_starting(Notifier({"NOTIFY_SOCKET": addr}), extend_s=0.3))
+    try:
+        got = [await asyncio.wait_for(loop.sock_recv(rx, 4096), WAIT_S) for _ in range(3)]
+    finally:
+        task.cancel()
+        with contextlib.suppress(asyncio.CancelledError):
+            await task
+    assert all(g.startswith(b"EXTEND_TIMEOUT_USEC=300000\nSTATUS=starting") for g in got), got
+    assert task.cancelled()
+
+
+async def test_a_start_held_up_by_a_migration_asks_for_time_and_is_ready_after_it(
+    tmp_path,
+    notify_socket,
+    fresh_database: str,  # noqa: F811 - the fixture imported above
+):
+    """Another collector migrating the same database (its lock held here) holds this one's start up:
+    systemd hears "more time" at once, READY only once this one's migrations are done and the port answers."""
+    import asyncpg
+
+    from listenpost.collector.store.migrations import _MIGRATION_LOCK_KEY
+
+    rx, addr = notify_socket
+    rx.setblocking(False)
+    loop = asyncio.get_running_loop()
+    admin = await asyncpg.connect(fresh_database, timeout=10)
+    with socket.socket() as probe:
+        probe.bind(("127.0.0.1", 0))
+        port = probe.getsockname()[1]
+    proc = None
+    try:
+        lock = admin.transaction()
+        await lock.start()
+        await admin.execute("SELECT pg_advisory_xact_lock($1)", _MIGRATION_LOCK_KEY)
+        proc = serve(tmp_path / "state", port, addr, db=fresh_database)
+        first = await asyncio.wait_for(loop.sock_recv(rx, 4096), WAIT_S)
+        assert first.startswith(b"EXTEND_TIMEOUT_USEC=60000000\nSTATUS=starting"), first
+        # The collector is now waiting for the lock (its server session shows it), not yet migrating.
+        waiting = "SELECT count(*) FROM pg_locks WHERE locktype = 'advisory' AND NOT granted"
+        for _ in range(int(WAIT_S / 0.05)):
+            if await admin.fetchval(waiting):
+                break
+            await asyncio.sleep(0.05)
+        assert await admin.fetchval(waiting) == 1
+        assert proc.poll() is None
+        await lock.rollback()
+        got = first
+        while not got.startswith(b"READY=1"):
+            got = await asyncio.wait_for(loop.sock_recv(rx, 4096), WAIT_S)
+        with urllib.request.urlopen(f"http://127.0.0.1:{port}/v1/status", timeout=WAIT_S) as resp:  # noqa: ASYNC210
+            assert resp.status == 200
+    finally:
+        await admin.close()
+        if proc is not None:
+            proc.send_signal(signal.SIGTERM)
+            out, err = proc.communicate(timeout=WAIT_S)  # noqa: ASYNC101
+    events = [json.loads(line)["event"] for line in err.splitlines() if line.startswith("{")]
+    migrated = [e for e in events if e in ("schema_migrating", "schema_migrated")]
+    assert migrated == ["schema_migrating", "schema_migrated"] * latest(POSTGRES), events
+    assert events.index("collector_listening") > max(
+        i for i, e in enumerate(events) if e == "schema_migrated"
+    )
