@@ -496,6 +496,7 @@ def migrate_sqlite(
         raise
     if current > latest(migrations):
         raise SchemaTooNew(current, latest(migrations))
+    new = current == 0  # a new database: made by the same migrations, logged once
     for m in migrations:
         if m.version <= current or m.version > target:
             continue
@@ -506,7 +507,7 @@ def migrate_sqlite(
             if now >= m.version:
                 con.execute("COMMIT")
                 continue
-            started = _migrating(m)
+            started = _migrating(m, new=new)
             for stmt in m.statements:
                 con.execute(stmt)
             con.execute(
@@ -517,19 +518,24 @@ def migrate_sqlite(
         except BaseException:
             con.execute("ROLLBACK")
             raise
-        _migrated(m, started)
+        _migrated(m, started, new=new, last=m.version == target)
         current = m.version
     return current
 
 
-def _migrating(m: Migration) -> float:
-    """Log a migration's start (one may run for minutes on a large database); returns its start time."""
-    log.info("schema_migrating", version=m.version, name=m.name)
+def _migrating(m: Migration, *, new: bool) -> float:
+    """Log the start of an existing database's migration (one may run for minutes on a large database);
+    returns its start time. A new database is made by the same migrations and logged once, at the end."""
+    if not new:
+        log.info("schema_migrating", version=m.version, name=m.name)
     return time.monotonic()
 
 
-def _migrated(m: Migration, started: float) -> None:
-    log.info("schema_migrated", version=m.version, seconds=round(time.monotonic() - started, 3))
+def _migrated(m: Migration, started: float, *, new: bool, last: bool) -> None:
+    if not new:
+        log.info("schema_migrated", version=m.version, seconds=round(time.monotonic() - started, 3))
+    elif last:
+        log.info("schema_created", version=m.version)
 
 
 # A fixed advisory-lock key so two collectors starting together migrate one after the other.
@@ -556,6 +562,7 @@ async def migrate_postgres(
         current = await con.fetchval("SELECT coalesce(max(version), 0) FROM schema_version")
     if current > latest(migrations):
         raise SchemaTooNew(current, latest(migrations))
+    new = current == 0  # a new database: made by the same migrations, logged once
     for m in migrations:
         if m.version <= current or m.version > target:
             continue
@@ -564,7 +571,7 @@ async def migrate_postgres(
             now = await con.fetchval("SELECT coalesce(max(version), 0) FROM schema_version")
             if now >= m.version:
                 continue
-            started = _migrating(m)
+            started = _migrating(m, new=new)
             for stmt in m.statements:
                 await con.execute(stmt, timeout=STATEMENT_MAX_SECONDS)
             await con.execute(
@@ -572,6 +579,6 @@ async def migrate_postgres(
                 m.version,
                 m.name,
             )
-        _migrated(m, started)
+        _migrated(m, started, new=new, last=m.version == target)
         current = m.version
     return current

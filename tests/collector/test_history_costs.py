@@ -19,6 +19,7 @@ from typing import Any
 
 import numpy as np
 import pytest
+from structlog.testing import capture_logs
 
 from listenpost.collector.monitor import MONITOR
 from listenpost.collector.state import STORE
@@ -326,6 +327,28 @@ async def test_migration_fills_the_hole_accounting_from_stored_batches(sqlite_fa
     assert await store.seq_holes() == [SeqHole("g0-a", EPOCH_A, 2, 3), SeqHole("g0-a", EPOCH_A, 7, 8)]
     await store.ingest(make_batch("g0-a", 2, n=1))  # and it goes on from there
     assert await store.seq_holes() == [SeqHole("g0-a", EPOCH_A, 3, 3), SeqHole("g0-a", EPOCH_A, 7, 8)]
+
+
+def test_a_new_database_is_logged_once_and_an_upgrade_migration_by_migration(tmp_path):
+    """Upgrading a large database can take minutes: each migration says when it starts and how long it
+    took. A new database is made by the same migrations and says so once."""
+    con = sqlite3.connect(tmp_path / "old.db", isolation_level=None)
+    with capture_logs() as logs:
+        assert mig.migrate_sqlite(con, upto=3) == 3
+    assert [(e["event"], e["version"]) for e in logs] == [("schema_created", 3)]
+    with capture_logs() as logs:
+        assert mig.migrate_sqlite(con) == mig.latest(mig.SQLITE)
+        assert mig.migrate_sqlite(con) == mig.latest(mig.SQLITE)  # nothing left to do: nothing logged
+    want = [
+        (what, v)
+        for v in range(4, mig.latest(mig.SQLITE) + 1)
+        for what in ("schema_migrating", "schema_migrated")
+    ]
+    assert [(e["event"], e["version"]) for e in logs] == want
+    assert all(e["seconds"] >= 0 for e in logs if e["event"] == "schema_migrated")
+    assert [e["name"] for e in logs if e["event"] == "schema_migrating"] == [
+        m.name for m in mig.SQLITE if m.version >= 4
+    ]
 
 
 async def test_a_reported_hole_stays_reported_when_a_late_batch_splits_it(store):

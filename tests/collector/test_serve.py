@@ -20,7 +20,7 @@ from pathlib import Path
 
 import pytest
 
-from listenpost.collector.store.migrations import POSTGRES, latest
+from listenpost.collector.store.migrations import POSTGRES, latest, migrate_postgres
 from tests.collector.test_scaleout_processes import fresh_database  # noqa: F401
 
 WAIT_S = 60  # bounded waits for a process on a loaded machine, not speed assertions
@@ -120,7 +120,8 @@ async def test_a_start_held_up_by_a_migration_asks_for_time_and_is_ready_after_i
     fresh_database: str,  # noqa: F811 - the fixture imported above
 ):
     """Another collector migrating the same database (its lock held here) holds this one's start up:
-    systemd hears "more time" at once, READY only once this one's migrations are done and the port answers."""
+    systemd hears "more time" at once, READY only once this one's migrations (7 and up, each logged with
+    its seconds) are done and the port answers."""
     import asyncpg
 
     from listenpost.collector.store.migrations import _MIGRATION_LOCK_KEY
@@ -134,6 +135,7 @@ async def test_a_start_held_up_by_a_migration_asks_for_time_and_is_ready_after_i
         port = probe.getsockname()[1]
     proc = None
     try:
+        await migrate_postgres(admin, upto=6)  # a database from before the day partitions
         lock = admin.transaction()
         await lock.start()
         await admin.execute("SELECT pg_advisory_xact_lock($1)", _MIGRATION_LOCK_KEY)
@@ -159,9 +161,12 @@ async def test_a_start_held_up_by_a_migration_asks_for_time_and_is_ready_after_i
         if proc is not None:
             proc.send_signal(signal.SIGTERM)
             out, err = proc.communicate(timeout=WAIT_S)  # noqa: ASYNC101
-    events = [json.loads(line)["event"] for line in err.splitlines() if line.startswith("{")]
-    migrated = [e for e in events if e in ("schema_migrating", "schema_migrated")]
-    assert migrated == ["schema_migrating", "schema_migrated"] * latest(POSTGRES), events
+    logged = [json.loads(line) for line in err.splitlines() if line.startswith("{")]
+    events = [e["event"] for e in logged]
+    migrated = [(e["event"], e["version"]) for e in logged if e["event"].startswith("schema_")]
+    assert migrated == [
+        (what, v) for v in range(7, latest(POSTGRES) + 1) for what in ("schema_migrating", "schema_migrated")
+    ], events
     assert events.index("collector_listening") > max(
         i for i, e in enumerate(events) if e == "schema_migrated"
     )
